@@ -1,0 +1,1 @@
+"""analysis stage of roomcorr (see DEVELOPERS.md for the data flow)."""

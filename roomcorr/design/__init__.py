@@ -1,0 +1,1 @@
+"""design stage of roomcorr (see DEVELOPERS.md for the data flow)."""

@@ -1,0 +1,1 @@
+"""measure stage of roomcorr (see DEVELOPERS.md for the data flow)."""

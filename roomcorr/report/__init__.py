@@ -1,0 +1,1 @@
+"""report stage of roomcorr (see DEVELOPERS.md for the data flow)."""
