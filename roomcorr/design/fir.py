@@ -1,0 +1,230 @@
+"""Minimum-phase FIR correction filters synthesised from a gain curve.
+
+The correction curve lives on the rate-independent log-frequency grid
+(``roomcorr.grid``). For each sample rate a filter is synthesised from that
+curve directly (never by resampling another rate's filter): the curve is
+interpolated onto the rfft bins of an oversampled FFT, given minimum phase by
+folding the real cepstrum (``roomcorr.design.minphase``), transformed back and
+truncated to ``n_taps`` with a half-Hann fade over the last quarter.
+
+References
+----------
+.. [1] A. V. Oppenheim and R. W. Schafer, Discrete-Time Signal Processing,
+       3rd ed., Pearson, 2010, ch. 13 (minimum phase from the cepstrum) and
+       ch. 7 (truncating an impulse response with a window).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from roomcorr.design.minphase import DEFAULT_OVERSAMPLE, fft_length, minimum_phase_spectrum
+from roomcorr.grid import interp_log
+
+#: Shortest filter :func:`default_n_taps` returns.
+MIN_DEFAULT_N_TAPS = 4096
+
+#: Bins per octave-ish resolution rule: fs / n_taps must not exceed f_low / this.
+RESOLUTION_FACTOR = 6
+
+#: Fraction of the filter length faded out by the half-Hann tail window.
+TAIL_FRACTION = 0.25
+
+
+def default_n_taps(fs: float, f_low_hz: float) -> int:
+    """Return the default filter length for sample rate ``fs`` and lowest corrected frequency.
+
+    The result is the shortest power of two ``N`` whose frequency resolution
+    ``fs / N`` is at most ``f_low_hz / 6``, so that the lowest corrected
+    frequency spans at least six DFT bins and a correction feature there is
+    resolved (common practice: several bins per feature). It is never below
+    4096 taps.
+
+    Examples: 48 kHz with ``f_low_hz=20`` gives 16384 taps (2.9 Hz bins);
+    96 kHz gives 32768.
+
+    Parameters
+    ----------
+    fs : float
+        Sample rate in Hz, positive.
+    f_low_hz : float
+        Lowest frequency the correction acts on, positive.
+
+    Returns
+    -------
+    n_taps : int
+    """
+    if not fs > 0 or not np.isfinite(fs):
+        raise ValueError(f"fs must be a positive number, got {fs}")
+    if not f_low_hz > 0 or not np.isfinite(f_low_hz):
+        raise ValueError(f"f_low_hz must be a positive number, got {f_low_hz}")
+    n_min = RESOLUTION_FACTOR * fs / f_low_hz
+    n = 1 << max(0, int(np.ceil(np.log2(n_min))))
+    # guard against rounding in log2 at exact powers of two
+    while fs / n > f_low_hz / RESOLUTION_FACTOR:
+        n *= 2
+    return max(n, MIN_DEFAULT_N_TAPS)
+
+
+def tail_window(n_taps: int, fraction: float = TAIL_FRACTION) -> np.ndarray:
+    """Return a window that is 1 except for a falling half-Hann over the last ``fraction``.
+
+    The last sample is small but not zero, so no tap is wasted.
+
+    Returns
+    -------
+    window : ndarray, shape (n_taps,)
+    """
+    w = np.ones(n_taps)
+    n_tail = int(round(n_taps * fraction))
+    if n_tail > 0:
+        k = np.arange(1, n_tail + 1)
+        w[n_taps - n_tail :] = 0.5 * (1.0 + np.cos(np.pi * k / (n_tail + 1)))
+    return w
+
+
+def synthesize_fir(
+    grid_hz: np.ndarray,
+    gain_db: np.ndarray,
+    fs: float,
+    n_taps: int,
+    oversample: int = DEFAULT_OVERSAMPLE,
+) -> np.ndarray:
+    """Synthesise a minimum-phase FIR filter whose magnitude follows a gain curve.
+
+    The curve is interpolated (linearly in log frequency,
+    :func:`roomcorr.grid.interp_log`) onto all rfft bins of an
+    ``oversample * n_taps``-point FFT, DC and Nyquist included; bins below
+    the grid start hold the first value, bins above the grid end hold the
+    last. The minimum-phase spectrum with that magnitude is transformed back,
+    truncated to ``n_taps`` and faded out with a half-Hann window over the
+    last quarter of the taps.
+
+    Parameters
+    ----------
+    grid_hz : ndarray, shape (n_freqs,)
+        Increasing frequencies of the curve in Hz (normally the log grid).
+    gain_db : ndarray, shape (n_freqs,)
+        Gain in dB at ``grid_hz``.
+    fs : float
+        Sample rate of the filter in Hz.
+    n_taps : int
+        Filter length.
+    oversample : int
+        FFT length as a multiple of ``n_taps`` (limits cepstral aliasing).
+
+    Returns
+    -------
+    h : ndarray, shape (n_taps,), float64
+
+    References
+    ----------
+    .. [1] A. V. Oppenheim and R. W. Schafer, Discrete-Time Signal
+           Processing, 3rd ed., ch. 13.
+    """
+    grid_hz = np.asarray(grid_hz, dtype=np.float64)
+    gain_db = np.asarray(gain_db, dtype=np.float64)
+    if grid_hz.ndim != 1 or grid_hz.shape != gain_db.shape or grid_hz.size < 2:
+        raise ValueError(
+            f"grid_hz and gain_db must be 1-D with the same length >= 2, "
+            f"got shapes {grid_hz.shape} and {gain_db.shape}"
+        )
+    if not (np.all(np.isfinite(grid_hz)) and np.all(np.isfinite(gain_db))):
+        raise ValueError("grid_hz and gain_db must be finite")
+    if np.any(grid_hz <= 0) or np.any(np.diff(grid_hz) <= 0):
+        raise ValueError("grid_hz must be positive and strictly increasing")
+    if not fs > 0:
+        raise ValueError(f"fs must be positive, got {fs}")
+    n_taps = int(n_taps)
+    if n_taps < 1:
+        raise ValueError(f"n_taps must be at least 1, got {n_taps}")
+    if oversample < 1:
+        raise ValueError(f"oversample must be at least 1, got {oversample}")
+
+    n_fft = int(oversample) * n_taps
+    bins_hz = np.fft.rfftfreq(n_fft, 1.0 / fs)
+    gain_bins_db = interp_log(bins_hz, grid_hz, gain_db)
+    gain_bins_db[0] = gain_db[0]  # DC holds the first value
+    magnitude = 10.0 ** (gain_bins_db / 20.0)
+    spectrum = minimum_phase_spectrum(magnitude, n_fft)
+    h = np.fft.irfft(spectrum, n_fft)[:n_taps]
+    return h * tail_window(n_taps)
+
+
+def fir_response_db(h: np.ndarray, fs: float, freq_hz: np.ndarray) -> np.ndarray:
+    """Return the magnitude response of FIR ``h`` in dB at ``freq_hz``.
+
+    Parameters
+    ----------
+    h : ndarray, shape (n_taps,)
+    fs : float
+        Sample rate in Hz.
+    freq_hz : ndarray, shape (n_freqs,)
+        Frequencies in Hz (any spacing).
+
+    Returns
+    -------
+    gain_db : ndarray, shape (n_freqs,)
+        ``20 log10 |H|``; exact zeros give ``-inf``.
+    """
+    from scipy.signal import freqz
+
+    freq_hz = np.atleast_1d(np.asarray(freq_hz, dtype=np.float64))
+    _, resp = freqz(np.asarray(h, dtype=np.float64), worN=freq_hz, fs=fs)
+    with np.errstate(divide="ignore"):
+        return 20.0 * np.log10(np.abs(resp))
+
+
+def peak_gain_db(h: np.ndarray, fs: float, f_lo: float = 20.0, f_hi: float = 20000.0) -> float:
+    """Return the largest gain in dB of FIR ``h`` between ``f_lo`` and ``f_hi`` Hz.
+
+    Evaluated on a dense grid: all rfft bins of a zero-padded FFT of at least
+    eight times the filter length (bin spacing ``fs / (8 n_taps)`` or finer,
+    so a peak is sampled well within its width), plus the two band edges.
+    ``f_hi`` above Nyquist is limited to Nyquist.
+
+    Parameters
+    ----------
+    h : ndarray, shape (n_taps,)
+    fs : float
+        Sample rate in Hz.
+    f_lo, f_hi : float
+        Band in Hz, ``0 <= f_lo <= f_hi``.
+
+    Returns
+    -------
+    peak_db : float
+    """
+    h = np.asarray(h, dtype=np.float64)
+    f_hi = min(float(f_hi), fs / 2.0)
+    if not 0.0 <= f_lo <= f_hi:
+        raise ValueError(f"need 0 <= f_lo <= f_hi <= fs/2, got f_lo={f_lo}, f_hi={f_hi}")
+    n_fft = max(fft_length(h.shape[-1], 8), 1 << 14)
+    mag = np.abs(np.fft.rfft(h, n_fft))
+    bins_hz = np.fft.rfftfreq(n_fft, 1.0 / fs)
+    inside = (bins_hz >= f_lo) & (bins_hz <= f_hi)
+    edges_db = fir_response_db(h, fs, np.array([f_lo, f_hi]))
+    with np.errstate(divide="ignore"):
+        inner_db = 20.0 * np.log10(mag[inside]) if np.any(inside) else edges_db
+    return float(max(np.max(inner_db), np.max(edges_db)))
+
+
+def worst_case_gain_db(h: np.ndarray) -> float:
+    """Return the worst-case gain ``20 log10(sum |h|)`` in dB.
+
+    This is the largest output amplitude for any input bounded by 1 (reached
+    by a signal whose samples have the signs of the time-reversed filter), so
+    it bounds the magnitude response at every frequency (triangle
+    inequality).
+
+    Parameters
+    ----------
+    h : ndarray, shape (n_taps,)
+
+    Returns
+    -------
+    gain_db : float
+    """
+    total = float(np.sum(np.abs(np.asarray(h, dtype=np.float64))))
+    with np.errstate(divide="ignore"):
+        return float(20.0 * np.log10(total))
