@@ -40,9 +40,19 @@ crossover, whose low-pass and high-pass sum to an all-pass, so neither part is
 double-counted. A pre-delay of 5 ms (a made-up audio interface latency) comes
 before the direct sound, which arrives after ``distance / c``. Measurement
 noise (seeded, white) sits 80 dB below the largest peak of the set, and the
-whole set is scaled so that peak is at −6 dBFS. The front-wall distance of the
-loudspeakers (0.42 m and 0.46 m) gives a boundary cancellation dip near
-``c / (4d)`` ≈ 190-200 Hz (common practice).
+whole set is scaled so that peak is at −6 dBFS.
+
+What the model produces at the seat: strong peaks at the 2nd and 3rd length
+modes (62 Hz, 93 Hz; the loudspeakers sit near the front wall, where every
+length mode has an antinode) and a deep dip near 108 Hz (about −16 dB in the
+position average, 16-35 dB at single positions), an anti-resonance where the
+3rd length mode, past its peak, is cancelled by the height and oblique modes
+just above 108 Hz. It is the demo's example of a null that boosting cannot
+fix. The front-wall distances (0.42 m, 0.46 m) put the quarter-wave boundary
+dip ``c / (4d)`` near 190-200 Hz (common practice), but the other walls fill
+it in to about −2 dB in the average. Between emission
+and arrival the responses hold low-frequency residue of the truncated modal
+sum about 55 dB below the peak; before the emission only measurement noise.
 
 All randomness is seeded, so the output is deterministic.
 
@@ -64,6 +74,8 @@ References
        1996 (``f_c = 2000 sqrt(T60 / V)``).
 .. [4] M. R. Schroeder, "New method of measuring reverberation time", JASA
        37(3), 1965.
+.. [5] S. H. Linkwitz, "Active crossover networks for noncoincident drivers",
+       JAES 24(1), 1976 (the crossover whose two halves sum to an all-pass).
 """
 
 from __future__ import annotations

@@ -252,3 +252,34 @@ def test_main_writes_folder_and_reports_unwritable(tmp_path, capsys):
     assert "cannot create demo folder" in capsys.readouterr().err
     with pytest.raises(OutputError):
         demo.write_demo_measurements(blocker / "sub")
+
+
+def test_deep_dip_near_108_hz_for_the_null_rule(room):
+    # A property of the model that the demo relies on (not an outside reference): a deep
+    # modal null in the position average, so the design's rule against boosting nulls shows.
+    irs, fs, _ = room
+    freq = np.fft.rfftfreq(irs.shape[-1], 1.0 / fs)
+    power = np.mean(np.abs(np.fft.rfft(irs, axis=-1)) ** 2, axis=(0, 1))
+    ref = power[(freq > 300) & (freq < 2000)].mean()
+    dip = power[(freq > 100) & (freq < 118)].min()
+    assert 10 * np.log10(dip / ref) < -10.0
+
+
+def test_crossover_and_speaker_models_against_analytic_forms():
+    from scipy.signal import butter, freqs
+
+    freq = np.geomspace(5.0, 20000.0, 400)
+    # Linkwitz-Riley 4th order: low-pass and high-pass sum to an all-pass (|sum| = 1)
+    # and each is -6.02 dB at the crossover (Linkwitz, JAES 24(1), 1976).
+    lp, hp = demo._linkwitz_riley4(freq, 300.0)
+    np.testing.assert_allclose(np.abs(lp + hp), 1.0, atol=1e-12)
+    lp_c, hp_c = demo._linkwitz_riley4(np.array([300.0]), 300.0)
+    assert 20 * np.log10(abs(lp_c[0])) == pytest.approx(-6.02, abs=0.01)
+    assert 20 * np.log10(abs(hp_c[0])) == pytest.approx(-6.02, abs=0.01)
+    # The speaker's high-pass sections use the 4th-order Butterworth Qs (0.541, 1.307),
+    # rounded; compare with scipy's analog Butterworth high-pass at 50 Hz.
+    params = dict(demo._SPEAKERS[0], bump=(2300.0, 0.0, 1.0), lp_hz=1e9, tilt_db=0.0)
+    ours = demo._speaker_response(freq, params)
+    b, a = butter(4, 2 * np.pi * 50.0, btype="high", analog=True)
+    _, ref = freqs(b, a, worN=2 * np.pi * freq)
+    np.testing.assert_allclose(20 * np.log10(np.abs(ours)), 20 * np.log10(np.abs(ref)), atol=0.1)
