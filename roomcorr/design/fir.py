@@ -30,6 +30,12 @@ RESOLUTION_FACTOR = 6
 #: Fraction of the filter length faded out by the half-Hann tail window.
 TAIL_FRACTION = 0.25
 
+#: :func:`peak_gain_db` refines local maxima within this many dB of the largest bin...
+REFINE_WITHIN_DB = 0.5
+REFINE_RATIO = 10.0 ** (-REFINE_WITHIN_DB / 20.0)
+#: ...and at most this many of them.
+REFINE_MAX_PEAKS = 8
+
 
 def default_n_taps(fs: float, f_low_hz: float) -> int:
     """Return the default filter length for sample rate ``fs`` and lowest corrected frequency.
@@ -178,9 +184,14 @@ def fir_response_db(h: np.ndarray, fs: float, freq_hz: np.ndarray) -> np.ndarray
 def peak_gain_db(h: np.ndarray, fs: float, f_lo: float = 20.0, f_hi: float = 20000.0) -> float:
     """Return the largest gain in dB of FIR ``h`` between ``f_lo`` and ``f_hi`` Hz.
 
-    Evaluated on a dense grid: all rfft bins of a zero-padded FFT of at least
-    eight times the filter length (bin spacing ``fs / (8 n_taps)`` or finer,
-    so a peak is sampled well within its width), plus the two band edges.
+    Evaluated in two steps so that a peak between grid points is not missed:
+    first all rfft bins of a zero-padded FFT of at least eight times the
+    filter length (bin spacing ``fs / (8 n_taps)`` or finer) plus the two band
+    edges; then, around every local maximum within ``REFINE_WITHIN_DB`` of
+    the largest bin (at most ``REFINE_MAX_PEAKS`` of them), the response is
+    evaluated again on 65 points spanning one bin either side with a chirp-z
+    zoom FFT (``scipy.signal.zoom_fft``). The result is within about 1e-3 dB
+    of the true maximum (checked against a direct DTFT in the tests).
     ``f_hi`` above Nyquist is limited to Nyquist.
 
     Parameters
@@ -194,7 +205,15 @@ def peak_gain_db(h: np.ndarray, fs: float, f_lo: float = 20.0, f_hi: float = 200
     Returns
     -------
     peak_db : float
+
+    References
+    ----------
+    .. [1] L. R. Rabiner, R. W. Schafer and C. M. Rader, "The chirp
+           z-transform algorithm", IEEE Trans. Audio Electroacoust. 17(2),
+           1969 (zoomed DTFT evaluation).
     """
+    from scipy.signal import zoom_fft
+
     h = np.asarray(h, dtype=np.float64)
     f_hi = min(float(f_hi), fs / 2.0)
     if not 0.0 <= f_lo <= f_hi:
@@ -202,11 +221,28 @@ def peak_gain_db(h: np.ndarray, fs: float, f_lo: float = 20.0, f_hi: float = 200
     n_fft = max(fft_length(h.shape[-1], 8), 1 << 14)
     mag = np.abs(np.fft.rfft(h, n_fft))
     bins_hz = np.fft.rfftfreq(n_fft, 1.0 / fs)
-    inside = (bins_hz >= f_lo) & (bins_hz <= f_hi)
-    edges_db = fir_response_db(h, fs, np.array([f_lo, f_hi]))
+    inside = np.flatnonzero((bins_hz >= f_lo) & (bins_hz <= f_hi))
+    # band edges: the DTFT sum directly (two frequencies, O(n_taps))
+    edges_hz = np.array([f_lo, f_hi])
+    kernel = np.exp(-2j * np.pi * np.outer(edges_hz / fs, np.arange(h.shape[-1])))
+    best = float(np.max(np.abs(kernel @ h)))
+    if inside.size:
+        m = mag[inside]
+        best = max(best, float(np.max(m)))
+        # local maxima of the sampled magnitude (ends of the band count too)
+        left = np.r_[-np.inf, m[:-1]]
+        right = np.r_[m[1:], -np.inf]
+        peaks = np.flatnonzero((m >= left) & (m >= right) & (m >= best * REFINE_RATIO))
+        peaks = peaks[np.argsort(m[peaks])[::-1][:REFINE_MAX_PEAKS]]
+        df = fs / n_fft
+        for k in peaks:
+            f0 = bins_hz[inside[k]]
+            a, b = max(f_lo, f0 - df), min(f_hi, f0 + df)
+            if b > a:
+                zoom = zoom_fft(h, [a, b], m=65, fs=fs, endpoint=True)
+                best = max(best, float(np.max(np.abs(zoom))))
     with np.errstate(divide="ignore"):
-        inner_db = 20.0 * np.log10(mag[inside]) if np.any(inside) else edges_db
-    return float(max(np.max(inner_db), np.max(edges_db)))
+        return float(20.0 * np.log10(best))
 
 
 def worst_case_gain_db(h: np.ndarray) -> float:
