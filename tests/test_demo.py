@@ -283,3 +283,14 @@ def test_crossover_and_speaker_models_against_analytic_forms():
     b, a = butter(4, 2 * np.pi * 50.0, btype="high", analog=True)
     _, ref = freqs(b, a, worN=2 * np.pi * freq)
     np.testing.assert_allclose(20 * np.log10(np.abs(ours)), 20 * np.log10(np.abs(ref)), atol=0.1)
+
+
+def test_other_sample_rate_keeps_timing(room):
+    # Same room at 44.1 kHz: the direct sound still arrives at pre-delay + distance / c.
+    _, _, meta = room
+    irs, fs, _ = demo.synthesize_demo_room(fs=44100)
+    assert irs.shape == (4, 2, int(round(demo.IR_LENGTH_S * 44100)))
+    arrival = meta["pre_delay_s"] + meta["direct_delay_s"][0, 0]
+    assert np.argmax(np.abs(irs[0, 0])) / fs == pytest.approx(arrival, abs=0.0005)
+    with pytest.raises(ValueError):
+        demo.synthesize_demo_room(fs=4000)
