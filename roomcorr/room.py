@@ -1,0 +1,1011 @@
+"""Room folders: one settings file, every measurement and design kept, history, compare.
+
+Public functions (the signatures other commands rely on)::
+
+    find_room(path=None) -> Room | None
+        The room folder holding ``path`` (default: the working folder), or None.
+    open_room(path) -> Room                      # raises SettingsError if not a room
+    init_room(path, name=None) -> Room           # creates the folder and settings file
+    load_room_settings(room) -> Settings         # reads (and upgrades) roomcorr-room.toml
+    room_lock(room, command="") -> context manager (re-entrant in one process)
+    new_run(room, kind, info=None) -> context manager yielding the run folder (Path)
+        kind is "measurement" or "design". Takes the room lock, creates a new
+        time-stamped folder, and writes its "complete" marker only when the
+        block finishes without an exception. ``info`` (a dict the caller may
+        keep filling inside the block) is stored in the marker, e.g.
+        ``{"measurement": "<run id>"}`` for a design.
+    latest_measurement(room) -> Path             # newest complete one; InputFileError if none
+    list_runs(room, kind=None) -> list[RunInfo]  # oldest first, incomplete ones included
+    history(room) -> list[dict]                  # runs with their key figures
+    add_measurement(room, paths) -> Path         # copy IR WAVs from elsewhere into a new run
+    measurement_files(folder) -> list[Path]      # the IR WAVs of a measurement folder
+    compare_measurements(a, b, room=None, temperature_c=None) -> dict
+
+Layout of a room folder::
+
+    ROOM/roomcorr-room.toml                 settings (TOML, commented, settings_version)
+    ROOM/.roomcorr-lock                     lock file (held by a running command)
+    ROOM/measurements/2026-01-31_201502Z/   pos1.wav ... measurement.json, complete.json
+    ROOM/designs/2026-01-31_203010Z/        manifest.json, design.npz, fir/..., complete.json
+
+Runs are never overwritten or deleted. A run folder without ``complete.json``
+was interrupted (or is still being written) and is never taken as a
+measurement or design by later commands. Every file goes through
+:mod:`roomcorr.atomic`; the one exception is the lock file, which must keep
+its identity for ``flock`` and holds only a note of who holds it.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import dataclasses
+import datetime as _dt
+import json
+import os
+import re
+import socket
+import sys
+from collections.abc import Iterator
+from dataclasses import dataclass
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+from roomcorr.atomic import atomic_write_bytes, atomic_write_text
+from roomcorr.errors import InputFileError, OutputError, SettingsError
+
+if TYPE_CHECKING:
+    from roomcorr.settings import Settings
+
+SETTINGS_FILE = "roomcorr-room.toml"
+LOCK_FILE = ".roomcorr-lock"
+COMPLETE_MARKER = "complete.json"
+SETTINGS_SNAPSHOT = "room-settings.toml"
+KINDS = {"measurement": "measurements", "design": "designs"}
+_RUN_ID = re.compile(r"^(\d{4}-\d{2}-\d{2}_\d{6}Z)(?:_(\d+))?$")
+
+#: Upgrades of older room settings files: ``version -> function(data) -> data``
+#: turning a version-``v`` mapping into a version ``v + 1`` one. Version 1 is
+#: the first layout; when a key is renamed or moved, add its step here.
+MIGRATIONS: dict[int, Any] = {}
+
+
+# --------------------------------------------------------------------------- room
+
+
+@dataclass(frozen=True)
+class Room:
+    """A room folder."""
+
+    root: Path
+
+    @property
+    def settings_path(self) -> Path:
+        return self.root / SETTINGS_FILE
+
+    @property
+    def measurements_dir(self) -> Path:
+        return self.root / KINDS["measurement"]
+
+    @property
+    def designs_dir(self) -> Path:
+        return self.root / KINDS["design"]
+
+
+def find_room(path: str | os.PathLike[str] | None = None) -> Room | None:
+    """Return the room folder that holds ``path`` (itself or a parent), or ``None``.
+
+    Parameters
+    ----------
+    path : path-like, optional
+        File or folder; default the working folder.
+    """
+    p = Path(path if path is not None else os.getcwd()).resolve()
+    if p.is_file():
+        p = p.parent
+    for cand in (p, *p.parents):
+        if (cand / SETTINGS_FILE).is_file():
+            return Room(cand)
+    return None
+
+
+def open_room(path: str | os.PathLike[str]) -> Room:
+    """Return the room folder at (or above) ``path``; raise if there is none."""
+    room = find_room(path)
+    if room is None:
+        raise SettingsError(
+            f"{path}: not inside a room folder (no {SETTINGS_FILE}); "
+            "create one with 'roomcorr init DIR'"
+        )
+    return room
+
+
+def _utc_now() -> _dt.datetime:
+    return _dt.datetime.now(_dt.UTC)
+
+
+def _iso(t: _dt.datetime) -> str:
+    return t.strftime("%Y-%m-%dT%H:%M:%SZ")
+
+
+def _version() -> str:
+    try:
+        from roomcorr import __version__
+
+        return str(__version__)
+    except ImportError:  # pragma: no cover - package metadata missing
+        return "unknown"
+
+
+# --------------------------------------------------------------------------- settings file
+
+_DESIGN_NOTES = {
+    "target": "target curve: a preset (flat, gentle-tilt, warm-seat) or a text file "
+    "of 'frequency dB' lines",
+    "band_lo_hz": "lowest corrected frequency in Hz (leave out: found from the measured roll-off)",
+    "band_hi_hz": "highest corrected frequency in Hz (leave out: found from the measured roll-off)",
+    "max_boost_db": "largest boost any filter may apply, dB (boost costs headroom and "
+    "driver excursion)",
+    "max_cut_db": "largest cut, dB",
+    "taps": "FIR length at 48 kHz; other rates keep the same duration (leave out: automatic)",
+    "sample_rates": "sample rates to write filters for",
+    "ceiling_db": "highest peak gain of any exported filter, dB (above 0 only with allow_gain)",
+    "allow_gain": "permit a ceiling above 0 dB (filters with gain can clip)",
+    "calibration": "microphone calibration file, 'frequency dB' per line (leave out: none)",
+    "position_weights": "weight of each microphone position in the average (leave out: equal)",
+    "iir": "also write biquad (IIR) sets",
+    "iir_sections": "most biquad sections per channel",
+    "iir_freq_range_hz": "frequency range the biquads may use, Hz",
+    "iir_gain_range_db": "gain range of a biquad section, dB (upper end never above max_boost_db)",
+    "iir_q_range": "Q range of a biquad section",
+    "temperature_c": "air temperature in °C, for the speed of sound (arrival -> distance)",
+}
+
+
+def _toml_value(value: Any) -> str:
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    if isinstance(value, int | float):
+        return repr(value)
+    if isinstance(value, str):
+        return json.dumps(value, ensure_ascii=False)
+    if isinstance(value, list | tuple):
+        return "[" + ", ".join(_toml_value(v) for v in value) + "]"
+    raise TypeError(f"cannot write {value!r} as TOML")
+
+
+def _table_lines(values: dict[str, Any], notes: dict[str, str], example: dict[str, Any]) -> list:
+    lines: list[str] = []
+    for key, value in values.items():
+        note = notes.get(key)
+        if note:
+            if lines and lines[-1] != "":
+                lines.append("")
+            lines.append(f"# {note}")
+        if value is None:
+            lines.append(f"# {key} = {_toml_value(example.get(key, ''))}")
+        else:
+            lines.append(f"{key} = {_toml_value(value)}")
+        if note:
+            lines.append("")
+    if lines and lines[-1] != "":
+        lines.append("")
+    return lines
+
+
+_MEASURE_NOTES = {
+    "device": "audio device number or name from 'roomcorr devices' (leave out: system default)",
+    "outputs": "output channels of the loudspeakers, in order (1 = first)",
+    "input": "input channel of the measurement microphone",
+    "loopback": "output and input channel joined by a cable, to remove the system latency "
+    "(leave out: none)",
+    "positions": "number of microphone positions to measure",
+    "clip_dbfs": "quality gates: a recording failing one stops the run unless --force",
+}
+_MEASURE_EXAMPLES = {"device": 2, "loopback": [3, 2]}
+_INLINE_NOTE = re.compile(r"^\s+(\w+)\s*:[^#]*#\s*(.+)$")
+
+
+def _measure_defaults() -> tuple[dict[str, Any], dict[str, str]]:
+    """Default measurement settings and notes (their source comments, or ours)."""
+    try:
+        from roomcorr.measure import settings as ms
+    except ImportError:
+        return {}, {}
+    cls = getattr(ms, "MeasureSettings", None)
+    if cls is None or not dataclasses.is_dataclass(cls):
+        return {}, {}
+    values = {}
+    for f in dataclasses.fields(cls):
+        v = getattr(cls(), f.name)
+        if isinstance(v, str | int | float | bool | list | tuple) or v is None:
+            values[f.name] = list(v) if isinstance(v, tuple) else v
+    notes: dict[str, str] = {}
+    with contextlib.suppress(OSError, TypeError):
+        import inspect
+
+        for line in inspect.getsource(cls).splitlines():
+            m = _INLINE_NOTE.match(line)
+            if m and m.group(1) in values:
+                notes[m.group(1)] = m.group(2).strip()
+    notes.update({k: v for k, v in _MEASURE_NOTES.items() if k in values})
+    cap = getattr(ms, "LEVEL_CAP_DBFS", None)
+    if "allow_loud" in values and cap is not None:
+        notes["allow_loud"] = (
+            f"needed for level_dbfs above {cap:g} dBFS (start low; protect "
+            "your hearing and the loudspeakers)"
+        )
+    return values, notes
+
+
+def settings_text(name: str, created: str) -> str:
+    """The commented settings file written by :func:`init_room` (current layout)."""
+    from roomcorr.settings import SETTINGS_VERSION, DesignSettings
+
+    design = {
+        k: (list(v) if isinstance(v, tuple) else v)
+        for k, v in dataclasses.asdict(DesignSettings()).items()
+    }
+    examples = {
+        "band_lo_hz": 30.0,
+        "band_hi_hz": 500.0,
+        "taps": 16384,
+        "calibration": "mic-calibration.txt",
+        "position_weights": [1.0, 1.0, 1.0],
+    }
+    measure, measure_notes = _measure_defaults()
+    lines = [
+        "# roomcorr room settings. Every command run inside this folder reads this file;",
+        "# options given on the command line override it for that run.",
+        "# Lines starting with '#' are comments; remove the '#' before a key to set it.",
+        "",
+        "# Layout version of this file (roomcorr upgrades older layouts when it reads them).",
+        f"settings_version = {SETTINGS_VERSION}",
+        "",
+        "[room]",
+        "# A name for this room, shown by 'roomcorr history'.",
+        f"name = {_toml_value(name)}",
+        "# When this folder was created (UTC).",
+        f"created_utc = {_toml_value(created)}",
+        "",
+        "[design]",
+        *_table_lines(design, _DESIGN_NOTES, examples),
+        "[measure]",
+        "# Sweep and capture settings for 'roomcorr measure' (see 'roomcorr measure --help').",
+        "# Safety: start with a low level and raise it slowly; protect your hearing and",
+        "# respect your loudspeakers' excursion limits and local noise regulations.",
+        *_table_lines(measure, measure_notes, _MEASURE_EXAMPLES),
+    ]
+    while lines and lines[-1] == "":
+        lines.pop()
+    return "\n".join(lines) + "\n"
+
+
+def init_room(path: str | os.PathLike[str], name: str | None = None) -> Room:
+    """Create a room folder with a commented settings file and empty run folders.
+
+    Refuses a folder that is already a room (nothing is overwritten).
+
+    Parameters
+    ----------
+    path : path-like
+        Folder to create (may exist and hold other files).
+    name : str, optional
+        Room name (default: the folder's name).
+    """
+    root = Path(path).resolve()
+    if root.exists() and not root.is_dir():
+        raise OutputError(f"{path}: exists and is not a folder")
+    if (root / SETTINGS_FILE).exists():
+        raise OutputError(f"{root}: already a room folder ({SETTINGS_FILE} exists); left as it is")
+    try:
+        root.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise OutputError(f"{path}: cannot create the folder ({exc.strerror})") from None
+    room = Room(root)
+    with room_lock(room, "init"):
+        if room.settings_path.exists():  # another init won the race
+            raise OutputError(f"{root}: already a room folder ({SETTINGS_FILE} exists)")
+        for sub in KINDS.values():
+            (root / sub).mkdir(exist_ok=True)
+        atomic_write_text(room.settings_path, settings_text(name or root.name, _iso(_utc_now())))
+    return room
+
+
+def _read_room_toml(path: Path) -> dict[str, Any]:
+    from roomcorr.settings import SETTINGS_VERSION, read_toml
+
+    data = read_toml(path)
+    version = data.get("settings_version", 1)
+    if isinstance(version, bool) or not isinstance(version, int) or version < 1:
+        raise SettingsError(f"{path}: settings_version = {version!r}: expected a whole number >= 1")
+    if version > SETTINGS_VERSION:
+        raise SettingsError(
+            f"{path}: settings_version = {version} was written by a newer roomcorr "
+            f"(this one reads up to {SETTINGS_VERSION}); upgrade roomcorr"
+        )
+    while version < SETTINGS_VERSION:
+        step = MIGRATIONS.get(version)
+        if step is None:
+            raise SettingsError(
+                f"{path}: settings_version = {version} cannot be upgraded to {SETTINGS_VERSION}; "
+                f"create a new room with 'roomcorr init' and copy your choices over"
+            )
+        data = step(dict(data))
+        version += 1
+        data["settings_version"] = version
+    room_table = data.get("room", {})
+    if not isinstance(room_table, dict):
+        raise SettingsError(f"{path}: [room] must be a table")
+    for key in room_table:
+        if key not in ("name", "created_utc"):
+            raise SettingsError(
+                f"{path}: room.{key}: unknown key; known keys are name, created_utc"
+            )
+    return data
+
+
+def load_room_settings(room: Room) -> Settings:
+    """Read the room's settings file (upgrading older layouts) into :class:`Settings`.
+
+    Raises :class:`SettingsError` naming the file and key on any problem.
+    """
+    from roomcorr.settings import settings_from_dict
+
+    data = _read_room_toml(room.settings_path)
+    settings = settings_from_dict(data, source=str(room.settings_path))
+    try:
+        from roomcorr.measure.settings import MeasureSettings
+    except ImportError:
+        return settings
+    MeasureSettings.from_dict(settings.measure, source=f"{room.settings_path} [measure]")
+    return settings
+
+
+def room_name(room: Room) -> str:
+    """The room's name from its settings file (the folder name if unset)."""
+    try:
+        table = _read_room_toml(room.settings_path).get("room", {})
+    except SettingsError:
+        return room.root.name
+    return str(table.get("name", room.root.name))
+
+
+# --------------------------------------------------------------------------- lock
+
+_HELD: dict[Path, list[Any]] = {}
+
+
+def _holder_note(path: Path) -> str:
+    try:
+        info = json.loads(path.read_text(encoding="utf-8") or "{}")
+    except (OSError, json.JSONDecodeError):
+        return "another roomcorr command"
+    if not info:
+        return "another roomcorr command"
+    return (
+        f"'roomcorr {info.get('command') or '?'}' (process {info.get('pid')} on "
+        f"{info.get('host')}, since {info.get('since')})"
+    )
+
+
+@contextlib.contextmanager
+def room_lock(room: Room, command: str = "") -> Iterator[None]:
+    """Hold the room's lock for the duration of the block.
+
+    The lock is an advisory ``flock`` on ``.roomcorr-lock``; the operating
+    system releases it when the process ends in any way (even killed), so a
+    crash never leaves a stale lock. Re-entrant within one process.
+
+    Raises
+    ------
+    OutputError
+        If another process holds the lock (the message says which).
+    """
+    key = room.root.resolve()
+    if key in _HELD:
+        _HELD[key][1] += 1
+        try:
+            yield
+        finally:
+            _HELD[key][1] -= 1
+        return
+    path = key / LOCK_FILE
+    try:
+        fd = os.open(path, os.O_RDWR | os.O_CREAT, 0o644)
+    except OSError as exc:
+        raise OutputError(f"{path}: cannot create the lock file ({exc.strerror})") from None
+    try:
+        _try_lock(fd)
+    except BlockingIOError:
+        os.close(fd)
+        raise OutputError(
+            f"{room.root}: in use by {_holder_note(path)}; wait for it to finish and "
+            "try again (two commands must not write one room folder at once)"
+        ) from None
+    note = {
+        "pid": os.getpid(),
+        "host": socket.gethostname(),
+        "command": command,
+        "since": _iso(_utc_now()),
+    }
+    os.ftruncate(fd, 0)
+    os.pwrite(fd, json.dumps(note).encode(), 0)
+    _HELD[key] = [fd, 1]
+    try:
+        yield
+    finally:
+        del _HELD[key]
+        with contextlib.suppress(OSError):
+            os.ftruncate(fd, 0)
+        _unlock(fd)
+        os.close(fd)
+
+
+def _try_lock(fd: int) -> None:
+    try:
+        import fcntl
+    except ImportError:  # pragma: no cover - Windows
+        import msvcrt
+
+        try:
+            msvcrt.locking(fd, msvcrt.LK_NBLCK, 1)
+        except OSError:
+            raise BlockingIOError from None
+        return
+    fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+
+
+def _unlock(fd: int) -> None:
+    try:
+        import fcntl
+    except ImportError:  # pragma: no cover - Windows
+        import msvcrt
+
+        with contextlib.suppress(OSError):
+            os.lseek(fd, 0, 0)
+            msvcrt.locking(fd, msvcrt.LK_UNLCK, 1)
+        return
+    fcntl.flock(fd, fcntl.LOCK_UN)
+
+
+def is_locked(room: Room) -> bool:
+    """Whether some command (another process, or this one) holds the room's lock now."""
+    if room.root.resolve() in _HELD:
+        return True
+    path = room.root / LOCK_FILE
+    if not path.exists():
+        return False
+    fd = os.open(path, os.O_RDONLY)
+    try:
+        try:
+            import fcntl
+
+            fcntl.flock(fd, fcntl.LOCK_SH | fcntl.LOCK_NB)
+        except ImportError:  # pragma: no cover - Windows
+            return False
+        except BlockingIOError:
+            return True
+        fcntl.flock(fd, fcntl.LOCK_UN)
+        return False
+    finally:
+        os.close(fd)
+
+
+# --------------------------------------------------------------------------- runs
+
+
+@dataclass
+class RunInfo:
+    """One run folder of a room."""
+
+    kind: str
+    run_id: str
+    path: Path
+    complete: bool
+    marker: dict[str, Any]
+
+
+def _sha256(path: Path) -> str:
+    import hashlib
+
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for chunk in iter(lambda: fh.read(1 << 20), b""):
+            h.update(chunk)
+    return h.hexdigest()
+
+
+def _fsync_dir(path: Path) -> None:
+    with contextlib.suppress(OSError, AttributeError):
+        fd = os.open(path, os.O_RDONLY)
+        try:
+            os.fsync(fd)
+        finally:
+            os.close(fd)
+
+
+def _run_files(run_dir: Path) -> list[Path]:
+    from roomcorr.atomic import TMP_PREFIX
+
+    return sorted(
+        p
+        for p in run_dir.rglob("*")
+        if p.is_file() and p.name != COMPLETE_MARKER and not p.name.startswith(TMP_PREFIX)
+    )
+
+
+def _make_run_dir(room: Room, kind: str) -> Path:
+    """A new run folder; the name is unique across both kinds so that runs started in the
+    same second keep their order (``..._2``, ``..._3``)."""
+    stamp = _utc_now().strftime("%Y-%m-%d_%H%M%SZ")
+    parent = room.root / KINDS[kind]
+    parent.mkdir(parents=True, exist_ok=True)
+    for n in range(1, 1000):
+        name = stamp if n == 1 else f"{stamp}_{n}"
+        if any((room.root / sub / name).exists() for sub in KINDS.values()):
+            continue
+        cand = parent / name
+        try:
+            cand.mkdir()
+        except FileExistsError:
+            continue
+        return cand
+    raise OutputError(f"{parent}: cannot create a new run folder")  # pragma: no cover
+
+
+@contextlib.contextmanager
+def new_run(room: Room, kind: str, info: dict[str, Any] | None = None) -> Iterator[Path]:
+    """Create a new time-stamped run folder; mark it complete when the block succeeds.
+
+    Parameters
+    ----------
+    room : Room
+    kind : {"measurement", "design"}
+    info : dict, optional
+        Stored in the marker when the block ends; the caller may add keys to
+        it inside the block (e.g. ``info["measurement"] = run_id``).
+
+    Yields
+    ------
+    Path
+        The new, empty run folder (the room's settings file is copied in as
+        ``room-settings.toml`` so each run records the settings it started with).
+
+    Notes
+    -----
+    The room lock is held for the whole block. If the block raises (including
+    Ctrl-C), or the process is killed, the folder keeps whatever was written
+    but gets no ``complete.json``, so :func:`latest_measurement` and
+    :func:`list_runs` never take it for a finished run. Nothing is deleted.
+    """
+    if kind not in KINDS:
+        raise ValueError(f"kind must be one of {sorted(KINDS)}, not {kind!r}")
+    with room_lock(room, kind):
+        started = _utc_now()
+        run_dir = _make_run_dir(room, kind)
+        snapshot_sha = None
+        if room.settings_path.is_file():
+            data = room.settings_path.read_bytes()
+            atomic_write_bytes(run_dir / SETTINGS_SNAPSHOT, data)
+            snapshot_sha = _sha256(run_dir / SETTINGS_SNAPSHOT)
+        yield run_dir
+        files = {p.relative_to(run_dir).as_posix(): _sha256(p) for p in _run_files(run_dir)}
+        marker = {
+            "kind": kind,
+            "run_id": run_dir.name,
+            "complete": True,
+            "started_utc": _iso(started),
+            "finished_utc": _iso(_utc_now()),
+            "roomcorr_version": _version(),
+            "room_settings_sha256": snapshot_sha,
+            "command": " ".join(Path(a).name if i == 0 else a for i, a in enumerate(sys.argv)),
+            "info": dict(info or {}),
+            "files": files,
+        }
+        _fsync_dir(run_dir)
+        atomic_write_text(run_dir / COMPLETE_MARKER, json.dumps(marker, indent=2) + "\n")
+        _fsync_dir(run_dir)
+
+
+def _run_sort_key(p: Path) -> tuple[str, int]:
+    m = _RUN_ID.match(p.name)
+    if m is None:
+        return (p.name, 0)
+    return (m.group(1), int(m.group(2) or 1))
+
+
+def _read_marker(run_dir: Path) -> dict[str, Any] | None:
+    p = run_dir / COMPLETE_MARKER
+    try:
+        data = json.loads(p.read_text(encoding="utf-8"))
+    except (OSError, json.JSONDecodeError):
+        return None
+    return data if isinstance(data, dict) and data.get("complete") is True else None
+
+
+def list_runs(
+    room: Room, kind: str | None = None, include_incomplete: bool = True
+) -> list[RunInfo]:
+    """Runs of a room, oldest first (by time stamp), measurements and designs mixed.
+
+    Parameters
+    ----------
+    kind : {"measurement", "design"}, optional
+        Only runs of this kind.
+    include_incomplete : bool
+        Also list folders without a ``complete.json`` marker.
+    """
+    out: list[RunInfo] = []
+    for k, sub in KINDS.items():
+        if kind is not None and k != kind:
+            continue
+        base = room.root / sub
+        if not base.is_dir():
+            continue
+        for p in base.iterdir():
+            if not p.is_dir() or p.name.startswith("."):
+                continue
+            marker = _read_marker(p)
+            if marker is None and not include_incomplete:
+                continue
+            out.append(RunInfo(k, p.name, p, marker is not None, marker or {}))
+    return sorted(out, key=lambda r: (_run_sort_key(r.path), r.kind))
+
+
+def verify_run(run_dir: str | os.PathLike[str]) -> list[str]:
+    """Files of a complete run whose content no longer matches its marker.
+
+    Returns an empty list when every recorded file is present and has the
+    SHA-256 stored in ``complete.json``. Raises :class:`InputFileError` for a
+    folder without a marker.
+    """
+    d = Path(run_dir)
+    marker = _read_marker(d)
+    if marker is None:
+        raise InputFileError(f"{d}: not a complete run (no {COMPLETE_MARKER})")
+    bad = []
+    for rel, digest in marker.get("files", {}).items():
+        p = d / rel
+        if not p.is_file() or _sha256(p) != digest:
+            bad.append(rel)
+    return bad
+
+
+def latest_measurement(room: Room) -> Path:
+    """The newest complete measurement run of the room.
+
+    Raises
+    ------
+    InputFileError
+        If the room has no complete measurement yet.
+    """
+    runs = list_runs(room, "measurement", include_incomplete=False)
+    if not runs:
+        raise InputFileError(
+            f"{room.measurements_dir}: no complete measurement yet; run 'roomcorr measure' "
+            "in the room folder, or give impulse-response files"
+        )
+    return runs[-1].path
+
+
+def resolve_run(room: Room | None, ref: str | os.PathLike[str], kind: str = "measurement") -> Path:
+    """A run id (``2026-01-31_201502Z``, or a unique prefix of one) or a path, as a Path."""
+    p = Path(ref)
+    if p.exists():
+        return p
+    if room is not None:
+        runs = [r for r in list_runs(room, kind) if r.run_id == str(ref)] or [
+            r for r in list_runs(room, kind) if r.run_id.startswith(str(ref))
+        ]
+        if len(runs) == 1:
+            return runs[0].path
+        if len(runs) > 1:
+            raise InputFileError(
+                f"{ref}: matches {len(runs)} {kind} runs; give more of the time stamp"
+            )
+    raise InputFileError(f"{ref}: no such file, folder or {kind} run")
+
+
+_NUM = re.compile(r"(\d+)")
+
+
+def measurement_files(folder: str | os.PathLike[str]) -> list[Path]:
+    """The impulse-response WAVs of a measurement folder (or a single WAV), in position order.
+
+    Top-level ``*.wav`` files, sorted with numbers compared as numbers
+    (``pos2.wav`` before ``pos10.wav``).
+    """
+    p = Path(folder)
+    if p.is_file():
+        return [p]
+    if not p.is_dir():
+        raise InputFileError(f"{p}: no such measurement folder or file")
+    files = [q for q in p.glob("*.wav") if q.is_file()]
+    files.sort(key=lambda q: [int(t) if t.isdigit() else t.lower() for t in _NUM.split(q.name)])
+    if not files:
+        raise InputFileError(f"{p}: holds no .wav impulse responses")
+    return files
+
+
+def add_measurement(
+    room: Room, paths: list[str | os.PathLike[str]], note: str | None = None
+) -> Path:
+    """Copy impulse-response WAVs measured elsewhere into a new measurement run.
+
+    The files are checked (:func:`roomcorr.audio_io.read_ir_set`) before
+    anything is written; they are renamed ``pos1.wav``, ``pos2.wav``, ... in
+    the given order and the original names are kept in the marker.
+    """
+    from roomcorr.audio_io import read_ir_set
+
+    files: list[Path] = []
+    for item in paths:
+        files += measurement_files(item)
+    read_ir_set(files)  # raises InputFileError naming a bad file
+    info: dict[str, Any] = {"imported_from": [str(Path(f).resolve()) for f in files]}
+    if note:
+        info["note"] = note
+    with new_run(room, "measurement", info) as run_dir:
+        for i, f in enumerate(files, start=1):
+            atomic_write_bytes(run_dir / f"pos{i}.wav", Path(f).read_bytes())
+    return run_dir
+
+
+# --------------------------------------------------------------------------- history
+
+
+def _measurement_figures(run_dir: Path) -> dict[str, Any]:
+    import numpy as np
+
+    from roomcorr.analysis.compare import direct_arrival_s
+    from roomcorr.audio_io import read_ir_set
+
+    figs: dict[str, Any] = {}
+    try:
+        irs, fs, files = read_ir_set(measurement_files(run_dir))
+    except InputFileError as exc:
+        return {"problem": str(exc)}
+    figs.update(
+        positions=irs.shape[0],
+        channels=irs.shape[1],
+        sample_rate=fs,
+        length_ms=round(irs.shape[2] / fs * 1e3, 1),
+    )
+    figs["arrival_ms"] = [
+        round(
+            float(np.mean([direct_arrival_s(irs[p, c], fs) for p in range(irs.shape[0])])) * 1e3, 3
+        )
+        for c in range(irs.shape[1])
+    ]
+    figs["peak_dbfs"] = round(float(20 * np.log10(np.max(np.abs(irs)) + 1e-30)), 1)
+    record = run_dir / "measurement.json"
+    if record.is_file():
+        try:
+            data = json.loads(record.read_text(encoding="utf-8"))
+        except (OSError, json.JSONDecodeError):
+            data = {}
+        for key in ("quality_passed", "passed", "forced", "loopback", "level_dbfs"):
+            if key in data and isinstance(data[key], str | int | float | bool):
+                figs[key] = data[key]
+    return figs
+
+
+def _design_figures(run_dir: Path) -> dict[str, Any]:
+    p = run_dir / "manifest.json"
+    try:
+        man = json.loads(p.read_text(encoding="utf-8"))
+    except (OSError, json.JSONDecodeError):
+        return {"problem": f"{p}: missing or damaged"}
+    files = [e for e in man.get("files", []) if isinstance(e, dict)]
+    firs = [e for e in files if e.get("kind") == "fir"]
+    figs: dict[str, Any] = {"pre_gain_db": man.get("pre_gain_db"), "files": len(files)}
+    if firs:
+        figs["sample_rates"] = sorted({int(e["sample_rate"]) for e in firs if "sample_rate" in e})
+        for key in ("peak_gain_db", "worst_case_gain_db", "max_boost_db"):
+            vals = [float(e[key]) for e in firs if key in e]
+            if vals:
+                figs[key] = max(vals)
+    bands = [c.get("band_hz") for c in man.get("channels", []) if isinstance(c, dict)]
+    if bands and all(bands):
+        figs["band_hz"] = [min(b[0] for b in bands), max(b[1] for b in bands)]
+    target = man.get("settings", {}).get("design", {}).get("target")
+    if target:
+        figs["target"] = target
+    return figs
+
+
+def history(room: Room) -> list[dict[str, Any]]:
+    """Every run of the room, oldest first, with its key figures.
+
+    Returns
+    -------
+    list of dict
+        ``kind, run_id, path, status ("complete", "incomplete" or "running"),
+        started_utc, finished_utc, source`` (designs: the measurement used)
+        and ``figures`` (measurements: positions, channels, sample_rate,
+        length_ms, arrival_ms per channel, peak_dbfs; designs: pre_gain_db,
+        peak/worst-case gain, boost, rates, band, target).
+    """
+    runs = list_runs(room)
+    busy = is_locked(room)
+    newest_incomplete = next((r for r in reversed(runs) if not r.complete), None)
+    out = []
+    for r in runs:
+        status = "complete" if r.complete else "incomplete"
+        if not r.complete and busy and r is newest_incomplete:
+            status = "running"
+        entry: dict[str, Any] = {
+            "kind": r.kind,
+            "run_id": r.run_id,
+            "path": str(r.path),
+            "status": status,
+            "started_utc": r.marker.get("started_utc"),
+            "finished_utc": r.marker.get("finished_utc"),
+        }
+        info = r.marker.get("info", {})
+        if r.kind == "design":
+            entry["source"] = info.get("measurement")
+        if info.get("note"):
+            entry["note"] = info["note"]
+        if r.complete:
+            entry["figures"] = (
+                _measurement_figures(r.path) if r.kind == "measurement" else _design_figures(r.path)
+            )
+        out.append(entry)
+    return out
+
+
+# --------------------------------------------------------------------------- compare
+
+
+def _channel_names(folder: Path, n: int) -> list[str]:
+    record = folder / "measurement.json"
+    if folder.is_dir() and record.is_file():
+        with contextlib.suppress(OSError, json.JSONDecodeError, AttributeError):
+            names = json.loads(record.read_text(encoding="utf-8")).get("channel_names")
+            if isinstance(names, list) and len(names) == n:
+                return [str(x) for x in names]
+    from roomcorr.pipeline import default_channel_names
+
+    return default_channel_names(n)
+
+
+def _run_id_of(path: Path, room: Room | None) -> str | None:
+    if room is None:
+        return None
+    with contextlib.suppress(ValueError):
+        rel = path.resolve().relative_to(room.measurements_dir.resolve())
+        return rel.parts[0] if rel.parts else None
+    return None
+
+
+def _design_for(room: Room, meas_id: str | None, before: Path) -> Path | None:
+    """The newest complete design made from measurement ``meas_id`` (else the newest
+    design finished before run folder ``before`` was started)."""
+    designs = list_runs(room, "design", include_incomplete=False)
+    if meas_id is not None:
+        own = [
+            d
+            for d in designs
+            if str(d.marker.get("info", {}).get("measurement", "")).rstrip("/").split("/")[-1]
+            == meas_id
+        ]
+        if own:
+            return own[-1].path
+    key = _run_sort_key(before)
+    older = [d for d in designs if _run_sort_key(d.path) < key]
+    return older[-1].path if older else None
+
+
+def _fit_check(design_dir: Path, irs_b, fs_b: int) -> dict[str, Any]:
+    """Old filters (from ``design_dir``) vs a fresh design on the new measurement."""
+    import numpy as np
+
+    from roomcorr.analysis.compare import filter_fit, fir_response_db
+    from roomcorr.export import load_design_curves, read_manifest
+    from roomcorr.pipeline import run_design
+    from roomcorr.settings import settings_from_dict
+
+    old = load_design_curves(design_dir)
+    manifest = read_manifest(design_dir)
+    settings = settings_from_dict(manifest.get("settings", {}), source=str(design_dir))
+    rates = sorted(old["firs"])
+    if not rates:
+        return {"available": False, "reason": f"{design_dir}: holds no FIR filters"}
+    rate = fs_b if fs_b in old["firs"] else min(rates, key=lambda r: abs(r - fs_b))
+    settings.design.sample_rates = (rate,)
+    fresh = run_design(irs_b, fs_b, settings)
+    old_firs = old["firs"][rate]
+    if old_firs.shape[0] != len(fresh.channels):
+        return {
+            "available": False,
+            "reason": f"{design_dir}: {old_firs.shape[0]} channels, new measurement has "
+            f"{len(fresh.channels)}",
+        }
+    freq = fresh.freq_hz
+    per_channel = []
+    for ch in fresh.channels:
+        old_db = fir_response_db(old_firs[ch.index], rate, freq)
+        new_db = fir_response_db(fresh.firs[rate][ch.index], rate, freq)
+        fit = filter_fit(freq, ch.average_db, old_db, new_db, ch.target_db, ch.band_hz)
+        fit.update(index=ch.index, name=ch.name, band_hz=[round(x, 1) for x in ch.band_hz])
+        per_channel.append(fit)
+    return {
+        "available": True,
+        "design": str(design_dir),
+        "sample_rate": rate,
+        "still_fit": bool(np.all([c["still_fit"] for c in per_channel])),
+        "channels": per_channel,
+    }
+
+
+def compare_measurements(
+    a: str | os.PathLike[str] | None = None,
+    b: str | os.PathLike[str] | None = None,
+    room: Room | None = None,
+    temperature_c: float | None = None,
+    fit_check: bool = True,
+    with_curves: bool = False,
+) -> dict[str, Any]:
+    """Compare two measurements (folders, WAV files or run ids of ``room``).
+
+    Parameters
+    ----------
+    a, b : path-like or str, optional
+        Before and after. Default: the room's last two complete measurements.
+    room : Room, optional
+        Room for run ids, settings (temperature) and the old design.
+    temperature_c : float, optional
+        Overrides the settings' ``design.temperature_c`` (default 20 °C).
+    fit_check : bool
+        Also judge whether the design made from ``a`` still fits ``b``.
+
+    Returns
+    -------
+    dict
+        The result of :func:`roomcorr.analysis.compare.compare_sets` plus
+        ``before``, ``after``, ``speed_of_sound_formula`` and ``filter_fit``.
+    """
+    from roomcorr.analysis.compare import compare_sets
+    from roomcorr.audio_io import read_ir_set
+
+    if a is None or b is None:
+        if room is None:
+            raise InputFileError("compare: give two measurements (folders or IR files)")
+        runs = list_runs(room, "measurement", include_incomplete=False)
+        if len(runs) < 2:
+            raise InputFileError(
+                f"{room.measurements_dir}: {len(runs)} complete measurement(s); compare needs "
+                "two (or give two folders)"
+            )
+        pa, pb = runs[-2].path, runs[-1].path
+    else:
+        pa, pb = resolve_run(room, a), resolve_run(room, b)
+    if temperature_c is None:
+        temperature_c = load_room_settings(room).design.temperature_c if room else 20.0
+    irs_a, fs_a, _ = read_ir_set(measurement_files(pa))
+    irs_b, fs_b, _ = read_ir_set(measurement_files(pb))
+    if irs_a.shape[1] != irs_b.shape[1]:
+        raise InputFileError(
+            f"{pb}: {irs_b.shape[1]} loudspeaker channels, but {pa} has {irs_a.shape[1]}; "
+            "compare measurements of the same loudspeakers"
+        )
+    names = _channel_names(pb if pb.is_dir() else pb.parent, irs_b.shape[1])
+    res = compare_sets(irs_a, fs_a, irs_b, fs_b, temperature_c, names, with_curves=with_curves)
+    res["before"] = str(pa)
+    res["after"] = str(pb)
+    res["speed_of_sound_formula"] = (
+        "c = 343.2 * sqrt((t + 273.15) / 293.15) m/s (ISO 9613-1, annex A)"
+    )
+    fit: dict[str, Any] = {"available": False, "reason": "not asked for"}
+    if fit_check:
+        design = _design_for(room, _run_id_of(pa, room), pb) if room is not None else None
+        if design is None:
+            fit = {"available": False, "reason": "no earlier design found in the room folder"}
+        else:
+            try:
+                fit = _fit_check(design, irs_b, fs_b)
+            except (OutputError, SettingsError, InputFileError) as exc:
+                fit = {"available": False, "reason": str(exc)}
+    res["filter_fit"] = fit
+    return res
