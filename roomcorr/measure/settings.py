@@ -1,0 +1,118 @@
+"""Measurement settings (the ``[measure]`` table of a settings file).
+
+Levels start low and are capped: the sweep's peak defaults to
+``DEFAULT_LEVEL_DBFS`` and may not exceed ``LEVEL_CAP_DBFS`` unless
+``allow_loud`` is set explicitly.
+"""
+
+from __future__ import annotations
+
+from dataclasses import asdict, dataclass, fields
+from typing import Any
+
+from roomcorr.errors import SafetyError, SettingsError
+
+DEFAULT_LEVEL_DBFS = -20.0
+LEVEL_CAP_DBFS = -6.0
+
+
+@dataclass
+class MeasureSettings:
+    """Everything a measurement run needs besides the output folder.
+
+    Channel numbers are 1-based as printed on interfaces.
+    """
+
+    sample_rate: int = 48000
+    f_start_hz: float = 20.0
+    f_end_hz: float = 20000.0
+    sweep_s: float = 5.0            # requested; the synchronised sweep is a little shorter/longer
+    level_dbfs: float = DEFAULT_LEVEL_DBFS   # sweep peak level
+    allow_loud: bool = False        # needed for level_dbfs above LEVEL_CAP_DBFS
+    fade_in_s: float = 0.05
+    fade_out_s: float = 0.005
+    noise_s: float = 1.0            # noise-only recording before the first sweep
+    tail_s: float = 1.5             # silence after each sweep (decay + latency)
+    repeats: int = 2
+    ir_s: float = 1.0               # length of the saved impulse responses
+    harmonics: int = 5              # highest harmonic order analysed
+    method: str = "division"        # deconvolution inverse: "division" or "analytic"
+    test_level_dbfs: float = -40.0  # quiet level check before the first sweep
+    test_s: float = 1.0
+    device: str | int | None = None
+    outputs: tuple[int, ...] = (1, 2)
+    input: int = 1
+    loopback: tuple[int, int] | None = None   # (output, input) joined by a cable
+    positions: int = 1
+    blocksize: int = 0              # 0 = let the audio system choose
+    # gate limits
+    clip_dbfs: float = -0.1
+    min_peak_dbfs: float = -50.0
+    min_snr_db: float = 20.0
+    max_dc_offset: float = 0.01
+    min_arrival_db: float = 25.0
+    max_repeat_disagreement_db: float = -20.0
+
+    def validate(self) -> None:
+        """Check ranges and the level cap; raise SettingsError / SafetyError."""
+        if self.sample_rate < 8000:
+            raise SettingsError(f"measure.sample_rate = {self.sample_rate}: use at least 8000 Hz")
+        if not 0 < self.f_start_hz < self.f_end_hz < self.sample_rate / 2:
+            raise SettingsError(
+                f"measure sweep band {self.f_start_hz}..{self.f_end_hz} Hz: need "
+                f"0 < f_start_hz < f_end_hz < {self.sample_rate / 2:g} (half the sample rate)"
+            )
+        if not 0.1 <= self.sweep_s <= 120:
+            raise SettingsError(f"measure.sweep_s = {self.sweep_s}: use 0.1 to 120 s")
+        if self.level_dbfs > 0:
+            raise SafetyError(f"measure.level_dbfs = {self.level_dbfs}: cannot exceed 0 dBFS")
+        if self.level_dbfs > LEVEL_CAP_DBFS and not self.allow_loud:
+            raise SafetyError(
+                f"measure.level_dbfs = {self.level_dbfs} dBFS is above the {LEVEL_CAP_DBFS} dBFS "
+                "cap; start lower, or pass --allow-loud if you are sure (protect your hearing "
+                "and the loudspeakers)"
+            )
+        if self.test_level_dbfs > min(self.level_dbfs, LEVEL_CAP_DBFS):
+            raise SafetyError("measure.test_level_dbfs must be below the sweep level")
+        if self.repeats < 1 or self.positions < 1 or self.harmonics < 1:
+            raise SettingsError("measure.repeats, positions and harmonics must be at least 1")
+        if self.ir_s <= 0 or self.noise_s < 0.1 or self.tail_s < self.ir_s + 0.1:
+            raise SettingsError(
+                "measure: need ir_s > 0, noise_s >= 0.1 s and tail_s >= ir_s + 0.1 s "
+                "(the silence after a sweep must hold the room's decay and the latency)"
+            )
+        if self.method not in ("division", "analytic"):
+            raise SettingsError(f"measure.method = {self.method!r}: use 'division' or 'analytic'")
+        chans = list(self.outputs) + [self.input]
+        if self.loopback is not None:
+            if len(self.loopback) != 2:
+                raise SettingsError("--loopback needs OUT,IN (two channel numbers)")
+            chans += list(self.loopback)
+            if self.loopback[0] in self.outputs:
+                raise SettingsError("--loopback output must not be a loudspeaker output")
+            if self.loopback[1] == self.input:
+                raise SettingsError("--loopback input must differ from the microphone input")
+        if not self.outputs or any(int(c) < 1 for c in chans):
+            raise SettingsError("channel numbers start at 1 (--outputs, --input, --loopback)")
+
+    def to_dict(self) -> dict[str, Any]:
+        d = asdict(self)
+        d["outputs"] = list(self.outputs)
+        d["loopback"] = list(self.loopback) if self.loopback else None
+        return d
+
+    @classmethod
+    def from_dict(cls, data: dict[str, Any], source: str = "[measure]") -> MeasureSettings:
+        """Build from a settings table; unknown keys are an error naming ``source``."""
+        names = {f.name for f in fields(cls)}
+        unknown = set(data) - names
+        if unknown:
+            raise SettingsError(f"{source}: unknown measure keys {sorted(unknown)}")
+        d = dict(data)
+        if "outputs" in d:
+            d["outputs"] = tuple(int(c) for c in d["outputs"])
+        if d.get("loopback") is not None:
+            d["loopback"] = tuple(int(c) for c in d["loopback"])
+        s = cls(**d)
+        s.validate()
+        return s
