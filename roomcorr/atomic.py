@@ -34,6 +34,10 @@ def atomic_path(path: str | os.PathLike[str]) -> Iterator[Path]:
     fd, tmp = tempfile.mkstemp(prefix=TMP_PREFIX, suffix=dest.suffix, dir=dest.parent)
     os.close(fd)
     tmp_path = Path(tmp)
+    # mkstemp creates mode 0600; give the file the usual permissions (umask applied).
+    umask = os.umask(0)
+    os.umask(umask)
+    os.chmod(tmp_path, 0o666 & ~umask)
     try:
         yield tmp_path
         with open(tmp_path, "rb+") as fh:

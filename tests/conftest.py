@@ -2,8 +2,13 @@
 
 from __future__ import annotations
 
+from pathlib import Path
+
 import numpy as np
 import pytest
+
+#: The repository root (tests read the bundled demo measurements from it).
+REPO = Path(__file__).resolve().parent.parent
 
 
 def synthetic_ir(

@@ -1,0 +1,278 @@
+"""Command line: parse, call, print. No signal processing here.
+
+Every :class:`~roomcorr.errors.RoomcorrError` becomes one line on standard
+error and exit status 2. Subcommands are listed in ``_COMMANDS`` as
+``(name, add_parser_function, run_function)``.
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+from collections.abc import Callable
+from pathlib import Path
+from typing import Any, NoReturn
+
+from roomcorr.errors import RoomcorrError, SettingsError
+
+PROG = "roomcorr"
+
+
+class _Parser(argparse.ArgumentParser):
+    """ArgumentParser whose usage errors are one line and exit status 2."""
+
+    def error(self, message: str) -> NoReturn:
+        self.exit(2, f"{self.prog}: error: {message} (see --help)\n")
+
+
+def _print_cautions() -> None:
+    from roomcorr.design.safety import CAUTIONS
+
+    for line in CAUTIONS:
+        print(line, file=sys.stderr)
+
+
+def _float_list(text: str) -> list[float]:
+    try:
+        return [float(x) for x in text.split(",") if x.strip()]
+    except ValueError:
+        raise argparse.ArgumentTypeError(
+            f"expected comma-separated numbers, got {text!r}"
+        ) from None
+
+
+def _int_list(text: str) -> list[int]:
+    return [int(round(x)) for x in _float_list(text)]
+
+
+# --------------------------------------------------------------------------- design
+
+
+def _add_design_options(p: argparse.ArgumentParser) -> None:
+    g = p.add_argument_group("design options (override the settings file)")
+    g.add_argument("--settings", metavar="FILE", help="TOML settings file or design preset name")
+    g.add_argument(
+        "--target", metavar="NAME|FILE", help="target preset (flat, gentle-tilt, ...) or text file"
+    )
+    g.add_argument("--band-lo", type=float, metavar="HZ", help="lowest corrected frequency")
+    g.add_argument("--band-hi", type=float, metavar="HZ", help="highest corrected frequency")
+    g.add_argument("--max-boost", type=float, metavar="DB", help="boost cap (default 4 dB)")
+    g.add_argument("--max-cut", type=float, metavar="DB", help="cut cap (default 15 dB)")
+    g.add_argument(
+        "--taps", type=int, metavar="N", help="FIR taps at 48 kHz (other rates: same duration)"
+    )
+    g.add_argument(
+        "--rates", type=_int_list, metavar="R,R", help="output sample rates (44100,48000,96000)"
+    )
+    g.add_argument("--ceiling", type=float, metavar="DB", help="peak-gain ceiling (default 0 dB)")
+    g.add_argument(
+        "--allow-gain", action="store_true", help="permit a ceiling above 0 dB (risk of clipping)"
+    )
+    g.add_argument("--calibration", metavar="FILE", help="microphone calibration text file")
+    g.add_argument("--weights", type=_float_list, metavar="W,W", help="weight per position")
+    g.add_argument("--iir", action="store_true", help="also write biquad sets")
+    g.add_argument("--iir-sections", type=int, metavar="N", help="most biquads per channel (10)")
+    p.add_argument("--replace", action="store_true", help="write over an earlier design in --out")
+
+
+_OPTION_KEYS = {
+    "target": "target",
+    "band_lo": "band_lo_hz",
+    "band_hi": "band_hi_hz",
+    "max_boost": "max_boost_db",
+    "max_cut": "max_cut_db",
+    "taps": "taps",
+    "rates": "sample_rates",
+    "ceiling": "ceiling_db",
+    "calibration": "calibration",
+    "weights": "position_weights",
+    "iir_sections": "iir_sections",
+}
+
+
+def settings_from_args(args: argparse.Namespace, base_file: str | Path | None = None) -> Any:
+    """Settings: defaults, then the settings file, then command-line options."""
+    from roomcorr.settings import Settings, design_from_dict, load_settings
+
+    file = getattr(args, "settings", None) or base_file
+    settings = load_settings(file) if file else Settings()
+    overrides: dict[str, Any] = {}
+    for opt, key in _OPTION_KEYS.items():
+        value = getattr(args, opt, None)
+        if value is not None:
+            overrides[key] = value
+    if getattr(args, "allow_gain", False):
+        overrides["allow_gain"] = True
+    if getattr(args, "iir", False):
+        overrides["iir"] = True
+    try:
+        settings.design = design_from_dict(overrides, base=settings.design)
+    except SettingsError as exc:
+        raise SettingsError(f"{exc} (from the command line)") from None
+    return settings
+
+
+def _print_design_summary(result: Any, out: Path, n_files: int) -> None:
+    import numpy as np
+
+    print(f"Design written to {out}  ({n_files} files, manifest.json lists them)")
+    print(f"Common pre-gain: {result.pre_gain_db:+.2f} dB (same for every channel)")
+    for ch in result.channels:
+        lo, hi = ch.band_hz
+        inband = (result.freq_hz >= lo) & (result.freq_hz <= hi)
+        corr = ch.correction_db[inband]
+        withheld = ch.boost_withheld_db[inband]
+        stats = [s for s in result.stats if s.channel == ch.index]
+        peak = max(s.peak_gain_db for s in stats)
+        worst = max(s.worst_case_gain_db for s in stats)
+        boost, cut = max(float(corr.max()), 0.0), min(float(corr.min()), 0.0)
+        print(
+            f"  {ch.name:>6}: band {lo:6.0f} Hz - {hi:6.0f} Hz | largest boost {boost:4.1f} dB, "
+            f"largest cut {cut:5.1f} dB | peak gain {peak:+.2f} dB, worst-case gain {worst:+.2f} dB"
+        )
+        if withheld.size and withheld.max() > 1.0:
+            i = int(np.argmax(withheld))
+            f0 = result.freq_hz[inband][i]
+            print(
+                f"          boost withheld: up to {withheld.max():.1f} dB (at {f0:.0f} Hz), "
+                "a dip that boosting cannot fix safely"
+            )
+    if result.settings.design.ceiling_db > 0:
+        print(
+            f"WARNING: ceiling {result.settings.design.ceiling_db:+g} dB allows filter gain; "
+            "lower the player's volume to avoid clipping.",
+            file=sys.stderr,
+        )
+
+
+def _design_and_write(
+    ir_paths: list[str], out: Path, settings: Any, replace: bool, extra: dict | None = None
+) -> tuple[Any, list[dict]]:
+    from roomcorr.audio_io import read_ir_set
+    from roomcorr.export import write_design
+    from roomcorr.pipeline import run_design
+
+    irs, fs, files = read_ir_set(ir_paths)
+    result = run_design(irs, fs, settings)
+    info = {"measurements": [str(f) for f in files]}
+    if extra:
+        info.update(extra)
+    entries = write_design(result, out, replace=replace, extra=info)
+    return result, entries
+
+
+def _add_design(sub: Any) -> argparse.ArgumentParser:
+    p = sub.add_parser(
+        "design",
+        help="design correction filters from impulse-response WAV files",
+        description="Design minimum-phase FIR correction filters (one WAV per channel and "
+        "sample rate) from impulse responses: one WAV per microphone position, one channel "
+        "per loudspeaker.",
+    )
+    p.add_argument("irs", nargs="+", metavar="IR", help="impulse-response WAV files or folders")
+    p.add_argument("--out", required=True, metavar="DIR", help="output folder")
+    _add_design_options(p)
+    return p
+
+
+def _run_design(args: argparse.Namespace) -> int:
+    settings = settings_from_args(args)
+    _print_cautions()
+    out = Path(args.out)
+    result, entries = _design_and_write(args.irs, out, settings, args.replace)
+    _print_design_summary(result, out, len(entries) + 1)
+    return 0
+
+
+# --------------------------------------------------------------------------- demo
+
+
+def _add_demo(sub: Any) -> argparse.ArgumentParser:
+    p = sub.add_parser(
+        "demo",
+        help="design filters for the bundled demo room and print a summary",
+        description="Run the whole design on the invented demo room's measurements.",
+    )
+    p.add_argument(
+        "--out", default="roomcorr-demo", metavar="DIR", help="output folder (roomcorr-demo)"
+    )
+    _add_design_options(p)
+    return p
+
+
+def _demo_measurements() -> tuple[list[str], str]:
+    """The bundled demo folder, or a fresh synthesis of the same room."""
+    import tempfile
+
+    for cand in (
+        Path.cwd() / "measurements_demo",
+        Path(__file__).resolve().parent.parent / "measurements_demo",
+    ):
+        if cand.is_dir() and any(cand.glob("*.wav")):
+            return [str(cand)], f"bundled measurements in {cand}"
+    from roomcorr.demo import write_demo_measurements
+
+    tmp = Path(tempfile.mkdtemp(prefix="roomcorr-demo-"))
+    write_demo_measurements(tmp)
+    return [str(tmp)], f"demo room synthesised afresh in {tmp}"
+
+
+def _run_demo(args: argparse.Namespace) -> int:
+    from roomcorr.export import MANIFEST, read_manifest
+
+    settings = settings_from_args(args)
+    _print_cautions()
+    paths, where = _demo_measurements()
+    print(f"Demo: an invented living room, {where}")
+    out = Path(args.out)
+    replace = args.replace
+    if (out / MANIFEST).exists() and read_manifest(out).get("demo"):
+        replace = True  # the demo may refresh its own earlier output
+    result, entries = _design_and_write(paths, out, settings, replace, extra={"demo": True})
+    _print_design_summary(result, out, len(entries) + 1)
+    return 0
+
+
+# --------------------------------------------------------------------------- main
+
+_COMMANDS: list[tuple[str, Callable[[Any], argparse.ArgumentParser], Callable[..., int]]] = [
+    ("demo", _add_demo, _run_demo),
+    ("design", _add_design, _run_design),
+]
+
+
+def build_parser() -> argparse.ArgumentParser:
+    """The full argument parser (all subcommands)."""
+    from roomcorr import __version__
+
+    parser = _Parser(
+        prog=PROG,
+        description="Measure a listening room and design safe correction filters. "
+        "Start playback quietly: filters are capped at 0 dB peak gain by default.",
+    )
+    parser.add_argument("--version", action="version", version=f"{PROG} {__version__}")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
+    sub.required = True
+    for _name, add, _run in _COMMANDS:
+        add(sub)
+    return parser
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Entry point of the ``roomcorr`` command; returns the exit status."""
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    runners = {name: run for name, _add, run in _COMMANDS}
+    try:
+        return runners[args.command](args)
+    except RoomcorrError as exc:
+        msg = " ".join(str(exc).split())
+        print(f"{PROG}: error: {msg}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print(f"{PROG}: interrupted; files already complete were kept", file=sys.stderr)
+        return 130
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

@@ -1,0 +1,241 @@
+"""The design pipeline: impulse responses in, safe FIR filters out.
+
+``run_design`` follows the data flow of DEVELOPERS.md: align and window,
+smooth, average positions, target, correction curve, FIR synthesis per
+sample rate, safety. It reads no files itself except the target preset or
+target/calibration text files named in the settings (resolved up front by
+:func:`resolve_target` and :func:`resolve_calibration`).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from roomcorr.analysis.average import power_average
+from roomcorr.analysis.onset import find_onset
+from roomcorr.analysis.smoothing import smooth_log_grid, variable_width_oct
+from roomcorr.analysis.window import fdw_power
+from roomcorr.audio_io import read_curve_file
+from roomcorr.design.correction import align_target, correction_curve
+from roomcorr.design.fir import default_n_taps, synthesize_fir
+from roomcorr.design.safety import FilterStats, apply_safety
+from roomcorr.design.target import auto_band, target_from_points, target_from_table
+from roomcorr.errors import InputFileError, SettingsError
+from roomcorr.grid import interp_log, log_grid, points_per_octave_of
+from roomcorr.settings import Settings, find_preset, read_toml
+
+__all__ = [
+    "ChannelDesign",
+    "DesignResult",
+    "FilterStats",
+    "analyse_positions",
+    "resolve_calibration",
+    "resolve_target",
+    "run_design",
+]
+
+#: Smoothing used to find the band edges (octaves).
+BAND_SMOOTHING_OCT = 1.0
+
+
+@dataclass
+class ChannelDesign:
+    """Curves of one loudspeaker channel (arrays on the log grid)."""
+
+    index: int
+    name: str
+    arrival_s: np.ndarray
+    measured_db: np.ndarray
+    average_db: np.ndarray
+    spread_db: np.ndarray
+    target_db: np.ndarray
+    raw_correction_db: np.ndarray
+    correction_db: np.ndarray
+    boost_withheld_db: np.ndarray
+    band_hz: tuple[float, float]
+
+
+@dataclass
+class DesignResult:
+    """Everything a design produced; see DEVELOPERS.md for the fields' meaning."""
+
+    freq_hz: np.ndarray
+    fs_in: int
+    irs: np.ndarray
+    channels: list[ChannelDesign]
+    firs: dict[int, np.ndarray]
+    pre_gain_db: float
+    stats: list[FilterStats]
+    settings: Settings
+
+
+def default_channel_names(n: int) -> list[str]:
+    """``left``/``right`` for a pair, ``ch1``... otherwise (and beyond two)."""
+    if n == 1:
+        return ["mono"]
+    base = ["left", "right"]
+    return [base[i] if i < 2 and n == 2 else f"ch{i + 1}" for i in range(n)]
+
+
+def resolve_target(freq_hz: np.ndarray, spec: str) -> np.ndarray:
+    """Target shape in dB from a preset name or a frequency/dB text file."""
+    preset = find_preset(spec)
+    if preset is not None:
+        data = read_toml(preset)
+        table = data.get("target")
+        if not isinstance(table, dict):
+            raise SettingsError(f"{preset}: preset {spec!r} has no [target] table")
+        return target_from_table(freq_hz, table, str(preset))
+    p = Path(spec)
+    if p.suffix.lower() == ".toml" and p.is_file():
+        table = read_toml(p).get("target")
+        if not isinstance(table, dict):
+            raise SettingsError(f"{p}: no [target] table")
+        return target_from_table(freq_hz, table, str(p))
+    if not p.is_file():
+        from roomcorr.settings import preset_names
+
+        raise SettingsError(
+            f"--target {spec}: neither a preset ({', '.join(preset_names())}) nor a file"
+        )
+    pts_hz, pts_db = read_curve_file(p, "target")
+    return target_from_points(freq_hz, pts_hz, pts_db)
+
+
+def resolve_calibration(freq_hz: np.ndarray, path: str | None) -> np.ndarray:
+    """Microphone calibration in dB on the grid (zeros when none is given)."""
+    if not path:
+        return np.zeros_like(freq_hz)
+    cal_hz, cal_db = read_curve_file(path, "calibration")
+    if np.max(np.abs(cal_db)) > 30:
+        raise InputFileError(f"{path}: calibration values beyond ±30 dB; is this the right file?")
+    return interp_log(freq_hz, cal_hz, cal_db)
+
+
+def analyse_positions(
+    irs: np.ndarray, fs: int, freq_hz: np.ndarray, calibration_db: np.ndarray | None = None
+) -> tuple[np.ndarray, np.ndarray]:
+    """Windowed, smoothed level of every position and channel.
+
+    Parameters
+    ----------
+    irs : ndarray, shape (n_positions, n_channels, n_samples)
+    fs : int
+    freq_hz : ndarray, shape (n_freqs,)
+    calibration_db : ndarray, shape (n_freqs,), optional
+        Microphone response, subtracted from the measurement.
+
+    Returns
+    -------
+    measured_db : ndarray, shape (n_positions, n_channels, n_freqs)
+    arrival_s : ndarray, shape (n_positions, n_channels)
+    """
+    n_pos, n_ch, _ = irs.shape
+    ppo = points_per_octave_of(freq_hz)
+    width = variable_width_oct(freq_hz)
+    measured = np.empty((n_pos, n_ch, freq_hz.size))
+    arrival = np.empty((n_pos, n_ch))
+    for p in range(n_pos):
+        for c in range(n_ch):
+            onset = find_onset(irs[p, c], fs)
+            arrival[p, c] = onset / fs
+            power = fdw_power(irs[p, c], fs, onset, freq_hz)
+            measured[p, c] = 10 * np.log10(np.maximum(smooth_log_grid(power, ppo, width), 1e-30))
+    if calibration_db is not None:
+        measured -= calibration_db
+    return measured, arrival
+
+
+def fir_taps_for(fs: int, taps_48k: int | None, band_lo_hz: float) -> int:
+    """FIR length at ``fs``: the 48 kHz length scaled to keep its duration, or automatic."""
+    if taps_48k is None:
+        return default_n_taps(fs, band_lo_hz)
+    return max(256, int(round(taps_48k * fs / 48000)))
+
+
+def run_design(
+    irs: np.ndarray,
+    fs: int,
+    settings: Settings,
+    channel_names: list[str] | None = None,
+) -> DesignResult:
+    """Design correction filters for every channel of a measurement set.
+
+    Parameters
+    ----------
+    irs : ndarray, shape (n_positions, n_channels, n_samples)
+        One impulse response per microphone position and loudspeaker.
+    fs : int
+        Sample rate of ``irs``.
+    settings : Settings
+    channel_names : list of str, optional
+
+    Returns
+    -------
+    DesignResult
+    """
+    d = settings.design
+    n_pos, n_ch, _ = irs.shape
+    names = channel_names or default_channel_names(n_ch)
+    weights = None
+    if d.position_weights is not None:
+        if len(d.position_weights) != n_pos:
+            raise SettingsError(
+                f"design.position_weights has {len(d.position_weights)} values for "
+                f"{n_pos} positions; give one weight per position"
+            )
+        weights = np.asarray(d.position_weights)
+    freq = log_grid()
+    ppo = points_per_octave_of(freq)
+    target_shape = resolve_target(freq, d.target)
+    cal = resolve_calibration(freq, d.calibration)
+    measured, arrival = analyse_positions(irs, fs, freq, cal)
+    channels: list[ChannelDesign] = []
+    for c in range(n_ch):
+        avg, spread = power_average(measured[:, c], weights)
+        wide = 10 * np.log10(smooth_log_grid(10 ** (avg / 10), ppo, BAND_SMOOTHING_OCT))
+        lo, hi = auto_band(freq, wide)
+        band = (d.band_lo_hz or lo, d.band_hi_hz or min(hi, fs / 2 * 0.95))
+        if band[0] >= band[1]:
+            raise SettingsError(
+                f"channel {names[c]}: correction band {band[0]:.0f}-{band[1]:.0f} Hz is empty; "
+                "set --band-lo/--band-hi"
+            )
+        target = align_target(freq, avg, target_shape, band)
+        corr = correction_curve(freq, avg, spread, target, band, d.max_boost_db, d.max_cut_db)
+        channels.append(
+            ChannelDesign(
+                index=c,
+                name=names[c],
+                arrival_s=arrival[:, c].copy(),
+                measured_db=measured[:, c].copy(),
+                average_db=avg,
+                spread_db=spread,
+                target_db=target,
+                raw_correction_db=corr.raw_db,
+                correction_db=corr.correction_db,
+                boost_withheld_db=corr.boost_withheld_db,
+                band_hz=(float(band[0]), float(band[1])),
+            )
+        )
+    lowest = min(ch.band_hz[0] for ch in channels)
+    firs: dict[int, np.ndarray] = {}
+    for rate in d.sample_rates:
+        n_taps = fir_taps_for(rate, d.taps, lowest)
+        firs[rate] = np.stack(
+            [synthesize_fir(freq, ch.correction_db, rate, n_taps) for ch in channels]
+        )
+    firs, pre_gain, stats = apply_safety(firs, d.ceiling_db, d.max_boost_db)
+    return DesignResult(
+        freq_hz=freq,
+        fs_in=fs,
+        irs=irs,
+        channels=channels,
+        firs=firs,
+        pre_gain_db=pre_gain,
+        stats=stats,
+        settings=settings,
+    )
