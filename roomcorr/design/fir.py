@@ -24,7 +24,7 @@ from roomcorr.grid import interp_log
 #: Shortest filter :func:`default_n_taps` returns.
 MIN_DEFAULT_N_TAPS = 4096
 
-#: Bins per octave-ish resolution rule: fs / n_taps must not exceed f_low / this.
+#: Resolution rule of :func:`default_n_taps`: fs / n_taps must not exceed f_low_hz / this.
 RESOLUTION_FACTOR = 6
 
 #: Fraction of the filter length faded out by the half-Hann tail window.
