@@ -225,6 +225,13 @@ def test_log_grid_variable_width_matches_definition():
     )
 
 
+def test_log_grid_zero_and_sub_cell_width_keep_values():
+    # A window no wider than one grid cell lies inside that cell (piecewise constant).
+    v = np.random.default_rng(4).random(300)
+    np.testing.assert_array_equal(smooth_log_grid(v, 96, 0.0), v)
+    np.testing.assert_allclose(smooth_log_grid(v, 96, 1 / 96), v, rtol=1e-12)
+
+
 def test_log_grid_constant_array_equals_scalar_width():
     rng = np.random.default_rng(5)
     v = rng.random((3, 400))

@@ -41,7 +41,11 @@ VW_WIDE_HZ = 1000.0
 
 
 def _window_mean(
-    values: np.ndarray, edges: np.ndarray, centres: np.ndarray, half: np.ndarray
+    values: np.ndarray,
+    edges: np.ndarray,
+    centres: np.ndarray,
+    half: np.ndarray,
+    unit_cells: bool = False,
 ) -> np.ndarray:
     """Mean of piecewise-constant ``values`` over windows ``centres -/+ half``.
 
@@ -55,6 +59,9 @@ def _window_mean(
         Window centres and half-widths in the unit of ``edges``; every window
         must lie within ``[edges[0], edges[-1]]``. A zero half-width returns
         the value of the cell holding the centre.
+    unit_cells : bool
+        True when ``edges`` is ``arange(n + 1) - 0.5``: the cells holding the
+        window ends are then found by rounding (O(m)) instead of a search.
 
     Returns
     -------
@@ -63,8 +70,12 @@ def _window_mean(
     n = values.shape[-1]
     lo = centres - half
     hi = centres + half
-    j_lo = np.clip(np.searchsorted(edges, lo, side="right") - 1, 0, n - 1)
-    j_hi = np.clip(np.searchsorted(edges, hi, side="left") - 1, 0, n - 1)
+    if unit_cells:
+        j_lo = np.clip(np.floor(lo + 0.5).astype(np.intp), 0, n - 1)
+        j_hi = np.clip(np.ceil(hi + 0.5).astype(np.intp) - 1, 0, n - 1)
+    else:
+        j_lo = np.clip(np.searchsorted(edges, lo, side="right") - 1, 0, n - 1)
+        j_hi = np.clip(np.searchsorted(edges, hi, side="left") - 1, 0, n - 1)
     j_hi = np.maximum(j_hi, j_lo)  # zero width exactly on an edge
     weighted = values * np.diff(edges)
     zero = np.zeros(values.shape[:-1] + (1,))
@@ -303,7 +314,7 @@ def smooth_log_grid(
     edges = np.arange(n + 1, dtype=float) - 0.5
     half = _half_widths(width_oct, n) * float(points_per_octave)
     half = np.minimum(half, np.minimum(centres + 0.5, n - 0.5 - centres))
-    return _window_mean(v, edges, centres, half)
+    return _window_mean(v, edges, centres, half, unit_cells=True)
 
 
 def variable_width_oct(freq_hz: np.ndarray) -> np.ndarray:
