@@ -784,10 +784,32 @@ def _measurement_figures(run_dir: Path) -> dict[str, Any]:
             data = json.loads(record.read_text(encoding="utf-8"))
         except (OSError, json.JSONDecodeError):
             data = {}
-        for key in ("quality_passed", "passed", "forced", "loopback", "level_dbfs"):
-            if key in data and isinstance(data[key], str | int | float | bool):
-                figs[key] = data[key]
+        figs.update(_record_figures(data))
     return figs
+
+
+def _record_figures(data: dict[str, Any]) -> dict[str, Any]:
+    """Quality figures from a ``measurement.json`` record (as ``roomcorr measure`` writes it)."""
+    out: dict[str, Any] = {}
+    if isinstance(data.get("loopback"), bool):
+        out["loopback"] = data["loopback"]
+    gates = []
+    snr = []
+    for pos in data.get("positions", []) or []:
+        for ch in (pos or {}).get("channels", []) or []:
+            gates += [g for g in ch.get("gates", []) if isinstance(g, dict)]
+            v = (ch.get("figures") or {}).get("min_snr_db")
+            if isinstance(v, int | float):
+                snr.append(float(v))
+    if gates:
+        failed = sorted({str(g.get("name")) for g in gates if g.get("passed") is False})
+        out["gates_passed"] = f"{len(gates) - sum(g.get('passed') is False for g in gates)}"
+        out["gates_passed"] += f"/{len(gates)}"
+        if failed:
+            out["gates_failed"] = failed
+    if snr:
+        out["min_snr_db"] = round(min(snr), 1)
+    return out
 
 
 def _design_figures(run_dir: Path) -> dict[str, Any]:
@@ -1009,3 +1031,142 @@ def compare_measurements(
                 fit = {"available": False, "reason": str(exc)}
     res["filter_fit"] = fit
     return res
+
+
+# --------------------------------------------------------------------------- text
+
+
+def _fmt(v: Any, spec: str = "+.2f", unit: str = "") -> str:
+    return "-" if v is None else f"{v:{spec}}{unit}"
+
+
+def format_history(entries: list[dict[str, Any]], name: str = "") -> list[str]:
+    """Lines for ``roomcorr history`` (one block per run, oldest first)."""
+    lines = [f"Room {name}: {len(entries)} run(s)" if name else f"{len(entries)} run(s)"]
+    if not entries:
+        lines.append("  nothing measured yet; run 'roomcorr measure' inside the room folder")
+    for e in entries:
+        head = f"  {e['run_id']}  {e['kind']:<11}  {e['status']}"
+        if e.get("source"):
+            head += f"  from measurement {Path(str(e['source'])).name}"
+        if e.get("note"):
+            head += f"  ({e['note']})"
+        lines.append(head)
+        f = e.get("figures") or {}
+        if f.get("problem"):
+            lines.append(f"      problem: {f['problem']}")
+        elif e["kind"] == "measurement" and f:
+            arr = ", ".join(f"{a:.2f}" for a in f.get("arrival_ms", []))
+            text = (
+                f"      {f.get('positions')} position(s) x {f.get('channels')} channel(s), "
+                f"{f.get('sample_rate')} Hz, {f.get('length_ms')} ms; arrival {arr} ms; "
+                f"peak {f.get('peak_dbfs')} dBFS"
+            )
+            lines.append(text)
+            extra = []
+            if "gates_passed" in f:
+                extra.append(f"quality gates passed {f['gates_passed']}")
+            if f.get("gates_failed"):
+                extra.append("failed: " + ", ".join(f["gates_failed"]))
+            if "min_snr_db" in f:
+                extra.append(f"lowest SNR {f['min_snr_db']} dB")
+            if f.get("loopback") is False:
+                extra.append("no loopback (arrival includes system latency)")
+            if extra:
+                lines.append("      " + "; ".join(extra))
+        elif e["kind"] == "design" and f:
+            band = f.get("band_hz")
+            band_txt = f"{band[0]:.0f}-{band[1]:.0f} Hz" if band else "-"
+            lines.append(
+                f"      target {f.get('target', '-')}, band {band_txt}, rates "
+                + ",".join(str(r) for r in f.get("sample_rates", []))
+            )
+            lines.append(
+                f"      pre-gain {_fmt(f.get('pre_gain_db'), unit=' dB')}, peak gain "
+                f"{_fmt(f.get('peak_gain_db'), unit=' dB')}, worst case "
+                f"{_fmt(f.get('worst_case_gain_db'), unit=' dB')}, boost up to "
+                f"{_fmt(f.get('max_boost_db'), '.1f', ' dB')}"
+            )
+        elif e["status"] == "incomplete":
+            lines.append("      interrupted before it finished; ignored by other commands")
+    return lines
+
+
+def format_comparison(res: dict[str, Any]) -> list[str]:
+    """Lines for ``roomcorr compare`` from :func:`compare_measurements`' result."""
+    from roomcorr.analysis.bands import nominal_label
+
+    lines = [
+        f"before: {res['before']}",
+        f"after:  {res['after']}",
+        f"speed of sound {res['speed_of_sound_m_s']:.1f} m/s at {res['temperature_c']:g} °C "
+        f"({res['speed_of_sound_formula']})",
+    ]
+    if not res["paired_positions"]:
+        lines.append("positions differ in number or sample rate: mean arrivals compared")
+    for ch in res["channels"]:
+        lines.append("")
+        lines.append(f"{ch['name']}:")
+        lines.append(
+            f"  arrival {ch['arrival_before_ms']:.3f} ms -> {ch['arrival_after_ms']:.3f} ms: "
+            f"{ch['arrival_change_ms']:+.3f} ms, distance {ch['distance_change_m']:+.3f} m"
+            + (
+                " (per position "
+                + ", ".join(f"{d:+.3f}" for d in ch["position_distance_change_m"])
+                + " m)"
+                if len(ch["position_distance_change_m"]) > 1
+                else ""
+            )
+        )
+        lines.append(
+            f"  level {ch['level_change_db']:+.2f} dB (100 Hz-10 kHz), direct sound "
+            f"{ch['direct_level_change_db']:+.2f} dB"
+        )
+        if ch["polarity_inverted"]:
+            lines.append("  POLARITY INVERTED: check the loudspeaker's wiring (+/- swapped)")
+        bands = ch["lf_band_change_db"]
+        if bands:
+            lines.append("  low-frequency change per 1/3 octave (Hz: dB):")
+            cells = [f"{nominal_label(b['centre_hz'])}: {b['change_db']:+.1f}" for b in bands]
+            for i in range(0, len(cells), 7):
+                lines.append("    " + "  ".join(f"{c:<12}" for c in cells[i : i + 7]).rstrip())
+        changed = [e for e in ch["extrema"] if e["status"] != "unchanged"]
+        same = len(ch["extrema"]) - len(changed)
+        if changed:
+            lines.append("  peaks and dips (relative to the 1-octave trend):")
+        for e in changed:
+            if e["status"] == "appeared":
+                lines.append(
+                    f"    {e['kind']} appeared at {e['freq_after_hz']:.0f} Hz "
+                    f"({e['height_after_db']:+.1f} dB)"
+                )
+            elif e["status"] == "vanished":
+                lines.append(
+                    f"    {e['kind']} at {e['freq_before_hz']:.0f} Hz vanished "
+                    f"(was {e['height_before_db']:+.1f} dB)"
+                )
+            else:
+                lines.append(
+                    f"    {e['kind']} {e['status']}: {e['freq_before_hz']:.0f} Hz "
+                    f"{e['height_before_db']:+.1f} dB -> {e['freq_after_hz']:.0f} Hz "
+                    f"{e['height_after_db']:+.1f} dB"
+                )
+        lines.append(f"  {same} peak(s)/dip(s) unchanged" if same else "  no peak or dip unchanged")
+    fit = res.get("filter_fit", {})
+    lines.append("")
+    if not fit.get("available"):
+        lines.append(f"filter check: not done ({fit.get('reason', 'no design')})")
+        return lines
+    verdict = (
+        "the existing filters are still fit for use"
+        if fit["still_fit"]
+        else "design new filters: the existing ones no longer fit"
+    )
+    lines.append(f"filter check against {fit['design']} ({fit['sample_rate']} Hz): {verdict}")
+    for c in fit["channels"]:
+        lines.append(
+            f"  {c['name']}: deviation from target with the old filters {c['old_rms_db']:.2f} dB "
+            f"RMS (max {c['old_max_db']:.1f}), with a fresh design {c['fresh_rms_db']:.2f} dB "
+            f"RMS (max {c['fresh_max_db']:.1f}) -> {'fit' if c['still_fit'] else 'refit'}"
+        )
+    return lines

@@ -261,3 +261,19 @@ def test_fir_response_db_matches_known_filter():
     got = cmp.fir_response_db(np.array([[0.5, 0.5]]), FS, f)
     assert got.shape == (1, 3)
     assert np.allclose(got[0], 20 * np.log10(np.abs(np.cos(np.pi * f / FS))), atol=1e-9)
+
+
+def test_filter_fit_narrow_large_miss_is_not_fit():
+    # One grid point off by 8 dB in a 4-octave band of ~385 points: the RMS
+    # is about 8 / sqrt(385) = 0.4 dB (within tolerance), the largest
+    # deviation about 8 dB (beyond FIT_MAX_TOLERANCE_DB), so a refit is advised.
+    f = log_grid()
+    band = (40.0, 640.0)
+    target = np.zeros_like(f)
+    new = np.zeros_like(f)
+    new[np.argmin(np.abs(f - 100.0))] = 8.0
+    fit = cmp.filter_fit(f, new, target.copy(), target - new, target, band)
+    n = int(np.sum((f >= band[0]) & (f <= band[1])))
+    assert fit["old_rms_db"] == pytest.approx(8 * np.sqrt((1 / n) * (1 - 1 / n)), abs=0.01)
+    assert fit["old_max_db"] == pytest.approx(8 * (1 - 1 / n), abs=0.01)
+    assert not fit["still_fit"]

@@ -364,3 +364,23 @@ def test_compare_needs_two_measurements(room: R.Room):
         R.compare_measurements(room=room)
     with pytest.raises(InputFileError, match="no such"):
         R.compare_measurements("nope-a", "nope-b", room=room)
+
+
+def test_text_output_names_the_figures(room: R.Room):
+    m1 = _measure(room, room_set(SPK_L, SPK_R, C20), note="first")
+    _design(room, m1)
+    _measure(room, room_set(SPK_L, SPK_R + np.array([0.0, -0.3, 0.0]), C20))
+    with R.new_run(room, "measurement"):
+        pass  # an empty run is still a complete run folder, with no IR files ...
+    hist = R.history(room)
+    text = "\n".join(R.format_history(hist, R.room_name(room)))
+    assert text.startswith("Room lounge: 4 run(s)")
+    assert "from measurement " + m1.name in text and "(first)" in text
+    assert "3 position(s) x 2 channel(s), 48000 Hz" in text
+    assert "problem:" in text  # ... which history reports instead of failing
+    runs = R.list_runs(room, "measurement", include_incomplete=False)
+    res = R.compare_measurements(runs[0].path, runs[1].path, room=room)
+    out = "\n".join(R.format_comparison(res))
+    assert "ISO 9613-1" in out and "right:" in out and "distance +0.2" in out
+    assert "filter check against" in out
+    json.dumps(res)  # plain JSON types only

@@ -53,6 +53,8 @@ CHANGED_DB = 2.0
 #: worse (RMS, dB) than a fresh design's (common practice; about a just-audible
 #: broadband colouration).
 FIT_TOLERANCE_DB = 1.0
+#: ... and their largest deviation at most this much worse (common practice).
+FIT_MAX_TOLERANCE_DB = 3.0
 
 
 def speed_of_sound_m_s(temperature_c: float) -> float:
@@ -228,22 +230,20 @@ def smoothed_response_db(
 def third_octave_centres_hz(f_lo_hz: float, f_hi_hz: float) -> np.ndarray:
     """IEC 61260-1 third-octave mid-band frequencies between the limits (inclusive).
 
-    Uses :mod:`roomcorr.analysis.bands` when it is present, otherwise the
-    base-ten formula ``f_m = 1000 G^(x/3)``, ``G = 10^(3/10)``.
+    From :func:`roomcorr.analysis.bands.band_centres_hz` (base-ten
+    ``f_m = 1000 G^(x/3)``, ``G = 10^(3/10)``), keeping the bands whose
+    nominal frequency (20, 25, 31.5 ... Hz) lies in the range.
 
     References
     ----------
     IEC 61260-1:2014, Electroacoustics - Octave-band and fractional-octave-band
     filters - Part 1: Specifications, clause 5.
     """
-    try:
-        from roomcorr.analysis.bands import band_centres_hz
-    except ImportError:  # the bands module is another engineer's and may lag behind
-        g = 10.0**0.3
-        x = np.arange(-40, 20)
-        fm = 1000.0 * g ** (x / 3.0)
-        return fm[(fm >= f_lo_hz * 0.999) & (fm <= f_hi_hz * 1.001)]
-    return np.asarray(band_centres_hz(3, f_lo_hz * 0.999, f_hi_hz * 1.001), dtype=float)
+    from roomcorr.analysis.bands import band_centres_hz, nominal_hz
+
+    fc = np.asarray(band_centres_hz(3, f_lo_hz, f_hi_hz), dtype=float)
+    nom = np.array([nominal_hz(f) for f in fc])
+    return fc[(nom >= f_lo_hz) & (nom <= f_hi_hz)]
 
 
 def band_levels_db(
@@ -483,7 +483,8 @@ def filter_fit(
     Compares the corrected deviation (:func:`corrected_deviation_db`) of the
     new averaged response with the old correction against that with a fresh
     design's correction. The old filters are fit when their RMS deviation is
-    at most ``tolerance_db`` worse.
+    at most ``tolerance_db`` worse and their largest deviation at most
+    :data:`FIT_MAX_TOLERANCE_DB` worse.
 
     Returns
     -------
@@ -502,7 +503,7 @@ def filter_fit(
         "old_max_db": round(o_max, 2),
         "fresh_rms_db": round(f_rms, 2),
         "fresh_max_db": round(f_max, 2),
-        "still_fit": bool(o_rms - f_rms <= tolerance_db),
+        "still_fit": bool(o_rms - f_rms <= tolerance_db and o_max - f_max <= FIT_MAX_TOLERANCE_DB),
         "tolerance_db": tolerance_db,
     }
 
