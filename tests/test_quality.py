@@ -1,0 +1,173 @@
+"""Tests for roomcorr.measure.quality, measure settings and the offline session analysis."""
+
+import json
+
+import numpy as np
+import pytest
+import soundfile as sf
+from scipy.signal import fftconvolve
+
+from roomcorr.errors import SafetyError, SettingsError
+from roomcorr.measure import quality as q
+from roomcorr.measure.session import (
+    analyse_recording,
+    deconvolve_file,
+    make_sweep,
+    sweep_layout,
+)
+from roomcorr.measure.settings import MeasureSettings
+from roomcorr.measure.sweep import playback_signal
+
+FS = 48000
+
+
+def test_octave_centres_iec():
+    # IEC 61260-1:2014 base-10 octave mid-bands 1000 * 10**(0.3 x), x = -4..3
+    c = q.octave_centres_hz(63, 8000)
+    np.testing.assert_allclose(c, 1000 * 10 ** (0.3 * np.arange(-4, 4)))
+    assert c[0] == pytest.approx(63.1, abs=0.05) and c[-1] == pytest.approx(7943.3, abs=0.1)
+
+
+def test_band_snr_matches_analytic_white_noise_case():
+    # A sine of amplitude A has power A^2/2 (while the sweep is in the band); white noise of
+    # variance s^2 has power s^2 * B / (fs/2) in a band of width B (Parseval).
+    s = make_sweep(MeasureSettings(sweep_s=4.0, level_dbfs=-20.0))
+    rng = np.random.default_rng(5)
+    sigma = 1e-3
+    noise = sigma * rng.standard_normal(FS)
+    rec = s.signal() + sigma * rng.standard_normal(s.n_samples)
+    snr = q.band_snr_db(rec, noise, FS, s.f_start_hz, s.f_end_hz)
+    for fm, val in snr.items():
+        if 125 <= fm <= 4000:
+            bw = fm * (10**0.15 - 10**-0.15)
+            expected = 10 * np.log10((s.amplitude**2 / 2) / (sigma**2 * bw / (FS / 2)))
+            assert val == pytest.approx(expected, abs=1.0), fm
+
+
+def test_peak_and_clipping():
+    x = np.array([0.0, 0.5, -0.25])
+    assert q.peak_dbfs(x) == pytest.approx(20 * np.log10(0.5))  # -6.02 dB
+    assert q.clipped_samples(np.array([0.1, 0.999, -1.0, 0.97]), -0.1) == 2
+
+
+def test_arrival_snr_noise_only_versus_impulse():
+    # Extreme value of n Gaussian samples is about sqrt(2 ln n) sigma (from memory):
+    # a disconnected speaker stays far below the 25 dB limit; an impulse is far above.
+    rng = np.random.default_rng(2)
+    noise = rng.standard_normal(40000)
+    assert q.arrival_snr_db(noise, 12000, slice(12000, 40000)) < 16
+    h = noise * 1e-3
+    h[300] = 1.0
+    assert q.arrival_snr_db(h, 12000, slice(12000, 40000)) > 55
+
+
+def test_repeat_disagreement_formula():
+    # Two repeats h and h + e: mean h + e/2, each differs by e/2 -> |e|^2/4 / |h + e/2|^2.
+    h = np.zeros(100)
+    h[10] = 1.0
+    e = np.zeros(100)
+    e[20] = 0.2
+    got = q.repeat_disagreement_db(np.array([h, h + e]))
+    expected = 10 * np.log10(0.01 / (1.0 + 0.01))
+    assert got == pytest.approx(expected)
+    assert q.repeat_disagreement_db(h[None, :]) == float("-inf")
+
+
+GOOD = {"clipped_samples": 0, "peak_dbfs": -12.0, "min_snr_db": 50.0, "dc_offset": 0.0,
+        "stream_problems": 0, "arrival_snr_db": 70.0, "repeat_disagreement_db": -45.0}
+LIMITS = sweep_layout(MeasureSettings())["limits"]
+
+
+@pytest.mark.parametrize(
+    ("key", "value", "gate"),
+    [("clipped_samples", 3, "clipping"), ("peak_dbfs", -70.0, "input_level"),
+     ("min_snr_db", 5.0, "snr"), ("dc_offset", 0.05, "dc_offset"),
+     ("stream_problems", 2, "buffers"), ("arrival_snr_db", 12.0, "arrival"),
+     ("repeat_disagreement_db", -6.0, "repeats_agree")],
+)
+def test_each_gate_fails_alone(key, value, gate):
+    assert all(g.passed for g in q.evaluate_gates(GOOD, LIMITS))
+    gates = q.evaluate_gates(dict(GOOD, **{key: value}), LIMITS)
+    assert [g.name for g in gates if not g.passed] == [gate]
+    with pytest.raises(q.QualityGateError, match="--force"):
+        q.raise_on_failure(gates, "position 1")
+
+
+def test_level_cap_and_settings_validation():
+    MeasureSettings().validate()
+    with pytest.raises(SafetyError, match="allow-loud"):
+        MeasureSettings(level_dbfs=-3.0).validate()
+    MeasureSettings(level_dbfs=-3.0, allow_loud=True).validate()
+    with pytest.raises(SafetyError):
+        MeasureSettings(level_dbfs=1.0, allow_loud=True).validate()
+    with pytest.raises(SettingsError, match="unknown"):
+        MeasureSettings.from_dict({"sweep_len": 3})
+    with pytest.raises(SettingsError):
+        MeasureSettings(f_end_hz=30000.0).validate()
+    with pytest.raises(SettingsError):
+        MeasureSettings(outputs=(1, 2), loopback=(2, 2)).validate()
+    ms = MeasureSettings(outputs=(1, 3), loopback=(4, 2), repeats=3)
+    assert MeasureSettings.from_dict(ms.to_dict()) == ms
+
+
+def simulated_recording(ms, h, latency, a2=0.0, noise=1e-5, dc=0.0, seed=0):
+    """Offline stand-in for the audio path: latency + room + noise (seeded)."""
+    sw = make_sweep(ms)
+    play = playback_signal(sw, ms.noise_s, ms.tail_s, ms.repeats)
+    n = len(play)
+    rng = np.random.default_rng(seed)
+    sent = np.r_[np.zeros(latency), play][:n]
+    mic = fftconvolve(sent + a2 * sent**2, h)[:n] + noise * rng.standard_normal(n) + dc
+    return mic, sent
+
+
+MS = MeasureSettings(sweep_s=1.0, noise_s=0.3, tail_s=0.4, ir_s=0.25, repeats=2,
+                     loopback=(3, 2))
+
+
+def test_offline_analysis_removes_latency_and_recovers_ir():
+    h = np.zeros(2400)
+    h[250] = 0.5
+    h[400] = 0.2
+    mic, lb = simulated_recording(MS, h, latency=777)
+    ir, fig, gates = analyse_recording(mic, lb, sweep_layout(MS))
+    assert all(g.passed for g in gates), [g.message for g in gates if not g.passed]
+    assert fig["latency_s"] * FS == pytest.approx(777, abs=0.01)
+    assert fig["arrival_s"] * FS == pytest.approx(250, abs=0.05)
+    ref = np.r_[h, np.zeros(len(ir) - len(h))]
+    from roomcorr.measure.deconvolve import band_energy_error_db
+
+    assert band_energy_error_db(ir, ref, FS, 100, 16000) < -40
+
+
+def test_offline_analysis_without_loopback_keeps_latency_and_says_so():
+    h = np.zeros(100)
+    h[50] = 0.5
+    ms = MeasureSettings(sweep_s=1.0, noise_s=0.3, tail_s=0.4, ir_s=0.25, repeats=1)
+    mic, _ = simulated_recording(ms, h, latency=500, dc=0.05)
+    _, fig, gates = analyse_recording(mic, None, sweep_layout(ms))
+    assert fig["latency_s"] is None and "no loopback" in fig["latency_note"]
+    assert fig["arrival_s"] * FS == pytest.approx(550, abs=0.05)
+    assert [g.name for g in gates if not g.passed] == ["dc_offset"]
+
+
+def test_deconvolve_file_round_trip(tmp_path):
+    h = np.zeros(300)
+    h[120] = 0.4
+    mic, lb = simulated_recording(MS, h, latency=300, a2=0.5)
+    wav = tmp_path / "rec.wav"
+    sf.write(wav, np.array([mic, lb]).T.astype(np.float32), FS, subtype="FLOAT")
+    settings = tmp_path / "sweep.json"
+    settings.write_text(json.dumps({"sweep_settings": sweep_layout(MS)}))
+    dest, fig, gates = deconvolve_file(wav, settings)
+    data, fs = sf.read(dest)
+    assert fs == FS and np.argmax(np.abs(data)) == 120
+    rec = json.loads(dest.with_suffix(".json").read_text())
+    hd2 = np.array([v for v in rec["figures"]["harmonic_distortion"]["orders"]["2"] if v])
+    # y = x + a x^2: 2nd harmonic a A / 2 relative to the fundamental (trig identity)
+    expected = 20 * np.log10(0.5 * 10 ** (MS.level_dbfs / 20) / 2)
+    assert np.median(hd2) == pytest.approx(expected, abs=0.5)
+    from roomcorr.errors import OutputError
+
+    with pytest.raises(OutputError):
+        deconvolve_file(wav, settings)
