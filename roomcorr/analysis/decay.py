@@ -460,19 +460,24 @@ def low_frequency_decay_map(
 
 
 def ringing_modes(
-    decay_map: DecayMap, drop_db: float = 20.0, n_modes: int = 3, floor_db: float = -20.0
+    decay_map: DecayMap,
+    drop_db: float = 20.0,
+    n_modes: int = 3,
+    floor_db: float = -20.0,
+    late_s: float = 0.2,
 ) -> list[tuple[float, float]]:
-    """The spectral peaks of a decay map that keep ringing longest.
+    """The spectral peaks of a decay map that are still loudest after a while.
 
     Peaks of the first slice (at least 3 dB prominent and within ``-floor_db``
     of the loudest bin) are followed through the slices; a straight line fitted
     to each peak's level over its first ``drop_db`` of decay gives an equivalent
-    60 dB decay time.
+    60 dB decay time. Peaks are ranked by the level that line predicts at
+    ``late_s``: a mode that is both loud and slow to decay is heard most.
 
     Returns
     -------
     list of (freq_hz, decay_s)
-        Longest-ringing peaks first, at most ``n_modes``. A peak that never falls
+        At most ``n_modes``, most audible ringing first. A peak that never falls
         ``drop_db`` is fitted over the whole map.
     """
     from scipy.signal import find_peaks
@@ -491,6 +496,7 @@ def ringing_modes(
             end = min(2, len(t) - 1)
         slope = np.polyfit(t[: end + 1], rel[: end + 1], 1)[0]
         decay_s = float(-60.0 / slope) if slope < 0 else float("inf")
-        out.append((float(decay_map.freq_hz[i]), decay_s))
-    out.sort(key=lambda c: -c[1])
-    return out[:n_modes]
+        late_db = float(lv[0, i] + min(slope, 0.0) * late_s)
+        out.append((late_db, float(decay_map.freq_hz[i]), decay_s))
+    out.sort(key=lambda c: -c[0])
+    return [(f, d) for _, f, d in out[:n_modes]]

@@ -1,0 +1,412 @@
+"""The report's figures, drawn with matplotlib's non-interactive Agg canvas.
+
+Each ``plot_*`` function takes plain arrays and returns a
+:class:`matplotlib.figure.Figure`; :func:`png_bytes` turns one into PNG bytes.
+Figures are made with :class:`~matplotlib.figure.Figure` and an Agg canvas
+directly (no pyplot), so no GUI backend is ever touched and figures do not
+accumulate in a global registry. matplotlib is imported inside the functions,
+so importing this module is cheap.
+"""
+
+from __future__ import annotations
+
+import io
+from typing import Any
+
+import numpy as np
+
+# Our own palette.
+INK = "#24313f"
+SEAT = "#9bb0c4"
+MEAN = "#155e6b"
+AIM = "#c8553d"
+CAP = "#b8892b"
+AFTER = "#2f8f5b"
+REFUSED = "#f3d7cf"
+OUTSIDE = "#eceff3"
+
+FREQ_TICKS = [20, 50, 100, 200, 500, 1000, 2000, 5000, 10000, 20000]
+FREQ_LABELS = ["20", "50", "100", "200", "500", "1k", "2k", "5k", "10k", "20k"]
+
+
+def new_figure(width_in: float = 9.0, height_in: float = 4.2) -> Any:
+    """An empty figure on an Agg canvas (no pyplot, no GUI)."""
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+
+    fig = Figure(figsize=(width_in, height_in), layout="constrained")
+    FigureCanvasAgg(fig)
+    return fig
+
+
+def png_bytes(fig: Any, dpi: int = 90) -> bytes:
+    """Render a figure to PNG bytes."""
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png", dpi=dpi, facecolor="white")
+    return buf.getvalue()
+
+
+def _freq_axis(ax: Any, f_lo: float = 20.0, f_hi: float = 20000.0) -> None:
+    ax.set_xscale("log")
+    ax.set_xlim(f_lo, f_hi)
+    ticks = [t for t in FREQ_TICKS if f_lo <= t <= f_hi]
+    ax.set_xticks(ticks, [FREQ_LABELS[FREQ_TICKS.index(t)] for t in ticks])
+    ax.minorticks_off()
+    ax.set_xlabel("frequency (Hz)")
+    ax.grid(True, which="major", color="#dde3ea", linewidth=0.7)
+
+
+def _shade_outside(ax: Any, band_hz: tuple[float, float]) -> None:
+    ax.axvspan(1.0, band_hz[0], color=OUTSIDE, zorder=0, lw=0)
+    ax.axvspan(band_hz[1], 1e6, color=OUTSIDE, zorder=0, lw=0)
+
+
+def _level_limits(ax: Any, *curves: np.ndarray, freq_hz: np.ndarray, span_db: float = 45) -> None:
+    m = (freq_hz >= 20) & (freq_hz <= 20000)
+    vals = np.concatenate([np.ravel(np.asarray(c)[..., m]) for c in curves])
+    vals = vals[np.isfinite(vals)]
+    if vals.size == 0:
+        return
+    top = float(np.percentile(vals, 99.5)) + 4
+    ax.set_ylim(max(float(np.percentile(vals, 0.5)) - 4, top - span_db), top)
+
+
+def plot_responses(
+    freq_hz: np.ndarray,
+    measured_db: np.ndarray,
+    average_db: np.ndarray,
+    target_db: np.ndarray | None,
+    band_hz: tuple[float, float] | None,
+    max_boost_db: float | None,
+    title: str,
+) -> Any:
+    """Every position (thin), the average (thick), target, band and boost cap.
+
+    Parameters
+    ----------
+    freq_hz : ndarray, shape (n_freqs,)
+    measured_db : ndarray, shape (n_positions, n_freqs)
+    average_db : ndarray, shape (n_freqs,)
+    target_db : ndarray, shape (n_freqs,), optional
+    band_hz : (lo, hi), optional
+    max_boost_db : float, optional
+        Draws ``target - max_boost_db``: a dip reaching below it cannot be filled.
+    title : str
+    """
+    fig = new_figure()
+    ax = fig.add_subplot()
+    if band_hz is not None:
+        _shade_outside(ax, band_hz)
+    for k, row in enumerate(measured_db):
+        ax.plot(freq_hz, row, color=SEAT, lw=0.7, label="each position" if k == 0 else None)
+    ax.plot(freq_hz, average_db, color=MEAN, lw=2.4, label="average of positions")
+    if target_db is not None:
+        ax.plot(freq_hz, target_db, color=AIM, lw=1.8, ls="--", label="target")
+        if max_boost_db is not None:
+            ax.plot(
+                freq_hz,
+                target_db - max_boost_db,
+                color=CAP,
+                lw=1.2,
+                ls=":",
+                label=f"boost cap (target - {max_boost_db:g} dB)",
+            )
+    _freq_axis(ax)
+    _level_limits(ax, measured_db, average_db, freq_hz=freq_hz)
+    ax.set_ylabel("level (dB)")
+    ax.set_title(title, loc="left", color=INK)
+    ax.legend(loc="lower center", ncols=4, fontsize=8, frameon=False)
+    return fig
+
+
+def plot_predicted(
+    freq_hz: np.ndarray,
+    predicted_db: np.ndarray,
+    before_db: np.ndarray,
+    target_db: np.ndarray,
+    band_hz: tuple[float, float],
+    title: str,
+) -> Any:
+    """Predicted result at every position against the target.
+
+    Parameters
+    ----------
+    predicted_db : ndarray, shape (n_positions, n_freqs)
+        Each measurement convolved with its filter and analysed like the measurement.
+    before_db : ndarray, shape (n_freqs,)
+        Average before correction, for comparison.
+    """
+    fig = new_figure()
+    ax = fig.add_subplot()
+    _shade_outside(ax, band_hz)
+    ax.plot(freq_hz, before_db, color="#b9c2cc", lw=1.6, label="average before")
+    for k, row in enumerate(predicted_db):
+        ax.plot(freq_hz, row, color=AFTER, lw=0.8, alpha=0.8,
+                label="each position, corrected" if k == 0 else None)
+    after = 10 * np.log10(np.mean(10 ** (np.asarray(predicted_db) / 10), axis=0))
+    ax.plot(freq_hz, after, color="#1d5e3a", lw=2.4, label="average, corrected")
+    ax.plot(freq_hz, target_db, color=AIM, lw=1.8, ls="--", label="target")
+    _freq_axis(ax)
+    _level_limits(ax, predicted_db, before_db, freq_hz=freq_hz)
+    ax.set_ylabel("level (dB)")
+    ax.set_title(title, loc="left", color=INK)
+    ax.legend(loc="lower center", ncols=4, fontsize=8, frameon=False)
+    return fig
+
+
+def plot_filter(
+    freq_hz: np.ndarray,
+    gain_db: np.ndarray,
+    phase_deg: np.ndarray,
+    group_delay_ms: np.ndarray,
+    correction_db: np.ndarray,
+    withheld_db: np.ndarray,
+    band_hz: tuple[float, float],
+    pre_gain_db: float,
+    fs: int,
+    title: str,
+) -> Any:
+    """Magnitude, phase and group delay of one filter; refused boost shaded.
+
+    Parameters
+    ----------
+    gain_db, phase_deg, group_delay_ms : ndarray, shape (n_freqs,)
+        Response of the exported FIR (pre-gain included) on ``freq_hz``.
+    correction_db, withheld_db : ndarray, shape (n_freqs,)
+        Designed correction curve (before pre-gain) and the boost refused.
+    """
+    fig = new_figure(9.0, 7.6)
+    ax1, ax2, ax3 = fig.subplots(3, 1, sharex=True, height_ratios=[2.2, 1, 1])
+    for ax in (ax1, ax2, ax3):
+        _shade_outside(ax, band_hz)
+    refused = np.asarray(withheld_db) > 1.0
+    m = np.concatenate([[False], refused, [False]]).astype(int)
+    d = np.diff(m)
+    for k, (a, b) in enumerate(zip(np.nonzero(d == 1)[0], np.nonzero(d == -1)[0], strict=True)):
+        for ax in (ax1, ax2, ax3):
+            ax.axvspan(freq_hz[a], freq_hz[b - 1], color=REFUSED, zorder=0.5, lw=0,
+                       label="boost refused" if (k == 0 and ax is ax1) else None)
+    ax1.plot(freq_hz, correction_db + pre_gain_db, color=AIM, lw=1.4, ls="--",
+             label="designed curve + pre-gain")
+    ax1.plot(freq_hz, correction_db + withheld_db + pre_gain_db, color=CAP, lw=1.0, ls=":",
+             label="what full correction would need")
+    ax1.plot(freq_hz, gain_db, color=MEAN, lw=2.0, label=f"filter at {fs} Hz")
+    ax1.axhline(0.0, color=INK, lw=0.8)
+    ax1.set_ylabel("gain (dB)")
+    lo = float(np.nanmin(np.r_[gain_db[(freq_hz > 20) & (freq_hz < 20000)], -3]))
+    hi = float(np.nanmax(np.r_[(correction_db + withheld_db + pre_gain_db), 3]))
+    ax1.set_ylim(max(lo - 2, -30), min(hi + 2, 25))
+    ax1.legend(loc="lower left", fontsize=8, frameon=False, ncols=2)
+    ax1.set_title(title, loc="left", color=INK)
+    ax2.plot(freq_hz, phase_deg, color=MEAN, lw=1.4)
+    ax2.set_ylabel("phase (deg)")
+    ax2.set_ylim(-190, 190)
+    ax2.set_yticks([-180, -90, 0, 90, 180])
+    ax3.plot(freq_hz, group_delay_ms, color=MEAN, lw=1.4)
+    ax3.set_ylabel("group delay (ms)")
+    gd = group_delay_ms[(freq_hz >= 20) & (freq_hz <= 20000)]
+    gd = gd[np.isfinite(gd)]
+    if gd.size:
+        ax3.set_ylim(min(-1.0, float(np.percentile(gd, 1)) * 1.1),
+                     max(2.0, float(np.percentile(gd, 99)) * 1.1))
+    for ax in (ax1, ax2, ax3):
+        _freq_axis(ax)
+    ax1.set_xlabel("")
+    ax2.set_xlabel("")
+    return fig
+
+
+def plot_time(
+    fs: int,
+    fir: np.ndarray,
+    before: np.ndarray,
+    after: np.ndarray,
+    title: str,
+    span_ms: tuple[float, float] = (-5.0, 40.0),
+) -> Any:
+    """Impulse and step response of the filter and of the corrected system.
+
+    Parameters
+    ----------
+    fir : ndarray, shape (n_taps,)
+    before, after : ndarray, shape (n,)
+        One position's impulse response as measured and with the filter applied
+        (same length and time origin).
+    span_ms : (float, float)
+        Shown time span relative to each response's main peak; negative time
+        shows any pre-ringing.
+    """
+    fig = new_figure(9.0, 6.0)
+    axs = fig.subplots(2, 2)
+
+    def _span(x: np.ndarray, ref: int) -> tuple[np.ndarray, np.ndarray]:
+        t_ms = (np.arange(len(x)) - ref) / fs * 1000.0
+        sel = (t_ms >= span_ms[0]) & (t_ms <= span_ms[1])
+        return t_ms[sel], x[sel]
+
+    ref_f = int(np.argmax(np.abs(fir)))
+    t, x = _span(np.concatenate([np.zeros(int(-span_ms[0] * fs / 1000) + 1), fir]),
+                 ref_f + int(-span_ms[0] * fs / 1000) + 1)
+    axs[0, 0].plot(t, x, color=MEAN, lw=1.1)
+    axs[0, 1].plot(t, np.cumsum(x), color=MEAN, lw=1.1)  # step: running sum of the taps
+    ref = int(np.argmax(np.abs(before)))
+    tb, xb = _span(before, ref)
+    ta, xa = _span(after, ref)
+    scale = float(np.max(np.abs(xb))) or 1.0
+    step_scale = float(np.max(np.abs(np.cumsum(xb)))) or 1.0
+    axs[1, 0].plot(tb, xb / scale, color=SEAT, lw=1.1, label="as measured")
+    axs[1, 0].plot(ta, xa / scale, color=AFTER, lw=1.1, label="corrected")
+    axs[1, 1].plot(tb, np.cumsum(xb) / step_scale, color=SEAT, lw=1.1, label="as measured")
+    axs[1, 1].plot(ta, np.cumsum(xa) / step_scale, color=AFTER, lw=1.1, label="corrected")
+    names = [["filter: impulse", "filter: step"], ["room: impulse", "room: step"]]
+    for i in range(2):
+        for j in range(2):
+            ax = axs[i, j]
+            ax.set_title(names[i][j], loc="left", fontsize=10, color=INK)
+            ax.axvline(0.0, color="#c9d1da", lw=0.8)
+            ax.axhline(0.0, color="#c9d1da", lw=0.8)
+            ax.set_xlabel("time from main peak (ms)")
+            ax.grid(True, color="#eef1f4")
+    axs[1, 0].legend(fontsize=8, frameon=False)
+    axs[0, 0].set_ylabel("amplitude")
+    axs[1, 0].set_ylabel("amplitude (relative)")
+    fig.suptitle(title, x=0.01, ha="left", color=INK)
+    return fig
+
+
+def plot_decay(bands: list[Any], title: str) -> Any:
+    """Schroeder curves per octave band and EDT/T20/T30 bars.
+
+    Parameters
+    ----------
+    bands : list of :class:`roomcorr.analysis.decay.BandDecay`
+    """
+    from matplotlib import colormaps
+
+    fig = new_figure(9.0, 4.2)
+    ax1, ax2 = fig.subplots(1, 2, width_ratios=[1.2, 1])
+    cmap = colormaps["viridis"]
+    for k, b in enumerate(bands):
+        c = b.curve
+        sel = np.isfinite(c.edc_db) & (c.edc_db > -70)
+        step = max(1, int(sel.sum() // 2000))
+        ax1.plot(c.time_s[sel][::step], c.edc_db[sel][::step],
+                 color=cmap(k / max(1, len(bands) - 1)), lw=1.2, label=b.label)
+    for lvl in (-5, -25, -35):
+        ax1.axhline(lvl, color="#c9d1da", lw=0.8, ls="--")
+    ax1.set_ylim(-70, 2)
+    ax1.set_xlabel("time (s)")
+    ax1.set_ylabel("decay (dB)")
+    ax1.legend(title="band (Hz)", fontsize=7, title_fontsize=8, ncols=2, frameon=False)
+    ax1.grid(True, color="#eef1f4")
+    x = np.arange(len(bands))
+    w = 0.27
+    for off, key, col, lab in ((-w, "edt_s", SEAT, "EDT"), (0, "t20_s", MEAN, "T20"),
+                               (w, "t30_s", AIM, "T30")):
+        vals = np.array([getattr(b, key) for b in bands], dtype=float)
+        ax2.bar(x + off, np.nan_to_num(vals), width=w, color=col, label=lab)
+    ax2.set_xticks(x, [b.label for b in bands])
+    ax2.set_xlabel("octave band (Hz)")
+    ax2.set_ylabel("decay time (s)")
+    ax2.legend(fontsize=8, frameon=False)
+    ax2.grid(True, axis="y", color="#eef1f4")
+    fig.suptitle(title, x=0.01, ha="left", color=INK)
+    return fig
+
+
+def plot_decay_map(
+    maps: list[tuple[str, Any]],
+    modes: list[tuple[float, float]],
+    title: str,
+    floor_db: float = -45.0,
+) -> Any:
+    """Low-frequency decay maps side by side (e.g. as measured and corrected).
+
+    Time runs upwards, frequency (log) to the right, colour is level; a ridge
+    that climbs high is a mode that keeps ringing. The longest-ringing peaks are
+    marked with their equivalent 60 dB decay time.
+
+    Parameters
+    ----------
+    maps : list of (label, :class:`roomcorr.analysis.decay.DecayMap`)
+    modes : list of (freq_hz, decay_s)
+        Marked on the first map.
+    """
+    fig = new_figure(9.0, 4.4)
+    axs = fig.subplots(1, len(maps), sharey=True, squeeze=False)[0]
+    im = None
+    for ax, (label, m) in zip(axs, maps, strict=True):
+        im = ax.pcolormesh(m.freq_hz, m.time_s * 1000, np.clip(m.level_db, floor_db, 0),
+                           shading="nearest", cmap="magma", vmin=floor_db, vmax=0,
+                           rasterized=True)
+        ax.set_xscale("log")
+        ticks = [t for t in (20, 30, 50, 80, 100, 150, 200, 300)
+                 if m.freq_hz[0] <= t <= m.freq_hz[-1]]
+        ax.set_xticks(ticks, [str(t) for t in ticks])
+        ax.minorticks_off()
+        ax.set_xlabel("frequency (Hz)")
+        ax.set_title(label, loc="left", fontsize=10, color=INK)
+    for k, (f0, t0) in enumerate(modes):
+        axs[0].annotate(f"{f0:.0f} Hz\n{t0:.2f} s", xy=(f0, 15), xytext=(f0, 330 + 90 * k),
+                        color="white", fontsize=8, ha="center",
+                        arrowprops={"arrowstyle": "-", "color": "white", "lw": 0.8})
+    axs[0].set_ylabel("time after direct sound (ms)")
+    if im is not None:
+        fig.colorbar(im, ax=list(axs), label="level (dB re first slice peak)", shrink=0.9)
+    fig.suptitle(title, x=0.01, ha="left", color=INK)
+    return fig
+
+
+def plot_quality(quality: dict[str, Any], title: str) -> Any:
+    """Measurement quality: SNR per octave band, distortion versus frequency, repeat agreement.
+
+    Parameters
+    ----------
+    quality : dict
+        Any of ``snr_db`` ({band label: dB}), ``distortion`` ({"freq_hz": [...],
+        "thd_percent" or "thd_db": [...]}), ``repeat_agreement_db`` ({"freq_hz": [...],
+        "db": [...]}) or a plain list. Missing parts leave their panel with a note.
+    """
+    fig = new_figure(9.0, 3.6)
+    axs = fig.subplots(1, 3)
+    snr = quality.get("snr_db")
+    ax = axs[0]
+    if isinstance(snr, dict) and snr:
+        labels = list(snr)
+        vals = [float(snr[k]) for k in labels]
+        ax.bar(range(len(vals)), vals, color=MEAN)
+        ax.set_xticks(range(len(vals)), labels, fontsize=7, rotation=45)
+        ax.axhline(40, color=AIM, lw=1, ls="--")
+        ax.set_ylabel("signal-to-noise (dB)")
+    else:
+        ax.text(0.5, 0.5, "no SNR recorded", ha="center", transform=ax.transAxes)
+    ax.set_title("signal to noise", loc="left", fontsize=10)
+    dist = quality.get("distortion")
+    ax = axs[1]
+    if isinstance(dist, dict) and "freq_hz" in dist:
+        f = np.asarray(dist["freq_hz"], dtype=float)
+        if "thd_percent" in dist:
+            ax.plot(f, np.asarray(dist["thd_percent"], dtype=float), color=AIM)
+            ax.set_ylabel("THD (%)")
+        elif "thd_db" in dist:
+            ax.plot(f, np.asarray(dist["thd_db"], dtype=float), color=AIM)
+            ax.set_ylabel("THD (dB re fundamental)")
+        _freq_axis(ax)
+    else:
+        ax.text(0.5, 0.5, "no distortion recorded", ha="center", transform=ax.transAxes)
+    ax.set_title("harmonic distortion", loc="left", fontsize=10)
+    rep = quality.get("repeat_agreement_db")
+    ax = axs[2]
+    if isinstance(rep, dict) and "freq_hz" in rep:
+        ax.plot(np.asarray(rep["freq_hz"], float), np.asarray(rep["db"], float), color=MEAN)
+        _freq_axis(ax)
+        ax.set_ylabel("repeat difference (dB)")
+    elif isinstance(rep, (int, float)):
+        ax.bar([0], [float(rep)], color=MEAN)
+        ax.set_xticks([0], ["all"])
+        ax.set_ylabel("repeat difference (dB)")
+    else:
+        ax.text(0.5, 0.5, "no repeats recorded", ha="center", transform=ax.transAxes)
+    ax.set_title("repeat agreement", loc="left", fontsize=10)
+    fig.suptitle(title, x=0.01, ha="left", color=INK)
+    return fig

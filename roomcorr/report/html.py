@@ -1,0 +1,601 @@
+"""One self-contained HTML page (plus PNG files) about a design or a measurement session.
+
+:func:`build_report` turns the curves of a design (layout of
+:func:`roomcorr.export.load_design_curves`) into sections with figures and
+tables; :func:`render_html` makes the page (figures embedded as base64 PNG,
+inline styles, no network access); :func:`write_report` does the file work
+for ``roomcorr report DIR``: it reads DIR, writes ``DIR/report/*.png`` and
+``DIR/report.html`` through the atomic-write helper, and adds them to the
+manifest of a design folder.
+"""
+
+from __future__ import annotations
+
+import base64
+import html
+import json
+import warnings
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from roomcorr.report.summary import fmt_hz, summary_sentences, withheld_regions
+
+REPORT_HTML = "report.html"
+FIG_DIR = "report"
+
+#: Section ids, in page order (per channel sections get a ``-<channel>`` suffix).
+SECTION_TITLES = {
+    "overview": "At a glance",
+    "room": "The room as measured",
+    "result": "Predicted result at every position",
+    "filter": "The correction filter",
+    "time": "Impulse and step",
+    "decay": "Reverberation by octave",
+    "ringing": "Low-frequency ringing",
+    "quality": "How good the measurement was",
+    "safety": "Safety and levels",
+}
+
+
+@dataclass
+class Figure:
+    """One PNG figure of the report."""
+
+    key: str
+    caption: str
+    png: bytes
+
+
+@dataclass
+class Section:
+    """One section of the page."""
+
+    id: str
+    title: str
+    paragraphs: list[str] = field(default_factory=list)
+    figures: list[Figure] = field(default_factory=list)
+    table: list[list[str]] | None = None  # first row is the header
+
+
+@dataclass
+class Report:
+    title: str
+    subtitle: str
+    sections: list[Section]
+
+
+def _fir_for(curves: dict[str, Any], index: int) -> tuple[np.ndarray | None, int | None]:
+    """The exported filter at the measurement rate (or the nearest rate)."""
+    firs = curves.get("firs") or {}
+    if not firs:
+        return None, None
+    fs = int(curves["fs_in"])
+    rate = fs if fs in firs else min(firs, key=lambda r: abs(r - fs))
+    return np.asarray(firs[rate][index], dtype=float), int(rate)
+
+
+def predicted_responses(
+    irs: np.ndarray, fs: int, fir: np.ndarray, freq_hz: np.ndarray, measured_db: np.ndarray
+) -> tuple[np.ndarray, np.ndarray]:
+    """Each position convolved with the filter, analysed exactly like the measurement.
+
+    The pipeline's own position analysis (onset, frequency-dependent window,
+    smoothing) is run on the convolved and on the raw responses; their
+    difference is added to ``measured_db``, so the calibration applied to the
+    measurement carries over unchanged.
+
+    Parameters
+    ----------
+    irs : ndarray, shape (n_positions, n_samples)
+    fs : int
+    fir : ndarray, shape (n_taps,)
+    freq_hz : ndarray, shape (n_freqs,)
+    measured_db : ndarray, shape (n_positions, n_freqs)
+
+    Returns
+    -------
+    predicted_db : ndarray, shape (n_positions, n_freqs)
+    corrected_irs : ndarray, shape (n_positions, n_samples)
+        Convolved responses cut to the original length.
+    """
+    from scipy.signal import fftconvolve
+
+    from roomcorr.pipeline import analyse_positions
+
+    n = irs.shape[-1]
+    conv = fftconvolve(irs, fir[None, :], axes=-1)[:, :n]
+    after, _ = analyse_positions(conv[:, None, :], fs, freq_hz)
+    before, _ = analyse_positions(irs[:, None, :], fs, freq_hz)
+    return measured_db + after[:, 0] - before[:, 0], conv
+
+
+def filter_response(
+    fir: np.ndarray, fs: int, freq_hz: np.ndarray
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Gain (dB), wrapped phase (degrees) and group delay (ms) of an FIR on ``freq_hz``.
+
+    Frequencies at or above Nyquist give NaN. Group delay by
+    :func:`scipy.signal.group_delay`.
+    """
+    from scipy.signal import freqz, group_delay
+
+    f = np.asarray(freq_hz, dtype=float)
+    ok = f < fs / 2
+    gain = np.full(f.shape, np.nan)
+    phase = np.full(f.shape, np.nan)
+    gd = np.full(f.shape, np.nan)
+    _, h = freqz(fir, worN=f[ok], fs=fs)
+    with np.errstate(divide="ignore"):
+        gain[ok] = 20 * np.log10(np.abs(h))
+    phase[ok] = np.degrees(np.angle(h))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        _, d = group_delay((fir, [1.0]), w=f[ok], fs=fs)
+    gd[ok] = d / fs * 1000.0
+    return gain, phase, gd
+
+
+def _mean_band_decay(per_position: list[list[Any]]) -> list[Any]:
+    """Band values averaged over positions; curves of the first position; valid only if all are."""
+    from roomcorr.analysis.decay import BandDecay
+
+    out = []
+    for k, first in enumerate(per_position[0]):
+        rows = [pos[k] for pos in per_position if k < len(pos)]
+        out.append(
+            BandDecay(
+                centre_hz=first.centre_hz,
+                label=first.label,
+                edt_s=float(np.nanmean([r.edt_s for r in rows])),
+                t20_s=float(np.nanmean([r.t20_s for r in rows])),
+                t30_s=float(np.nanmean([r.t30_s for r in rows])),
+                valid={key: all(r.valid[key] for r in rows) for key in first.valid},
+                curve=first.curve,
+            )
+        )
+    return out
+
+
+def _decay_table(bands: list[Any]) -> list[list[str]]:
+    def cell(v: float, ok: bool) -> str:
+        if not np.isfinite(v):
+            return "n/a"
+        return f"{v:.2f}" + ("" if ok else " *")
+
+    rows = [["band (Hz)", "EDT (s)", "T20 (s)", "T30 (s)", "peak-to-noise (dB)"]]
+    for b in bands:
+        rows.append(
+            [
+                b.label,
+                cell(b.edt_s, b.valid["edt"]),
+                cell(b.t20_s, b.valid["t20"]),
+                cell(b.t30_s, b.valid["t30"]),
+                f"{b.dynamic_range_db:.0f}",
+            ]
+        )
+    return rows
+
+
+def _quality_section(quality: dict[str, Any], png: Any) -> Section:
+    from roomcorr.report import figures as fg
+
+    sec = Section("quality", SECTION_TITLES["quality"])
+    sec.paragraphs.append(
+        "Signal to noise per octave band (40 dB or more is comfortable), harmonic distortion "
+        "of the loudspeaker during the sweep, and how closely repeated sweeps agreed."
+    )
+    sec.figures.append(
+        Figure("quality", "Measurement quality", png(fg.plot_quality(quality, "Measurement")))
+    )
+    return sec
+
+
+def _design_caps(settings: dict[str, Any] | None) -> dict[str, Any]:
+    d = (settings or {}).get("design", {}) if isinstance(settings, dict) else {}
+    return {
+        "max_boost_db": d.get("max_boost_db"),
+        "max_cut_db": d.get("max_cut_db"),
+        "ceiling_db": d.get("ceiling_db", 0.0),
+        "allow_gain": d.get("allow_gain", False),
+    }
+
+
+def build_report(
+    curves: dict[str, Any],
+    settings: dict[str, Any] | None = None,
+    quality: dict[str, Any] | None = None,
+    title: str = "Room correction report",
+    dpi: int = 90,
+) -> Report:
+    """Compute every section and figure of the report.
+
+    Parameters
+    ----------
+    curves : dict
+        Layout of :func:`roomcorr.export.load_design_curves`. A measurement
+        session without a design gives ``channels`` with only ``name``,
+        ``index``, ``measured_db``, ``average_db`` and ``firs`` empty; the
+        design sections are then left out.
+    settings : dict, optional
+        :func:`roomcorr.settings.settings_to_dict` of the design (caps in force).
+    quality : dict, optional
+        Measurement quality figures (see :func:`roomcorr.report.figures.plot_quality`).
+    title : str
+    dpi : int
+        Resolution of the PNGs.
+
+    Returns
+    -------
+    Report
+    """
+    from roomcorr.analysis.decay import low_frequency_decay_map, octave_band_decay, ringing_modes
+    from roomcorr.report import figures as fg
+
+    def png(fig: Any) -> bytes:
+        return fg.png_bytes(fig, dpi=dpi)
+
+    freq = np.asarray(curves["freq_hz"], dtype=float)
+    fs = int(curves["fs_in"])
+    irs = curves.get("irs")
+    caps = _design_caps(settings)
+    max_boost = caps["max_boost_db"]
+    pre_gain = float(curves.get("pre_gain_db", 0.0))
+    designed = bool(curves.get("firs")) and all(
+        "correction_db" in ch for ch in curves["channels"]
+    )
+
+    overview = Section("overview", SECTION_TITLES["overview"])
+    if designed:
+        overview.paragraphs.extend(summary_sentences(curves, max_boost))
+    else:
+        overview.paragraphs.append(
+            "This folder holds measurements only; run the design step to see a correction."
+        )
+    sections = [overview]
+    ringing_notes: list[str] = []
+    safety_rows = [["channel", "rate (Hz)", "taps", "peak gain (dB)", "worst-case gain (dB)"]]
+
+    for ch in curves["channels"]:
+        c = int(ch["index"])
+        name = str(ch["name"])
+        tag = f"{name} ({len(ch['measured_db'])} positions)"
+        band = tuple(ch["band_hz"]) if "band_hz" in ch else None
+        room = Section(f"room-{name}", f"{SECTION_TITLES['room']}: {name}")
+        room.paragraphs.append(
+            "Thin lines are the individual microphone positions, the thick line is their power "
+            "average. Grey areas lie outside the correction band."
+        )
+        room.figures.append(
+            Figure(
+                f"{name}-room",
+                f"Measured response, {name}",
+                png(
+                    fg.plot_responses(
+                        freq, ch["measured_db"], ch["average_db"], ch.get("target_db"), band,
+                        max_boost, f"Measured: {tag}",
+                    )
+                ),
+            )
+        )
+        sections.append(room)
+
+        fir, rate = _fir_for(curves, c) if designed else (None, None)
+        corrected = None
+        if fir is not None and irs is not None:
+            pos_irs = np.asarray(irs)[:, c]
+            if rate == fs:
+                predicted, corrected = predicted_responses(
+                    pos_irs, fs, fir, freq, ch["measured_db"]
+                )
+                how = "each measured response convolved with the exported filter"
+            else:  # no filter at the measurement rate: apply the filter's response
+                from roomcorr.design.fir import fir_response_db
+
+                predicted = ch["measured_db"] + fir_response_db(fir, rate, freq)[None, :]
+                how = f"the {rate} Hz filter's response added to each measured response"
+            res = Section(f"result-{name}", f"{SECTION_TITLES['result']}: {name}")
+            res.paragraphs.append(
+                f"Predicted from {how}, analysed with the same window and smoothing as the "
+                "measurement. Lines close to the target at every position mean the correction "
+                "holds across the listening area."
+            )
+            res.figures.append(
+                Figure(
+                    f"{name}-result",
+                    f"Predicted result, {name}",
+                    png(fg.plot_predicted(freq, predicted, ch["average_db"],
+                                          ch["target_db"], band, f"Corrected: {tag}")),
+                )
+            )
+            sections.append(res)
+
+            gain, phase, gd = filter_response(fir, rate, freq)
+            flt = Section(f"filter-{name}", f"{SECTION_TITLES['filter']}: {name}")
+            flt.paragraphs.append(
+                f"Minimum-phase FIR at {rate} Hz, {len(fir)} taps, pre-gain {pre_gain:.1f} dB "
+                "included. Pink areas mark frequencies where boost was wanted but refused."
+            )
+            regions = withheld_regions(freq, ch, max_boost)
+            if regions:
+                reasons = {
+                    "cancellation": "the dip is a cancellation that moves with the listener, "
+                    "so boost would burn headroom for nothing",
+                    "spread": "the positions disagree too much there",
+                    "cap": "the boost cap was reached",
+                }
+                for r in regions[:4]:
+                    flt.paragraphs.append(
+                        f"Boost refused around {fmt_hz(r['freq_hz'])} "
+                        f"({fmt_hz(r['lo_hz'])} to {fmt_hz(r['hi_hz'])}, "
+                        f"{r['withheld_db']:.1f} dB withheld): {reasons[r['reason']]}."
+                    )
+            else:
+                flt.paragraphs.append("No boost was refused.")
+            flt.figures.append(
+                Figure(
+                    f"{name}-filter",
+                    f"Filter magnitude, phase and group delay, {name}",
+                    png(fg.plot_filter(freq, gain, phase, gd, ch["correction_db"],
+                                       ch["boost_withheld_db"], band, pre_gain, rate,
+                                       f"Filter: {name}")),
+                )
+            )
+            sections.append(flt)
+
+            if corrected is not None:
+                tm = Section(f"time-{name}", f"{SECTION_TITLES['time']}: {name}")
+                tm.paragraphs.append(
+                    "Top: the filter alone. Bottom: the first position before and after "
+                    "correction. Anything left of 0 ms is pre-ringing; a minimum-phase filter "
+                    "has none."
+                )
+                tm.figures.append(
+                    Figure(
+                        f"{name}-time",
+                        f"Impulse and step response, {name}",
+                        png(fg.plot_time(fs, fir, pos_irs[0], corrected[0],
+                                         f"Time response: {name}")),
+                    )
+                )
+                sections.append(tm)
+
+        if irs is not None:
+            pos_irs = np.asarray(irs)[:, c]
+            per_pos = [octave_band_decay(pos_irs[p], fs) for p in range(len(pos_irs))]
+            bands = _mean_band_decay(per_pos)
+            dec = Section(f"decay-{name}", f"{SECTION_TITLES['decay']}: {name}")
+            dec.paragraphs.append(
+                "Schroeder backward integration per octave band with the noise floor "
+                "subtracted and the tail truncated where the decay meets the noise. EDT from "
+                "0 to -10 dB, T20 from -5 to -25 dB, T30 from -5 to -35 dB, each extrapolated "
+                "to 60 dB (ISO 3382-1), averaged over positions; curves show the first "
+                "position. * marks a value whose range comes within 10 dB of the noise floor."
+            )
+            dec.table = _decay_table(bands)
+            dec.figures.append(
+                Figure(f"{name}-decay", f"Decay curves and times, {name}",
+                       png(fg.plot_decay(bands, f"Decay: {name}")))
+            )
+            sections.append(dec)
+
+            before_map = low_frequency_decay_map(pos_irs[0], fs)
+            modes = ringing_modes(before_map)
+            maps = [("as measured", before_map)]
+            if corrected is not None:
+                maps.append(("corrected", low_frequency_decay_map(corrected[0], fs)))
+            rng = Section(f"ringing-{name}", f"{SECTION_TITLES['ringing']}: {name}")
+            rng.paragraphs.append(
+                "Sliding-window spectra of the first position from 20 to 300 Hz: each row "
+                "starts 10 ms later than the one below. A bright ridge reaching high up is a "
+                "room mode that keeps ringing after the sound stops."
+            )
+            if modes:
+                txt = ", ".join(f"{f0:.0f} Hz ({t0:.2f} s)" for f0, t0 in modes)
+                rng.paragraphs.append(f"Longest-ringing peaks (60 dB decay time): {txt}.")
+                ringing_notes.append(f"{name}: {fmt_hz(modes[0][0])}")
+            rng.figures.append(
+                Figure(f"{name}-ringing", f"Low-frequency decay map, {name}",
+                       png(fg.plot_decay_map(maps, modes, f"Low-frequency decay: {name}")))
+            )
+            sections.append(rng)
+
+        if fir is not None:
+            from roomcorr.design.fir import peak_gain_db, worst_case_gain_db
+
+            for r in sorted(curves["firs"]):
+                h = np.asarray(curves["firs"][r][c], dtype=float)
+                safety_rows.append(
+                    [name, str(r), str(h.size), f"{peak_gain_db(h, r):.2f}",
+                     f"{worst_case_gain_db(h):.2f}"]
+                )
+
+    if ringing_notes and designed:
+        overview.paragraphs.append(
+            "The strongest ringing room mode: " + "; ".join(ringing_notes)
+            + " (see the low-frequency decay maps)."
+        )
+    if quality:
+        sections.append(_quality_section(quality, png))
+
+    if designed:
+        from roomcorr.design.safety import CAUTIONS
+
+        saf = Section("safety", SECTION_TITLES["safety"])
+        mb = "n/a" if max_boost is None else f"{max_boost:g} dB"
+        mc = "n/a" if caps["max_cut_db"] is None else f"{caps['max_cut_db']:g} dB"
+        saf.paragraphs.append(
+            f"Pre-gain {pre_gain:.2f} dB (common to all channels and rates). Caps in force: "
+            f"boost at most {mb}, cut at most {mc}, peak gain ceiling "
+            f"{caps['ceiling_db']:g} dB" + (" (gain allowed)." if caps["allow_gain"] else ".")
+        )
+        saf.paragraphs.append(
+            "Peak gain is the filter's largest gain between 20 Hz and 20 kHz; worst-case gain "
+            "(20 log10 of the sum of |taps|) is the most any input waveform could grow."
+        )
+        saf.paragraphs.extend(CAUTIONS)
+        saf.table = safety_rows
+        sections.append(saf)
+    return Report(title=title, subtitle=f"measured at {fs} Hz", sections=sections)
+
+
+_CSS = """
+body{margin:0;font-family:system-ui,-apple-system,'Segoe UI',sans-serif;color:#24313f;
+background:#f6f7f9;line-height:1.45}
+header{background:#155e6b;color:#fff;padding:18px 28px}
+header h1{margin:0;font-size:1.5em}header p{margin:4px 0 0;opacity:.85}
+nav{background:#e3eaef;padding:8px 28px;font-size:.9em}
+nav a{color:#155e6b;margin-right:14px;text-decoration:none}
+main{max-width:1100px;margin:0 auto;padding:10px 20px 40px}
+section{background:#fff;border-radius:6px;margin:18px 0;padding:14px 22px;
+box-shadow:0 1px 2px rgba(0,0,0,.08)}
+section h2{font-size:1.2em;color:#155e6b;margin:4px 0 10px;border-bottom:2px solid #e3eaef}
+#overview{border-left:6px solid #c8553d}
+#safety{border-left:6px solid #b8892b}
+figure{margin:12px 0}figure img{max-width:100%;height:auto;display:block}
+figcaption{font-size:.85em;color:#5b6877}
+table{border-collapse:collapse;font-size:.9em;margin:8px 0}
+td,th{border:1px solid #d5dce3;padding:3px 10px;text-align:right}
+th{background:#eef2f5}
+"""
+
+
+def render_html(report: Report) -> str:
+    """The page as one string: inline CSS, figures as base64 data URIs, no external links."""
+    esc = html.escape
+    nav = " ".join(f'<a href="#{esc(s.id)}">{esc(s.title)}</a>' for s in report.sections)
+    parts = [
+        "<!DOCTYPE html>",
+        '<html lang="en"><head><meta charset="utf-8">',
+        '<meta name="viewport" content="width=device-width, initial-scale=1">',
+        f"<title>{esc(report.title)}</title><style>{_CSS}</style></head><body>",
+        f"<header><h1>{esc(report.title)}</h1><p>{esc(report.subtitle)}</p></header>",
+        f"<nav>{nav}</nav><main>",
+    ]
+    for s in report.sections:
+        parts.append(f'<section id="{esc(s.id)}"><h2>{esc(s.title)}</h2>')
+        if s.id == "overview" and s.paragraphs:
+            parts.append("<ul>" + "".join(f"<li>{esc(p)}</li>" for p in s.paragraphs) + "</ul>")
+        else:
+            parts.extend(f"<p>{esc(p)}</p>" for p in s.paragraphs)
+        if s.table:
+            head = "".join(f"<th>{esc(h)}</th>" for h in s.table[0])
+            body = "".join(
+                "<tr>" + "".join(f"<td>{esc(v)}</td>" for v in row) + "</tr>"
+                for row in s.table[1:]
+            )
+            parts.append(f"<table><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>")
+        for f in s.figures:
+            b64 = base64.b64encode(f.png).decode("ascii")
+            parts.append(
+                f'<figure data-figure="{esc(f.key)}"><img alt="{esc(f.caption)}" '
+                f'src="data:image/png;base64,{b64}"><figcaption>{esc(f.caption)}</figcaption>'
+                "</figure>"
+            )
+        parts.append("</section>")
+    parts.append("</main></body></html>")
+    return "\n".join(parts)
+
+
+def _read_quality(folder: Path) -> dict[str, Any] | None:
+    p = folder / "measurement.json"
+    if not p.is_file():
+        return None
+    try:
+        data = json.loads(p.read_text(encoding="utf-8"))
+    except (OSError, json.JSONDecodeError):
+        return None
+    q = data.get("quality") if isinstance(data, dict) else None
+    return q if isinstance(q, dict) else None
+
+
+def _session_curves(folder: Path) -> dict[str, Any]:
+    """Curves of a measurement session folder (IR WAVs, no design)."""
+    from roomcorr.analysis.average import power_average
+    from roomcorr.audio_io import read_ir_set
+    from roomcorr.errors import InputFileError
+    from roomcorr.grid import log_grid
+    from roomcorr.pipeline import analyse_positions, default_channel_names
+
+    wavs = sorted(p for p in folder.glob("*.wav"))
+    if not wavs:
+        raise InputFileError(
+            f"{folder}: neither a design folder (manifest.json, design.npz) nor a measurement "
+            "folder (impulse-response WAVs); point report at one of those"
+        )
+    irs, fs, _ = read_ir_set(wavs)
+    freq = log_grid()
+    measured, _ = analyse_positions(irs, fs, freq)
+    channels = []
+    for c, name in enumerate(default_channel_names(irs.shape[1])):
+        avg, spread = power_average(measured[:, c])
+        channels.append({"index": c, "name": name, "measured_db": measured[:, c],
+                         "average_db": avg, "spread_db": spread})
+    return {"freq_hz": freq, "fs_in": fs, "pre_gain_db": 0.0, "irs": irs, "firs": {},
+            "channels": channels}
+
+
+def write_report(folder: str | Path, dpi: int = 90) -> Path:
+    """Write ``report.html`` and ``report/*.png`` into a design or measurement folder.
+
+    Parameters
+    ----------
+    folder : path
+        A design output folder (``manifest.json`` + ``design.npz``) or a
+        measurement session folder (impulse-response WAVs, optional
+        ``measurement.json``).
+    dpi : int
+
+    Returns
+    -------
+    Path of ``report.html``.
+    """
+    from roomcorr.atomic import atomic_write_bytes, atomic_write_text
+    from roomcorr.errors import InputFileError, OutputError
+
+    d = Path(folder)
+    if not d.is_dir():
+        raise InputFileError(f"{d}: no such folder; give a design or measurement folder")
+    is_design = (d / "manifest.json").is_file() and (d / "design.npz").is_file()
+    settings = None
+    if is_design:
+        from roomcorr.export import load_design_curves, read_manifest
+
+        curves = load_design_curves(d)
+        manifest = read_manifest(d)
+        settings = manifest.get("settings")
+        quality = manifest.get("quality") if isinstance(manifest.get("quality"), dict) else None
+    else:
+        curves = _session_curves(d)
+        quality = _read_quality(d)
+    report = build_report(curves, settings, quality, dpi=dpi)
+    fig_dir = d / FIG_DIR
+    try:
+        fig_dir.mkdir(exist_ok=True)
+        written = []
+        for s in report.sections:
+            for f in s.figures:
+                rel = f"{FIG_DIR}/{f.key}.png"
+                atomic_write_bytes(d / rel, f.png)
+                written.append(rel)
+        out = atomic_write_text(d / REPORT_HTML, render_html(report))
+    except OSError as exc:
+        raise OutputError(f"{d}: cannot write the report ({exc})") from None
+    if is_design:
+        from roomcorr.export import add_manifest_entries, read_manifest, sha256_of, write_manifest
+
+        manifest = read_manifest(d)
+        known = {e.get("path") for e in manifest.get("files", [])}
+        if known & {*written, REPORT_HTML}:  # a report written before: refresh its digests
+            for e in manifest["files"]:
+                if e.get("path") in {*written, REPORT_HTML}:
+                    e["sha256"] = sha256_of(d / e["path"])
+            write_manifest(d, manifest)
+        entries = [{"path": p, "kind": "report-figure"} for p in written if p not in known]
+        if REPORT_HTML not in known:
+            entries.append({"path": REPORT_HTML, "kind": "report"})
+        if entries:
+            add_manifest_entries(d, entries)
+    return out

@@ -1,0 +1,284 @@
+"""Checks of the report: summary sentences, filter response, prediction, page, browser render."""
+
+from __future__ import annotations
+
+import json
+import os
+import re
+import shutil
+import subprocess
+
+import numpy as np
+import pytest
+
+from roomcorr.grid import log_grid
+from roomcorr.report import html as rh
+from roomcorr.report import summary
+
+FS = 48000
+
+
+# ----------------------------------------------------------------------------- summary sentences
+
+
+def _flat_channel(freq, **over):
+    n = freq.size
+    ch = {
+        "index": 0,
+        "name": "left",
+        "measured_db": np.zeros((2, n)),
+        "average_db": np.zeros(n),
+        "spread_db": np.full(n, 0.5),
+        "target_db": np.zeros(n),
+        "raw_correction_db": np.zeros(n),
+        "correction_db": np.zeros(n),
+        "boost_withheld_db": np.zeros(n),
+        "band_hz": (30.0, 16000.0),
+    }
+    ch.update(over)
+    return ch
+
+
+def _bump(freq, f0, depth_db, width_oct):
+    return depth_db * np.exp(-0.5 * (np.log2(freq / f0) / width_oct) ** 2)
+
+
+def test_deep_narrow_dip_is_called_a_cancellation_and_left():
+    # the example sentence of the report issue: "a 14 dB dip at 87 Hz is a cancellation;
+    # boosting it would waste 14 dB of headroom, so it was left"
+    f = log_grid()
+    dip = _bump(f, 87.0, 14.0, 0.03)
+    ch = _flat_channel(
+        f, average_db=-dip, raw_correction_db=dip, boost_withheld_db=dip.copy()
+    )
+    text = " ".join(summary.channel_sentences(f, ch, max_boost_db=4.0))
+    assert "a 14 dB dip at 87 Hz is a cancellation" in text
+    assert "waste 14 dB of headroom, so it was left" in text
+
+
+def test_disagreeing_positions_and_cap_are_told_apart():
+    f = log_grid()
+    # a broad shallow dip where positions disagree by 5 dB: refused because of the spread
+    dip = _bump(f, 300.0, 5.0, 0.3)
+    ch = _flat_channel(
+        f,
+        average_db=-dip,
+        raw_correction_db=dip,
+        boost_withheld_db=dip.copy(),
+        spread_db=np.where(dip > 1, 5.0, 0.5),
+    )
+    regions = summary.withheld_regions(f, ch, 4.0)
+    assert regions[0]["reason"] == "spread"
+    assert regions[0]["freq_hz"] == pytest.approx(300, rel=0.01)
+    # a broad 8 dB dip filled up to the 4 dB cap: refused because of the cap
+    dip = _bump(f, 2000.0, 8.0, 0.5)
+    ch = _flat_channel(
+        f,
+        average_db=-dip,
+        raw_correction_db=dip,
+        correction_db=np.minimum(dip, 4.0),
+        boost_withheld_db=np.maximum(dip - 4.0, 0.0),
+    )
+    regions = summary.withheld_regions(f, ch, 4.0)
+    assert [r["reason"] for r in regions] == ["cap"]
+    text = " ".join(summary.channel_sentences(f, ch, 4.0))
+    assert "lifted by 4.0 dB only" in text
+
+
+def test_cuts_and_pre_gain_are_reported():
+    f = log_grid()
+    peak = _bump(f, 62.0, 10.0, 0.1)
+    ch = _flat_channel(f, average_db=peak, raw_correction_db=-peak, correction_db=-peak)
+    curves = {"freq_hz": f, "pre_gain_db": -3.24, "channels": [ch]}
+    lines = summary.summary_sentences(curves, 4.0)
+    assert any("10.0 dB at 62 Hz" in s and "cut" in s for s in lines)
+    assert any("lowered by 3.2 dB" in s for s in lines)
+    assert any("between 30 Hz and 16 kHz" in s for s in lines)
+
+
+def test_fmt_hz():
+    assert [summary.fmt_hz(x) for x in (87.2, 120, 1234, 15000)] == [
+        "87 Hz", "120 Hz", "1.2 kHz", "15 kHz"
+    ]
+
+
+# ----------------------------------------------------------------------------- filter analysis
+
+
+def test_filter_response_of_a_pure_delay():
+    # analytic: a delay of k samples has 0 dB gain, phase -2 pi f k / fs, group delay k / fs
+    k = 48
+    h = np.zeros(256)
+    h[k] = 1.0
+    f = np.array([100.0, 1000.0, 5000.0, 30000.0])
+    gain, phase, gd = rh.filter_response(h, FS, f)
+    np.testing.assert_allclose(gain[:3], 0.0, atol=1e-9)
+    want = np.degrees(np.angle(np.exp(-2j * np.pi * f[:3] * k / FS)))
+    np.testing.assert_allclose(phase[:3], want, atol=1e-6)
+    np.testing.assert_allclose(gd[:3], 1000.0 * k / FS, rtol=1e-9)
+    assert np.isnan(gain[3])  # above Nyquist
+
+
+def _synthetic_room(n_pos=2, dur_s=0.8, seed=5):
+    """An invented small room: direct sound, one wall reflection, two modes, diffuse tail."""
+    rng = np.random.default_rng(seed)
+    n = int(dur_s * FS)
+    t = np.arange(n) / FS
+    irs = np.zeros((n_pos, 1, n))
+    for p in range(n_pos):
+        t0 = 0.004 + 0.0005 * p
+        i0 = int(t0 * FS)
+        irs[p, 0, i0] = 1.0
+        irs[p, 0, i0 + int(0.0031 * FS)] += 0.6
+        tt = np.clip(t - t0, 0, None) * (t >= t0)
+        irs[p, 0] += 0.05 * np.sin(2 * np.pi * 52 * tt) * 10 ** (-3 * tt / 0.9) * (t >= t0)
+        irs[p, 0] += 0.03 * np.sin(2 * np.pi * 130 * tt) * 10 ** (-3 * tt / 0.4) * (t >= t0)
+        irs[p, 0] += 0.02 * rng.standard_normal(n) * 10 ** (-3 * tt / 0.35) * (t >= t0)
+        irs[p, 0] += 1e-5 * rng.standard_normal(n)
+    return irs
+
+
+def test_predicted_response_of_a_plain_gain():
+    # convolving with 0.5 * delta lowers every position by 20 log10(0.5) = -6.02 dB (analytic)
+    irs = _synthetic_room()[:, 0]
+    f = log_grid()
+    fir = np.zeros(64)
+    fir[0] = 0.5
+    measured = np.zeros((irs.shape[0], f.size))
+    pred, conv = rh.predicted_responses(irs, FS, fir, f, measured)
+    m = (f > 30) & (f < 20000)
+    np.testing.assert_allclose(pred[:, m], 20 * np.log10(0.5), atol=1e-6)
+    np.testing.assert_allclose(conv, 0.5 * irs, atol=1e-12)
+
+
+# ----------------------------------------------------------------------------- the whole page
+
+
+@pytest.fixture(scope="module")
+def design_folder(tmp_path_factory):
+    from roomcorr.export import write_design
+    from roomcorr.pipeline import run_design
+    from roomcorr.settings import DesignSettings, Settings
+
+    out = tmp_path_factory.mktemp("design") / "out"
+    settings = Settings(design=DesignSettings(sample_rates=(44100, 48000)), measure={})
+    result = run_design(_synthetic_room(), FS, settings)
+    write_design(result, out)
+    path = rh.write_report(out, dpi=60)
+    return out, path
+
+
+CHANNEL_SECTIONS = ["room", "result", "filter", "time", "decay", "ringing"]
+
+
+def test_every_section_and_figure_present(design_folder):
+    out, path = design_folder
+    assert path == out / "report.html"
+    page = path.read_text(encoding="utf-8")
+    for sid in ["overview", "safety"] + [f"{s}-mono" for s in CHANNEL_SECTIONS]:
+        assert f'<section id="{sid}">' in page, sid
+    keys = re.findall(r'data-figure="([^"]+)"', page)
+    assert keys == [f"mono-{s}" for s in CHANNEL_SECTIONS]
+    pngs = sorted(p.name for p in (out / "report").glob("*.png"))
+    assert pngs == sorted(f"{k}.png" for k in keys)
+    for p in (out / "report").glob("*.png"):
+        assert p.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    # the decay table, the safety table (one row per rate) and the cautions
+    assert "T30 (s)" in page and "worst-case gain (dB)" in page
+    assert page.count("<td>mono</td>") == 2
+    assert "protect your hearing" in page
+
+
+def test_page_is_self_contained(design_folder):
+    _, path = design_folder
+    page = path.read_text(encoding="utf-8")
+    srcs = re.findall(r'src="([^"]+)"', page)
+    assert srcs and all(s.startswith("data:image/png;base64,") for s in srcs)
+    assert "http://" not in page and "https://" not in page
+    assert "<link" not in page and "<script" not in page
+
+
+def test_report_files_are_in_the_manifest(design_folder):
+    from roomcorr.export import read_manifest, sha256_of
+
+    out, _ = design_folder
+    files = {e["path"]: e for e in read_manifest(out)["files"]}
+    assert files["report.html"]["kind"] == "report"
+    assert files["report.html"]["sha256"] == sha256_of(out / "report.html")
+    assert files["report/mono-decay.png"]["kind"] == "report-figure"
+
+
+def test_summary_sentences_head_the_page(design_folder):
+    from roomcorr.export import load_design_curves, read_manifest
+
+    out, path = design_folder
+    page = path.read_text(encoding="utf-8")
+    caps = read_manifest(out)["settings"]["design"]["max_boost_db"]
+    first = summary.summary_sentences(load_design_curves(out), caps)[0]
+    import html
+
+    assert page.index(html.escape(first)) < page.index('id="room-mono"')
+
+
+def test_measurement_folder_report_with_quality(tmp_path):
+    from roomcorr.audio_io import write_wav
+
+    irs = _synthetic_room(n_pos=2, dur_s=0.6)
+    for p in range(irs.shape[0]):
+        write_wav(tmp_path / f"pos{p + 1}.wav", irs[p], FS)
+    quality = {
+        "snr_db": {"63": 52.0, "125": 60.0, "1k": 71.0},
+        "distortion": {"freq_hz": [50, 100, 1000], "thd_percent": [3.0, 1.0, 0.3]},
+        "repeat_agreement_db": {"freq_hz": [50, 100, 1000], "db": [0.4, 0.2, 0.1]},
+    }
+    (tmp_path / "measurement.json").write_text(json.dumps({"quality": quality}))
+    page = rh.write_report(tmp_path, dpi=50).read_text(encoding="utf-8")
+    keys = re.findall(r'data-figure="([^"]+)"', page)
+    assert keys == ["mono-room", "mono-decay", "mono-ringing", "quality"]
+    assert "measurements only" in page
+    assert 'id="safety"' not in page  # no filters, no filter levels
+
+
+def test_not_a_report_folder(tmp_path):
+    from roomcorr.errors import InputFileError
+
+    with pytest.raises(InputFileError, match="neither a design folder"):
+        rh.write_report(tmp_path)
+
+
+# ----------------------------------------------------------------------------- real browser
+
+
+def _chromium() -> str | None:
+    for name in ("chromium", "chromium-browser"):
+        p = shutil.which(name)
+        if p:
+            return p
+    return None
+
+
+def test_renders_in_headless_chromium(design_folder, tmp_path):
+    exe = _chromium()
+    if exe is None:
+        if os.environ.get("CI") == "true":
+            pytest.fail("chromium is not installed (the CI script must install it)")
+        pytest.skip("chromium not installed")
+    _, path = design_folder
+    shot = tmp_path / "shot.png"
+    cmd = [
+        exe, "--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
+        "--disable-background-networking", "--disable-component-update", "--disable-sync",
+        f"--user-data-dir={tmp_path / 'profile'}", f"--screenshot={shot}",
+        "--window-size=1200,3000", path.resolve().as_uri(),
+    ]
+    subprocess.run(cmd, capture_output=True, timeout=120, check=False)
+    assert shot.is_file(), "chromium wrote no screenshot"
+    from matplotlib.image import imread
+
+    img = imread(shot)[..., :3]
+    assert img.shape[0] >= 1000 and img.shape[1] >= 1000
+    # not blank: many pixels differ from the page background, and colours vary
+    background = np.median(img.reshape(-1, 3), axis=0)
+    differs = np.any(np.abs(img - background) > 0.1, axis=-1)
+    assert differs.mean() > 0.05
+    assert img.std() > 0.05
