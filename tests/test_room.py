@@ -225,8 +225,8 @@ def test_sigkill_mid_run_leaves_earlier_runs_intact_and_no_half_run(room: R.Room
         ):
             with R.new_run(room, "measurement"):
                 pass
-        os.kill(proc.pid, signal.SIGKILL)
     finally:
+        os.kill(proc.pid, signal.SIGKILL)  # also on a failed assertion above: never leave it
         proc.wait()
     assert proc.returncode == -signal.SIGKILL
     killed = Path(flag.read_text())
@@ -253,8 +253,11 @@ def test_sigint_mid_design_run(room: R.Room, tmp_path):
     try:
         _wait_for(flag, proc)
         os.kill(proc.pid, signal.SIGINT)  # Ctrl-C
+        proc.wait(timeout=60)
     finally:
-        proc.wait()
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait()
     assert proc.returncode != 0
     killed = Path(flag.read_text())
     assert not (killed / R.COMPLETE_MARKER).exists()
