@@ -42,18 +42,18 @@ def _cookbook_curve(fs_design: float) -> tuple[np.ndarray, np.ndarray]:
 
 def test_default_n_taps_examples_and_rule():
     # rule from the docstring: shortest power of two with fs/N <= f_low/6, at least 4096
-    assert default_n_taps(48000, 20) == 16384  # 48000*6/20 = 14400 -> 16384
-    assert default_n_taps(44100, 20) == 16384  # 13230 -> 16384
-    assert default_n_taps(96000, 20) == 32768  # 28800 -> 32768
-    assert default_n_taps(48000, 200) == 4096  # 1440 -> floor of 4096
-    assert default_n_taps(48000, 30) == 16384  # 9600 -> 16384
-    assert default_n_taps(48000, 60) == 8192  # 4800 -> 8192
+    assert default_n_taps(48000, 20) == 32768  # 48000*12/20 = 28800 -> 32768
+    assert default_n_taps(44100, 20) == 32768  # 26460 -> 32768
+    assert default_n_taps(96000, 20) == 65536  # 57600 -> 65536
+    assert default_n_taps(48000, 400) == 4096  # 1440 -> floor of 4096
+    assert default_n_taps(48000, 30) == 32768  # 19200 -> 32768
+    assert default_n_taps(48000, 60) == 16384  # 9600 -> 16384
     for fs in (8000, 44100, 48000, 88200, 96000, 192000):
         for f_low in (5.0, 10.0, 20.0, 25.0, 50.0, 100.0, 1000.0):
             n = default_n_taps(fs, f_low)
             assert n & (n - 1) == 0 and n >= 4096
-            assert fs / n <= f_low / 6
-            assert n == 4096 or fs / (n // 2) > f_low / 6  # shortest
+            assert fs / n <= f_low / 12
+            assert n == 4096 or fs / (n // 2) > f_low / 12  # shortest
     with pytest.raises(ValueError, match="f_low_hz"):
         default_n_taps(48000, 0)
     with pytest.raises(ValueError, match="fs"):

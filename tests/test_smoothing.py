@@ -284,18 +284,20 @@ def test_variable_width_rule():
     f = np.array([0.0, 10.0, 50.0, 100.0, np.sqrt(1e5), 1000.0, 5000.0, 24000.0])
     w = variable_width_oct(f)
     np.testing.assert_allclose(w[:4], 1 / 48, rtol=1e-12)
-    np.testing.assert_allclose(w[5:], 1 / 6, rtol=1e-12)
+    np.testing.assert_allclose(w[5:], 1 / 8, rtol=1e-12)
     # Midway in log frequency (316 Hz) the log width is midway: geometric mean.
     assert w[4] == pytest.approx(np.sqrt(VW_NARROW_OCT * VW_WIDE_OCT), rel=1e-12)
     fine = np.geomspace(50, 2000, 2000)
     wf = variable_width_oct(fine)
     assert np.all(np.diff(wf) >= 0)
     # Raised cosine in log frequency: the slope of log width against log frequency
-    # is 0 at both ends and peaks mid-way at log2(8) * (pi / 2) / log2(10) = 1.419.
+    # is 0 at both ends and peaks mid-way at log2(wide/narrow) * (pi / 2) / log2(10).
     slope = np.diff(np.log2(wf)) / np.diff(np.log2(fine))
     assert abs(slope[np.searchsorted(fine, 100.5)]) < 0.02
     assert abs(slope[np.searchsorted(fine, 995.0)]) < 0.02
-    assert slope.max() == pytest.approx(3 * (np.pi / 2) / np.log2(10), rel=1e-3)
+    assert slope.max() == pytest.approx(
+        np.log2(VW_WIDE_OCT / VW_NARROW_OCT) * (np.pi / 2) / np.log2(10), rel=1e-3
+    )
 
 
 def test_variable_width_reduces_to_fixed_width_when_constant():
