@@ -196,12 +196,12 @@ def _band_mean_power(
 def smoothed_response_db(
     irs: np.ndarray, fs: int, freq_hz: np.ndarray, fraction: int = EXTREMA_SMOOTHING
 ) -> np.ndarray:
-    """Power response on ``freq_hz``, averaged over 1/``fraction``-octave bands, in dB.
+    """Power response on ``freq_hz``, smoothed over 1/``fraction`` octave, in dB.
 
-    The mean power over ``[f 2^(-1/(2 fraction)), f 2^(1/(2 fraction))]`` at
-    each grid frequency (spectrum zero-padded to at least 2 s, the bins
-    integrated with the trapezoid rule), a fractional-octave power smoothing
-    with a rectangular window on the log axis.
+    The spectrum (zero-padded to at least 2 s) is smoothed onto the grid with
+    :func:`roomcorr.analysis.smoothing.smooth_bins_to_grid`: the mean power
+    over ``[f 2^(-1/(2 fraction)), f 2^(1/(2 fraction))]``, uniform on the
+    log-frequency axis.
 
     Parameters
     ----------
@@ -213,17 +213,18 @@ def smoothed_response_db(
     Returns
     -------
     ndarray, shape (..., n_freqs)
-        ``10 log10`` of the mean of ``|H(f)|^2`` (0 dB for a unit impulse).
+        ``10 log10`` of the smoothed ``|H(f)|^2`` (0 dB for a unit impulse).
 
     References
     ----------
-    P. D. Hatziantoniou and J. N. Mourjopoulos, "Generalized fractional-octave
-    smoothing of audio and acoustic responses", JAES 48(4), 2000.
+    J. G. Tylka, B. B. Boren and E. Y. Choueiri, "A generalized method for
+    fractional-octave smoothing of transfer functions that preserves log-frequency
+    symmetry", JAES 65(3), 2017.
     """
+    from roomcorr.analysis.smoothing import smooth_bins_to_grid
+
     f_bins, power = _spectrum_power(irs, fs)
-    half = 2.0 ** (0.5 / fraction)
-    f = np.asarray(freq_hz, dtype=float)
-    p = _band_mean_power(f_bins, power, f / half, np.minimum(f * half, fs / 2))
+    p = smooth_bins_to_grid(power, f_bins, np.asarray(freq_hz, dtype=float), 1.0 / fraction)
     return 10.0 * np.log10(np.maximum(p, 1e-30))
 
 
