@@ -280,3 +280,17 @@ def test_filter_fit_narrow_large_miss_is_not_fit():
     assert fit["old_rms_db"] == pytest.approx(8 * np.sqrt((1 / n) * (1 - 1 / n)), abs=0.01)
     assert fit["old_max_db"] == pytest.approx(8 * (1 - 1 / n), abs=0.01)
     assert not fit["still_fit"]
+
+
+def test_numpy_helpers_match_scipy():
+    # The arrival code avoids importing scipy.signal; its two helpers must
+    # agree with scipy's tukey window and FFT resampling.
+    from scipy.signal import resample
+    from scipy.signal.windows import tukey
+
+    for n in (7, 48, 120, 121):
+        assert np.allclose(cmp._tukey(n, 0.5), tukey(n, 0.5), atol=1e-12)
+    x = np.random.default_rng(3).standard_normal(120) * cmp._tukey(120, 0.5)
+    assert np.allclose(cmp._upsample(x, 16), resample(x, 120 * 16), atol=1e-12)
+    x = x[:119]
+    assert np.allclose(cmp._upsample(x, 16), resample(x, 119 * 16), atol=1e-12)

@@ -87,8 +87,6 @@ def _coarse_onset(ir: np.ndarray, fs: int) -> float:
 
 def _direct_segment(ir: np.ndarray, fs: int, onset: float) -> tuple[np.ndarray, int]:
     """Tapered direct-sound segment of ``ir`` and the index of its first sample."""
-    from scipy.signal.windows import tukey
-
     pre = max(4, int(round(DIRECT_PRE_S * fs)))
     post = max(8, int(round(DIRECT_POST_S * fs)))
     start = int(np.floor(onset)) - pre
@@ -97,7 +95,32 @@ def _direct_segment(ir: np.ndarray, fs: int, onset: float) -> tuple[np.ndarray, 
     lo, hi = max(start, 0), min(start + n, ir.size)
     if hi > lo:
         seg[lo - start : hi - start] = ir[lo:hi]
-    return seg * tukey(n, 0.5), start
+    return seg * _tukey(n, 0.5), start
+
+
+def _tukey(n: int, alpha: float) -> np.ndarray:
+    """Tukey (tapered cosine) window, as ``scipy.signal.windows.tukey(n, alpha)``.
+
+    Written out with numpy so that reading arrival times does not import
+    ``scipy.signal`` (slow to load; ``roomcorr history`` uses this).
+    """
+    k = np.arange(n, dtype=float)
+    width = alpha * (n - 1) / 2.0
+    w = np.ones(n)
+    lo = k < width
+    hi = k > (n - 1) - width
+    w[lo] = 0.5 * (1 - np.cos(np.pi * k[lo] / width))
+    w[hi] = 0.5 * (1 - np.cos(np.pi * ((n - 1) - k[hi]) / width))
+    return w
+
+
+def _upsample(x: np.ndarray, factor: int) -> np.ndarray:
+    """Band-limited interpolation by FFT zero padding (as ``scipy.signal.resample``)."""
+    n = x.size
+    spec = np.fft.rfft(x)
+    if n % 2 == 0:
+        spec[-1] *= 0.5  # the Nyquist bin is shared by +/- fs/2 in the longer spectrum
+    return np.fft.irfft(spec, n * factor) * factor
 
 
 def direct_arrival_s(ir: np.ndarray, fs: int) -> float:
@@ -118,11 +141,9 @@ def direct_arrival_s(ir: np.ndarray, fs: int) -> float:
     float
         Arrival time in seconds (time of the direct sound's peak).
     """
-    from scipy.signal import resample
-
     x = np.asarray(ir, dtype=float)
     seg, start = _direct_segment(x, fs, _coarse_onset(x, fs))
-    up = np.abs(resample(seg, seg.size * XCORR_UPSAMPLE))
+    up = np.abs(_upsample(seg, XCORR_UPSAMPLE))
     i = int(np.argmax(up))
     return (start + _parabolic_peak(up, i) / XCORR_UPSAMPLE) / fs
 
