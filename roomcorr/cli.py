@@ -233,11 +233,43 @@ def _run_demo(args: argparse.Namespace) -> int:
     return 0
 
 
+# --------------------------------------------------------------------------- report
+
+
+def _add_report(sub: Any) -> argparse.ArgumentParser:
+    p = sub.add_parser(
+        "report",
+        help="write report.html (and PNG figures) for a design or measurement folder",
+        description="Write one self-contained report.html into DIR (figures embedded, opens "
+        "from disk without network access) plus the figures as PNG files in DIR/report/. "
+        "DIR is a design output folder or a measurement session folder.",
+    )
+    p.add_argument("dir", metavar="DIR", help="design output folder or measurement folder")
+    return p
+
+
+def _run_report(args: argparse.Namespace) -> int:
+    from roomcorr.report.html import write_report
+
+    folder = Path(args.dir)
+    path = write_report(folder)
+    if (folder / "manifest.json").is_file() and (folder / "design.npz").is_file():
+        from roomcorr.export import load_design_curves, read_manifest
+        from roomcorr.report.summary import summary_sentences
+
+        caps = (read_manifest(folder).get("settings") or {}).get("design", {})
+        for line in summary_sentences(load_design_curves(folder), caps.get("max_boost_db")):
+            print(line)
+    print(f"report: {path}")
+    return 0
+
+
 # --------------------------------------------------------------------------- main
 
 _COMMANDS: list[tuple[str, Callable[[Any], argparse.ArgumentParser], Callable[..., int]]] = [
     ("demo", _add_demo, _run_demo),
     ("design", _add_design, _run_design),
+    ("report", _add_report, _run_report),
 ]
 
 

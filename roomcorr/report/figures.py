@@ -357,56 +357,54 @@ def plot_decay_map(
     return fig
 
 
-def plot_quality(quality: dict[str, Any], title: str) -> Any:
-    """Measurement quality: SNR per octave band, distortion versus frequency, repeat agreement.
+def plot_quality(recordings: list[dict[str, Any]], title: str) -> Any:
+    """Measurement quality: SNR per octave band, harmonic distortion, repeat agreement.
 
     Parameters
     ----------
-    quality : dict
-        Any of ``snr_db`` ({band label: dB}), ``distortion`` ({"freq_hz": [...],
-        "thd_percent" or "thd_db": [...]}), ``repeat_agreement_db`` ({"freq_hz": [...],
-        "db": [...]}) or a plain list. Missing parts leave their panel with a note.
+    recordings : list of dict
+        One per recording (position and loudspeaker), as made by
+        :func:`roomcorr.report.html.quality_from_record`: ``label``, ``snr_db``
+        ({band centre: dB}), ``hd_freq_hz`` (list), ``hd_db`` ({order: list of dB}),
+        ``repeat_db`` (float or None).
     """
-    fig = new_figure(9.0, 3.6)
-    axs = fig.subplots(1, 3)
-    snr = quality.get("snr_db")
-    ax = axs[0]
-    if isinstance(snr, dict) and snr:
-        labels = list(snr)
-        vals = [float(snr[k]) for k in labels]
-        ax.bar(range(len(vals)), vals, color=MEAN)
-        ax.set_xticks(range(len(vals)), labels, fontsize=7, rotation=45)
-        ax.axhline(40, color=AIM, lw=1, ls="--")
-        ax.set_ylabel("signal-to-noise (dB)")
-    else:
-        ax.text(0.5, 0.5, "no SNR recorded", ha="center", transform=ax.transAxes)
-    ax.set_title("signal to noise", loc="left", fontsize=10)
-    dist = quality.get("distortion")
-    ax = axs[1]
-    if isinstance(dist, dict) and "freq_hz" in dist:
-        f = np.asarray(dist["freq_hz"], dtype=float)
-        if "thd_percent" in dist:
-            ax.plot(f, np.asarray(dist["thd_percent"], dtype=float), color=AIM)
-            ax.set_ylabel("THD (%)")
-        elif "thd_db" in dist:
-            ax.plot(f, np.asarray(dist["thd_db"], dtype=float), color=AIM)
-            ax.set_ylabel("THD (dB re fundamental)")
-        _freq_axis(ax)
-    else:
-        ax.text(0.5, 0.5, "no distortion recorded", ha="center", transform=ax.transAxes)
-    ax.set_title("harmonic distortion", loc="left", fontsize=10)
-    rep = quality.get("repeat_agreement_db")
-    ax = axs[2]
-    if isinstance(rep, dict) and "freq_hz" in rep:
-        ax.plot(np.asarray(rep["freq_hz"], float), np.asarray(rep["db"], float), color=MEAN)
-        _freq_axis(ax)
-        ax.set_ylabel("repeat difference (dB)")
-    elif isinstance(rep, (int, float)):
-        ax.bar([0], [float(rep)], color=MEAN)
-        ax.set_xticks([0], ["all"])
-        ax.set_ylabel("repeat difference (dB)")
-    else:
-        ax.text(0.5, 0.5, "no repeats recorded", ha="center", transform=ax.transAxes)
-    ax.set_title("repeat agreement", loc="left", fontsize=10)
+    from matplotlib import colormaps
+
+    fig = new_figure(9.0, 3.8)
+    ax1, ax2, ax3 = fig.subplots(1, 3, width_ratios=[1, 1.3, 0.8])
+    cmap = colormaps["tab10"]
+    for k, r in enumerate(recordings):
+        col = cmap(k % 10)
+        snr = r.get("snr_db") or {}
+        if snr:
+            f = np.array([float(x) for x in snr])
+            v = np.array([np.nan if snr[x] is None else float(snr[x]) for x in snr])
+            o = np.argsort(f)
+            ax1.plot(f[o], v[o], marker="o", ms=3, lw=1, color=col, label=r["label"])
+        hf = np.asarray(r.get("hd_freq_hz") or [], dtype=float)
+        for order, vals in (r.get("hd_db") or {}).items():
+            v = np.array([np.nan if x is None else float(x) for x in vals])
+            if hf.size and v.size == hf.size:
+                ax2.plot(hf, v, lw=1, color=col, ls="-" if order == "2" else "--",
+                         label=f"H{order}" if k == 0 else None)
+    ax1.axhline(40, color=AIM, lw=1, ls=":")
+    _freq_axis(ax1, 20, 20000)
+    ax1.set_ylabel("signal-to-noise (dB)")
+    ax1.set_title("signal to noise per octave", loc="left", fontsize=10)
+    ax1.legend(fontsize=6, frameon=False)
+    _freq_axis(ax2, 20, 20000)
+    ax2.set_ylabel("harmonic level (dB re fundamental)")
+    ax2.set_title("harmonic distortion", loc="left", fontsize=10)
+    if ax2.lines:
+        ax2.legend(fontsize=7, frameon=False)
+    labels = [r["label"] for r in recordings]
+    reps = [np.nan if r.get("repeat_db") is None else float(r["repeat_db"]) for r in recordings]
+    ax3.barh(range(len(reps)), np.nan_to_num(reps, nan=0.0), color=MEAN)
+    ax3.set_yticks(range(len(reps)), labels, fontsize=7)
+    ax3.set_xlabel("repeat difference (dB)")
+    ax3.set_title("repeat agreement", loc="left", fontsize=10)
+    if all(np.isnan(reps)):
+        ax3.text(0.5, 0.5, "single sweep:\nno repeats", ha="center", va="center",
+                 transform=ax3.transAxes)
     fig.suptitle(title, x=0.01, ha="left", color=INK)
     return fig

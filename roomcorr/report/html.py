@@ -14,7 +14,6 @@ from __future__ import annotations
 import base64
 import html
 import json
-import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -113,28 +112,34 @@ def predicted_responses(
 
 
 def filter_response(
-    fir: np.ndarray, fs: int, freq_hz: np.ndarray
+    fir: np.ndarray, fs: int, freq_hz: np.ndarray, min_fft: int = 1 << 18
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Gain (dB), wrapped phase (degrees) and group delay (ms) of an FIR on ``freq_hz``.
 
-    Frequencies at or above Nyquist give NaN. Group delay by
-    :func:`scipy.signal.group_delay`.
+    One zero-padded FFT of the taps and one of ``n * h[n]``; group delay is
+    ``Re(FFT(n h) / FFT(h))`` (the standard FIR identity, as in
+    :func:`scipy.signal.group_delay`), read at ``freq_hz`` by linear
+    interpolation between bins at most ``fs / min_fft`` apart. Frequencies at
+    or above Nyquist give NaN.
     """
-    from scipy.signal import freqz, group_delay
-
+    h = np.asarray(fir, dtype=float)
     f = np.asarray(freq_hz, dtype=float)
     ok = f < fs / 2
+    n_fft = max(min_fft, 1 << int(np.ceil(np.log2(8 * h.size))))
+    spec = np.fft.rfft(h, n_fft)
+    ramp = np.fft.rfft(np.arange(h.size) * h, n_fft)
+    bins = np.fft.rfftfreq(n_fft, 1.0 / fs)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        gd_bins = np.real(ramp / spec)
+    re = np.interp(f[ok], bins, spec.real)
+    im = np.interp(f[ok], bins, spec.imag)
     gain = np.full(f.shape, np.nan)
     phase = np.full(f.shape, np.nan)
     gd = np.full(f.shape, np.nan)
-    _, h = freqz(fir, worN=f[ok], fs=fs)
     with np.errstate(divide="ignore"):
-        gain[ok] = 20 * np.log10(np.abs(h))
-    phase[ok] = np.degrees(np.angle(h))
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        _, d = group_delay((fir, [1.0]), w=f[ok], fs=fs)
-    gd[ok] = d / fs * 1000.0
+        gain[ok] = 20 * np.log10(np.hypot(re, im))
+    phase[ok] = np.degrees(np.arctan2(im, re))
+    gd[ok] = np.interp(f[ok], bins, gd_bins) / fs * 1000.0
     return gain, phase, gd
 
 
@@ -179,16 +184,67 @@ def _decay_table(bands: list[Any]) -> list[list[str]]:
     return rows
 
 
-def _quality_section(quality: dict[str, Any], png: Any) -> Section:
+def quality_from_record(record: dict[str, Any]) -> list[dict[str, Any]]:
+    """Per-recording quality figures from a session's ``measurement.json`` record.
+
+    Returns
+    -------
+    list of dict
+        ``label`` ("pos1 out1"), ``snr_db``, ``hd_freq_hz``, ``hd_db``,
+        ``repeat_db`` and ``gates`` (list of gate dicts), one per recording.
+    """
+    out = []
+    for pos in record.get("positions", []) or []:
+        for ch in pos.get("channels", []) or []:
+            fig = ch.get("figures", {}) or {}
+            hd = fig.get("harmonic_distortion", {}) or {}
+            out.append(
+                {
+                    "label": f"pos{pos.get('position', '?')} out{ch.get('output', '?')}",
+                    "snr_db": fig.get("snr_db_per_octave") or {},
+                    "hd_freq_hz": hd.get("fundamental_hz") or [],
+                    "hd_db": hd.get("orders") or {},
+                    "repeat_db": fig.get("repeat_disagreement_db"),
+                    "gates": ch.get("gates") or [],
+                }
+            )
+    return out
+
+
+def _quality_section(recordings: list[dict[str, Any]], png: Any) -> Section:
     from roomcorr.report import figures as fg
 
     sec = Section("quality", SECTION_TITLES["quality"])
     sec.paragraphs.append(
-        "Signal to noise per octave band (40 dB or more is comfortable), harmonic distortion "
-        "of the loudspeaker during the sweep, and how closely repeated sweeps agreed."
+        "Signal to noise per octave band (40 dB or more is comfortable), the loudspeaker's "
+        "harmonic distortion during the sweep (second harmonic solid, third dashed), and how "
+        "far repeated sweeps differed from their mean (lower is better)."
     )
+    failed = [
+        f"{r['label']}: {g.get('name')} ({g.get('message', '')})"
+        for r in recordings
+        for g in r["gates"]
+        if not g.get("passed", True)
+    ]
+    if failed:
+        sec.paragraphs.append("Checks that failed (kept on request): " + "; ".join(failed) + ".")
+    else:
+        sec.paragraphs.append("Every recording passed every quality check.")
+    rows = [["recording", "lowest SNR (dB)", "repeat difference (dB)", "checks passed"]]
+    for r in recordings:
+        snr = [float(v) for v in r["snr_db"].values() if v is not None]
+        rep = r["repeat_db"]
+        rows.append(
+            [
+                r["label"],
+                f"{min(snr):.0f}" if snr else "n/a",
+                "n/a" if rep is None else f"{float(rep):.1f}",
+                f"{sum(bool(g.get('passed')) for g in r['gates'])} of {len(r['gates'])}",
+            ]
+        )
+    sec.table = rows
     sec.figures.append(
-        Figure("quality", "Measurement quality", png(fg.plot_quality(quality, "Measurement")))
+        Figure("quality", "Measurement quality", png(fg.plot_quality(recordings, "Measurement")))
     )
     return sec
 
@@ -206,7 +262,7 @@ def _design_caps(settings: dict[str, Any] | None) -> dict[str, Any]:
 def build_report(
     curves: dict[str, Any],
     settings: dict[str, Any] | None = None,
-    quality: dict[str, Any] | None = None,
+    quality: list[dict[str, Any]] | None = None,
     title: str = "Room correction report",
     dpi: int = 90,
 ) -> Report:
@@ -221,8 +277,8 @@ def build_report(
         design sections are then left out.
     settings : dict, optional
         :func:`roomcorr.settings.settings_to_dict` of the design (caps in force).
-    quality : dict, optional
-        Measurement quality figures (see :func:`roomcorr.report.figures.plot_quality`).
+    quality : list of dict, optional
+        Per-recording quality figures (:func:`quality_from_record`).
     title : str
     dpi : int
         Resolution of the PNGs.
@@ -499,7 +555,7 @@ def render_html(report: Report) -> str:
     return "\n".join(parts)
 
 
-def _read_quality(folder: Path) -> dict[str, Any] | None:
+def _read_quality(folder: Path) -> list[dict[str, Any]] | None:
     p = folder / "measurement.json"
     if not p.is_file():
         return None
@@ -507,8 +563,7 @@ def _read_quality(folder: Path) -> dict[str, Any] | None:
         data = json.loads(p.read_text(encoding="utf-8"))
     except (OSError, json.JSONDecodeError):
         return None
-    q = data.get("quality") if isinstance(data, dict) else None
-    return q if isinstance(q, dict) else None
+    return quality_from_record(data) if isinstance(data, dict) else None
 
 
 def _session_curves(folder: Path) -> dict[str, Any]:
@@ -566,7 +621,14 @@ def write_report(folder: str | Path, dpi: int = 90) -> Path:
         curves = load_design_curves(d)
         manifest = read_manifest(d)
         settings = manifest.get("settings")
-        quality = manifest.get("quality") if isinstance(manifest.get("quality"), dict) else None
+        quality = None
+        for src in manifest.get("measurements") or []:  # the folder the IRs came from
+            parent = Path(str(src)).parent
+            if not parent.is_absolute():
+                parent = Path.cwd() / parent
+            if (parent / "measurement.json").is_file():
+                quality = _read_quality(parent)
+                break
     else:
         curves = _session_curves(d)
         quality = _read_quality(d)

@@ -227,8 +227,9 @@ def channel_sentences(
             "more than 3 dB, so the correction there follows their average and stays gentle."
         )
     out.append(
-        f"{name}: below {fmt_hz(lo)} and above {fmt_hz(hi)} nothing was changed: that is the "
-        "loudspeaker's own roll-off, and boosting it would only cost excursion and headroom."
+        f"{name}: below {fmt_hz(lo)} and above {fmt_hz(hi)}, outside the correction band, "
+        "nothing was changed: lifting a loudspeaker's own roll-off would only cost excursion "
+        "and headroom."
     )
     return out
 
