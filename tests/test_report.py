@@ -7,6 +7,7 @@ import os
 import re
 import shutil
 import subprocess
+import sys
 from pathlib import Path
 
 import numpy as np
@@ -171,6 +172,9 @@ def test_predicted_response_of_a_plain_gain():
 # ----------------------------------------------------------------------------- the whole page
 
 
+_ENV = {**os.environ, "PYTHONPATH": str(Path(__file__).resolve().parent.parent)}
+
+
 @pytest.fixture(scope="module")
 def design_folder(tmp_path_factory):
     from roomcorr.export import write_design
@@ -181,15 +185,20 @@ def design_folder(tmp_path_factory):
     settings = Settings(design=DesignSettings(sample_rates=(44100, 48000)), measure={})
     result = run_design(_synthetic_room(), FS, settings)
     write_design(result, out)
-    path = rh.write_report(out, dpi=60)
-    return out, path
+    # the report is written once, by the command a user would type (checked below)
+    run = subprocess.run(
+        [sys.executable, "-m", "roomcorr", "report", str(out)],
+        capture_output=True, text=True, timeout=300, env=_ENV,
+    )
+    assert run.returncode == 0, run.stderr
+    return out, out / "report.html", run
 
 
 CHANNEL_SECTIONS = ["room", "result", "filter", "time", "decay", "ringing"]
 
 
 def test_every_section_and_figure_present(design_folder):
-    out, path = design_folder
+    out, path, _ = design_folder
     assert path == out / "report.html"
     page = path.read_text(encoding="utf-8")
     for sid in ["overview", "safety"] + [f"{s}-mono" for s in CHANNEL_SECTIONS]:
@@ -207,7 +216,7 @@ def test_every_section_and_figure_present(design_folder):
 
 
 def test_page_is_self_contained(design_folder):
-    _, path = design_folder
+    _, path, _ = design_folder
     page = path.read_text(encoding="utf-8")
     srcs = re.findall(r'src="([^"]+)"', page)
     assert srcs and all(s.startswith("data:image/png;base64,") for s in srcs)
@@ -218,7 +227,7 @@ def test_page_is_self_contained(design_folder):
 def test_report_files_are_in_the_manifest(design_folder):
     from roomcorr.export import read_manifest, sha256_of
 
-    out, _ = design_folder
+    out, _, _ = design_folder
     files = {e["path"]: e for e in read_manifest(out)["files"]}
     assert files["report.html"]["kind"] == "report"
     assert files["report.html"]["sha256"] == sha256_of(out / "report.html")
@@ -228,7 +237,7 @@ def test_report_files_are_in_the_manifest(design_folder):
 def test_summary_sentences_head_the_page(design_folder):
     from roomcorr.export import load_design_curves, read_manifest
 
-    out, path = design_folder
+    out, path, _ = design_folder
     page = path.read_text(encoding="utf-8")
     caps = read_manifest(out)["settings"]["design"]["max_boost_db"]
     first = summary.summary_sentences(load_design_curves(out), caps)[0]
@@ -298,7 +307,7 @@ def test_renders_in_headless_chromium(design_folder, tmp_path):
         if os.environ.get("CI") == "true":
             pytest.fail("chromium is not installed (the CI script must install it)")
         pytest.skip("chromium not installed")
-    _, path = design_folder
+    _, path, _ = design_folder
     shot = tmp_path / "shot.png"
     cmd = [
         exe, "--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
@@ -323,20 +332,12 @@ def test_renders_in_headless_chromium(design_folder, tmp_path):
 
 
 def test_cli_report_command(design_folder, tmp_path):
-    import sys
-
-    out, _ = design_folder
-    env = {**os.environ, "PYTHONPATH": str(Path(__file__).resolve().parent.parent)}
-    run = subprocess.run(
-        [sys.executable, "-m", "roomcorr", "report", str(out)],
-        capture_output=True, text=True, timeout=300, env=env,
-    )
-    assert run.returncode == 0, run.stderr
+    out, _, run = design_folder
     assert "corrected between" in run.stdout
     assert run.stdout.strip().splitlines()[-1] == f"report: {out / 'report.html'}"
     bad = subprocess.run(
         [sys.executable, "-m", "roomcorr", "report", str(tmp_path / "missing")],
-        capture_output=True, text=True, timeout=300, env=env,
+        capture_output=True, text=True, timeout=300, env=_ENV,
     )
     assert bad.returncode == 2
     assert len(bad.stderr.strip().splitlines()) == 1 and "no such folder" in bad.stderr
