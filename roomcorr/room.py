@@ -7,7 +7,7 @@ Public functions (the signatures other commands rely on)::
     open_room(path) -> Room                      # raises SettingsError if not a room
     init_room(path, name=None) -> Room           # creates the folder and settings file
     load_room_settings(room) -> Settings         # reads (and upgrades) roomcorr-room.toml
-    room_lock(room, command="") -> context manager (re-entrant in one process)
+    room_lock(room, purpose="") -> context manager (re-entrant in one process)
     new_run(room, kind, info=None) -> context manager yielding the run folder (Path)
         kind is "measurement" or "design". Takes the room lock, creates a new
         time-stamped folder, and writes its "complete" marker only when the
@@ -302,7 +302,7 @@ def init_room(path: str | os.PathLike[str], name: str | None = None) -> Room:
     except OSError as exc:
         raise OutputError(f"{path}: cannot create the folder ({exc.strerror})") from None
     room = Room(root)
-    with room_lock(room, "init"):
+    with room_lock(room, "creating the room folder"):
         if room.settings_path.exists():  # another init won the race
             raise OutputError(f"{root}: already a room folder ({SETTINGS_FILE} exists)")
         for sub in KINDS.values():
@@ -379,22 +379,32 @@ def _holder_note(path: Path) -> str:
     try:
         info = json.loads(path.read_text(encoding="utf-8") or "{}")
     except (OSError, json.JSONDecodeError):
-        return "another roomcorr command"
+        info = {}
     if not info:
         return "another roomcorr command"
+    what = f", {info['purpose']}" if info.get("purpose") else ""
     return (
-        f"'roomcorr {info.get('command') or '?'}' (process {info.get('pid')} on "
-        f"{info.get('host')}, since {info.get('since')})"
+        f"process {info.get('pid')} on {info.get('host')} since {info.get('since')} "
+        f"('{info.get('command') or 'roomcorr'}'{what})"
     )
 
 
+def _command_line() -> str:
+    args = [Path(sys.argv[0]).name if sys.argv else "python", *sys.argv[1:3]]
+    if args[0] in ("__main__.py", "roomcorr", "-m", "-c"):
+        args[0] = "roomcorr"
+    return " ".join(args)
+
+
 @contextlib.contextmanager
-def room_lock(room: Room, command: str = "") -> Iterator[None]:
+def room_lock(room: Room, purpose: str = "") -> Iterator[None]:
     """Hold the room's lock for the duration of the block.
 
     The lock is an advisory ``flock`` on ``.roomcorr-lock``; the operating
     system releases it when the process ends in any way (even killed), so a
     crash never leaves a stale lock. Re-entrant within one process.
+    ``purpose`` (e.g. "writing a measurement") appears in the message another
+    command gets while the lock is held.
 
     Raises
     ------
@@ -425,11 +435,13 @@ def room_lock(room: Room, command: str = "") -> Iterator[None]:
     note = {
         "pid": os.getpid(),
         "host": socket.gethostname(),
-        "command": command,
+        "command": _command_line(),
+        "purpose": purpose,
         "since": _iso(_utc_now()),
     }
     os.ftruncate(fd, 0)
-    os.pwrite(fd, json.dumps(note).encode(), 0)
+    os.lseek(fd, 0, os.SEEK_SET)
+    os.write(fd, json.dumps(note).encode())
     _HELD[key] = [fd, 1]
     try:
         yield
@@ -580,7 +592,7 @@ def new_run(room: Room, kind: str, info: dict[str, Any] | None = None) -> Iterat
     """
     if kind not in KINDS:
         raise ValueError(f"kind must be one of {sorted(KINDS)}, not {kind!r}")
-    with room_lock(room, kind):
+    with room_lock(room, f"writing a {kind}"):
         started = _utc_now()
         run_dir = _make_run_dir(room, kind)
         snapshot_sha = None
