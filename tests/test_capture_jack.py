@@ -1,0 +1,158 @@
+"""Measurement through a real audio server: JACK (dummy backend) + a test room client.
+
+The room (tests/jack_room.py) convolves what it receives with a known impulse
+response, adds seeded noise and optionally y = x + a x^2, and sends it back;
+roomcorr plays and records through sounddevice's JACK host API.
+"""
+
+import builtins
+import json
+import sys
+
+import numpy as np
+import pytest
+import soundfile as sf
+from jack_fixtures import FS, jack_server, make_room  # noqa: F401  (pytest fixtures)
+
+from roomcorr.errors import DeviceError
+from roomcorr.measure import capture
+from roomcorr.measure.deconvolve import band_energy_error_db
+from roomcorr.measure.quality import QualityGateError
+from roomcorr.measure.session import (
+    NO_LOOPBACK_NOTE,
+    analyse_recording,
+    make_sweep,
+    run_measurement,
+    sweep_layout,
+)
+from roomcorr.measure.settings import MeasureSettings
+from roomcorr.measure.sweep import playback_signal
+
+DELAY = 280  # samples: about 2 m of air at 48 kHz
+
+
+def known_ir():
+    rng = np.random.default_rng(11)
+    h = np.zeros(4800)
+    h[DELAY] = 0.5
+    h[DELAY + 150] = -0.2
+    m = len(h) - DELAY
+    h[DELAY:] += 0.02 * rng.standard_normal(m) * np.exp(-np.arange(m) / 600)
+    return h
+
+
+SHORT = {"sweep_s": 1.0, "noise_s": 0.2, "tail_s": 0.35, "ir_s": 0.2, "test_s": 0.2}
+QUICK = dict(SHORT, sweep_s=0.5, tail_s=0.32)
+
+
+def measure_retrying_on_xruns(ms, out, attempts=3, **kw):
+    """Run a measurement; retry when the only failed gate is dropped buffers.
+
+    On a loaded 2-core CI machine the dummy JACK driver can miss a deadline; the
+    buffer gate then rightly refuses the take (a user would measure again).
+    """
+    import shutil
+
+    for i in range(attempts):
+        try:
+            return run_measurement(ms, out, yes=True, **kw)
+        except QualityGateError as exc:
+            stored = json.loads((out / "measurement.json").read_text())
+            failed = {g["name"] for ch in stored["positions"][-1]["channels"]
+                      for g in ch["gates"] if not g["passed"]}
+            if failed != {"buffers"} or i == attempts - 1:
+                raise
+            print(f"retrying after dropped buffers: {exc}")
+            shutil.rmtree(out)
+    raise AssertionError("unreachable")
+
+
+def test_measure_matches_room_removes_latency_and_sees_distortion(make_room, tmp_path):  # noqa: F811
+    h = known_ir()
+    a2 = 1.0
+    make_room("roomsim_a", {"speakers": [{"ir": h.tolist()},
+                                         {"ir": [0.0] * 100 + [0.5], "a2": a2}],
+                            "loopback": True, "noise_rms": 1e-4, "seed": 1})
+    ms = MeasureSettings(device="roomsim_a", outputs=(1, 2), input=1, loopback=(3, 2),
+                         repeats=2, **SHORT)
+    lines = []
+    rec = measure_retrying_on_xruns(ms, tmp_path / "out", say=lines.append)
+    out = tmp_path / "out"
+    assert any("protect your hearing" in s for s in lines)
+    ir, fs = sf.read(out / "pos1.wav", always_2d=True)
+    assert fs == FS and ir.shape == (round(0.2 * FS), 2)
+    assert sf.info(out / "pos1.wav").subtype == "FLOAT"
+    assert (out / "raw" / "pos1_out1.wav").exists() and (out / "raw" / "pos1_out2.wav").exists()
+    stored = json.loads((out / "measurement.json").read_text())
+    assert stored["loopback"] is True and stored["positions"][0]["file"] == "pos1.wav"
+
+    ref = np.r_[h, np.zeros(ir.shape[0] - len(h))]
+    # The known response comes back: error >= 40 dB below it (the lowest sweep octave is
+    # left out, where the band limit of any sweep measurement rings beyond the window).
+    assert band_energy_error_db(ir[:, 0], ref, FS, 100, 16000) < -40
+    # ...and, across the whole sweep band, it equals the offline, noise-free deconvolution
+    # of the same room (scipy convolution, no audio server, no latency).
+    sw = make_sweep(ms)
+    play = playback_signal(sw, ms.noise_s, ms.tail_s, ms.repeats)
+    from scipy.signal import fftconvolve
+
+    offline = fftconvolve(play, h)[: len(play)]
+    ir_off, _, _ = analyse_recording(offline, play, sweep_layout(ms))
+    assert band_energy_error_db(ir[:, 0], ir_off, FS, 20, 20000) < -40
+
+    fig1 = stored["positions"][0]["channels"][0]["figures"]
+    # latency removed with the loopback: the arrival is the room's own delay
+    assert fig1["arrival_s"] * FS == pytest.approx(DELAY, abs=0.1)
+    assert fig1["latency_s"] > 0
+    assert all(g["passed"] for g in stored["positions"][0]["channels"][0]["gates"])
+
+    # y = x + a x^2 with sine amplitude A: 2nd harmonic a A^2 / 2, i.e. a A / 2 relative to
+    # the fundamental (trig identity x^2 = A^2/2 (1 - cos 2 phi))
+    hd = rec["positions"][0]["channels"][1]["figures"]["harmonic_distortion"]
+    f = np.array(hd["fundamental_hz"])
+    hd2 = np.array([np.nan if v is None else v for v in hd["orders"]["2"]])
+    sel = (f >= 200) & (f <= 5000)
+    expected = 20 * np.log10(a2 * sw.amplitude / 2)
+    assert np.nanmedian(hd2[sel]) == pytest.approx(expected, abs=0.5)
+    assert np.nanmax(np.abs(hd2[sel] - expected)) < 1.5
+
+
+def test_disconnected_speaker_is_caught(make_room, tmp_path):  # noqa: F811
+    make_room("roomsim_b", {"speakers": [{"ir": None}], "noise_rms": 1e-3, "seed": 2})
+    ms = MeasureSettings(device="roomsim_b", outputs=(1,), input=1, repeats=1, **QUICK)
+    with pytest.raises(QualityGateError, match="no arrival"):
+        run_measurement(ms, tmp_path / "out", yes=True, say=lambda s: None)
+    stored = json.loads((tmp_path / "out" / "measurement.json").read_text())
+    assert stored["latency_note"] == NO_LOOPBACK_NOTE
+    gates = {g["name"]: g["passed"] for g in stored["positions"][0]["channels"][0]["gates"]}
+    assert gates["arrival"] is False
+    assert not (tmp_path / "out" / "pos1.wav").exists()
+    assert (tmp_path / "out" / "raw" / "pos1_out1.wav").exists()  # what was recorded is kept
+
+
+def test_clipped_input_is_caught(make_room, tmp_path):  # noqa: F811
+    make_room("roomsim_c", {"speakers": [{"ir": [0.0] * 50 + [1.0]}], "gain": 30.0,
+                            "noise_rms": 1e-4, "seed": 3})
+    ms = MeasureSettings(device="roomsim_c", outputs=(1,), input=1, repeats=1, **QUICK)
+    lines = []
+    with pytest.raises(QualityGateError, match="clipping"):
+        run_measurement(ms, tmp_path / "out", yes=True, say=lines.append)
+    # the quiet test signal predicted it and said what to do
+    assert any("level check" in s and "lower" in s for s in lines)
+
+
+def test_missing_portaudio_is_a_device_error(monkeypatch):
+    monkeypatch.setitem(sys.modules, "sounddevice", None)  # import now raises ImportError
+    with pytest.raises(DeviceError, match="measure"):
+        capture.list_devices()
+    real_import = builtins.__import__
+
+    def no_portaudio(name, *args, **kwargs):
+        if name == "sounddevice":
+            raise OSError("PortAudio library not found")
+        return real_import(name, *args, **kwargs)
+
+    monkeypatch.delitem(sys.modules, "sounddevice")
+    monkeypatch.setattr(builtins, "__import__", no_portaudio)
+    with pytest.raises(DeviceError, match="libportaudio2"):
+        capture.list_devices()
