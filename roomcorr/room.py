@@ -580,8 +580,9 @@ def new_run(room: Room, kind: str, info: dict[str, Any] | None = None) -> Iterat
     Yields
     ------
     Path
-        The new, empty run folder (the room's settings file is copied in as
-        ``room-settings.toml`` so each run records the settings it started with).
+        The new, empty run folder. When the block succeeds, the room's settings
+        file as it was at the start is copied in as ``room-settings.toml`` (so
+        each run records the settings it started with), then ``complete.json``.
 
     Notes
     -----
@@ -595,12 +596,12 @@ def new_run(room: Room, kind: str, info: dict[str, Any] | None = None) -> Iterat
     with room_lock(room, f"writing a {kind}"):
         started = _utc_now()
         run_dir = _make_run_dir(room, kind)
-        snapshot_sha = None
-        if room.settings_path.is_file():
-            data = room.settings_path.read_bytes()
-            atomic_write_bytes(run_dir / SETTINGS_SNAPSHOT, data)
-            snapshot_sha = _sha256(run_dir / SETTINGS_SNAPSHOT)
+        snapshot = room.settings_path.read_bytes() if room.settings_path.is_file() else None
         yield run_dir
+        snapshot_sha = None
+        if snapshot is not None:  # written at the end: writers may want an empty folder
+            atomic_write_bytes(run_dir / SETTINGS_SNAPSHOT, snapshot)
+            snapshot_sha = _sha256(run_dir / SETTINGS_SNAPSHOT)
         files = {p.relative_to(run_dir).as_posix(): _sha256(p) for p in _run_files(run_dir)}
         marker = {
             "kind": kind,
@@ -610,7 +611,7 @@ def new_run(room: Room, kind: str, info: dict[str, Any] | None = None) -> Iterat
             "finished_utc": _iso(_utc_now()),
             "roomcorr_version": _version(),
             "room_settings_sha256": snapshot_sha,
-            "command": " ".join(Path(a).name if i == 0 else a for i, a in enumerate(sys.argv)),
+            "command": _command_line(),
             "info": dict(info or {}),
             "files": files,
         }

@@ -387,3 +387,16 @@ def test_text_output_names_the_figures(room: R.Room):
     assert "ISO 9613-1" in out and "right:" in out and "distance +0.2" in out
     assert "filter check against" in out
     json.dumps(res)  # plain JSON types only
+
+
+def test_new_run_folder_starts_empty_and_records_settings(room: R.Room):
+    start = room.settings_path.read_bytes()
+    with R.new_run(room, "measurement") as d:
+        assert list(d.iterdir()) == []  # writers that insist on an empty folder accept it
+        room.settings_path.write_bytes(start.replace(b"max_cut_db = 15.0", b"max_cut_db = 9.0"))
+        write_wav(d / "pos1.wav", np.ones((2, 4800)) * 0.1, FS)
+    assert (d / R.SETTINGS_SNAPSHOT).read_bytes() == start  # as at the start of the run
+    import hashlib
+
+    marker = json.loads((d / R.COMPLETE_MARKER).read_text())
+    assert marker["room_settings_sha256"] == hashlib.sha256(start).hexdigest()
