@@ -4,6 +4,8 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from roomcorr.analysis import compare as cmp
 from roomcorr.grid import log_grid
@@ -294,3 +296,20 @@ def test_numpy_helpers_match_scipy():
     assert np.allclose(cmp._upsample(x, 16), resample(x, 120 * 16), atol=1e-12)
     x = x[:119]
     assert np.allclose(cmp._upsample(x, 16), resample(x, 119 * 16), atol=1e-12)
+
+
+@settings(derandomize=True, max_examples=40, deadline=None)
+@given(
+    shift=st.floats(-60.0, 60.0, allow_nan=False),
+    gain_db=st.floats(-20.0, 20.0, allow_nan=False),
+    start=st.floats(200.0, 2000.0, allow_nan=False),
+)
+def test_arrival_change_any_shift_and_gain(shift, gain_db, start):
+    # Property: for an ideal fractional delay (shifted band-limited impulse)
+    # the recovered change equals the shift, whatever the gain and position.
+    n = 4800
+    a = _frac_impulse(n, start, 1.0)
+    b = _frac_impulse(n, start + shift, 10 ** (gain_db / 20))
+    delay_s, inverted = cmp.arrival_change_s(a, b, FS)
+    assert delay_s * FS == pytest.approx(shift, abs=0.03)
+    assert not inverted
