@@ -264,12 +264,150 @@ def _run_report(args: argparse.Namespace) -> int:
     return 0
 
 
+# --------------------------------------------------------------------------- measurement
+
+
+def _add_devices(sub: Any) -> argparse.ArgumentParser:
+    return sub.add_parser(
+        "devices",
+        help="list audio devices with their channel counts and default rates",
+        description="List the audio devices PortAudio sees (needs the 'measure' extra).",
+    )
+
+
+def _run_devices(args: argparse.Namespace) -> int:
+    from roomcorr.measure.capture import list_devices
+
+    devs = list_devices()
+    if not devs:
+        print("no audio devices found")
+    for d in devs:
+        print(f"{d['index']:3d}  {d['name']}  [{d['hostapi']}]  in {d['max_input_channels']}, "
+              f"out {d['max_output_channels']}, default {d['default_samplerate']:g} Hz")
+    return 0
+
+
+def _pair(text: str) -> tuple[int, int]:
+    vals = _int_list(text)
+    if len(vals) != 2:
+        raise argparse.ArgumentTypeError(f"expected OUT,IN (two channel numbers), got {text!r}")
+    return vals[0], vals[1]
+
+
+def _add_measure(sub: Any) -> argparse.ArgumentParser:
+    from roomcorr.measure.settings import DEFAULT_LEVEL_DBFS, LEVEL_CAP_DBFS
+
+    p = sub.add_parser(
+        "measure",
+        help="play sweeps, record the microphone and write impulse responses",
+        description="Measure the room: for each microphone position and loudspeaker, play "
+        "synchronised sweeps and record them; write one impulse-response WAV per position "
+        "(channels = loudspeakers), the raw recordings in raw/ and measurement.json with "
+        "every setting and quality figure. The folder is a valid input to 'roomcorr design'. "
+        f"Sweeps start at {DEFAULT_LEVEL_DBFS:g} dBFS and are capped at {LEVEL_CAP_DBFS:g} "
+        "dBFS: turn the amplifier down first.",
+    )
+    p.add_argument("--out", required=True, metavar="DIR", help="new (or empty) session folder")
+    p.add_argument("--settings", metavar="FILE", help="settings TOML; its [measure] table")
+    p.add_argument("--device", help="device name (part of it) or index; see 'roomcorr devices'")
+    p.add_argument("--outputs", type=_int_list, metavar="1,2",
+                   help="output channel of each loudspeaker (default 1,2)")
+    p.add_argument("--input", type=int, metavar="N", help="microphone input channel (default 1)")
+    p.add_argument("--loopback", type=_pair, metavar="OUT,IN",
+                   help="spare output cabled back to an input: timing reference that removes "
+                   "the system latency")
+    p.add_argument("--positions", type=int, metavar="N", help="microphone positions (default 1)")
+    p.add_argument("--repeats", type=int, metavar="N", help="sweeps averaged per loudspeaker")
+    p.add_argument("--sweep-seconds", type=float, metavar="S", help="sweep length (default 5)")
+    p.add_argument("--band", type=_float_list, metavar="LO,HI", help="sweep band in Hz")
+    p.add_argument("--rate", type=int, metavar="HZ", help="sample rate (default 48000)")
+    p.add_argument("--level", type=float, metavar="DBFS",
+                   help=f"sweep peak level (default {DEFAULT_LEVEL_DBFS:g} dBFS)")
+    p.add_argument("--allow-loud", action="store_true",
+                   help=f"allow a sweep level above {LEVEL_CAP_DBFS:g} dBFS (prints a warning)")
+    p.add_argument("--ir-seconds", type=float, metavar="S", help="impulse response length")
+    p.add_argument("--yes", action="store_true", help="do not wait for Enter between positions")
+    p.add_argument("--force", action="store_true", help="keep recordings that fail a gate")
+    p.add_argument("--replace", action="store_true", help="allow a non-empty --out folder")
+    return p
+
+
+def measure_settings_from_args(args: argparse.Namespace) -> Any:
+    """MeasureSettings from --settings (its [measure] table) overridden by options."""
+    from roomcorr.measure.settings import MeasureSettings
+
+    base: dict[str, Any] = {}
+    if args.settings:
+        from roomcorr.settings import load_settings
+
+        base = dict(load_settings(args.settings).measure)
+    over = {
+        "device": args.device, "outputs": args.outputs, "input": args.input,
+        "loopback": args.loopback, "positions": args.positions, "repeats": args.repeats,
+        "sweep_s": args.sweep_seconds, "sample_rate": args.rate, "level_dbfs": args.level,
+        "ir_s": args.ir_seconds,
+    }
+    base.update({k: v for k, v in over.items() if v is not None})
+    if args.allow_loud:
+        base["allow_loud"] = True
+    if args.band is not None:
+        if len(args.band) != 2:
+            raise SettingsError("--band needs LO,HI in Hz")
+        base["f_start_hz"], base["f_end_hz"] = args.band
+    return MeasureSettings.from_dict(base, args.settings or "options")
+
+
+def _run_measure(args: argparse.Namespace) -> int:
+    from roomcorr.measure.session import run_measurement
+
+    ms = measure_settings_from_args(args)
+    record = run_measurement(ms, args.out, yes=args.yes, force=args.force, replace=args.replace)
+    n = sum(1 for p in record["positions"] if p["file"])
+    print(f"measured {n} position(s) into {args.out}; next: roomcorr design {args.out}")
+    return 0
+
+
+def _add_deconvolve(sub: Any) -> argparse.ArgumentParser:
+    p = sub.add_parser(
+        "deconvolve",
+        help="turn a sweep recorded elsewhere into an impulse response",
+        description="Deconvolve RECORDING (channel 1 = microphone) with the sweep described "
+        "by --sweep-settings (a measurement.json, or its 'sweep_settings' part). Writes the "
+        "impulse response WAV and a JSON file of quality figures beside it.",
+    )
+    p.add_argument("recording", metavar="RECORDING.wav")
+    p.add_argument("--sweep-settings", required=True, metavar="FILE.json")
+    p.add_argument("--out", metavar="IR.wav", help="default: RECORDING_ir.wav")
+    p.add_argument("--loopback-channel", type=int, metavar="N",
+                   help="channel of the loopback reference (default from the sweep settings)")
+    p.add_argument("--force", action="store_true", help="write even if a gate fails")
+    p.add_argument("--replace", action="store_true", help="overwrite --out")
+    return p
+
+
+def _run_deconvolve(args: argparse.Namespace) -> int:
+    from roomcorr.measure.session import deconvolve_file, gate_lines
+
+    dest, figures, gates = deconvolve_file(
+        args.recording, args.sweep_settings, args.out, force=args.force, replace=args.replace,
+        loopback_channel=args.loopback_channel,
+    )
+    for line in gate_lines(gates):
+        print(line)
+    print(f"arrival {figures['arrival_s'] * 1000:.2f} ms ({figures['latency_note']})")
+    print(f"impulse response: {dest}")
+    return 0
+
+
 # --------------------------------------------------------------------------- main
 
 _COMMANDS: list[tuple[str, Callable[[Any], argparse.ArgumentParser], Callable[..., int]]] = [
     ("demo", _add_demo, _run_demo),
     ("design", _add_design, _run_design),
     ("report", _add_report, _run_report),
+    ("devices", _add_devices, _run_devices),
+    ("measure", _add_measure, _run_measure),
+    ("deconvolve", _add_deconvolve, _run_deconvolve),
 ]
 
 

@@ -192,10 +192,12 @@ def write_ir_wav(path: Path, data: np.ndarray, fs: int) -> None:
 
 
 def gate_lines(gates: list[q.Gate]) -> list[str]:
-    return [
-        f"  {'ok  ' if g.passed else 'FAIL'} {g.name}: {g.value:.4g} {g.unit} (limit {g.limit:g})"
-        for g in gates
-    ]
+    """One printable line per gate: ok/FAIL, name, figure and limit."""
+    lines = []
+    for g in gates:
+        value = "single sweep" if g.value == -999.0 else f"{g.value:.4g} {g.unit}"
+        lines.append(f"  {'ok  ' if g.passed else 'FAIL'} {g.name}: {value} (limit {g.limit:g})")
+    return lines
 
 
 def level_check(ms: MeasureSettings, capture_fn: Callable) -> dict:
@@ -210,7 +212,10 @@ def level_check(ms: MeasureSettings, capture_fn: Callable) -> dict:
     cap = capture_fn(sig[None, :], [ms.outputs[0]], [ms.input])
     peak = q.peak_dbfs(cap.recording[0])
     predicted = peak + (ms.level_dbfs - ms.test_level_dbfs)
-    if predicted > -3.0:
+    if peak < -100.0:
+        advice = ("no signal at the input: check the microphone, its cable, its power "
+                  "(phantom) and the chosen --input channel")
+    elif predicted > -3.0:
         advice = (f"input would peak at {predicted:.1f} dBFS: lower the input gain or the "
                   f"sweep level by about {predicted + 12:.0f} dB")
     elif predicted < -40.0:
