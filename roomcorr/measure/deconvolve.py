@@ -31,6 +31,7 @@ References
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass
 
 import numpy as np
@@ -39,16 +40,25 @@ import scipy.fft
 from roomcorr.measure.sweep import Sweep, band_taper
 
 
+@functools.lru_cache(maxsize=4)
 def inverse_spectrum(sweep: Sweep, n_fft: int, method: str = "division") -> np.ndarray:
     """Inverse of the sweep spectrum on the ``rfft`` bins of length ``n_fft``.
 
     Scaled so that deconvolving the sweep itself gives a (band-limited) unit
-    impulse at lag 0. See the module docstring for the two methods.
+    impulse at lag 0. See the module docstring for the two methods. Cached
+    (the same sweep is deconvolved for every loudspeaker and position); the
+    returned array is read-only.
 
     Returns
     -------
     ndarray, shape (n_fft // 2 + 1,), complex
     """
+    inv = _inverse_spectrum(sweep, n_fft, method)
+    inv.flags.writeable = False
+    return inv
+
+
+def _inverse_spectrum(sweep: Sweep, n_fft: int, method: str) -> np.ndarray:
     if method == "analytic":
         return sweep.inverse_spectrum(n_fft)
     if method != "division":
