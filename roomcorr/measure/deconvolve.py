@@ -202,18 +202,16 @@ def iec_band_centres(fraction: int, f_lo_hz: float, f_hi_hz: float) -> np.ndarra
     """Mid-band frequencies of 1/``fraction`` octave bands between two limits.
 
     Base-10 definition of IEC 61260-1:2014: ``G = 10**(3/10)``,
-    ``f_m = 1000 G**(x/b)`` for odd ``b`` and ``1000 G**((2x+1)/(2b))`` for even ``b``.
+    ``f_m = 1000 G**(x/b)`` for odd ``b`` and ``1000 G**((2x+1)/(2b))`` for even ``b``
+    (computed by :func:`roomcorr.analysis.bands.band_centres_hz`).
 
     Returns
     -------
     ndarray, shape (n_bands,)
     """
-    g = 10.0 ** 0.3
-    xs = np.arange(-200, 201)
-    if fraction % 2:
-        fm = 1000.0 * g ** (xs / fraction)
-    else:
-        fm = 1000.0 * g ** ((2 * xs + 1) / (2 * fraction))
+    from roomcorr.analysis.bands import band_centres_hz
+
+    fm = band_centres_hz(fraction, f_lo_hz, f_hi_hz)
     return fm[(fm >= f_lo_hz * (1 - 1e-9)) & (fm <= f_hi_hz * (1 + 1e-9))]
 
 

@@ -19,22 +19,17 @@ class QualityGateError(RoomcorrError):
 
 
 def octave_centres_hz(f_lo_hz: float = 63.0, f_hi_hz: float = 8000.0) -> np.ndarray:
-    """Octave mid-bands (IEC 61260-1:2014 base-10: ``1000 * 10**(0.3 x)``) in a range.
+    """Octave mid-bands of IEC 61260-1:2014 (base 10) from nominal 63 Hz to 8 kHz by default.
 
-    Uses ``roomcorr.analysis.bands`` when it exists, otherwise the formula.
+    Delegates to :func:`roomcorr.analysis.bands.octave_centres_hz`.
 
     Returns
     -------
     ndarray, shape (n_bands,)
     """
-    try:  # pragma: no cover - depends on another module's presence
-        from roomcorr.analysis import bands  # type: ignore[attr-defined]
+    from roomcorr.analysis.bands import octave_centres_hz as centres
 
-        return np.asarray(bands.band_centres(1, f_lo_hz, f_hi_hz))
-    except (ImportError, AttributeError, TypeError):
-        x = np.arange(-10, 11)
-        fm = 1000.0 * 10.0 ** (0.3 * x)
-        return fm[(fm >= f_lo_hz * 0.97) & (fm <= f_hi_hz * 1.03)]
+    return centres(f_lo_hz, f_hi_hz)
 
 
 def band_snr_db(
