@@ -172,6 +172,30 @@ def test_predicted_response_of_a_plain_gain():
 # ----------------------------------------------------------------------------- the whole page
 
 
+def _record(n_positions):
+    """A measurement.json record in the layout written by roomcorr.measure.session."""
+    figures = {
+        "snr_db_per_octave": {"63": 52.0, "125": 60.0, "1000": 71.0},
+        "repeat_disagreement_db": -38.5,
+        "harmonic_distortion": {
+            "fundamental_hz": [63.0, 125.0, 1000.0],
+            "orders": {"2": [-30.0, -38.0, -50.0], "3": [-40.0, None, -60.0]},
+        },
+    }
+    gates = [
+        {"name": "snr", "passed": True, "value": 52.0, "limit": 30.0, "unit": "dB", "message": ""},
+        {"name": "clipping", "passed": False, "value": 3, "limit": 0, "unit": "samples",
+         "message": "lower the level"},
+    ]
+    return {
+        "positions": [
+            {"position": p + 1, "file": f"pos{p + 1}.wav",
+             "channels": [{"output": 1, "figures": figures, "gates": gates}]}
+            for p in range(n_positions)
+        ]
+    }
+
+
 _ENV = {**os.environ, "PYTHONPATH": str(Path(__file__).resolve().parent.parent)}
 
 
@@ -181,10 +205,14 @@ def design_folder(tmp_path_factory):
     from roomcorr.pipeline import run_design
     from roomcorr.settings import DesignSettings, Settings
 
-    out = tmp_path_factory.mktemp("design") / "out"
+    base = tmp_path_factory.mktemp("design")
+    out = base / "out"
+    session = base / "session"  # where the IRs came from, with its quality record
+    session.mkdir()
+    (session / "measurement.json").write_text(json.dumps(_record(2)))
     settings = Settings(design=DesignSettings(sample_rates=(44100, 48000)), measure={})
     result = run_design(_synthetic_room(), FS, settings)
-    write_design(result, out)
+    write_design(result, out, extra={"measurements": [str(session / "pos1.wav")]})
     # the report is written once, by the command a user would type (checked below)
     run = subprocess.run(
         [sys.executable, "-m", "roomcorr", "report", str(out)],
@@ -201,10 +229,11 @@ def test_every_section_and_figure_present(design_folder):
     out, path, _ = design_folder
     assert path == out / "report.html"
     page = path.read_text(encoding="utf-8")
-    for sid in ["overview", "safety"] + [f"{s}-mono" for s in CHANNEL_SECTIONS]:
+    for sid in ["overview", "quality", "safety"] + [f"{s}-mono" for s in CHANNEL_SECTIONS]:
         assert f'<section id="{sid}">' in page, sid
     keys = re.findall(r'data-figure="([^"]+)"', page)
-    assert keys == [f"mono-{s}" for s in CHANNEL_SECTIONS]
+    # the quality figure comes from measurement.json beside the design's source IRs
+    assert keys == [f"mono-{s}" for s in CHANNEL_SECTIONS] + ["quality"]
     pngs = sorted(p.name for p in (out / "report").glob("*.png"))
     assert pngs == sorted(f"{k}.png" for k in keys)
     for p in (out / "report").glob("*.png"):
@@ -252,27 +281,7 @@ def test_measurement_folder_report_with_quality(tmp_path):
     irs = _synthetic_room(n_pos=2, dur_s=0.6)
     for p in range(irs.shape[0]):
         write_wav(tmp_path / f"pos{p + 1}.wav", irs[p], FS)
-    # the record layout written by roomcorr.measure.session
-    figures = {
-        "snr_db_per_octave": {"63": 52.0, "125": 60.0, "1000": 71.0},
-        "repeat_disagreement_db": -38.5,
-        "harmonic_distortion": {
-            "fundamental_hz": [63.0, 125.0, 1000.0],
-            "orders": {"2": [-30.0, -38.0, -50.0], "3": [-40.0, None, -60.0]},
-        },
-    }
-    gates = [
-        {"name": "snr", "passed": True, "value": 52.0, "limit": 30.0, "unit": "dB", "message": ""},
-        {"name": "clipping", "passed": False, "value": 3, "limit": 0, "unit": "samples",
-         "message": "lower the level"},
-    ]
-    record = {
-        "positions": [
-            {"position": p + 1, "file": f"pos{p + 1}.wav",
-             "channels": [{"output": 1, "figures": figures, "gates": gates}]}
-            for p in range(irs.shape[0])
-        ]
-    }
+    record = _record(irs.shape[0])
     (tmp_path / "measurement.json").write_text(json.dumps(record))
     page = rh.write_report(tmp_path, dpi=50).read_text(encoding="utf-8")
     keys = re.findall(r'data-figure="([^"]+)"', page)

@@ -90,6 +90,12 @@ def octave_band_centres(f_lo_hz: float = 63.0, f_hi_hz: float = 8000.0) -> np.nd
 
 def nominal_label(centre_hz: float) -> str:
     """Short nominal label of an octave band, e.g. ``"63"``, ``"1k"``, ``"8k"``."""
+    try:  # the shared bands module, when present, is the single source
+        from roomcorr.analysis import bands  # type: ignore[attr-defined]
+
+        return str(bands.nominal_label(centre_hz))
+    except (ImportError, AttributeError, ValueError):
+        pass
     nominal = [31.5, 63, 125, 250, 500, 1000, 2000, 4000, 8000, 16000]
     n = min(nominal, key=lambda v: abs(np.log2(v / centre_hz)))
     if n >= 1000:

@@ -574,7 +574,16 @@ def _session_curves(folder: Path) -> dict[str, Any]:
     from roomcorr.grid import log_grid
     from roomcorr.pipeline import analyse_positions, default_channel_names
 
-    wavs = sorted(p for p in folder.glob("*.wav"))
+    wavs: list[Path] = []
+    record = folder / "measurement.json"
+    if record.is_file():  # the session's own list of impulse responses, in order
+        try:
+            data = json.loads(record.read_text(encoding="utf-8"))
+            wavs = [folder / p["file"] for p in data.get("positions", []) if p.get("file")]
+        except (OSError, json.JSONDecodeError, AttributeError, TypeError):
+            wavs = []
+    if not wavs:
+        wavs = sorted(p for p in folder.glob("*.wav"))
     if not wavs:
         raise InputFileError(
             f"{folder}: neither a design folder (manifest.json, design.npz) nor a measurement "
