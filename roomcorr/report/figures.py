@@ -55,10 +55,12 @@ def png_bytes(fig: Any, dpi: int = 90) -> bytes:
     return buf.getvalue()
 
 
-def _freq_axis(ax: Any, f_lo: float = 20.0, f_hi: float = 20000.0) -> None:
+def _freq_axis(ax: Any, f_lo: float = 20.0, f_hi: float = 20000.0, sparse: bool = False) -> None:
     ax.set_xscale("log")
     ax.set_xlim(f_lo, f_hi)
     ticks = [t for t in FREQ_TICKS if f_lo <= t <= f_hi]
+    if sparse:
+        ticks = [t for t in ticks if t in (20, 100, 1000, 10000)]
     ax.set_xticks(ticks, [FREQ_LABELS[FREQ_TICKS.index(t)] for t in ticks])
     ax.minorticks_off()
     ax.set_xlabel("frequency (Hz)")
@@ -394,14 +396,15 @@ def plot_quality(recordings: list[dict[str, Any]], title: str) -> Any:
         for order, vals in (r.get("hd_db") or {}).items():
             v = np.array([np.nan if x is None else float(x) for x in vals])
             if hf.size and v.size == hf.size:
-                ax2.plot(hf, v, lw=1, color=col, ls="-" if order == "2" else "--",
+                ax2.plot(hf, v, lw=1, marker=".", ms=3, color=col,
+                         ls="-" if order == "2" else "--",
                          label=f"H{order}" if k == 0 else None)
     ax1.axhline(40, color=AIM, lw=1, ls=":")
-    _freq_axis(ax1, 20, 20000)
+    _freq_axis(ax1, 20, 20000, sparse=True)
     ax1.set_ylabel("signal-to-noise (dB)")
     ax1.set_title("signal to noise per octave", loc="left", fontsize=10)
     ax1.legend(fontsize=6, frameon=False)
-    _freq_axis(ax2, 20, 20000)
+    _freq_axis(ax2, 20, 20000, sparse=True)
     ax2.set_ylabel("harmonic level (dB re fundamental)")
     ax2.set_title("harmonic distortion", loc="left", fontsize=10)
     if ax2.lines:
@@ -410,7 +413,7 @@ def plot_quality(recordings: list[dict[str, Any]], title: str) -> Any:
     reps = [np.nan if r.get("repeat_db") is None else float(r["repeat_db"]) for r in recordings]
     ax3.barh(range(len(reps)), np.nan_to_num(reps, nan=0.0), color=MEAN)
     ax3.set_yticks(range(len(reps)), labels, fontsize=7)
-    ax3.set_xlabel("repeat difference (dB)")
+    ax3.set_xlabel("difference (dB re response)")
     ax3.set_title("repeat agreement", loc="left", fontsize=10)
     if all(np.isnan(reps)):
         ax3.text(0.5, 0.5, "single sweep:\nno repeats", ha="center", va="center",

@@ -218,7 +218,8 @@ def _quality_section(recordings: list[dict[str, Any]], png: Any) -> Section:
     sec.paragraphs.append(
         "Signal to noise per octave band (40 dB or more is comfortable), the loudspeaker's "
         "harmonic distortion during the sweep (second harmonic solid, third dashed), and how "
-        "far repeated sweeps differed from their mean (lower is better)."
+        "far repeated sweeps differed from their mean, in dB relative to the response "
+        "(lower is better)."
     )
     failed = [
         f"{r['label']}: {g.get('name')} ({g.get('message', '')})"
