@@ -137,6 +137,23 @@ def test_filter_response_matches_scipy():
     np.testing.assert_allclose(gd, ref_gd / FS * 1000, atol=0.01)
 
 
+def test_iir_response_is_the_cookbook_peak():
+    # Audio EQ Cookbook peaking filter: gain at f0 equals the set gain (REFERENCES.md)
+    fs, f0, gain_db, q = 48000, 1000.0, 6.0, 2.0
+    a = 10 ** (gain_db / 40)
+    w0 = 2 * np.pi * f0 / fs
+    alpha = np.sin(w0) / (2 * q)
+    b = np.array([1 + alpha * a, -2 * np.cos(w0), 1 - alpha * a])
+    den = np.array([1 + alpha / a, -2 * np.cos(w0), 1 - alpha / a])
+    c = [*(b / den[0]), *(den[1:] / den[0])]
+    doc = {"sample_rate": fs, "pre_gain_db": -6.0, "pre_gain_linear": 10 ** (-6 / 20),
+           "sections": [{"coefficients": c}]}
+    db = rh.iir_response_db(doc, np.array([f0, 20.0, 30000.0]))
+    assert db[0] == pytest.approx(0.0, abs=1e-9)  # +6 dB section, -6 dB pre-gain
+    assert db[1] == pytest.approx(-6.0, abs=0.01)  # unity far below f0
+    assert np.isnan(db[2])
+
+
 def _synthetic_room(n_pos=2, dur_s=0.6, seed=5):
     """An invented small room: direct sound, one wall reflection, two modes, diffuse tail."""
     rng = np.random.default_rng(seed)
@@ -201,7 +218,9 @@ _ENV = {**os.environ, "PYTHONPATH": str(Path(__file__).resolve().parent.parent)}
 
 @pytest.fixture(scope="module")
 def design_folder(tmp_path_factory):
+    from roomcorr.design.iir_fit import design_iir
     from roomcorr.export import write_design
+    from roomcorr.export_iir import write_iir
     from roomcorr.pipeline import run_design
     from roomcorr.settings import DesignSettings, Settings
 
@@ -210,9 +229,10 @@ def design_folder(tmp_path_factory):
     session = base / "session"  # where the IRs came from, with its quality record
     session.mkdir()
     (session / "measurement.json").write_text(json.dumps(_record(2)))
-    settings = Settings(design=DesignSettings(sample_rates=(44100, 48000)), measure={})
+    settings = Settings(design=DesignSettings(sample_rates=(44100, 48000), iir=True), measure={})
     result = run_design(_synthetic_room(), FS, settings)
     write_design(result, out, extra={"measurements": [str(session / "pos1.wav")]})
+    write_iir(design_iir(result), out)
     # the report is written once, by the command a user would type (checked below)
     run = subprocess.run(
         [sys.executable, "-m", "roomcorr", "report", str(out)],
@@ -222,7 +242,7 @@ def design_folder(tmp_path_factory):
     return out, out / "report.html", run
 
 
-CHANNEL_SECTIONS = ["room", "result", "filter", "time", "decay", "ringing"]
+CHANNEL_SECTIONS = ["room", "result", "filter", "time", "iir", "decay", "ringing"]
 
 
 def test_every_section_and_figure_present(design_folder):
@@ -240,6 +260,7 @@ def test_every_section_and_figure_present(design_folder):
         assert p.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
     # the decay table, the safety table (one row per rate) and the cautions
     assert "T30 (s)" in page and "worst-case gain (dB)" in page
+    assert "<th>Q</th>" in page  # the biquad table
     assert page.count("<td>mono</td>") == 2
     assert "protect your hearing" in page
 

@@ -420,3 +420,42 @@ def plot_quality(recordings: list[dict[str, Any]], title: str) -> Any:
                  transform=ax3.transAxes)
     fig.suptitle(title, x=0.01, ha="left", color=INK)
     return fig
+
+
+def plot_iir(
+    freq_hz: np.ndarray,
+    cascades_db: dict[int, np.ndarray],
+    fir_db: np.ndarray | None,
+    designed_db: np.ndarray,
+    band_hz: tuple[float, float],
+    title: str,
+) -> Any:
+    """Biquad cascades (one per rate, pre-gain included) against the FIR and the designed curve.
+
+    Parameters
+    ----------
+    cascades_db : dict
+        Rate -> response in dB on ``freq_hz`` (NaN above Nyquist).
+    fir_db : ndarray, optional
+        The FIR's response for comparison.
+    designed_db : ndarray
+        Designed correction curve plus pre-gain.
+    """
+    from matplotlib import colormaps
+
+    fig = new_figure(9.0, 4.2)
+    ax = fig.add_subplot()
+    _shade_outside(ax, band_hz)
+    if fir_db is not None:
+        ax.plot(freq_hz, fir_db, color=SEAT, lw=2.2, label="FIR")
+    ax.plot(freq_hz, designed_db, color=AIM, lw=1.0, ls="--", label="designed curve + pre-gain")
+    cmap = colormaps["viridis"]
+    for k, (rate, db) in enumerate(sorted(cascades_db.items())):
+        ax.plot(freq_hz, db, color=cmap(0.15 + 0.7 * k / max(1, len(cascades_db) - 1)), lw=1.2,
+                label=f"biquads at {rate} Hz")
+    ax.axhline(0.0, color=INK, lw=0.8)
+    _freq_axis(ax)
+    ax.set_ylabel("gain (dB)")
+    ax.set_title(title, loc="left", color=INK)
+    ax.legend(loc="best", ncols=2, fontsize=8, frameon=False)
+    return fig

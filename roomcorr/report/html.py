@@ -34,6 +34,7 @@ SECTION_TITLES = {
     "time": "Impulse and step",
     "decay": "Reverberation by octave",
     "ringing": "Low-frequency ringing",
+    "iir": "The biquad version",
     "quality": "How good the measurement was",
     "safety": "Safety and levels",
 }
@@ -250,6 +251,62 @@ def _quality_section(recordings: list[dict[str, Any]], png: Any) -> Section:
     return sec
 
 
+def iir_response_db(doc: dict[str, Any], freq_hz: np.ndarray) -> np.ndarray:
+    """Response in dB of one biquad document (cascade and pre-gain) on ``freq_hz``.
+
+    Coefficients ``[b0, b1, b2, a1, a2]`` with ``a0 = 1``, evaluated with
+    :func:`scipy.signal.sosfreqz`; NaN at and above Nyquist.
+    """
+    from scipy.signal import sosfreqz
+
+    fs = float(doc["sample_rate"])
+    f = np.asarray(freq_hz, dtype=float)
+    out = np.full(f.shape, np.nan)
+    ok = f < fs / 2
+    gain = float(doc.get("pre_gain_linear", 10 ** (float(doc.get("pre_gain_db", 0)) / 20)))
+    secs = doc.get("sections") or []
+    if secs:
+        sos = np.array([[c[0], c[1], c[2], 1.0, c[3], c[4]]
+                        for c in (s["coefficients"] for s in secs)], dtype=float)
+        _, h = sosfreqz(sos, worN=f[ok], fs=fs)
+    else:
+        h = np.ones(int(ok.sum()))
+    with np.errstate(divide="ignore"):
+        out[ok] = 20 * np.log10(np.abs(h) * gain)
+    return out
+
+
+def _iir_section(freq, ch, docs, fir, rate, pre_gain, band, png) -> Section:
+    from roomcorr.report import figures as fg
+
+    name = str(ch["name"])
+    sec = Section(f"iir-{name}", f"{SECTION_TITLES['iir']}: {name}")
+    cascades = {int(d["sample_rate"]): iir_response_db(d, freq) for d in docs}
+    fir_db = filter_response(fir, rate, freq)[0] if fir is not None else None
+    doc = min(docs, key=lambda d: abs(int(d["sample_rate"]) - 48000))
+    figs = doc.get("figures") or {}
+    sec.paragraphs.append(
+        f"{len(doc.get('sections') or [])} biquad sections (Audio EQ Cookbook forms) fitted to "
+        "the same correction, for players that take parametric filters instead of an FIR; "
+        "the table lists the sections at "
+        f"{doc['sample_rate']} Hz. Peak gain {figs.get('peak_gain_db', float('nan')):.2f} dB, "
+        f"worst-case gain {figs.get('worst_case_gain_db', float('nan')):.2f} dB, fit error "
+        f"{figs.get('fit_rms_error_db', float('nan')):.2f} dB rms."
+    )
+    rows = [["section", "type", "frequency (Hz)", "gain (dB)", "Q"]]
+    for i, sct in enumerate(doc.get("sections") or [], start=1):
+        rows.append([str(i), str(sct.get("type")), f"{float(sct.get('freq_hz', 0)):.1f}",
+                     f"{float(sct.get('gain_db', 0)):.2f}", f"{float(sct.get('q', 0)):.2f}"])
+    sec.table = rows
+    sec.figures.append(
+        Figure(f"{name}-iir", f"Biquad cascade against the FIR, {name}",
+               png(fg.plot_iir(freq, cascades, fir_db,
+                               np.asarray(ch["correction_db"]) + pre_gain, band,
+                               f"Biquads: {name}")))
+    )
+    return sec
+
+
 def _design_caps(settings: dict[str, Any] | None) -> dict[str, Any]:
     d = (settings or {}).get("design", {}) if isinstance(settings, dict) else {}
     return {
@@ -264,6 +321,7 @@ def build_report(
     curves: dict[str, Any],
     settings: dict[str, Any] | None = None,
     quality: list[dict[str, Any]] | None = None,
+    iir: dict[str, list[dict[str, Any]]] | None = None,
     title: str = "Room correction report",
     dpi: int = 90,
 ) -> Report:
@@ -280,6 +338,9 @@ def build_report(
         :func:`roomcorr.settings.settings_to_dict` of the design (caps in force).
     quality : list of dict, optional
         Per-recording quality figures (:func:`quality_from_record`).
+    iir : dict, optional
+        Channel name -> the ``iir/<rate>/<name>.json`` documents of a biquad
+        design (one per rate), when the design has one.
     title : str
     dpi : int
         Resolution of the PNGs.
@@ -418,6 +479,9 @@ def build_report(
                     )
                 )
                 sections.append(tm)
+
+        if iir and iir.get(name) and "correction_db" in ch:
+            sections.append(_iir_section(freq, ch, iir[name], fir, rate, pre_gain, band, png))
 
         if irs is not None:
             pos_irs = np.asarray(irs)[:, c]
@@ -567,6 +631,19 @@ def _read_quality(folder: Path) -> list[dict[str, Any]] | None:
     return quality_from_record(data) if isinstance(data, dict) else None
 
 
+def _read_iir(folder: Path) -> dict[str, list[dict[str, Any]]] | None:
+    """The biquad documents ``iir/<rate>/<name>.json`` of a design folder, by channel name."""
+    out: dict[str, list[dict[str, Any]]] = {}
+    for p in sorted(folder.glob("iir/*/*.json")):
+        try:
+            doc = json.loads(p.read_text(encoding="utf-8"))
+        except (OSError, json.JSONDecodeError):
+            continue
+        if isinstance(doc, dict) and doc.get("format") == "roomcorr-iir":
+            out.setdefault(str(doc.get("channel_name", p.stem)), []).append(doc)
+    return out or None
+
+
 def _session_curves(folder: Path) -> dict[str, Any]:
     """Curves of a measurement session folder (IR WAVs, no design)."""
     from roomcorr.analysis.average import power_average
@@ -642,7 +719,8 @@ def write_report(folder: str | Path, dpi: int = 90) -> Path:
     else:
         curves = _session_curves(d)
         quality = _read_quality(d)
-    report = build_report(curves, settings, quality, dpi=dpi)
+    iir = _read_iir(d) if is_design else None
+    report = build_report(curves, settings, quality, iir=iir, dpi=dpi)
     fig_dir = d / FIG_DIR
     try:
         fig_dir.mkdir(exist_ok=True)
