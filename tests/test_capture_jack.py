@@ -74,7 +74,7 @@ def test_measure_matches_room_removes_latency_and_sees_distortion(make_room, tmp
                                          {"ir": [0.0] * 100 + [0.5], "a2": a2}],
                             "loopback": True, "noise_rms": 1e-4, "seed": 1})
     ms = MeasureSettings(device="roomsim_a", outputs=(1, 2), input=1, loopback=(3, 2),
-                         repeats=2, **SHORT)
+                         repeats=2, harmonics=3, **dict(SHORT, sweep_s=0.7))
     lines = []
     rec = measure_retrying_on_xruns(ms, tmp_path / "out", say=lines.append)
     out = tmp_path / "out"
@@ -164,19 +164,16 @@ def test_cli_measure_deconvolve_design(make_room, tmp_path):  # noqa: F811
     import subprocess
 
     h1 = known_ir()
-    h2 = np.zeros(2000)
-    h2[400] = 0.4
-    h2[700] = 0.1
-    make_room("roomsim_d", {"speakers": [{"ir": h1.tolist()}, {"ir": h2.tolist()}],
-                            "loopback": True, "noise_rms": 1e-4, "seed": 4})
+    make_room("roomsim_d", {"speakers": [{"ir": h1.tolist()}], "loopback": True,
+                            "noise_rms": 1e-4, "seed": 4})
     cfg = tmp_path / "quick.toml"
     cfg.write_text("[measure]\nnoise_s = 0.2\ntail_s = 0.35\ntest_s = 0.2\n")
     out = tmp_path / "session"
     cmd = [sys.executable, "-m", "roomcorr"]
     for attempt in range(3):
-        r = subprocess.run(cmd + ["measure", "--device", "roomsim_d", "--outputs", "1,2",
-                                  "--input", "1", "--loopback", "3,2", "--yes", "--out",
-                                  str(out), "--settings", str(cfg), "--sweep-seconds", "1",
+        r = subprocess.run(cmd + ["measure", "--device", "roomsim_d", "--outputs", "1",
+                                  "--input", "1", "--loopback", "2,2", "--yes", "--out",
+                                  str(out), "--settings", str(cfg), "--sweep-seconds", "0.5",
                                   "--repeats", "1", "--ir-seconds", "0.2", "--replace"],
                            capture_output=True, text=True, timeout=120)
         if r.returncode == 0 or "buffers dropped" not in r.stderr or attempt == 2:
@@ -186,7 +183,6 @@ def test_cli_measure_deconvolve_design(make_room, tmp_path):  # noqa: F811
     ir, fs = sf.read(out / "pos1.wav", always_2d=True)
     assert band_energy_error_db(ir[:, 0], np.r_[h1, np.zeros(len(ir) - len(h1))], FS,
                                 100, 16000) < -40
-    assert np.argmax(np.abs(ir[:, 1])) == 400
 
     d = subprocess.run(cmd + ["deconvolve", str(out / "raw" / "pos1_out1.wav"),
                               "--sweep-settings", str(out / "measurement.json"),
@@ -196,12 +192,40 @@ def test_cli_measure_deconvolve_design(make_room, tmp_path):  # noqa: F811
     again, _ = sf.read(tmp_path / "again.wav")
     np.testing.assert_allclose(again, ir[:, 0], atol=1e-6)
 
-    bad = subprocess.run(cmd + ["deconvolve", str(out / "raw" / "pos1_out1.wav"),
-                                "--sweep-settings", str(cfg)],
-                         capture_output=True, text=True, timeout=60)
-    assert bad.returncode == 2 and "sweep settings" in bad.stderr
-
     des = subprocess.run(cmd + ["design", str(out), "--out", str(tmp_path / "design")],
                          capture_output=True, text=True, timeout=120)
     assert des.returncode == 0, des.stderr
     assert (tmp_path / "design" / "manifest.json").exists()
+
+
+def test_ctrl_c_keeps_saved_files_and_leaves_no_partial_ones(make_room, tmp_path):  # noqa: F811
+    import signal
+    import subprocess
+    import time
+
+    make_room("roomsim_e", {"speakers": [{"ir": [0.0] * 30 + [0.5]}], "noise_rms": 1e-4,
+                            "seed": 5})
+    cfg = tmp_path / "quick.toml"
+    cfg.write_text("[measure]\nnoise_s = 0.2\ntail_s = 0.35\ntest_s = 0.2\n")
+    out = tmp_path / "session"
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "roomcorr", "measure", "--device", "roomsim_e", "--outputs", "1",
+         "--input", "1", "--yes", "--positions", "3", "--out", str(out), "--settings", str(cfg),
+         "--sweep-seconds", "1", "--repeats", "1", "--ir-seconds", "0.2", "--force"],
+        stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+    )
+    for _ in range(600):  # up to 60 s for position 1 to be saved
+        if (out / "pos1.wav").exists() or proc.poll() is not None:
+            break
+        time.sleep(0.1)
+    proc.send_signal(signal.SIGINT)  # during position 2
+    _, err = proc.communicate(timeout=60)
+    assert proc.returncode == 130, err
+    assert "interrupted" in err
+    assert not (out / "pos3.wav").exists()
+    assert not [p for p in out.rglob("*") if p.name.startswith(".roomcorr-tmp-")]
+    stored = json.loads((out / "measurement.json").read_text())  # complete, valid JSON
+    assert stored["positions"][0]["file"] == "pos1.wav"
+    ir, _ = sf.read(out / "pos1.wav")  # complete file; peak = room delay + system latency
+    arrival = stored["positions"][0]["channels"][0]["figures"]["arrival_s"]
+    assert np.argmax(np.abs(ir)) == round(arrival * FS) and np.argmax(np.abs(ir)) >= 30

@@ -167,7 +167,11 @@ def test_deconvolve_file_round_trip(tmp_path):
     # y = x + a x^2: 2nd harmonic a A / 2 relative to the fundamental (trig identity)
     expected = 20 * np.log10(0.5 * 10 ** (MS.level_dbfs / 20) / 2)
     assert np.median(hd2) == pytest.approx(expected, abs=0.5)
-    from roomcorr.errors import OutputError
+    from roomcorr.errors import InputFileError, OutputError
 
     with pytest.raises(OutputError):
         deconvolve_file(wav, settings)
+    not_sweep = tmp_path / "other.json"
+    not_sweep.write_text(json.dumps({"design": {}}))
+    with pytest.raises(InputFileError, match="sweep settings"):
+        deconvolve_file(wav, not_sweep, tmp_path / "x.wav")

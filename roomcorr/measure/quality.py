@@ -39,15 +39,19 @@ def band_snr_db(
     f_start_hz: float,
     f_end_hz: float,
     centres_hz: np.ndarray | None = None,
+    sweep_s: float | None = None,
 ) -> dict[float, float]:
     """Signal-to-noise ratio per octave band while the sweep passes through the band.
 
-    Power spectral densities (Welch, Hann, 1/10 s segments) of the recording
-    during the sweep and of the noise-only recording before it are summed over
-    each octave band (edges ``f_m * 10**(+-0.15)``). The sweep spends only the
-    fraction ``ln(f_hi/f_lo) / ln(f_end/f_start)`` of its time in a band, so the
-    signal power while it is there is the average divided by that fraction:
-    ``SNR = 10 log10((P_sweep - P_noise) / (fraction * P_noise))``.
+    Periodograms (rectangular window, so the sweep's first and last parts count
+    fully) of the recording during the sweep and of the noise-only recording
+    before it are integrated over each octave band (edges ``f_m * 10**(+-0.15)``).
+    The sweep spends only the fraction ``ln(f_hi/f_lo) / ln(f_end/f_start)`` of
+    its time in a band, so the signal power while it is there is the average
+    divided by that fraction:
+    ``SNR = 10 log10((P_sweep - P_noise) / (fraction * P_noise))``. When
+    ``sweep_part`` is longer than the sweep (to include the system latency),
+    ``sweep_s`` gives the sweep's own length and the power is scaled to it.
 
     Parameters
     ----------
@@ -64,13 +68,14 @@ def band_snr_db(
     dict
         ``{centre_hz: snr_db}`` (rounded centres as keys).
     """
-    from scipy.signal import welch
+    from scipy.signal import periodogram
 
     if centres_hz is None:
         centres_hz = octave_centres_hz()
-    nper = int(min(len(noise_part), len(sweep_part), max(256, fs // 10)))
-    f, p_sig = welch(sweep_part, fs, nperseg=nper)
-    _, p_noise = welch(noise_part, fs, nperseg=nper)
+    f, p_sig = periodogram(sweep_part, fs, window="boxcar")
+    fn, p_noise = periodogram(noise_part, fs, window="boxcar")
+    df, dfn = f[1] - f[0], fn[1] - fn[0]
+    stretch = 1.0 if sweep_s is None else len(sweep_part) / (sweep_s * fs)
     out: dict[float, float] = {}
     half = 10.0**0.15
     total = np.log(f_end_hz / f_start_hz)
@@ -78,10 +83,10 @@ def band_snr_db(
         lo, hi = fm / half, fm * half
         if lo < f_start_hz or hi > f_end_hz:
             continue
-        sel = (f >= lo) & (f < hi)
-        ps, pn = p_sig[sel].sum(), p_noise[sel].sum()
+        ps = p_sig[(f >= lo) & (f < hi)].sum() * df
+        pn = p_noise[(fn >= lo) & (fn < hi)].sum() * dfn
         frac = np.log(hi / lo) / total
-        val = 10 * np.log10(max(ps - pn, 1e-30) / max(frac * pn, 1e-30))
+        val = 10 * np.log10(max((ps - pn) * stretch, 1e-30) / max(frac * pn, 1e-30))
         out[round(float(fm), 1)] = float(min(val, 200.0))
     return out
 

@@ -119,7 +119,9 @@ def analyse_recording(
             "is it the right recording for these sweep settings?"
         )
     noise = mic[: starts[0]]
-    sig = mic[starts[0] : starts[0] + sweep.n_samples]
+    # the sweep as recorded, plus up to 0.1 s for the system latency and direct sound
+    n_extra = min(n_tail, int(0.1 * fs))
+    sig = mic[starts[0] : starts[0] + sweep.n_samples + n_extra]
     chans = [mic] if loopback is None else [mic, loopback]
     segs = np.array([[c[s : s + period] for c in chans] for s in starts])  # (rep, ch, period)
     h = dc.deconvolve(segs, sweep, method=layout.get("method", "division"))
@@ -136,7 +138,8 @@ def analyse_recording(
     ir = h_mean[:n_ir].copy()
     split = dc.split_harmonics(h_mean, sweep, n_ir, int(layout["harmonics"]))
     hd_f, hd_db = dc.harmonic_distortion(split, fs, sweep.f_start_hz, sweep.f_end_hz)
-    snr = q.band_snr_db(sig, noise, fs, sweep.f_start_hz, sweep.f_end_hz)
+    snr = q.band_snr_db(sig, noise, fs, sweep.f_start_hz, sweep.f_end_hz,
+                        sweep_s=sweep.n_samples / fs)
     arrival_db = q.arrival_snr_db(h_mean, n_ir, slice(n_ir, n_tail))
     figures = {
         "peak_dbfs": q.peak_dbfs(mic),
