@@ -516,7 +516,9 @@ def build_report(
             if modes:
                 txt = ", ".join(f"{f0:.0f} Hz ({t0:.2f} s)" for f0, t0 in modes)
                 rng.paragraphs.append(f"Longest-ringing peaks (60 dB decay time): {txt}.")
-                ringing_notes.append(f"{name}: {fmt_hz(modes[0][0])}")
+                ringing_notes.append(
+                    f"{name} around {fmt_hz(modes[0][0])} ({modes[0][1]:.2f} s to decay 60 dB)"
+                )
             rng.figures.append(
                 Figure(f"{name}-ringing", f"Low-frequency decay map, {name}",
                        png(fg.plot_decay_map(maps, modes, f"Low-frequency decay: {name}")))
@@ -535,7 +537,7 @@ def build_report(
 
     if ringing_notes and designed:
         overview.paragraphs.append(
-            "The strongest ringing room mode: " + "; ".join(ringing_notes)
+            "Loudest ringing after the sound stops: " + "; ".join(ringing_notes)
             + " (see the low-frequency decay maps)."
         )
     if quality:
