@@ -483,9 +483,14 @@ def build_report(
         if iir and iir.get(name) and "correction_db" in ch:
             sections.append(_iir_section(freq, ch, iir[name], fir, rate, pre_gain, band, png))
 
+        per_pos: list[list[Any]] = []
         if irs is not None:
             pos_irs = np.asarray(irs)[:, c]
-            per_pos = [octave_band_decay(pos_irs[p], fs) for p in range(len(pos_irs))]
+            try:
+                per_pos = [octave_band_decay(pos_irs[p], fs) for p in range(len(pos_irs))]
+            except ValueError:  # too short or silent: no decay analysis possible
+                per_pos = []
+        if per_pos and per_pos[0]:
             bands = _mean_band_decay(per_pos)
             dec = Section(f"decay-{name}", f"{SECTION_TITLES['decay']}: {name}")
             dec.paragraphs.append(
@@ -515,7 +520,9 @@ def build_report(
             )
             if modes:
                 txt = ", ".join(f"{f0:.0f} Hz ({t0:.2f} s)" for f0, t0 in modes)
-                rng.paragraphs.append(f"Longest-ringing peaks (60 dB decay time): {txt}.")
+                rng.paragraphs.append(
+                    f"Peaks still loudest 200 ms after the sound stops (60 dB decay time): {txt}."
+                )
                 ringing_notes.append(
                     f"{name} around {fmt_hz(modes[0][0])} ({modes[0][1]:.2f} s to decay 60 dB)"
                 )
