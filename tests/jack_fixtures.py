@@ -36,7 +36,7 @@ def _server_running() -> bool:
 
 
 @pytest.fixture(scope="session")
-def jack_server():
+def jack_server(tmp_path_factory):
     """A running JACK server at 48 kHz (started here if none runs)."""
     try:
         import jack  # noqa: F401
@@ -46,7 +46,7 @@ def jack_server():
     if not _server_running():
         if shutil.which("jackd") is None:
             _missing("jackd not installed (Debian package jackd2)")
-        log = open(HERE / ".jackd.log", "wb")  # noqa: SIM115
+        log = open(tmp_path_factory.mktemp("jackd") / "jackd.log", "wb")  # noqa: SIM115
         proc = subprocess.Popen(
             ["jackd", "--no-realtime", "-d", "dummy", "-r", str(FS), "-p", "1024"],
             stdout=log, stderr=subprocess.STDOUT,
@@ -74,8 +74,15 @@ def jack_server():
         _missing(f"PortAudio unusable: {exc}")
     yield
     if proc is not None:
+        # close PortAudio's JACK client while the server still runs (PortAudio asserts
+        # and aborts the interpreter at exit if the server vanished first)
+        import sounddevice as sd
+
+        while sd._initialized > 0:
+            sd._terminate()
         proc.terminate()
         proc.wait(timeout=10)
+        log.close()
 
 
 class Room:
