@@ -137,6 +137,7 @@ def plot_predicted(
     target_db: np.ndarray,
     band_hz: tuple[float, float],
     title: str,
+    pre_gain_db: float = 0.0,
 ) -> Any:
     """Predicted result at every position against the target.
 
@@ -146,6 +147,10 @@ def plot_predicted(
         Each measurement convolved with its filter and analysed like the measurement.
     before_db : ndarray, shape (n_freqs,)
         Average before correction, for comparison.
+    target_db : ndarray, shape (n_freqs,)
+        Target as the filtered result should meet it (pre-gain included).
+    pre_gain_db : float
+        Only for the legend.
     """
     fig = new_figure()
     ax = fig.add_subplot()
@@ -156,7 +161,8 @@ def plot_predicted(
                 label="each position, corrected" if k == 0 else None)
     after = 10 * np.log10(np.mean(10 ** (np.asarray(predicted_db) / 10), axis=0))
     ax.plot(freq_hz, after, color="#1d5e3a", lw=2.4, label="average, corrected")
-    ax.plot(freq_hz, target_db, color=AIM, lw=1.8, ls="--", label="target")
+    label = f"target {pre_gain_db:+.1f} dB pre-gain" if abs(pre_gain_db) >= 0.05 else "target"
+    ax.plot(freq_hz, target_db, color=AIM, lw=1.8, ls="--", label=label)
     _freq_axis(ax)
     _level_limits(ax, predicted_db, before_db, freq_hz=freq_hz)
     ax.set_ylabel("level (dB)")

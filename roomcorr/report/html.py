@@ -417,15 +417,17 @@ def build_report(
             res = Section(f"result-{name}", f"{SECTION_TITLES['result']}: {name}")
             res.paragraphs.append(
                 f"Predicted from {how}, analysed with the same window and smoothing as the "
-                "measurement. Lines close to the target at every position mean the correction "
-                "holds across the listening area."
+                "measurement. The filters include the pre-gain, so the target is drawn lowered "
+                "by it. Lines close to the target at every position mean the correction holds "
+                "across the listening area."
             )
             res.figures.append(
                 Figure(
                     f"{name}-result",
                     f"Predicted result, {name}",
                     png(fg.plot_predicted(freq, predicted, ch["average_db"],
-                                          ch["target_db"], band, f"Corrected: {tag}")),
+                                          np.asarray(ch["target_db"]) + pre_gain, band,
+                                          f"Corrected: {tag}", pre_gain)),
                 )
             )
             sections.append(res)
