@@ -371,3 +371,22 @@ def test_cli_report_command(design_folder, tmp_path):
     )
     assert bad.returncode == 2
     assert len(bad.stderr.strip().splitlines()) == 1 and "no such folder" in bad.stderr
+
+
+def test_predicted_result_is_closer_to_the_target(design_folder):
+    # what the report's prediction must show for a working design: inside the band the
+    # corrected power average deviates less from the (pre-gain lowered) target than before
+    from roomcorr.export import load_design_curves
+
+    out, _, _ = design_folder
+    cur = load_design_curves(out)
+    ch = cur["channels"][0]
+    f = cur["freq_hz"]
+    pred, _ = rh.predicted_responses(
+        cur["irs"][:, 0], cur["fs_in"], cur["firs"][48000][0], f, ch["measured_db"]
+    )
+    after = 10 * np.log10(np.mean(10 ** (pred / 10), axis=0))
+    m = (f >= ch["band_hz"][0]) & (f <= ch["band_hz"][1])
+    rms_before = np.sqrt(np.mean((ch["average_db"] - ch["target_db"])[m] ** 2))
+    rms_after = np.sqrt(np.mean((after - ch["target_db"] - cur["pre_gain_db"])[m] ** 2))
+    assert rms_after < 0.7 * rms_before
