@@ -230,6 +230,9 @@ def _run_demo(args: argparse.Namespace) -> int:
         replace = True  # the demo may refresh its own earlier output
     result, entries = _design_and_write(paths, out, settings, replace, extra={"demo": True})
     _print_design_summary(result, out, len(entries) + 1)
+    from roomcorr.report.html import write_report
+
+    print(f"Report (open in any browser): {write_report(out)}")
     return 0
 
 
@@ -380,6 +383,9 @@ def _add_deconvolve(sub: Any) -> argparse.ArgumentParser:
     p.add_argument("--out", metavar="IR.wav", help="default: RECORDING_ir.wav")
     p.add_argument("--loopback-channel", type=int, metavar="N",
                    help="channel of the loopback reference (default from the sweep settings)")
+    p.add_argument("--align", action="store_true",
+                   help="the recording did not start together with the playback (another "
+                   "program recorded it): find the first sweep")
     p.add_argument("--force", action="store_true", help="write even if a gate fails")
     p.add_argument("--replace", action="store_true", help="overwrite --out")
     return p
@@ -390,7 +396,7 @@ def _run_deconvolve(args: argparse.Namespace) -> int:
 
     dest, figures, gates = deconvolve_file(
         args.recording, args.sweep_settings, args.out, force=args.force, replace=args.replace,
-        loopback_channel=args.loopback_channel,
+        loopback_channel=args.loopback_channel, align=args.align,
     )
     for line in gate_lines(gates):
         print(line)

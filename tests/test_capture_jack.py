@@ -180,6 +180,8 @@ def test_cli_measure_deconvolve_design(make_room, tmp_path):  # noqa: F811
             break  # retry only dropped buffers on a loaded machine (see above)
     assert r.returncode == 0, r.stderr
     assert "protect your hearing" in r.stdout
+    played, _ = sf.read(out / "raw" / "playback.wav")
+    assert np.max(np.abs(played)) == pytest.approx(0.1, rel=1e-3)  # -20 dBFS default
     ir, fs = sf.read(out / "pos1.wav", always_2d=True)
     assert band_energy_error_db(ir[:, 0], np.r_[h1, np.zeros(len(ir) - len(h1))], FS,
                                 100, 16000) < -40

@@ -175,3 +175,26 @@ def test_deconvolve_file_round_trip(tmp_path):
     not_sweep.write_text(json.dumps({"design": {}}))
     with pytest.raises(InputFileError, match="sweep settings"):
         deconvolve_file(wav, not_sweep, tmp_path / "x.wav")
+
+
+@pytest.mark.parametrize("offset", [12345, -2000])
+def test_deconvolve_file_aligns_a_recording_made_elsewhere(tmp_path, offset):
+    # A recorder started 0.26 s early (offset > 0) or 42 ms late (offset < 0): with the
+    # loopback as reference, the aligned result has the room's own delay.
+    h = np.zeros(300)
+    h[120] = 0.4
+    mic, lb = simulated_recording(MS, h, latency=300)
+    both = np.array([mic, lb]).T
+    rng = np.random.default_rng(9)
+    if offset > 0:
+        both = np.vstack([1e-5 * rng.standard_normal((offset, 2)), both])
+    else:
+        both = both[-offset:]
+    wav = tmp_path / "elsewhere.wav"
+    sf.write(wav, both.astype(np.float32), FS, subtype="FLOAT")
+    settings = tmp_path / "sweep.json"
+    settings.write_text(json.dumps({"sweep_settings": sweep_layout(MS)}))
+    dest, fig, gates = deconvolve_file(wav, settings, align=True)
+    assert fig["arrival_s"] * FS == pytest.approx(120, abs=0.05)
+    assert "aligned" in fig
+    assert all(g.passed for g in gates)

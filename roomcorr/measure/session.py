@@ -4,6 +4,7 @@ Output folder layout::
 
     pos1.wav, pos2.wav ...   impulse responses (channels = loudspeakers), float32
     raw/pos1_out1.wav ...    raw recordings (channel 1 microphone, channel 2 loopback)
+    raw/playback.wav         the signal played (silence, then sweep + tail per repeat)
     measurement.json         settings, sweep, quality figures and gates
 
 Every file is written atomically; ``measurement.json`` is rewritten after
@@ -27,6 +28,7 @@ from roomcorr.measure.settings import LEVEL_CAP_DBFS, MeasureSettings
 from roomcorr.measure.sweep import Sweep, playback_signal, sweep_starts, synchronized_sweep
 
 RECORD_NAME = "measurement.json"
+PLAYBACK_NAME = "playback.wav"  # the exact signal played per loudspeaker (in raw/)
 RECORD_VERSION = 1
 
 CAUTIONS = (
@@ -290,6 +292,8 @@ def run_measurement(
         f"peak {sweep.level_dbfs:g} dBFS, {ms.repeats} repeat(s)")
     if not ms.loopback:
         say("note: " + NO_LOOPBACK_NOTE)
+    write_ir_wav(out / "raw" / PLAYBACK_NAME, play[None, :], ms.sample_rate)
+    record["playback_file"] = f"raw/{PLAYBACK_NAME}"
     record["level_check"] = level_check(ms, capture_fn)
     say("level check: " + record["level_check"]["advice"])
     write_record(record_path, record)
@@ -353,14 +357,58 @@ def load_layout(path: str | Path) -> dict:
     return layout
 
 
+ALIGN_NOTE = (
+    "recording aligned on its first sweep: the reference channel's first arrival was "
+    "placed 10 ms after the sweep start, so without a loopback arrival times are relative"
+)
+
+
+def align_recording(data: np.ndarray, layout: dict, ref_channel: int) -> np.ndarray:
+    """Shift a recording so that sample 0 is where the playback would have started.
+
+    The first arrival of the first sweep on ``ref_channel`` (the earliest lag
+    whose deconvolved magnitude reaches half the maximum) is placed 10 ms after
+    the nominal sweep start; the recording is zero-padded or cut at the front.
+
+    Parameters
+    ----------
+    data : ndarray, shape (n_samples, n_channels)
+    layout : dict
+        :func:`sweep_layout` output.
+    ref_channel : int
+        0-based channel used to find the sweep.
+
+    Returns
+    -------
+    ndarray, shape (n, n_channels)
+    """
+    sweep = Sweep.from_dict(layout["sweep"])
+    fs = sweep.fs
+    h = np.abs(dc.deconvolve(data[:, ref_channel], sweep))[: data.shape[0]]
+    first = int(np.argmax(h >= 0.5 * h.max()))
+    n_noise = int(round(layout["noise_s"] * fs))
+    start = first - int(round(0.010 * fs)) - n_noise
+    if start >= 0:
+        out = data[start:]
+    else:
+        out = np.vstack([np.zeros((-start, data.shape[1])), data])
+    need = n_noise + int(layout["repeats"]) * (
+        sweep.n_samples + int(round(layout["tail_s"] * fs)))
+    if out.shape[0] < need:
+        out = np.vstack([out, np.zeros((need - out.shape[0], out.shape[1]))])
+    return out
+
+
 def deconvolve_file(
     recording: str | Path, sweep_settings: str | Path, out_path: str | Path | None = None,
     *, force: bool = False, replace: bool = False, loopback_channel: int | None = None,
+    align: bool = False,
 ) -> tuple[Path, dict, list[q.Gate]]:
     """Deconvolve a sweep recorded elsewhere; write the IR WAV and a JSON of its figures.
 
     Channel 1 of the recording is the microphone; ``loopback_channel`` (1-based,
-    default from the sweep settings) is the timing reference.
+    default from the sweep settings) is the timing reference. With ``align``
+    the recording need not start with the playback: see :func:`align_recording`.
     """
     import soundfile as sf
 
@@ -377,8 +425,12 @@ def deconvolve_file(
     lb_ch = loopback_channel if loopback_channel is not None else layout.get("loopback_channel")
     if lb_ch is not None and not 1 <= lb_ch <= data.shape[1]:
         raise InputFileError(f"{rec_path}: has no channel {lb_ch} for the loopback")
+    if align:
+        data = align_recording(data, layout, (lb_ch or 1) - 1)
     lb = data[:, lb_ch - 1] if lb_ch else None
     ir, figures, gates = analyse_recording(data[:, 0], lb, layout)
+    if align:
+        figures["aligned"] = ALIGN_NOTE
     dest = Path(out_path) if out_path else rec_path.with_name(rec_path.stem + "_ir.wav")
     if dest.exists() and not replace:
         raise OutputError(f"{dest} exists; choose another --out or pass --replace")
