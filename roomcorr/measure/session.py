@@ -265,8 +265,14 @@ def run_measurement(
 
     ms.validate()
     out = Path(out_dir)
-    if out.exists() and any(out.iterdir()) and not replace:
-        raise OutputError(f"{out} is not empty; choose a new folder or pass --replace")
+    if out.exists() and any(out.iterdir()):
+        if not replace:
+            raise OutputError(f"{out} is not empty; choose a new folder or pass --replace")
+        # an earlier session's files would otherwise mix with this one's
+        stale = [*out.glob("pos*.wav"), *out.glob("raw/pos*_out*.wav"),
+                 out / "raw" / PLAYBACK_NAME, out / RECORD_NAME]
+        for f in stale:
+            f.unlink(missing_ok=True)
     (out / "raw").mkdir(parents=True, exist_ok=True)
     if ms.level_dbfs > LEVEL_CAP_DBFS:
         say(f"WARNING: sweep level {ms.level_dbfs} dBFS is above the {LEVEL_CAP_DBFS} dBFS cap "
