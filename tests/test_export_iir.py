@@ -102,3 +102,30 @@ def test_table_lists_parameters(folder, design):
 def test_missing_folder_is_an_output_error(tmp_path, design):
     with pytest.raises(OutputError):
         write_iir(design, tmp_path / "nope")
+
+
+def test_with_the_fir_pipeline(tmp_path, ir_set):
+    # End to end with the lead's pipeline: run_design -> write_design -> design_iir -> write_iir.
+    from roomcorr.design.iir_fit import design_iir
+    from roomcorr.pipeline import run_design
+    from roomcorr.settings import Settings, design_from_dict
+
+    irs, fs = ir_set
+    result = run_design(irs, fs, Settings(design=design_from_dict(
+        {"sample_rates": [48000], "iir": True, "iir_sections": 6})))
+    export.write_design(result, tmp_path)
+    iir = design_iir(result)
+    write_iir(iir, tmp_path)
+    man = export.read_manifest(tmp_path)
+    kinds = {e["kind"] for e in man["files"]}
+    assert {"fir", "iir"} <= kinds
+    for e in man["files"]:
+        if e["kind"] == "iir":
+            assert e["sections"] <= 6
+            assert e["fir_rms_error_db"] is not None
+            assert e["peak_gain_db"] <= result.settings.design.ceiling_db + 1e-9
+            assert e["max_boost_db"] <= result.settings.design.max_boost_db + fit.BOOST_TOL_DB
+    # The IIR follows the FIR design about as well as it follows the curve it was fitted to
+    # (the FIR itself follows the curve closely).
+    s = iir.stats[0]
+    assert abs(s.rms_error_fir_db - s.rms_error_db) < 0.5
