@@ -43,6 +43,8 @@ def test_demo_runs_and_prints_summary(tmp_path):
     assert "Caution" in r.stderr  # the cautions, once per run
     assert r.stderr.count("Caution") == 1
     assert (tmp_path / "d" / "manifest.json").is_file()
+    # The main job ends with the report, and says where it is.
+    assert "report.html" in out and (tmp_path / "d" / "report.html").is_file()
     # Run again: the demo refreshes its own output instead of failing.
     assert run("demo", "--out", str(tmp_path / "d"), cwd=tmp_path).returncode == 0
 
