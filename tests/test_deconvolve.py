@@ -131,3 +131,24 @@ def test_unknown_method():
     s = synchronized_sweep(FS, 20.0, 20000.0, 0.5)
     with pytest.raises(ValueError):
         deconvolve(np.zeros(1000), s, method="guess")
+
+
+def test_exact_up_to_the_measurement_band_limit():
+    # Against scipy.signal.fftconvolve: the deconvolution equals the known response seen
+    # through the sweep's own band limit G = X * X^-1 to rounding error; what remains in
+    # test_recovers_known_ir near the band edges is that band limit cut by the window.
+    import scipy.fft
+
+    from roomcorr.measure.deconvolve import inverse_spectrum
+
+    s = synchronized_sweep(FS, 20.0, 20000.0, 1.0, -20.0)
+    x = s.signal()
+    h = invented_room()
+    got = deconvolve(fftconvolve(x, h), s)
+    n = len(got)
+    g = scipy.fft.rfft(x, n) * inverse_spectrum(s, n)
+    seen = scipy.fft.irfft(scipy.fft.rfft(h, n) * g, n)
+    assert band_energy_error_db(got[:4800], seen[:4800], FS, 20.0, 20000.0) < -120
+    f = np.fft.rfftfreq(n, 1 / FS)
+    in_band = (f >= 20.0) & (f <= 20000.0)
+    np.testing.assert_allclose(np.abs(g[in_band]), 1.0, atol=1e-5)  # flat inside the band
