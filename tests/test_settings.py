@@ -93,9 +93,3 @@ def test_bad_toml(tmp_path):
     p.write_text("[design\nx=")
     with pytest.raises(SettingsError, match="bad.toml"):
         load_settings(p)
-
-
-def test_measure_section_is_validated():
-    # The [measure] table is checked too: an unknown key is named.
-    with pytest.raises(SettingsError, match="sweep_lenght"):
-        settings_from_dict({"measure": {"sweep_lenght": 3}})
