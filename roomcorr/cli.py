@@ -405,6 +405,111 @@ def _run_deconvolve(args: argparse.Namespace) -> int:
     return 0
 
 
+# --------------------------------------------------------------------------- room folders
+
+
+def _add_init(sub: Any) -> argparse.ArgumentParser:
+    p = sub.add_parser(
+        "init",
+        help="create a room folder with a commented settings file",
+        description="Create a room folder: roomcorr-room.toml (design and measurement settings, "
+        "commented) and folders for measurements and designs. Commands run inside the folder "
+        "read its settings; command-line options override them for that run.",
+    )
+    p.add_argument("room_dir", metavar="ROOM_DIR", help="folder to create (may already exist)")
+    p.add_argument("--name", help="name of the room (default: the folder's name)")
+    return p
+
+
+def _run_init(args: argparse.Namespace) -> int:
+    from roomcorr.room import init_room
+
+    room = init_room(args.room_dir, args.name)
+    print(f"Room folder ready: {room.root}")
+    print(f"  settings: {room.settings_path} (edit it; command-line options override it)")
+    print("  next: 'roomcorr measure' inside it (start at a low volume), then 'roomcorr design'")
+    return 0
+
+
+def _add_history(sub: Any) -> argparse.ArgumentParser:
+    p = sub.add_parser(
+        "history",
+        help="list the measurements and designs of a room folder",
+        description="List every measurement and design of a room folder, oldest first, with "
+        "key figures. Interrupted runs are shown as incomplete.",
+    )
+    p.add_argument(
+        "room_dir", nargs="?", default=".", metavar="ROOM_DIR",
+        help="room folder (default: the one you are in)",
+    )
+    p.add_argument("--json", action="store_true", help="machine-readable output")
+    return p
+
+
+def _run_history(args: argparse.Namespace) -> int:
+    import json
+
+    from roomcorr.room import format_history, history, open_room, room_name
+
+    room = open_room(args.room_dir)
+    entries = history(room)
+    if args.json:
+        doc = {"room": str(room.root), "name": room_name(room), "runs": entries}
+        print(json.dumps(doc, indent=2))
+    else:
+        print("\n".join(format_history(entries, room_name(room))))
+    return 0
+
+
+def _add_compare(sub: Any) -> argparse.ArgumentParser:
+    p = sub.add_parser(
+        "compare",
+        help="what changed between two measurements (arrival, distance, level, bass, filters)",
+        description="Compare two measurements per loudspeaker channel: change in arrival time "
+        "and distance, level, low-frequency response per 1/3 octave, peaks and dips, and "
+        "whether the existing filters still fit. Default: the room's last two measurements.",
+    )
+    p.add_argument(
+        "a", nargs="?", metavar="A",
+        help="earlier measurement: run id, measurement folder or IR WAV file",
+    )
+    p.add_argument("b", nargs="?", metavar="B", help="later measurement (same forms as A)")
+    p.add_argument("--room", metavar="ROOM_DIR", help="room folder (default: the one you are in)")
+    p.add_argument(
+        "--temperature", type=float, metavar="C",
+        help="air temperature in °C for the speed of sound (default: design.temperature_c "
+        "of the room settings, else 20)",
+    )
+    p.add_argument(
+        "--no-filter-check", action="store_true", help="skip the check of the existing filters"
+    )
+    p.add_argument("--json", action="store_true", help="machine-readable output")
+    return p
+
+
+def _run_compare(args: argparse.Namespace) -> int:
+    import json
+
+    from roomcorr.room import compare_measurements, find_room, format_comparison, open_room
+
+    if (args.a is None) != (args.b is None):
+        raise SettingsError("compare: give both A and B, or neither (the last two measurements)")
+    if args.temperature is not None and not -30.0 <= args.temperature <= 60.0:
+        raise SettingsError(f"--temperature {args.temperature:g}: expected -30 to 60 °C")
+    room = open_room(args.room) if args.room else find_room()
+    if room is None and args.a is None:
+        room = open_room(".")  # raises with the message on how to make a room folder
+    res = compare_measurements(
+        args.a, args.b, room=room, temperature_c=args.temperature,
+        fit_check=not args.no_filter_check,
+    )
+    if args.json:
+        print(json.dumps(res, indent=2))
+    else:
+        print("\n".join(format_comparison(res)))
+    return 0
+
+
 # --------------------------------------------------------------------------- main
 
 _COMMANDS: list[tuple[str, Callable[[Any], argparse.ArgumentParser], Callable[..., int]]] = [
@@ -414,6 +519,9 @@ _COMMANDS: list[tuple[str, Callable[[Any], argparse.ArgumentParser], Callable[..
     ("devices", _add_devices, _run_devices),
     ("measure", _add_measure, _run_measure),
     ("deconvolve", _add_deconvolve, _run_deconvolve),
+    ("init", _add_init, _run_init),
+    ("history", _add_history, _run_history),
+    ("compare", _add_compare, _run_compare),
 ]
 
 

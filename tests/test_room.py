@@ -400,3 +400,60 @@ def test_new_run_folder_starts_empty_and_records_settings(room: R.Room):
 
     marker = json.loads((d / R.COMPLETE_MARKER).read_text())
     assert marker["room_settings_sha256"] == hashlib.sha256(start).hexdigest()
+
+
+# ---------------------------------------------------------------- command line (as a user runs it)
+
+
+def _cli(*args: str, cwd: Path) -> subprocess.CompletedProcess:
+    return subprocess.run(
+        [sys.executable, "-m", "roomcorr", *args],
+        cwd=cwd,
+        env=_env(),
+        capture_output=True,
+        text=True,
+        timeout=300,
+    )
+
+
+def test_cli_init_history_compare(tmp_path: Path):
+    r = _cli("init", "den", "--name", "den at the back", cwd=tmp_path)
+    assert r.returncode == 0, r.stderr
+    assert (tmp_path / "den" / R.SETTINGS_FILE).is_file()
+    again = _cli("init", "den", cwd=tmp_path)
+    assert again.returncode == 2
+    assert again.stderr.count("\n") == 1 and "already a room folder" in again.stderr
+
+    room = R.open_room(tmp_path / "den")
+    moved = SPK_L + np.array([0.0, 0.25, 0.0])
+    _measure(room, room_set(SPK_L, SPK_R, C20))
+    _measure(room, room_set(moved, SPK_R, C20, gain_r=10 ** (-2 / 20)))
+
+    h = _cli("history", cwd=room.root / "measurements")  # from inside: found by walking up
+    assert h.returncode == 0, h.stderr
+    assert "Room den at the back: 2 run(s)" in h.stdout
+
+    c = _cli("compare", "--json", "--temperature", "30", cwd=room.root)
+    assert c.returncode == 0, c.stderr
+    doc = json.loads(c.stdout)
+    from test_compare import MICS
+
+    # The model room was made with c at 20 °C; at 30 °C roomcorr converts the
+    # same arrival change with c(30 °C), so the distance scales by c30 / c20.
+    c30 = speed_of_sound_m_s(30.0)
+    assert doc["speed_of_sound_m_s"] == pytest.approx(c30, abs=1e-3)
+    want = np.mean([np.linalg.norm(moved - m) - np.linalg.norm(SPK_L - m) for m in MICS])
+    left, right = doc["channels"]
+    assert left["arrival_change_ms"] == pytest.approx(want / C20 * 1e3, abs=0.02 / C20 * 1e3)
+    assert left["distance_change_m"] == pytest.approx(want * c30 / C20, abs=0.02)
+    assert right["level_change_db"] == pytest.approx(-2.0, abs=0.5)
+    assert doc["filter_fit"]["available"] is False  # no design yet, and it says so
+
+
+def test_cli_errors_are_one_line(tmp_path: Path):
+    r = _cli("compare", cwd=tmp_path)
+    assert r.returncode == 2 and "roomcorr init" in r.stderr and r.stderr.count("\n") == 1
+    r = _cli("compare", "only-one", cwd=tmp_path)
+    assert r.returncode == 2 and "both A and B" in r.stderr
+    r = _cli("history", str(tmp_path), cwd=tmp_path)
+    assert r.returncode == 2 and "not inside a room folder" in r.stderr
