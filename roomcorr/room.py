@@ -879,7 +879,7 @@ def history(room: Room) -> list[dict[str, Any]]:
         }
         info = r.marker.get("info", {})
         if r.kind == "design":
-            entry["source"] = info.get("measurement")
+            entry["source"] = design_source(r) if r.complete else info.get("measurement")
         if info.get("note"):
             entry["note"] = info["note"]
         if r.complete:
@@ -914,17 +914,33 @@ def _run_id_of(path: Path, room: Room | None) -> str | None:
     return None
 
 
+def design_source(run: RunInfo) -> str | None:
+    """Run id of the measurement a design run was made from, if recorded.
+
+    Looks at ``info["measurement"]`` of the run's marker (a run id or path),
+    then at the ``measurements`` file list of its ``manifest.json``.
+    """
+    ref = run.marker.get("info", {}).get("measurement")
+    if ref:
+        return Path(str(ref)).name
+    try:
+        man = json.loads((run.path / "manifest.json").read_text(encoding="utf-8"))
+    except (OSError, json.JSONDecodeError):
+        return None
+    files = man.get("measurements") if isinstance(man, dict) else None
+    if isinstance(files, list) and files:
+        parents = {Path(str(f)).parent.name for f in files}
+        if len(parents) == 1:
+            return parents.pop()
+    return None
+
+
 def _design_for(room: Room, meas_id: str | None, before: Path) -> Path | None:
     """The newest complete design made from measurement ``meas_id`` (else the newest
     design finished before run folder ``before`` was started)."""
     designs = list_runs(room, "design", include_incomplete=False)
     if meas_id is not None:
-        own = [
-            d
-            for d in designs
-            if str(d.marker.get("info", {}).get("measurement", "")).rstrip("/").split("/")[-1]
-            == meas_id
-        ]
+        own = [d for d in designs if design_source(d) == meas_id]
         if own:
             return own[-1].path
     key = _run_sort_key(before)

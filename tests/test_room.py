@@ -457,3 +457,24 @@ def test_cli_errors_are_one_line(tmp_path: Path):
     assert r.returncode == 2 and "both A and B" in r.stderr
     r = _cli("history", str(tmp_path), cwd=tmp_path)
     assert r.returncode == 2 and "not inside a room folder" in r.stderr
+
+
+def test_design_source_from_the_manifest_file_list(room: R.Room):
+    # A design command that records its inputs only in manifest.json (the
+    # "measurements" file list) is still traced back to its measurement run.
+    from roomcorr.audio_io import read_ir_set
+    from roomcorr.export import write_design
+    from roomcorr.pipeline import run_design
+
+    m1 = _measure(room, room_set(SPK_L, SPK_R, C20))
+    m2 = _measure(room, room_set(SPK_L, SPK_R, C20, gain_r=0.5))
+    settings = R.load_room_settings(room)
+    settings.design.sample_rates = (48000,)
+    irs, fs, files = read_ir_set(R.measurement_files(m1))
+    with R.new_run(room, "design") as d:
+        write_design(
+            run_design(irs, fs, settings), d, extra={"measurements": [str(f) for f in files]}
+        )
+    assert R.history(room)[-1]["source"] == m1.name
+    res = R.compare_measurements(m1, m2, room=room)
+    assert res["filter_fit"]["design"] == str(d)
