@@ -471,7 +471,8 @@ def _add_compare(sub: Any) -> argparse.ArgumentParser:
     )
     p.add_argument(
         "a", nargs="?", metavar="A",
-        help="earlier measurement: run id, measurement folder or IR WAV file",
+        help="earlier measurement: run id, measurement folder, or IR WAV file(s) "
+        "separated by commas (one per position)",
     )
     p.add_argument("b", nargs="?", metavar="B", help="later measurement (same forms as A)")
     p.add_argument("--room", metavar="ROOM_DIR", help="room folder (default: the one you are in)")

@@ -990,9 +990,21 @@ def _fit_check(design_dir: Path, irs_b, fs_b: int) -> dict[str, Any]:
     }
 
 
+def _resolve_set(room: Room | None, ref: Any) -> tuple[Path, list[Path]]:
+    """(the measurement's folder or first file, its IR files) for a run id, folder, WAV
+    file, comma-separated WAV files or a list of them."""
+    if isinstance(ref, str) and "," in ref and not Path(ref).exists():
+        ref = [x for x in ref.split(",") if x.strip()]
+    if isinstance(ref, list | tuple):
+        files = [f for item in ref for f in measurement_files(item)]
+        return Path(ref[0]), files
+    p = resolve_run(room, ref)
+    return p, measurement_files(p)
+
+
 def compare_measurements(
-    a: str | os.PathLike[str] | None = None,
-    b: str | os.PathLike[str] | None = None,
+    a: str | os.PathLike[str] | list | None = None,
+    b: str | os.PathLike[str] | list | None = None,
     room: Room | None = None,
     temperature_c: float | None = None,
     fit_check: bool = True,
@@ -1002,8 +1014,10 @@ def compare_measurements(
 
     Parameters
     ----------
-    a, b : path-like or str, optional
-        Before and after. Default: the room's last two complete measurements.
+    a, b : path-like, str or list, optional
+        Before and after: a run id, a measurement folder, a WAV file, several
+        WAV files (a list, or one string with commas; one file per position).
+        Default: the room's last two complete measurements.
     room : Room, optional
         Room for run ids, settings (temperature) and the old design.
     temperature_c : float, optional
@@ -1029,13 +1043,16 @@ def compare_measurements(
                 f"{room.measurements_dir}: {len(runs)} complete measurement(s); compare needs "
                 "two (or give two folders)"
             )
-        pa, pb = runs[-2].path, runs[-1].path
+        (pa, files_a), (pb, files_b) = (
+            _resolve_set(room, runs[-2].path),
+            _resolve_set(room, runs[-1].path),
+        )
     else:
-        pa, pb = resolve_run(room, a), resolve_run(room, b)
+        (pa, files_a), (pb, files_b) = _resolve_set(room, a), _resolve_set(room, b)
     if temperature_c is None:
         temperature_c = load_room_settings(room).design.temperature_c if room else 20.0
-    irs_a, fs_a, _ = read_ir_set(measurement_files(pa))
-    irs_b, fs_b, _ = read_ir_set(measurement_files(pb))
+    irs_a, fs_a, _ = read_ir_set(files_a)
+    irs_b, fs_b, _ = read_ir_set(files_b)
     if irs_a.shape[1] != irs_b.shape[1]:
         raise InputFileError(
             f"{pb}: {irs_b.shape[1]} loudspeaker channels, but {pa} has {irs_a.shape[1]}; "
@@ -1045,6 +1062,8 @@ def compare_measurements(
     res = compare_sets(irs_a, fs_a, irs_b, fs_b, temperature_c, names, with_curves=with_curves)
     res["before"] = str(pa)
     res["after"] = str(pb)
+    res["before_files"] = [str(f) for f in files_a]
+    res["after_files"] = [str(f) for f in files_b]
     res["speed_of_sound_formula"] = (
         "c = 343.2 * sqrt((t + 273.15) / 293.15) m/s (ISO 9613-1, annex A)"
     )

@@ -478,3 +478,23 @@ def test_design_source_from_the_manifest_file_list(room: R.Room):
     assert R.history(room)[-1]["source"] == m1.name
     res = R.compare_measurements(m1, m2, room=room)
     assert res["filter_fit"]["design"] == str(d)
+
+
+def test_compare_accepts_lists_of_files(tmp_path: Path):
+    a_dir, b_dir = tmp_path / "a", tmp_path / "b"
+    a_dir.mkdir()
+    b_dir.mkdir()
+    moved = SPK_R + np.array([0.0, -0.2, 0.0])
+    _write_set(a_dir, room_set(SPK_L, SPK_R, C20))
+    _write_set(b_dir, room_set(SPK_L, moved, C20))
+    whole = R.compare_measurements(a_dir, b_dir, fit_check=False)
+    files_b = R.measurement_files(b_dir)
+    listed = R.compare_measurements(
+        ",".join(str(f) for f in R.measurement_files(a_dir)),
+        [str(f) for f in files_b],
+        fit_check=False,
+    )
+    assert listed["after_files"] == [str(f) for f in files_b]
+    for x, y in zip(whole["channels"], listed["channels"], strict=True):
+        assert x["distance_change_m"] == y["distance_change_m"]
+    assert whole["temperature_c"] == 20.0  # no room: the default temperature
