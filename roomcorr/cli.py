@@ -485,6 +485,7 @@ def _add_compare(sub: Any) -> argparse.ArgumentParser:
         "--no-filter-check", action="store_true", help="skip the check of the existing filters"
     )
     p.add_argument("--json", action="store_true", help="machine-readable output")
+    p.add_argument("--plot", metavar="FILE.png", help="also draw both responses overlaid")
     return p
 
 
@@ -503,11 +504,20 @@ def _run_compare(args: argparse.Namespace) -> int:
     res = compare_measurements(
         args.a, args.b, room=room, temperature_c=args.temperature,
         fit_check=not args.no_filter_check,
+        with_curves=bool(args.plot),
     )
+    if args.plot:
+        from roomcorr.room import write_comparison_plot
+
+        write_comparison_plot(res, args.plot)
+        for ch in res["channels"]:
+            ch.pop("curves", None)
     if args.json:
         print(json.dumps(res, indent=2))
     else:
         print("\n".join(format_comparison(res)))
+    if args.plot:
+        print(f"plot written to {args.plot}", file=sys.stderr if args.json else sys.stdout)
     return 0
 
 

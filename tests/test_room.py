@@ -433,9 +433,11 @@ def test_cli_init_history_compare(tmp_path: Path):
     assert h.returncode == 0, h.stderr
     assert "Room den at the back: 2 run(s)" in h.stdout
 
-    c = _cli("compare", "--json", "--temperature", "30", cwd=room.root)
+    c = _cli("compare", "--json", "--temperature", "30", "--plot", "cmp.png", cwd=room.root)
     assert c.returncode == 0, c.stderr
-    doc = json.loads(c.stdout)
+    doc = json.loads(c.stdout)  # stdout holds only the JSON document
+    assert (room.root / "cmp.png").read_bytes()[:4] == b"\x89PNG"
+    assert "curves" not in doc["channels"][0]
     from test_compare import MICS
 
     # The model room was made with c at 20 °C; at 30 °C roomcorr converts the
@@ -498,3 +500,24 @@ def test_compare_accepts_lists_of_files(tmp_path: Path):
     for x, y in zip(whole["channels"], listed["channels"], strict=True):
         assert x["distance_change_m"] == y["distance_change_m"]
     assert whole["temperature_c"] == 20.0  # no room: the default temperature
+
+
+def test_comparison_plot_png(tmp_path: Path):
+    a_dir, b_dir = tmp_path / "a", tmp_path / "b"
+    a_dir.mkdir()
+    b_dir.mkdir()
+    _write_set(a_dir, room_set(SPK_L, SPK_R, C20))
+    _write_set(b_dir, room_set(SPK_L, SPK_R + np.array([0.0, -0.3, 0.0]), C20))
+    res = R.compare_measurements(a_dir, b_dir, fit_check=False, with_curves=True)
+    out = R.write_comparison_plot(res, tmp_path / "cmp.png")
+    data = out.read_bytes()
+    assert data[:8] == b"\x89PNG\r\n\x1a\n"  # PNG signature (PNG specification, 5.2)
+    import matplotlib.image as mpimg
+
+    img = mpimg.imread(out)
+    assert img.shape[0] > 300 and img.shape[1] > 600
+    assert float(np.std(img[..., :3])) > 0.05  # not blank
+    with pytest.raises(OutputError, match=r"\.png"):
+        R.write_comparison_plot(res, tmp_path / "cmp.jpg")
+    with pytest.raises(ValueError, match="with_curves"):
+        R.comparison_png(R.compare_measurements(a_dir, b_dir, fit_check=False))
