@@ -6,6 +6,7 @@ can fix raises :class:`~roomcorr.errors.InputFileError` naming the file.
 
 from __future__ import annotations
 
+import re
 from pathlib import Path
 
 import numpy as np
@@ -86,13 +87,24 @@ def check_ir(data: np.ndarray, fs: int, name: str) -> None:
         )
 
 
+def natural_key(name: str) -> list[int | str]:
+    """Sort key comparing digit runs as numbers (``pos2.wav`` before ``pos10.wav``)."""
+    return [int(t) if t.isdigit() else t.lower() for t in re.split(r"(\d+)", name)]
+
+
 def expand_ir_paths(paths: list[str | Path]) -> list[Path]:
-    """Turn files and folders into a list of WAV files (folders: top-level ``*.wav``, sorted)."""
+    """Turn files and folders into a list of WAV files.
+
+    A folder stands for its top-level ``*.wav`` files in position order
+    (numbers in names compared as numbers).
+    """
     out: list[Path] = []
     for item in paths:
         p = Path(item)
         if p.is_dir():
-            found = sorted(q for q in p.glob("*.wav") if q.is_file())
+            found = sorted(
+                (q for q in p.glob("*.wav") if q.is_file()), key=lambda q: natural_key(q.name)
+            )
             if not found:
                 raise InputFileError(f"{p}: folder holds no .wav impulse responses")
             out.extend(found)

@@ -90,12 +90,12 @@ _OPTION_KEYS = {
 }
 
 
-def settings_from_args(args: argparse.Namespace, base_file: str | Path | None = None) -> Any:
-    """Settings: defaults, then the settings file, then command-line options."""
+def settings_from_args(args: argparse.Namespace, base: Any = None) -> Any:
+    """Settings: defaults (or a room's settings), then --settings FILE, then options."""
     from roomcorr.settings import Settings, design_from_dict, load_settings
 
-    file = getattr(args, "settings", None) or base_file
-    settings = load_settings(file) if file else Settings()
+    file = getattr(args, "settings", None)
+    settings = load_settings(file) if file else (base if base is not None else Settings())
     overrides: dict[str, Any] = {}
     for opt, key in _OPTION_KEYS.items():
         value = getattr(args, opt, None)
@@ -112,10 +112,10 @@ def settings_from_args(args: argparse.Namespace, base_file: str | Path | None = 
     return settings
 
 
-def _print_design_summary(result: Any, out: Path, n_files: int) -> None:
+def _print_design_summary(result: Any, out: Path, entries: list[dict]) -> None:
     import numpy as np
 
-    print(f"Design written to {out}  ({n_files} files, manifest.json lists them)")
+    print(f"Design written to {out}  ({len(entries) + 1} files, manifest.json lists them)")
     print(f"Common pre-gain: {result.pre_gain_db:+.2f} dB (same for every channel)")
     for ch in result.channels:
         lo, hi = ch.band_hz
@@ -137,6 +137,13 @@ def _print_design_summary(result: Any, out: Path, n_files: int) -> None:
                 f"          boost withheld: up to {withheld.max():.1f} dB (at {f0:.0f} Hz), "
                 "a dip that boosting cannot fix safely"
             )
+    for e in entries:
+        if e.get("kind") == "iir" and e.get("format") == "json":
+            print(
+                f"  {e['channel_name']:>6}: {e['sections']} biquads at {e['sample_rate']} Hz, "
+                f"fit error {e['fit_rms_error_db']:.1f} dB RMS ({e['fit_max_error_db']:.1f} dB "
+                f"max), pre-gain {e['pre_gain_db']:+.2f} dB, peak gain {e['peak_gain_db']:+.2f} dB"
+            )
     if result.settings.design.ceiling_db > 0:
         print(
             f"WARNING: ceiling {result.settings.design.ceiling_db:+g} dB allows filter gain; "
@@ -154,10 +161,19 @@ def _design_and_write(
 
     irs, fs, files = read_ir_set(ir_paths)
     result = run_design(irs, fs, settings)
+    iir = None
+    if settings.design.iir:
+        from roomcorr.design.iir_fit import design_iir
+
+        iir = design_iir(result)  # fitted and safety-checked before anything is written
     info = {"measurements": [str(f) for f in files]}
     if extra:
         info.update(extra)
     entries = write_design(result, out, replace=replace, extra=info)
+    if iir is not None:
+        from roomcorr.export_iir import write_iir
+
+        entries += write_iir(iir, out)
     return result, entries
 
 
@@ -169,18 +185,53 @@ def _add_design(sub: Any) -> argparse.ArgumentParser:
         "sample rate) from impulse responses: one WAV per microphone position, one channel "
         "per loudspeaker.",
     )
-    p.add_argument("irs", nargs="+", metavar="IR", help="impulse-response WAV files or folders")
-    p.add_argument("--out", required=True, metavar="DIR", help="output folder")
+    p.add_argument(
+        "irs",
+        nargs="*",
+        metavar="IR",
+        help="impulse-response WAV files or folders (in a room folder: default the latest "
+        "measurement)",
+    )
+    p.add_argument(
+        "--out", metavar="DIR", help="output folder (in a room folder: a new designs/ run)"
+    )
+    p.add_argument("--room", metavar="ROOM_DIR", help="room folder (default: the one you are in)")
     _add_design_options(p)
     return p
 
 
 def _run_design(args: argparse.Namespace) -> int:
-    settings = settings_from_args(args)
+    from roomcorr import room as rooms
+
+    room = rooms.open_room(args.room) if args.room else None
+    if room is None and not args.out:
+        room = rooms.find_room()
+    if args.out:  # a plain output folder, room or not
+        if not args.irs:
+            raise SettingsError("design: name the impulse-response files or folders to use")
+        settings = settings_from_args(args, rooms.load_room_settings(room) if room else None)
+        _print_cautions()
+        out = Path(args.out)
+        result, entries = _design_and_write(args.irs, out, settings, args.replace)
+        _print_design_summary(result, out, entries)
+        return 0
+    if room is None:
+        raise SettingsError(
+            "design: give --out DIR, or run it inside a room folder (see roomcorr init)"
+        )
+    settings = settings_from_args(args, rooms.load_room_settings(room))
+    if args.irs:
+        paths = [str(p) for p in args.irs]
+        source = {"measurement": None, "measurement_paths": paths}
+    else:
+        meas = rooms.latest_measurement(room)
+        paths = [str(p) for p in rooms.measurement_files(meas)]
+        source = {"measurement": meas.name}
+        print(f"Using the latest measurement: {meas.relative_to(room.root)}")
     _print_cautions()
-    out = Path(args.out)
-    result, entries = _design_and_write(args.irs, out, settings, args.replace)
-    _print_design_summary(result, out, len(entries) + 1)
+    with rooms.new_run(room, "design", info=dict(source)) as run_dir:
+        result, entries = _design_and_write(paths, run_dir, settings, False, extra=source)
+    _print_design_summary(result, run_dir, entries)
     return 0
 
 
@@ -229,7 +280,7 @@ def _run_demo(args: argparse.Namespace) -> int:
     if (out / MANIFEST).exists() and read_manifest(out).get("demo"):
         replace = True  # the demo may refresh its own earlier output
     result, entries = _design_and_write(paths, out, settings, replace, extra={"demo": True})
-    _print_design_summary(result, out, len(entries) + 1)
+    _print_design_summary(result, out, entries)
     from roomcorr.report.html import write_report
 
     print(f"Report (open in any browser): {write_report(out)}")
@@ -310,7 +361,10 @@ def _add_measure(sub: Any) -> argparse.ArgumentParser:
         f"Sweeps start at {DEFAULT_LEVEL_DBFS:g} dBFS and are capped at {LEVEL_CAP_DBFS:g} "
         "dBFS: turn the amplifier down first.",
     )
-    p.add_argument("--out", required=True, metavar="DIR", help="new (or empty) session folder")
+    p.add_argument(
+        "--out", metavar="DIR", help="new (or empty) session folder (in a room folder: a new run)"
+    )
+    p.add_argument("--room", metavar="ROOM_DIR", help="room folder (default: the one you are in)")
     p.add_argument("--settings", metavar="FILE", help="settings TOML; its [measure] table")
     p.add_argument("--device", help="device name (part of it) or index; see 'roomcorr devices'")
     p.add_argument("--outputs", type=_int_list, metavar="1,2",
@@ -335,11 +389,13 @@ def _add_measure(sub: Any) -> argparse.ArgumentParser:
     return p
 
 
-def measure_settings_from_args(args: argparse.Namespace) -> Any:
-    """MeasureSettings from --settings (its [measure] table) overridden by options."""
+def measure_settings_from_args(
+    args: argparse.Namespace, room_measure: dict[str, Any] | None = None
+) -> Any:
+    """MeasureSettings from the room's or --settings' [measure] table, then options."""
     from roomcorr.measure.settings import MeasureSettings
 
-    base: dict[str, Any] = {}
+    base: dict[str, Any] = dict(room_measure or {})
     if args.settings:
         from roomcorr.settings import load_settings
 
@@ -361,12 +417,31 @@ def measure_settings_from_args(args: argparse.Namespace) -> Any:
 
 
 def _run_measure(args: argparse.Namespace) -> int:
+    from roomcorr import room as rooms
     from roomcorr.measure.session import run_measurement
 
-    ms = measure_settings_from_args(args)
-    record = run_measurement(ms, args.out, yes=args.yes, force=args.force, replace=args.replace)
+    room = rooms.open_room(args.room) if args.room else None
+    if room is None and not args.out:
+        room = rooms.find_room()
+    if args.out:
+        ms = measure_settings_from_args(args)
+        record = run_measurement(
+            ms, args.out, yes=args.yes, force=args.force, replace=args.replace
+        )
+        n = sum(1 for p in record["positions"] if p["file"])
+        print(f"measured {n} position(s) into {args.out}; next: roomcorr design {args.out}")
+        return 0
+    if room is None:
+        raise SettingsError(
+            "measure: give --out DIR, or run it inside a room folder (see roomcorr init)"
+        )
+    ms = measure_settings_from_args(args, rooms.load_room_settings(room).measure)
+    with rooms.new_run(room, "measurement") as run_dir:
+        record = run_measurement(ms, run_dir, yes=args.yes, force=args.force, replace=False)
     n = sum(1 for p in record["positions"] if p["file"])
-    print(f"measured {n} position(s) into {args.out}; next: roomcorr design {args.out}")
+    print(
+        f"measured {n} position(s) into {run_dir.relative_to(room.root)}; next: roomcorr design"
+    )
     return 0
 
 

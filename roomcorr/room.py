@@ -51,6 +51,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from roomcorr.atomic import atomic_write_bytes, atomic_write_text
+from roomcorr.audio_io import natural_key
 from roomcorr.errors import InputFileError, OutputError, SettingsError
 
 if TYPE_CHECKING:
@@ -719,7 +720,6 @@ def resolve_run(room: Room | None, ref: str | os.PathLike[str], kind: str = "mea
     raise InputFileError(f"{ref}: no such file, folder or {kind} run")
 
 
-_NUM = re.compile(r"(\d+)")
 
 
 def measurement_files(folder: str | os.PathLike[str]) -> list[Path]:
@@ -734,7 +734,7 @@ def measurement_files(folder: str | os.PathLike[str]) -> list[Path]:
     if not p.is_dir():
         raise InputFileError(f"{p}: no such measurement folder or file")
     files = [q for q in p.glob("*.wav") if q.is_file()]
-    files.sort(key=lambda q: [int(t) if t.isdigit() else t.lower() for t in _NUM.split(q.name)])
+    files.sort(key=lambda q: natural_key(q.name))
     if not files:
         raise InputFileError(f"{p}: holds no .wav impulse responses")
     return files

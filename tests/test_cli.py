@@ -192,3 +192,28 @@ def test_allow_gain_warns(tmp_path):
     )
     assert r.returncode == 0, r.stderr
     assert "WARNING" in r.stderr
+
+
+def test_design_with_biquads(tmp_path):
+    out = tmp_path / "o"
+    r = run(
+        "design",
+        str(REPO / "measurements_demo"),
+        "--out",
+        str(out),
+        "--iir",
+        "--iir-sections",
+        "6",
+        "--rates",
+        "48000",
+    )
+    assert r.returncode == 0, r.stderr
+    assert "biquads at 48000 Hz" in r.stdout
+    m = json.loads((out / "manifest.json").read_text())
+    iir = [e for e in m["files"] if e["kind"] == "iir"]
+    assert {e["format"] for e in iir} >= {"json", "csv"}
+    for e in iir:
+        assert e["sections"] <= 6
+        assert e["peak_gain_db"] <= 1e-3  # the cascade with its pre-gain stage
+        assert e["max_boost_db"] <= 4.0 + 0.3
+        assert (out / e["path"]).is_file()
