@@ -299,6 +299,12 @@ def _add_report(sub: Any) -> argparse.ArgumentParser:
         "DIR is a design output folder or a measurement session folder.",
     )
     p.add_argument("dir", metavar="DIR", help="design output folder or measurement folder")
+    p.add_argument(
+        "--compare-with",
+        metavar="RUN_OR_FOLDER",
+        help="earlier measurement (run id of the room, folder or WAV file) for the section "
+        "comparing both responses (default: in a room folder, the previous measurement)",
+    )
     return p
 
 
@@ -306,7 +312,7 @@ def _run_report(args: argparse.Namespace) -> int:
     from roomcorr.report.html import write_report
 
     folder = Path(args.dir)
-    path = write_report(folder)
+    path = write_report(folder, compare_with=args.compare_with)
     if (folder / "manifest.json").is_file() and (folder / "design.npz").is_file():
         from roomcorr.export import load_design_curves, read_manifest
         from roomcorr.report.summary import summary_sentences

@@ -14,6 +14,7 @@ from __future__ import annotations
 import base64
 import html
 import json
+import re
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -28,6 +29,7 @@ FIG_DIR = "report"
 #: Section ids, in page order (per channel sections get a ``-<channel>`` suffix).
 SECTION_TITLES = {
     "overview": "At a glance",
+    "compare": "What changed since the earlier measurement",
     "room": "The room as measured",
     "result": "Predicted result at every position",
     "filter": "The correction filter",
@@ -307,6 +309,97 @@ def _iir_section(freq, ch, docs, fir, rate, pre_gain, band, png) -> Section:
     return sec
 
 
+def _channel_sentences(block: list[str]) -> str:
+    """One channel's lines of :func:`roomcorr.room.format_comparison` as plain sentences.
+
+    Lines indented by two spaces are items; deeper lines continue the item above
+    (band cells, peak and dip lines). Items are joined with "; ".
+    """
+    items: list[str] = []
+    for line in block:
+        text = re.sub(r"\s{2,}", ", ", line.strip())
+        if not text:
+            continue
+        if items and len(line) - len(line.lstrip()) > 2:
+            items[-1] += (" " if items[-1].endswith(":") else ", ") + text
+        else:
+            items.append(text)
+    return "; ".join(items)
+
+
+def _sentence(line: str) -> str:
+    text = line.strip()
+    return text[:1].upper() + text[1:]
+
+
+def comparison_section(res: dict[str, Any]) -> Section:
+    """The comparison section: both responses overlaid, and a table per channel.
+
+    Parameters
+    ----------
+    res : dict
+        :func:`roomcorr.room.compare_measurements` result with ``with_curves=True``
+        (``before`` and ``after`` are shown as given).
+
+    Returns
+    -------
+    Section
+        Id ``compare``; one figure (key ``compare``, from
+        :func:`roomcorr.room.comparison_png`); table rows ``channel, arrival
+        change (ms), distance change (m), level change (dB), what changed``, the
+        last column holding that channel's sentences of
+        :func:`roomcorr.room.format_comparison`.
+    """
+    from roomcorr.room import comparison_png, format_comparison
+
+    lines = format_comparison(res)
+    blocks: list[list[str]] = [[]]
+    for line in lines:
+        if line == "":
+            blocks.append([])
+        else:
+            blocks[-1].append(line)
+    chans = res["channels"]
+    sec = Section("compare", SECTION_TITLES["compare"])
+    sec.paragraphs.append(
+        f"The measurement behind this folder ({res['after']}) against the earlier one "
+        f"({res['before']}). Blue is before, orange after, both position-averaged and "
+        "smoothed to 1/24 octave, drawn relative to the earlier level between 100 Hz and "
+        "10 kHz; the right-hand panels mark peaks and dips below 500 Hz that appeared, moved "
+        "or vanished."
+    )
+    per_channel: list[str]
+    if len(blocks) == len(chans) + 2:  # header, one block per channel, filter check
+        sec.paragraphs.extend(_sentence(ln) for ln in blocks[0][2:])
+        per_channel = [_channel_sentences(b[1:]) for b in blocks[1:-1]]
+        sec.paragraphs.extend(_sentence(ln) for ln in blocks[-1])
+    else:  # layout not as expected: keep every line, nothing lost
+        sec.paragraphs.extend(_sentence(ln) for ln in lines[2:] if ln.strip())
+        per_channel = ["" for _ in chans]
+    rows = [["channel", "arrival change (ms)", "distance change (m)", "level change (dB)",
+             "what changed"]]
+    for ch, text in zip(chans, per_channel, strict=True):
+        rows.append([str(ch["name"]), f"{ch['arrival_change_ms']:+.3f}",
+                     f"{ch['distance_change_m']:+.3f}", f"{ch['level_change_db']:+.2f}", text])
+    sec.table = rows
+    sec.figures.append(
+        Figure("compare", "Before and after, both responses overlaid per channel",
+               comparison_png(res))
+    )
+    return sec
+
+
+def _comparison_sentence(res: dict[str, Any]) -> str:
+    parts = [
+        f"{ch['name']} {ch['distance_change_m']:+.3f} m, {ch['level_change_db']:+.1f} dB"
+        for ch in res["channels"]
+    ]
+    return (
+        f"Since the earlier measurement ({res['before']}): " + "; ".join(parts)
+        + " (distance and level changes; see the comparison section)."
+    )
+
+
 def _design_caps(settings: dict[str, Any] | None) -> dict[str, Any]:
     d = (settings or {}).get("design", {}) if isinstance(settings, dict) else {}
     return {
@@ -324,6 +417,7 @@ def build_report(
     iir: dict[str, list[dict[str, Any]]] | None = None,
     title: str = "Room correction report",
     dpi: int = 90,
+    comparison: dict[str, Any] | None = None,
 ) -> Report:
     """Compute every section and figure of the report.
 
@@ -344,6 +438,10 @@ def build_report(
     title : str
     dpi : int
         Resolution of the PNGs.
+    comparison : dict, optional
+        :func:`roomcorr.room.compare_measurements` result (``with_curves=True``)
+        against an earlier measurement; adds the comparison section after the
+        overview. Left out when None.
 
     Returns
     -------
@@ -373,6 +471,9 @@ def build_report(
             "This folder holds measurements only; run the design step to see a correction."
         )
     sections = [overview]
+    if comparison is not None:
+        sections.append(comparison_section(comparison))
+        overview.paragraphs.append(_comparison_sentence(comparison))
     ringing_notes: list[str] = []
     safety_rows = [["channel", "rate (Hz)", "taps", "peak gain (dB)", "worst-case gain (dB)"]]
 
@@ -591,6 +692,7 @@ figcaption{font-size:.85em;color:#5b6877}
 table{border-collapse:collapse;font-size:.9em;margin:8px 0}
 td,th{border:1px solid #d5dce3;padding:3px 10px;text-align:right}
 th{background:#eef2f5}
+#compare td:last-child{text-align:left}
 """
 
 
@@ -690,7 +792,144 @@ def _session_curves(folder: Path) -> dict[str, Any]:
             "channels": channels}
 
 
-def write_report(folder: str | Path, dpi: int = 90) -> Path:
+def _complete(run_dir: Path) -> bool:
+    from roomcorr.room import COMPLETE_MARKER
+
+    try:
+        data = json.loads((run_dir / COMPLETE_MARKER).read_text(encoding="utf-8"))
+    except (OSError, json.JSONDecodeError):
+        return False
+    return isinstance(data, dict) and data.get("complete") is True
+
+
+def _source_measurement(d: Path, room: Any) -> tuple[Any, Any]:
+    """(room, the measurement behind folder ``d``) or (room, None).
+
+    The measurement is a folder (a measurement run, or ``d`` itself when it is
+    a measurement folder) or, for a design outside a room, the list of IR files
+    in its manifest.
+    """
+    from roomcorr import room as rooms
+
+    if not ((d / "manifest.json").is_file() and (d / "design.npz").is_file()):
+        return room, d
+    try:
+        manifest = json.loads((d / "manifest.json").read_text(encoding="utf-8"))
+    except (OSError, json.JSONDecodeError):
+        manifest = {}
+    if room is not None and d.parent == room.designs_dir.resolve():
+        run = next((r for r in rooms.list_runs(room, "design") if r.path.resolve() == d), None)
+        ref = (run.marker.get("info", {}).get("measurement") if run else None) or manifest.get(
+            "measurement"
+        )
+        if not ref and run is not None:
+            ref = rooms.design_source(run)
+        if ref:
+            cand = room.measurements_dir / Path(str(ref)).name
+            if cand.is_dir():
+                return room, cand
+    files = manifest.get("measurements")
+    if isinstance(files, list) and files:
+        paths = [Path(str(f)) if Path(str(f)).is_absolute() else Path.cwd() / str(f)
+                 for f in files]
+        parents = {q.parent.resolve() for q in paths}
+        if len(parents) == 1:  # all from one measurement run of a room: use that room
+            parent = parents.pop()
+            other = rooms.find_room(parent)
+            if other is not None and parent.parent == other.measurements_dir.resolve():
+                return other, parent
+        if all(q.is_file() for q in paths):
+            return room, [str(q) for q in paths]
+    return room, None
+
+
+def _earlier_measurement(room: Any, after: Any) -> Path | None:
+    """The newest complete measurement run of ``room`` older than run folder ``after``."""
+    from roomcorr import room as rooms
+
+    if room is None or not isinstance(after, Path):
+        return None
+    after = after.resolve()
+    if after.parent != room.measurements_dir.resolve():
+        return None
+    runs = rooms.list_runs(room, "measurement")
+    idx = next((i for i, r in enumerate(runs) if r.path.resolve() == after), None)
+    if idx is None:
+        return None
+    earlier = [r for r in runs[:idx] if r.complete]
+    return earlier[-1].path if earlier else None
+
+
+def _label(ref: Any, room: Any) -> str:
+    if isinstance(ref, list):
+        return ", ".join(Path(x).name for x in ref)
+    p = Path(ref).resolve()
+    if room is not None:
+        try:
+            return p.relative_to(room.root.resolve()).as_posix()
+        except ValueError:
+            pass
+    return str(p)
+
+
+def report_comparison(
+    folder: str | Path, compare_with: str | Path | None = None
+) -> dict[str, Any] | None:
+    """The comparison for the report of ``folder``, or None when none is meaningful.
+
+    Parameters
+    ----------
+    folder : path
+        A run folder of a room (a design whose source measurement is recorded
+        in its ``complete.json`` info or manifest, or a measurement), or any
+        design or measurement folder when ``compare_with`` is given.
+    compare_with : path or str, optional
+        The earlier measurement: a run id of the room, a measurement folder or a
+        WAV file. Default: the newest complete measurement of the room older
+        than the one behind ``folder``.
+
+    Returns
+    -------
+    dict or None
+        :func:`roomcorr.room.compare_measurements` result with curves, with
+        ``before`` and ``after`` shortened to paths inside the room. None
+        without an earlier measurement (or when the automatic comparison is not
+        possible, e.g. a different number of loudspeakers).
+
+    Raises
+    ------
+    InputFileError
+        Only when ``compare_with`` is given and cannot be used.
+    """
+    from roomcorr import room as rooms
+    from roomcorr.errors import InputFileError, RoomcorrError
+
+    d = Path(folder).resolve()
+    room, after = _source_measurement(d, rooms.find_room(d))
+    if compare_with is None:
+        before: Any = _earlier_measurement(room, after)
+        if before is None:
+            return None
+        try:
+            res = rooms.compare_measurements(before, after, room=room, with_curves=True)
+        except RoomcorrError:
+            return None
+    else:
+        if after is None:
+            raise InputFileError(
+                f"--compare-with: {d} records no measurement it was made from; "
+                "report a measurement folder, or a design that names its measurement"
+            )
+        before = rooms.resolve_run(room or rooms.find_room(), compare_with)
+        res = rooms.compare_measurements(before, after, room=room, with_curves=True)
+    res["before"] = _label(before, room)
+    res["after"] = _label(after, room)
+    return res
+
+
+def write_report(
+    folder: str | Path, dpi: int = 90, compare_with: str | Path | None = None
+) -> Path:
     """Write ``report.html`` and ``report/*.png`` into a design or measurement folder.
 
     Parameters
@@ -700,6 +939,10 @@ def write_report(folder: str | Path, dpi: int = 90) -> Path:
         measurement session folder (impulse-response WAVs, optional
         ``measurement.json``).
     dpi : int
+    compare_with : path or str, optional
+        Earlier measurement for the comparison section (see
+        :func:`report_comparison`); by default a run folder of a room is
+        compared with the room's previous complete measurement, if any.
 
     Returns
     -------
@@ -731,7 +974,8 @@ def write_report(folder: str | Path, dpi: int = 90) -> Path:
         curves = _session_curves(d)
         quality = _read_quality(d)
     iir = _read_iir(d) if is_design else None
-    report = build_report(curves, settings, quality, iir=iir, dpi=dpi)
+    comparison = report_comparison(d, compare_with)
+    report = build_report(curves, settings, quality, iir=iir, dpi=dpi, comparison=comparison)
     fig_dir = d / FIG_DIR
     try:
         fig_dir.mkdir(exist_ok=True)
