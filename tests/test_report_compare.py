@@ -89,9 +89,11 @@ def test_design_run_report_compares_with_the_earlier_measurement(room_runs):
     assert float(right[3]) == pytest.approx(0.0, abs=0.5)
     # the plain sentences of format_comparison sit in the last column
     assert "arrival" in right[4] and "distance" in right[4]
-    # the figure is listed (with its digest) in the design's manifest
+    # a finished room run stays sealed: the report is written beside it, and
+    # every file its complete.json lists still has its recorded SHA-256
     manifest = json.loads((design / "manifest.json").read_text(encoding="utf-8"))
-    assert "report/compare.png" in {e["path"] for e in manifest["files"]}
+    assert "report/compare.png" not in {e["path"] for e in manifest["files"]}
+    assert rooms.verify_run(design) == []
     assert "https://" not in page and "http://" not in page
 
 

@@ -988,7 +988,9 @@ def write_report(
         out = atomic_write_text(d / REPORT_HTML, render_html(report))
     except OSError as exc:
         raise OutputError(f"{d}: cannot write the report ({exc})") from None
-    if is_design:
+    # A finished room run is sealed by its complete.json (SHA-256 of every file,
+    # manifest included): the report is added beside it, never into its manifest.
+    if is_design and not (d / "complete.json").is_file():
         from roomcorr.export import add_manifest_entries, read_manifest, sha256_of, write_manifest
 
         manifest = read_manifest(d)
