@@ -519,13 +519,9 @@ class RunInfo:
 
 
 def _sha256(path: Path) -> str:
-    import hashlib
+    from roomcorr.export import sha256_of
 
-    h = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for chunk in iter(lambda: fh.read(1 << 20), b""):
-            h.update(chunk)
-    return h.hexdigest()
+    return sha256_of(path)
 
 
 def _fsync_dir(path: Path) -> None:
