@@ -251,10 +251,8 @@ def _add_demo(sub: Any) -> argparse.ArgumentParser:
     return p
 
 
-def _demo_measurements() -> tuple[list[str], str]:
-    """The bundled demo folder, or a fresh synthesis of the same room."""
-    import tempfile
-
+def _demo_measurements(scratch: Path) -> tuple[list[str], str]:
+    """The bundled demo folder, or a fresh synthesis of the same room into ``scratch``."""
     for cand in (
         Path.cwd() / "measurements_demo",
         Path(__file__).resolve().parent.parent / "measurements_demo",
@@ -263,23 +261,25 @@ def _demo_measurements() -> tuple[list[str], str]:
             return [str(cand)], f"bundled measurements in {cand}"
     from roomcorr.demo import write_demo_measurements
 
-    tmp = Path(tempfile.mkdtemp(prefix="roomcorr-demo-"))
-    write_demo_measurements(tmp)
-    return [str(tmp)], f"demo room synthesised afresh in {tmp}"
+    write_demo_measurements(scratch)
+    return [str(scratch)], "demo room synthesised afresh (no measurements_demo/ folder here)"
 
 
 def _run_demo(args: argparse.Namespace) -> int:
+    import tempfile
+
     from roomcorr.export import MANIFEST, read_manifest
 
     settings = settings_from_args(args)
     _print_cautions()
-    paths, where = _demo_measurements()
-    print(f"Demo: an invented living room, {where}")
     out = Path(args.out)
     replace = args.replace
     if (out / MANIFEST).exists() and read_manifest(out).get("demo"):
         replace = True  # the demo may refresh its own earlier output
-    result, entries = _design_and_write(paths, out, settings, replace, extra={"demo": True})
+    with tempfile.TemporaryDirectory(prefix="roomcorr-demo-") as scratch:
+        paths, where = _demo_measurements(Path(scratch))
+        print(f"Demo: an invented living room, {where}")
+        result, entries = _design_and_write(paths, out, settings, replace, extra={"demo": True})
     _print_design_summary(result, out, entries)
     from roomcorr.report.html import write_report
 
