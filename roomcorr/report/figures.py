@@ -159,7 +159,9 @@ def plot_predicted(
     for k, row in enumerate(predicted_db):
         ax.plot(freq_hz, row, color=AFTER, lw=0.8, alpha=0.8,
                 label="each position, corrected" if k == 0 else None)
-    after = 10 * np.log10(np.mean(10 ** (np.asarray(predicted_db) / 10), axis=0))
+    from roomcorr.analysis.average import power_average
+
+    after = power_average(np.asarray(predicted_db))[0]
     ax.plot(freq_hz, after, color="#1d5e3a", lw=2.4, label="average, corrected")
     label = f"target {pre_gain_db:+.1f} dB pre-gain" if abs(pre_gain_db) >= 0.05 else "target"
     ax.plot(freq_hz, target_db, color=AIM, lw=1.8, ls="--", label=label)
