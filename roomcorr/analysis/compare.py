@@ -455,12 +455,11 @@ def fir_response_db(fir: np.ndarray, fs: int, freq_hz: np.ndarray) -> np.ndarray
     -------
     ndarray, shape (..., n_freqs)
     """
-    from scipy.signal import freqz
+    from roomcorr.design.fir import fir_response_db as _fir_db
 
     f = np.minimum(np.asarray(freq_hz, dtype=float), fs / 2.0)
     h = np.atleast_2d(np.asarray(fir, dtype=float))
-    out = np.stack([np.abs(freqz(row, worN=f, fs=fs)[1]) for row in h])
-    out = 20.0 * np.log10(np.maximum(out, 1e-15))
+    out = np.maximum(np.stack([_fir_db(row, fs, f) for row in h]), -300.0)
     return out.reshape(np.shape(fir)[:-1] + (f.size,))
 
 

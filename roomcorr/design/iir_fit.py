@@ -536,11 +536,10 @@ def _errors(a_db: np.ndarray, b_db: np.ndarray) -> tuple[float, float]:
 
 
 def fir_response_db(fir: np.ndarray, freq_hz: np.ndarray, fs: float) -> np.ndarray:
-    """Magnitude in dB of FIR taps ``(n_taps,)`` at ``freq_hz``."""
-    from scipy.signal import freqz
+    """Magnitude in dB of FIR taps ``(n_taps,)`` at ``freq_hz``, floored at -240 dB."""
+    from roomcorr.design.fir import fir_response_db as _fir_db
 
-    _, h = freqz(fir, worN=np.asarray(freq_hz, dtype=float), fs=fs)
-    return 20.0 * np.log10(np.maximum(np.abs(h), 1e-12))
+    return np.maximum(_fir_db(fir, fs, freq_hz), -240.0)
 
 
 def design_iir(result: DesignResult) -> IirDesign:
