@@ -604,6 +604,43 @@ def _run_compare(args: argparse.Namespace) -> int:
 
 # --------------------------------------------------------------------------- main
 
+# --------------------------------------------------------------------------- browser app
+
+
+def _add_ui(sub: Any) -> argparse.ArgumentParser:
+    p = sub.add_parser(
+        "ui",
+        help="open the room in a local browser app (explore runs, plots, files)",
+        description="Start a local server on 127.0.0.1 (a free port) for a room folder and open "
+        "it in the browser. The printed address holds a one-time key; only this machine can "
+        "reach it. Ctrl-C stops it.",
+    )
+    p.add_argument("room", nargs="?", metavar="ROOM_DIR", help="room folder (default: this one)")
+    p.add_argument("--port", type=int, default=0, help="port (default: a free one)")
+    p.add_argument("--no-browser", action="store_true", help="only print the address")
+    return p
+
+
+def _run_ui(args: argparse.Namespace) -> int:
+    from roomcorr import room as rooms
+
+    room = rooms.open_room(args.room or ".")
+    if not 0 <= args.port <= 65535:
+        raise SettingsError(f"--port {args.port}: give a port from 1 to 65535 (0: a free one)")
+    try:
+        from roomcorr.ui.server import serve
+    except ImportError as exc:
+        raise RoomcorrError(
+            f"the browser app needs its server packages ({exc.name} is missing); install them "
+            "with pip install \".[ui]\" from the roomcorr folder"
+        ) from None
+    try:
+        serve(room, port=args.port, open_browser=not args.no_browser)
+    except OSError as exc:
+        raise RoomcorrError(f"cannot start the app on port {args.port}: {exc.strerror}") from None
+    return 0
+
+
 _COMMANDS: list[tuple[str, Callable[[Any], argparse.ArgumentParser], Callable[..., int]]] = [
     ("demo", _add_demo, _run_demo),
     ("design", _add_design, _run_design),
@@ -614,6 +651,7 @@ _COMMANDS: list[tuple[str, Callable[[Any], argparse.ArgumentParser], Callable[..
     ("init", _add_init, _run_init),
     ("history", _add_history, _run_history),
     ("compare", _add_compare, _run_compare),
+    ("ui", _add_ui, _run_ui),
 ]
 
 
