@@ -34,9 +34,8 @@ What is estimated here, and where:
    as a pure delay: it leaves the phase alone and adds no group-delay step.
 
 The result is an excess group delay on the log-frequency grid, relative to
-its median in the treble (so the main peak stays where it is), with
-deviations below ``DEADBAND_S`` left alone (a fraction of a sample would
-only smear the main peak), ready for :mod:`roomcorr.design.mixedphase`.
+its median in the treble (so the main peak stays where it is), ready for
+:mod:`roomcorr.design.mixedphase`.
 
 References
 ----------
@@ -83,11 +82,10 @@ SMOOTHING_OCT = 1.0 / 6.0
 #: Coherence at or above which the estimate is fully trusted, and below which not at all.
 COHERENCE_FREE = 0.85
 COHERENCE_REFUSE = 0.6
-#: The excess group delay is measured from its median in this band (to the top), Hz ...
+#: The excess group delay is measured from its median in this band (to the top), Hz.
 REFERENCE_BAND_HZ = (4000.0, 16000.0)
-#: ... and deviations smaller than this are not corrected (less than a sample at
-#: 48 kHz: a fractional delay of the treble would only smear the main peak), s.
-DEADBAND_S = 0.02e-3
+#: The group delay is smoothed over at least this many times 1 / (window length), Hz.
+GD_SMOOTHING_CYCLES = 0.3
 #: FFT length of the estimate: at least this many seconds of bins.
 FFT_SECONDS = 0.16
 
@@ -103,8 +101,7 @@ class ExcessPhaseEstimate:
     excess_gd_s : ndarray, shape (n_freqs,)
         Excess group delay to correct, s, relative to its median from
         ``REFERENCE_BAND_HZ[0]`` to the top of the range, held constant
-        outside the trusted range and across gaps, and shrunk towards 0 by
-        ``DEADBAND_S``.
+        outside the trusted range and across gaps.
     raw_gd_s : ndarray, shape (n_freqs,)
         The combined estimate before holding and weighting (same reference).
     position_gd_s : ndarray, shape (n_positions, n_freqs)
@@ -199,12 +196,17 @@ def excess_spectrum(segment: np.ndarray, n_fft: int) -> tuple[np.ndarray, np.nda
     return np.where(r > 0, ratio / np.where(r > 0, r, 1.0), 1.0), mag
 
 
-def _box_smooth_log(values: np.ndarray, freq_hz: np.ndarray, width_oct: float) -> np.ndarray:
-    """Mean of ``values`` (on linear FFT bins ``freq_hz``) over ``width_oct`` around each bin."""
+def _box_smooth_log(
+    values: np.ndarray, freq_hz: np.ndarray, width_oct: float, min_width_hz: float = 0.0
+) -> np.ndarray:
+    """Mean of ``values`` (on linear FFT bins ``freq_hz``) over ``width_oct`` around each
+    bin, and over at least ``min_width_hz``."""
     csum = np.concatenate([[0], np.cumsum(values)])
     half = 2.0 ** (width_oct / 2)
-    lo = np.searchsorted(freq_hz, freq_hz / half, side="left")
-    hi = np.searchsorted(freq_hz, freq_hz * half, side="right")
+    lo_hz = np.minimum(freq_hz / half, freq_hz - 0.5 * min_width_hz)
+    hi_hz = np.maximum(freq_hz * half, freq_hz + 0.5 * min_width_hz)
+    lo = np.searchsorted(freq_hz, lo_hz, side="left")
+    hi = np.searchsorted(freq_hz, hi_hz, side="right")
     hi = np.maximum(hi, lo + 1)
     return (csum[hi] - csum[lo]) / (hi - lo)
 
@@ -262,7 +264,6 @@ def estimate_excess_phase(
     align = (bins_hz >= ALIGN_BAND_HZ[0]) & (bins_hz <= min(ALIGN_BAND_HZ[1], top))
 
     aligned = np.empty((n_pos, bins_hz.size), dtype=complex)
-    power = np.empty((n_pos, bins_hz.size))
     window_s = np.empty(n_pos)
     for p in range(n_pos):
         onset = None if onsets is None else float(onsets[p])
@@ -270,8 +271,7 @@ def estimate_excess_phase(
         seg = irs[p, start:stop] * _fade_out(stop - start, fs)
         peak = start + int(np.argmax(np.abs(seg)))
         window_s[p] = (stop - peak) / fs
-        exc, mag = excess_spectrum(seg, n_fft)
-        power[p] = mag**2
+        exc, _ = excess_spectrum(seg, n_fft)
         gd = _gd_from_phase_steps(exc, d_omega)
         ref = float(np.median(gd[align])) if np.any(align) else 0.0
         aligned[p] = exc * np.exp(1j * omega * ref)
@@ -282,7 +282,10 @@ def estimate_excess_phase(
         mean.imag, bins_hz, SMOOTHING_OCT
     )
     coherence_bins = np.clip(np.abs(mean_s), 0.0, 1.0) if n_pos > 1 else np.ones(bins_hz.size)
-    gd_bins = _gd_from_phase_steps(mean_s, d_omega)
+    # group delay smoothed over at least the window's resolution (1 / its length):
+    # finer detail is ripple of the truncation, not the loudspeaker
+    res_hz = GD_SMOOTHING_CYCLES / max(float(np.min(window_s)), 1.0 / fs)
+    gd_bins = _box_smooth_log(_gd_from_phase_steps(mean_s, d_omega), bins_hz, 0.0, res_hz)
     pos_gd_bins = np.stack(
         [_box_smooth_log(_gd_from_phase_steps(a, d_omega), bins_hz, SMOOTHING_OCT) for a in aligned]
     )
@@ -305,7 +308,7 @@ def estimate_excess_phase(
     ref_top = float(np.median(excess[in_ref])) if np.any(in_ref) else 0.0
     return ExcessPhaseEstimate(
         freq_hz=freq_hz,
-        excess_gd_s=shrink(excess - ref_top, DEADBAND_S),
+        excess_gd_s=excess - ref_top,
         raw_gd_s=raw - ref_top,
         position_gd_s=pos_gd - ref_top,
         coherence=coherence,
@@ -313,11 +316,6 @@ def estimate_excess_phase(
         band_hz=(float(lo), float(top)),
         window_s=window_s,
     )
-
-
-def shrink(gd_s: np.ndarray, deadband_s: float) -> np.ndarray:
-    """Soft threshold: ``sign(x) max(|x| - deadband, 0)`` (continuous, no steps)."""
-    return np.sign(gd_s) * np.maximum(np.abs(gd_s) - deadband_s, 0.0)
 
 
 def hold_untrusted(freq_hz: np.ndarray, gd_s: np.ndarray, weight: np.ndarray) -> np.ndarray:
