@@ -381,3 +381,40 @@ def test_cli_states_latency(tmp_path, scenario):
     assert bad.returncode == 2
     lines = [ln for ln in bad.stderr.splitlines() if ln.startswith("roomcorr: error")]
     assert len(lines) == 1 and "latency_ms" in lines[0]
+
+
+def test_design_folder_round_trip_and_report_section(tmp_path, designs):
+    """design.npz carries the mixed-phase part; the report gains one section per channel
+    with the direct sound before/after and the pre-ringing against the limit, stating
+    the latency and the caution; a minimum-phase design has no such section."""
+    from roomcorr.export import load_design_curves, read_manifest, write_design
+    from roomcorr.report.html import build_report
+
+    minimum, mixed = designs
+    write_design(mixed, tmp_path / "mixed")
+    write_design(minimum, tmp_path / "min")
+    curves = load_design_curves(tmp_path / "mixed")
+    mp = curves["mixed_phase"]
+    assert mp["latency_samples"] == {44100: 882, 48000: 960, 96000: 1920}
+    np.testing.assert_array_equal(
+        mp["channels"][0]["excess_gd_s"], mixed.mixed_phase.estimates[0].excess_gd_s
+    )
+    assert read_manifest(tmp_path / "min")["latency"]["phase"] == "minimum"
+    assert load_design_curves(tmp_path / "min")["mixed_phase"] is None
+
+    report = build_report(curves, dpi=40)
+    sec = [s for s in report.sections if s.id == "phase-mono"]
+    assert len(sec) == 1 and len(sec[0].figures) == 1
+    text = " ".join(sec[0].paragraphs)
+    assert "960 samples at 48000 Hz" in text and "lip-sync" in text
+    assert sec[0].figures[0].png[:8] == b"\x89PNG\r\n\x1a\n"
+    overview = " ".join(report.sections[0].paragraphs)
+    assert "20 ms" in overview
+    report_min = build_report(load_design_curves(tmp_path / "min"), dpi=40)
+    assert not [s for s in report_min.sections if s.id.startswith("phase-")]
+    # the views: the mixed design's direct-sound group delay is the flattest of the three
+    view = mp["channels"][0]
+    f = view["view_gd_freq_hz"]
+    band = (f >= 1000) & (f <= 10000)
+    spreads = [np.ptp(row[band]) for row in view["view_gd_s"]]
+    assert spreads[2] < spreads[1] and spreads[2] < spreads[0]

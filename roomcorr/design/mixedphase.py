@@ -384,6 +384,31 @@ def apply_mixed_phase(
     return out, design
 
 
+def smoothed_group_delay_s(
+    x: np.ndarray, fs: int, freq_hz: np.ndarray, width_oct: float = 1.0 / 12.0
+) -> np.ndarray:
+    """Group delay of ``x`` in seconds at ``freq_hz``, power-weighted over ``width_oct``.
+
+    From the phase step between neighbouring bins of an FFT at least four times
+    the length of ``x`` (and 2**14); each value is the ``|X|²``-weighted mean of
+    the bins within ``width_oct`` around the frequency, so bins where ``x`` has
+    little energy (and an unreliable phase) count little.
+    """
+    x = np.asarray(x, dtype=float)
+    n_fft = max(1 << 14, 1 << int(np.ceil(np.log2(4 * x.size))))
+    spec = np.fft.rfft(x, n_fft)
+    gd = -np.angle(spec[1:] * np.conj(spec[:-1])) / (2 * np.pi * fs / n_fft)
+    w = np.abs(spec[1:] * spec[:-1])
+    f_mid = (np.arange(gd.size) + 0.5) * fs / n_fft
+    c_gd = np.concatenate([[0.0], np.cumsum(gd * w)])
+    c_w = np.concatenate([[0.0], np.cumsum(w)])
+    half = 2.0 ** (width_oct / 2)
+    lo = np.searchsorted(f_mid, np.asarray(freq_hz) / half)
+    hi = np.maximum(np.searchsorted(f_mid, np.asarray(freq_hz) * half, side="right"), lo + 1)
+    wsum = c_w[hi] - c_w[lo]
+    return np.where(wsum > 0, (c_gd[hi] - c_gd[lo]) / np.where(wsum > 0, wsum, 1.0), 0.0)
+
+
 def direct_sound_views(
     irs: np.ndarray,
     fs: int,
@@ -397,19 +422,22 @@ def direct_sound_views(
     The direct sound of every position (cut as in
     :func:`roomcorr.design.excess_phase.direct_sound_segment`) is filtered
     with the minimum-phase and the mixed-phase filter at the measurement rate
-    (if that rate was designed; else the views are empty).
+    (if that rate was designed; else the views are empty). Group delays add
+    under convolution, so the filtered direct sound's group delay is the
+    segment's plus the whole filter's (no truncation of the filter).
 
     Returns
     -------
     dict
         ``gd_freq_hz`` (n_f,), ``gd_s`` (3, n_f): mean group delay over
         positions of the uncorrected, minimum-phase and mixed-phase direct
-        sound, each relative to its median over 1-10 kHz; ``step_t_s``
-        (n_t,), ``step`` (3, n_t): step responses of the first position's
-        direct sound, time relative to each one's main peak, normalised to
-        a final value of 1; ``ring_t_s`` (n_r,) and ``ring_db`` (n_r,): the
-        mixed filter's energy arriving before each time, relative to its
-        total (time relative to its main peak).
+        sound, each relative to its median over 1-10 kHz (1/12-octave
+        smoothing); ``step_t_s`` (n_t,), ``step`` (3, n_t): step responses
+        of the first position's direct sound, time relative to each one's
+        main peak, normalised to their value 6 ms after it; ``ring_t_s``
+        (n_r,) and ``ring_db`` (n_r,): the mixed filter's energy arriving
+        before each time, relative to its total (time relative to its main
+        peak).
     """
     from roomcorr.design.excess_phase import direct_sound_segment
 
@@ -417,25 +445,23 @@ def direct_sound_views(
         return {}
     h_min, h_mix = firs_min[fs][channel], firs_mixed[fs][channel]
     gd_f = np.geomspace(200.0, min(16000.0, 0.4 * fs), 160)
-    n_fft = 1 << 16
-    bins = np.fft.rfftfreq(n_fft, 1.0 / fs)
-    d_omega = 2 * np.pi * fs / n_fft
+    mid = (gd_f >= 1000) & (gd_f <= 10000)
+    filter_gd = [np.zeros(gd_f.size)] + [
+        smoothed_group_delay_s(h, fs, gd_f) for h in (h_min, h_mix)
+    ]
     gds = np.zeros((3, gd_f.size))
     steps = []
     t_step = np.arange(-int(0.003 * fs), int(0.006 * fs)) / fs
+    n_keep = int(0.05 * fs)
     for p in range(irs.shape[0]):
         start, stop = direct_sound_segment(irs[p], fs, float(onsets[p]))
         seg = irs[p, start:stop]
+        seg_gd = smoothed_group_delay_s(seg, fs, gd_f)
         for k, h in enumerate((None, h_min, h_mix)):
-            y = seg if h is None else np.convolve(seg, h[: max(len(seg) * 4, int(0.04 * fs))])
-            spec = np.fft.rfft(y, n_fft)
-            step = np.angle(spec[1:] * np.conj(spec[:-1])) / d_omega
-            gd = -step
-            mid = bins[:-1] + 0.5 * fs / n_fft
-            g = np.interp(gd_f, mid, gd)
-            ref = np.median(g[(gd_f >= 1000) & (gd_f <= 10000)])
-            gds[k] += (g - ref) / irs.shape[0]
+            g = seg_gd + filter_gd[k]
+            gds[k] += (g - np.median(g[mid])) / irs.shape[0]
             if p == 0:
+                y = seg if h is None else np.convolve(seg, h[:n_keep])
                 s = np.cumsum(y)
                 pk = int(np.argmax(np.abs(y)))
                 idx = np.clip(pk + np.round(t_step * fs).astype(int), 0, len(s) - 1)
@@ -445,8 +471,7 @@ def direct_sound_views(
     energy = np.cumsum(h_mix**2)
     total = energy[-1] if energy[-1] > 0 else 1.0
     n_r = min(p_mix + 1, len(h_mix))
-    with np.errstate(divide="ignore"):
-        ring = 10 * np.log10(np.maximum(energy[:n_r] / total, 1e-30))
+    ring = 10 * np.log10(np.maximum(energy[:n_r] / total, 1e-30))
     return {
         "gd_freq_hz": gd_f,
         "gd_s": gds,
