@@ -418,3 +418,22 @@ def test_design_folder_round_trip_and_report_section(tmp_path, designs):
     band = (f >= 1000) & (f <= 10000)
     spreads = [np.ptp(row[band]) for row in view["view_gd_s"]]
     assert spreads[2] < spreads[1] and spreads[2] < spreads[0]
+
+
+def test_positions_that_disagree_are_left_alone():
+    """Only what every position shares is corrected: one position with a Cookbook all-pass
+    at 2 kHz (Q 0.7) and one without. Their excess phases differ by up to π near 2 kHz,
+    where the coherence |mean of e^{jφ_p}| = |cos(Δφ/2)| falls to ~0 (analytic), so the
+    estimate is not used there (weight 0) and is held from the trusted neighbours."""
+    unit = np.zeros(24000)
+    unit[0] = 1.0
+    b, a = cookbook_allpass(2000.0, 0.7)
+    irs = np.stack([delayed(signal.lfilter(b, a, unit), 120), delayed(unit, 140)])
+    est = estimate_excess_phase(irs, FS, GRID)
+    near = (GRID > 1800) & (GRID < 2200)
+    assert np.max(est.coherence[near]) < 0.6
+    assert np.all(est.weight[near] == 0)
+    # with the all-pass at both positions they agree and it is used
+    both = np.stack([delayed(signal.lfilter(b, a, unit), d) for d in (120, 140)])
+    est2 = estimate_excess_phase(both, FS, GRID)
+    assert np.min(est2.coherence[near]) > 0.99 and np.all(est2.weight[near] == 1)
