@@ -437,3 +437,15 @@ def test_positions_that_disagree_are_left_alone():
     both = np.stack([delayed(signal.lfilter(b, a, unit), d) for d in (120, 140)])
     est2 = estimate_excess_phase(both, FS, GRID)
     assert np.min(est2.coherence[near]) > 0.99 and np.all(est2.weight[near] == 1)
+
+
+def test_latency_longer_than_half_the_filter_is_refused(scenario):
+    """A latency of more than half the filter cannot hold the inverse: refused naming the
+    options to change, before anything is written."""
+    settings = Settings(
+        design=design_from_dict(
+            {"phase": "mixed", "latency_ms": 20.0, "taps": 1024, "sample_rates": [48000]}
+        )
+    )
+    with pytest.raises(SettingsError, match="latency-ms"):
+        run_design(scenario.measured[:, None, :], scenario.fs, settings)
