@@ -22,6 +22,7 @@ from roomcorr.design.mixedphase import (
     magnitude_error_db,
     mixed_phase_fir,
     pre_ringing_db,
+    within_tolerance,
 )
 from roomcorr.design.safety import BOOST_TOLERANCE_DB, CEILING_TOLERANCE_DB
 from roomcorr.errors import SafetyError, SettingsError
@@ -135,9 +136,10 @@ def test_pure_delay_needs_no_correction():
     assert np.max(np.abs(est.excess_gd_s)) < 1e-12  # a picosecond: rounding only
     h, peak = mixed_phase_fir(h_min, FS, GRID, est.excess_gd_s, 480)
     assert peak == 480 + int(np.argmax(np.abs(h_min)))
-    keep = h_min.size - 2 * 480
-    np.testing.assert_allclose(h[480 : 480 + keep], h_min[:keep], atol=1e-7)
+    assert h.size == h_min.size + 480
+    np.testing.assert_allclose(h[480:], h_min, atol=1e-7)
     assert np.max(np.abs(h[:480])) < 1e-7
+    assert magnitude_error_db(h, h_min, FS) < 1e-4
 
 
 def test_minimum_phase_response_needs_no_correction():
@@ -220,7 +222,8 @@ def test_pre_ringing_and_latency_limits_hold_for_any_input(
 ):
     """Whatever the measurement and the curve: the main peak sits at or before the
     latency, nothing lies before time zero, energy more than 2 ms before the peak is
-    at most -40 dB of the total, and the filter stays finite and as long as before."""
+    at most -40 dB of the total, the magnitude stays within 0.1 dB of the minimum-phase
+    filter, and the filter stays finite and as long as before."""
     rng = np.random.default_rng(seed)
     b, a = cookbook_allpass(min(f0, 0.3 * fs), q, fs)
     base = signal.lfilter(b, a, minimum_phase_system(12000, fs))
@@ -235,10 +238,12 @@ def test_pre_ringing_and_latency_limits_hold_for_any_input(
     curve = np.interp(np.log2(GRID), np.linspace(np.log2(20), np.log2(20000), 6), gain_db)
     h_min = synthesize_fir(GRID, curve, fs, 4096 * fs // 48000)
     lat = int(round(latency_ms * fs / 1000))
-    h, peak = mixed_phase_fir(h_min, fs, GRID, est.excess_gd_s, lat, top_hz=est.band_hz[1])
-    assert h.shape == h_min.shape and np.all(np.isfinite(h))
+    h, peak, strength, err = within_tolerance(h_min, fs, GRID, est.excess_gd_s, lat, est.band_hz[1])
+    assert h.size == h_min.size + lat and np.all(np.isfinite(h))
     assert peak <= lat and peak == int(np.argmax(np.abs(h)))
     assert pre_ringing_db(h, fs, peak) <= PRE_RING_LIMIT_DB + 1e-6
+    assert err <= 0.1 and err == pytest.approx(magnitude_error_db(h, h_min, fs))
+    assert 0.0 <= strength <= 1.0
 
 
 def test_settings_validate_phase_and_latency():

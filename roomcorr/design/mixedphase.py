@@ -63,6 +63,8 @@ PRE_RING_MARGIN_DB = 0.5
 RESTORE_ROUNDS = 3
 #: Magnitude of the mixed filter against the minimum-phase one (20 Hz - 20 kHz), dB.
 MAGNITUDE_TOLERANCE_DB = 0.1
+#: Fractions of the excess group delay tried, in turn, to keep the magnitude in tolerance.
+CORRECTION_STRENGTHS = (1.0, 0.75, 0.5, 0.25, 0.0)
 LATENCY_CAUTION = (
     "Sound through mixed-phase filters is late by the latency: delay the picture of a video "
     "by the same amount (lip-sync), and keep minimum-phase filters for live monitoring, "
@@ -80,6 +82,7 @@ class MixedPhaseStats:
     peak_index: int
     pre_ringing_db: float
     magnitude_error_db: float
+    strength: float = 1.0
 
 
 @dataclass
@@ -201,6 +204,9 @@ def pre_ringing_db(h: np.ndarray, fs: int, peak_index: int | None = None) -> flo
 def _limit_time(y: np.ndarray, fs: int, n_taps: int, latency: int) -> tuple[np.ndarray, int]:
     """Cut to ``n_taps``, put the peak at or before ``latency``, taper the far pre-ringing.
 
+    No fade at the end is needed: the minimum-phase filter's own tail fade
+    ends there (the output is ``latency`` samples longer than it).
+
     ``y`` is a long (FFT-length) response whose intended time zero is sample
     0; samples in its second half are wrapped anticausal parts and dropped.
     """
@@ -221,10 +227,6 @@ def _limit_time(y: np.ndarray, fs: int, n_taps: int, latency: int) -> tuple[np.n
             near = total - far
             g2 = limit * near / (far * (1 - limit))
             h[:edge] *= np.sqrt(g2)
-    n_fade = min(max(latency, 16), n_taps // 8)
-    if n_fade > 0:
-        k = np.arange(1, n_fade + 1)
-        h[n_taps - n_fade :] *= 0.5 * (1 + np.cos(np.pi * k / (n_fade + 1)))
     return h, p
 
 
@@ -271,9 +273,11 @@ def mixed_phase_fir(
 
     Returns
     -------
-    h : ndarray, shape (n_taps,)
-        Same length as ``h_min``; its main peak at or before ``latency``,
-        nothing before time zero, far pre-ringing at most ``PRE_RING_LIMIT_DB``.
+    h : ndarray, shape (n_taps + latency,)
+        ``h_min`` delayed by ``latency`` and turned by the inverse all-pass,
+        so its whole length is kept: the main peak at or before
+        ``latency``, nothing before time zero, far pre-ringing at most
+        ``PRE_RING_LIMIT_DB``.
     peak_index : int
 
     References
@@ -286,7 +290,8 @@ def mixed_phase_fir(
     latency = int(latency)
     if not 0 <= latency < n_taps:
         raise ValueError(f"latency {latency} samples must lie in [0, {n_taps})")
-    n_fft = 1 << int(np.ceil(np.log2(2 * (n_taps + 2 * latency))))
+    n_out = n_taps + latency
+    n_fft = 1 << int(np.ceil(np.log2(2 * (n_out + latency))))
     bins_hz = np.fft.rfftfreq(n_fft, 1.0 / fs)
     tau = excess_gd_on_bins(est_freq_hz, excess_gd_s, bins_hz)
     tau = tau + closing_group_delay(bins_hz, correction_phase(bins_hz, tau)[-1], top_hz)
@@ -294,14 +299,48 @@ def mixed_phase_fir(
     target = np.fft.rfft(h_min, n_fft)
     mag = np.abs(target)
     y = np.fft.irfft(target * np.exp(1j * phase), n_fft)
-    h, p = _limit_time(y, fs, n_taps, latency)
+    h, p = _limit_time(y, fs, n_out, latency)
     for _ in range(rounds):
         spec = np.fft.rfft(h, n_fft)
         a = np.abs(spec)
         unit = np.where(a > 0, spec / np.where(a > 0, a, 1.0), np.exp(1j * phase))
         y = np.fft.irfft(mag * unit, n_fft)
-        h, p = _limit_time(y, fs, n_taps, latency)
+        h, p = _limit_time(y, fs, n_out, latency)
     return h, p
+
+
+def within_tolerance(
+    h_min: np.ndarray,
+    fs: int,
+    est_freq_hz: np.ndarray,
+    excess_gd_s: np.ndarray,
+    latency: int,
+    top_hz: float,
+) -> tuple[np.ndarray, int, float, float]:
+    """:func:`mixed_phase_fir`, weakened until the magnitude stays within tolerance.
+
+    If the time limits (latency, pre-ringing) cost more than
+    ``MAGNITUDE_TOLERANCE_DB`` of magnitude, the excess group delay is scaled
+    by each of ``CORRECTION_STRENGTHS`` in turn; at strength 0 the result is
+    the minimum-phase filter delayed by the latency, which always fits.
+
+    Returns
+    -------
+    h : ndarray, shape (n_taps + latency,)
+    peak_index : int
+    strength : float
+        The fraction of the excess group delay that was removed.
+    magnitude_error_db : float
+        Largest magnitude difference to ``h_min``, 20 Hz - 20 kHz.
+    """
+    for strength in CORRECTION_STRENGTHS:
+        h, p = mixed_phase_fir(
+            h_min, fs, est_freq_hz, strength * excess_gd_s, latency, top_hz=top_hz
+        )
+        err = magnitude_error_db(h, h_min, fs)
+        if err <= MAGNITUDE_TOLERANCE_DB:
+            break
+    return h, p, float(strength), err
 
 
 def apply_mixed_phase(
@@ -331,7 +370,7 @@ def apply_mixed_phase(
 
     Returns
     -------
-    firs_mixed : dict of int to ndarray, shape (n_channels, n_taps)
+    firs_mixed : dict of int to ndarray, shape (n_channels, n_taps + latency samples)
     design : MixedPhaseDesign
     """
     n_pos, n_ch, _ = irs.shape
@@ -351,13 +390,9 @@ def apply_mixed_phase(
     for rate, hs in firs.items():
         rows = []
         for c in range(n_ch):
-            h, p = mixed_phase_fir(
-                hs[c],
-                rate,
-                freq_hz,
-                estimates[c].excess_gd_s,
-                lat[rate],
-                top_hz=estimates[c].band_hz[1],
+            est = estimates[c]
+            h, p, strength, err = within_tolerance(
+                hs[c], rate, freq_hz, est.excess_gd_s, lat[rate], est.band_hz[1]
             )
             rows.append(h)
             stats.append(
@@ -367,7 +402,8 @@ def apply_mixed_phase(
                     latency_samples=lat[rate],
                     peak_index=p,
                     pre_ringing_db=pre_ringing_db(h, rate, p),
-                    magnitude_error_db=magnitude_error_db(h, hs[c], rate),
+                    magnitude_error_db=err,
+                    strength=strength,
                 )
             )
         out[rate] = np.stack(rows)
@@ -502,6 +538,14 @@ def latency_record(design: MixedPhaseDesign | None) -> dict[str, Any]:
         "worst_pre_ringing_db": {
             str(fs): (round(v, 2) if np.isfinite(v) else None) for fs, v in sorted(worst.items())
         },
+        "correction_strength": {
+            str(fs): [s.strength for s in design.stats if s.fs == fs]
+            for fs in sorted(design.latency_samples)
+        },
+        "magnitude_difference_db": {
+            str(fs): round(max(s.magnitude_error_db for s in design.stats if s.fs == fs), 4)
+            for fs in sorted(design.latency_samples)
+        },
         "caution": LATENCY_CAUTION,
     }
 
@@ -565,6 +609,6 @@ def latency_sentence(latency_ms: float, samples: dict[int, int]) -> str:
         f"{n} samples at {fs} Hz ({1000.0 * n / fs:.3f} ms)" for fs, n in sorted(samples.items())
     )
     return (
-        f"Mixed phase: every filter delays the sound by {latency_ms:g} ms ({per_rate}). "
-        + LATENCY_CAUTION
+        f"Mixed phase: every FIR filter delays the sound by {latency_ms:g} ms ({per_rate}); "
+        "biquad sets stay minimum phase, without that delay. " + LATENCY_CAUTION
     )
