@@ -469,8 +469,9 @@ def plot_iir(
     return fig
 
 
-def plot_mixed_phase(view: dict[str, np.ndarray], latency_ms: float, limit_db: float,
-                     limit_ms: float, title: str) -> Any:
+def plot_mixed_phase(
+    view: dict[str, np.ndarray], latency_ms: float, limit_db: float, limit_ms: float, title: str
+) -> Any:
     """Direct sound before and after the minimum- and mixed-phase designs, and pre-ringing.
 
     Parameters
@@ -494,20 +495,36 @@ def plot_mixed_phase(view: dict[str, np.ndarray], latency_ms: float, limit_db: f
         axs[0].plot(f, 1000 * row, color=color, lw=1.3, label=label)
     _freq_axis(axs[0], float(f[0]), float(f[-1]))
     axs[0].set_ylabel("group delay (ms)")
-    axs[0].set_title("direct sound: group delay (mean over positions, relative to 1-10 kHz)",
-                     loc="left", fontsize=10, color=INK)
+    axs[0].set_title(
+        "direct sound: group delay (mean over positions, relative to 1-10 kHz)",
+        loc="left",
+        fontsize=10,
+        color=INK,
+    )
     axs[0].legend(fontsize=8, frameon=False)
     t_ms = 1000 * view["step_t_s"]
     for row, color, label in zip(view["step"], colors, labels, strict=True):
         axs[1].plot(t_ms, row, color=color, lw=1.2, label=label)
     axs[1].set_xlabel("time from main peak (ms)")
     axs[1].set_ylabel("step (relative)")
-    axs[1].set_title("direct sound: step response (first position)", loc="left", fontsize=10,
-                     color=INK)
-    axs[2].plot(1000 * view["ring_t_s"], view["ring_db"], color=AFTER, lw=1.3,
-                label="energy arriving earlier, share of the total")
-    axs[2].hlines(limit_db, -latency_ms, -limit_ms, color=AIM, lw=1.2,
-                  label=f"limit: {limit_db:g} dB beyond {limit_ms:g} ms")
+    axs[1].set_title(
+        "direct sound: step response (first position)", loc="left", fontsize=10, color=INK
+    )
+    axs[2].plot(
+        1000 * view["ring_t_s"],
+        view["ring_db"],
+        color=AFTER,
+        lw=1.3,
+        label="energy arriving earlier, share of the total",
+    )
+    axs[2].hlines(
+        limit_db,
+        -latency_ms,
+        -limit_ms,
+        color=AIM,
+        lw=1.2,
+        label=f"limit: {limit_db:g} dB beyond {limit_ms:g} ms",
+    )
     axs[2].axvline(-latency_ms, color=CAP, lw=1.0, ls="--", label=f"latency {latency_ms:g} ms")
     axs[2].set_xlim(-latency_ms * 1.1, 0.5)
     axs[2].set_ylim(-100, 3)

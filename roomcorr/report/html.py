@@ -431,13 +431,20 @@ def mixed_phase_section(
         "design's."
     )
     if "view_gd_s" in ch:
-        view = {k[len("view_"):]: v for k, v in ch.items() if k.startswith("view_")}
+        view = {k[len("view_") :]: v for k, v in ch.items() if k.startswith("view_")}
         sec.figures.append(
             Figure(
                 f"{name}-phase",
                 f"Direct sound before and after, and pre-ringing, {name}",
-                png(fg.plot_mixed_phase(view, float(mixed["latency_ms"]), PRE_RING_LIMIT_DB,
-                                        1000 * PRE_RING_S, f"Mixed phase: {name}")),
+                png(
+                    fg.plot_mixed_phase(
+                        view,
+                        float(mixed["latency_ms"]),
+                        PRE_RING_LIMIT_DB,
+                        1000 * PRE_RING_S,
+                        f"Mixed phase: {name}",
+                    )
+                ),
             )
         )
     else:
