@@ -25,6 +25,8 @@ What is estimated here, and where:
    coherence across positions (1 when every position has the same excess
    phase, near 0 when they scatter). Where it falls below ``COHERENCE_FREE``
    the estimate is trusted less, and below ``COHERENCE_REFUSE`` not at all.
+   The group delay of the mean is smoothed further over at least
+   ``GD_SMOOTHING_CYCLES`` / window (finer detail is the window's ripple).
 5. **Frequency range.** In the bass the room, not the loudspeaker, owns the
    phase, and a direct-sound window of a few milliseconds cannot resolve it:
    below ``max(BASS_LIMIT_HZ, RESOLUTION_CYCLES / window)`` nothing is
@@ -146,9 +148,9 @@ def direct_sound_segment(ir: np.ndarray, fs: int, onset: float | None = None) ->
     x = np.abs(np.asarray(ir, dtype=float))
     if onset is None:
         onset = find_onset(x, fs)
-    start = max(0, int(np.floor(onset)) - int(round(PRE_ONSET_S * fs)))
-    search = x[int(onset) : int(onset) + max(2, int(0.001 * fs))]
-    peak_i = int(onset) + int(np.argmax(search))
+    i0 = min(max(int(onset), 0), x.size - 1)
+    start = max(0, i0 - int(round(PRE_ONSET_S * fs)))
+    peak_i = i0 + int(np.argmax(x[i0 : i0 + max(2, int(0.001 * fs))]))
     thr = x[peak_i] * 10 ** (REFLECTION_DB / 20)
     lo = peak_i + max(1, int(round(MIN_DIRECT_S * fs)))
     hi = min(x.size, peak_i + int(round(MAX_DIRECT_S * fs)))

@@ -9,12 +9,15 @@ the excess phase the loudspeaker shows at every measured position::
 
     H_mixed(ω) = H_min(ω) · exp(j φ_c(ω)) · exp(-j ω D),   φ_c(ω) = ∫_0^ω τ_e(ω') dω'
 
-where ``τ_e`` is the excess group delay to remove (relative to its value at
-the top of the estimated range, so the treble and the main peak stay at the
-latency ``D``) and ``D`` is the latency budget in samples. ``|H_mixed| =
-|H_min|``: only the phase changes, so the curve, the boost cap and the
-ceiling are the minimum-phase design's (and the safety step runs on the
-final filters as before).
+where ``τ_e`` is the excess group delay to remove (relative to its median in
+the treble, so the treble and the main peak stay at the latency ``D``) and
+``D`` is the latency budget in samples. ``|H_mixed| = |H_min|``: only the
+phase changes, so the curve, the boost cap and the ceiling are the
+minimum-phase design's (and the safety step runs on the final filters as
+before). The filter is ``D`` samples longer than ``h_min``, so none of it is
+lost. A real filter's phase at Nyquist is a multiple of π; the estimate's
+integral is not, and the missing part is added above the estimated range
+(:func:`closing_group_delay`).
 
 Realising it: the product is transformed back on an FFT long enough that
 nothing wraps into the filter, the main peak is placed at (or before) ``D``,
@@ -26,7 +29,8 @@ half-Hann over that region, then a scale-down if still needed; pre-echo is
 masked only briefly, see REFERENCES.md). A few rounds of restoring
 ``|H_min|`` and re-applying these time limits keep the magnitude within
 ``MAGNITUDE_TOLERANCE_DB`` of ``|H_min|``; the limits are applied last, so
-they always hold.
+they always hold. Should the magnitude still differ by more, the correction
+is weakened step by step (:func:`within_tolerance`), down to none.
 
 References
 ----------
