@@ -237,10 +237,10 @@ def _limit_time(y: np.ndarray, fs: int, n_taps: int, latency: int) -> tuple[np.n
 def magnitude_error_db(h: np.ndarray, h_ref: np.ndarray, fs: int) -> float:
     """Largest ``|20 log10 |H| / |H_ref||`` from 20 Hz to 20 kHz (or Nyquist), dB.
 
-    Evaluated on the bins of an FFT eight times the longer filter's length.
+    Evaluated on the bins of an FFT four times the longer filter's length.
     """
     n = max(len(h), len(h_ref))
-    n_fft = 1 << int(np.ceil(np.log2(8 * n)))
+    n_fft = 1 << int(np.ceil(np.log2(4 * n)))
     f = np.fft.rfftfreq(n_fft, 1.0 / fs)
     sel = (f >= 20.0) & (f <= min(20000.0, 0.5 * fs))
     a = np.abs(np.fft.rfft(h, n_fft))[sel]
@@ -295,7 +295,8 @@ def mixed_phase_fir(
     if not 0 <= latency < n_taps:
         raise ValueError(f"latency {latency} samples must lie in [0, {n_taps})")
     n_out = n_taps + latency
-    n_fft = 1 << int(np.ceil(np.log2(2 * (n_out + latency))))
+    # room for the output, the anticausal part beyond the latency (dropped) and margin
+    n_fft = 1 << int(np.ceil(np.log2(n_out + 2 * latency + n_taps // 4)))
     bins_hz = np.fft.rfftfreq(n_fft, 1.0 / fs)
     tau = excess_gd_on_bins(est_freq_hz, excess_gd_s, bins_hz)
     tau = tau + closing_group_delay(bins_hz, correction_phase(bins_hz, tau)[-1], top_hz)
