@@ -38,7 +38,7 @@ def read_wav(path: str | Path) -> tuple[np.ndarray, int]:
     """
     import soundfile as sf
 
-    p = regular_file(path, "file")  # a FIFO or device would block for ever
+    p = regular_file(path, "audio file")  # a FIFO or device would block for ever
     try:
         data, fs = sf.read(str(p), dtype="float64", always_2d=True)
     except (RuntimeError, sf.LibsndfileError) as exc:
@@ -127,13 +127,38 @@ def expand_ir_paths(paths: list[str | Path]) -> list[Path]:
     return out
 
 
-def read_ir_set(paths: list[str | Path]) -> tuple[np.ndarray, int, list[Path]]:
+def check_plausible(data: np.ndarray, fs: int, name: str) -> None:
+    """Raise :class:`InputFileError` unless every channel looks like a room impulse response.
+
+    The checks (a clear arrival, time after it, decaying energy, no build-up)
+    are :func:`roomcorr.analysis.plausibility.impulse_response_problems`; the
+    message names the file, the channel and what looks wrong.
+    """
+    from roomcorr.analysis.plausibility import impulse_response_problems
+
+    for ch, x in enumerate(data):
+        problems = impulse_response_problems(x, fs)
+        if problems:
+            raise InputFileError(
+                f"{name}: channel {ch + 1} does not look like an impulse response: "
+                + "; ".join(problems)
+                + ". Check the file (design needs impulse responses, not recordings), "
+                "or pass --force to design from it anyway"
+            )
+
+
+def read_ir_set(
+    paths: list[str | Path], require_impulse: bool = False
+) -> tuple[np.ndarray, int, list[Path]]:
     """Read one impulse-response WAV per microphone position and check them.
 
     Parameters
     ----------
     paths : list of path-like
         WAV files (channels = loudspeakers) or folders of them.
+    require_impulse : bool
+        Also refuse files that do not look like impulse responses
+        (:func:`check_plausible`, run on each file as read, before padding).
 
     Returns
     -------
@@ -161,6 +186,8 @@ def read_ir_set(paths: list[str | Path]) -> tuple[np.ndarray, int, list[Path]]:
                 "needs one channel per loudspeaker, in the same order"
             )
         check_ir(data, fs, str(p))
+        if require_impulse:
+            check_plausible(data, fs, str(p))
         datas.append(data)
     assert fs0 is not None
     n = max(d.shape[1] for d in datas)

@@ -125,7 +125,7 @@ def regular_file(
         raise error(f"{p}: is a folder, not a {what}")
     if not stat.S_ISREG(st.st_mode):
         raise error(
-            f"{p}: not a regular file (a pipe, socket or device); give the {what} as a file"
+            f"{p}: not a regular file (a pipe, socket or device); name a {what} saved on disk"
         )
     return p
 
@@ -144,7 +144,7 @@ def read_regular_bytes(
         with os.fdopen(fd, "rb") as fh:
             st = os.fstat(fh.fileno())
             if not stat.S_ISREG(st.st_mode):  # replaced between the check and the open
-                raise error(f"{p}: not a regular file; give the {what} as a file")
+                raise error(f"{p}: not a regular file; name a {what} saved on disk")
             if st.st_size > max_bytes:
                 raise error(f"{p}: {st.st_size} bytes is too large for a {what}")
             return fh.read(max_bytes + 1)

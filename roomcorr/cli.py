@@ -177,13 +177,23 @@ def _print_design_summary(result: Any, out: Path, entries: list[dict]) -> None:
 
 
 def _design_and_write(
-    ir_paths: list[str], out: Path, settings: Any, replace: bool, extra: dict | None = None
+    ir_paths: list[str],
+    out: Path,
+    settings: Any,
+    replace: bool,
+    extra: dict | None = None,
+    force: bool = False,
 ) -> tuple[Any, list[dict]]:
     from roomcorr.audio_io import read_ir_set
     from roomcorr.export import write_design
-    from roomcorr.pipeline import run_design
+    from roomcorr.grid import log_grid
+    from roomcorr.pipeline import resolve_calibration, resolve_target, run_design
 
-    irs, fs, files = read_ir_set(ir_paths)
+    irs, fs, files = read_ir_set(ir_paths, require_impulse=not force)
+    # every input is checked before the work starts (and the cautions are printed)
+    resolve_target(log_grid(), settings.design.target)
+    resolve_calibration(log_grid(), settings.design.calibration)
+    _print_cautions()
     result = run_design(irs, fs, settings)
     iir = None
     if settings.design.iir:
@@ -199,7 +209,7 @@ def _design_and_write(
     if iir is not None:
         from roomcorr.export_iir import write_iir
 
-        entries += write_iir(iir, out)
+        entries += write_iir(iir, out, fir=result)
     return result, entries
 
 
@@ -222,6 +232,12 @@ def _add_design(sub: Any) -> argparse.ArgumentParser:
         "--out", metavar="DIR", help="output folder (in a room folder: a new designs/ run)"
     )
     p.add_argument("--room", metavar="ROOM_DIR", help="room folder (default: the one you are in)")
+    p.add_argument(
+        "--force",
+        action="store_true",
+        help="design even from files that do not look like impulse responses (no clear "
+        "arrival, no decay)",
+    )
     _add_design_options(p)
     return p
 
@@ -236,9 +252,9 @@ def _run_design(args: argparse.Namespace) -> int:
         if not args.irs:
             raise SettingsError("design: name the impulse-response files or folders to use")
         settings = settings_from_args(args, rooms.load_room_settings(room) if room else None)
-        _print_cautions()
         out = Path(args.out)
-        result, entries = _design_and_write(args.irs, out, settings, args.replace)
+        result, entries = _design_and_write(args.irs, out, settings, args.replace,
+                                            force=args.force)
         _print_design_summary(result, out, entries)
         return 0
     if room is None:
@@ -254,9 +270,9 @@ def _run_design(args: argparse.Namespace) -> int:
         paths = [str(p) for p in rooms.measurement_files(meas)]
         source = {"measurement": meas.name}
         print(f"Using the latest measurement: {meas.relative_to(room.root)}")
-    _print_cautions()
     with rooms.new_run(room, "design", info=dict(source)) as run_dir:
-        result, entries = _design_and_write(paths, run_dir, settings, False, extra=source)
+        result, entries = _design_and_write(paths, run_dir, settings, False, extra=source,
+                                            force=args.force)
     _print_design_summary(result, run_dir, entries)
     return 0
 
@@ -297,7 +313,6 @@ def _run_demo(args: argparse.Namespace) -> int:
     from roomcorr.export import MANIFEST, read_manifest
 
     settings = settings_from_args(args)
-    _print_cautions()
     out = Path(args.out)
     replace = args.replace
     if (out / MANIFEST).exists() and read_manifest(out).get("demo"):
