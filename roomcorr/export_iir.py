@@ -126,10 +126,18 @@ def section_notes(
             )
         else:
             why = "it cuts a room peak right next to the dip, narrow so as not to deepen the dip"
-        notes.append(
-            f"{head}: {why}. The cascade rises at most {max(excess, 0.0):.1f} dB above the "
-            "designed correction inside the dip, so the dip is not filled."
-        )
+        excess = max(excess, 0.0)
+        if excess < 0.5 * r["withheld_db"]:
+            tail = (
+                f"The cascade rises at most {excess:.1f} dB above the designed correction "
+                "inside the dip, so the dip is not filled."
+            )
+        else:
+            tail = (
+                f"Caution: the cascade rises up to {excess:.1f} dB above the designed "
+                "correction inside the dip; prefer the FIR filters here."
+            )
+        notes.append(f"{head}: {why}. {tail}")
     return notes
 
 
