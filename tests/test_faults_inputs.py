@@ -10,32 +10,19 @@ from __future__ import annotations
 import json
 import os
 import subprocess
-import sys
 from pathlib import Path
 
 import numpy as np
 import pytest
 import soundfile as sf
 from conftest import REPO, synthetic_ir
+from test_cli import run  # python -m roomcorr in a subprocess, with a timeout (a hang fails)
 
 from roomcorr.analysis.plausibility import implausible_responses, impulse_response_problems
 from roomcorr.audio_io import read_curve_file
 from roomcorr.errors import InputFileError
 
 FS = 48000
-
-
-def run(*args: str, cwd: Path | None = None) -> subprocess.CompletedProcess:
-    env = dict(os.environ, PYTHONPATH=str(REPO))
-    # the timeout turns a hang (a FIFO opened for reading) into a failure, not a stuck suite
-    return subprocess.run(
-        [sys.executable, "-m", "roomcorr", *args],
-        capture_output=True,
-        text=True,
-        cwd=cwd,
-        env=env,
-        timeout=120,
-    )
 
 
 def _wav(path: Path, data: np.ndarray, fs: int = FS) -> str:
@@ -397,3 +384,21 @@ def test_band_limited_subwoofer_response_is_accepted():
     # ... while the same response reversed in time is not
     rev = np.concatenate([h[::-1], np.zeros(FS // 4)])
     assert any("time-reversed" in p for p in impulse_response_problems(rev, FS))
+
+
+@pytest.mark.parametrize(
+    "opts, msg",
+    [
+        (["--level", "nan"], "not a finite number"),
+        (["--sweep-seconds", "inf"], "not a finite number"),
+        (["--rate", "48000.5"], "whole number"),
+        (["--settings", "LEVEL"], "measure.level_dbfs"),
+    ],
+)
+def test_measure_numbers_are_checked_before_any_sound(tmp_path, opts, msg):
+    # a NaN level passes every 'level > cap' test: it must be refused before a device opens
+    if opts[-1] == "LEVEL":
+        opts = ["--settings", _text(tmp_path, "m.toml", "[measure]\nlevel_dbfs = nan\n")]
+    out = tmp_path / "session"
+    r = run("measure", "--out", str(out), "--yes", *opts, cwd=tmp_path)
+    _assert_refused(r, msg, out)
