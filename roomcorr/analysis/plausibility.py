@@ -17,8 +17,9 @@ channel:
 3. **Energy that decays after it and does not build up before it.** The last
    fifth of the span after the arrival holds at least :data:`MIN_DECAY_DB`
    less energy than the first fifth; and the :data:`BUILDUP_WINDOW_S` before
-   the main peak hold less energy than the same time after it (the peak
-   itself, :data:`PEAK_GUARD_S` either side, left out): reflections and
+   the main peak hold no more than :data:`BUILDUP_RATIO` times the energy of
+   the same time after it, both counted above the noise (the peak itself,
+   :data:`PEAK_GUARD_S` either side, left out): reflections and
    reverberation follow the direct sound in a room, while reversed in time
    they come first and nothing follows.
 
@@ -44,8 +45,12 @@ MIN_AFTER_PEAK_S = 0.05
 MIN_DECAY_DB = 3.0
 #: Window before and after the main peak compared for build-up, s ...
 BUILDUP_WINDOW_S = 0.03
-#: ... leaving out this much on either side of the peak itself, s.
+#: ... leaving out this much on either side of the peak itself, s. Refused when the
+#: energy before (above the noise) exceeds the energy after by this factor (3 dB) ...
 PEAK_GUARD_S = 0.001
+BUILDUP_RATIO = 2.0
+#: ... and stands this many times (10 dB) above the noise energy of the same window.
+BUILDUP_OVER_NOISE = 10.0
 
 
 def _energy(x: np.ndarray) -> float:
@@ -84,7 +89,10 @@ def impulse_response_problems(ir: np.ndarray, fs: int) -> list[str]:
     lead_end = onset - int(0.001 * fs)
     if lead_end >= int(0.005 * fs):
         regions.append(slice(0, lead_end))
-    snr = max(arrival_snr_db(h, n, r) for r in regions)
+    snrs = [arrival_snr_db(h, n, r) for r in regions]
+    snr = max(snrs)
+    quiet = regions[int(np.argmax(snrs))]
+    noise_rms = 1.4826 * float(np.median(np.abs(h[quiet])))  # as arrival_snr_db estimates it
     if not snr >= MIN_ARRIVAL_DB:
         problems.append(
             f"the main peak stands only {snr:.1f} dB above the noise "
@@ -109,15 +117,20 @@ def impulse_response_problems(ir: np.ndarray, fs: int) -> list[str]:
             f"the energy does not decay after the arrival (last fifth only {drop:.1f} dB "
             f"below the first; {MIN_DECAY_DB:g} dB needed): a steady signal?"
         )
-    # 3b. and does not build up before the peak (the peak itself left out)
+    # 3b. and does not build up before the peak (the peak itself left out); energies are
+    # counted above the noise, so a clean impulse over plain noise (a loopback) passes
     w = max(2, int(BUILDUP_WINDOW_S * fs))
     g = max(1, int(PEAK_GUARD_S * fs))
-    before = _energy(h[max(0, peak - w) : max(0, peak - g)])
-    after = _energy(h[peak + g : peak + w])
-    if before > after:
+    seg_before = h[max(0, peak - w) : max(0, peak - g)]
+    seg_after = h[peak + g : peak + w]
+    noise_before = seg_before.size * noise_rms**2
+    before = _energy(seg_before) - noise_before
+    after = max(_energy(seg_after) - seg_after.size * noise_rms**2, 0.0)
+    if before > BUILDUP_RATIO * after and before > BUILDUP_OVER_NOISE * noise_before:
         problems.append(
-            f"the energy builds up towards the main peak ({_db_ratio(before, after):+.1f} dB "
-            f"in the {BUILDUP_WINDOW_S * 1000:.0f} ms before it against the same time after): "
+            f"the energy builds up towards the main peak "
+            f"({_db_ratio(_energy(seg_before), _energy(seg_after)):+.1f} dB in the "
+            f"{BUILDUP_WINDOW_S * 1000:.0f} ms before it against the same time after): "
             "a time-reversed response?"
         )
     return problems
