@@ -103,6 +103,12 @@ def _level_limits(ax: Any, *curves: np.ndarray, freq_hz: np.ndarray) -> None:
     ax.set_ylim(max(float(np.min(vals)) - 4, top - MAX_LEVEL_SPAN_DB), top)
 
 
+def _legend_below(ax: Any) -> None:
+    """Legend in two columns under the axes, clear of the curves."""
+    ax.legend(loc="upper center", bbox_to_anchor=(0.5, -0.16), ncols=2, fontsize=LEGEND_PT,
+              frameon=False)
+
+
 def data_limits(
     values: np.ndarray, caps: tuple[float, float], margin: float, at_least: tuple[float, float]
 ) -> tuple[float, float]:
@@ -146,7 +152,7 @@ def plot_responses(
         Draws ``target - max_boost_db``: a dip reaching below it cannot be filled.
     title : str
     """
-    fig = new_figure()
+    fig = new_figure(COLUMN_WIDTH_IN, 5.0, bottom=0.26)
     ax = fig.add_subplot()
     if band_hz is not None:
         _shade_outside(ax, band_hz)
@@ -168,7 +174,7 @@ def plot_responses(
     _level_limits(ax, measured_db, average_db, freq_hz=freq_hz)
     ax.set_ylabel("level (dB)")
     ax.set_title(title, loc="left", color=INK)
-    ax.legend(loc="lower center", ncols=2, fontsize=LEGEND_PT, frameon=False)
+    _legend_below(ax)
     return fig
 
 
@@ -194,7 +200,7 @@ def plot_predicted(
     pre_gain_db : float
         Only for the legend.
     """
-    fig = new_figure()
+    fig = new_figure(COLUMN_WIDTH_IN, 5.0, bottom=0.26)
     ax = fig.add_subplot()
     _shade_outside(ax, band_hz)
     ax.plot(freq_hz, before_db, color="#b9c2cc", lw=1.6, label="average before")
@@ -211,7 +217,7 @@ def plot_predicted(
     _level_limits(ax, predicted_db, before_db, freq_hz=freq_hz)
     ax.set_ylabel("level (dB)")
     ax.set_title(title, loc="left", color=INK)
-    ax.legend(loc="lower center", ncols=2, fontsize=LEGEND_PT, frameon=False)
+    _legend_below(ax)
     return fig
 
 
@@ -493,7 +499,7 @@ def plot_iir(
     """
     from matplotlib import colormaps
 
-    fig = new_figure()
+    fig = new_figure(COLUMN_WIDTH_IN, 5.0, bottom=0.26)
     ax = fig.add_subplot()
     _shade_outside(ax, band_hz)
     if fir_db is not None:
@@ -507,5 +513,5 @@ def plot_iir(
     _freq_axis(ax)
     ax.set_ylabel("gain (dB)")
     ax.set_title(title, loc="left", color=INK)
-    ax.legend(loc="best", ncols=2, fontsize=LEGEND_PT, frameon=False)
+    _legend_below(ax)
     return fig
