@@ -52,18 +52,21 @@ def _whole(text: str) -> int:
     return _finite(text, integer=True)
 
 
-def _float_list(text: str) -> list[float]:
+def _number_list(text: str, integer: bool) -> list[Any]:
     parts = [x for x in text.split(",") if x.strip()]
     if not parts:
         raise argparse.ArgumentTypeError(f"expected comma-separated numbers, got {text!r}")
-    return [float(_finite(x)) for x in parts]
+    return [_finite(x, integer=integer) for x in parts]
+
+
+def _float_list(text: str) -> list[float]:
+    """Option type: comma-separated finite numbers."""
+    return [float(x) for x in _number_list(text, integer=False)]
 
 
 def _int_list(text: str) -> list[int]:
-    parts = [x for x in text.split(",") if x.strip()]
-    if not parts:
-        raise argparse.ArgumentTypeError(f"expected comma-separated numbers, got {text!r}")
-    return [_whole(x) for x in parts]
+    """Option type: comma-separated finite whole numbers."""
+    return _number_list(text, integer=True)
 
 
 # --------------------------------------------------------------------------- design
@@ -136,9 +139,9 @@ def settings_from_args(args: argparse.Namespace, base: Any = None) -> Any:
 def _print_design_summary(result: Any, out: Path, entries: list[dict]) -> None:
     import numpy as np
 
-    print(f"Design written to {out}  ({len(entries) + 1} files, manifest.json lists them)")
     from roomcorr.design.safety import PEAK_BAND
 
+    print(f"Design written to {out}  ({len(entries) + 1} files, manifest.json lists them)")
     print(f"Common pre-gain: {result.pre_gain_db:+.2f} dB (same for every channel)")
     print(f"Peak gain below is the largest gain from {PEAK_BAND}, pre-gain included")
     for ch in result.channels:

@@ -190,12 +190,6 @@ def _num(key: str, value: Any) -> float:
     )
 
 
-def _as_float(key: str, value: Any) -> float:
-    if isinstance(value, str):
-        raise SettingsError(f"design.{key}: expected a number, got {value!r}")
-    return float(checked_number(value, f"design.{key}"))
-
-
 def _coerce(key: str, value: Any) -> Any:
     default = getattr(DesignSettings(), key)
     if key in ("band_lo_hz", "band_hi_hz"):
@@ -266,15 +260,13 @@ def validate_design(d: DesignSettings) -> DesignSettings:
     d.sample_rates = tuple(sorted(set(d.sample_rates)))
     if not isinstance(d.allow_gain, bool):
         raise SettingsError(f"design.allow_gain: expected true or false, got {d.allow_gain!r}")
-    ceiling = _num("ceiling_db", d.ceiling_db) if d.allow_gain else None
-    if ceiling is None:
-        c = checked_number(d.ceiling_db, "design.ceiling_db")
-        if c > 0.0:
-            raise SettingsError(
-                f"design.ceiling_db = {c:g}: a ceiling above 0 dB needs allow_gain "
-                "(--allow-gain); filters with gain can clip and overload amplifiers"
-            )
-        _num("ceiling_db", c)
+    ceiling = checked_number(d.ceiling_db, "design.ceiling_db")  # finite before any '>'
+    if ceiling > 0.0 and not d.allow_gain:
+        raise SettingsError(
+            f"design.ceiling_db = {ceiling:g}: a ceiling above 0 dB needs allow_gain "
+            "(--allow-gain); filters with gain can clip and overload amplifiers"
+        )
+    _num("ceiling_db", ceiling)
     if d.position_weights is not None:
         if not d.position_weights:
             raise SettingsError("design.position_weights: expected a list of numbers")
