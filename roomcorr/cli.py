@@ -156,9 +156,10 @@ def _design_and_write(
     ir_paths: list[str], out: Path, settings: Any, replace: bool, extra: dict | None = None
 ) -> tuple[Any, list[dict]]:
     from roomcorr.audio_io import read_ir_set
-    from roomcorr.export import write_design
+    from roomcorr.export import check_out_dir, input_digests, write_design
     from roomcorr.pipeline import run_design
 
+    check_out_dir(out, replace)  # refuse before the work, not after it
     irs, fs, files = read_ir_set(ir_paths)
     result = run_design(irs, fs, settings)
     iir = None
@@ -167,13 +168,12 @@ def _design_and_write(
 
         iir = design_iir(result)  # fitted and safety-checked before anything is written
     info = {"measurements": [str(f) for f in files]}
+    info["inputs"] = input_digests(
+        files, settings.design.calibration, settings.design.target
+    )  # SHA-256 of every input, so the design can be reproduced and checked
     if extra:
         info.update(extra)
-    entries = write_design(result, out, replace=replace, extra=info)
-    if iir is not None:
-        from roomcorr.export_iir import write_iir
-
-        entries += write_iir(iir, out)
+    entries = write_design(result, out, replace=replace, extra=info, iir=iir)
     return result, entries
 
 
