@@ -22,6 +22,7 @@ import os
 import re
 import secrets
 import shutil
+import sys
 from collections.abc import Callable, Iterator
 from pathlib import Path
 
@@ -195,18 +196,47 @@ def _fsync_dir(path: Path) -> None:
             os.close(fd)
 
 
+def _exchange(a: Path, b: Path) -> bool:
+    """Swap two paths in one atomic step (Linux ``renameat2(RENAME_EXCHANGE)``);
+    False where the system or file system does not offer it."""
+    if not sys.platform.startswith("linux"):
+        return False
+    try:
+        import ctypes
+
+        libc = ctypes.CDLL(None, use_errno=True)
+        fn = libc.renameat2
+    except (OSError, AttributeError):
+        return False
+    at_fdcwd, rename_exchange = -100, 2
+    fn.argtypes = [ctypes.c_int, ctypes.c_char_p, ctypes.c_int, ctypes.c_char_p, ctypes.c_uint]
+    rc = fn(at_fdcwd, os.fsencode(a), at_fdcwd, os.fsencode(b), rename_exchange)
+    if rc == 0:
+        return True
+    err = ctypes.get_errno()
+    if err in (errno.ENOSYS, errno.EINVAL, errno.ENOTSUP):
+        return False
+    raise OSError(err, os.strerror(err), str(b))
+
+
 def swap_in(staging: Path, dest: Path) -> None:
     """Move the complete folder ``staging`` to ``dest``, replacing what was there.
 
-    ``dest`` (if present) is parked under a temporary name, ``staging`` is
-    renamed into place and the parked folder is removed. Between the two
-    renames ``dest`` is briefly absent; :func:`clean_stale` puts the parked
-    folder back if the process dies in that moment.
+    On Linux both folders are exchanged in one atomic step and the old one
+    (now under the staging name) is removed. Elsewhere ``dest`` is parked
+    under a temporary name, ``staging`` is renamed into place and the parked
+    folder is removed; between the two renames ``dest`` is briefly absent,
+    and :func:`clean_stale` puts the parked folder back if the process dies
+    in that moment.
     """
     _fsync_dir(staging)
     if not dest.exists():
         os.rename(staging, dest)
         _fsync_dir(dest.parent)
+        return
+    if _exchange(staging, dest):  # one atomic step; staging now holds the old folder
+        _fsync_dir(dest.parent)
+        shutil.rmtree(staging, ignore_errors=True)
         return
     parked = dest.parent / f"{OLD_PREFIX}{dest.name}-{os.getpid()}-{secrets.token_hex(8)}"
     os.rename(dest, parked)

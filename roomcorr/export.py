@@ -17,8 +17,11 @@ anything outside is refused as damaged.
 
 from __future__ import annotations
 
+import contextlib
 import hashlib
 import json
+import math
+import shutil
 import zipfile
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -30,6 +33,7 @@ from roomcorr.atomic import (
     PathEscapeError,
     atomic_write_text,
     atomic_write_with,
+    clean_stale,
     contained,
     disk_error_text,
     staged_folder,
@@ -69,15 +73,38 @@ def _manifest_problem(doc: Any, out: Path) -> str | None:
             contained(out, e["path"])
         except PathEscapeError as exc:
             return f"names a file outside the folder ({exc})"
+        for key in _NUMERIC_ENTRY_KEYS:
+            if key in e and _finite(e[key]) is None:
+                return f"{e['path']}: '{key}' is not a finite number"
         digest = e.get("sha256")
         if digest is not None and not (
             isinstance(digest, str) and len(digest) == 64 and _is_hex(digest)
         ):
             return f"{e['path']}: 'sha256' is not a SHA-256 digest"
+    if "pre_gain_db" in doc and _finite(doc["pre_gain_db"]) is None:
+        return "'pre_gain_db' is not a finite number"
     for key in ("settings", "channels"):
         if key in doc and not isinstance(doc[key], dict if key == "settings" else list):
             return f"'{key}' has the wrong type"
     return None
+
+
+_NUMERIC_ENTRY_KEYS = (
+    "sample_rate",
+    "taps",
+    "channel",
+    "peak_gain_db",
+    "worst_case_gain_db",
+    "max_boost_db",
+    "pre_gain_db",
+)
+
+
+def _finite(v: Any) -> float | None:
+    """``v`` as a float when it is a finite JSON number, else None."""
+    if isinstance(v, bool) or not isinstance(v, int | float) or not math.isfinite(v):
+        return None
+    return float(v)
 
 
 def _is_hex(text: str) -> bool:
@@ -180,13 +207,19 @@ def _folder_entries(out: Path) -> list[str]:
 
 
 def check_out_dir(out: Path, replace: bool) -> None:
-    """Refuse an output folder that must not be written (see :func:`write_design`)."""
+    """Refuse an output folder that must not be written (see :func:`write_design`).
+
+    First tidies what an interrupted earlier run left beside ``out``
+    (:func:`roomcorr.atomic.clean_stale`), so the checks see the folder as it is.
+    """
+    if out.parent.is_dir():
+        clean_stale(out.parent, out.name)
     if out.is_symlink():
         raise OutputError(f"--out {out}: is a symbolic link; give the folder it points to")
     if out.exists() and not out.is_dir():
         raise OutputError(f"--out {out}: exists and is not a folder")
     if not out.parent.is_dir():
-        raise OutputError(f"--out {out}: folder {out.parent} does not exist")
+        raise OutputError(f"--out {out}: {out.parent} is not an existing folder")
     if not out.is_dir():
         return
     if (out / "complete.json").exists():
@@ -351,7 +384,11 @@ def write_design(
     except RuntimeError as exc:  # soundfile's LibsndfileError (e.g. disk full mid-WAV)
         if "Soundfile" not in type(exc).__name__ and "Libsndfile" not in type(exc).__name__:
             raise
-        raise OutputError(f"--out {out}: cannot write the design ({exc})") from None
+        why = " ".join(str(exc).split())
+        with contextlib.suppress(OSError):  # libsndfile does not say why; a full disk is likely
+            if shutil.disk_usage(out.parent).free < (1 << 20):
+                why = "no space left on the disk"
+        raise OutputError(f"--out {out}: cannot write the design ({why})") from None
     return entries
 
 

@@ -609,7 +609,8 @@ def new_run(room: Room, kind: str, info: dict[str, Any] | None = None) -> Iterat
     The room lock is held for the whole block. If the block raises (including
     Ctrl-C), or the process is killed, the folder keeps whatever was written
     but gets no ``complete.json``, so :func:`latest_measurement` and
-    :func:`list_runs` never take it for a finished run. Nothing is deleted.
+    :func:`list_runs` never take it for a finished run. Nothing written is
+    deleted; a run folder still empty when the block raises is removed.
     """
     if kind not in KINDS:
         raise ValueError(f"kind must be one of {sorted(KINDS)}, not {kind!r}")
@@ -617,7 +618,12 @@ def new_run(room: Room, kind: str, info: dict[str, Any] | None = None) -> Iterat
         started = _utc_now()
         run_dir = _make_run_dir(room, kind)
         snapshot = room.settings_path.read_bytes() if room.settings_path.is_file() else None
-        yield run_dir
+        try:
+            yield run_dir
+        except BaseException:
+            with contextlib.suppress(OSError):
+                run_dir.rmdir()  # a run that failed before writing anything leaves no trace
+            raise
         snapshot_sha = None
         if snapshot is not None:  # written at the end: writers may want an empty folder
             atomic_write_bytes(run_dir / SETTINGS_SNAPSHOT, snapshot)
@@ -1033,8 +1039,7 @@ def history(room: Room) -> list[dict[str, Any]]:
             entry["note"] = info["note"]
         problem = r.problem
         if r.complete:
-            used = None if r.kind == "measurement" else ["manifest.json"]
-            problem = check_run(r, used)
+            problem = check_run(r)  # runs are small: every file's SHA-256 is checked
         if problem is None and r.complete:
             try:
                 entry["figures"] = (
