@@ -250,16 +250,13 @@ def swap_in(staging: Path, dest: Path) -> None:
 
 
 @contextlib.contextmanager
-def staged_folder(dest: str | os.PathLike[str], mode_from: Path | None = None) -> Iterator[Path]:
+def staged_folder(dest: str | os.PathLike[str]) -> Iterator[Path]:
     """Yield an empty temporary sibling of ``dest``; swap it in when the block succeeds.
 
     Parameters
     ----------
     dest : path-like
         The folder to create or replace. Its parent must exist.
-    mode_from : Path, optional
-        Folder whose permission bits the new folder takes (default: ``dest``
-        if it exists, else the usual mode for a new folder).
 
     Notes
     -----
@@ -273,8 +270,7 @@ def staged_folder(dest: str | os.PathLike[str], mode_from: Path | None = None) -
     staging = parent / _tmp_name(target.name)
     try:
         staging.mkdir()
-        src = mode_from if mode_from is not None else target
-        mode = (src.stat().st_mode & 0o7777) if src.is_dir() else (0o777 & ~_umask())
+        mode = (target.stat().st_mode & 0o7777) if target.is_dir() else (0o777 & ~_umask())
         os.chmod(staging, mode)
         yield staging
         swap_in(staging, target)
@@ -300,3 +296,43 @@ def disk_error_text(exc: OSError) -> str:
         errno.EBUSY: "in use (a mount point?)",
     }
     return reasons.get(exc.errno or -1, exc.strerror or str(exc))
+
+
+@contextlib.contextmanager
+def staged_copy(dest: str | os.PathLike[str]) -> Iterator[Path]:
+    """Like :func:`staged_folder`, but the staging folder starts as a copy of ``dest``.
+
+    Files are hard links to the originals (roomcorr never changes a file in
+    place, it replaces it), so the copy costs no disk space; the block edits
+    the copy and the whole folder is swapped in when it succeeds. Used to add
+    files to a folder and update its manifest in one step.
+    """
+    target = Path(dest)
+    with staged_folder(target) as stage:
+        _link_tree(target, stage)
+        yield stage
+
+
+def _link_tree(src: Path, dst: Path) -> None:
+    for dirpath, dirnames, filenames in os.walk(src):
+        here = Path(dirpath)
+        rel = here.relative_to(src)
+        dirnames[:] = [n for n in dirnames if not n.startswith((TMP_PREFIX, OLD_PREFIX))]
+        for n in dirnames:
+            p = here / n
+            if p.is_symlink():
+                os.symlink(os.readlink(p), dst / rel / n)
+            else:
+                (dst / rel / n).mkdir()
+                shutil.copymode(p, dst / rel / n)
+        for n in filenames:
+            if n.startswith((TMP_PREFIX, OLD_PREFIX)):
+                continue
+            p, q = here / n, dst / rel / n
+            if p.is_symlink():
+                os.symlink(os.readlink(p), q)
+                continue
+            try:
+                os.link(p, q)
+            except OSError:
+                shutil.copy2(p, q)

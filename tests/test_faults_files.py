@@ -378,7 +378,16 @@ def test_ctrl_c_at_every_write_step_leaves_the_earlier_output_whole(
         def build_once(*a, **kw):  # the figures are not what is tested here: draw them once
             if not cache:
                 cache.append(real_build(*a, **kw))
-            return cache[0]
+                return cache[0]
+            # Later reports differ from the first in every file, so a mixture shows.
+            import copy
+
+            later = copy.deepcopy(cache[0])
+            later.subtitle += " (again)"
+            for sec in later.sections:
+                for f in sec.figures:
+                    f.png += b"again"
+            return later
 
         monkeypatch.setattr(rh, "build_report", build_once)
         assert main(["report", str(d)]) == 0
@@ -428,7 +437,7 @@ def test_interrupted_design_replace_leaves_old_or_new_whole(work):
     def args():
         return ["design", work / "irs2", "--out", d, "--replace", "--rates", "48000"]
 
-    assert _kill_loop(args, check, work / "cwd", seed=13, n=4) >= 1
+    assert _kill_loop(args, check, work / "cwd", seed=13, n=3) >= 1
     # The next run finishes and tidies what the killed ones left beside the folder.
     r = run(*args(), cwd=work / "cwd")
     assert r.returncode == 0, r.stderr
@@ -454,7 +463,7 @@ def test_interrupted_report_leaves_old_or_new_whole(work):
         }
         assert figs == listed
 
-    assert _kill_loop(lambda: ["report", d], check, work / "cwd", seed=5, n=3) >= 1
+    assert _kill_loop(lambda: ["report", d], check, work / "cwd", seed=5, n=2) >= 1
     assert run("report", d, cwd=work / "cwd").returncode == 0
     check()
     assert snapshot(work, skip=(d,)) == outside and not leftovers(work)

@@ -1055,39 +1055,47 @@ def write_report(
     iir = _read_iir(d) if is_design else None
     comparison = report_comparison(d, compare_with)
     report = build_report(curves, settings, quality, iir=iir, dpi=dpi, comparison=comparison)
-    written = _write_report_files(dest, report)
     # A finished room run is sealed by its complete.json (SHA-256 of every file,
     # manifest included): the report is added beside it, never into its manifest.
     same = dest.resolve() == d.resolve()
-    if same and is_design and not (d / "complete.json").is_file():
-        from roomcorr.export import add_manifest_entries, read_manifest, sha256_of, write_manifest
-
-        manifest = read_manifest(d)
-        known = {e.get("path") for e in manifest.get("files", [])}
-        if known & {*written, REPORT_HTML}:  # a report written before: refresh its digests
-            manifest["files"] = [
-                e
-                for e in manifest["files"]
-                if not str(e["path"]).startswith(f"{FIG_DIR}/") or e["path"] in written
-            ]  # figures the new report no longer has were removed with the old report/
-            for e in manifest["files"]:
-                if e.get("path") in {*written, REPORT_HTML}:
-                    e["sha256"] = sha256_of(d / e["path"])
-            write_manifest(d, manifest)
-        entries = [{"path": p, "kind": "report-figure"} for p in written if p not in known]
-        if REPORT_HTML not in known:
-            entries.append({"path": REPORT_HTML, "kind": "report"})
-        if entries:
-            add_manifest_entries(d, entries)
+    _write_report_files(
+        dest, report, list_in_manifest=same and is_design and not (d / "complete.json").is_file()
+    )
     return dest / REPORT_HTML
 
 
-def _write_report_files(dest: Path, report: Report) -> list[str]:
-    """Write the figures and the page into ``dest``, all or nothing; return the figure paths."""
+def _list_report_in_manifest(d: Path, written: list[str]) -> None:
+    from roomcorr.export import add_manifest_entries, read_manifest, sha256_of, write_manifest
+
+    manifest = read_manifest(d)
+    known = {e.get("path") for e in manifest.get("files", [])}
+    if known & {*written, REPORT_HTML}:  # a report written before: refresh its digests
+        manifest["files"] = [
+            e
+            for e in manifest["files"]
+            if not str(e["path"]).startswith(f"{FIG_DIR}/") or e["path"] in written
+        ]  # figures the new report no longer has went with the old report/
+        for e in manifest["files"]:
+            if e.get("path") in {*written, REPORT_HTML}:
+                e["sha256"] = sha256_of(d / e["path"])
+        write_manifest(d, manifest)
+    entries = [{"path": p, "kind": "report-figure"} for p in written if p not in known]
+    if REPORT_HTML not in known:
+        entries.append({"path": REPORT_HTML, "kind": "report"})
+    if entries:
+        add_manifest_entries(d, entries)
+
+
+def _write_report_files(dest: Path, report: Report, list_in_manifest: bool) -> list[str]:
+    """Write the figures and the page (and their manifest entries) into ``dest``, all or
+    nothing: the folder is built beside ``dest`` and swapped in when complete."""
+    import shutil
+
     from roomcorr.atomic import (
         atomic_write_bytes,
         atomic_write_text,
         disk_error_text,
+        staged_copy,
         staged_folder,
     )
     from roomcorr.errors import OutputError
@@ -1096,17 +1104,15 @@ def _write_report_files(dest: Path, report: Report) -> list[str]:
     written = [f"{FIG_DIR}/{f.key}.png" for f in figures]
     page = render_html(report)
     try:
-        if not dest.exists():  # a new folder appears only when complete
-            with staged_folder(dest) as stage:
-                (stage / FIG_DIR).mkdir()
-                for f, rel in zip(figures, written, strict=True):
-                    atomic_write_bytes(stage / rel, f.png)
-                atomic_write_text(stage / REPORT_HTML, page)
-            return written
-        with staged_folder(dest / FIG_DIR, mode_from=dest) as stage:
-            for f in figures:
-                atomic_write_bytes(stage / f"{f.key}.png", f.png)
-            atomic_write_text(dest / REPORT_HTML, page)
+        with staged_copy(dest) if dest.exists() else staged_folder(dest) as stage:
+            if (stage / FIG_DIR).is_dir():
+                shutil.rmtree(stage / FIG_DIR)  # links to the old figures; they stay intact
+            (stage / FIG_DIR).mkdir()
+            for f, rel in zip(figures, written, strict=True):
+                atomic_write_bytes(stage / rel, f.png)
+            atomic_write_text(stage / REPORT_HTML, page)
+            if list_in_manifest:
+                _list_report_in_manifest(stage, written)
     except OSError as exc:
         raise OutputError(f"{dest}: cannot write the report ({disk_error_text(exc)})") from None
     return written
