@@ -20,6 +20,8 @@ Public functions (the signatures other commands rely on)::
     add_measurement(room, paths) -> Path         # copy IR WAVs from elsewhere into a new run
     measurement_files(folder) -> list[Path]      # the IR WAVs of a measurement folder
     compare_measurements(a, b, room=None, temperature_c=None) -> dict
+    check_run(run, use=None) -> str | None       # what changed since the run finished
+    verified(room, folder, use=None)             # InputFileError for a damaged run
 
 Layout of a room folder::
 
@@ -28,9 +30,13 @@ Layout of a room folder::
     ROOM/measurements/2026-01-31_201502Z/   pos1.wav ... measurement.json, complete.json
     ROOM/designs/2026-01-31_203010Z/        manifest.json, design.npz, fir/..., complete.json
 
-Runs are never overwritten or deleted. A run folder without ``complete.json``
-was interrupted (or is still being written) and is never taken as a
-measurement or design by later commands. Every file goes through
+Runs are never overwritten or deleted, and finished runs are read-only to
+roomcorr. A run folder without ``complete.json`` was interrupted (or is still
+being written) and is never taken as a measurement or design by later
+commands. A finished run is verified on read against its ``complete.json``
+(sizes of every file always, SHA-256 of the files a command uses); a damaged
+run is shown as damaged by ``history`` and refused with one line elsewhere.
+``measurements/`` and ``designs/`` must be plain folders inside the room. Every file goes through
 :mod:`roomcorr.atomic`; the one exception is the lock file, which must keep
 its identity for ``flock`` and holds only a note of who holds it.
 """
