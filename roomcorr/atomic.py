@@ -187,7 +187,8 @@ def clean_stale(folder: str | os.PathLike[str], stem: str | None = None) -> list
     return removed
 
 
-def _fsync_dir(path: Path) -> None:
+def fsync_dir(path: Path) -> None:
+    """Flush a folder's entries to disk (where the system allows it)."""
     with contextlib.suppress(OSError, AttributeError):
         fd = os.open(path, os.O_RDONLY)
         try:
@@ -229,13 +230,13 @@ def swap_in(staging: Path, dest: Path) -> None:
     and :func:`clean_stale` puts the parked folder back if the process dies
     in that moment.
     """
-    _fsync_dir(staging)
+    fsync_dir(staging)
     if not dest.exists():
         os.rename(staging, dest)
-        _fsync_dir(dest.parent)
+        fsync_dir(dest.parent)
         return
     if _exchange(staging, dest):  # one atomic step; staging now holds the old folder
-        _fsync_dir(dest.parent)
+        fsync_dir(dest.parent)
         shutil.rmtree(staging, ignore_errors=True)
         return
     parked = dest.parent / f"{OLD_PREFIX}{dest.name}-{os.getpid()}-{secrets.token_hex(8)}"
@@ -245,7 +246,7 @@ def swap_in(staging: Path, dest: Path) -> None:
     except BaseException:
         os.rename(parked, dest)
         raise
-    _fsync_dir(dest.parent)
+    fsync_dir(dest.parent)
     shutil.rmtree(parked, ignore_errors=True)
 
 

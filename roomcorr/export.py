@@ -206,20 +206,26 @@ def _folder_entries(out: Path) -> list[str]:
     return sorted(found)
 
 
+def check_folder_target(out: Path, label: str) -> None:
+    """Refuse a link, a file, or a folder whose parent does not exist as an output folder
+    (``label`` names it in the message); first tidy what an interrupted run left beside it."""
+    if out.parent.is_dir():
+        clean_stale(out.parent, out.name)
+    if out.is_symlink():
+        raise OutputError(f"{label}: is a symbolic link; give the folder it points to")
+    if out.exists() and not out.is_dir():
+        raise OutputError(f"{label}: exists and is not a folder")
+    if not out.parent.is_dir():
+        raise OutputError(f"{label}: {out.parent} is not an existing folder")
+
+
 def check_out_dir(out: Path, replace: bool) -> None:
     """Refuse an output folder that must not be written (see :func:`write_design`).
 
     First tidies what an interrupted earlier run left beside ``out``
     (:func:`roomcorr.atomic.clean_stale`), so the checks see the folder as it is.
     """
-    if out.parent.is_dir():
-        clean_stale(out.parent, out.name)
-    if out.is_symlink():
-        raise OutputError(f"--out {out}: is a symbolic link; give the folder it points to")
-    if out.exists() and not out.is_dir():
-        raise OutputError(f"--out {out}: exists and is not a folder")
-    if not out.parent.is_dir():
-        raise OutputError(f"--out {out}: {out.parent} is not an existing folder")
+    check_folder_target(out, f"--out {out}")
     if not out.is_dir():
         return
     if (out / "complete.json").exists():

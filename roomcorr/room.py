@@ -62,6 +62,7 @@ from roomcorr.atomic import (
     atomic_write_text,
     clean_stale,
     contained,
+    fsync_dir,
     is_link_or_outside,
 )
 from roomcorr.audio_io import natural_key
@@ -538,15 +539,6 @@ def _sha256(path: Path) -> str:
     return sha256_of(path)
 
 
-def _fsync_dir(path: Path) -> None:
-    with contextlib.suppress(OSError, AttributeError):
-        fd = os.open(path, os.O_RDONLY)
-        try:
-            os.fsync(fd)
-        finally:
-            os.close(fd)
-
-
 def _run_files(run_dir: Path) -> list[Path]:
     from roomcorr.atomic import TMP_PREFIX
 
@@ -650,9 +642,9 @@ def new_run(room: Room, kind: str, info: dict[str, Any] | None = None) -> Iterat
             "files": files,
             "sizes": sizes,
         }
-        _fsync_dir(run_dir)
+        fsync_dir(run_dir)
         atomic_write_text(run_dir / COMPLETE_MARKER, json.dumps(marker, indent=2) + "\n")
-        _fsync_dir(run_dir)
+        fsync_dir(run_dir)
 
 
 def _run_sort_key(p: Path) -> tuple[str, int]:

@@ -962,6 +962,7 @@ def report_destination(folder: str | Path, out_dir: str | Path | None = None) ->
         than the reported run itself), or a folder holding other files.
     """
     from roomcorr.errors import OutputError
+    from roomcorr.export import check_folder_target
 
     d = Path(folder)
     if out_dir is None:
@@ -970,12 +971,7 @@ def report_destination(folder: str | Path, out_dir: str | Path | None = None) ->
     else:
         dest = Path(out_dir)
         option = f"--out {out_dir}"
-    if dest.is_symlink():
-        raise OutputError(f"{option}: is a symbolic link; give the folder it points to")
-    if dest.exists() and not dest.is_dir():
-        raise OutputError(f"{option}: exists and is not a folder")
-    if not dest.parent.is_dir():
-        raise OutputError(f"{option}: {dest.parent} is not an existing folder")
+    check_folder_target(dest, option)
     if not dest.exists() or (dest.exists() and dest.resolve() == d.resolve()):
         return dest
     if (dest / "complete.json").exists():
