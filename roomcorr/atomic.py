@@ -128,6 +128,17 @@ def contained(base: str | os.PathLike[str], rel: str | os.PathLike[str]) -> Path
     return Path(base) / text
 
 
+def holds_working_folder(path: Path) -> bool:
+    """Whether ``path`` is the working folder or one of its parents (swapping it would
+    leave the shell that started roomcorr in a deleted folder)."""
+    try:
+        here = Path.cwd().resolve()
+        target = path.resolve()
+    except OSError:
+        return False
+    return target == here or target in here.parents
+
+
 def is_link_or_outside(path: Path, base: Path) -> bool:
     """Whether ``path`` is a symbolic link or resolves outside ``base``."""
     if path.is_symlink():

@@ -36,6 +36,7 @@ from roomcorr.atomic import (
     clean_stale,
     contained,
     disk_error_text,
+    holds_working_folder,
     staged_folder,
 )
 from roomcorr.audio_io import write_wav
@@ -226,6 +227,11 @@ def check_out_dir(out: Path, replace: bool) -> None:
     (:func:`roomcorr.atomic.clean_stale`), so the checks see the folder as it is.
     """
     check_folder_target(out, f"--out {out}")
+    if holds_working_folder(out):
+        raise OutputError(
+            f"--out {out}: is the working folder (or holds it); give a folder to create, "
+            "e.g. --out filters"
+        )
     if not out.is_dir():
         return
     if (out / "complete.json").exists():

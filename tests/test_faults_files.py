@@ -743,3 +743,19 @@ def test_history_survives_a_run_folder_being_written(work, capsys):
     code, out, err = cli(capsys, "history", "--json", room.root)
     assert code == 0, err
     assert all(not e["run_id"].startswith(".") for e in json.loads(out)["runs"])
+
+
+def test_working_folder_is_never_swapped_away(work, capsys, monkeypatch):
+    # 'design --out .' would replace the folder the shell stands in: refused.
+    monkeypatch.chdir(work / "d")
+    before = snapshot(work)
+    code, _, err = cli(capsys, "design", work / "irs", "--out", ".", "--replace")
+    assert_one_line_error(code, err, "working folder")
+    assert snapshot(work) == before
+    # 'report .' inside a design folder writes there, and the folder stays the
+    # one the shell is in (not a deleted copy).
+    inode = os.stat(".").st_ino
+    code, out, err = cli(capsys, "report", ".")
+    assert code == 0, err
+    assert os.stat(".").st_ino == inode == os.stat(work / "d").st_ino
+    assert Path("report.html").is_file() and design_is_whole(work / "d")

@@ -1091,6 +1091,7 @@ def _write_report_files(dest: Path, report: Report, list_in_manifest: bool) -> l
         atomic_write_bytes,
         atomic_write_text,
         disk_error_text,
+        holds_working_folder,
         staged_copy,
         staged_folder,
     )
@@ -1100,6 +1101,17 @@ def _write_report_files(dest: Path, report: Report, list_in_manifest: bool) -> l
     written = [f"{FIG_DIR}/{f.key}.png" for f in figures]
     page = render_html(report)
     try:
+        if dest.exists() and holds_working_folder(dest):
+            # ``roomcorr report .``: the folder itself cannot be swapped under the
+            # shell that runs us, so only report/ is swapped in; then the page and
+            # the manifest are replaced, each atomically.
+            with staged_folder(dest / FIG_DIR) as stage:
+                for f in figures:
+                    atomic_write_bytes(stage / f"{f.key}.png", f.png)
+                atomic_write_text(dest / REPORT_HTML, page)
+            if list_in_manifest:
+                _list_report_in_manifest(dest, written)
+            return written
         with staged_copy(dest) if dest.exists() else staged_folder(dest) as stage:
             if (stage / FIG_DIR).is_dir():
                 shutil.rmtree(stage / FIG_DIR)  # links to the old figures; they stay intact
