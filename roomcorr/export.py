@@ -41,6 +41,7 @@ from roomcorr.atomic import (
 )
 from roomcorr.audio_io import write_wav
 from roomcorr.errors import OutputError
+from roomcorr.room import refuse_finished_run
 from roomcorr.settings import settings_to_dict
 
 if TYPE_CHECKING:
@@ -232,13 +233,9 @@ def check_out_dir(out: Path, replace: bool) -> None:
             f"--out {out}: is the working folder (or holds it); give a folder to create, "
             "e.g. --out filters"
         )
+    refuse_finished_run(out)
     if not out.is_dir():
         return
-    if (out / "complete.json").exists():
-        raise OutputError(
-            f"--out {out}: a finished run of a room folder, which roomcorr never changes; "
-            "design into the room (roomcorr design) or choose another folder"
-        )
     present = [p for p in _folder_entries(out) if not Path(p).name.startswith(TMP_PREFIX)]
     if not present:
         return

@@ -571,6 +571,18 @@ def _make_run_dir(room: Room, kind: str) -> Path:
     raise OutputError(f"{parent}: cannot create a new run folder")  # pragma: no cover
 
 
+def refuse_finished_run(path: str | os.PathLike[str], label: str = "--out") -> None:
+    """Raise :class:`OutputError` if ``path`` is, or lies inside, a finished run of a room
+    folder: finished runs are read-only to roomcorr (a new run is the way to change them)."""
+    p = Path(os.path.abspath(path))
+    for cand in (p, *p.parents):
+        if (cand / COMPLETE_MARKER).is_file() and cand.parent.name in KINDS.values():
+            raise OutputError(
+                f"{label} {path}: inside the finished run {cand.name} of a room folder, which "
+                "roomcorr never changes; choose another folder (in the room: a new run)"
+            )
+
+
 def check_kind_folder(room: Room, kind: str) -> None:
     """Refuse a ``measurements/`` or ``designs/`` folder that is a link or leads outside."""
     parent = room.root / KINDS[kind]
@@ -1037,7 +1049,10 @@ def history(room: Room) -> list[dict[str, Any]]:
             entry["note"] = info["note"]
         problem = r.problem
         if r.complete:
-            problem = check_run(r)  # runs are small: every file's SHA-256 is checked
+            # Sizes of every file; SHA-256 of all but the raw recordings (large, and
+            # read by no command after the run).
+            use = [rel for rel in r.marker.get("files", {}) if not rel.startswith("raw/")]
+            problem = check_run(r, use)
         if problem is None and r.complete:
             try:
                 entry["figures"] = (

@@ -759,3 +759,38 @@ def test_working_folder_is_never_swapped_away(work, capsys, monkeypatch):
     assert code == 0, err
     assert os.stat(".").st_ino == inode == os.stat(work / "d").st_ino
     assert Path("report.html").is_file() and design_is_whole(work / "d")
+
+
+@pytest.mark.parametrize("kind", ["design", "measurement"])
+def test_nothing_writes_inside_a_finished_run(work, capsys, kind):
+    run_dir = _run_dir(work, kind)
+    before = snapshot(work)
+    code, _, err = cli(capsys, "design", work / "irs", "--out", run_dir / "sub")
+    assert_one_line_error(code, err, "finished run")
+    code, _, err = cli(capsys, "report", work / "irs", "--out", run_dir / "sub")
+    assert_one_line_error(code, err, "finished run")
+    if kind == "measurement":  # measure refuses it too, before any sound plays
+        from roomcorr.measure.session import run_measurement
+        from roomcorr.measure.settings import MeasureSettings
+
+        with pytest.raises(R.OutputError, match="finished run"):
+            run_measurement(MeasureSettings(), run_dir, replace=True)
+    assert snapshot(work) == before
+
+
+def test_raw_recordings_are_checked_by_size(work, capsys):
+    # history hashes what it reads; the raw recordings it only checks by size.
+    room = _room(work)
+    with R.new_run(room, "measurement") as m:
+        for p in sorted((work / "irs").glob("*.wav")):
+            shutil.copy(p, m / p.name)
+        (m / "raw").mkdir()
+        (m / "raw" / "pos1_out1.wav").write_bytes(b"\0" * 64)
+    (m / "raw" / "pos1_out1.wav").write_bytes(b"\0" * 65)
+    code, out, err = cli(capsys, "history", "--json", room.root)
+    assert code == 0, err
+    entry = next(e for e in json.loads(out)["runs"] if e["run_id"] == m.name)
+    assert (
+        entry["status"] == "damaged"
+        and "raw/pos1_out1.wav: size changed" in (entry["figures"]["problem"])
+    )

@@ -963,6 +963,7 @@ def report_destination(folder: str | Path, out_dir: str | Path | None = None) ->
     """
     from roomcorr.errors import OutputError
     from roomcorr.export import check_folder_target
+    from roomcorr.room import refuse_finished_run
 
     d = Path(folder)
     if out_dir is None:
@@ -972,13 +973,11 @@ def report_destination(folder: str | Path, out_dir: str | Path | None = None) ->
         dest = Path(out_dir)
         option = f"--out {out_dir}"
     check_folder_target(dest, option)
-    if not dest.exists() or (dest.exists() and dest.resolve() == d.resolve()):
+    if dest.exists() and dest.resolve() == d.resolve():
+        return dest  # the folder itself (a finished run: its report goes beside its files)
+    refuse_finished_run(dest, option)
+    if not dest.exists():
         return dest
-    if (dest / "complete.json").exists():
-        raise OutputError(
-            f"{option}: a finished run of a room folder, which roomcorr never changes; "
-            "choose another folder"
-        )
     others = sorted(p.name for p in dest.iterdir() if p.name not in (REPORT_HTML, FIG_DIR))
     if others:
         raise OutputError(
