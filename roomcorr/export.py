@@ -40,6 +40,9 @@ from roomcorr.atomic import (
     staged_folder,
 )
 from roomcorr.audio_io import write_wav
+from roomcorr.design.mixedphase import from_arrays as mixed_phase_from_arrays
+from roomcorr.design.mixedphase import latency_record
+from roomcorr.design.mixedphase import to_arrays as mixed_phase_arrays
 from roomcorr.errors import OutputError
 from roomcorr.room import refuse_finished_run
 from roomcorr.settings import settings_to_dict
@@ -284,6 +287,8 @@ def _curves_dict(result: DesignResult) -> dict[str, np.ndarray]:
         data[f"ch{c.index}_band_hz"] = np.array(c.band_hz)
     for fs, h in result.firs.items():
         data[f"fir_{fs}"] = h
+    if getattr(result, "mixed_phase", None) is not None:
+        data.update(mixed_phase_arrays(result.mixed_phase))
     return data
 
 
@@ -337,6 +342,7 @@ def load_design_curves(out_dir: str | Path, verify: bool = True) -> dict[str, An
             "irs": raw["irs"].astype(np.float64),
             "firs": firs,
             "channels": channels,
+            "mixed_phase": mixed_phase_from_arrays(raw),
         }
     except _DAMAGED_NPZ as exc:
         raise OutputError(f"{p}: damaged ({type(exc).__name__}: {exc}); design again") from None
@@ -406,6 +412,7 @@ def _write_design_files(
 ) -> list[dict[str, Any]]:
     entries: list[dict[str, Any]] = []
     stats = {(s.fs, s.channel): s for s in result.stats}
+    latency = latency_record(getattr(result, "mixed_phase", None))
     for fs, h in result.firs.items():
         rate_dir = out / "fir" / str(fs)
         rate_dir.mkdir(parents=True, exist_ok=True)
@@ -425,6 +432,7 @@ def _write_design_files(
                     "peak_gain_db": round(s.peak_gain_db, 3),
                     "worst_case_gain_db": round(s.worst_case_gain_db, 3),
                     "max_boost_db": round(s.max_boost_db, 3),
+                    "latency_samples": latency.get("samples", {}).get(str(fs), 0),
                     "sha256": sha256_of(path),
                 }
             )
@@ -445,6 +453,7 @@ def _write_design_files(
         ],
         "files": entries,
         "settings": settings_to_dict(result.settings),
+        "latency": latency,
     }
     if extra:
         manifest.update(extra)
