@@ -12,7 +12,6 @@ next run removes. Prints how many rounds were cut short and how many failed.
 from __future__ import annotations
 
 import hashlib
-import json
 import os
 import random
 import shutil
@@ -32,14 +31,9 @@ def _sha(p: Path) -> str:
 
 
 def _whole(d: Path) -> bool:
-    man = json.loads((d / "manifest.json").read_text())
-    listed = {e["path"]: e["sha256"] for e in man["files"]}
-    present = {
-        p.relative_to(d).as_posix()
-        for p in d.rglob("*")
-        if p.is_file() and p.name != "manifest.json"
-    }
-    return present == set(listed) and all(_sha(d / k) == v for k, v in listed.items())
+    from roomcorr.export import design_differences
+
+    return not design_differences(d)
 
 
 def _outside(root: Path, d: Path) -> dict[str, str]:
@@ -55,6 +49,7 @@ def _cmd(*args: object) -> list[str]:
 
 
 def main(n: int = 40, seed: int = 13) -> None:
+    sys.path.insert(0, str(REPO))  # the same roomcorr as the commands below
     env = dict(os.environ, PYTHONPATH=str(REPO), OMP_NUM_THREADS="1", OPENBLAS_NUM_THREADS="1")
     rng = random.Random(seed)
     with tempfile.TemporaryDirectory(prefix="roomcorr-soak-") as tmp:

@@ -211,6 +211,32 @@ def _folder_entries(out: Path) -> list[str]:
     return sorted(found)
 
 
+def design_differences(out_dir: str | Path) -> list[str]:
+    """How a design folder differs from its manifest (empty when it is whole).
+
+    Lists, as ``"<path>: <what>"``, every listed file that is missing or whose
+    SHA-256 differs, and every file present that the manifest does not list.
+
+    Raises
+    ------
+    OutputError
+        For a missing or damaged manifest.
+    """
+    out = Path(out_dir)
+    listed = {e["path"]: e.get("sha256") for e in read_manifest(out)["files"]}
+    problems = []
+    for rel, digest in listed.items():
+        p = out / rel
+        if not p.is_file():
+            problems.append(f"{rel}: missing")
+        elif digest and sha256_of(p) != digest:
+            problems.append(f"{rel}: SHA-256 differs")
+    for rel in _folder_entries(out):
+        if rel != MANIFEST and rel not in listed and not Path(rel).name.startswith(TMP_PREFIX):
+            problems.append(f"{rel}: not listed")
+    return problems
+
+
 def check_folder_target(out: Path, label: str) -> None:
     """Refuse a link, a file, or a folder whose parent does not exist as an output folder
     (``label`` names it in the message); first tidy what an interrupted run left beside it."""

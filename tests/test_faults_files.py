@@ -794,3 +794,19 @@ def test_raw_recordings_are_checked_by_size(work, capsys):
         entry["status"] == "damaged"
         and "raw/pos1_out1.wav: size changed" in (entry["figures"]["problem"])
     )
+
+
+def test_design_differences_names_what_changed(work):
+    from roomcorr.export import design_differences
+
+    d = work / "d"
+    assert design_differences(d) == [] and design_is_whole(d)
+    _wav_with_inf(d / "fir" / "48000" / "left.wav")
+    (d / "extra.txt").write_text("x")
+    (d / "design.npz").unlink()
+    assert sorted(design_differences(d)) == [
+        "design.npz: missing",
+        "extra.txt: not listed",
+        "fir/48000/left.wav: SHA-256 differs",
+    ]
+    assert not design_is_whole(d)  # the test's own check (hashlib) agrees
