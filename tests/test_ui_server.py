@@ -264,3 +264,20 @@ def test_browser_shows_history_and_draws_a_design(demo_room, tmp_path):
     background = np.median(img.reshape(-1, 3), axis=0)
     differs = np.any(np.abs(img - background) > 0.1, axis=-1)
     assert differs.mean() > 0.03 and img.std() > 0.03  # not blank
+
+
+def test_a_damaged_run_is_reported_not_served(client, demo_room):
+    # Verification on read (complete.json's SHA-256): a changed filter file is refused.
+    run_id = _design_id(demo_room)
+    wav = next((demo_room.designs_dir / run_id / "fir" / "48000").glob("*.wav"))
+    original = wav.read_bytes()
+    try:
+        wav.write_bytes(original[:-4] + b"\x00\x00\x80\x7f")  # last sample +inf
+        rel = wav.relative_to(demo_room.designs_dir / run_id).as_posix()
+        r = client.get(f"/api/file/design/{run_id}/{rel}", headers=_auth())
+        assert r.status_code in (400, 404) and "damaged" in r.json()["error"]
+        room = client.get("/api/room", headers=_auth()).json()
+        status = {x["run_id"]: x["status"] for x in room["runs"]}
+        assert status[run_id] == "damaged"
+    finally:
+        wav.write_bytes(original)

@@ -90,6 +90,7 @@ def design_view(room: rooms.Room, run_id: str) -> dict[str, Any]:
     from roomcorr.design.fir import fir_response_db
 
     folder = _run(room, "design", run_id)
+    rooms.verified(room, folder, use=[folder / "design.npz", folder / "manifest.json"])
     curves = load_design_curves(folder)
     freq = np.asarray(curves["freq_hz"], dtype=float)
     keep = _thin(freq)
@@ -155,6 +156,7 @@ def measurement_view(room: rooms.Room, run_id: str) -> dict[str, Any]:
     """
     folder = _run(room, "measurement", run_id)
     files = rooms.measurement_files(folder)
+    rooms.verified(room, folder, use=files)
     irs, fs, _ = read_ir_set([str(p) for p in files])
     freq = log_grid()
     measured, arrival = analyse_positions(irs, fs, freq)
@@ -179,6 +181,7 @@ def measurement_view(room: rooms.Room, run_id: str) -> dict[str, Any]:
 def run_files(room: rooms.Room, run_id: str) -> list[dict[str, Any]]:
     """The files a design run wrote, as its manifest lists them (path, kind, SHA-256...)."""
     folder = _run(room, "design", run_id)
+    rooms.verified(room, folder, use=[folder / "manifest.json"])
     entries = []
     for e in read_manifest(folder).get("files", []):
         if isinstance(e, dict) and isinstance(e.get("path"), str):
@@ -202,6 +205,7 @@ def run_file(room: rooms.Room, kind: str, run_id: str, rel_path: str) -> Path:
     path = (folder / rel).resolve()
     if folder not in path.parents or not path.is_file():
         raise InputFileError(f"{rel_path}: not a file of run {run_id}")
+    rooms.verified(room, folder, use=[path])
     return path
 
 
