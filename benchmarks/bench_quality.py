@@ -53,7 +53,7 @@ def _means(scores: list[RoomScore]) -> list[str]:
         return float(np.mean([s.ratio(fig, seats) for s in scores]))
 
     return [
-        "MEAN",
+        "MEAN/worst",
         f"{m('ripple_db', 'measured'):.2f}",
         f"{m('ripple_db', 'held_out'):.2f}",
         f"{max(s.worst_seat_ratio('ripple_db', 'held_out') for s in scores):.2f}",
@@ -85,16 +85,17 @@ def main(argv: list[str]) -> None:
         room = evaluation_room(name)
         s = score_roomcorr(room)
         ours.append(s)
-        print(
-            f"{name}: band {s.info['band_hz']}",
-            {k: v for k, v in s.info.items() if k not in ("band_hz",)},
-            file=sys.stderr,
-        )
+        bands = ", ".join(f"{lo:.0f}-{hi:.0f} Hz" for lo, hi in s.info["band_hz"])
+        lows = ", ".join(f"{hz:.0f} Hz ({how})" for hz, how in s.info.get("speaker_low", []))
+        pred = ", ".join(f"{a:.1f} -> {b:.1f} dB" for a, b in s.info.get("prediction", []))
+        print(f"{name}: band {bands}; bass limit {lows}; bass variation {pred}", file=sys.stderr)
         if "--no-naive" not in argv:
             naive.append(score_filters(room, naive_inversion_firs(room)))
     print(
         "Ratios corrected/uncorrected (rip = ripple, peak), broadband change in dB "
-        "(largest over channels), bass drive dB, pre-ringing dB re peak, peak gain dB."
+        "(largest over channels), bass drive dB, pre-ringing dB re peak, peak gain dB. "
+        "Last row: mean over rooms of the ratios; largest over rooms for rip.worst, bb, "
+        "drive, pre-ring and peak gain."
     )
     print(
         "Goals: rip.meas <= 0.60, rip.held <= 0.78 (none > 0.85, worst seat <= 1.05), "

@@ -69,6 +69,10 @@ class DesignSettings:
         Biquad output and the ranges its sections may use.
     temperature_c : float
         Air temperature, for the speed of sound.
+    speaker_low_hz : float or None
+        The loudspeakers' own low-frequency limit (e.g. their -3 dB corner);
+        below it the filters never raise the drive. ``None`` puts the limit
+        at the measured roll-off or an assumed 80 Hz, whichever is higher.
     """
 
     target: str = "flat"
@@ -88,6 +92,7 @@ class DesignSettings:
     iir_gain_range_db: tuple[float, float] = (-15.0, 4.0)
     iir_q_range: tuple[float, float] = (0.3, 12.0)
     temperature_c: float = 20.0
+    speaker_low_hz: float | None = None
 
 
 @dataclass
@@ -143,7 +148,7 @@ def _as_float(key: str, value: Any) -> float:
 
 def _coerce(key: str, value: Any) -> Any:
     default = getattr(DesignSettings(), key)
-    if key in ("band_lo_hz", "band_hi_hz"):
+    if key in ("band_lo_hz", "band_hi_hz", "speaker_low_hz"):
         return None if value in (None, "auto") else _as_float(key, value)
     if key in ("calibration",):
         return None if value in (None, "") else str(value)
@@ -195,7 +200,7 @@ def validate_design(d: DesignSettings) -> DesignSettings:
         raise SettingsError(
             f"design.max_cut_db = {d.max_cut_db:g}: must lie between 0 and {CUT_LIMIT_DB:g} dB"
         )
-    for key in ("band_lo_hz", "band_hi_hz"):
+    for key in ("band_lo_hz", "band_hi_hz", "speaker_low_hz"):
         v = getattr(d, key)
         if v is not None and not 10.0 <= v <= 24000.0:
             raise SettingsError(f"design.{key} = {v:g}: must lie between 10 Hz and 24 kHz")

@@ -140,10 +140,12 @@ def score_roomcorr(room: EvaluationRoom, settings: Settings | None = None) -> Ro
     settings = settings or Settings()
     result = design_like_cli(room, settings)
     info = {"band_hz": [ch.band_hz for ch in result.channels], "pre_gain_db": result.pre_gain_db}
-    for key in ("speaker_low", "prediction"):
-        vals = [getattr(ch, key, None) for ch in result.channels]
-        if any(v is not None for v in vals):
-            info[key] = vals
+    if all(getattr(ch, "speaker_low_hz", None) is not None for ch in result.channels):
+        info["speaker_low"] = [(ch.speaker_low_hz, ch.speaker_low_how) for ch in result.channels]
+    if all(getattr(ch, "prediction", None) is not None for ch in result.channels):
+        info["prediction"] = [
+            (ch.prediction.uncorrected_db, ch.prediction.predicted_db) for ch in result.channels
+        ]
     return score_filters(room, result.firs[SCORE_FS], info)
 
 
