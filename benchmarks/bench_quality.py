@@ -87,7 +87,12 @@ def main(argv: list[str]) -> None:
         ours.append(s)
         bands = ", ".join(f"{lo:.0f}-{hi:.0f} Hz" for lo, hi in s.info["band_hz"])
         lows = ", ".join(f"{hz:.0f} Hz ({how})" for hz, how in s.info.get("speaker_low", []))
-        pred = ", ".join(f"{a:.1f} -> {b:.1f} dB" for a, b in s.info.get("prediction", []))
+        pred = ", ".join(
+            f"predicted {a:.1f} -> {b:.1f} dB, held-out seats {c:.1f} -> {d:.1f} dB"
+            for (a, b), (c, d) in zip(
+                s.info.get("prediction", []), s.info.get("held_out_variation", []), strict=True
+            )
+        )
         print(f"{name}: band {bands}; bass limit {lows}; bass variation {pred}", file=sys.stderr)
         if "--no-naive" not in argv:
             naive.append(score_filters(room, naive_inversion_firs(room)))

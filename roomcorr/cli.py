@@ -57,6 +57,13 @@ def _add_design_options(p: argparse.ArgumentParser) -> None:
     g.add_argument("--band-lo", type=float, metavar="HZ", help="lowest corrected frequency")
     g.add_argument("--band-hi", type=float, metavar="HZ", help="highest corrected frequency")
     g.add_argument("--max-boost", type=float, metavar="DB", help="boost cap (default 4 dB)")
+    g.add_argument(
+        "--speaker-low-hz",
+        type=float,
+        metavar="HZ",
+        help="your loudspeakers' own low limit (e.g. their -3 dB corner): the filters never "
+        "raise the bass below it (default: the measured roll-off or 80 Hz, the higher)",
+    )
     g.add_argument("--max-cut", type=float, metavar="DB", help="cut cap (default 15 dB)")
     g.add_argument(
         "--taps", type=int, metavar="N", help="FIR taps at 48 kHz (other rates: same duration)"
@@ -80,6 +87,7 @@ _OPTION_KEYS = {
     "band_lo": "band_lo_hz",
     "band_hi": "band_hi_hz",
     "max_boost": "max_boost_db",
+    "speaker_low_hz": "speaker_low_hz",
     "max_cut": "max_cut_db",
     "taps": "taps",
     "rates": "sample_rates",

@@ -24,6 +24,7 @@ import numpy as np
 
 from roomcorr.atomic import atomic_write_text, atomic_write_with
 from roomcorr.audio_io import write_wav
+from roomcorr.design.area import area_arrays_of, area_fields_of
 from roomcorr.errors import OutputError
 from roomcorr.settings import settings_to_dict
 
@@ -103,6 +104,7 @@ def _curves_dict(result: DesignResult) -> dict[str, np.ndarray]:
         ):
             data[f"ch{c.index}_{key}"] = getattr(c, key)
         data[f"ch{c.index}_band_hz"] = np.array(c.band_hz)
+        data.update({f"ch{c.index}_{k}": v for k, v in area_arrays_of(c).items()})
     for fs, h in result.firs.items():
         data[f"fir_{fs}"] = h
     return data
@@ -218,7 +220,7 @@ def write_design(
             "generator": "roomcorr",
             "pre_gain_db": round(result.pre_gain_db, 3),
             "channels": [
-                {"index": c.index, "name": c.name, "band_hz": list(c.band_hz)}
+                {"index": c.index, "name": c.name, "band_hz": list(c.band_hz), **area_fields_of(c)}
                 for c in result.channels
             ],
             "files": entries,

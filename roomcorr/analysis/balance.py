@@ -1,23 +1,21 @@
 """Broad balance from the steady state, fine detail from the frequency-dependent window.
 
 The frequency-dependent window (:mod:`roomcorr.analysis.window`) keeps 15
-cycles of each frequency: hundreds of milliseconds in the bass, a few
-milliseconds in the treble. In the bass that is the room's steady state; in
-the midrange and treble it keeps the direct sound and early reflections and
-leaves out more and more of the reverberant field as the frequency rises.
-The windowed response therefore falls, relative to what a listener hears in
-the room, by several dB across the midrange (about 4 dB from 300 Hz to 2 kHz
-in a damped room, 8 dB in a live one), a bend that is not in the room: a
-correction designed on it lifts the treble and leaves a hump where the
-window shortens.
+cycles of each frequency: hundreds of milliseconds in the low bass, tens of
+milliseconds at a few hundred hertz, a few milliseconds in the treble. The
+shorter the window, the more of the reverberant field it leaves out, so the
+windowed response falls, relative to what a listener hears in the room (the
+steady state), by several dB from the bass to the treble, more in a live
+room (on the evaluation rooms of :mod:`roomcorr.evaluation`: about 4 dB
+from 300 Hz to 2 kHz in a damped room, 8 dB in a live one). That bend is not
+in the room; a correction designed on it lifts the treble and leaves a hump
+where the window shortens.
 
 :func:`steady_balance_db` keeps the windowed response's detail (everything
-narrower than :data:`BALANCE_OCT`) and replaces the shape of its broad trend
-above the modal range by that of a long, fixed window (:data:`LONG_WINDOW_S`),
-anchored at :data:`BLEND_FROM_HZ` and blended in over the octave above it.
-Below, the windowed response is kept as it is: its windows are long there,
-and the bass keeps the relation to the low midrange it has in the
-windowed view.
+narrower than :data:`BALANCE_OCT`, where the window does its job of
+suppressing position-specific late interference) and replaces its broad
+trend by that of a long, fixed window (:data:`LONG_WINDOW_S`), i.e. the
+steady state.
 """
 
 from __future__ import annotations
@@ -32,21 +30,18 @@ from roomcorr.grid import points_per_octave_of
 LONG_WINDOW_S = 0.5
 #: Width of the broad trend that is exchanged, octaves.
 BALANCE_OCT = 1.0
-#: The steady-state trend is blended in over the octave above this frequency, Hz.
-BLEND_FROM_HZ = 300.0
 
 
 def _trend_db(freq_hz: np.ndarray, level_db: np.ndarray) -> np.ndarray:
     ppo = points_per_octave_of(freq_hz)
-    return 10 * np.log10(
-        np.maximum(smooth_log_grid(10 ** (level_db / 10), ppo, BALANCE_OCT), 1e-30)
-    )
+    power = smooth_log_grid(10 ** (level_db / 10), ppo, BALANCE_OCT)
+    return 10 * np.log10(np.maximum(power, 1e-30))
 
 
 def steady_balance_db(
     ir: np.ndarray, fs: int, onset: float, freq_hz: np.ndarray, windowed_db: np.ndarray
 ) -> np.ndarray:
-    """Windowed level with its broad trend taken from the steady state above the modal range.
+    """Windowed level with its broad trend taken from the steady state.
 
     Parameters
     ----------
@@ -62,18 +57,13 @@ def steady_balance_db(
     Returns
     -------
     level_db : ndarray, shape (n_freqs,)
+        ``windowed_db`` minus its 1-octave power trend plus the 1-octave
+        power trend of the :data:`LONG_WINDOW_S` window.
     """
     f = np.asarray(freq_hz, dtype=float)
     long_power = fdw_power(ir, fs, onset, f, min_s=LONG_WINDOW_S, max_s=LONG_WINDOW_S)
     long_db = 10 * np.log10(np.maximum(long_power, 1e-30))
-    shift = _trend_db(f, long_db) - _trend_db(f, windowed_db)
-    # Anchored where the blend starts: the bass keeps its relation to the
-    # low midrange as the windowed response has it; only the bend above
-    # changes.
-    shift = shift - float(np.interp(np.log2(BLEND_FROM_HZ), np.log2(f), shift))
-    t = np.clip(np.log2(np.maximum(f, 1e-9) / BLEND_FROM_HZ), 0.0, 1.0)
-    weight = 0.5 - 0.5 * np.cos(np.pi * t)
-    return windowed_db + weight * shift
+    return windowed_db + _trend_db(f, long_db) - _trend_db(f, windowed_db)
 
 
 def steady_balance_set(

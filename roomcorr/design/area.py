@@ -59,7 +59,7 @@ import numpy as np
 from roomcorr.analysis.average import power_average
 from roomcorr.analysis.smoothing import smooth_log_grid
 from roomcorr.design.correction import correction_curve
-from roomcorr.design.target import REFERENCE_BAND_HZ, auto_band, band_fade
+from roomcorr.design.target import REFERENCE_BAND_HZ, ROLLOFF_DB, band_fade
 from roomcorr.errors import SettingsError
 from roomcorr.grid import points_per_octave_of
 
@@ -250,6 +250,25 @@ def low_edge(freq_hz: np.ndarray, wide_db: np.ndarray, limits_hz: tuple[float, f
     return max(lo, float(limits_hz[0]))
 
 
+def measured_rolloff_hz(freq_hz: np.ndarray, wide_db: np.ndarray) -> float | None:
+    """The in-room roll-off, if the response shows one: ``None`` otherwise.
+
+    The highest frequency below the midrange at which the 1-octave response
+    lies :data:`~roomcorr.design.target.ROLLOFF_DB` below its midrange median
+    and stays below that over the whole octave beneath it. A loudspeaker's
+    high-pass keeps falling once it has fallen; a boundary cancellation
+    recovers within an octave and is not taken for a roll-off.
+    """
+    f = np.asarray(freq_hz)
+    mid = (f >= REFERENCE_BAND_HZ[0]) & (f <= REFERENCE_BAND_HZ[1])
+    low = wide_db < float(np.median(wide_db[mid])) - ROLLOFF_DB
+    for i in np.flatnonzero((f < REFERENCE_BAND_HZ[0]) & low)[::-1]:
+        octave_below = (f >= f[i] / 2) & (f <= f[i])
+        if f[i] / 2 >= f[0] and np.all(low[octave_below]):
+            return float(f[i])
+    return None
+
+
 def speaker_low_limit(
     freq_hz: np.ndarray, wide_db: np.ndarray, stated_hz: float | None
 ) -> tuple[float, str]:
@@ -258,14 +277,15 @@ def speaker_low_limit(
     Returns
     -------
     (limit_hz, how)
-        ``how`` is ``"stated"``, ``"measured"`` (the in-room -6 dB roll-off,
-        when it lies above the assumed limit) or ``"assumed"``.
+        ``how`` is ``"stated"``, ``"measured"`` (the in-room roll-off of
+        :func:`measured_rolloff_hz`, when it lies above the assumed limit) or
+        ``"assumed"`` (:data:`ASSUMED_SPEAKER_LOW_HZ`).
     """
     if stated_hz is not None:
         return float(stated_hz), "stated"
-    measured_lo, _ = auto_band(freq_hz, wide_db)
-    if measured_lo > ASSUMED_SPEAKER_LOW_HZ:
-        return float(measured_lo), "measured"
+    measured = measured_rolloff_hz(freq_hz, wide_db)
+    if measured is not None and measured > ASSUMED_SPEAKER_LOW_HZ:
+        return measured, "measured"
     return ASSUMED_SPEAKER_LOW_HZ, "assumed"
 
 
@@ -427,8 +447,15 @@ def _strength_curve(freq_hz: np.ndarray, regions, strengths) -> np.ndarray:
     return np.interp(np.log2(freq_hz), np.log2(centres), np.asarray(strengths, dtype=float))
 
 
-def _variation_db(level_db: np.ndarray, mask: np.ndarray) -> np.ndarray:
-    x = level_db[..., mask]
+def _variation_db(freq_hz: np.ndarray, level_db: np.ndarray, mask: np.ndarray) -> np.ndarray:
+    """RMS deviation from the own mean inside ``mask`` of the 1/6-octave level.
+
+    1/6 octave, as listeners and the quality benchmark judge the bass
+    (:mod:`roomcorr.evaluation.metrics`), not the design's finer smoothing.
+    """
+    ppo = points_per_octave_of(freq_hz)
+    x = 10 * np.log10(np.maximum(smooth_log_grid(10 ** (level_db / 10), ppo, 1 / 6), 1e-30))
+    x = x[..., mask]
     return np.sqrt(np.mean((x - x.mean(axis=-1, keepdims=True)) ** 2, axis=-1))
 
 
@@ -489,8 +516,8 @@ def cross_validate(
     judge = (f >= lo_eval) & (f <= MODAL_TOP_HZ)
     if np.count_nonzero(judge) < 8:
         judge = (f >= band_hz[0]) & (f <= max(MODAL_TOP_HZ, 2 * band_hz[0]))
-    before = _variation_db(measured_db, judge)
-    after = _variation_db(measured_db + strength * loo, judge)
+    before = _variation_db(f, measured_db, judge)
+    after = _variation_db(f, measured_db + strength * loo, judge)
     flagged = flag_cancellations(f, measured_db, others_avg, (band_hz[0], MODAL_TOP_HZ))
     pred = Prediction(
         band_hz=(float(lo_eval), float(MODAL_TOP_HZ)),
@@ -647,3 +674,55 @@ def design_channel(
         speaker_low_how=how,
         prediction=pred,
     )
+
+
+def channel_area_fields(
+    speaker_low_hz: float | None, speaker_low_how: str | None, prediction: Prediction | None
+) -> dict:
+    """What the listening-area design found, as JSON-friendly fields (manifest, curves file).
+
+    Returns
+    -------
+    dict
+        ``speaker_low_hz``, ``speaker_low_found_by`` (``stated``, ``measured``,
+        ``assumed``), and when a prediction exists ``cv_band_hz``,
+        ``cv_uncorrected_db``, ``cv_predicted_db`` (bass variation now and
+        predicted at unmeasured seats, dB), ``cv_positions`` and
+        ``cv_flagged`` (``[position, freq_hz, depth_db]`` rows, position 0-based).
+    """
+    out: dict = {}
+    if speaker_low_hz is not None:
+        out["speaker_low_hz"] = round(float(speaker_low_hz), 2)
+        out["speaker_low_found_by"] = str(speaker_low_how)
+    if prediction is not None:
+        out["cv_band_hz"] = [round(float(x), 2) for x in prediction.band_hz]
+        out["cv_uncorrected_db"] = round(prediction.uncorrected_db, 2)
+        out["cv_predicted_db"] = round(prediction.predicted_db, 2)
+        out["cv_positions"] = len(prediction.per_position_db)
+        out["cv_flagged"] = [
+            [int(g["position"]), round(g["freq_hz"], 1), round(g["depth_db"], 1)]
+            for g in prediction.flagged
+        ]
+    return out
+
+
+def area_fields_of(channel: object) -> dict:
+    """:func:`channel_area_fields` of a :class:`roomcorr.pipeline.ChannelDesign` (or ``{}``)."""
+    return channel_area_fields(
+        getattr(channel, "speaker_low_hz", None),
+        getattr(channel, "speaker_low_how", None),
+        getattr(channel, "prediction", None),
+    )
+
+
+def area_arrays_of(channel: object) -> dict[str, np.ndarray]:
+    """:func:`area_fields_of` as arrays for the curves file (no pickling needed)."""
+    out = {}
+    for key, value in area_fields_of(channel).items():
+        if key == "speaker_low_found_by":
+            out[key] = np.asarray(value, dtype=str)
+        elif key == "cv_flagged":
+            out[key] = np.asarray(value, dtype=float).reshape(-1, 3)
+        else:
+            out[key] = np.asarray(value, dtype=float)
+    return out

@@ -146,6 +146,22 @@ def score_roomcorr(room: EvaluationRoom, settings: Settings | None = None) -> Ro
         info["prediction"] = [
             (ch.prediction.uncorrected_db, ch.prediction.predicted_db) for ch in result.channels
         ]
+        # What actually happens at the held-out seats over the prediction's band.
+        freq = log_grid()
+        firs = result.firs[SCORE_FS]
+        actual = []
+        for ch in result.channels:
+            lo, hi = ch.prediction.band_hz
+            m = (freq >= lo) & (freq <= hi)
+            irs = room.held_out[:, ch.index]
+            vals = []
+            for h in (None, firs[ch.index]):
+                x = steady_state_db(irs, room.fs, freq, 1 / 6, h)[:, m]
+                vals.append(
+                    float(np.mean(np.sqrt(np.mean((x - x.mean(1, keepdims=True)) ** 2, 1))))
+                )
+            actual.append(tuple(vals))
+        info["held_out_variation"] = actual
     return score_filters(room, result.firs[SCORE_FS], info)
 
 
