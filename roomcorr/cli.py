@@ -120,6 +120,15 @@ def settings_from_args(args: argparse.Namespace, base: Any = None) -> Any:
     return settings
 
 
+def _print_area_lines(ch: Any) -> None:
+    """Bass limit and the leave-one-position-out prediction of one channel (design/area.py)."""
+    from roomcorr.design.area import area_fields_of
+    from roomcorr.report.summary import area_sentences
+
+    for line in area_sentences(area_fields_of(ch), ch.name):
+        print(f"          {line.split(': ', 1)[1]}")
+
+
 def _print_design_summary(result: Any, out: Path, entries: list[dict]) -> None:
     import numpy as np
 
@@ -138,6 +147,7 @@ def _print_design_summary(result: Any, out: Path, entries: list[dict]) -> None:
             f"  {ch.name:>6}: band {lo:6.0f} Hz - {hi:6.0f} Hz | largest boost {boost:4.1f} dB, "
             f"largest cut {cut:5.1f} dB | peak gain {peak:+.2f} dB, worst-case gain {worst:+.2f} dB"
         )
+        _print_area_lines(ch)
         if withheld.size and withheld.max() > 1.0:
             i = int(np.argmax(withheld))
             f0 = result.freq_hz[inband][i]

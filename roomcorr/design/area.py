@@ -657,6 +657,12 @@ def design_channel(
     # The rules above (caps, allowances, agreement) leave corners a filter of
     # the default length cannot follow; a light smoothing rounds them.
     smoothed = smooth_log_grid(corr * strength, points_per_octave_of(f), FINAL_SMOOTH_OCT)
+    # ... but never so that it lifts a dip the boost rules refused (deep, or
+    # where the positions disagree): there the curve stays at or below 0 dB.
+    refused = correction_curve(f, avg, spread, avg, band, max_boost_db, max_cut_db)
+    inside = (f >= band[0]) & (f <= band[1])
+    no_boost = inside & (refused.boost_allowance <= 0.0)
+    smoothed[no_boost] = np.minimum(smoothed[no_boost], 0.0)
     final = apply_bass_limit(f, smoothed, limit_hz)
     withheld = withheld + np.maximum(corr - final, 0.0)
     final = np.clip(final, -max_cut_db, max_boost_db)
@@ -688,7 +694,8 @@ def channel_area_fields(
         ``assumed``), and when a prediction exists ``cv_band_hz``,
         ``cv_uncorrected_db``, ``cv_predicted_db`` (bass variation now and
         predicted at unmeasured seats, dB), ``cv_positions`` and
-        ``cv_flagged`` (``[position, freq_hz, depth_db]`` rows, position 0-based).
+        ``cv_flagged`` (``[position, freq_hz, depth_db]`` rows; positions
+        counted from 1, in the order of the measurement files).
     """
     out: dict = {}
     if speaker_low_hz is not None:
@@ -700,7 +707,7 @@ def channel_area_fields(
         out["cv_predicted_db"] = round(prediction.predicted_db, 2)
         out["cv_positions"] = len(prediction.per_position_db)
         out["cv_flagged"] = [
-            [int(g["position"]), round(g["freq_hz"], 1), round(g["depth_db"], 1)]
+            [int(g["position"]) + 1, round(g["freq_hz"], 1), round(g["depth_db"], 1)]
             for g in prediction.flagged
         ]
     return out

@@ -286,7 +286,7 @@ def area_sentences(ch: dict[str, Any], name: str) -> list[str]:
         flagged = np.asarray(ch.get("cv_flagged", np.zeros((0, 3))), dtype=float).reshape(-1, 3)
         for pos, freq, depth in flagged:
             out.append(
-                f"{name}: position {int(pos) + 1} sits in a cancellation near {fmt_hz(freq)} "
+                f"{name}: position {int(pos)} sits in a cancellation near {fmt_hz(freq)} "
                 f"({depth:.0f} dB below the other positions); the correction does not follow it."
             )
     return out
