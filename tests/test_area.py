@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import numpy as np
+import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
@@ -223,3 +224,27 @@ def test_caps_bass_limit_and_dip_refusal_hold_for_any_input(seed, depth, boost, 
     lo, hi = plan.band_hz
     deep = (env - avg >= DIP_REFUSE_DB) & (F >= lo) & (F <= hi)
     assert np.all(c[deep] <= 1e-9)
+
+
+def test_prediction_reaches_summary_manifest_and_curves_file(tmp_path):
+    import json
+
+    from conftest import REPO
+
+    from roomcorr.audio_io import read_ir_set
+    from roomcorr.export import load_design_curves, write_design
+    from roomcorr.pipeline import run_design
+    from roomcorr.report.summary import summary_sentences
+    from roomcorr.settings import Settings, design_from_dict
+
+    irs, fs, _ = read_ir_set([REPO / "measurements_demo"])
+    result = run_design(irs, fs, Settings(design_from_dict({"sample_rates": [48000]})))
+    write_design(result, tmp_path / "out")
+    manifest = json.loads((tmp_path / "out" / "manifest.json").read_text())
+    for ch, entry in zip(result.channels, manifest["channels"], strict=True):
+        assert entry["speaker_low_hz"] == pytest.approx(ch.speaker_low_hz, abs=0.01)
+        assert entry["speaker_low_found_by"] in ("stated", "measured", "assumed")
+        assert entry["cv_predicted_db"] == pytest.approx(ch.prediction.predicted_db, abs=0.01)
+    text = " ".join(summary_sentences(load_design_curves(tmp_path / "out"), 4.0))
+    assert "at seats you did not measure, expect the bass" in text
+    assert "never raises the bass above its midrange level" in text
