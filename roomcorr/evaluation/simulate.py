@@ -49,6 +49,7 @@ from roomcorr.demo import (
     _mode_grid,
     _speaker_response,
     _wall_shelf,
+    early_spectrum,
     sabine_t60_s,
 )
 
@@ -170,11 +171,7 @@ def simulate_room(scenario: dict[str, Any], fs: int = EVAL_FS) -> EvaluationRoom
         images = _image_sources(src, dims)
         speaker = _speaker_response(freq_hz, spk)
         for m, mic in enumerate(mics):
-            early = np.zeros(freq_hz.size, dtype=complex)
-            for img, counts in images:
-                r = float(np.linalg.norm(img - mic))
-                gain = float(np.prod(beta ** np.asarray(counts))) / (4.0 * np.pi * r)
-                early += gain * wall ** sum(counts) * np.exp(-2j * np.pi * freq_hz * r / c)
+            early = early_spectrum(freq_hz, images, mic, beta, wall, c)
             t0 = float(np.linalg.norm(src - mic)) / c
             fade = np.sin(0.5 * np.pi * np.clip((t - t0 - 0.002) / 0.020, 0.0, 1.0)) ** 2
             tail = rng.standard_normal(n_samples) * tail_sigma * fade
