@@ -429,11 +429,18 @@ def broad_above_modal(freq_hz: np.ndarray, correction_db: np.ndarray) -> np.ndar
 
 
 def _regions(freq_hz: np.ndarray, band_hz: tuple[float, float]) -> list[tuple[float, float]]:
+    """Half-octave regions from the band's low edge to 300 Hz, and one region above.
+
+    A last modal region narrower than half :data:`REGION_OCT` joins the one
+    before it (a sliver of a few grid points would be judged on noise).
+    """
     lo, hi = band_hz
     edges = [lo]
     top = min(MODAL_TOP_HZ, hi)
     while edges[-1] * 2**REGION_OCT < top:
         edges.append(edges[-1] * 2**REGION_OCT)
+    if len(edges) > 1 and np.log2(top / edges[-1]) < REGION_OCT / 2:
+        edges.pop()
     edges.append(top)
     regions = list(zip(edges[:-1], edges[1:], strict=True))
     if hi > top:
@@ -505,6 +512,9 @@ def cross_validate(
     strengths = []
     for a, b in regions:
         m = (f >= a) & (f < b)
+        if not np.any(m):
+            strengths.append(1.0)
+            continue
         errs = [
             float(np.mean(np.sqrt(np.mean((aligned[:, m] + s * loo[:, m] - target_db[m]) ** 2, 1))))
             for s in STRENGTHS
