@@ -16,10 +16,12 @@ than a long image-source simulation because
   instead of being committed as WAV files;
 * it needs no package beyond numpy.
 
-Two additions over the demo: a room may include the zero-order
-(pressure-chamber) mode with a leak frequency (``leak_hz``), which lifts the
-response below the lowest axial mode as a closed, small room does; and each
-room has its own damping (Sabine from the wall absorption).
+Three changes from the demo: the modal and image-source parts are joined by
+a power-complementary crossover (:func:`power_complementary`), so the
+average level does not dip by 3 dB around the crossover; a room may include
+the zero-order (pressure-chamber) mode with a leak frequency (``leak_hz``),
+which lifts the response below the lowest axial mode as a closed, small room
+does; and each room has its own damping (Sabine from the wall absorption).
 
 Deterministic: the diffuse tails and the measurement noise are seeded from
 the room's name.
@@ -44,7 +46,6 @@ import numpy as np
 
 from roomcorr.demo import (
     _image_sources,
-    _linkwitz_riley4,
     _modal_response,
     _mode_grid,
     _speaker_response,
@@ -109,6 +110,24 @@ def scenario_names() -> list[str]:
     return [s["name"] for s in load_scenarios()]
 
 
+def power_complementary(freq_hz: np.ndarray, fc_hz: float) -> tuple[np.ndarray, np.ndarray]:
+    """Zero-phase crossover whose two halves' powers sum to one.
+
+    The modal part and the image-source part are different, mutually
+    incoherent estimates of the same field, so they must be joined so that
+    their powers add to the field's: a crossover whose amplitudes sum to one
+    (such as the Linkwitz-Riley pair of the demo room) loses 3 dB on average
+    at the crossover frequency. Slopes of a 4th-order Butterworth power
+    response, ``|L|^2 = 1 / (1 + (f/fc)^8)``, ``|H|^2 = 1 - |L|^2``.
+
+    Returns
+    -------
+    lp, hp : ndarray, shape (n_freqs,), real
+    """
+    lp2 = 1.0 / (1.0 + (np.asarray(freq_hz, dtype=float) / fc_hz) ** 8)
+    return np.sqrt(lp2), np.sqrt(1.0 - lp2)
+
+
 def _ir_length_s(t60_s: float) -> float:
     # Long enough for the modal decay to fall 90 dB (1.5 T60), so the sampled
     # spectrum does not alias in time; at least 0.75 s.
@@ -154,7 +173,7 @@ def simulate_room(scenario: dict[str, Any], fs: int = EVAL_FS) -> EvaluationRoom
         # The pressure-chamber (0, 0, 0) mode, at the leak frequency.
         labels = np.vstack([np.zeros((1, 3), dtype=labels.dtype), labels])
         mode_hz = np.concatenate([[float(scenario["leak_hz"])], mode_hz])
-    lp, hp = _linkwitz_riley4(freq_hz, CROSSOVER_HZ)
+    lp, hp = power_complementary(freq_hz, CROSSOVER_HZ)
     wall = _wall_shelf(freq_hz)
     beta = np.sqrt(1.0 - alpha)
     pre = np.exp(-2j * np.pi * freq_hz * PRE_DELAY_S)
