@@ -24,6 +24,7 @@ import numpy as np
 
 from roomcorr.atomic import atomic_write_text, atomic_write_with
 from roomcorr.audio_io import write_wav
+from roomcorr.deliver.system import manifest_fields, system_curves, write_extra_formats
 from roomcorr.errors import OutputError
 from roomcorr.settings import settings_to_dict
 
@@ -105,6 +106,7 @@ def _curves_dict(result: DesignResult) -> dict[str, np.ndarray]:
         data[f"ch{c.index}_band_hz"] = np.array(c.band_hz)
     for fs, h in result.firs.items():
         data[f"fir_{fs}"] = h
+    data.update(system_curves(result))
     return data
 
 
@@ -138,6 +140,7 @@ def load_design_curves(out_dir: str | Path) -> dict[str, Any]:
         "irs": raw["irs"].astype(np.float64),
         "firs": firs,
         "channels": channels,
+        "system": {k[len("sys_") :]: v for k, v in raw.items() if k.startswith("sys_")},
     }
 
 
@@ -202,6 +205,7 @@ def write_design(
                         "sha256": sha256_of(path),
                     }
                 )
+        entries += write_extra_formats(result, out, written, sha256_of)
         curves_path = out / CURVES
         existed = curves_path.exists()
 
@@ -224,6 +228,7 @@ def write_design(
             "files": entries,
             "settings": settings_to_dict(result.settings),
         }
+        manifest.update(manifest_fields(result))
         if extra:
             manifest.update(extra)
         write_manifest(out, manifest)

@@ -1,0 +1,117 @@
+"""The several-loudspeaker part of a design folder: extra formats, routes, trims.
+
+Called from :func:`roomcorr.export.write_design` after the per-channel WAVs;
+adds files (extra formats) and manifest fields (``routes``, ``outputs``,
+``system``).
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+
+from roomcorr.deliver.formats import MULTI_NAME, filter_files
+from roomcorr.deliver.routes import build_routes, output_trims
+from roomcorr.errors import OutputError
+
+if TYPE_CHECKING:
+    from roomcorr.pipeline import DesignResult
+
+
+def write_extra_formats(
+    result: DesignResult, out: Path, written: list[Path], sha256_of: Any
+) -> list[dict[str, Any]]:
+    """Write the filters in the formats chosen besides the per-channel WAV.
+
+    Paths of files this call created are appended to ``written`` (so the
+    caller can remove them if a later step fails).
+
+    Returns
+    -------
+    list of dict
+        Manifest entries (``kind`` ``fir``, ``format``, ``sample_rate``,
+        channel or channel list, ``sha256``).
+    """
+    names = [c.name for c in result.channels]
+    formats = result.settings.design.formats
+    if "multiwav" in formats and MULTI_NAME in names:
+        raise OutputError(
+            f"--names: a channel called {MULTI_NAME!r} collides with the multichannel file; "
+            "rename it"
+        )
+    entries: list[dict[str, Any]] = []
+    for rel, fmt, fs, ch, write in filter_files(result.firs, names, formats):
+        path = out / rel
+        existed = path.exists()
+        write(path)
+        if not existed:
+            written.append(path)
+        entry: dict[str, Any] = {"path": rel, "kind": "fir", "format": fmt, "sample_rate": fs}
+        if ch is None:
+            entry["channels"] = names
+        else:
+            entry.update(channel=ch, channel_name=names[ch])
+        entry["taps"] = int(result.firs[fs].shape[1])
+        entry["sha256"] = sha256_of(path)
+        entries.append(entry)
+    return entries
+
+
+def system_summary(result: DesignResult) -> dict[str, Any]:
+    """The ``system`` manifest object: what alignment and integration chose."""
+    plan = result.system
+    if plan is None:
+        return {}
+    doc: dict[str, Any] = {
+        "aligned_in_filters": plan.baked,
+        "temperature_c": plan.temperature_c,
+        "speed_of_sound_m_s": round(plan.c_m_s, 2),
+        "level_bands_hz": [list(b) for b in plan.level_band_hz],
+        "sub_route_gain_db": round(plan.sub_route_gain_db, 3),
+    }
+    integ = plan.integration
+    if integ is not None:
+        doc["crossover"] = {
+            "type": "Linkwitz-Riley",
+            "frequency_hz": round(integ.crossover_hz, 2),
+            "slope_db_per_octave": integ.slope_db_oct,
+            "subwoofer_delay_ms": round(float(plan.delay_s[plan.sub_index]) * 1000.0, 4),
+            "subwoofer_polarity": integ.sub_polarity,
+            "summed_rms_deviation_db": round(integ.rms_dev_db, 2),
+            "summed_rms_deviation_no_delay_db": round(integ.baseline_rms_dev_db, 2),
+            "centre_seat_deepest_dip_db": round(integ.centre_dip_db, 2),
+            "candidates_searched": integ.n_candidates,
+        }
+    return doc
+
+
+def system_curves(result: DesignResult) -> dict[str, Any]:
+    """Arrays for ``design.npz`` (keys prefixed ``sys_``): summed responses around the crossover.
+
+    ``sys_freq_hz`` (n_freqs,), ``sys_summed_measured_db``,
+    ``sys_summed_baseline_db`` and ``sys_summed_after_db`` (n_mains,
+    n_positions, n_freqs), ``sys_crossover_hz``; empty without a subwoofer.
+    """
+    plan = result.system
+    if plan is None or plan.integration is None:
+        return {}
+    integ = plan.integration
+    return {
+        "sys_freq_hz": integ.freq_hz,
+        "sys_summed_measured_db": plan.summed_measured_db,
+        "sys_summed_baseline_db": integ.summed_baseline_db,
+        "sys_summed_after_db": integ.summed_after_db,
+        "sys_crossover_hz": np.array(integ.crossover_hz),
+    }
+
+
+def manifest_fields(result: DesignResult) -> dict[str, Any]:
+    """Manifest fields for routes, per-output trims and the system choices."""
+    names = [c.name for c in result.channels]
+    fields: dict[str, Any] = {"routes": build_routes(names, sorted(result.firs), result.system)}
+    if result.system is not None:
+        fields["outputs"] = output_trims(result.system)
+        fields["system"] = system_summary(result)
+    return fields
