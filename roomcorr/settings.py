@@ -185,7 +185,7 @@ def _coerce_system(key: str, value: Any) -> Any:
         if value in (None, "auto"):
             return None
         if not isinstance(value, bool):
-            raise SettingsError(f"design.align: expected true, false or \"auto\", got {value!r}")
+            raise SettingsError(f'design.align: expected true, false or "auto", got {value!r}')
         return value
     if key in ("channel_names", "formats"):
         if value is None and key == "channel_names":

@@ -30,8 +30,13 @@ SPLIT_HZ = 300.0
 PRE_DELAY_S = 0.005
 
 MAIN = {
-    "hp_hz": 50.0, "hp_q": (0.54, 1.31), "bump": (2300.0, 1.0, 1.4), "lp_hz": 17000.0,
-    "tilt_hz": (200.0, 6000.0), "tilt_db": -1.5, "gain_db": 0.0,
+    "hp_hz": 50.0,
+    "hp_q": (0.54, 1.31),
+    "bump": (2300.0, 1.0, 1.4),
+    "lp_hz": 17000.0,
+    "tilt_hz": (200.0, 6000.0),
+    "tilt_db": -1.5,
+    "gain_db": 0.0,
 }
 
 
@@ -112,7 +117,12 @@ def direct_delays_s(room: Room) -> np.ndarray:
 def seats(centre: tuple[float, float, float], n: int, spacing_m: float = 0.3) -> list:
     """``n`` microphone positions around a seat: centre first, then a cross."""
     x, y, z = centre
-    ring = [(x, y - spacing_m, z), (x, y + spacing_m, z), (x + spacing_m, y, z + 0.05),
-            (x - spacing_m, y, z - 0.05), (x + spacing_m, y - spacing_m, z),
-            (x + spacing_m, y + spacing_m, z)]
+    ring = [
+        (x, y - spacing_m, z),
+        (x, y + spacing_m, z),
+        (x + spacing_m, y, z + 0.05),
+        (x - spacing_m, y, z - 0.05),
+        (x + spacing_m, y - spacing_m, z),
+        (x + spacing_m, y + spacing_m, z),
+    ]
     return [centre, *ring[: n - 1]]

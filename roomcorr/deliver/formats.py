@@ -13,8 +13,8 @@ f64         ``fir/<rate>/<name>.f64``       raw little-endian 64-bit float, no h
 txt         ``fir/<rate>/<name>.txt``       one coefficient per line (plain text)
 ==========  ==============================  ==========================================
 
-The text file holds every coefficient with 9 significant digits, enough to
-give the 32-bit float value back exactly. All files go through
+The text file holds the 32-bit float coefficients (the same as the WAV) with
+9 significant digits, enough to give each value back exactly. All files go through
 :mod:`roomcorr.atomic`.
 """
 
@@ -36,8 +36,9 @@ SUFFIX = {"wav": ".wav", "f32": ".f32", "f64": ".f64", "txt": ".txt"}
 
 
 def coefficients_text(h: np.ndarray) -> str:
-    """One coefficient per line, 9 significant digits (float32 round trip)."""
-    return "".join(f"{x:.9g}\n" for x in np.asarray(h, dtype=np.float64))
+    """The 32-bit float coefficients, one per line, 9 significant digits (exact round trip)."""
+    h32 = np.asarray(h, dtype=np.float32).astype(np.float64)
+    return "".join(f"{x:.9g}\n" for x in h32)
 
 
 def _writer(fmt: str) -> Callable[[Path, np.ndarray, int], object]:
@@ -76,10 +77,15 @@ def filter_files(
                 continue
             if fmt == "multiwav":
                 rel = f"fir/{fs}/{MULTI_NAME}.wav"
-                data = h.T.astype(np.float32)
+                data = h.astype(np.float32)
                 out.append(
-                    (rel, fmt, fs, None,
-                     lambda p, d=data, r=fs: write_wav(p, d, r, subtype="FLOAT"))
+                    (
+                        rel,
+                        fmt,
+                        fs,
+                        None,
+                        lambda p, d=data, r=fs: write_wav(p, d, r, subtype="FLOAT"),
+                    )
                 )
                 continue
             write = _writer(fmt)

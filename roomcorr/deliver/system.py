@@ -115,3 +115,59 @@ def manifest_fields(result: DesignResult) -> dict[str, Any]:
         fields["outputs"] = output_trims(result.system)
         fields["system"] = system_summary(result)
     return fields
+
+
+def _samples_text(samples: dict[str, int]) -> str:
+    return ", ".join(f"{n} at {int(fs) / 1000:g} kHz" for fs, n in samples.items())
+
+
+def system_sentences(fields: dict[str, Any]) -> list[str]:
+    """Plain-language lines on alignment and subwoofer integration.
+
+    Parameters
+    ----------
+    fields : dict
+        The manifest's ``outputs`` and ``system`` (:func:`manifest_fields`).
+    """
+    outputs = fields.get("outputs") or []
+    system = fields.get("system") or {}
+    if not outputs:
+        return []
+    where = (
+        "inside the filters"
+        if system.get("aligned_in_filters")
+        else "NOT in the filters: set them as trims on the playback device"
+    )
+    c = system.get("speed_of_sound_m_s")
+    lines = [
+        f"Alignment ({where}); distances at {system.get('temperature_c', 20):g} °C, "
+        f"c = {c} m/s (ISO 9613-1):"
+    ]
+    for o in outputs:
+        pol = "" if o["polarity"] > 0 else ", polarity inverted"
+        lines.append(
+            f"  {o['name']:>6}: delay {o['delay_ms']:6.3f} ms ({_samples_text(o['delay_samples'])}"
+            f" samples) = {o['distance_m']:.3f} m, level trim {o['gain_db']:+.2f} dB{pol}"
+        )
+    xo = system.get("crossover")
+    if xo:
+        pol = "normal" if xo["subwoofer_polarity"] > 0 else "inverted"
+        f = xo["frequency_hz"]
+        lines.append(
+            f"Subwoofer: crossover {f:.0f} Hz, Linkwitz-Riley {xo['slope_db_per_octave']} "
+            "dB/octave (12, 24 and 48 dB/octave are offered); subwoofer delay "
+            f"{xo['subwoofer_delay_ms']:.2f} ms, polarity {pol}. Chosen because the summed "
+            f"response from {f / 2:.0f} to {2 * f:.0f} Hz is then smoothest and loudest over "
+            f"all positions: {xo['summed_rms_deviation_db']:.1f} dB RMS deviation from its "
+            f"mean (1/6 octave, averaged over positions and mains) against "
+            f"{xo['summed_rms_deviation_no_delay_db']:.1f} dB with the same crossover but no "
+            f"delay and normal polarity; deepest dip at the first position "
+            f"{xo['centre_seat_deepest_dip_db']:.1f} dB. "
+            f"{xo['candidates_searched']} candidates searched."
+        )
+        lines.append(
+            "Each main input also feeds the subwoofer output at "
+            f"{system.get('sub_route_gain_db', 0):+.2f} dB (routes in manifest.json). "
+            "Respect the subwoofer's excursion limits and start quietly."
+        )
+    return lines

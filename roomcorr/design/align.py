@@ -339,9 +339,7 @@ def plan_system(
         summed_measured = smoothed_db(
             np.moveaxis(measured[:, mains], 1, 0) + measured[None, :, sub], grid
         )
-    delay_samples = {
-        int(r): [int(round(d * r)) for d in delays] for r in sorted(firs)
-    }
+    delay_samples = {int(r): [int(round(d * r)) for d in delays] for r in sorted(firs)}
     return SystemPlan(
         names=names,
         roles=roles,

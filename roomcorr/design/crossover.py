@@ -153,7 +153,7 @@ def crossover_candidates(range_hz: tuple[float, float]) -> np.ndarray:
 def search_grid_hz(range_hz: tuple[float, float], points_per_octave: int = 48) -> np.ndarray:
     """Log grid covering every candidate's region plus room for the smoothing, Hz."""
     lo = range_hz[0] / REGION_FACTOR * 2.0 ** (-SMOOTHING_OCT)
-    hi = range_hz[1] * REGION_FACTOR * 2.0 ** SMOOTHING_OCT
+    hi = range_hz[1] * REGION_FACTOR * 2.0**SMOOTHING_OCT
     n = int(np.ceil(np.log2(hi / lo) * points_per_octave)) + 1
     return lo * 2.0 ** (np.arange(n) / points_per_octave)
 
