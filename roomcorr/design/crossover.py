@@ -226,17 +226,21 @@ def _costs(
     freq_hz: np.ndarray,
     fc_hz: float,
     weights: np.ndarray,
+    ideal_db: np.ndarray | None = None,
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
     """Cost terms of summed responses.
 
     ``main`` (n_mains, n_pos, n_f) and ``sub`` (..., 1, n_pos, n_f) broadcast
     against each other. Returns ``cost, rms_dev, loss, dip`` with the leading
     shape of the broadcast (mains and positions averaged; dip per position
-    kept for the caller as ``(..., n_pos)``).
+    kept for the caller as ``(..., n_pos)``). ``ideal_db``, the smoothed
+    in-phase sum of the magnitudes, does not depend on delay or polarity and
+    may be passed in.
     """
     mask = region_mask(freq_hz, fc_hz)
     total_db = smoothed_db(main + sub, freq_hz)
-    ideal_db = smoothed_db(np.abs(main) + np.abs(sub), freq_hz)
+    if ideal_db is None:
+        ideal_db = smoothed_db(np.abs(main) + np.abs(sub), freq_hz)
     dev, dip = region_figures(total_db, mask)
     loss = np.mean((ideal_db - total_db)[..., mask], axis=-1)
     per = dev + LOSS_WEIGHT * loss + np.maximum(dip - DIP_FREE_DB, 0.0)
@@ -295,13 +299,19 @@ def search_integration(
     delays = delay_centre_s + DELAY_STEP_S * np.arange(-n_half, n_half + 1)
     pols = np.array([1.0, -1.0])
     shift = np.exp(-2j * np.pi * np.outer(delays, freq_hz))  # (n_d, n_f)
+    # each candidate is judged on its region plus room for the smoothing window
+    margin = int(np.ceil(SMOOTHING_OCT / 2 * points_per_octave_of(freq_hz))) + 2
     best: tuple[float, float, float, int] | None = None
     for fc in cands:
-        lp, hp = linkwitz_riley_response(freq_hz, fc, fs, slope_db_oct)
-        m = main * hp  # (n_m, n_p, n_f)
-        s = sub * lp  # (n_p, n_f)
-        s_all = pols[:, None, None, None, None] * (shift[:, None, None, :] * s)[None]
-        cost, _, _, _ = _costs(m, s_all, freq_hz, fc, w)  # (2, n_d)
+        inside = np.flatnonzero(region_mask(freq_hz, fc))
+        sel = slice(max(inside[0] - margin, 0), min(inside[-1] + margin + 1, n_f))
+        f = freq_hz[sel]
+        lp, hp = linkwitz_riley_response(f, fc, fs, slope_db_oct)
+        m = main[..., sel] * hp  # (n_m, n_p, n_f)
+        s = sub[..., sel] * lp  # (n_p, n_f)
+        ideal = smoothed_db(np.abs(m) + np.abs(s), f)
+        s_all = pols[:, None, None, None, None] * (shift[:, None, None, sel] * s)[None]
+        cost, _, _, _ = _costs(m, s_all, f, fc, w, ideal)  # (2, n_d)
         k = np.unravel_index(int(np.argmin(cost)), cost.shape)
         c = float(cost[k])
         if best is None or c < best[0] - 1e-9:
