@@ -274,3 +274,18 @@ def test_cli_bad_system_options(ir_files, tmp_path, args, words):
     assert len(lines) == 1 and words in lines[0], r.stderr
     assert "Traceback" not in r.stderr
     assert not out.exists() or not any(out.rglob("*"))
+
+
+def test_report_has_the_system_section(design):
+    from roomcorr.export import load_design_curves
+    from roomcorr.report.html import build_report, render_html
+
+    _, out = design
+    curves = load_design_curves(out)
+    report = build_report(curves, read_manifest(out)["settings"], dpi=40)
+    sec = next(s for s in report.sections if s.id == "system")
+    assert sec.table[0][:3] == ["output", "role", "delay (ms)"]
+    assert [row[0] for row in sec.table[1:]] == ["left", "right", "sub"]
+    assert len(sec.figures) == 2  # one per main loudspeaker
+    assert any("Linkwitz-Riley" in p for p in sec.paragraphs)
+    assert "Loudspeakers together" in render_html(report)

@@ -7,6 +7,7 @@ adds files (extra formats) and manifest fields (``routes``, ``outputs``,
 
 from __future__ import annotations
 
+import json
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
@@ -92,13 +93,19 @@ def system_curves(result: DesignResult) -> dict[str, Any]:
 
     ``sys_freq_hz`` (n_freqs,), ``sys_summed_measured_db``,
     ``sys_summed_baseline_db`` and ``sys_summed_after_db`` (n_mains,
-    n_positions, n_freqs), ``sys_crossover_hz``; empty without a subwoofer.
+    n_positions, n_freqs), ``sys_crossover_hz`` (with a subwoofer), and
+    ``sys_fields_json``, the manifest's ``outputs`` and ``system`` (for the
+    report). Empty for a single loudspeaker.
     """
     plan = result.system
-    if plan is None or plan.integration is None:
+    if plan is None:
         return {}
+    fields = {k: v for k, v in manifest_fields(result).items() if k != "routes"}
+    out: dict[str, Any] = {"sys_fields_json": np.array(json.dumps(fields))}
     integ = plan.integration
-    return {
+    if integ is None:
+        return out
+    return out | {
         "sys_freq_hz": integ.freq_hz,
         "sys_summed_measured_db": plan.summed_measured_db,
         "sys_summed_baseline_db": integ.summed_baseline_db,

@@ -474,6 +474,10 @@ def build_report(
     if comparison is not None:
         sections.append(comparison_section(comparison))
         overview.paragraphs.append(_comparison_sentence(comparison))
+    if designed:
+        from roomcorr.report.system import system_sections
+
+        sections.extend(system_sections(curves, png))
     ringing_notes: list[str] = []
     safety_rows = [["channel", "rate (Hz)", "taps", "peak gain (dB)", "worst-case gain (dB)"]]
 
