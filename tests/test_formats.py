@@ -289,3 +289,18 @@ def test_report_has_the_system_section(design):
     assert len(sec.figures) == 2  # one per main loudspeaker
     assert any("Linkwitz-Riley" in p for p in sec.paragraphs)
     assert "Loudspeakers together" in render_html(report)
+
+
+def test_readme_route_picture_is_the_codes(design):
+    """The route picture in the README is the one the code draws (README.md, or the
+    branch's docs file until it is merged)."""
+    from conftest import REPO
+
+    result, _ = design
+    picture = route_diagram(["left", "right", "sub"], result.system)
+    texts = [
+        p.read_text(encoding="utf-8")
+        for p in (REPO / "README.md", REPO / "docs_speakers.md")
+        if p.is_file()
+    ]
+    assert any(picture in t for t in texts)

@@ -76,10 +76,10 @@ def route_diagram(names: list[str], plan: SystemPlan | None) -> str:
 
     Example for ``left,right,sub`` with ``sub`` as the subwoofer::
 
-        input          filter                      output
-        left  ──┬────► fir/RATE/left.wav   ────►  0 left
+        input      filter                     output
+        left  ──┬────► fir/RATE/left.wav  ────►  0 left
                 └─ -6.02 dB ─┐
-        right ──┬────► fir/RATE/right.wav  ────►  1 right
+        right ──┬────► fir/RATE/right.wav ────►  1 right
                 └─ -6.02 dB ─┤
                              └─ sum ─► fir/RATE/sub.wav ────►  2 sub
     """
@@ -98,7 +98,7 @@ def route_diagram(names: list[str], plan: SystemPlan | None) -> str:
             join = "┐" if k == 0 else "┤"
             lines.append(f"{'':<{w}}   └─ {gain} ─{join}")
     if sub is not None:
-        pad = w + 3 + 4 + len(f"{plan.sub_route_gain_db:+.2f} dB") + 2 if plan else 0
+        gain = f"{plan.sub_route_gain_db:+.2f} dB" if plan is not None else ""
         path = f"fir/RATE/{names[sub]}.wav"
-        lines.append(f"{'':<{pad}}└─ sum ─► {path} ────►  {sub} {names[sub]}")
+        lines.append(f"{'':<{w + 8 + len(gain)}}└─ sum ─► {path} ────►  {sub} {names[sub]}")
     return "\n".join(lines) + "\n"
