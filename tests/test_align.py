@@ -9,6 +9,9 @@ from __future__ import annotations
 import numpy as np
 import pyfar as pf
 import pytest
+from hypothesis import given
+from hypothesis import settings as settings_h
+from hypothesis import strategies as st
 from scipy.signal import fftconvolve
 from speaker_rooms import C_M_S, Room, direct_delays_s, seats, simulate
 
@@ -294,3 +297,70 @@ def test_apply_plan_keeps_every_rate_the_same_length(sub_case):
     finally:
         plan.delay_samples = plan_delays
     assert out[44100].shape == (3, 103) and out[48000].shape == (3, 105)
+
+
+# ----------------------------------------------------------------------------- settings, safety
+
+
+@pytest.mark.parametrize(
+    "keys, words",
+    [
+        ({"channel_names": ["a", "b c"]}, "not a usable name"),
+        ({"channel_names": ["a", "a"]}, "own name"),
+        ({"channel_names": ["a", "b"], "subwoofer": "c"}, "not one of the channel names"),
+        ({"crossover_range_hz": [150, 50]}, "crossover_range_hz"),
+        ({"crossover_range_hz": [10, 100]}, "crossover_range_hz"),
+        ({"crossover_slope_db_oct": 18}, "12, 24, 48"),
+        ({"formats": ["wav", "flac"]}, "not a filter format"),
+        ({"level_band_hz": [2000, 500]}, "level_band_hz"),
+        ({"align": "yes"}, "design.align"),
+    ],
+)
+def test_system_settings_are_checked(keys, words):
+    with pytest.raises(SettingsError, match=words):
+        design_from_dict(keys)
+
+
+def test_system_settings_defaults_and_round_trip():
+    from roomcorr.settings import settings_from_dict, settings_to_dict
+
+    d = design_from_dict({"formats": ["txt", "multiwav"], "channel_names": "left,right,sub"})
+    assert d.formats == ("wav", "multiwav", "txt")  # wav always, in a fixed order
+    assert d.channel_names == ("left", "right", "sub")
+    assert d.align is None and d.crossover_slope_db_oct == 24
+    back = settings_from_dict(settings_to_dict(Settings(design=d)))
+    assert back.design == d
+
+
+@settings_h(max_examples=30, deadline=None)
+@given(
+    delays=st.lists(st.integers(0, 400), min_size=3, max_size=3),
+    trims=st.lists(st.floats(-20.0, 0.0), min_size=3, max_size=3),
+    fc=st.floats(40.0, 200.0),
+    slope=st.sampled_from([12, 24, 48]),
+)
+def test_applying_a_plan_never_raises_a_filters_gain(delays, trims, fc, slope):
+    """Crossover halves, polarity, whole-sample delays and trims <= 0 dB can only lower
+    the peak gain of a correction filter (safety: the crossover never adds boost)."""
+    from types import SimpleNamespace
+
+    from roomcorr.design.crossover import Integration
+    from roomcorr.design.fir import synthesize_fir
+    from roomcorr.grid import log_grid
+
+    grid = log_grid()
+    corr = 3.5 * np.exp(-0.5 * (np.log2(grid / 70) / 0.4) ** 2) - 8 * (grid > 3000)
+    h = np.stack([synthesize_fir(grid, corr + k, FS, 8192) for k in (0.0, -1.0, 0.5)])
+    integ = Integration(fc, slope, 0.0, -1, 0, 0, 0, 0, 0, 0, 0, 0, grid, grid, grid)
+    plan = SimpleNamespace(
+        delay_samples={FS: delays},
+        baked=True,
+        roles=["main", "main", "sub"],
+        polarity=[1, 1, -1],
+        trim_db=np.array(trims),
+        integration=integ,
+    )
+    out = apply_plan({FS: h}, plan)[FS]
+    assert out.shape == (3, 8192 + max(delays))
+    for c in range(3):
+        assert peak_gain_db(out[c], FS) <= peak_gain_db(h[c], FS) + trims[c] + 0.01

@@ -120,6 +120,17 @@ def _test_signal(fs: int) -> np.ndarray:
     return x.astype(np.float32).astype(np.float64)
 
 
+def _tool_output(argv: list[str], x: np.ndarray, fs: int, tmp_path, tag: str) -> np.ndarray:
+    """Write ``x`` as x.wav, run the tool (``{x}``/``{y}`` stand for the files), read y."""
+    x_path, y_path = tmp_path / "x.wav", tmp_path / f"y_{tag}.wav"
+    sf.write(x_path, x, fs, subtype="FLOAT")
+    argv = [str(x_path) if a == "{x}" else str(y_path) if a == "{y}" else a for a in argv]
+    subprocess.run(argv, check=True, capture_output=True)
+    y, fs_y = sf.read(y_path, dtype="float64")
+    assert fs_y == fs
+    return y
+
+
 def _aligned_error_db(y: np.ndarray, ref: np.ndarray) -> tuple[float, int]:
     """Error of ``y`` against ``ref`` after removing the tool's fixed offset (samples)."""
     c = correlate(y, ref, "full", method="fft")
@@ -136,32 +147,14 @@ def test_ffmpeg_afir_applies_the_wav_filters_like_fftconvolve(design, tmp_path):
     _, out = design
     fs = 48000
     x = _test_signal(fs)
-    sf.write(tmp_path / "x.wav", x, fs, subtype="FLOAT")
     for name in ("left", "sub"):
-        h, _ = sf.read(out / f"fir/{fs}/{name}.wav", dtype="float64")
+        wav = str(out / f"fir/{fs}/{name}.wav")
+        h, _ = sf.read(wav, dtype="float64")
         ref = fftconvolve(x, h)  # scipy, float64
-        y_path = tmp_path / f"y_{name}.wav"
-        subprocess.run(
-            [
-                "ffmpeg",
-                "-v",
-                "error",
-                "-y",
-                "-i",
-                str(tmp_path / "x.wav"),
-                "-i",
-                str(out / f"fir/{fs}/{name}.wav"),
-                "-filter_complex",
-                "[0:a][1:a]afir=gtype=none:precision=double",
-                "-c:a",
-                "pcm_f32le",
-                str(y_path),
-            ],
-            check=True,
-            capture_output=True,
-        )
-        y, fs_y = sf.read(y_path, dtype="float64")
-        assert fs_y == fs
+        afir = "[0:a][1:a]afir=gtype=none:precision=double"
+        argv = ["ffmpeg", "-v", "error", "-y", "-i", "{x}", "-i", wav]
+        argv += ["-filter_complex", afir, "-c:a", "pcm_f32le", "{y}"]
+        y = _tool_output(argv, x, fs, tmp_path, name)
         # ffmpeg 5.1's afir with gtype=none scales its output by exactly 2 (observed
         # here; its own convention); a fixed power-of-two scale is taken out, nothing else
         scale = float(np.dot(y, ref[: y.size]) / np.dot(ref[: y.size], ref[: y.size]))
@@ -176,27 +169,12 @@ def test_sox_fir_applies_the_text_filters_like_fftconvolve(design, tmp_path):
     _, out = design
     fs = 44100
     x = _test_signal(fs)
-    sf.write(tmp_path / "x.wav", x, fs, subtype="FLOAT")
     for name in ("right", "sub"):
-        coefs = read_filter_file(out / f"fir/{fs}/{name}.txt", "txt")
+        txt = str(out / f"fir/{fs}/{name}.txt")
+        coefs = read_filter_file(txt, "txt")
         ref = fftconvolve(x, coefs)
-        y_path = tmp_path / f"y_{name}.wav"
-        subprocess.run(
-            [
-                "sox",
-                str(tmp_path / "x.wav"),
-                "-e",
-                "floating-point",
-                "-b",
-                "32",
-                str(y_path),
-                "fir",
-                str(out / f"fir/{fs}/{name}.txt"),
-            ],
-            check=True,
-            capture_output=True,
-        )
-        y, _ = sf.read(y_path, dtype="float64")
+        argv = ["sox", "{x}", "-e", "floating-point", "-b", "32", "{y}", "fir", txt]
+        y = _tool_output(argv, x, fs, tmp_path, name)
         err_db, lag = _aligned_error_db(y, ref)
         # sox treats the filter as linear phase and advances its output by (N - 1) / 2
         assert lag == -((coefs.size - 1) // 2)
@@ -304,3 +282,40 @@ def test_readme_route_picture_is_the_codes(design):
         if p.is_file()
     ]
     assert any(picture in t for t in texts)
+
+
+def test_design_takes_the_names_measure_stored(ir_files, tmp_path):
+    folder = tmp_path / "meas"
+    folder.mkdir()
+    for f in ir_files:
+        shutil.copy(f, folder)
+    record = {"settings": {"outputs": [1, 2, 3], "names": ["front-l", "front-r", "lfe"]}}
+    (folder / "measurement.json").write_text(json.dumps(record))
+    out = tmp_path / "d"
+    r = _cli(
+        "design",
+        str(folder),
+        "--subwoofer",
+        "lfe",
+        "--rates",
+        "48000",
+        "--taps",
+        "4096",
+        "--out",
+        str(out),
+    )
+    assert r.returncode == 0, r.stderr
+    man = json.loads((out / "manifest.json").read_text())
+    assert [c["name"] for c in man["channels"]] == ["front-l", "front-r", "lfe"]
+    assert (out / "fir/48000/lfe.wav").is_file()
+
+
+def test_measure_settings_keep_names_per_output():
+    from roomcorr.errors import SettingsError
+    from roomcorr.measure.settings import MeasureSettings
+
+    ms = MeasureSettings.from_dict({"outputs": [1, 2, 3], "names": ["left", "right", "sub"]})
+    assert ms.names == ("left", "right", "sub")
+    assert ms.to_dict()["names"] == ("left", "right", "sub")
+    with pytest.raises(SettingsError, match="--names gives 2 names for 3 outputs"):
+        MeasureSettings.from_dict({"outputs": [1, 2, 3], "names": ["left", "right"]})
