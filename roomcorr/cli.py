@@ -418,6 +418,14 @@ def _add_report(sub: Any) -> argparse.ArgumentParser:
     return p
 
 
+def _print_report_system(curves: dict[str, Any]) -> None:
+    from roomcorr.deliver.system import system_sentences
+    from roomcorr.report.system import system_fields
+
+    for line in system_sentences(system_fields(curves)):
+        print(line)
+
+
 def _run_report(args: argparse.Namespace) -> int:
     from roomcorr.report.html import write_report
 
@@ -428,8 +436,10 @@ def _run_report(args: argparse.Namespace) -> int:
         from roomcorr.report.summary import summary_sentences
 
         caps = (read_manifest(folder).get("settings") or {}).get("design", {})
-        for line in summary_sentences(load_design_curves(folder), caps.get("max_boost_db")):
+        curves = load_design_curves(folder)
+        for line in summary_sentences(curves, caps.get("max_boost_db")):
             print(line)
+        _print_report_system(curves)
     print(f"report: {path}")
     return 0
 

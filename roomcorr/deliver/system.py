@@ -125,7 +125,8 @@ def manifest_fields(result: DesignResult) -> dict[str, Any]:
 
 
 def _samples_text(samples: dict[str, int]) -> str:
-    return ", ".join(f"{n} at {int(fs) / 1000:g} kHz" for fs, n in samples.items())
+    parts = [f"{n} at {int(fs) / 1000:g} kHz" for fs, n in samples.items()]
+    return "samples: " + ", ".join(parts)
 
 
 def system_sentences(fields: dict[str, Any]) -> list[str]:
@@ -153,17 +154,24 @@ def system_sentences(fields: dict[str, Any]) -> list[str]:
     for o in outputs:
         pol = "" if o["polarity"] > 0 else ", polarity inverted"
         lines.append(
-            f"  {o['name']:>6}: delay {o['delay_ms']:6.3f} ms ({_samples_text(o['delay_samples'])}"
-            f" samples) = {o['distance_m']:.3f} m, level trim {o['gain_db']:+.2f} dB{pol}"
+            f"  {o['name']:>6}: delay {o['delay_ms']:6.3f} ms ({_samples_text(o['delay_samples'])})"
+            f" = {o['distance_m']:.3f} m, level trim {o['gain_db']:+.2f} dB{pol}"
         )
     xo = system.get("crossover")
     if xo:
         pol = "normal" if xo["subwoofer_polarity"] > 0 else "inverted"
         f = xo["frequency_hz"]
+        main_ms = [o["delay_ms"] for o in outputs if o["role"] != "sub"]
+        span = (
+            f"{min(main_ms):.2f}"
+            if max(main_ms) - min(main_ms) < 0.005
+            else (f"{min(main_ms):.2f} to {max(main_ms):.2f}")
+        )
         lines.append(
             f"Subwoofer: crossover {f:.0f} Hz, Linkwitz-Riley {xo['slope_db_per_octave']} "
             "dB/octave (12, 24 and 48 dB/octave are offered); subwoofer delay "
-            f"{xo['subwoofer_delay_ms']:.2f} ms, polarity {pol}. Chosen because the summed "
+            f"{xo['subwoofer_delay_ms']:.2f} ms (mains {span} ms), polarity {pol}. "
+            "Chosen because the summed "
             f"response from {f / 2:.0f} to {2 * f:.0f} Hz is then smoothest and loudest over "
             f"all positions: {xo['summed_rms_deviation_db']:.1f} dB RMS deviation from its "
             f"mean (1/6 octave, averaged over positions and mains) against "
