@@ -40,9 +40,7 @@ def main() -> None:
     names = ["left", "right", "sub"]
     rates = [44100, 48000, 96000]
     with_sub = Settings(
-        design=design_from_dict(
-            {"channel_names": names, "subwoofer": "sub", "sample_rates": rates}
-        )
+        design=design_from_dict({"channel_names": names, "subwoofer": "sub", "sample_rates": rates})
     )
     plain = Settings(
         design=design_from_dict({"channel_names": names, "sample_rates": rates, "align": False})

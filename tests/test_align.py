@@ -364,3 +364,11 @@ def test_applying_a_plan_never_raises_a_filters_gain(delays, trims, fc, slope):
     assert out.shape == (3, 8192 + max(delays))
     for c in range(3):
         assert peak_gain_db(out[c], FS) <= peak_gain_db(h[c], FS) + trims[c] + 0.01
+
+
+def test_a_subwoofer_alone_is_refused():
+    irs = np.zeros((1, 1, 4800))
+    irs[0, 0, 100] = 1.0
+    keys = {"channel_names": ["sub"], "subwoofer": "sub", "sample_rates": [FS]}
+    with pytest.raises(SettingsError, match="at least one main loudspeaker"):
+        run_design(irs, FS, Settings(design=design_from_dict(keys)))
