@@ -25,6 +25,9 @@ import numpy as np
 from roomcorr.atomic import atomic_write_text, atomic_write_with
 from roomcorr.audio_io import write_wav
 from roomcorr.deliver.system import manifest_fields, system_curves, write_extra_formats
+from roomcorr.design.mixedphase import from_arrays as mixed_phase_from_arrays
+from roomcorr.design.mixedphase import latency_record
+from roomcorr.design.mixedphase import to_arrays as mixed_phase_arrays
 from roomcorr.errors import OutputError
 from roomcorr.settings import settings_to_dict
 
@@ -107,6 +110,8 @@ def _curves_dict(result: DesignResult) -> dict[str, np.ndarray]:
     for fs, h in result.firs.items():
         data[f"fir_{fs}"] = h
     data.update(system_curves(result))
+    if getattr(result, "mixed_phase", None) is not None:
+        data.update(mixed_phase_arrays(result.mixed_phase))
     return data
 
 
@@ -141,6 +146,7 @@ def load_design_curves(out_dir: str | Path) -> dict[str, Any]:
         "firs": firs,
         "channels": channels,
         "system": {k[len("sys_") :]: v for k, v in raw.items() if k.startswith("sys_")},
+        "mixed_phase": mixed_phase_from_arrays(raw),
     }
 
 
@@ -176,6 +182,7 @@ def write_design(
     written: list[Path] = []
     entries: list[dict[str, Any]] = []
     stats = {(s.fs, s.channel): s for s in result.stats}
+    latency = latency_record(getattr(result, "mixed_phase", None))
     try:
         out.mkdir(parents=True, exist_ok=True)
         for fs, h in result.firs.items():
@@ -202,6 +209,7 @@ def write_design(
                         "peak_gain_db": round(s.peak_gain_db, 3),
                         "worst_case_gain_db": round(s.worst_case_gain_db, 3),
                         "max_boost_db": round(s.max_boost_db, 3),
+                        "latency_samples": latency.get("samples", {}).get(str(fs), 0),
                         "sha256": sha256_of(path),
                     }
                 )
@@ -227,6 +235,7 @@ def write_design(
             ],
             "files": entries,
             "settings": settings_to_dict(result.settings),
+            "latency": latency,
         }
         manifest.update(manifest_fields(result))
         if extra:

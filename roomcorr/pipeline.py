@@ -22,6 +22,7 @@ from roomcorr.audio_io import read_curve_file
 from roomcorr.design.align import SystemPlan, apply_plan, plan_system, subwoofer_band_hz
 from roomcorr.design.correction import align_target, correction_curve
 from roomcorr.design.fir import default_n_taps, synthesize_fir
+from roomcorr.design.mixedphase import MixedPhaseDesign, apply_mixed_phase
 from roomcorr.design.safety import FilterStats, apply_safety
 from roomcorr.design.target import auto_band, target_from_points, target_from_table
 from roomcorr.errors import InputFileError, SettingsError
@@ -72,6 +73,7 @@ class DesignResult:
     stats: list[FilterStats]
     settings: Settings
     system: SystemPlan | None = None
+    mixed_phase: MixedPhaseDesign | None = None
 
 
 def default_channel_names(n: int) -> list[str]:
@@ -244,6 +246,9 @@ def run_design(
         firs[rate] = np.stack(
             [synthesize_fir(freq, ch.correction_db, rate, n_taps) for ch in channels]
         )
+    mixed = None
+    if d.phase == "mixed":  # same magnitudes, the loudspeaker's excess phase undone
+        firs, mixed = apply_mixed_phase(irs, fs, arrival, freq, firs, d.latency_ms, weights)
     system = plan_system(irs, fs, freq, channels, target_shape, firs, d, weights)
     if system is not None:
         firs = apply_plan(firs, system)
@@ -258,4 +263,5 @@ def run_design(
         stats=stats,
         settings=settings,
         system=system,
+        mixed_phase=mixed,
     )

@@ -19,6 +19,7 @@ naming the key. Preset names (files in ``presets/``) can stand for a path.
 from __future__ import annotations
 
 import dataclasses
+import math
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -99,6 +100,11 @@ class DesignSettings:
     formats : tuple of str
         Filter file formats written (see :data:`FILTER_FORMATS`); ``wav``
         (one file per channel and rate) is always written.
+    phase : str
+        ``"minimum"`` (no added latency) or ``"mixed"`` (also undo the
+        loudspeaker's excess phase, late by ``latency_ms``).
+    latency_ms : float
+        Latency budget of a mixed-phase design, ms.
     """
 
     target: str = "flat"
@@ -126,6 +132,14 @@ class DesignSettings:
     level_band_hz: tuple[float, float] = (500.0, 2000.0)
     sub_level_band_hz: tuple[float, float] | None = None
     formats: tuple[str, ...] = ("wav",)
+    phase: str = "minimum"
+    latency_ms: float = 20.0
+
+
+#: Choices of ``DesignSettings.phase``.
+PHASE_CHOICES = ("minimum", "mixed")
+#: Range of ``DesignSettings.latency_ms``.
+LATENCY_RANGE_MS = (5.0, 250.0)
 
 
 @dataclass
@@ -246,6 +260,12 @@ def _coerce(key: str, value: Any) -> Any:
         if isinstance(value, bool) or not isinstance(value, int):
             raise SettingsError(f"design.taps: expected a whole number, got {value!r}")
         return int(value)
+    if key == "phase":
+        if value not in PHASE_CHOICES:
+            raise SettingsError(
+                f"design.phase: expected one of {', '.join(PHASE_CHOICES)}, got {value!r}"
+            )
+        return value
     if key in ("allow_gain", "iir"):
         if not isinstance(value, bool):
             raise SettingsError(f"design.{key}: expected true or false, got {value!r}")
@@ -325,6 +345,14 @@ def validate_design(d: DesignSettings) -> DesignSettings:
     qlo, qhi = d.iir_q_range
     if not 0.05 <= qlo < qhi <= 50.0:
         raise SettingsError("design.iir_q_range: expected 0.05 <= low < high <= 50")
+    lat_lo, lat_hi = LATENCY_RANGE_MS
+    if not (math.isfinite(d.latency_ms) and lat_lo <= d.latency_ms <= lat_hi):
+        raise SettingsError(
+            f"design.latency_ms = {d.latency_ms:g}: must lie between {lat_lo:g} and "
+            f"{lat_hi:g} ms (sound through a mixed-phase filter is late by this much)"
+        )
+    if d.phase not in PHASE_CHOICES:
+        raise SettingsError(f"design.phase: expected one of {', '.join(PHASE_CHOICES)}")
     if not -30.0 <= d.temperature_c <= 60.0:
         raise SettingsError(f"design.temperature_c = {d.temperature_c:g}: expected -30 to 60 °C")
     validate_system(d)
