@@ -32,17 +32,41 @@ def _print_cautions() -> None:
         print(line, file=sys.stderr)
 
 
-def _float_list(text: str) -> list[float]:
+def _finite(text: str, integer: bool = False) -> Any:
+    """Option type: one finite number (``nan``, ``inf`` and ``1e999`` are refused).
+
+    Ranges are checked later, with the settings key named
+    (:func:`roomcorr.settings.validate_design`); here only what cannot be a
+    number at all is refused, by the same checked-number helper.
+    """
+    from roomcorr.checked import checked_number
+
     try:
-        return [float(x) for x in text.split(",") if x.strip()]
-    except ValueError:
-        raise argparse.ArgumentTypeError(
-            f"expected comma-separated numbers, got {text!r}"
-        ) from None
+        return checked_number(text, "", integer=integer)
+    except RoomcorrError as exc:
+        raise argparse.ArgumentTypeError(str(exc)) from None
+
+
+def _whole(text: str) -> int:
+    """Option type: one finite whole number."""
+    return _finite(text, integer=True)
+
+
+def _number_list(text: str, integer: bool) -> list[Any]:
+    parts = [x for x in text.split(",") if x.strip()]
+    if not parts:
+        raise argparse.ArgumentTypeError(f"expected comma-separated numbers, got {text!r}")
+    return [_finite(x, integer=integer) for x in parts]
+
+
+def _float_list(text: str) -> list[float]:
+    """Option type: comma-separated finite numbers."""
+    return [float(x) for x in _number_list(text, integer=False)]
 
 
 def _int_list(text: str) -> list[int]:
-    return [int(round(x)) for x in _float_list(text)]
+    """Option type: comma-separated finite whole numbers."""
+    return _number_list(text, integer=True)
 
 
 # --------------------------------------------------------------------------- design
@@ -54,24 +78,24 @@ def _add_design_options(p: argparse.ArgumentParser) -> None:
     g.add_argument(
         "--target", metavar="NAME|FILE", help="target preset (flat, gentle-tilt, ...) or text file"
     )
-    g.add_argument("--band-lo", type=float, metavar="HZ", help="lowest corrected frequency")
-    g.add_argument("--band-hi", type=float, metavar="HZ", help="highest corrected frequency")
-    g.add_argument("--max-boost", type=float, metavar="DB", help="boost cap (default 4 dB)")
-    g.add_argument("--max-cut", type=float, metavar="DB", help="cut cap (default 15 dB)")
+    g.add_argument("--band-lo", type=_finite, metavar="HZ", help="lowest corrected frequency")
+    g.add_argument("--band-hi", type=_finite, metavar="HZ", help="highest corrected frequency")
+    g.add_argument("--max-boost", type=_finite, metavar="DB", help="boost cap (default 4 dB)")
+    g.add_argument("--max-cut", type=_finite, metavar="DB", help="cut cap (default 15 dB)")
     g.add_argument(
-        "--taps", type=int, metavar="N", help="FIR taps at 48 kHz (other rates: same duration)"
+        "--taps", type=_whole, metavar="N", help="FIR taps at 48 kHz (other rates: same duration)"
     )
     g.add_argument(
         "--rates", type=_int_list, metavar="R,R", help="output sample rates (44100,48000,96000)"
     )
-    g.add_argument("--ceiling", type=float, metavar="DB", help="peak-gain ceiling (default 0 dB)")
+    g.add_argument("--ceiling", type=_finite, metavar="DB", help="peak-gain ceiling (default 0 dB)")
     g.add_argument(
         "--allow-gain", action="store_true", help="permit a ceiling above 0 dB (risk of clipping)"
     )
     g.add_argument("--calibration", metavar="FILE", help="microphone calibration text file")
     g.add_argument("--weights", type=_float_list, metavar="W,W", help="weight per position")
     g.add_argument("--iir", action="store_true", help="also write biquad sets")
-    g.add_argument("--iir-sections", type=int, metavar="N", help="most biquads per channel (10)")
+    g.add_argument("--iir-sections", type=_whole, metavar="N", help="most biquads per channel (10)")
     _add_phase_options(g)
     p.add_argument("--replace", action="store_true", help="write over an earlier design in --out")
 
@@ -160,7 +184,7 @@ def _add_phase_options(g: Any) -> None:
     )
     g.add_argument(
         "--latency-ms",
-        type=float,
+        type=_finite,
         metavar="MS",
         help="delay allowed for --phase mixed (default 20 ms; 5-250): video then needs the "
         "picture delayed as much (lip-sync); keep minimum phase for live monitoring",
@@ -210,8 +234,11 @@ def settings_from_args(args: argparse.Namespace, base: Any = None) -> Any:
 def _print_design_summary(result: Any, out: Path, entries: list[dict]) -> None:
     import numpy as np
 
+    from roomcorr.design.safety import PEAK_BAND
+
     print(f"Design written to {out}  ({len(entries) + 1} files, manifest.json lists them)")
     print(f"Common pre-gain: {result.pre_gain_db:+.2f} dB (same for every channel)")
+    print(f"Peak gain below is the largest gain from {PEAK_BAND}, pre-gain included")
     for ch in result.channels:
         lo, hi = ch.band_hz
         inband = (result.freq_hz >= lo) & (result.freq_hz <= hi)
@@ -285,28 +312,40 @@ def _print_system_summary(result: Any) -> None:
 
 
 def _design_and_write(
-    ir_paths: list[str], out: Path, settings: Any, replace: bool, extra: dict | None = None
+    ir_paths: list[str],
+    out: Path,
+    settings: Any,
+    replace: bool,
+    extra: dict | None = None,
+    force: bool = False,
 ) -> tuple[Any, list[dict]]:
     from roomcorr.audio_io import read_ir_set
     from roomcorr.export import write_design
-    from roomcorr.pipeline import run_design
+    from roomcorr.grid import log_grid
+    from roomcorr.pipeline import resolve_calibration, resolve_target, run_design
 
-    irs, fs, files = read_ir_set(ir_paths)
+    irs, fs, files = read_ir_set(ir_paths, require_impulse=not force)
     _names_from_measurement(files, settings)
+    # every input is checked before the work starts (and the cautions are printed)
+    resolve_target(log_grid(), settings.design.target)
+    resolve_calibration(log_grid(), settings.design.calibration)
+    _print_cautions()
     result = run_design(irs, fs, settings)
     iir = None
     if settings.design.iir:
         from roomcorr.design.iir_fit import design_iir
 
         iir = design_iir(result)  # fitted and safety-checked before anything is written
-    info = {"measurements": [str(f) for f in files]}
+    from roomcorr.design.safety import PEAK_BAND
+
+    info = {"measurements": [str(f) for f in files], "peak_gain_band": PEAK_BAND}
     if extra:
         info.update(extra)
     entries = write_design(result, out, replace=replace, extra=info)
     if iir is not None:
         from roomcorr.export_iir import write_iir
 
-        entries += write_iir(iir, out)
+        entries += write_iir(iir, out, fir=result)
     return result, entries
 
 
@@ -329,6 +368,12 @@ def _add_design(sub: Any) -> argparse.ArgumentParser:
         "--out", metavar="DIR", help="output folder (in a room folder: a new designs/ run)"
     )
     p.add_argument("--room", metavar="ROOM_DIR", help="room folder (default: the one you are in)")
+    p.add_argument(
+        "--force",
+        action="store_true",
+        help="design even from files that do not look like impulse responses (no clear "
+        "arrival, no decay)",
+    )
     _add_design_options(p)
     _add_system_options(p)
     return p
@@ -344,9 +389,9 @@ def _run_design(args: argparse.Namespace) -> int:
         if not args.irs:
             raise SettingsError("design: name the impulse-response files or folders to use")
         settings = settings_from_args(args, rooms.load_room_settings(room) if room else None)
-        _print_cautions()
         out = Path(args.out)
-        result, entries = _design_and_write(args.irs, out, settings, args.replace)
+        result, entries = _design_and_write(args.irs, out, settings, args.replace,
+                                            force=args.force)
         _print_design_summary(result, out, entries)
         return 0
     if room is None:
@@ -362,9 +407,9 @@ def _run_design(args: argparse.Namespace) -> int:
         paths = [str(p) for p in rooms.measurement_files(meas)]
         source = {"measurement": meas.name}
         print(f"Using the latest measurement: {meas.relative_to(room.root)}")
-    _print_cautions()
     with rooms.new_run(room, "design", info=dict(source)) as run_dir:
-        result, entries = _design_and_write(paths, run_dir, settings, False, extra=source)
+        result, entries = _design_and_write(paths, run_dir, settings, False, extra=source,
+                                            force=args.force)
     _print_design_summary(result, run_dir, entries)
     return 0
 
@@ -405,7 +450,6 @@ def _run_demo(args: argparse.Namespace) -> int:
     from roomcorr.export import MANIFEST, read_manifest
 
     settings = settings_from_args(args)
-    _print_cautions()
     out = Path(args.out)
     replace = args.replace
     if (out / MANIFEST).exists() and read_manifest(out).get("demo"):
@@ -521,20 +565,20 @@ def _add_measure(sub: Any) -> argparse.ArgumentParser:
                    help="output channel of each loudspeaker (default 1,2)")
     p.add_argument("--names", type=_name_list, metavar="A,B",
                    help="loudspeaker names, one per --outputs channel (e.g. left,right,sub)")
-    p.add_argument("--input", type=int, metavar="N", help="microphone input channel (default 1)")
+    p.add_argument("--input", type=_whole, metavar="N", help="microphone input channel (default 1)")
     p.add_argument("--loopback", type=_pair, metavar="OUT,IN",
                    help="spare output cabled back to an input: timing reference that removes "
                    "the system latency")
-    p.add_argument("--positions", type=int, metavar="N", help="microphone positions (default 1)")
-    p.add_argument("--repeats", type=int, metavar="N", help="sweeps averaged per loudspeaker")
-    p.add_argument("--sweep-seconds", type=float, metavar="S", help="sweep length (default 5)")
+    p.add_argument("--positions", type=_whole, metavar="N", help="microphone positions (default 1)")
+    p.add_argument("--repeats", type=_whole, metavar="N", help="sweeps averaged per loudspeaker")
+    p.add_argument("--sweep-seconds", type=_finite, metavar="S", help="sweep length (default 5)")
     p.add_argument("--band", type=_float_list, metavar="LO,HI", help="sweep band in Hz")
-    p.add_argument("--rate", type=int, metavar="HZ", help="sample rate (default 48000)")
-    p.add_argument("--level", type=float, metavar="DBFS",
+    p.add_argument("--rate", type=_whole, metavar="HZ", help="sample rate (default 48000)")
+    p.add_argument("--level", type=_finite, metavar="DBFS",
                    help=f"sweep peak level (default {DEFAULT_LEVEL_DBFS:g} dBFS)")
     p.add_argument("--allow-loud", action="store_true",
                    help=f"allow a sweep level above {LEVEL_CAP_DBFS:g} dBFS (prints a warning)")
-    p.add_argument("--ir-seconds", type=float, metavar="S", help="impulse response length")
+    p.add_argument("--ir-seconds", type=_finite, metavar="S", help="impulse response length")
     p.add_argument("--yes", action="store_true", help="do not wait for Enter between positions")
     p.add_argument("--force", action="store_true", help="keep recordings that fail a gate")
     p.add_argument("--replace", action="store_true", help="allow a non-empty --out folder")
@@ -608,7 +652,7 @@ def _add_deconvolve(sub: Any) -> argparse.ArgumentParser:
     p.add_argument("recording", metavar="RECORDING.wav")
     p.add_argument("--sweep-settings", required=True, metavar="FILE.json")
     p.add_argument("--out", metavar="IR.wav", help="default: RECORDING_ir.wav")
-    p.add_argument("--loopback-channel", type=int, metavar="N",
+    p.add_argument("--loopback-channel", type=_whole, metavar="N",
                    help="channel of the loopback reference (default from the sweep settings)")
     p.add_argument("--align", action="store_true",
                    help="the recording did not start together with the playback (another "
@@ -704,7 +748,7 @@ def _add_compare(sub: Any) -> argparse.ArgumentParser:
     p.add_argument("b", nargs="?", metavar="B", help="later measurement (same forms as A)")
     p.add_argument("--room", metavar="ROOM_DIR", help="room folder (default: the one you are in)")
     p.add_argument(
-        "--temperature", type=float, metavar="C",
+        "--temperature", type=_finite, metavar="C",
         help="air temperature in °C for the speed of sound (default: design.temperature_c "
         "of the room settings, else 20)",
     )

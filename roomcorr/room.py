@@ -372,7 +372,9 @@ def load_room_settings(room: Room) -> Settings:
     from roomcorr.settings import settings_from_dict
 
     data = _read_room_toml(room.settings_path)
-    settings = settings_from_dict(data, source=str(room.settings_path))
+    settings = settings_from_dict(
+        data, source=str(room.settings_path), base_dir=room.settings_path.parent
+    )
     try:
         from roomcorr.measure.settings import MeasureSettings
     except ImportError:
