@@ -124,7 +124,8 @@ def system_sections(curves: dict[str, Any], png: Any) -> list[Any]:
     if not fields.get("outputs"):
         return []
     sec = Section(SECTION_ID, SECTION_TITLE)
-    sec.paragraphs.extend(system_sentences(fields))
+    # the per-output lines of the summary are the table here
+    sec.paragraphs.extend(line for line in system_sentences(fields) if not line.startswith("  "))
     sec.table = trims_table(fields)
     sys_curves = curves.get("system") or {}
     if "summed_after_db" in sys_curves:
