@@ -8,6 +8,7 @@ error and exit status 2. Subcommands are listed in ``_COMMANDS`` as
 from __future__ import annotations
 
 import argparse
+import contextlib
 import sys
 from collections.abc import Callable
 from pathlib import Path
@@ -320,10 +321,11 @@ def _design_and_write(
     force: bool = False,
 ) -> tuple[Any, list[dict]]:
     from roomcorr.audio_io import read_ir_set
-    from roomcorr.export import write_design
+    from roomcorr.export import check_out_dir, input_digests, write_design
     from roomcorr.grid import log_grid
     from roomcorr.pipeline import resolve_calibration, resolve_target, run_design
 
+    check_out_dir(out, replace)  # refuse before the work, not after it
     irs, fs, files = read_ir_set(ir_paths, require_impulse=not force)
     _names_from_measurement(files, settings)
     # every input is checked before the work starts (and the cautions are printed)
@@ -339,13 +341,12 @@ def _design_and_write(
     from roomcorr.design.safety import PEAK_BAND
 
     info = {"measurements": [str(f) for f in files], "peak_gain_band": PEAK_BAND}
+    info["inputs"] = input_digests(
+        files, settings.design.calibration, settings.design.target
+    )  # SHA-256 of every input, so the design can be reproduced and checked
     if extra:
         info.update(extra)
-    entries = write_design(result, out, replace=replace, extra=info)
-    if iir is not None:
-        from roomcorr.export_iir import write_iir
-
-        entries += write_iir(iir, out, fir=result)
+    entries = write_design(result, out, replace=replace, extra=info, iir=iir)
     return result, entries
 
 
@@ -472,11 +473,18 @@ def _add_report(sub: Any) -> argparse.ArgumentParser:
     p = sub.add_parser(
         "report",
         help="write report.html (and PNG figures) for a design or measurement folder",
-        description="Write one self-contained report.html into DIR (figures embedded, opens "
-        "from disk without network access) plus the figures as PNG files in DIR/report/. "
-        "DIR is a design output folder or a measurement session folder.",
+        description="Write one self-contained report.html (figures embedded, opens from disk "
+        "without network access) plus the figures as PNG files in report/. DIR is a design "
+        "output folder or a measurement session folder. The report goes into DIR when "
+        "roomcorr wrote DIR (in a room folder: beside the run), else into a new folder "
+        "DIR-report in the working folder; --out chooses another.",
     )
     p.add_argument("dir", metavar="DIR", help="design output folder or measurement folder")
+    p.add_argument(
+        "--out",
+        metavar="OUT_DIR",
+        help="folder for report.html and report/ (new, empty or holding an earlier report)",
+    )
     p.add_argument(
         "--compare-with",
         metavar="RUN_OR_FOLDER",
@@ -498,7 +506,7 @@ def _run_report(args: argparse.Namespace) -> int:
     from roomcorr.report.html import write_report
 
     folder = Path(args.dir)
-    path = write_report(folder, compare_with=args.compare_with)
+    path = write_report(folder, compare_with=args.compare_with, out_dir=args.out)
     if (folder / "manifest.json").is_file() and (folder / "design.npz").is_file():
         from roomcorr.export import load_design_curves, read_manifest
         from roomcorr.report.summary import summary_sentences
@@ -824,16 +832,49 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
+def _os_error_line(exc: OSError) -> str:
+    """One line for an operating-system error: the file it concerns and why."""
+    from roomcorr.atomic import disk_error_text
+
+    where = exc.filename if exc.filename is not None else ""
+    text = f"{where}: {disk_error_text(exc)}" if where else disk_error_text(exc)
+    return " ".join(text.split())
+
+
+def _quiet_broken_pipe() -> int:
+    """The reader of our output went away (``roomcorr compare --json | head``): stop
+    quietly, and keep Python from complaining when it flushes standard output at exit."""
+    import os
+
+    with contextlib.suppress(OSError, ValueError):
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+    return 141  # 128 + SIGPIPE, as a shell reports a command ended by a closed pipe
+
+
 def main(argv: list[str] | None = None) -> int:
     """Entry point of the ``roomcorr`` command; returns the exit status."""
     parser = build_parser()
     args = parser.parse_args(argv)
     runners = {name: run for name, _add, run in _COMMANDS}
     try:
-        return runners[args.command](args)
+        status = runners[args.command](args)
+        sys.stdout.flush()  # a closed pipe shows here, inside the handlers below
+        return status
     except RoomcorrError as exc:
         msg = " ".join(str(exc).split())
         print(f"{PROG}: error: {msg}", file=sys.stderr)
+        return 2
+    except BrokenPipeError:
+        return _quiet_broken_pipe()
+    except OSError as exc:  # disk full, read-only folder, name too long, ...
+        print(f"{PROG}: error: {_os_error_line(exc)}", file=sys.stderr)
+        return 2
+    except RuntimeError as exc:
+        if "Libsndfile" not in type(exc).__name__ and "SoundFile" not in type(exc).__name__:
+            raise
+        msg = " ".join(str(exc).split())
+        print(f"{PROG}: error: cannot read or write a sound file ({msg})", file=sys.stderr)
         return 2
     except KeyboardInterrupt:
         print(f"{PROG}: interrupted; files already complete were kept", file=sys.stderr)

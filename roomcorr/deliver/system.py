@@ -21,13 +21,11 @@ if TYPE_CHECKING:
     from roomcorr.pipeline import DesignResult
 
 
-def write_extra_formats(
-    result: DesignResult, out: Path, written: list[Path], sha256_of: Any
-) -> list[dict[str, Any]]:
+def write_extra_formats(result: DesignResult, out: Path, sha256_of: Any) -> list[dict[str, Any]]:
     """Write the filters in the formats chosen besides the per-channel WAV.
 
-    Paths of files this call created are appended to ``written`` (so the
-    caller can remove them if a later step fails).
+    ``out`` is the folder the design is being built in (the caller swaps it
+    into place as a whole, or removes it).
 
     Returns
     -------
@@ -45,10 +43,7 @@ def write_extra_formats(
     entries: list[dict[str, Any]] = []
     for rel, fmt, fs, ch, write in filter_files(result.firs, names, formats):
         path = out / rel
-        existed = path.exists()
         write(path)
-        if not existed:
-            written.append(path)
         entry: dict[str, Any] = {"path": rel, "kind": "fir", "format": fmt, "sample_rate": fs}
         if ch is None:
             entry["channels"] = names

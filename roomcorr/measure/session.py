@@ -26,6 +26,7 @@ from roomcorr.measure import deconvolve as dc
 from roomcorr.measure import quality as q
 from roomcorr.measure.settings import LEVEL_CAP_DBFS, MeasureSettings
 from roomcorr.measure.sweep import Sweep, playback_signal, sweep_starts, synchronized_sweep
+from roomcorr.room import refuse_finished_run
 
 RECORD_NAME = "measurement.json"
 PLAYBACK_NAME = "playback.wav"  # the exact signal played per loudspeaker (in raw/)
@@ -265,6 +266,7 @@ def run_measurement(
 
     ms.validate()
     out = Path(out_dir)
+    refuse_finished_run(out)
     if out.exists() and any(out.iterdir()):
         if not replace:
             raise OutputError(f"{out} is not empty; choose a new folder or pass --replace")
@@ -438,6 +440,7 @@ def deconvolve_file(
     if align:
         figures["aligned"] = ALIGN_NOTE
     dest = Path(out_path) if out_path else rec_path.with_name(rec_path.stem + "_ir.wav")
+    refuse_finished_run(dest)
     if dest.exists() and not replace:
         raise OutputError(f"{dest} exists; choose another --out or pass --replace")
     if not force:

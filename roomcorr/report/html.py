@@ -1148,10 +1148,73 @@ def report_comparison(
     return res
 
 
+def _ours(d: Path) -> bool:
+    """Whether folder ``d`` was written by roomcorr (a design, a measurement or a room run),
+    so its report may go into it; someone else's folder of WAVs is never written to."""
+    from roomcorr.errors import OutputError
+    from roomcorr.export import read_manifest
+
+    if (d / "complete.json").is_file():
+        return True
+    if (d / "manifest.json").is_file():
+        try:
+            return read_manifest(d).get("generator") == "roomcorr"
+        except OutputError:
+            return False
+    try:
+        record = json.loads((d / "measurement.json").read_text(encoding="utf-8"))
+    except (OSError, UnicodeDecodeError, json.JSONDecodeError):
+        return False
+    return isinstance(record, dict)
+
+
+def report_destination(folder: str | Path, out_dir: str | Path | None = None) -> Path:
+    """The folder ``roomcorr report FOLDER [--out OUT_DIR]`` writes into.
+
+    Default: ``folder`` itself when roomcorr wrote it (a design folder, a
+    measurement folder, a run of a room: the report goes beside the run as
+    before), else a new folder ``<name>-report`` in the working folder. A
+    given or default folder must be new, empty or hold an earlier report only.
+
+    Raises
+    ------
+    OutputError
+        For a destination that is a link, a file, a finished room run (other
+        than the reported run itself), or a folder holding other files.
+    """
+    from roomcorr.errors import OutputError
+    from roomcorr.export import check_folder_target
+    from roomcorr.room import refuse_finished_run
+
+    d = Path(folder)
+    if out_dir is None:
+        dest = d if _ours(d) else Path.cwd() / f"{d.resolve().name}-report"
+        option = "report" if dest == d else f"report (default --out {dest})"
+    else:
+        dest = Path(out_dir)
+        option = f"--out {out_dir}"
+    check_folder_target(dest, option)
+    if dest.exists() and dest.resolve() == d.resolve():
+        return dest  # the folder itself (a finished run: its report goes beside its files)
+    refuse_finished_run(dest, option)
+    if not dest.exists():
+        return dest
+    others = sorted(p.name for p in dest.iterdir() if p.name not in (REPORT_HTML, FIG_DIR))
+    if others:
+        raise OutputError(
+            f"{option}: holds {others[0]}, which is not a roomcorr report; choose a new or "
+            "empty folder with --out"
+        )
+    return dest
+
+
 def write_report(
-    folder: str | Path, dpi: int = 90, compare_with: str | Path | None = None
+    folder: str | Path,
+    dpi: int = 90,
+    compare_with: str | Path | None = None,
+    out_dir: str | Path | None = None,
 ) -> Path:
-    """Write ``report.html`` and ``report/*.png`` into a design or measurement folder.
+    """Write ``report.html`` and ``report/*.png`` about a design or measurement folder.
 
     Parameters
     ----------
@@ -1164,17 +1227,28 @@ def write_report(
         Earlier measurement for the comparison section (see
         :func:`report_comparison`); by default a run folder of a room is
         compared with the room's previous complete measurement, if any.
+    out_dir : path, optional
+        Where to write (see :func:`report_destination` for the default).
 
     Returns
     -------
     Path of ``report.html``.
+
+    Notes
+    -----
+    The figures are written into a temporary folder that replaces
+    ``report/`` only when all of them and ``report.html`` are complete, so
+    an interrupted or failed report leaves the earlier one whole and nothing
+    half-written; a new destination folder appears only when it is complete.
     """
-    from roomcorr.atomic import atomic_write_bytes, atomic_write_text
-    from roomcorr.errors import InputFileError, OutputError
+    from roomcorr import room as rooms
+    from roomcorr.errors import InputFileError
 
     d = Path(folder)
     if not d.is_dir():
         raise InputFileError(f"{d}: no such folder; give a design or measurement folder")
+    rooms.verified(rooms.find_room(d), d)  # a damaged run of a room is named, not reported
+    dest = report_destination(d, out_dir)
     is_design = (d / "manifest.json").is_file() and (d / "design.npz").is_file()
     settings = None
     if is_design:
@@ -1197,33 +1271,76 @@ def write_report(
     iir = _read_iir(d) if is_design else None
     comparison = report_comparison(d, compare_with)
     report = build_report(curves, settings, quality, iir=iir, dpi=dpi, comparison=comparison)
-    fig_dir = d / FIG_DIR
-    try:
-        fig_dir.mkdir(exist_ok=True)
-        written = []
-        for s in report.sections:
-            for f in s.all_figures():
-                rel = f"{FIG_DIR}/{f.key}.png"
-                atomic_write_bytes(d / rel, f.png)
-                written.append(rel)
-        out = atomic_write_text(d / REPORT_HTML, render_html(report))
-    except OSError as exc:
-        raise OutputError(f"{d}: cannot write the report ({exc})") from None
     # A finished room run is sealed by its complete.json (SHA-256 of every file,
     # manifest included): the report is added beside it, never into its manifest.
-    if is_design and not (d / "complete.json").is_file():
-        from roomcorr.export import add_manifest_entries, read_manifest, sha256_of, write_manifest
+    same = dest.resolve() == d.resolve()
+    _write_report_files(
+        dest, report, list_in_manifest=same and is_design and not (d / "complete.json").is_file()
+    )
+    return dest / REPORT_HTML
 
-        manifest = read_manifest(d)
-        known = {e.get("path") for e in manifest.get("files", [])}
-        if known & {*written, REPORT_HTML}:  # a report written before: refresh its digests
-            for e in manifest["files"]:
-                if e.get("path") in {*written, REPORT_HTML}:
-                    e["sha256"] = sha256_of(d / e["path"])
-            write_manifest(d, manifest)
-        entries = [{"path": p, "kind": "report-figure"} for p in written if p not in known]
-        if REPORT_HTML not in known:
-            entries.append({"path": REPORT_HTML, "kind": "report"})
-        if entries:
-            add_manifest_entries(d, entries)
-    return out
+
+def _list_report_in_manifest(d: Path, written: list[str]) -> None:
+    from roomcorr.export import add_manifest_entries, read_manifest, sha256_of, write_manifest
+
+    manifest = read_manifest(d)
+    known = {e.get("path") for e in manifest.get("files", [])}
+    if known & {*written, REPORT_HTML}:  # a report written before: refresh its digests
+        manifest["files"] = [
+            e
+            for e in manifest["files"]
+            if not str(e["path"]).startswith(f"{FIG_DIR}/") or e["path"] in written
+        ]  # figures the new report no longer has went with the old report/
+        for e in manifest["files"]:
+            if e.get("path") in {*written, REPORT_HTML}:
+                e["sha256"] = sha256_of(d / e["path"])
+        write_manifest(d, manifest)
+    entries = [{"path": p, "kind": "report-figure"} for p in written if p not in known]
+    if REPORT_HTML not in known:
+        entries.append({"path": REPORT_HTML, "kind": "report"})
+    if entries:
+        add_manifest_entries(d, entries)
+
+
+def _write_report_files(dest: Path, report: Report, list_in_manifest: bool) -> list[str]:
+    """Write the figures and the page (and their manifest entries) into ``dest``, all or
+    nothing: the folder is built beside ``dest`` and swapped in when complete."""
+    import shutil
+
+    from roomcorr.atomic import (
+        atomic_write_bytes,
+        atomic_write_text,
+        disk_error_text,
+        holds_working_folder,
+        staged_copy,
+        staged_folder,
+    )
+    from roomcorr.errors import OutputError
+
+    figures = [f for s in report.sections for f in s.all_figures()]
+    written = [f"{FIG_DIR}/{f.key}.png" for f in figures]
+    page = render_html(report)
+    try:
+        if dest.exists() and holds_working_folder(dest):
+            # ``roomcorr report .``: the folder itself cannot be swapped under the
+            # shell that runs us, so only report/ is swapped in; then the page and
+            # the manifest are replaced, each atomically.
+            with staged_folder(dest / FIG_DIR) as stage:
+                for f in figures:
+                    atomic_write_bytes(stage / f"{f.key}.png", f.png)
+                atomic_write_text(dest / REPORT_HTML, page)
+            if list_in_manifest:
+                _list_report_in_manifest(dest, written)
+            return written
+        with staged_copy(dest) if dest.exists() else staged_folder(dest) as stage:
+            if (stage / FIG_DIR).is_dir():
+                shutil.rmtree(stage / FIG_DIR)  # links to the old figures; they stay intact
+            (stage / FIG_DIR).mkdir()
+            for f, rel in zip(figures, written, strict=True):
+                atomic_write_bytes(stage / rel, f.png)
+            atomic_write_text(stage / REPORT_HTML, page)
+            if list_in_manifest:
+                _list_report_in_manifest(stage, written)
+    except OSError as exc:
+        raise OutputError(f"{dest}: cannot write the report ({disk_error_text(exc)})") from None
+    return written
