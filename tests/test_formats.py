@@ -270,18 +270,12 @@ def test_report_has_the_system_section(design):
 
 
 def test_readme_route_picture_is_the_codes(design):
-    """The route picture in the README is the one the code draws (README.md, or the
-    branch's docs file until it is merged)."""
+    """The route picture in the README is the one the code draws."""
     from conftest import REPO
 
     result, _ = design
     picture = route_diagram(["left", "right", "sub"], result.system)
-    texts = [
-        p.read_text(encoding="utf-8")
-        for p in (REPO / "README.md", REPO / "docs_speakers.md")
-        if p.is_file()
-    ]
-    assert any(picture in t for t in texts)
+    assert picture in (REPO / "README.md").read_text(encoding="utf-8")
 
 
 def test_design_takes_the_names_measure_stored(ir_files, tmp_path):
