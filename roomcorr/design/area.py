@@ -615,6 +615,7 @@ def design_channel(
     max_boost_db: float = 4.0,
     max_cut_db: float = 15.0,
     name: str = "mono",
+    shrink: bool = True,
 ) -> ChannelPlan:
     """Design one channel's correction curve for the listening area.
 
@@ -635,6 +636,11 @@ def design_channel(
     max_boost_db, max_cut_db : float
     name : str
         Channel name for error messages.
+    shrink : bool
+        Apply the cross-validated strength per region (the prediction is made
+        either way). Off for main loudspeakers crossed over to a subwoofer:
+        there the bass is judged on the summed response by the system plan
+        (:mod:`roomcorr.design.align`), not on the main loudspeaker alone.
 
     Returns
     -------
@@ -664,6 +670,8 @@ def design_channel(
     strength, pred = cross_validate(
         f, measured_db, target, band, limit_hz, max_boost_db, max_cut_db
     )
+    if not shrink:
+        strength = np.ones_like(strength)
     # The rules above (caps, allowances, agreement) leave corners a filter of
     # the default length cannot follow; a light smoothing rounds them.
     smoothed = smooth_log_grid(corr * strength, points_per_octave_of(f), FINAL_SMOOTH_OCT)
