@@ -40,6 +40,8 @@ from roomcorr.atomic import (
     staged_folder,
 )
 from roomcorr.audio_io import write_wav
+from roomcorr.deliver.system import manifest_fields, system_curves, write_extra_formats
+from roomcorr.design.area import area_arrays_of, area_fields_of
 from roomcorr.design.mixedphase import from_arrays as mixed_phase_from_arrays
 from roomcorr.design.mixedphase import latency_record
 from roomcorr.design.mixedphase import to_arrays as mixed_phase_arrays
@@ -311,8 +313,10 @@ def _curves_dict(result: DesignResult) -> dict[str, np.ndarray]:
         ):
             data[f"ch{c.index}_{key}"] = getattr(c, key)
         data[f"ch{c.index}_band_hz"] = np.array(c.band_hz)
+        data.update({f"ch{c.index}_{k}": v for k, v in area_arrays_of(c).items()})
     for fs, h in result.firs.items():
         data[f"fir_{fs}"] = h
+    data.update(system_curves(result))
     if getattr(result, "mixed_phase", None) is not None:
         data.update(mixed_phase_arrays(result.mixed_phase))
     return data
@@ -369,6 +373,7 @@ def load_design_curves(out_dir: str | Path, verify: bool = True) -> dict[str, An
             "firs": firs,
             "channels": channels,
             "mixed_phase": mixed_phase_from_arrays(raw),
+            "system": {k[len("sys_") :]: v for k, v in raw.items() if k.startswith("sys_")},
         }
     except _DAMAGED_NPZ as exc:
         raise OutputError(f"{p}: damaged ({type(exc).__name__}: {exc}); design again") from None
@@ -462,6 +467,7 @@ def _write_design_files(
                     "sha256": sha256_of(path),
                 }
             )
+    entries += write_extra_formats(result, out, sha256_of)
     curves_path = out / CURVES
 
     def _save(tmp: Path) -> None:
@@ -475,12 +481,14 @@ def _write_design_files(
         "generator": "roomcorr",
         "pre_gain_db": round(result.pre_gain_db, 3),
         "channels": [
-            {"index": c.index, "name": c.name, "band_hz": list(c.band_hz)} for c in result.channels
+            {"index": c.index, "name": c.name, "band_hz": list(c.band_hz), **area_fields_of(c)}
+            for c in result.channels
         ],
         "files": entries,
         "settings": settings_to_dict(result.settings),
         "latency": latency,
     }
+    manifest.update(manifest_fields(result))
     if extra:
         manifest.update(extra)
     write_manifest(out, manifest)
