@@ -248,6 +248,21 @@ def test_browser_shows_history_and_draws_a_design(demo_room, tmp_path):
         wait.until(ec.text_to_be_present_in_element((By.ID, "status"), "design"))
         shot = Path(os.environ.get("ROOMCORR_UI_SHOT", tmp_path / "explore.png"))
         driver.save_screenshot(str(shot))
+        # Design: a change of the tilt redraws the preview; saving makes a new design run
+        n_designs = len(rooms.list_runs(demo_room, "design"))
+        driver.find_element(By.CSS_SELECTOR, "nav button[data-tab=design]").click()
+        wait.until(lambda d: len(d.find_elements(By.CSS_SELECTOR, "#design-plots canvas")) >= 2)
+        driver.execute_script(
+            "const s = document.getElementById('d-tilt'); s.value = -1.0;"
+            "s.dispatchEvent(new Event('input'));"
+        )
+        wait.until(ec.text_to_be_present_in_element((By.ID, "o-tilt"), "-1.0"))
+        wait.until(ec.text_to_be_present_in_element((By.ID, "status"), "preview of"))
+        driver.save_screenshot(str(shot.with_name("design.png")))
+        driver.find_element(By.ID, "d-save").click()
+        wait.until(ec.text_to_be_present_in_element((By.ID, "status"), "saved as design"))
+        assert len(rooms.list_runs(demo_room, "design")) == n_designs + 1
+        assert (demo_room.root / "targets" / "shaped.toml").is_file()
         driver.find_element(By.CSS_SELECTOR, "nav button[data-tab=files]").click()
         links = driver.find_elements(By.CSS_SELECTOR, "#files tbody a")
         assert any(a.text.endswith(".wav") for a in links)
@@ -281,3 +296,102 @@ def test_a_damaged_run_is_reported_not_served(client, demo_room):
         assert status[run_id] == "damaged"
     finally:
         wav.write_bytes(original)
+
+
+# --------------------------------------------------------------------------- design in the app
+
+
+def test_preview_is_the_designs_own_curves(demo_room):
+    # The same engine: the preview's correction equals run_design's for the same settings.
+    from roomcorr.app.design import DesignPreview
+    from roomcorr.audio_io import read_ir_set
+    from roomcorr.pipeline import run_design
+
+    prev = DesignPreview(demo_room)
+    view = prev.update({"target": "gentle-tilt", "max_boost_db": 3.0})
+    settings = rooms.load_room_settings(demo_room)
+    settings.design.target = "gentle-tilt"
+    settings.design.max_boost_db = 3.0
+    settings.design.sample_rates = (48000,)
+    files = rooms.measurement_files(rooms.latest_measurement(demo_room))
+    irs, fs, _ = read_ir_set([str(f) for f in files])
+    result = run_design(irs, fs, settings)
+    for ch_view, ch in zip(view["channels"], result.channels, strict=True):
+        np.testing.assert_allclose(ch_view["correction_db"], ch.correction_db[prev.keep], atol=0.01)
+        assert ch_view["band_hz"] == pytest.approx(ch.band_hz, abs=0.1)
+
+
+def test_app_design_gives_the_cli_filters_byte_for_byte(demo_room):
+    from roomcorr.app.design import DesignPreview
+
+    table = {"tilt_db_per_octave": -0.6, "bass_shelf_db": 2.0, "bass_shelf_hz": 150.0,
+             "points": [[3000.0, -1.0]]}
+    run_app, _ = DesignPreview(demo_room).save({"table": table, "max_boost_db": 3.5}, "evening")
+    target = demo_room.root / "targets" / "evening.toml"
+    assert target.is_file()
+    args = ["design", "--room", str(demo_room.root), "--target", str(target), "--max-boost", "3.5"]
+    assert cli.main(args) == 0
+    run_cli = rooms.list_runs(demo_room, "design", include_incomplete=False)[-1].path
+    assert run_cli != run_app
+    wavs = sorted(p.relative_to(run_app) for p in run_app.rglob("*.wav"))
+    assert wavs and wavs == sorted(p.relative_to(run_cli) for p in run_cli.rglob("*.wav"))
+    for rel in wavs:
+        assert (run_app / rel).read_bytes() == (run_cli / rel).read_bytes(), rel
+
+
+def test_preview_and_save_refusals(client, demo_room):
+    inf = b'{"max_boost_db": Infinity}'  # what a page could send; JSON itself has no inf
+    bad = client.post("/api/preview", headers={**_auth(), "content-type": "application/json"},
+                      content=inf)
+    assert bad.status_code == 400 and "max_boost_db" in bad.json()["error"]
+    bad = client.post("/api/preview", headers=_auth(), json={"max_boost_db": 40})
+    assert bad.status_code == 400  # the same limit as the command line (12 dB)
+    bad = client.post("/api/preview", headers=_auth(), content=b"[1, 2]")
+    assert bad.status_code == 400
+    bad = client.post("/api/save", headers=_auth(), json={"table": {"tilt_db_per_octave": 0},
+                                                          "name": "../escape"})
+    assert bad.status_code == 400 and not (demo_room.root.parent / "escape.toml").exists()
+    assert client.post("/api/preview", json={}).status_code == 403  # no token
+    hdr = {**_auth(), "origin": "http://evil.example"}
+    assert client.post("/api/save", headers=hdr, json={}).status_code == 403
+
+
+def test_save_waits_for_the_room_lock(client, demo_room):
+    before = len(rooms.list_runs(demo_room, "design"))
+    # Another process (a CLI command) holds the room: the app must refuse to write.
+    import subprocess
+    import sys
+
+    holder = subprocess.Popen(
+        [sys.executable, "-c",
+         "import sys, time; from roomcorr import room as r; "
+         f"room = r.open_room({str(demo_room.root)!r});\n"
+         "with r.room_lock(room, 'test holder'):\n print('held', flush=True); time.sleep(60)"],
+        stdout=subprocess.PIPE, text=True,
+    )
+    try:
+        assert holder.stdout.readline().strip() == "held"
+        r = client.post("/api/save", headers=_auth(), json={"target": "flat"})
+        assert r.status_code in (400, 409) and r.json()["error"]
+        assert len(rooms.list_runs(demo_room, "design")) == before
+    finally:
+        holder.kill()
+        holder.wait()
+
+
+def test_live_channel_needs_the_token_and_reports_a_saved_design(client, demo_room):
+    from starlette.websockets import WebSocketDisconnect
+
+    live = f"ws://127.0.0.1:{PORT}/api/live"
+    for refused in (live, f"{live}?token=wrong", f"ws://evil.example:{PORT}/api/live?token={TOKEN}"):
+        with pytest.raises(WebSocketDisconnect) as closed:
+            with client.websocket_connect(refused) as ws:
+                ws.receive_json()
+        assert closed.value.code == 1008  # policy violation
+    with client.websocket_connect(f"{live}?token={TOKEN}") as ws:
+        assert ws.receive_json() == {"type": "hello"}
+        r = client.post("/api/save", headers=_auth(), json={"target": "flat"})
+        assert r.status_code == 200, r.text
+        assert ws.receive_json() == {"type": "design", "state": "started"}
+        done = ws.receive_json()
+        assert done["state"] == "finished" and done["run_id"] == r.json()["run_id"]

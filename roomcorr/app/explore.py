@@ -38,7 +38,7 @@ def _thin(freq_hz: np.ndarray) -> np.ndarray:
     return np.arange(0, freq_hz.size, step)
 
 
-def _run(room: rooms.Room, kind: str, run_id: str) -> Path:
+def run_folder(room: rooms.Room, kind: str, run_id: str) -> Path:
     """The folder of run ``run_id`` of ``kind``, contained in the room folder.
 
     Raises
@@ -89,7 +89,7 @@ def design_view(room: rooms.Room, run_id: str) -> dict[str, Any]:
     """
     from roomcorr.design.fir import fir_response_db
 
-    folder = _run(room, "design", run_id)
+    folder = run_folder(room, "design", run_id)
     rooms.verified(room, folder, use=[folder / "design.npz", folder / "manifest.json"])
     curves = load_design_curves(folder)
     freq = np.asarray(curves["freq_hz"], dtype=float)
@@ -154,7 +154,7 @@ def measurement_view(room: rooms.Room, run_id: str) -> dict[str, Any]:
     The same analysis as the design's (:func:`roomcorr.pipeline.analyse_positions`),
     without a calibration; curves are in dB relative to full scale.
     """
-    folder = _run(room, "measurement", run_id)
+    folder = run_folder(room, "measurement", run_id)
     files = rooms.measurement_files(folder)
     rooms.verified(room, folder, use=files)
     irs, fs, _ = read_ir_set([str(p) for p in files])
@@ -180,7 +180,7 @@ def measurement_view(room: rooms.Room, run_id: str) -> dict[str, Any]:
 
 def run_files(room: rooms.Room, run_id: str) -> list[dict[str, Any]]:
     """The files a design run wrote, as its manifest lists them (path, kind, SHA-256...)."""
-    folder = _run(room, "design", run_id)
+    folder = run_folder(room, "design", run_id)
     rooms.verified(room, folder, use=[folder / "manifest.json"])
     entries = []
     for e in read_manifest(folder).get("files", []):
@@ -198,7 +198,7 @@ def run_file(room: rooms.Room, kind: str, run_id: str, rel_path: str) -> Path:
         For anything outside the run folder (``..``, absolute paths, links
         leading out), a folder, or a missing file.
     """
-    folder = _run(room, kind, run_id)
+    folder = run_folder(room, kind, run_id)
     rel = Path(rel_path)
     if rel.is_absolute() or ".." in rel.parts:
         raise InputFileError(f"{rel_path}: not a file of run {run_id}")

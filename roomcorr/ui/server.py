@@ -32,11 +32,14 @@ from starlette.applications import Starlette
 from starlette.concurrency import run_in_threadpool
 from starlette.requests import Request
 from starlette.responses import FileResponse, JSONResponse, Response
-from starlette.routing import Route
+from starlette.routing import Route, WebSocketRoute
+from starlette.websockets import WebSocket, WebSocketDisconnect
 
 from roomcorr import app as service
 from roomcorr import room as rooms
+from roomcorr.app.design import DesignPreview
 from roomcorr.errors import RoomcorrError
+from roomcorr.settings import find_preset, preset_names, read_toml
 
 TOKEN_HEADER = "x-roomcorr-token"
 TOKEN_COOKIE = "roomcorr_token"
@@ -119,6 +122,43 @@ def _error(exc: Exception, status: int = 400) -> JSONResponse:
     return JSONResponse({"error": " ".join(str(exc).split())}, status_code=status)
 
 
+class Live:
+    """The live channel: every connected page gets each event (design started, done...)."""
+
+    def __init__(self) -> None:
+        self.sockets: set[WebSocket] = set()
+
+    async def publish(self, event: dict[str, Any]) -> None:
+        for ws in list(self.sockets):
+            try:
+                await ws.send_json(event)
+            except Exception:  # noqa: BLE001 - a page that went away
+                self.sockets.discard(ws)
+
+    async def endpoint(self, ws: WebSocket) -> None:
+        await ws.accept()
+        self.sockets.add(ws)
+        await ws.send_json({"type": "hello"})
+        try:
+            while True:
+                await ws.receive_text()  # the page sends nothing; this waits for it to leave
+        except WebSocketDisconnect:
+            pass
+        finally:
+            self.sockets.discard(ws)
+
+
+def target_presets() -> list[dict[str, Any]]:
+    """The bundled target presets with their ``[target]`` tables (for the app's editor)."""
+    out = []
+    for name in preset_names():
+        path = find_preset(name)
+        table = read_toml(path).get("target") if path is not None else None
+        if isinstance(table, dict):
+            out.append({"name": name, "table": table})
+    return out
+
+
 def create_app(room: rooms.Room, token: str, port: int) -> ASGIApp:
     """The app for one room folder, guarded by :class:`Guard`.
 
@@ -156,6 +196,46 @@ def create_app(room: rooms.Room, token: str, port: int) -> ASGIApp:
             path, media_type=_STATIC_TYPES.get(path.suffix, "application/octet-stream")
         )
 
+    live = Live()
+    previews: dict[str, DesignPreview] = {}
+
+    def preview_for(measurement: str | None) -> DesignPreview:
+        key = measurement or ""
+        if key not in previews:
+            previews.clear()  # one measurement at a time: the analysis is large
+            previews[key] = DesignPreview(room, measurement or None)
+        return previews[key]
+
+    async def body(request: Request) -> dict[str, Any]:
+        try:
+            data = await request.json()
+        except ValueError:
+            raise RoomcorrError("request: expected a JSON object") from None
+        if not isinstance(data, dict):
+            raise RoomcorrError("request: expected a JSON object")
+        return data
+
+    async def preview(request: Request) -> Response:
+        try:
+            edit = await body(request)
+            prev = await run_in_threadpool(preview_for, edit.get("measurement"))
+            data = await run_in_threadpool(prev.update, edit)
+        except RoomcorrError as exc:
+            return _error(exc)
+        return Response(json.dumps(data, allow_nan=False), media_type="application/json")
+
+    async def save(request: Request) -> Response:
+        try:
+            edit = await body(request)
+            prev = await run_in_threadpool(preview_for, edit.get("measurement"))
+            await live.publish({"type": "design", "state": "started"})
+            run_dir, entries = await run_in_threadpool(prev.save, edit, str(edit.get("name", "")))
+        except RoomcorrError as exc:
+            await live.publish({"type": "design", "state": "failed", "error": str(exc)})
+            return _error(exc, 409 if "lock" in str(exc) or "held" in str(exc) else 400)
+        await live.publish({"type": "design", "state": "finished", "run_id": run_dir.name})
+        return JSONResponse({"run_id": run_dir.name, "files": len(entries)})
+
     async def run_file(request: Request) -> Response:
         p = request.path_params
         try:
@@ -177,6 +257,10 @@ def create_app(room: rooms.Room, token: str, port: int) -> ASGIApp:
         ),
         Route("/api/files/{run_id}", api(lambda run_id: service.run_files(room, run_id))),
         Route("/api/file/{kind}/{run_id}/{path:path}", run_file),
+        Route("/api/presets", api(target_presets)),
+        Route("/api/preview", preview, methods=["POST"]),
+        Route("/api/save", save, methods=["POST"]),
+        WebSocketRoute("/api/live", live.endpoint),
     ]
     return Guard(Starlette(routes=routes), token, port)
 

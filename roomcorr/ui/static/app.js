@@ -18,8 +18,14 @@ function status(text, isError) {
   el.className = isError ? "error" : "";
 }
 
-async function api(path) {
-  const resp = await fetch(path, { headers: { "x-roomcorr-token": TOKEN } });
+async function api(path, body) {
+  const init = { headers: { "x-roomcorr-token": TOKEN } };
+  if (body !== undefined) {
+    init.method = "POST";
+    init.headers["content-type"] = "application/json";
+    init.body = JSON.stringify(body);
+  }
+  const resp = await fetch(path, init);
   const data = await resp.json();
   if (!resp.ok) throw new Error(data.error || resp.statusText);
   return data;
@@ -28,7 +34,7 @@ async function api(path) {
 function showTab(name) {
   document.querySelectorAll("nav button").forEach(b => b.classList.toggle("active", b.dataset.tab === name));
   document.querySelectorAll(".tab").forEach(t => t.classList.toggle("active", t.id === "tab-" + name));
-  plots.forEach(p => p.setSize(plotSize()));
+  [...plots, ...designPlots].forEach(p => p.setSize(plotSize()));
 }
 
 function plotSize() {
@@ -52,7 +58,7 @@ function describe(run) {
   return parts.join(", ");
 }
 
-async function loadRoom() {
+async function loadRoom(quiet = false) {
   const room = await api("/api/room");
   document.getElementById("room-name").textContent = room.name;
   const body = document.querySelector("#runs tbody");
@@ -72,7 +78,8 @@ async function loadRoom() {
     }
     body.appendChild(tr);
   }
-  status(`${room.runs.length} runs in ${room.root}`);
+  if (!quiet) status(`${room.runs.length} runs in ${room.root}`);
+  fillMeasurements(room.runs);
 }
 
 function clearPlots() {
@@ -87,13 +94,13 @@ function hzLabel(v) {
   return v >= 1000 ? `${v / 1000}k` : `${v}`;
 }
 
-function addPlot(title, note, x, series, yLabel, logX = true) {
+function addPlot(title, note, x, series, yLabel, logX = true, where = "plots") {
   const box = document.createElement("div");
   box.className = "plot";
   box.innerHTML = `<h3></h3><p></p>`;
   box.querySelector("h3").textContent = title;
   box.querySelector("p").textContent = note;
-  document.getElementById("plots").appendChild(box);
+  document.getElementById(where).appendChild(box);
   const opts = {
     ...plotSize(),
     scales: { x: logX ? { time: false, distr: 3, log: 10, range: (u, lo, hi) => [lo, hi] } : { time: false }, y: {} },
@@ -214,6 +221,153 @@ async function loadFiles(runId) {
   }
 }
 
-document.querySelectorAll("nav button").forEach(b => b.addEventListener("click", () => showTab(b.dataset.tab)));
-window.addEventListener("resize", () => plots.forEach(p => p.setSize(plotSize())));
-loadRoom().catch(err => status(String(err.message || err), true));
+
+// ---------------------------------------------------------------- design tab
+const designPlots = [];
+let presets = [];
+let shaped = false;
+let pending = null;
+
+function el(id) { return document.getElementById(id); }
+
+function fillMeasurements(runs) {
+  const sel = el("d-measurement");
+  const keep = sel.value;
+  sel.innerHTML = "";
+  runs.filter(r => r.kind === "measurement" && r.status === "complete").reverse().forEach(r => {
+    const o = document.createElement("option");
+    o.value = r.run_id; o.textContent = r.run_id; sel.appendChild(o);
+  });
+  if (keep) sel.value = keep;
+}
+
+function setControls(table) {
+  el("d-tilt").value = table.tilt_db_per_octave || 0;
+  el("d-shelf").value = table.bass_shelf_db || 0;
+  el("d-shelf-hz").value = table.bass_shelf_hz || 120;
+  const body = document.querySelector("#d-points tbody");
+  body.innerHTML = "";
+  (table.points || []).forEach(([f, g]) => addPointRow(f, g));
+  showValues();
+}
+
+function addPointRow(f, g) {
+  const tr = document.createElement("tr");
+  tr.innerHTML = `<td><input type="number" min="10" max="24000" value="${f}"> Hz</td>
+    <td><input type="number" min="-20" max="20" step="0.5" value="${g}"> dB</td><td><button type="button">remove</button></td>`;
+  tr.querySelectorAll("input").forEach(i => i.addEventListener("input", () => { shaped = true; schedule(); }));
+  tr.querySelector("button").addEventListener("click", () => { tr.remove(); shaped = true; schedule(); });
+  document.querySelector("#d-points tbody").appendChild(tr);
+}
+
+function showValues() {
+  el("o-tilt").textContent = Number(el("d-tilt").value).toFixed(1);
+  el("o-shelf").textContent = Number(el("d-shelf").value).toFixed(1);
+  el("o-shelf-hz").textContent = el("d-shelf-hz").value;
+  el("o-boost").textContent = Number(el("d-boost").value).toFixed(1);
+}
+
+function currentEdit() {
+  const edit = { measurement: el("d-measurement").value || null, max_boost_db: Number(el("d-boost").value) };
+  if (el("d-lo").value) edit.band_lo_hz = Number(el("d-lo").value);
+  if (el("d-hi").value) edit.band_hi_hz = Number(el("d-hi").value);
+  if (shaped) {
+    const points = [...document.querySelectorAll("#d-points tbody tr")].map(tr => {
+      const [f, g] = tr.querySelectorAll("input");
+      return [Number(f.value), Number(g.value)];
+    }).filter(([f]) => f > 0);
+    edit.table = { tilt_db_per_octave: Number(el("d-tilt").value), tilt_pivot_hz: 1000.0,
+      bass_shelf_db: Number(el("d-shelf").value), bass_shelf_hz: Number(el("d-shelf-hz").value) };
+    if (points.length) edit.table.points = points.sort((a, b) => a[0] - b[0]);
+  } else {
+    edit.target = el("d-preset").value;
+  }
+  return edit;
+}
+
+function schedule() {
+  showValues();
+  if (pending) clearTimeout(pending);
+  pending = setTimeout(runPreview, 60);
+}
+
+async function runPreview() {
+  pending = null;
+  const t0 = performance.now();
+  try {
+    const view = await api("/api/preview", currentEdit());
+    drawPreview(view);
+    status(`preview of ${view.measurement} in ${(performance.now() - t0).toFixed(0)} ms`);
+  } catch (err) {
+    status(String(err.message || err), true);
+  }
+}
+
+function drawPreview(view) {
+  while (designPlots.length) designPlots.pop().destroy();
+  el("design-plots").innerHTML = "";
+  const words = [];
+  view.channels.forEach((ch, c) => {
+    const pred = ch.average_db.map((v, i) => (v == null || ch.correction_db[i] == null ? null : v + ch.correction_db[i]));
+    const before = plots.length;
+    addPlot(`${ch.name}: average, target and predicted`, `Band ${ch.band_hz[0].toFixed(0)}–${ch.band_hz[1].toFixed(0)} Hz.`, view.freq_hz, [
+      { label: "measured average", data: ch.average_db, color: COLORS[1], width: 1.5 },
+      { label: "target", data: ch.target_db, color: "#23303b", width: 1.5, dash: [6, 4] },
+      { label: "predicted average", data: pred, color: COLORS[0], width: 2 },
+      { label: "correction", data: ch.correction_db, color: COLORS[2], width: 1.5, show: false },
+      { label: "boost withheld", data: ch.boost_withheld_db, color: COLORS[3], show: false },
+    ], "level (dB)", true, "design-plots");
+    addPlot(`${ch.name}: predicted at every position`, "", view.freq_hz,
+      ch.predicted_db.map((m, p) => ({ label: view.positions[p], data: m, color: COLORS[p % COLORS.length], width: 1.1 })),
+      "level (dB)", true, "design-plots");
+    designPlots.push(...plots.splice(before));
+    if (ch.bass_variation_db) {
+      words.push(`${ch.name}: the bass varies by about ${ch.bass_variation_db.now.toFixed(1)} dB now; ` +
+        `expect about ${ch.bass_variation_db.unmeasured_seats.toFixed(1)} dB at seats you did not measure.`);
+    }
+  });
+  el("design-text").textContent = words.join(" ");
+}
+
+async function saveDesign() {
+  const edit = currentEdit();
+  status("designing filters ...");
+  try {
+    const res = await api("/api/save", { ...edit, name: el("d-name").value });
+    await loadRoom(true);
+    status(`saved as design ${res.run_id} (${res.files} files)`);
+  } catch (err) {
+    status(String(err.message || err), true);
+  }
+}
+
+async function setupDesign() {
+  presets = await api("/api/presets");
+  const sel = el("d-preset");
+  presets.forEach(p => { const o = document.createElement("option"); o.value = p.name; o.textContent = p.name; sel.appendChild(o); });
+  sel.value = presets.some(p => p.name === "flat") ? "flat" : (presets[0] || {}).name;
+  const pick = () => { const p = presets.find(q => q.name === sel.value); setControls(p ? p.table : {}); shaped = false; schedule(); };
+  sel.addEventListener("change", pick);
+  ["d-tilt", "d-shelf", "d-shelf-hz"].forEach(id => el(id).addEventListener("input", () => { shaped = true; schedule(); }));
+  ["d-boost", "d-lo", "d-hi", "d-measurement"].forEach(id => el(id).addEventListener("input", schedule));
+  el("d-add-point").addEventListener("click", () => { addPointRow(1000, 0); shaped = true; schedule(); });
+  el("d-save").addEventListener("click", saveDesign);
+  const p = presets.find(q => q.name === sel.value);
+  setControls(p ? p.table : {});
+}
+
+function connectLive() {
+  const proto = location.protocol === "https:" ? "wss" : "ws";
+  const ws = new WebSocket(`${proto}://${location.host}/api/live?token=${encodeURIComponent(TOKEN)}`);
+  ws.onmessage = msg => {
+    const ev = JSON.parse(msg.data);
+    if (ev.type === "design" && ev.state === "finished") loadRoom(true).catch(() => {});
+  };
+}
+
+document.querySelectorAll("nav button").forEach(b => b.addEventListener("click", () => {
+  showTab(b.dataset.tab);
+  if (b.dataset.tab === "design" && !designPlots.length) schedule();
+}));
+window.addEventListener("resize", () => [...plots, ...designPlots].forEach(p => p.setSize(plotSize())));
+loadRoom().then(setupDesign).then(connectLive).catch(err => status(String(err.message || err), true));
