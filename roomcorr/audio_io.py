@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import re
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 
@@ -64,9 +65,31 @@ def write_wav(path: str | Path, data: np.ndarray, fs: int, subtype: str = "FLOAT
     frames = arr[:, None] if arr.ndim == 1 else arr.T
 
     def _write(tmp: Path) -> None:
-        sf.write(str(tmp), frames, int(fs), subtype=subtype, format="WAV")
+        with sf.SoundFile(str(tmp), "w", int(fs), frames.shape[1], subtype, format="WAV") as f:
+            _no_peak_chunk(f)
+            f.write(frames)
 
     return atomic_write_with(path, _write)
+
+
+#: libsndfile's SFC_SET_ADD_PEAK_CHUNK command (sndfile.h).
+_SFC_SET_ADD_PEAK_CHUNK = 0x1050
+
+
+def _no_peak_chunk(f: Any) -> None:
+    """Leave out libsndfile's PEAK chunk, which stamps float WAVs with the time of writing.
+
+    Without it the same filter gives the same bytes whenever it is written, so
+    a design can be repeated and checked byte for byte (its SHA-256 too). The
+    command exists only in libsndfile's C interface, which python-soundfile
+    keeps as ``soundfile._snd``; where that is missing the chunk stays (harmless).
+    """
+    import soundfile as sf
+
+    snd, ffi = getattr(sf, "_snd", None), getattr(sf, "_ffi", None)
+    handle = getattr(f, "_file", None)
+    if snd is not None and ffi is not None and handle is not None:
+        snd.sf_command(handle, _SFC_SET_ADD_PEAK_CHUNK, ffi.NULL, 0)
 
 
 def check_ir(data: np.ndarray, fs: int, name: str) -> None:

@@ -299,25 +299,6 @@ def _print_design_summary(result: Any, out: Path, entries: list[dict]) -> None:
         )
 
 
-def _names_from_measurement(files: list[Path], settings: Any) -> None:
-    """Channel names stored by ``measure --names`` when the design has none of its own."""
-    import json
-
-    from roomcorr.settings import design_from_dict
-
-    if settings.design.channel_names is not None:
-        return
-    for folder in dict.fromkeys(Path(f).parent for f in files):
-        p = folder / "measurement.json"
-        try:
-            names = json.loads(p.read_text(encoding="utf-8")).get("settings", {}).get("names")
-        except (OSError, ValueError, AttributeError):
-            continue
-        if names:
-            settings.design = design_from_dict({"channel_names": names}, base=settings.design)
-            return
-
-
 def _print_system_summary(result: Any) -> None:
     from roomcorr.deliver.routes import route_diagram
     from roomcorr.deliver.system import manifest_fields, system_sentences
@@ -338,34 +319,11 @@ def _design_and_write(
     extra: dict | None = None,
     force: bool = False,
 ) -> tuple[Any, list[dict]]:
-    from roomcorr.audio_io import read_ir_set
-    from roomcorr.export import check_out_dir, input_digests, write_design
-    from roomcorr.grid import log_grid
-    from roomcorr.pipeline import resolve_calibration, resolve_target, run_design
+    from roomcorr.app.design import design_from_files
 
-    check_out_dir(out, replace)  # refuse before the work, not after it
-    irs, fs, files = read_ir_set(ir_paths, require_impulse=not force)
-    _names_from_measurement(files, settings)
-    # every input is checked before the work starts (and the cautions are printed)
-    resolve_target(log_grid(), settings.design.target)
-    resolve_calibration(log_grid(), settings.design.calibration)
-    _print_cautions()
-    result = run_design(irs, fs, settings)
-    iir = None
-    if settings.design.iir:
-        from roomcorr.design.iir_fit import design_iir
-
-        iir = design_iir(result)  # fitted and safety-checked before anything is written
-    from roomcorr.design.safety import PEAK_BAND
-
-    info = {"measurements": [str(f) for f in files], "peak_gain_band": PEAK_BAND}
-    info["inputs"] = input_digests(
-        files, settings.design.calibration, settings.design.target
-    )  # SHA-256 of every input, so the design can be reproduced and checked
-    if extra:
-        info.update(extra)
-    entries = write_design(result, out, replace=replace, extra=info, iir=iir)
-    return result, entries
+    return design_from_files(
+        ir_paths, out, settings, replace, extra=extra, force=force, on_start=_print_cautions
+    )
 
 
 def _add_design(sub: Any) -> argparse.ArgumentParser:
@@ -417,18 +375,19 @@ def _run_design(args: argparse.Namespace) -> int:
         raise SettingsError(
             "design: give --out DIR, or run it inside a room folder (see roomcorr init)"
         )
+    from roomcorr.app.design import design_in_room
+
     settings = settings_from_args(args, rooms.load_room_settings(room))
-    if args.irs:
-        paths = [str(p) for p in args.irs]
-        source = {"measurement": None, "measurement_paths": paths}
-    else:
-        meas = rooms.latest_measurement(room)
-        paths = [str(p) for p in rooms.measurement_files(meas)]
-        source = {"measurement": meas.name}
-        print(f"Using the latest measurement: {meas.relative_to(room.root)}")
-    with rooms.new_run(room, "design", info=dict(source)) as run_dir:
-        result, entries = _design_and_write(paths, run_dir, settings, False, extra=source,
-                                            force=args.force)
+    run_dir, result, entries = design_in_room(
+        room,
+        settings,
+        ir_paths=args.irs or None,
+        force=args.force,
+        on_start=_print_cautions,
+        on_source=lambda meas: print(
+            f"Using the latest measurement: {meas.relative_to(room.root)}"
+        ),
+    )
     _print_design_summary(result, run_dir, entries)
     return 0
 
@@ -820,6 +779,43 @@ def _run_compare(args: argparse.Namespace) -> int:
 
 # --------------------------------------------------------------------------- main
 
+# --------------------------------------------------------------------------- browser app
+
+
+def _add_ui(sub: Any) -> argparse.ArgumentParser:
+    p = sub.add_parser(
+        "ui",
+        help="open the room in a local browser app (explore runs, plots, files)",
+        description="Start a local server on 127.0.0.1 (a free port) for a room folder and open "
+        "it in the browser. The printed address holds a one-time key; only this machine can "
+        "reach it. Ctrl-C stops it.",
+    )
+    p.add_argument("room", nargs="?", metavar="ROOM_DIR", help="room folder (default: this one)")
+    p.add_argument("--port", type=int, default=0, help="port (default: a free one)")
+    p.add_argument("--no-browser", action="store_true", help="only print the address")
+    return p
+
+
+def _run_ui(args: argparse.Namespace) -> int:
+    from roomcorr import room as rooms
+
+    room = rooms.open_room(args.room or ".")
+    if not 0 <= args.port <= 65535:
+        raise SettingsError(f"--port {args.port}: give a port from 1 to 65535 (0: a free one)")
+    try:
+        from roomcorr.ui.server import serve
+    except ImportError as exc:
+        raise RoomcorrError(
+            f"the browser app needs its server packages ({exc.name} is missing); install them "
+            "with pip install \".[ui]\" from the roomcorr folder"
+        ) from None
+    try:
+        serve(room, port=args.port, open_browser=not args.no_browser)
+    except OSError as exc:
+        raise RoomcorrError(f"cannot start the app on port {args.port}: {exc.strerror}") from None
+    return 0
+
+
 _COMMANDS: list[tuple[str, Callable[[Any], argparse.ArgumentParser], Callable[..., int]]] = [
     ("demo", _add_demo, _run_demo),
     ("design", _add_design, _run_design),
@@ -830,6 +826,7 @@ _COMMANDS: list[tuple[str, Callable[[Any], argparse.ArgumentParser], Callable[..
     ("init", _add_init, _run_init),
     ("history", _add_history, _run_history),
     ("compare", _add_compare, _run_compare),
+    ("ui", _add_ui, _run_ui),
 ]
 
 

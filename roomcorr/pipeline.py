@@ -36,7 +36,10 @@ __all__ = [
     "ChannelDesign",
     "DesignResult",
     "FilterStats",
+    "Analysis",
+    "analyse",
     "analyse_positions",
+    "design_curves",
     "resolve_calibration",
     "resolve_target",
     "run_design",
@@ -229,27 +232,27 @@ def _subwoofer_channel(
     )
 
 
-def run_design(
-    irs: np.ndarray,
-    fs: int,
-    settings: Settings,
-    channel_names: list[str] | None = None,
-) -> DesignResult:
-    """Design correction filters for every channel of a measurement set.
+@dataclass
+class Analysis:
+    """What a design needs from the measurement, before any target is applied.
 
-    Parameters
-    ----------
-    irs : ndarray, shape (n_positions, n_channels, n_samples)
-        One impulse response per microphone position and loudspeaker.
-    fs : int
-        Sample rate of ``irs``.
-    settings : Settings
-    channel_names : list of str, optional
-
-    Returns
-    -------
-    DesignResult
+    Computing it is the slow part of a design (windows, smoothing, the steady
+    state); :func:`design_curves` then takes milliseconds, so an interactive
+    target editor computes it once per measurement.
     """
+
+    freq_hz: np.ndarray
+    fs: int
+    measured_db: np.ndarray  # (n_positions, n_channels, n_freqs)
+    arrival_s: np.ndarray  # (n_positions, n_channels)
+    weights: np.ndarray | None
+    names: list[str]
+
+
+def analyse(
+    irs: np.ndarray, fs: int, settings: Settings, channel_names: list[str] | None = None
+) -> Analysis:
+    """Windowed, smoothed, calibrated level of every position and channel (see run_design)."""
     d = settings.design
     n_pos, n_ch, _ = irs.shape
     names = channel_names or channel_names_for(n_ch, d.channel_names)
@@ -262,13 +265,22 @@ def run_design(
             )
         weights = np.asarray(d.position_weights)
     freq = log_grid()
-    target_shape = resolve_target(freq, d.target)
     cal = resolve_calibration(freq, d.calibration)
     measured, arrival = analyse_positions(irs, fs, freq, cal)
     # Broad balance from the steady state, detail from the window (analysis/balance.py).
     measured = steady_balance_set(irs, fs, freq, measured, arrival)
+    return Analysis(freq, fs, measured, arrival, weights, names)
+
+
+def design_curves(
+    analysis: Analysis, settings: Settings, target_shape: np.ndarray
+) -> list[ChannelDesign]:
+    """The correction curve of every channel from an :class:`Analysis` and a target shape."""
+    d = settings.design
+    freq, measured, arrival = analysis.freq_hz, analysis.measured_db, analysis.arrival_s
+    weights, names, fs = analysis.weights, analysis.names, analysis.fs
     channels: list[ChannelDesign] = []
-    for c in range(n_ch):
+    for c in range(measured.shape[1]):
         if names[c] == d.subwoofer:
             # A subwoofer's band and level come from its own range (design/align.py).
             channels.append(
@@ -310,6 +322,35 @@ def run_design(
                 held_back_db=plan.held_back_db,
             )
         )
+    return channels
+
+
+def run_design(
+    irs: np.ndarray,
+    fs: int,
+    settings: Settings,
+    channel_names: list[str] | None = None,
+) -> DesignResult:
+    """Design correction filters for every channel of a measurement set.
+
+    Parameters
+    ----------
+    irs : ndarray, shape (n_positions, n_channels, n_samples)
+        One impulse response per microphone position and loudspeaker.
+    fs : int
+        Sample rate of ``irs``.
+    settings : Settings
+    channel_names : list of str, optional
+
+    Returns
+    -------
+    DesignResult
+    """
+    d = settings.design
+    analysis = analyse(irs, fs, settings, channel_names)
+    target_shape = resolve_target(analysis.freq_hz, d.target)
+    channels = design_curves(analysis, settings, target_shape)
+    freq, arrival, weights = analysis.freq_hz, analysis.arrival_s, analysis.weights
     lowest = min(ch.band_hz[0] for ch in channels)
     firs: dict[int, np.ndarray] = {}
     for rate in d.sample_rates:

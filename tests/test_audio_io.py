@@ -97,3 +97,20 @@ def test_curve_file_errors(tmp_path):
     p.write_text("100 1\n")
     with pytest.raises(InputFileError, match="at least two"):
         read_curve_file(p)
+
+
+def test_float_wavs_carry_no_time_stamp(tmp_path):
+    # libsndfile stamps float WAVs with the time of writing (its PEAK chunk, which a plain
+    # soundfile.write adds); roomcorr's writer leaves the chunk out, so the same filter is
+    # the same bytes whenever it is written and a design can be checked byte for byte.
+    import soundfile as sf
+
+    from roomcorr.audio_io import write_wav
+
+    x = np.linspace(-0.5, 0.5, 64)
+    sf.write(tmp_path / "plain.wav", x, 48000, subtype="FLOAT")
+    assert b"PEAK" in (tmp_path / "plain.wav").read_bytes()  # what the writer must avoid
+    ours = write_wav(tmp_path / "a.wav", x, 48000).read_bytes()
+    assert b"PEAK" not in ours
+    back, fs = sf.read(tmp_path / "a.wav", dtype="float64")
+    assert fs == 48000 and np.array_equal(back, x.astype(np.float32))

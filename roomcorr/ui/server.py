@@ -1,0 +1,299 @@
+"""The browser app's server: Starlette routes on uvicorn, bound to the loopback address.
+
+Security model (every rule has a test in ``tests/test_ui_server.py``):
+
+* The socket is bound to 127.0.0.1 only.
+* Every request, the page and its static files included, must carry the
+  session token: as the ``token`` query parameter (the address printed at
+  start), the ``x-roomcorr-token`` header (the page's own requests) or the
+  cookie the page receives with the first valid request.
+* The ``Host`` header must name the loopback address and the server's port,
+  and an ``Origin`` header, when present, must be that same origin: a page on
+  another site that resolves its name to 127.0.0.1 (DNS rebinding) is refused.
+* Only files inside the room folder can be read, by run id and a path
+  relative to the run (see :mod:`roomcorr.app.explore`).
+"""
+
+from __future__ import annotations
+
+import json
+import secrets
+import socket
+import webbrowser
+from collections.abc import Awaitable, Callable, MutableMapping
+from http.cookies import SimpleCookie
+from importlib import resources
+from pathlib import Path
+from typing import Any
+from urllib.parse import parse_qs
+
+import uvicorn
+from starlette.applications import Starlette
+from starlette.concurrency import run_in_threadpool
+from starlette.requests import Request
+from starlette.responses import FileResponse, JSONResponse, Response
+from starlette.routing import Route, WebSocketRoute
+from starlette.websockets import WebSocket, WebSocketDisconnect
+
+from roomcorr import app as service
+from roomcorr import room as rooms
+from roomcorr.app.design import DesignPreview
+from roomcorr.errors import RoomcorrError
+from roomcorr.settings import find_preset, preset_names, read_toml
+
+TOKEN_HEADER = "x-roomcorr-token"
+TOKEN_COOKIE = "roomcorr_token"
+LOOPBACK = "127.0.0.1"
+
+Scope = MutableMapping[str, Any]
+Message = MutableMapping[str, Any]
+ASGIApp = Callable[
+    [Scope, Callable[[], Awaitable[Message]], Callable[[Message], Awaitable[None]]], Awaitable[None]
+]
+
+_STATIC_TYPES = {
+    ".html": "text/html",
+    ".js": "text/javascript",
+    ".css": "text/css",
+    ".txt": "text/plain",
+}
+
+
+def static_dir() -> Path:
+    """Folder of the page's files (HTML, JS, CSS and the plotting library with its licence)."""
+    return Path(str(resources.files("roomcorr.ui") / "static"))
+
+
+class Guard:
+    """ASGI middleware enforcing the token, the Host and the Origin rules.
+
+    Parameters
+    ----------
+    app : ASGI application
+    token : str
+        The session token.
+    port : int
+        The port the server listens on (part of the allowed Host and Origin).
+    """
+
+    def __init__(self, app: ASGIApp, token: str, port: int) -> None:
+        self.app = app
+        self.token = token
+        self.hosts = {f"{LOOPBACK}:{port}", f"localhost:{port}"}
+        self.origins = {f"http://{h}" for h in self.hosts}
+
+    def _allowed(self, scope: Scope) -> str | None:
+        headers = {k.decode("latin-1").lower(): v.decode("latin-1") for k, v in scope["headers"]}
+        if headers.get("host", "") not in self.hosts:
+            return "host not allowed"
+        origin = headers.get("origin")
+        if origin is not None and origin not in self.origins:
+            return "origin not allowed"
+        candidates = [headers.get(TOKEN_HEADER, "")]
+        query = parse_qs(scope.get("query_string", b"").decode("latin-1"))
+        candidates += query.get("token", [])
+        if "cookie" in headers:
+            jar: SimpleCookie = SimpleCookie()
+            try:
+                jar.load(headers["cookie"])
+            except Exception:  # noqa: BLE001 - a malformed cookie is simply no token
+                jar = SimpleCookie()
+            if TOKEN_COOKIE in jar:
+                candidates.append(jar[TOKEN_COOKIE].value)
+        if not any(c and secrets.compare_digest(c, self.token) for c in candidates):
+            return "token missing or wrong"
+        return None
+
+    async def __call__(self, scope: Scope, receive: Any, send: Any) -> None:
+        if scope["type"] not in ("http", "websocket"):
+            await self.app(scope, receive, send)
+            return
+        reason = self._allowed(scope)
+        if reason is None:
+            await self.app(scope, receive, send)
+            return
+        if scope["type"] == "websocket":
+            await send({"type": "websocket.close", "code": 1008})
+            return
+        await JSONResponse({"error": f"refused: {reason}"}, status_code=403)(scope, receive, send)
+
+
+def _error(exc: Exception, status: int = 400) -> JSONResponse:
+    return JSONResponse({"error": " ".join(str(exc).split())}, status_code=status)
+
+
+class Live:
+    """The live channel: every connected page gets each event (design started, done...)."""
+
+    def __init__(self) -> None:
+        self.sockets: set[WebSocket] = set()
+
+    async def publish(self, event: dict[str, Any]) -> None:
+        for ws in list(self.sockets):
+            try:
+                await ws.send_json(event)
+            except Exception:  # noqa: BLE001 - a page that went away
+                self.sockets.discard(ws)
+
+    async def endpoint(self, ws: WebSocket) -> None:
+        await ws.accept()
+        self.sockets.add(ws)
+        await ws.send_json({"type": "hello"})
+        try:
+            while True:
+                await ws.receive_text()  # the page sends nothing; this waits for it to leave
+        except WebSocketDisconnect:
+            pass
+        finally:
+            self.sockets.discard(ws)
+
+
+def target_presets() -> list[dict[str, Any]]:
+    """The bundled target presets with their ``[target]`` tables (for the app's editor)."""
+    out = []
+    for name in preset_names():
+        path = find_preset(name)
+        table = read_toml(path).get("target") if path is not None else None
+        if isinstance(table, dict):
+            out.append({"name": name, "table": table})
+    return out
+
+
+def create_app(room: rooms.Room, token: str, port: int) -> ASGIApp:
+    """The app for one room folder, guarded by :class:`Guard`.
+
+    Parameters
+    ----------
+    room : roomcorr.room.Room
+    token : str
+    port : int
+        Port the server is bound to.
+    """
+
+    def api(func: Callable[..., Any]) -> Callable[[Request], Awaitable[Response]]:
+        async def endpoint(request: Request) -> Response:
+            try:
+                data = await run_in_threadpool(func, **request.path_params)
+            except RoomcorrError as exc:
+                return _error(exc, 404 if "no such" in str(exc) or "not a" in str(exc) else 400)
+            return Response(json.dumps(data, allow_nan=False), media_type="application/json")
+
+        return endpoint
+
+    async def index(request: Request) -> Response:
+        resp = FileResponse(static_dir() / "index.html", media_type="text/html")
+        resp.set_cookie(TOKEN_COOKIE, token, httponly=True, samesite="strict")
+        resp.headers["cache-control"] = "no-store"
+        return resp
+
+    async def static(request: Request) -> Response:
+        name = request.path_params["name"]
+        files = {p.name: p for p in static_dir().iterdir() if p.is_file()}
+        if name not in files:
+            return JSONResponse({"error": f"{name}: no such file"}, status_code=404)
+        path = files[name]
+        return FileResponse(
+            path, media_type=_STATIC_TYPES.get(path.suffix, "application/octet-stream")
+        )
+
+    live = Live()
+    previews: dict[str, DesignPreview] = {}
+
+    def preview_for(measurement: str | None) -> DesignPreview:
+        key = measurement or ""
+        if key not in previews:
+            previews.clear()  # one measurement at a time: the analysis is large
+            previews[key] = DesignPreview(room, measurement or None)
+        return previews[key]
+
+    async def body(request: Request) -> dict[str, Any]:
+        try:
+            data = await request.json()
+        except ValueError:
+            raise RoomcorrError("request: expected a JSON object") from None
+        if not isinstance(data, dict):
+            raise RoomcorrError("request: expected a JSON object")
+        return data
+
+    async def preview(request: Request) -> Response:
+        try:
+            edit = await body(request)
+            prev = await run_in_threadpool(preview_for, edit.get("measurement"))
+            data = await run_in_threadpool(prev.update, edit)
+        except RoomcorrError as exc:
+            return _error(exc)
+        return Response(json.dumps(data, allow_nan=False), media_type="application/json")
+
+    async def save(request: Request) -> Response:
+        try:
+            edit = await body(request)
+            prev = await run_in_threadpool(preview_for, edit.get("measurement"))
+            await live.publish({"type": "design", "state": "started"})
+            run_dir, entries = await run_in_threadpool(prev.save, edit, str(edit.get("name", "")))
+        except RoomcorrError as exc:
+            await live.publish({"type": "design", "state": "failed", "error": str(exc)})
+            return _error(exc, 409 if "lock" in str(exc) or "held" in str(exc) else 400)
+        await live.publish({"type": "design", "state": "finished", "run_id": run_dir.name})
+        return JSONResponse({"run_id": run_dir.name, "files": len(entries)})
+
+    async def run_file(request: Request) -> Response:
+        p = request.path_params
+        try:
+            path = await run_in_threadpool(
+                service.run_file, room, p["kind"], p["run_id"], p["path"]
+            )
+        except RoomcorrError as exc:
+            return _error(exc, 404)
+        return FileResponse(path, filename=path.name)
+
+    routes = [
+        Route("/", index),
+        Route("/static/{name}", static),
+        Route("/api/room", api(lambda: service.room_overview(room))),
+        Route("/api/design/{run_id}", api(lambda run_id: service.design_view(room, run_id))),
+        Route(
+            "/api/measurement/{run_id}",
+            api(lambda run_id: service.measurement_view(room, run_id)),
+        ),
+        Route("/api/files/{run_id}", api(lambda run_id: service.run_files(room, run_id))),
+        Route("/api/file/{kind}/{run_id}/{path:path}", run_file),
+        Route("/api/presets", api(target_presets)),
+        Route("/api/preview", preview, methods=["POST"]),
+        Route("/api/save", save, methods=["POST"]),
+        WebSocketRoute("/api/live", live.endpoint),
+    ]
+    return Guard(Starlette(routes=routes), token, port)
+
+
+def bind_loopback(port: int = 0) -> socket.socket:
+    """A listening TCP socket on 127.0.0.1 (``port=0``: a free port chosen by the system)."""
+    sock = socket.socket(socket.AF_INET, socket.SOCK_STREAM)
+    sock.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)
+    sock.bind((LOOPBACK, port))
+    sock.listen(64)
+    return sock
+
+
+def serve(
+    room: rooms.Room, port: int = 0, open_browser: bool = True, log: Callable[[str], None] = print
+) -> None:
+    """Run the app for ``room`` until Ctrl-C.
+
+    Prints the address with the session token; opens it in the browser unless
+    ``open_browser`` is false.
+    """
+    sock = bind_loopback(port)
+    real_port = sock.getsockname()[1]
+    token = secrets.token_urlsafe(24)
+    app = create_app(room, token, real_port)
+    url = f"http://{LOOPBACK}:{real_port}/?token={token}"
+    log(f"roomcorr app for {room.root} at {url}")
+    log("Only this machine can reach it; the address holds a one-time key. Ctrl-C stops it.")
+    config = uvicorn.Config(app, log_level="warning", lifespan="off")
+    server = uvicorn.Server(config)
+    if open_browser:
+        webbrowser.open(url)
+    try:
+        server.run(sockets=[sock])
+    finally:
+        sock.close()

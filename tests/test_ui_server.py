@@ -1,0 +1,397 @@
+"""The browser app's server: the same data as the command line, and every refusal.
+
+The security rules tested here are the module docstring's of
+:mod:`roomcorr.ui.server`; the numbers the app serves are checked against the
+design files themselves and against scipy (an outside reference).
+"""
+
+from __future__ import annotations
+
+import os
+import shutil
+import threading
+import time
+from pathlib import Path
+
+import numpy as np
+import pytest
+import scipy.signal
+import soundfile as sf
+
+pytest.importorskip("starlette")
+pytest.importorskip("uvicorn")
+
+from starlette.testclient import TestClient  # noqa: E402
+
+from roomcorr import cli  # noqa: E402
+from roomcorr import room as rooms  # noqa: E402
+from roomcorr.export import load_design_curves  # noqa: E402
+from roomcorr.ui.server import TOKEN_HEADER, bind_loopback, create_app  # noqa: E402
+
+REPO = Path(__file__).resolve().parents[1]
+TOKEN = "test-token-0123456789"
+PORT = 48321  # only used in the Host header; TestClient opens no socket
+
+
+@pytest.fixture(scope="module")
+def demo_room(tmp_path_factory) -> rooms.Room:
+    """A room folder with the demo measurement and one design made by the CLI."""
+    root = tmp_path_factory.mktemp("ui") / "den"
+    room = rooms.init_room(root)
+    rooms.add_measurement(room, sorted((REPO / "measurements_demo").glob("*.wav")))
+    assert cli.main(["design", "--room", str(root), "--rates", "48000"]) == 0
+    return room
+
+
+@pytest.fixture()
+def client(demo_room) -> TestClient:
+    return TestClient(create_app(demo_room, TOKEN, PORT), base_url=f"http://127.0.0.1:{PORT}")
+
+
+def _auth() -> dict[str, str]:
+    return {TOKEN_HEADER: TOKEN}
+
+
+def _design_id(room: rooms.Room) -> str:
+    return rooms.list_runs(room, "design", include_incomplete=False)[-1].run_id
+
+
+# --------------------------------------------------------------------------- same engine
+
+
+def test_room_lists_the_same_runs_as_history(client, demo_room):
+    data = client.get("/api/room", headers=_auth()).json()
+    expect = rooms.history(demo_room)
+    assert [(r["kind"], r["run_id"], r["status"]) for r in data["runs"]] == [
+        (r["kind"], r["run_id"], r["status"]) for r in expect
+    ]
+    assert data["name"] == rooms.room_name(demo_room)
+
+
+def test_design_view_serves_the_design_files_curves(client, demo_room):
+    run_id = _design_id(demo_room)
+    view = client.get(f"/api/design/{run_id}", headers=_auth()).json()
+    curves = load_design_curves(demo_room.designs_dir / run_id)
+    freq = curves["freq_hz"]
+    x = np.array(view["freq_hz"])
+    idx = np.searchsorted(freq, x - 0.01)
+    for ch_view, ch in zip(view["channels"], curves["channels"], strict=True):
+        np.testing.assert_allclose(ch_view["correction_db"], ch["correction_db"][idx], atol=1e-3)
+        np.testing.assert_allclose(ch_view["target_db"], ch["target_db"][idx], atol=1e-3)
+        predicted = np.array(ch_view["predicted_db"], dtype=float)
+        expect = ch["measured_db"][:, idx] + ch["correction_db"][idx]
+        np.testing.assert_allclose(predicted, expect, atol=2e-3)
+
+
+def test_filter_magnitude_matches_scipy_freqz_of_the_wav(client, demo_room):
+    # Outside reference: scipy.signal.freqz of the exported WAV file.
+    run_id = _design_id(demo_room)
+    view = client.get(f"/api/design/{run_id}", headers=_auth()).json()
+    filt = view["filters"]["48000"][0]
+    path = demo_room.designs_dir / run_id / "fir" / "48000" / f"{filt['channel']}.wav"
+    h, fs = sf.read(path, dtype="float64")
+    f = np.array(filt["freq_hz"])
+    _, resp = scipy.signal.freqz(h, worN=f, fs=fs)
+    np.testing.assert_allclose(filt["magnitude_db"], 20 * np.log10(np.abs(resp)), atol=0.01)
+
+
+def test_files_list_and_download_with_matching_sha256(client, demo_room):
+    import hashlib
+
+    run_id = _design_id(demo_room)
+    files = client.get(f"/api/files/{run_id}", headers=_auth()).json()
+    wav = next(f for f in files if f["path"].endswith(".wav"))
+    got = client.get(f"/api/file/design/{run_id}/{wav['path']}", headers=_auth())
+    assert got.status_code == 200
+    assert hashlib.sha256(got.content).hexdigest() == wav["sha256"]
+
+
+def test_measurement_view_has_every_position(client, demo_room):
+    run_id = rooms.latest_measurement(demo_room).name
+    view = client.get(f"/api/measurement/{run_id}", headers=_auth()).json()
+    n_pos = len(rooms.measurement_files(demo_room.measurements_dir / run_id))
+    assert len(view["positions"]) == n_pos
+    assert all(len(ch["measured_db"]) == n_pos for ch in view["channels"])
+
+
+# --------------------------------------------------------------------------- refusals
+
+
+def test_token_is_required_everywhere(client, demo_room):
+    run_id = _design_id(demo_room)
+    for path in ("/", "/static/app.js", "/api/room", f"/api/design/{run_id}"):
+        assert client.get(path).status_code == 403, path
+        assert client.get(path, headers={TOKEN_HEADER: "wrong"}).status_code == 403, path
+    assert client.get("/", params={"token": TOKEN}).status_code == 200
+
+
+def test_page_sets_a_cookie_that_carries_the_token(client):
+    first = client.get("/", params={"token": TOKEN})
+    assert first.status_code == 200 and "roomcorr_token" in first.cookies
+    assert client.get("/api/room").status_code == 200  # the client keeps the cookie
+
+
+def test_foreign_host_and_origin_are_refused(demo_room):
+    # DNS rebinding: a foreign name resolving to 127.0.0.1 still sends its own Host.
+    app = create_app(demo_room, TOKEN, PORT)
+    evil = TestClient(app, base_url=f"http://evil.example:{PORT}")
+    assert evil.get("/api/room", headers=_auth()).status_code == 403
+    wrong_port = TestClient(app, base_url=f"http://127.0.0.1:{PORT + 1}")
+    assert wrong_port.get("/api/room", headers=_auth()).status_code == 403
+    good = TestClient(app, base_url=f"http://127.0.0.1:{PORT}")
+    hdr = {**_auth(), "origin": "http://evil.example"}
+    assert good.get("/api/room", headers=hdr).status_code == 403
+    hdr = {**_auth(), "origin": f"http://localhost:{PORT}"}
+    assert good.get("/api/room", headers=hdr).status_code == 200
+
+
+@pytest.mark.parametrize(
+    "path",
+    [
+        "/api/file/design/{run}/../../roomcorr-room.toml",
+        "/api/file/design/{run}/%2e%2e/%2e%2e/roomcorr-room.toml",
+        "/api/file/design/{run}//etc/passwd",
+        "/api/file/design/../designs/{run}/manifest.json",
+        "/api/file/elsewhere/{run}/manifest.json",
+        "/api/file/design/{run}/fir",
+        "/api/design/..",
+        "/api/design/.hidden",
+        "/api/static/../server.py",
+        "/static/..%2fserver.py",
+    ],
+)
+def test_nothing_outside_the_room_can_be_read(client, demo_room, path):
+    r = client.get(path.format(run=_design_id(demo_room)), headers=_auth())
+    assert r.status_code in (403, 404), r.text
+
+
+def test_a_link_leading_out_of_the_run_is_refused(client, demo_room, tmp_path):
+    secret = tmp_path / "secret.txt"
+    secret.write_text("not yours")
+    run_id = _design_id(demo_room)
+    link = demo_room.designs_dir / run_id / "escape.txt"
+    os.symlink(secret, link)
+    try:
+        r = client.get(f"/api/file/design/{run_id}/escape.txt", headers=_auth())
+        assert r.status_code == 404 and "not yours" not in r.text
+    finally:
+        link.unlink()
+
+
+def test_the_server_binds_loopback_only():
+    sock = bind_loopback(0)
+    try:
+        assert sock.getsockname()[0] == "127.0.0.1"
+    finally:
+        sock.close()
+
+
+# --------------------------------------------------------------------------- real browser
+
+
+def _browser_available() -> tuple[str, str] | None:
+    exe = shutil.which("chromium") or shutil.which("chromium-browser")
+    driver = shutil.which("chromedriver")
+    return (exe, driver) if exe and driver else None
+
+
+def test_browser_shows_history_and_draws_a_design(demo_room, tmp_path):
+    found = _browser_available()
+    if found is None:
+        if os.environ.get("CI") == "true":
+            pytest.fail("chromium and chromium-driver must be installed (the CI script does)")
+        pytest.skip("chromium or chromedriver not installed")
+    pytest.importorskip("selenium")
+    import uvicorn
+    from selenium import webdriver
+    from selenium.webdriver.chrome.service import Service
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.support import expected_conditions as ec
+    from selenium.webdriver.support.ui import WebDriverWait
+
+    sock = bind_loopback(0)
+    port = sock.getsockname()[1]
+    server = uvicorn.Server(
+        uvicorn.Config(create_app(demo_room, TOKEN, port), log_level="warning", lifespan="off")
+    )
+    thread = threading.Thread(target=server.run, kwargs={"sockets": [sock]}, daemon=True)
+    thread.start()
+    opts = webdriver.ChromeOptions()
+    opts.binary_location = found[0]
+    for flag in (
+        "--headless",
+        "--no-sandbox",
+        "--disable-gpu",
+        "--disable-quic",
+        "--no-first-run",
+        "--disable-background-networking",
+        "--disable-component-update",
+        "--disable-sync",
+        f"--user-data-dir={tmp_path / 'profile'}",
+        "--window-size=1300,2200",
+    ):
+        opts.add_argument(flag)
+    opts.set_capability("goog:loggingPrefs", {"browser": "ALL"})
+    driver = webdriver.Chrome(service=Service(found[1]), options=opts)
+    try:
+        while not server.started:
+            time.sleep(0.05)
+        driver.get(f"http://127.0.0.1:{port}/?token={TOKEN}")
+        wait = WebDriverWait(driver, 60)
+        rows = wait.until(lambda d: d.find_elements(By.CSS_SELECTOR, "#runs tbody tr.pick"))
+        n_runs = len(rooms.history(demo_room))
+        assert len(driver.find_elements(By.CSS_SELECTOR, "#runs tbody tr")) == n_runs
+        assert "token" not in driver.current_url  # the key does not stay in the address bar
+        design_row = next(r for r in rows if r.text.startswith("design"))
+        design_row.click()
+        wait.until(lambda d: len(d.find_elements(By.CSS_SELECTOR, "#plots canvas")) >= 4)
+        wait.until(ec.text_to_be_present_in_element((By.ID, "status"), "design"))
+        shot = Path(os.environ.get("ROOMCORR_UI_SHOT", tmp_path / "explore.png"))
+        driver.save_screenshot(str(shot))
+        # Design: a change of the tilt redraws the preview; saving makes a new design run
+        n_designs = len(rooms.list_runs(demo_room, "design"))
+        driver.find_element(By.CSS_SELECTOR, "nav button[data-tab=design]").click()
+        wait.until(lambda d: len(d.find_elements(By.CSS_SELECTOR, "#design-plots canvas")) >= 2)
+        driver.execute_script(
+            "const s = document.getElementById('d-tilt'); s.value = -1.0;"
+            "s.dispatchEvent(new Event('input'));"
+        )
+        wait.until(ec.text_to_be_present_in_element((By.ID, "o-tilt"), "-1.0"))
+        wait.until(ec.text_to_be_present_in_element((By.ID, "status"), "preview of"))
+        driver.save_screenshot(str(shot.with_name("design.png")))
+        driver.find_element(By.ID, "d-save").click()
+        wait.until(ec.text_to_be_present_in_element((By.ID, "status"), "saved as design"))
+        assert len(rooms.list_runs(demo_room, "design")) == n_designs + 1
+        assert (demo_room.root / "targets" / "shaped.toml").is_file()
+        driver.find_element(By.CSS_SELECTOR, "nav button[data-tab=files]").click()
+        links = driver.find_elements(By.CSS_SELECTOR, "#files tbody a")
+        assert any(a.text.endswith(".wav") for a in links)
+        severe = [e for e in driver.get_log("browser") if e["level"] == "SEVERE"]
+        assert not severe, severe
+    finally:
+        driver.quit()
+        server.should_exit = True
+        thread.join(timeout=10)
+        sock.close()
+    from matplotlib.image import imread
+
+    img = imread(shot)[..., :3]
+    background = np.median(img.reshape(-1, 3), axis=0)
+    differs = np.any(np.abs(img - background) > 0.1, axis=-1)
+    assert differs.mean() > 0.03 and img.std() > 0.03  # not blank
+
+
+def test_a_damaged_run_is_reported_not_served(client, demo_room):
+    # Verification on read (complete.json's SHA-256): a changed filter file is refused.
+    run_id = _design_id(demo_room)
+    wav = next((demo_room.designs_dir / run_id / "fir" / "48000").glob("*.wav"))
+    original = wav.read_bytes()
+    try:
+        wav.write_bytes(original[:-4] + b"\x00\x00\x80\x7f")  # last sample +inf
+        rel = wav.relative_to(demo_room.designs_dir / run_id).as_posix()
+        r = client.get(f"/api/file/design/{run_id}/{rel}", headers=_auth())
+        assert r.status_code in (400, 404) and "damaged" in r.json()["error"]
+        room = client.get("/api/room", headers=_auth()).json()
+        status = {x["run_id"]: x["status"] for x in room["runs"]}
+        assert status[run_id] == "damaged"
+    finally:
+        wav.write_bytes(original)
+
+
+# --------------------------------------------------------------------------- design in the app
+
+
+def test_preview_is_the_designs_own_curves(demo_room):
+    # The same engine: the preview's correction equals run_design's for the same settings.
+    from roomcorr.app.design import DesignPreview
+    from roomcorr.audio_io import read_ir_set
+    from roomcorr.pipeline import run_design
+
+    prev = DesignPreview(demo_room)
+    view = prev.update({"target": "gentle-tilt", "max_boost_db": 3.0})
+    settings = rooms.load_room_settings(demo_room)
+    settings.design.target = "gentle-tilt"
+    settings.design.max_boost_db = 3.0
+    settings.design.sample_rates = (48000,)
+    files = rooms.measurement_files(rooms.latest_measurement(demo_room))
+    irs, fs, _ = read_ir_set([str(f) for f in files])
+    result = run_design(irs, fs, settings)
+    for ch_view, ch in zip(view["channels"], result.channels, strict=True):
+        np.testing.assert_allclose(ch_view["correction_db"], ch.correction_db[prev.keep], atol=0.01)
+        assert ch_view["band_hz"] == pytest.approx(ch.band_hz, abs=0.1)
+
+
+def test_app_design_gives_the_cli_filters_byte_for_byte(demo_room):
+    from roomcorr.app.design import DesignPreview
+
+    table = {"tilt_db_per_octave": -0.6, "bass_shelf_db": 2.0, "bass_shelf_hz": 150.0,
+             "points": [[3000.0, -1.0]]}
+    run_app, _ = DesignPreview(demo_room).save({"table": table, "max_boost_db": 3.5}, "evening")
+    target = demo_room.root / "targets" / "evening.toml"
+    assert target.is_file()
+    args = ["design", "--room", str(demo_room.root), "--target", str(target), "--max-boost", "3.5"]
+    assert cli.main(args) == 0
+    run_cli = rooms.list_runs(demo_room, "design", include_incomplete=False)[-1].path
+    assert run_cli != run_app
+    wavs = sorted(p.relative_to(run_app) for p in run_app.rglob("*.wav"))
+    assert wavs and wavs == sorted(p.relative_to(run_cli) for p in run_cli.rglob("*.wav"))
+    for rel in wavs:
+        assert (run_app / rel).read_bytes() == (run_cli / rel).read_bytes(), rel
+
+
+def test_preview_and_save_refusals(client, demo_room):
+    inf = b'{"max_boost_db": Infinity}'  # what a page could send; JSON itself has no inf
+    bad = client.post("/api/preview", headers={**_auth(), "content-type": "application/json"},
+                      content=inf)
+    assert bad.status_code == 400 and "max_boost_db" in bad.json()["error"]
+    bad = client.post("/api/preview", headers=_auth(), json={"max_boost_db": 40})
+    assert bad.status_code == 400  # the same limit as the command line (12 dB)
+    bad = client.post("/api/preview", headers=_auth(), content=b"[1, 2]")
+    assert bad.status_code == 400
+    bad = client.post("/api/save", headers=_auth(), json={"table": {"tilt_db_per_octave": 0},
+                                                          "name": "../escape"})
+    assert bad.status_code == 400 and not (demo_room.root.parent / "escape.toml").exists()
+    assert client.post("/api/preview", json={}).status_code == 403  # no token
+    hdr = {**_auth(), "origin": "http://evil.example"}
+    assert client.post("/api/save", headers=hdr, json={}).status_code == 403
+
+
+def test_save_waits_for_the_room_lock(client, demo_room):
+    before = len(rooms.list_runs(demo_room, "design"))
+    # Another process (a CLI command) holds the room: the app must refuse to write.
+    import subprocess
+    import sys
+
+    holder = subprocess.Popen(
+        [sys.executable, "-c",
+         "import sys, time; from roomcorr import room as r; "
+         f"room = r.open_room({str(demo_room.root)!r});\n"
+         "with r.room_lock(room, 'test holder'):\n print('held', flush=True); time.sleep(60)"],
+        stdout=subprocess.PIPE, text=True,
+    )
+    try:
+        assert holder.stdout.readline().strip() == "held"
+        r = client.post("/api/save", headers=_auth(), json={"target": "flat"})
+        assert r.status_code in (400, 409) and r.json()["error"]
+        assert len(rooms.list_runs(demo_room, "design")) == before
+    finally:
+        holder.kill()
+        holder.wait()
+
+
+def test_live_channel_needs_the_token_and_reports_a_saved_design(client, demo_room):
+    from starlette.websockets import WebSocketDisconnect
+
+    live = f"ws://127.0.0.1:{PORT}/api/live"
+    for refused in (live, f"{live}?token=wrong", f"ws://evil.example:{PORT}/api/live?token={TOKEN}"):
+        with pytest.raises(WebSocketDisconnect) as closed:
+            with client.websocket_connect(refused) as ws:
+                ws.receive_json()
+        assert closed.value.code == 1008  # policy violation
+    with client.websocket_connect(f"{live}?token={TOKEN}") as ws:
+        assert ws.receive_json() == {"type": "hello"}
+        r = client.post("/api/save", headers=_auth(), json={"target": "flat"})
+        assert r.status_code == 200, r.text
+        assert ws.receive_json() == {"type": "design", "state": "started"}
+        done = ws.receive_json()
+        assert done["state"] == "finished" and done["run_id"] == r.json()["run_id"]
