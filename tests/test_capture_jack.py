@@ -19,14 +19,14 @@ from roomcorr.measure import capture
 from roomcorr.measure.deconvolve import band_energy_error_db
 from roomcorr.measure.quality import QualityGateError
 from roomcorr.measure.session import (
-    NO_LOOPBACK_NOTE,
+    TIMING_NOTE,
     analyse_recording,
+    capture_signal,
     make_sweep,
     run_measurement,
     sweep_layout,
 )
 from roomcorr.measure.settings import MeasureSettings
-from roomcorr.measure.sweep import playback_signal
 
 DELAY = 280  # samples: about 2 m of air at 48 kHz
 
@@ -93,7 +93,7 @@ def test_measure_matches_room_removes_latency_and_sees_distortion(make_room, tmp
     # ...and, across the whole sweep band, it equals the offline, noise-free deconvolution
     # of the same room (scipy convolution, no audio server, no latency).
     sw = make_sweep(ms)
-    play = playback_signal(sw, ms.noise_s, ms.tail_s, ms.repeats)
+    play = capture_signal(sweep_layout(ms), 1)[0][0]  # output 1: sweeps and markers
     from scipy.signal import fftconvolve
 
     offline = fftconvolve(play, h)[: len(play)]
@@ -118,16 +118,28 @@ def test_measure_matches_room_removes_latency_and_sees_distortion(make_room, tmp
 
 
 def test_disconnected_speaker_is_caught(make_room, tmp_path):  # noqa: F811
-    make_room("roomsim_b", {"speakers": [{"ir": None}], "noise_rms": 1e-3, "seed": 2})
-    ms = MeasureSettings(device="roomsim_b", outputs=(1,), input=1, repeats=1, **QUICK)
+    # output 1 (the reference) plays, output 2 is not connected
+    make_room("roomsim_b", {"speakers": [{"ir": [0.0] * 40 + [0.5]}, {"ir": None}],
+                            "noise_rms": 1e-3, "seed": 2})
+    ms = MeasureSettings(device="roomsim_b", outputs=(1, 2), input=1, repeats=1, **QUICK)
     with pytest.raises(QualityGateError, match="no arrival"):
         run_measurement(ms, tmp_path / "out", yes=True, say=lambda s: None)
     stored = json.loads((tmp_path / "out" / "measurement.json").read_text())
-    assert stored["latency_note"] == NO_LOOPBACK_NOTE
-    gates = {g["name"]: g["passed"] for g in stored["positions"][0]["channels"][0]["gates"]}
-    assert gates["arrival"] is False
+    assert stored["latency_note"] == TIMING_NOTE
+    gates = {g["name"]: g["passed"] for g in stored["positions"][0]["channels"][1]["gates"]}
+    assert gates["arrival"] is False and gates["timing_reference"] is True
+    assert "no arrival" in stored["positions"][0]["skipped"]  # --yes skips the position
     assert not (tmp_path / "out" / "pos1.wav").exists()
-    assert (tmp_path / "out" / "raw" / "pos1_out1.wav").exists()  # what was recorded is kept
+    assert (tmp_path / "out" / "raw" / "pos1_out2.wav").exists()  # what was recorded is kept
+
+
+def test_no_input_signal_stops_before_the_first_sweep(make_room, tmp_path):  # noqa: F811
+    make_room("roomsim_b2", {"speakers": [{"ir": None}], "noise_rms": 1e-3, "seed": 2})
+    ms = MeasureSettings(device="roomsim_b2", outputs=(1,), input=1, repeats=1, **QUICK)
+    with pytest.raises(QualityGateError, match="no test sweep heard") as err:
+        run_measurement(ms, tmp_path / "out", yes=True, say=lambda s: None)
+    assert len(str(err.value)) < 200 and "\n" not in str(err.value)
+    assert not (tmp_path / "out").exists()  # a failed start leaves nothing behind
 
 
 def test_clipped_input_is_caught(make_room, tmp_path):  # noqa: F811
@@ -143,7 +155,7 @@ def test_clipped_input_is_caught(make_room, tmp_path):  # noqa: F811
 
 def test_missing_portaudio_is_a_device_error(monkeypatch):
     monkeypatch.setitem(sys.modules, "sounddevice", None)  # import now raises ImportError
-    with pytest.raises(DeviceError, match="measure"):
+    with pytest.raises(DeviceError, match=r"pip install \."):
         capture.list_devices()
     real_import = builtins.__import__
 

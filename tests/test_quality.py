@@ -11,12 +11,12 @@ from roomcorr.errors import SafetyError, SettingsError
 from roomcorr.measure import quality as q
 from roomcorr.measure.session import (
     analyse_recording,
+    capture_signal,
     deconvolve_file,
     make_sweep,
     sweep_layout,
 )
 from roomcorr.measure.settings import MeasureSettings
-from roomcorr.measure.sweep import playback_signal
 
 FS = 48000
 
@@ -112,8 +112,8 @@ def test_level_cap_and_settings_validation():
 
 def simulated_recording(ms, h, latency, a2=0.0, noise=1e-5, dc=0.0, seed=0):
     """Offline stand-in for the audio path: latency + room + noise (seeded)."""
-    sw = make_sweep(ms)
-    play = playback_signal(sw, ms.noise_s, ms.tail_s, ms.repeats)
+    sig, _outs = capture_signal(sweep_layout(ms), ms.outputs[0])  # sweeps (+ markers)
+    play = sig.sum(axis=0)
     n = len(play)
     rng = np.random.default_rng(seed)
     sent = np.r_[np.zeros(latency), play][:n]
@@ -140,15 +140,31 @@ def test_offline_analysis_removes_latency_and_recovers_ir():
     assert band_energy_error_db(ir, ref, FS, 100, 16000) < -40
 
 
-def test_offline_analysis_without_loopback_keeps_latency_and_says_so():
+def test_offline_analysis_without_loopback_or_markers_keeps_latency_and_says_so():
     h = np.zeros(100)
     h[50] = 0.5
-    ms = MeasureSettings(sweep_s=1.0, noise_s=0.3, tail_s=0.4, ir_s=0.25, repeats=1)
+    ms = MeasureSettings(sweep_s=1.0, noise_s=0.3, tail_s=0.4, ir_s=0.25, repeats=1,
+                         markers=False)
     mic, _ = simulated_recording(ms, h, latency=500, dc=0.05)
     _, fig, gates = analyse_recording(mic, None, sweep_layout(ms))
     assert fig["latency_s"] is None and "no loopback" in fig["latency_note"]
     assert fig["arrival_s"] * FS == pytest.approx(550, abs=0.05)
     assert [g.name for g in gates if not g.passed] == ["dc_offset"]
+
+
+@pytest.mark.parametrize("latency", [0, 500, 2401])
+def test_offline_analysis_with_markers_puts_the_reference_at_the_lead(latency):
+    # The measured loudspeaker is the reference: whatever the latency, its arrival lands
+    # at lead_s (10 ms) in the impulse response (timing.py's common origin).
+    h = np.zeros(100)
+    h[50] = 0.5
+    ms = MeasureSettings(sweep_s=1.0, noise_s=0.3, tail_s=0.4, ir_s=0.25, repeats=1)
+    mic, _ = simulated_recording(ms, h, latency=latency)
+    _, fig, gates = analyse_recording(mic, None, sweep_layout(ms))
+    assert fig["latency_s"] is None and "timing reference" in fig["latency_note"]
+    assert fig["arrival_s"] == pytest.approx(0.010, abs=0.05 / FS)
+    assert abs(fig["drift_ppm"]) < 0.1
+    assert all(g.passed for g in gates), [g.message for g in gates if not g.passed]
 
 
 def test_deconvolve_file_round_trip(tmp_path):

@@ -15,20 +15,33 @@ from roomcorr.measure.settings import MeasureSettings
 FS = 48000
 
 
+DEVICES = capture.Devices(0, "offline room", 0, "offline room", False)
+
+
 @pytest.fixture
 def offline_room(monkeypatch):
-    """Replace play_record by a room: 0.5 at 200 samples, 512 samples of latency."""
-    h = np.zeros(201)
-    h[200] = 0.5
+    """Replace play_record by a room: output 1 gives 0.5 at 200 samples, output 2 0.5 at
+    240 samples, output 3 is the loopback cable; 512 samples of latency."""
+    paths = {1: 200, 2: 240}
     rng = np.random.default_rng(0)
 
-    def fake(signal, fs, outs, ins, device=None, blocksize=0):
-        sent = np.r_[np.zeros(512), signal[0]][: signal.shape[1]]
-        mic = fftconvolve(sent, h)[: len(sent)] + 1e-5 * rng.standard_normal(len(sent))
-        rec = [mic] if len(ins) == 1 else [mic, sent]
+    def fake(signal, fs, outs, ins, device=None, blocksize=0, **kw):
+        n = signal.shape[1]
+        mic = 1e-5 * rng.standard_normal(n)
+        sent_lb = np.zeros(n)
+        for row, out in zip(signal, outs, strict=True):
+            sent = np.r_[np.zeros(512), row][:n]
+            if out in paths:
+                h = np.zeros(paths[out] + 1)
+                h[-1] = 0.5
+                mic += fftconvolve(sent, h)[:n]
+            else:
+                sent_lb = sent
+        rec = [mic] if len(ins) == 1 else [mic, sent_lb]
         return capture.Capture(np.array(rec), 0, [])
 
     monkeypatch.setattr(capture, "play_record", fake)
+    monkeypatch.setattr(capture, "open_devices", lambda *a, **k: DEVICES)
 
 
 MS = MeasureSettings(sweep_s=0.5, noise_s=0.2, tail_s=0.35, ir_s=0.2, test_s=0.2,
@@ -42,7 +55,7 @@ def test_session_files_and_record(offline_room, tmp_path):
     out = tmp_path / "s"
     assert sorted(p.name for p in out.glob("*.wav")) == ["pos1.wav", "pos2.wav"]
     ir, fs = sf.read(out / "pos2.wav", always_2d=True)
-    assert fs == FS and ir.shape[1] == 2 and np.argmax(np.abs(ir[:, 1])) == 200
+    assert fs == FS and ir.shape[1] == 2 and np.argmax(np.abs(ir[:, 1])) == 240
     stored = json.loads((out / "measurement.json").read_text())
     assert [p["file"] for p in stored["positions"]] == ["pos1.wav", "pos2.wav"]
     assert stored["playback_file"] == "raw/playback.wav"

@@ -189,6 +189,20 @@ def evaluate_gates(figures: dict, limits: dict) -> list[Gate]:
                   lim["min_arrival_db"], "dB",
                   f"no arrival found (impulse peak only {f['arrival_snr_db']:.1f} dB above "
                   "noise): is the loudspeaker connected, switched on and on the chosen output?"))
+    tref = f.get("timing_reference")
+    if tref is not None and f.get("latency_s") is None:
+        g.append(Gate("timing_reference", bool(tref["found"]), tref["marker_snr_db"], 0,
+                      "dB",
+                      f"timing marker of output {tref['reference_output']} not found in the "
+                      "recording: is the reference loudspeaker connected and on? (choose "
+                      "another with --reference)"))
+    if tref is not None and tref["found"] and "max_drift_ppm" in lim:
+        d = float(tref["drift_ppm"])
+        g.append(Gate("clock_drift", abs(d) <= lim["max_drift_ppm"], d, lim["max_drift_ppm"],
+                      "ppm",
+                      f"the microphone's and the output's clocks differ by {d:.0f} ppm, more "
+                      f"than {lim['max_drift_ppm']:g} ppm: check the sample rate of both "
+                      "devices in the system's sound settings"))
     rd = f["repeat_disagreement_db"]
     g.append(Gate("repeats_agree", rd <= lim["max_repeat_disagreement_db"],
                   rd if np.isfinite(rd) else -999.0, lim["max_repeat_disagreement_db"], "dB",

@@ -1,0 +1,106 @@
+"""Input levels in dBFS and, with the microphone's sensitivity, in dB SPL.
+
+Conventions
+-----------
+* dBFS of a signal is its RMS relative to the RMS of a full-scale sine
+  (AES17): a full-scale sine reads 0 dBFS, its RMS being ``1/sqrt(2)``.
+* The microphone sensitivity ``sensitivity_dbfs`` is the level in dBFS that a
+  tone of 94 dB SPL (1 Pa RMS re 20 uPa) gives at the input, as read with an
+  acoustic calibrator (IEC 60942: 94 or 114 dB SPL at 1 kHz). Then
+  ``L_SPL = L_dBFS - sensitivity_dbfs + 94``.
+* Levels here are unweighted (Z) and the short-term level uses 125 ms
+  blocks, close to the "fast" time weighting of sound level meters (IEC 61672-1,
+  from memory).
+
+All functions are pure.
+
+References
+----------
+.. [1] AES17-2020, "AES standard method for digital audio engineering:
+   measurement of digital audio equipment" (dBFS of a full-scale sine, from memory).
+.. [2] IEC 60942:2017, Electroacoustics: sound calibrators.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+#: dB SPL of 1 Pa RMS (20 log10(1 / 20e-6)).
+PA_DB_SPL = 93.9794
+#: Level of the usual acoustic calibrator, dB SPL (nominal 94 dB; IEC 60942).
+CALIBRATOR_DB_SPL = 94.0
+_SINE_RMS_DB = 20 * np.log10(np.sqrt(0.5))  # -3.0103 dB
+
+
+def rms_dbfs(x: np.ndarray) -> float:
+    """RMS level of ``x`` (shape (n,)) in dBFS (AES17: full-scale sine = 0 dBFS)."""
+    ms = float(np.mean(np.asarray(x, dtype=float) ** 2)) if np.size(x) else 0.0
+    return float(10 * np.log10(max(ms, 1e-30)) - _SINE_RMS_DB)
+
+
+def short_term_max_dbfs(x: np.ndarray, fs: int, block_s: float = 0.125) -> float:
+    """Highest RMS level over consecutive ``block_s`` blocks, dBFS (AES17)."""
+    n = max(1, int(round(block_s * fs)))
+    x = np.asarray(x, dtype=float)
+    m = len(x) // n
+    if m == 0:
+        return rms_dbfs(x)
+    ms = np.mean(x[: m * n].reshape(m, n) ** 2, axis=1)
+    return float(10 * np.log10(max(float(ms.max()), 1e-30)) - _SINE_RMS_DB)
+
+
+def octave_levels_dbfs(x: np.ndarray, fs: int, centres_hz: np.ndarray) -> dict[float, float]:
+    """Level per octave band in dBFS (AES17), from the periodogram of ``x``.
+
+    Band edges ``f_m * 10**(+-0.15)`` (IEC 61260-1 base-10 octaves); the
+    periodogram (Hann window, power-corrected) is summed over each band, so by
+    Parseval the bands add up to :func:`rms_dbfs` of the whole signal.
+
+    Returns
+    -------
+    dict
+        ``{centre_hz: level_dbfs}``.
+    """
+    x = np.asarray(x, dtype=float)
+    n = len(x)
+    w = np.hanning(n)
+    spec = np.abs(np.fft.rfft(x * w)) ** 2 / np.sum(w**2) / n
+    spec[1:-1] *= 2.0  # one-sided
+    f = np.fft.rfftfreq(n, 1.0 / fs)
+    out = {}
+    for fc in centres_hz:
+        sel = (f >= fc * 10**-0.15) & (f < fc * 10**0.15)
+        p = float(spec[sel].sum())
+        out[float(fc)] = float(10 * np.log10(max(p, 1e-30)) - _SINE_RMS_DB)
+    return out
+
+
+def to_spl(level_dbfs: float, sensitivity_dbfs: float) -> float:
+    """dB SPL of a level in dBFS for a microphone of ``sensitivity_dbfs`` (dBFS at 94 dB SPL)."""
+    return float(level_dbfs - sensitivity_dbfs + CALIBRATOR_DB_SPL)
+
+
+def sensitivity_from_calibrator(x: np.ndarray, fs: int, calibrator_db_spl: float = 94.0,
+                                tone_hz: float = 1000.0) -> tuple[float, float]:
+    """Microphone sensitivity from a recording of an acoustic calibrator.
+
+    The tone's level is taken from a third-octave band around ``tone_hz``
+    (so background noise outside the band does not count); the result is the
+    dBFS that 94 dB SPL would read.
+
+    Returns
+    -------
+    sensitivity_dbfs : float
+    tone_fraction : float
+        Share of the recording's power in that band (near 1 for a clean tone).
+    """
+    x = np.asarray(x, dtype=float) - float(np.mean(x))
+    n = len(x)
+    w = np.hanning(n)
+    spec = np.abs(np.fft.rfft(x * w)) ** 2
+    f = np.fft.rfftfreq(n, 1.0 / fs)
+    sel = (f >= tone_hz * 2 ** (-1 / 6)) & (f < tone_hz * 2 ** (1 / 6))
+    total = float(spec[1:].sum()) + 1e-30
+    frac = float(spec[sel].sum()) / total
+    tone_dbfs = rms_dbfs(x) + 10 * np.log10(max(frac, 1e-30))
+    return float(tone_dbfs - (calibrator_db_spl - CALIBRATOR_DB_SPL)), frac
