@@ -168,6 +168,7 @@ def analyse_recording(
         if loopback is not None:
             loopback = tm.correct_drift(np.asarray(loopback, dtype=float), drift)
         elif tmg.found:
+            tmg.offset_samples = tm.marker_offset(mic, plan, marker, tmg.offset_samples)
             origin = tmg.offset_samples - layout.get("lead_s", tm.LEAD_S) * fs
             start = int(np.floor(origin))
             frac = origin - start

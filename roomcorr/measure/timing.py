@@ -189,18 +189,20 @@ def marker_response(recording: np.ndarray, marker: Marker) -> np.ndarray:
     return scipy.fft.irfft(scipy.fft.rfft(recording, n_fft) * inv, n_fft)[:n]
 
 
-def refine_peak(h: np.ndarray, i: int, half: int = 16, factor: int = 32) -> float:
+def refine_peak(h: np.ndarray, i: int, half: int = 64, factor: int = 64) -> float:
     """Sub-sample position of the magnitude peak of ``h`` near index ``i``.
 
-    The ``2 half`` samples around ``i`` are band-limited-interpolated by
-    ``factor`` (``scipy.signal.resample``, i.e. Fourier interpolation) and the
-    maximum of the magnitude is refined with a parabola through three points.
+    The ``2 half`` samples around ``i`` (Tukey window, flat in the middle half so
+    the peak is not pulled aside) are band-limited-interpolated by ``factor``
+    (``scipy.signal.resample``, i.e. Fourier interpolation) and the maximum of the
+    magnitude is refined with a parabola through three points.
     """
     lo = max(0, i - half)
     seg = np.asarray(h[lo : i + half], dtype=float)
-    if len(seg) < 4:
+    if len(seg) < 8:
         return float(i)
-    up = np.abs(scipy.signal.resample(seg * np.hanning(len(seg) + 2)[1:-1], len(seg) * factor))
+    win = scipy.signal.windows.tukey(len(seg), 0.5)
+    up = np.abs(scipy.signal.resample(seg * win, len(seg) * factor))
     k = int(np.argmax(up))
     frac = 0.0
     if 0 < k < len(up) - 1:
@@ -283,7 +285,8 @@ def locate_markers(recording: np.ndarray, plan: Plan, marker: Marker,
     # A marker's response is a sharp peak; a measurement sweep seen through the
     # marker's inverse is spread out in time. Sharpness = magnitude over the RMS of
     # the surrounding 10 ms; only magnitudes above 2 % of the largest count.
-    local = np.sqrt(scipy.ndimage.uniform_filter1d(mag**2, int(0.01 * fs) | 1)) + 1e-30
+    local = np.sqrt(np.maximum(scipy.ndimage.uniform_filter1d(mag**2, int(0.01 * fs) | 1),
+                                0.0)) + 1e-30
     sharp = np.where(mag >= 0.02 * mag.max(), mag / local, 0.0)
     i_max = int(np.argmax(sharp))
     noise = 1.4826 * float(np.median(mag)) + 1e-30
@@ -318,6 +321,28 @@ def locate_markers(recording: np.ndarray, plan: Plan, marker: Marker,
     drift_ppm = (dist / d_nom - 1.0) * 1e6
     offset = refine_peak(h, a) / (1.0 + drift_ppm * 1e-6) - plan.marker_starts[0]
     return Timing(True, snr, float(drift_ppm), float(offset))
+
+
+def marker_offset(recording: np.ndarray, plan: Plan, marker: Marker, approx: float) -> float:
+    """Precise offset of marker A in a recording already corrected for drift.
+
+    A marker recorded with a drifting clock is itself stretched, which pulls its
+    matched-filter peak by a fraction of a sample; after the correction it is not.
+
+    Parameters
+    ----------
+    approx : float
+        Offset from :func:`locate_markers` (within a few samples).
+    """
+    fs = marker.fs
+    centre = int(round(approx)) + plan.marker_starts[0]
+    lo = max(0, centre - int(0.05 * fs))
+    hi = min(len(recording), centre + marker.n_samples + int(0.1 * fs))
+    h = marker_response(recording[lo:hi], marker)
+    j = centre - lo
+    k0, k1 = max(0, j - 8), min(len(h), j + 9)
+    i = k0 + int(np.argmax(np.abs(h[k0:k1])))
+    return float(lo + refine_peak(h, i) - plan.marker_starts[0])
 
 
 def correct_drift(x: np.ndarray, drift_ppm: float) -> np.ndarray:
