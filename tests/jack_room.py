@@ -20,6 +20,9 @@ Two-device effects (optional keys):
     0.9 of Nyquist, weights from a table of 512 fractional positions with linear
     interpolation between rows (a textbook fractional-delay interpolator,
     independent of roomcorr's own resampling).
+``tone``
+    ``[frequency_hz, amplitude]``: a steady sine added at the microphone, as an
+    acoustic calibrator seated on it.
 ``latency_ms``
     ``[lo, hi]``: every time a stream connects to a loudspeaker input, the path
     to the microphone gets a new extra latency drawn uniformly from this range
@@ -61,7 +64,8 @@ def main(config_path: str) -> None:
     lat_range = cfg.get("latency_ms")
     resampled = drift != 0.0 or lat_range is not None
     lat_rng = np.random.default_rng(int(cfg.get("seed", 0)) + 1000)
-    state = {"latency": 0.0, "k": 0, "n": 0, "draws": []}
+    state = {"latency": 0.0, "k": 0, "n": 0, "draws": [], "tone": 0}
+    tone = cfg.get("tone")  # [frequency_hz, amplitude]
     hist_len = 1 << 18
     hist = np.zeros(hist_len)  # microphone signal before the converter, ring buffer
     half = 32
@@ -120,6 +124,10 @@ def main(config_path: str) -> None:
         y = gain * acc[:frames]
         if resampled:
             y = converter(y)
+        if tone is not None:  # an acoustic calibrator on the microphone
+            t = (state["tone"] + np.arange(frames)) / client.samplerate
+            y = y + tone[1] * np.sin(2 * np.pi * tone[0] * t)
+            state["tone"] += frames
         y = y + noise_rms * rng.standard_normal(frames) + dc
         mic.get_array()[:] = np.clip(y, -1.0, 1.0)
         acc[:-frames] = acc[frames:].copy()

@@ -423,3 +423,47 @@ def _two_streams(sd, out_buf: np.ndarray, fs: int, n_in: int, devices: Devices,
                 pass
     flags = sorted(st_in["flags"] | st_out["flags"])
     return in_buf, int(st_in["problems"] + st_out["problems"]), flags
+
+
+def record(fs: int, in_channel: int, duration_s: float, device: str | int | None = None,
+           blocksize: int = 0, progress: Progress | None = None) -> np.ndarray:
+    """Record ``duration_s`` from one input channel (1-based) of ``device``; nothing plays.
+
+    Returns
+    -------
+    ndarray, shape (n_samples,)
+    """
+    sd = _sd()
+    idx, info = resolve_role(device, "input", in_channel)
+    check_rate(idx, "input", fs, in_channel)
+    n = int(round(duration_s * fs))
+    buf = np.zeros((n, in_channel), dtype=np.float32)
+    state = {"pos": 0, "problems": 0, "flags": set(), "lv": (-200.0, -200.0)}
+    done = threading.Event()
+
+    def cb(indata, frames, _time, status):
+        pos = state["pos"]
+        _note_status(state, status)
+        k = min(frames, n - pos)
+        if k > 0:
+            buf[pos : pos + k] = indata[:k]
+        state["pos"] = pos + max(k, 0)
+        state["lv"] = _levels(indata[:, in_channel - 1 :])
+        if state["pos"] >= n:
+            raise sd.CallbackStop
+
+    try:
+        stream = sd.InputStream(device=idx, samplerate=fs, channels=in_channel,
+                                dtype="float32", blocksize=blocksize, callback=cb,
+                                finished_callback=done.set)
+    except sd.PortAudioError as exc:
+        raise DeviceError(f"could not open input device {info['name']!r}: {exc}") from exc
+    with stream:
+        try:
+            _wait(done, state, n, progress)
+        except KeyboardInterrupt:
+            stream.abort()
+            raise
+    if state["pos"] < n:
+        raise DeviceError(f"input device {info['name']!r} stopped early (disconnected?)")
+    return buf[:, in_channel - 1].astype(np.float64)

@@ -12,7 +12,8 @@ Conventions
   blocks, close to the "fast" time weighting of sound level meters (IEC 61672-1,
   from memory).
 
-All functions are pure.
+All functions are pure except :func:`sensitivity_from_file`, which reads a
+calibration file's header.
 
 References
 ----------
@@ -104,3 +105,41 @@ def sensitivity_from_calibrator(x: np.ndarray, fs: int, calibrator_db_spl: float
     frac = float(spec[sel].sum()) / total
     tone_dbfs = rms_dbfs(x) + 10 * np.log10(max(frac, 1e-30))
     return float(tone_dbfs - (calibrator_db_spl - CALIBRATOR_DB_SPL)), frac
+
+
+def sensitivity_from_file(path: str) -> float:
+    """The ``# sensitivity_dbfs = X`` line of a microphone calibration file's header.
+
+    Header lines start with ``#``; the key is matched without regard to case.
+    Raises :class:`~roomcorr.errors.InputFileError` naming the file when there is
+    none or it is not a number.
+    """
+    import re
+    from pathlib import Path
+
+    from roomcorr.errors import InputFileError
+
+    p = Path(path)
+    try:
+        text = p.read_text(encoding="utf-8", errors="replace")
+    except OSError as exc:
+        raise InputFileError(f"{p}: cannot read the calibration file ({exc})") from exc
+    pat = re.compile(r"^\s*#\s*sensitivity_dbfs\s*[=:]\s*(\S+)", re.IGNORECASE)
+    for line in text.splitlines():
+        if not line.lstrip().startswith("#"):
+            if line.strip():
+                break  # header ends at the first data line
+            continue
+        m = pat.match(line)
+        if m:
+            try:
+                value = float(m.group(1))
+            except ValueError:
+                break
+            if not np.isfinite(value):
+                break
+            return value
+    raise InputFileError(
+        f"{p}: no '# sensitivity_dbfs = X' line in the header; give --mic-sensitivity or "
+        "run 'roomcorr calibrate-mic'"
+    )

@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import json
 import math
+import shutil
 from collections.abc import Callable
 from pathlib import Path
 from typing import Any
@@ -495,6 +496,8 @@ def run_measurement(
     record["level_unit"] = "dB SPL" if ms.mic_sensitivity_dbfs is not None else "dBFS"
     record["mic_sensitivity_dbfs"] = ms.mic_sensitivity_dbfs
     record_path = out / RECORD_NAME
+    if view is not None:
+        view.sensitivity_dbfs = ms.mic_sensitivity_dbfs
     say(f"sweep {sweep.f_start_hz:g}-{sweep.f_end_hz:g} Hz, {sweep.duration_s:.2f} s, "
         f"peak {sweep.level_dbfs:g} dBFS, {ms.repeats} repeat(s)")
     if ms.markers and not ms.loopback:
@@ -596,6 +599,23 @@ def run_measurement(
         reasons = [p.get("skipped") for p in record["positions"] if p.get("skipped")]
         raise q.QualityGateError(reasons[-1] if reasons else "no position was measured")
     return record
+
+
+def copy_unfinished(src: str | Path, dst: str | Path) -> None:
+    """Copy an unfinished session's record, impulse responses and raw files into ``dst``.
+
+    For ``measure --resume`` in a room folder: the unfinished run is left as it
+    is; the new run starts from its finished positions.
+    """
+    src, dst = Path(src), Path(dst)
+    if not (src / RECORD_NAME).is_file():
+        raise InputFileError(f"{src}: no {RECORD_NAME}; nothing to resume")
+    files = [src / RECORD_NAME, *src.glob("pos*.wav"), *src.glob("raw/*.wav")]
+    for f in files:
+        dest = dst / f.relative_to(src)
+        dest.parent.mkdir(parents=True, exist_ok=True)
+        with atomic_path(dest) as tmp:
+            shutil.copyfile(f, tmp)
 
 
 def _remove_empty(d: Path) -> None:
