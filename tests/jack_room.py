@@ -20,6 +20,9 @@ Two-device effects (optional keys):
     0.9 of Nyquist, weights from a table of 512 fractional positions with linear
     interpolation between rows (a textbook fractional-delay interpolator,
     independent of roomcorr's own resampling).
+``mic``
+    false: no output ports at all, so the client is a device that can only play
+    (with ``speakers: []`` it is one that can only record).
 ``tone``
     ``[frequency_hz, amplitude]``: a steady sine added at the microphone, as an
     acoustic calibrator seated on it.
@@ -50,8 +53,11 @@ def main(config_path: str) -> None:
     speakers = cfg["speakers"]
     ins = [client.inports.register(f"in_{i + 1}") for i in range(len(speakers))]
     lb_in = client.inports.register(f"in_{len(speakers) + 1}") if cfg.get("loopback") else None
-    mic = client.outports.register("out_1")
-    lb_out = client.outports.register("out_2")
+    if cfg.get("mic", True):
+        mic = client.outports.register("out_1")
+        lb_out = client.outports.register("out_2")
+    else:  # a device that can only play (no microphone side)
+        mic = lb_out = None
     irs = [None if s.get("ir") is None else np.asarray(s["ir"], dtype=float) for s in speakers]
     a2 = [float(s.get("a2", 0.0)) for s in speakers]
     m = max([len(h) for h in irs if h is not None] + [1])
@@ -129,9 +135,11 @@ def main(config_path: str) -> None:
             y = y + tone[1] * np.sin(2 * np.pi * tone[0] * t)
             state["tone"] += frames
         y = y + noise_rms * rng.standard_normal(frames) + dc
-        mic.get_array()[:] = np.clip(y, -1.0, 1.0)
         acc[:-frames] = acc[frames:].copy()
         acc[-frames:] = 0.0
+        if mic is None:
+            return
+        mic.get_array()[:] = np.clip(y, -1.0, 1.0)
         lb_out.get_array()[:] = lb_in.get_array() if lb_in is not None else 0.0
 
     stop = threading.Event()

@@ -214,3 +214,50 @@ def test_deconvolve_file_aligns_a_recording_made_elsewhere(tmp_path, offset):
     assert fig["arrival_s"] * FS == pytest.approx(120, abs=0.05)
     assert "aligned" in fig
     assert all(g.passed for g in gates)
+
+
+def test_levels_of_a_sine_and_of_noise_bands():
+    from roomcorr.measure import levels as lv
+
+    t = np.arange(FS) / FS
+    # AES17: a full-scale sine reads 0 dBFS; amplitude 0.05 reads 20 log10(0.05)
+    assert lv.rms_dbfs(np.sin(2 * np.pi * 997 * t)) == pytest.approx(0.0, abs=1e-3)
+    x = 0.05 * np.sin(2 * np.pi * 1000 * t)
+    assert lv.rms_dbfs(x) == pytest.approx(20 * np.log10(0.05), abs=1e-3)
+    sens, frac = lv.sensitivity_from_calibrator(x + 1e-4 * np.random.default_rng(0)
+                                                .standard_normal(FS), FS)
+    assert sens == pytest.approx(20 * np.log10(0.05), abs=0.01) and frac > 0.99
+    # 94 dB SPL = 1 Pa (20 uPa reference): a tone at the sensitivity reads 94 dB SPL
+    assert lv.to_spl(sens, sens) == 94.0 and lv.PA_DB_SPL == pytest.approx(
+        20 * np.log10(1 / 20e-6), abs=1e-4)
+    # Parseval: white noise's octave bands add up to its total level (bands cover
+    # 22 Hz .. 22.6 kHz, nearly all of 0 .. 24 kHz: within 0.5 dB)
+    noise = np.random.default_rng(1).standard_normal(8 * FS)
+    bands = lv.octave_levels_dbfs(noise, FS, q.octave_centres_hz(31.5, 16000.0))
+    total = 10 * np.log10(sum(10 ** (v / 10) for v in bands.values()))
+    assert total == pytest.approx(lv.rms_dbfs(noise), abs=0.5)
+    # white noise: each octave holds power in proportion to its width (+3 dB per octave;
+    # from 125 Hz up, where a band holds enough periodogram bins for +-0.3 dB)
+    vals = [bands[k] for k in sorted(bands)]
+    assert np.diff(vals)[2:] == pytest.approx(3.01, abs=0.3)
+    assert [lv.nominal_label(f) for f in sorted(bands)][:3] == ["31.5", "63", "125"]
+
+
+def test_sensitivity_from_a_calibration_file_header(tmp_path):
+    from roomcorr.errors import InputFileError
+    from roomcorr.measure.levels import sensitivity_from_file
+
+    good = tmp_path / "mic.txt"
+    good.write_text("# invented measurement microphone\n# sensitivity_dbfs = -31.5\n"
+                    "20 -0.5\n1000 0.0\n")
+    assert sensitivity_from_file(good) == -31.5
+    bad = tmp_path / "nohead.txt"
+    bad.write_text("20 -0.5\n# sensitivity_dbfs = -31.5\n")  # only the header counts
+    with pytest.raises(InputFileError, match="sensitivity_dbfs"):
+        sensitivity_from_file(bad)
+
+
+@pytest.mark.parametrize("value", [20.0, -200.0, float("nan"), 0.0])
+def test_absurd_microphone_sensitivity_is_refused(value):
+    with pytest.raises(SettingsError, match="not plausible"):
+        MeasureSettings(mic_sensitivity_dbfs=value).validate()

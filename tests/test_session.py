@@ -89,3 +89,97 @@ def test_loud_level_needs_permission_and_warns(offline_room, tmp_path):
     lines = []
     run_measurement(loud, tmp_path / "b", yes=True, say=lines.append)
     assert lines[0].startswith("WARNING") and "-6" in lines[0]
+
+
+class FakeSoundDevice:
+    """Stand-in for the sounddevice module: one full-duplex device whose input hears its
+    output 300 samples later at half level. From capture number ``vanish_at`` on, the
+    device disappears after ``vanish_after`` blocks (the stream just ends, as PortAudio's
+    does when a USB device is pulled)."""
+
+    class PortAudioError(Exception):
+        pass
+
+    class CallbackStop(Exception):
+        pass
+
+    def __init__(self, vanish_at: int, vanish_after: int = 5):
+        self.default = type("D", (), {"device": [0, 0]})()
+        self.vanish_at, self.vanish_after, self.captures = vanish_at, vanish_after, 0
+        fake = self
+
+        class Stream:
+            def __init__(self, device, samplerate, channels, dtype, blocksize, callback,
+                         finished_callback):
+                self.cb, self.fin = callback, finished_callback
+                self.n_in, self.n_out = channels
+                fake.captures += 1
+                self.vanish = fake.captures >= fake.vanish_at
+
+            def __enter__(self):
+                import threading
+
+                self.thread = threading.Thread(target=self.run)
+                self.thread.start()
+                return self
+
+            def run(self):
+                air = np.zeros(300)
+                rng = np.random.default_rng(0)
+                for block in range(100000):
+                    if self.vanish and block >= fake.vanish_after:
+                        break
+                    out = np.zeros((512, self.n_out), dtype=np.float32)
+                    sent = np.r_[air, np.zeros(512)]
+                    ind = (0.5 * sent[:512] + 1e-5 * rng.standard_normal(512))[:, None]
+                    try:
+                        self.cb(np.repeat(ind, self.n_in, 1).astype(np.float32), out, 512,
+                                None, None)
+                    except fake.CallbackStop:
+                        break
+                    air = np.r_[air, out[:, 0]][-300:]
+                self.fin()
+
+            def __exit__(self, *a):
+                self.thread.join()
+
+            def abort(self):
+                pass
+
+        self.Stream = Stream
+
+    def query_devices(self, dev=None):
+        info = {"name": "invented USB interface", "index": 0, "hostapi": 0,
+                "max_input_channels": 2, "max_output_channels": 2,
+                "default_samplerate": 48000.0}
+        if dev is None:
+            return [info]
+        if dev not in (0, "invented"):
+            raise ValueError(f"no device {dev!r}")
+        return info
+
+    def query_hostapis(self):
+        return [{"name": "fake"}]
+
+    def check_input_settings(self, **kw):
+        pass
+
+    check_output_settings = check_input_settings
+
+
+def test_device_disappearing_mid_sweep_keeps_earlier_positions(monkeypatch, tmp_path, capsys):
+    from roomcorr import cli
+
+    fake = FakeSoundDevice(vanish_at=3)  # level check, position 1, then position 2 vanishes
+    monkeypatch.setattr(capture, "_sd", lambda: fake)
+    out = tmp_path / "s"
+    status = cli.main(["measure", "--device", "invented", "--outputs", "1", "--positions",
+                       "2", "--yes", "--plain", "--sweep-seconds", "0.5", "--repeats", "1",
+                       "--ir-seconds", "0.2", "--out", str(out)])
+    err = capsys.readouterr().err.strip().splitlines()
+    assert status == 2 and len(err) == 1
+    assert "invented USB interface" in err[0] and "disconnected" in err[0]
+    assert (out / "pos1.wav").is_file() and not (out / "pos2.wav").exists()
+    stored = json.loads((out / "measurement.json").read_text())  # complete, valid JSON
+    assert stored["positions"][0]["file"] == "pos1.wav"
+    assert not [p for p in out.rglob("*") if p.name.startswith(".roomcorr-tmp-")]

@@ -76,6 +76,17 @@ def octave_levels_dbfs(x: np.ndarray, fs: int, centres_hz: np.ndarray) -> dict[f
     return out
 
 
+#: Nominal labels of the base-10 octave mid-bands (IEC 61260-1 annex; exact 1000 * 10**(0.3 x)).
+NOMINAL_OCTAVES_HZ = (16.0, 31.5, 63.0, 125.0, 250.0, 500.0, 1000.0, 2000.0, 4000.0, 8000.0,
+                      16000.0)
+
+
+def nominal_label(centre_hz: float) -> str:
+    """The nominal label ("125", "31.5") of an exact octave mid-band frequency."""
+    near = min(NOMINAL_OCTAVES_HZ, key=lambda f: abs(np.log(f / centre_hz)))
+    return f"{near:g}"
+
+
 def to_spl(level_dbfs: float, sensitivity_dbfs: float) -> float:
     """dB SPL of a level in dBFS for a microphone of ``sensitivity_dbfs`` (dBFS at 94 dB SPL)."""
     return float(level_dbfs - sensitivity_dbfs + CALIBRATOR_DB_SPL)

@@ -263,13 +263,15 @@ def level_figures(sweep_part: np.ndarray, noise: np.ndarray, fs: int,
         "level_unit": "dB SPL" if sensitivity_dbfs is not None else "dBFS",
         "sweep_rms_dbfs": lv.rms_dbfs(sweep_part),
         "sweep_max_dbfs": lv.short_term_max_dbfs(sweep_part, fs),
-        "noise_dbfs_per_octave": {f"{k:g}": round(v, 2) for k, v in noise_oct.items()},
+        "noise_dbfs_per_octave": {lv.nominal_label(k): round(v, 2)
+                                  for k, v in noise_oct.items()},
     }
     if sensitivity_dbfs is not None:
         out["sweep_max_spl_db"] = lv.to_spl(out["sweep_max_dbfs"], sensitivity_dbfs)
         out["sweep_rms_spl_db"] = lv.to_spl(out["sweep_rms_dbfs"], sensitivity_dbfs)
         out["noise_spl_db_per_octave"] = {
-            f"{k:g}": round(lv.to_spl(v, sensitivity_dbfs), 2) for k, v in noise_oct.items()}
+            lv.nominal_label(k): round(lv.to_spl(v, sensitivity_dbfs), 2)
+            for k, v in noise_oct.items()}
     return out
 
 
