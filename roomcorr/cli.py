@@ -467,6 +467,9 @@ def _add_measure(sub: Any) -> argparse.ArgumentParser:
                    help="continue an unfinished measurement (in --out, or the room's latest)")
     p.add_argument("--plain", action="store_true",
                    help="plain progress lines instead of the live meter")
+    p.add_argument("--through", metavar="DESIGN_DIR",
+                   help="play the sweeps through this design's filters (pre-gain included) "
+                   "to check the correction before loading it anywhere")
     return p
 
 
@@ -516,7 +519,8 @@ def _run_measure(args: argparse.Namespace) -> int:
     if room is None and not args.out:
         room = rooms.find_room()
     view = make_view(plain=args.plain)
-    kw = {"yes": args.yes, "force": args.force, "say": view.say, "view": view}
+    kw = {"yes": args.yes, "force": args.force, "say": view.say, "view": view,
+          "through": args.through}
     if args.out:
         ms = measure_settings_from_args(args)
         with view:

@@ -404,6 +404,7 @@ def run_measurement(
     say: Callable[[str], None] = print,
     ask: Callable[[str], str] = input,
     view: Any = None,
+    through: str | Path | None = None,
 ) -> dict:
     """Run a whole session and write the output folder (module docstring).
 
@@ -425,6 +426,9 @@ def run_measurement(
         Printing and prompting (the CLI passes print/input).
     view : LiveView, optional
         Live level meter and progress (:mod:`roomcorr.measure.live`); None = plain.
+    through : path, optional
+        A design folder: play the sweeps through its filters (:mod:`.through`) and
+        compare the result with the design's prediction.
 
     Returns
     -------
@@ -443,6 +447,11 @@ def run_measurement(
             "pass --replace"
         raise OutputError(f"{out} {hint}")
     record = _load_for_resume(out, ms, layout) if resume else None
+    thru = None
+    if through is not None:
+        from roomcorr.measure import through as th
+
+        thru = th.load_through(through, ms.sample_rate, len(ms.outputs))
     # devices first: a wrong device or rate stops here, before anything is written
     n_out = max([*ms.outputs, ms.reference_output, *([ms.loopback[0]] if ms.loopback else [])])
     n_in = max([ms.input, *([ms.loopback[1]] if ms.loopback else [])])
@@ -495,6 +504,12 @@ def run_measurement(
         "note": "arrival_s per position share one time origin: the reference loudspeaker "
         "arrives lead_s after it",
     }
+    if thru is not None:
+        record["through"] = {"design": thru["dir"], "pre_gain_db": thru["pre_gain_db"],
+                             "note": "sweeps played through the design's filters (pre-gain "
+                             "included); impulse responses are room times filter"}
+        say(f"measuring through the filters of {thru['dir']} (pre-gain "
+            f"{thru['pre_gain_db']:+.2f} dB included)")
     record["level_unit"] = "dB SPL" if ms.mic_sensitivity_dbfs is not None else "dBFS"
     record["mic_sensitivity_dbfs"] = ms.mic_sensitivity_dbfs
     record_path = out / RECORD_NAME
@@ -559,7 +574,8 @@ def run_measurement(
         for spk in ms.outputs:
             while True:
                 ir, ch, gates = _measure_one(ms, layout, out, pos, spk, capture_fn, say,
-                                             f"position {pos} of {ms.positions}, output {spk}")
+                                             f"position {pos} of {ms.positions}, output {spk}",
+                                             thru)
                 pos_rec["channels"] = [c for c in pos_rec["channels"] if c["output"] != spk]
                 pos_rec["channels"].append(ch)
                 write_record(record_path, record)
@@ -600,7 +616,44 @@ def run_measurement(
     if not any(p["file"] for p in record["positions"]):
         reasons = [p.get("skipped") for p in record["positions"] if p.get("skipped")]
         raise q.QualityGateError(reasons[-1] if reasons else "no position was measured")
+    if thru is not None:
+        record["through"]["check"] = _through_summary(ms, out, record, thru, say)
+        write_record(record_path, record)
     return record
+
+
+def _through_summary(ms: MeasureSettings, out: Path, record: dict, thru: dict,
+                     say: Callable) -> dict:
+    """Compare measured-through with the design's prediction; say where they differ."""
+    import soundfile as sf
+
+    from roomcorr.measure.through import through_check
+
+    saved = [p for p in record["positions"] if p.get("file")]
+    measured = np.array([sf.read(str(out / p["file"]), always_2d=True)[0].T for p in saved])
+    if thru["fs_in"] != ms.sample_rate:
+        say(f"through check skipped: the design was made from {thru['fs_in']} Hz measurements")
+        return {"skipped": "different sample rate"}
+    # from where the sweep is past its fade-in (full level) to below its end
+    sw = make_sweep(ms)
+    f_faded = sw.f_start_hz * math.exp(sw.fade_in_s / sw.rate_s)
+    band = (max(ms.f_start_hz * 1.5, f_faded * 1.5, 20.0),
+            min(ms.f_end_hz / 1.2, 0.45 * ms.sample_rate))
+    res = through_check(measured, thru["irs"], thru["firs"], ms.sample_rate, band)
+    summary = {"positions": [p["position"] for p in saved], "band_hz": list(band),
+               "limit_db": res["limit_db"], "smoothing_oct": res["smoothing_oct"],
+               "max_diff_db": np.round(res["max_diff_db"], 2).tolist(),
+               "over_limit_hz": res["over_limit"],
+               "freq_hz": np.round(res["freq_hz"], 2).tolist(),
+               "measured_db": np.round(res["measured_db"], 2).tolist(),
+               "predicted_db": np.round(res["predicted_db"], 2).tolist()}
+    for i, p in enumerate(saved):
+        for c, spk in enumerate(ms.outputs):
+            ranges = res["over_limit"][i][c]
+            where = ", ".join(f"{lo:g}-{hi:g} Hz" for lo, hi in ranges[:4]) or "nowhere"
+            say(f"through check, position {p['position']}, output {spk}: measured vs "
+                f"predicted differ by more than {res['limit_db']:g} dB: {where}")
+    return summary
 
 
 def copy_unfinished(src: str | Path, dst: str | Path) -> None:
@@ -628,9 +681,14 @@ def _remove_empty(d: Path) -> None:
 
 
 def _measure_one(ms: MeasureSettings, layout: dict, out: Path, pos: int, spk: int,
-                 capture_fn: Callable, say: Callable, label: str):
+                 capture_fn: Callable, say: Callable, label: str, thru: dict | None = None):
     """Play and record one loudspeaker at one position; write its raw file; analyse it."""
     sig, outs = capture_signal(layout, spk)
+    scale = 1.0
+    if thru is not None:
+        from roomcorr.measure.through import filter_rows
+
+        sig, scale = filter_rows(sig, outs, tuple(ms.outputs), thru["firs"], ms.level_dbfs)
     ins = [ms.input]
     if ms.loopback:
         outs = [*outs, ms.loopback[0]]
@@ -643,6 +701,9 @@ def _measure_one(ms: MeasureSettings, layout: dict, out: Path, pos: int, spk: in
     lb = cap.recording[1] if ms.loopback else None
     ir, figures, gates = analyse_recording(cap.recording[0], lb, layout, cap.stream_problems)
     figures["status_flags"] = cap.status_flags
+    if thru is not None:
+        ir = ir / scale
+        figures["through_scale_db"] = float(20 * np.log10(scale))
     for line in gate_lines(gates):
         say(line)
     if "drift_ppm" in figures:
