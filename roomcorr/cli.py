@@ -645,6 +645,8 @@ def _run_deconvolve(args: argparse.Namespace) -> int:
     for line in gate_lines(gates):
         print(line)
     print(f"arrival {figures['arrival_s'] * 1000:.2f} ms ({figures['latency_note']})")
+    if "drift_ppm" in figures:
+        print(f"clock drift {figures['drift_ppm']:+.1f} ppm (corrected)")
     print(f"impulse response: {dest}")
     return 0
 

@@ -52,9 +52,19 @@ def jack_server(tmp_path_factory):
         log = open(tmp_path_factory.mktemp("jackd") / "jackd.log", "wb")  # noqa: SIM115
         name = os.environ.get("JACK_DEFAULT_SERVER")
         proc = subprocess.Popen(
-            ["jackd", *(["-n", name] if name else []), "--no-realtime", "-d", "dummy",
-             "-r", str(FS), "-p", "1024"],
-            stdout=log, stderr=subprocess.STDOUT,
+            [
+                "jackd",
+                *(["-n", name] if name else []),
+                "--no-realtime",
+                "-d",
+                "dummy",
+                "-r",
+                str(FS),
+                "-p",
+                "1024",
+            ],
+            stdout=log,
+            stderr=subprocess.STDOUT,
         )
         for _ in range(100):
             if _server_running():
@@ -100,7 +110,9 @@ class Room:
         self.name = name
         self.proc = subprocess.Popen(
             [sys.executable, str(HERE / "jack_room.py"), str(path)],
-            stdin=subprocess.PIPE, stdout=subprocess.PIPE, text=True,
+            stdin=subprocess.PIPE,
+            stdout=subprocess.PIPE,
+            text=True,
         )
         line = self.proc.stdout.readline()
         if line.strip() != "READY":

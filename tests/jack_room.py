@@ -92,6 +92,7 @@ def main(config_path: str) -> None:
         state["draws"].append(value)
 
     if lat_range is not None:
+
         @client.set_port_connect_callback
         def on_connect(a, b, connect: bool) -> None:
             if connect and any(p.name.startswith(f"{cfg['name']}:in_") for p in (a, b)):

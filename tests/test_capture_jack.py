@@ -58,8 +58,12 @@ def measure_retrying_on_xruns(ms, out, attempts=3, **kw):
             return run_measurement(ms, out, yes=True, **kw)
         except QualityGateError as exc:
             stored = json.loads((out / "measurement.json").read_text())
-            failed = {g["name"] for ch in stored["positions"][-1]["channels"]
-                      for g in ch["gates"] if not g["passed"]}
+            failed = {
+                g["name"]
+                for ch in stored["positions"][-1]["channels"]
+                for g in ch["gates"]
+                if not g["passed"]
+            }
             if failed != {"buffers"} or i == attempts - 1:
                 raise
             print(f"retrying after dropped buffers: {exc}")
@@ -89,11 +93,24 @@ def repeat_on_xruns(limit: int = 25):
 def test_measure_matches_room_removes_latency_and_sees_distortion(make_room, tmp_path):  # noqa: F811
     h = known_ir()
     a2 = 1.0
-    make_room("roomsim_a", {"speakers": [{"ir": h.tolist()},
-                                         {"ir": [0.0] * 100 + [0.5], "a2": a2}],
-                            "loopback": True, "noise_rms": 1e-4, "seed": 1})
-    ms = MeasureSettings(device="roomsim_a", outputs=(1, 2), input=1, loopback=(3, 2),
-                         repeats=2, harmonics=3, **dict(SHORT, sweep_s=0.7))
+    make_room(
+        "roomsim_a",
+        {
+            "speakers": [{"ir": h.tolist()}, {"ir": [0.0] * 100 + [0.5], "a2": a2}],
+            "loopback": True,
+            "noise_rms": 1e-4,
+            "seed": 1,
+        },
+    )
+    ms = MeasureSettings(
+        device="roomsim_a",
+        outputs=(1, 2),
+        input=1,
+        loopback=(3, 2),
+        repeats=2,
+        harmonics=3,
+        **dict(SHORT, sweep_s=0.7),
+    )
     lines = []
     rec = measure_retrying_on_xruns(ms, tmp_path / "out", say=lines.append)
     out = tmp_path / "out"
@@ -138,8 +155,10 @@ def test_measure_matches_room_removes_latency_and_sees_distortion(make_room, tmp
 
 def test_disconnected_speaker_is_caught(make_room, tmp_path):  # noqa: F811
     # output 1 (the reference) plays, output 2 is not connected
-    make_room("roomsim_b", {"speakers": [{"ir": [0.0] * 40 + [0.5]}, {"ir": None}],
-                            "noise_rms": 1e-3, "seed": 2})
+    make_room(
+        "roomsim_b",
+        {"speakers": [{"ir": [0.0] * 40 + [0.5]}, {"ir": None}], "noise_rms": 1e-3, "seed": 2},
+    )
     ms = MeasureSettings(device="roomsim_b", outputs=(1, 2), input=1, repeats=1, **QUICK)
     with pytest.raises(QualityGateError, match="no arrival"):
         run_measurement(ms, tmp_path / "out", yes=True, say=lambda s: None)
@@ -162,8 +181,10 @@ def test_no_input_signal_stops_before_the_first_sweep(make_room, tmp_path):  # n
 
 
 def test_clipped_input_is_caught(make_room, tmp_path):  # noqa: F811
-    make_room("roomsim_c", {"speakers": [{"ir": [0.0] * 50 + [1.0]}], "gain": 30.0,
-                            "noise_rms": 1e-4, "seed": 3})
+    make_room(
+        "roomsim_c",
+        {"speakers": [{"ir": [0.0] * 50 + [1.0]}], "gain": 30.0, "noise_rms": 1e-4, "seed": 3},
+    )
     ms = MeasureSettings(device="roomsim_c", outputs=(1,), input=1, repeats=1, **QUICK)
     lines = []
     with pytest.raises(QualityGateError, match="clipping"):
@@ -195,18 +216,44 @@ def test_cli_measure_deconvolve_design(make_room, tmp_path):  # noqa: F811
     import subprocess
 
     h1 = known_ir()
-    make_room("roomsim_d", {"speakers": [{"ir": h1.tolist()}], "loopback": True,
-                            "noise_rms": 1e-4, "seed": 4})
+    make_room(
+        "roomsim_d",
+        {"speakers": [{"ir": h1.tolist()}], "loopback": True, "noise_rms": 1e-4, "seed": 4},
+    )
     cfg = tmp_path / "quick.toml"
     cfg.write_text("[measure]\nnoise_s = 0.2\ntail_s = 0.35\ntest_s = 0.2\n")
     out = tmp_path / "session"
     cmd = [sys.executable, "-m", "roomcorr"]
     for attempt in range(3):
-        r = subprocess.run(cmd + ["measure", "--device", "roomsim_d", "--outputs", "1",
-                                  "--input", "1", "--loopback", "2,2", "--yes", "--out",
-                                  str(out), "--settings", str(cfg), "--sweep-seconds", "0.5",
-                                  "--repeats", "1", "--ir-seconds", "0.2", "--replace"],
-                           capture_output=True, text=True, timeout=120)
+        r = subprocess.run(
+            cmd
+            + [
+                "measure",
+                "--device",
+                "roomsim_d",
+                "--outputs",
+                "1",
+                "--input",
+                "1",
+                "--loopback",
+                "2,2",
+                "--yes",
+                "--out",
+                str(out),
+                "--settings",
+                str(cfg),
+                "--sweep-seconds",
+                "0.5",
+                "--repeats",
+                "1",
+                "--ir-seconds",
+                "0.2",
+                "--replace",
+            ],
+            capture_output=True,
+            text=True,
+            timeout=120,
+        )
         if r.returncode == 0 or "buffers dropped" not in r.stderr or attempt == 2:
             break  # retry only dropped buffers on a loaded machine (see above)
     assert r.returncode == 0, r.stderr
@@ -214,19 +261,34 @@ def test_cli_measure_deconvolve_design(make_room, tmp_path):  # noqa: F811
     played, _ = sf.read(out / "raw" / "playback.wav")
     assert np.max(np.abs(played)) == pytest.approx(0.1, rel=1e-3)  # -20 dBFS default
     ir, fs = sf.read(out / "pos1.wav", always_2d=True)
-    assert band_energy_error_db(ir[:, 0], np.r_[h1, np.zeros(len(ir) - len(h1))], FS,
-                                100, 16000) < -40
+    assert (
+        band_energy_error_db(ir[:, 0], np.r_[h1, np.zeros(len(ir) - len(h1))], FS, 100, 16000) < -40
+    )
 
-    d = subprocess.run(cmd + ["deconvolve", str(out / "raw" / "pos1_out1.wav"),
-                              "--sweep-settings", str(out / "measurement.json"),
-                              "--out", str(tmp_path / "again.wav")],
-                       capture_output=True, text=True, timeout=60)
+    d = subprocess.run(
+        cmd
+        + [
+            "deconvolve",
+            str(out / "raw" / "pos1_out1.wav"),
+            "--sweep-settings",
+            str(out / "measurement.json"),
+            "--out",
+            str(tmp_path / "again.wav"),
+        ],
+        capture_output=True,
+        text=True,
+        timeout=60,
+    )
     assert d.returncode == 0, d.stderr
     again, _ = sf.read(tmp_path / "again.wav")
     np.testing.assert_allclose(again, ir[:, 0], atol=1e-6)
 
-    des = subprocess.run(cmd + ["design", str(out), "--out", str(tmp_path / "design")],
-                         capture_output=True, text=True, timeout=120)
+    des = subprocess.run(
+        cmd + ["design", str(out), "--out", str(tmp_path / "design")],
+        capture_output=True,
+        text=True,
+        timeout=120,
+    )
     assert des.returncode == 0, des.stderr
     assert (tmp_path / "design" / "manifest.json").exists()
 
@@ -236,16 +298,40 @@ def test_ctrl_c_keeps_saved_files_and_leaves_no_partial_ones(make_room, tmp_path
     import subprocess
     import time
 
-    make_room("roomsim_e", {"speakers": [{"ir": [0.0] * 30 + [0.5]}], "noise_rms": 1e-4,
-                            "seed": 5})
+    make_room("roomsim_e", {"speakers": [{"ir": [0.0] * 30 + [0.5]}], "noise_rms": 1e-4, "seed": 5})
     cfg = tmp_path / "quick.toml"
     cfg.write_text("[measure]\nnoise_s = 0.2\ntail_s = 0.35\ntest_s = 0.2\n")
     out = tmp_path / "session"
     proc = subprocess.Popen(
-        [sys.executable, "-m", "roomcorr", "measure", "--device", "roomsim_e", "--outputs", "1",
-         "--input", "1", "--yes", "--positions", "3", "--out", str(out), "--settings", str(cfg),
-         "--sweep-seconds", "1", "--repeats", "1", "--ir-seconds", "0.2", "--force"],
-        stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+        [
+            sys.executable,
+            "-m",
+            "roomcorr",
+            "measure",
+            "--device",
+            "roomsim_e",
+            "--outputs",
+            "1",
+            "--input",
+            "1",
+            "--yes",
+            "--positions",
+            "3",
+            "--out",
+            str(out),
+            "--settings",
+            str(cfg),
+            "--sweep-seconds",
+            "1",
+            "--repeats",
+            "1",
+            "--ir-seconds",
+            "0.2",
+            "--force",
+        ],
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+        text=True,
     )
     for _ in range(600):  # up to 60 s for position 1 to be saved
         if (out / "pos1.wav").exists() or proc.poll() is not None:
@@ -301,9 +387,16 @@ def magnitude_error_db(measured, true, lo_hz=50.0, hi_hz=15000.0):
 def test_two_streams_with_clock_drift_and_changing_latency(make_room, tmp_path, drift_ppm):  # noqa: F811
     h1, h2 = known_ir(), second_ir()
     name = f"roomsim_drift{int(abs(drift_ppm))}"
-    make_room(name, {"speakers": [{"ir": h1.tolist()}, {"ir": h2.tolist()}],
-                     "noise_rms": 1e-5, "seed": 21, "drift_ppm": drift_ppm,
-                     "latency_ms": [0, 50]})
+    make_room(
+        name,
+        {
+            "speakers": [{"ir": h1.tolist()}, {"ir": h2.tolist()}],
+            "noise_rms": 1e-5,
+            "seed": 21,
+            "drift_ppm": drift_ppm,
+            "latency_ms": [0, 50],
+        },
+    )
     ms = MeasureSettings(device=name, two_streams=True, outputs=(1, 2), input=1, **TWO)
     lines = []
     rec = run_measurement(ms, tmp_path / "out", ask=repeat_on_xruns(), say=lines.append)
@@ -335,8 +428,14 @@ QUICK_TOML = "[measure]\nnoise_s = 0.2\ntail_s = 0.32\ntest_s = 0.2\nir_s = 0.2\
 def roomcorr_cmd(*args, cwd=None, timeout=240, stdin=None):
     import subprocess
 
-    return subprocess.run([sys.executable, "-m", "roomcorr", *args], capture_output=True,
-                          text=True, timeout=timeout, cwd=cwd, input=stdin)
+    return subprocess.run(
+        [sys.executable, "-m", "roomcorr", *args],
+        capture_output=True,
+        text=True,
+        timeout=timeout,
+        cwd=cwd,
+        input=stdin,
+    )
 
 
 #: Answers for the prompts of an interactive run: Enter at "place the microphone"
@@ -347,8 +446,17 @@ REPEAT_ANSWERS = "r\n" * 60
 
 def cli_measure(*args, cwd=None):
     """roomcorr measure as a user at the keyboard (no --yes), short sweeps."""
-    return roomcorr_cmd("measure", "--plain", "--sweep-seconds", "0.5", "--repeats", "1",
-                        *args, cwd=cwd, stdin=REPEAT_ANSWERS)
+    return roomcorr_cmd(
+        "measure",
+        "--plain",
+        "--sweep-seconds",
+        "0.5",
+        "--repeats",
+        "1",
+        *args,
+        cwd=cwd,
+        stdin=REPEAT_ANSWERS,
+    )
 
 
 def test_compare_recovers_a_moved_loudspeaker_under_changing_latency(make_room, tmp_path):  # noqa: F811
@@ -365,11 +473,28 @@ def test_compare_recovers_a_moved_loudspeaker_under_changing_latency(make_room, 
         h2[400 + extra] = 0.4
         h2[700 + extra] = 0.1
         name = f"roomsim_cmp{run}"
-        r = make_room(name, {"speakers": [{"ir": h1.tolist()}, {"ir": h2.tolist()}],
-                             "noise_rms": 1e-5, "seed": 30 + run, "drift_ppm": 40.0 - 90 * run,
-                             "latency_ms": [0, 50]})
-        res = cli_measure("--input-device", name, "--output-device", name, "--two-streams",
-                          "--outputs", "1,2", "--settings", str(cfg), cwd=room)
+        r = make_room(
+            name,
+            {
+                "speakers": [{"ir": h1.tolist()}, {"ir": h2.tolist()}],
+                "noise_rms": 1e-5,
+                "seed": 30 + run,
+                "drift_ppm": 40.0 - 90 * run,
+                "latency_ms": [0, 50],
+            },
+        )
+        res = cli_measure(
+            "--input-device",
+            name,
+            "--output-device",
+            name,
+            "--two-streams",
+            "--outputs",
+            "1,2",
+            "--settings",
+            str(cfg),
+            cwd=room,
+        )
         assert res.returncode == 0, res.stderr
         r.close()
     cmp = roomcorr_cmd("compare", "--json", "--no-filter-check", cwd=room)
@@ -385,17 +510,41 @@ def test_resume_after_sigkill_at_position_2_of_3(make_room, tmp_path):  # noqa: 
     import subprocess
     import time
 
-    make_room("roomsim_kill", {"speakers": [{"ir": [0.0] * 30 + [0.5]}], "noise_rms": 1e-5,
-                               "seed": 40})
+    make_room(
+        "roomsim_kill", {"speakers": [{"ir": [0.0] * 30 + [0.5]}], "noise_rms": 1e-5, "seed": 40}
+    )
     cfg = tmp_path / "quick.toml"
     cfg.write_text(QUICK_TOML)
     out = tmp_path / "session"
-    common = ["--device", "roomsim_kill", "--outputs", "1", "--positions", "3", "--out",
-              str(out), "--settings", str(cfg)]
+    common = [
+        "--device",
+        "roomsim_kill",
+        "--outputs",
+        "1",
+        "--positions",
+        "3",
+        "--out",
+        str(out),
+        "--settings",
+        str(cfg),
+    ]
     proc = subprocess.Popen(
-        [sys.executable, "-m", "roomcorr", "measure", "--plain", "--sweep-seconds",
-         "0.5", "--repeats", "1", *common],
-        stdin=subprocess.PIPE, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+        [
+            sys.executable,
+            "-m",
+            "roomcorr",
+            "measure",
+            "--plain",
+            "--sweep-seconds",
+            "0.5",
+            "--repeats",
+            "1",
+            *common,
+        ],
+        stdin=subprocess.PIPE,
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+        text=True,
     )
     proc.stdin.write(REPEAT_ANSWERS)
     proc.stdin.flush()
@@ -431,6 +580,16 @@ def test_bad_devices_rate_and_sensitivity_are_one_line_and_write_nothing(make_ro
         (["--device", "roomsim_ok", "--mic-sensitivity", "20"], "not plausible"),
         (["--device", "no-such-device"], "not found"),
     ]
+    listing = roomcorr_cmd("devices")
+    assert listing.returncode == 0, listing.stderr
+    rows = {
+        line.split()[1]: line
+        for line in listing.stdout.splitlines()
+        if len(line.split()) > 2 and line.split()[0].isdigit()
+    }
+    assert " record " in rows["miconly"] and "play" not in rows["miconly"]
+    assert " play " in rows["speakonly"] and "record" not in rows["speakonly"]
+    assert "play+record" in rows["roomsim_ok"]
     for k, (args, expect) in enumerate(cases):
         out = tmp_path / f"out{k}"
         r = cli_measure("--outputs", "1", "--out", str(out), *args)
@@ -442,14 +601,21 @@ def test_bad_devices_rate_and_sensitivity_are_one_line_and_write_nothing(make_ro
 def test_calibrate_mic_reads_a_calibrator(make_room):  # noqa: F811
     # A 1 kHz sine of amplitude 0.05 reads 20 log10(0.05) = -26.02 dBFS (AES17: a
     # full-scale sine is 0 dBFS); as the 94 dB SPL calibrator that is the sensitivity.
-    make_room("calib", {"speakers": [], "tone": [1000.0, 0.05], "noise_rms": 1e-4,
-                        "seed": 60})
+    make_room("calib", {"speakers": [], "tone": [1000.0, 0.05], "noise_rms": 1e-4, "seed": 60})
     r = roomcorr_cmd("calibrate-mic", "--device", "calib", "--seconds", "1.5", "--plain")
     assert r.returncode == 0, r.stderr
     value = float(r.stdout.split("sensitivity: ")[1].split(" dBFS")[0])
     assert value == pytest.approx(20 * np.log10(0.05), abs=0.05)
-    r114 = roomcorr_cmd("calibrate-mic", "--device", "calib", "--seconds", "1.5", "--plain",
-                        "--calibrator-level", "114")
+    r114 = roomcorr_cmd(
+        "calibrate-mic",
+        "--device",
+        "calib",
+        "--seconds",
+        "1.5",
+        "--plain",
+        "--calibrator-level",
+        "114",
+    )
     value114 = float(r114.stdout.split("sensitivity: ")[1].split(" dBFS")[0])
     assert value114 == pytest.approx(value - 20, abs=0.05)
 
@@ -459,20 +625,40 @@ def test_live_view_on_a_terminal_and_plain_lines_elsewhere_with_spl(make_room, t
     import pty
     import subprocess
 
-    make_room("roomsim_live", {"speakers": [{"ir": [0.0] * 30 + [0.5]}], "noise_rms": 1e-5,
-                               "seed": 70})
+    make_room(
+        "roomsim_live", {"speakers": [{"ir": [0.0] * 30 + [0.5]}], "noise_rms": 1e-5, "seed": 70}
+    )
     cfg = tmp_path / "quick.toml"
     cfg.write_text(QUICK_TOML)
     sens = 20 * np.log10(0.05)  # as read by calibrate-mic above
-    args = ["measure", "--device", "roomsim_live", "--outputs", "1", "--yes",
-            "--sweep-seconds", "0.5", "--repeats", "1", "--settings", str(cfg), "--force",
-            "--mic-sensitivity", f"{sens:.3f}"]
+    args = [
+        "measure",
+        "--device",
+        "roomsim_live",
+        "--outputs",
+        "1",
+        "--yes",
+        "--sweep-seconds",
+        "0.5",
+        "--repeats",
+        "1",
+        "--settings",
+        str(cfg),
+        "--force",
+        "--mic-sensitivity",
+        f"{sens:.3f}",
+    ]
     # 1) a pseudo-terminal: rich draws the live line (meter, progress, time left)
     master, slave = pty.openpty()
     env = dict(os.environ, CI="", COLUMNS="160", TERM="xterm")
-    proc = subprocess.Popen([sys.executable, "-m", "roomcorr", *args, "--out",
-                             str(tmp_path / "tty")], stdin=slave, stdout=slave, stderr=slave,
-                            env=env, close_fds=True)
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "roomcorr", *args, "--out", str(tmp_path / "tty")],
+        stdin=slave,
+        stdout=slave,
+        stderr=slave,
+        env=env,
+        close_fds=True,
+    )
     os.close(slave)
     chunks = []
     while True:
@@ -492,9 +678,13 @@ def test_live_view_on_a_terminal_and_plain_lines_elsewhere_with_spl(make_room, t
     assert "\x1b[" in screen  # drawn with terminal control sequences
     assert "protect your hearing" in screen
     # 2) not a terminal: plain lines, no control sequences
-    r = subprocess.run([sys.executable, "-m", "roomcorr", *args, "--out",
-                        str(tmp_path / "pipe")], capture_output=True, text=True, timeout=120,
-                       env=dict(os.environ, CI="true"))
+    r = subprocess.run(
+        [sys.executable, "-m", "roomcorr", *args, "--out", str(tmp_path / "pipe")],
+        capture_output=True,
+        text=True,
+        timeout=120,
+        env=dict(os.environ, CI="true"),
+    )
     assert r.returncode == 0, r.stderr
     assert "\x1b[" not in r.stdout
     assert "position 1 of 1, output 1: " in r.stdout and "%, " in r.stdout
@@ -517,20 +707,47 @@ def test_measure_through_a_design_gives_room_times_filter(make_room, tmp_path): 
     meas.mkdir()
     sf.write(meas / "pos1.wav", np.array([h1, h2]).T.astype(np.float32), FS, subtype="FLOAT")
     design = tmp_path / "design"
-    d = subprocess.run([sys.executable, "-m", "roomcorr", "design", str(meas), "--out",
-                        str(design), "--taps", "8192", "--rates", "48000"],
-                       capture_output=True, text=True, timeout=180)
+    d = subprocess.run(
+        [
+            sys.executable,
+            "-m",
+            "roomcorr",
+            "design",
+            str(meas),
+            "--out",
+            str(design),
+            "--taps",
+            "8192",
+            "--rates",
+            "48000",
+        ],
+        capture_output=True,
+        text=True,
+        timeout=180,
+    )
     assert d.returncode == 0, d.stderr
-    firs = np.array([sf.read(design / "fir" / "48000" / f"{n}.wav")[0]
-                     for n in ("left", "right")])
-    make_room("roomsim_thru", {"speakers": [{"ir": h1.tolist()}, {"ir": h2.tolist()}],
-                               "noise_rms": 1e-5, "seed": 80, "drift_ppm": 60.0,
-                               "latency_ms": [0, 50]})
-    ms = MeasureSettings(device="roomsim_thru", two_streams=True, outputs=(1, 2), input=1,
-                         **dict(TWO, ir_s=0.4, tail_s=0.5))
+    firs = np.array([sf.read(design / "fir" / "48000" / f"{n}.wav")[0] for n in ("left", "right")])
+    make_room(
+        "roomsim_thru",
+        {
+            "speakers": [{"ir": h1.tolist()}, {"ir": h2.tolist()}],
+            "noise_rms": 1e-5,
+            "seed": 80,
+            "drift_ppm": 60.0,
+            "latency_ms": [0, 50],
+        },
+    )
+    ms = MeasureSettings(
+        device="roomsim_thru",
+        two_streams=True,
+        outputs=(1, 2),
+        input=1,
+        **dict(TWO, ir_s=0.4, tail_s=0.5),
+    )
     lines = []
-    rec = run_measurement(ms, tmp_path / "out", ask=repeat_on_xruns(), say=lines.append,
-                          through=design)
+    rec = run_measurement(
+        ms, tmp_path / "out", ask=repeat_on_xruns(), say=lines.append, through=design
+    )
     ir, _ = sf.read(tmp_path / "out" / "pos1.wav", always_2d=True)
     from scipy.signal import fftconvolve
 

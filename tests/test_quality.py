@@ -73,17 +73,29 @@ def test_repeat_disagreement_formula():
     assert q.repeat_disagreement_db(h[None, :]) == float("-inf")
 
 
-GOOD = {"clipped_samples": 0, "peak_dbfs": -12.0, "min_snr_db": 50.0, "dc_offset": 0.0,
-        "stream_problems": 0, "arrival_snr_db": 70.0, "repeat_disagreement_db": -45.0}
+GOOD = {
+    "clipped_samples": 0,
+    "peak_dbfs": -12.0,
+    "min_snr_db": 50.0,
+    "dc_offset": 0.0,
+    "stream_problems": 0,
+    "arrival_snr_db": 70.0,
+    "repeat_disagreement_db": -45.0,
+}
 LIMITS = sweep_layout(MeasureSettings())["limits"]
 
 
 @pytest.mark.parametrize(
     ("key", "value", "gate"),
-    [("clipped_samples", 3, "clipping"), ("peak_dbfs", -70.0, "input_level"),
-     ("min_snr_db", 5.0, "snr"), ("dc_offset", 0.05, "dc_offset"),
-     ("stream_problems", 2, "buffers"), ("arrival_snr_db", 12.0, "arrival"),
-     ("repeat_disagreement_db", -6.0, "repeats_agree")],
+    [
+        ("clipped_samples", 3, "clipping"),
+        ("peak_dbfs", -70.0, "input_level"),
+        ("min_snr_db", 5.0, "snr"),
+        ("dc_offset", 0.05, "dc_offset"),
+        ("stream_problems", 2, "buffers"),
+        ("arrival_snr_db", 12.0, "arrival"),
+        ("repeat_disagreement_db", -6.0, "repeats_agree"),
+    ],
 )
 def test_each_gate_fails_alone(key, value, gate):
     assert all(g.passed for g in q.evaluate_gates(GOOD, LIMITS))
@@ -121,8 +133,7 @@ def simulated_recording(ms, h, latency, a2=0.0, noise=1e-5, dc=0.0, seed=0):
     return mic, sent
 
 
-MS = MeasureSettings(sweep_s=1.0, noise_s=0.3, tail_s=0.4, ir_s=0.25, repeats=2,
-                     loopback=(3, 2))
+MS = MeasureSettings(sweep_s=1.0, noise_s=0.3, tail_s=0.4, ir_s=0.25, repeats=2, loopback=(3, 2))
 
 
 def test_offline_analysis_removes_latency_and_recovers_ir():
@@ -143,8 +154,7 @@ def test_offline_analysis_removes_latency_and_recovers_ir():
 def test_offline_analysis_without_loopback_or_markers_keeps_latency_and_says_so():
     h = np.zeros(100)
     h[50] = 0.5
-    ms = MeasureSettings(sweep_s=1.0, noise_s=0.3, tail_s=0.4, ir_s=0.25, repeats=1,
-                         markers=False)
+    ms = MeasureSettings(sweep_s=1.0, noise_s=0.3, tail_s=0.4, ir_s=0.25, repeats=1, markers=False)
     mic, _ = simulated_recording(ms, h, latency=500, dc=0.05)
     _, fig, gates = analyse_recording(mic, None, sweep_layout(ms))
     assert fig["latency_s"] is None and "no loopback" in fig["latency_note"]
@@ -224,12 +234,14 @@ def test_levels_of_a_sine_and_of_noise_bands():
     assert lv.rms_dbfs(np.sin(2 * np.pi * 997 * t)) == pytest.approx(0.0, abs=1e-3)
     x = 0.05 * np.sin(2 * np.pi * 1000 * t)
     assert lv.rms_dbfs(x) == pytest.approx(20 * np.log10(0.05), abs=1e-3)
-    sens, frac = lv.sensitivity_from_calibrator(x + 1e-4 * np.random.default_rng(0)
-                                                .standard_normal(FS), FS)
+    sens, frac = lv.sensitivity_from_calibrator(
+        x + 1e-4 * np.random.default_rng(0).standard_normal(FS), FS
+    )
     assert sens == pytest.approx(20 * np.log10(0.05), abs=0.01) and frac > 0.99
     # 94 dB SPL = 1 Pa (20 uPa reference): a tone at the sensitivity reads 94 dB SPL
     assert lv.to_spl(sens, sens) == 94.0 and lv.PA_DB_SPL == pytest.approx(
-        20 * np.log10(1 / 20e-6), abs=1e-4)
+        20 * np.log10(1 / 20e-6), abs=1e-4
+    )
     # Parseval: white noise's octave bands add up to its total level (bands cover
     # 22 Hz .. 22.6 kHz, nearly all of 0 .. 24 kHz: within 0.5 dB)
     noise = np.random.default_rng(1).standard_normal(8 * FS)
@@ -248,8 +260,9 @@ def test_sensitivity_from_a_calibration_file_header(tmp_path):
     from roomcorr.measure.levels import sensitivity_from_file
 
     good = tmp_path / "mic.txt"
-    good.write_text("# invented measurement microphone\n# sensitivity_dbfs = -31.5\n"
-                    "20 -0.5\n1000 0.0\n")
+    good.write_text(
+        "# invented measurement microphone\n# sensitivity_dbfs = -31.5\n20 -0.5\n1000 0.0\n"
+    )
     assert sensitivity_from_file(good) == -31.5
     bad = tmp_path / "nohead.txt"
     bad.write_text("20 -0.5\n# sensitivity_dbfs = -31.5\n")  # only the header counts

@@ -44,8 +44,17 @@ def offline_room(monkeypatch):
     monkeypatch.setattr(capture, "open_devices", lambda *a, **k: DEVICES)
 
 
-MS = MeasureSettings(sweep_s=0.5, noise_s=0.2, tail_s=0.35, ir_s=0.2, test_s=0.2,
-                     repeats=1, outputs=(1, 2), loopback=(3, 2), positions=2)
+MS = MeasureSettings(
+    sweep_s=0.5,
+    noise_s=0.2,
+    tail_s=0.35,
+    ir_s=0.2,
+    test_s=0.2,
+    repeats=1,
+    outputs=(1, 2),
+    loopback=(3, 2),
+    positions=2,
+)
 
 
 def test_session_files_and_record(offline_room, tmp_path):
@@ -64,8 +73,9 @@ def test_session_files_and_record(offline_room, tmp_path):
 
 def test_prompts_between_positions_unless_yes(offline_room, tmp_path):
     asked = []
-    run_measurement(MS, tmp_path / "s", ask=lambda text: asked.append(text) or "",
-                    say=lambda s: None)
+    run_measurement(
+        MS, tmp_path / "s", ask=lambda text: asked.append(text) or "", say=lambda s: None
+    )
     assert len(asked) == 2 and "position 1" in asked[0] and "Enter" in asked[0]
 
 
@@ -80,8 +90,9 @@ def test_replace_removes_an_earlier_sessions_files(offline_room, tmp_path):
 
 
 def test_loud_level_needs_permission_and_warns(offline_room, tmp_path):
-    loud = MeasureSettings(**{**MS.to_dict(), "outputs": (1,), "loopback": None,
-                              "positions": 1, "level_dbfs": -3.0})
+    loud = MeasureSettings(
+        **{**MS.to_dict(), "outputs": (1,), "loopback": None, "positions": 1, "level_dbfs": -3.0}
+    )
     with pytest.raises(SafetyError):
         run_measurement(loud, tmp_path / "a", yes=True, say=lambda s: None)
     assert not (tmp_path / "a").exists()  # refused before anything was written or played
@@ -109,8 +120,9 @@ class FakeSoundDevice:
         fake = self
 
         class Stream:
-            def __init__(self, device, samplerate, channels, dtype, blocksize, callback,
-                         finished_callback):
+            def __init__(
+                self, device, samplerate, channels, dtype, blocksize, callback, finished_callback
+            ):
                 self.cb, self.fin = callback, finished_callback
                 self.n_in, self.n_out = channels
                 fake.captures += 1
@@ -133,8 +145,9 @@ class FakeSoundDevice:
                     sent = np.r_[air, np.zeros(512)]
                     ind = (0.5 * sent[:512] + 1e-5 * rng.standard_normal(512))[:, None]
                     try:
-                        self.cb(np.repeat(ind, self.n_in, 1).astype(np.float32), out, 512,
-                                None, None)
+                        self.cb(
+                            np.repeat(ind, self.n_in, 1).astype(np.float32), out, 512, None, None
+                        )
                     except fake.CallbackStop:
                         break
                     air = np.r_[air, out[:, 0]][-300:]
@@ -149,9 +162,14 @@ class FakeSoundDevice:
         self.Stream = Stream
 
     def query_devices(self, dev=None):
-        info = {"name": "invented USB interface", "index": 0, "hostapi": 0,
-                "max_input_channels": 2, "max_output_channels": 2,
-                "default_samplerate": 48000.0}
+        info = {
+            "name": "invented USB interface",
+            "index": 0,
+            "hostapi": 0,
+            "max_input_channels": 2,
+            "max_output_channels": 2,
+            "default_samplerate": 48000.0,
+        }
         if dev is None:
             return [info]
         if dev not in (0, "invented"):
@@ -173,9 +191,27 @@ def test_device_disappearing_mid_sweep_keeps_earlier_positions(monkeypatch, tmp_
     fake = FakeSoundDevice(vanish_at=3)  # level check, position 1, then position 2 vanishes
     monkeypatch.setattr(capture, "_sd", lambda: fake)
     out = tmp_path / "s"
-    status = cli.main(["measure", "--device", "invented", "--outputs", "1", "--positions",
-                       "2", "--yes", "--plain", "--sweep-seconds", "0.5", "--repeats", "1",
-                       "--ir-seconds", "0.2", "--out", str(out)])
+    status = cli.main(
+        [
+            "measure",
+            "--device",
+            "invented",
+            "--outputs",
+            "1",
+            "--positions",
+            "2",
+            "--yes",
+            "--plain",
+            "--sweep-seconds",
+            "0.5",
+            "--repeats",
+            "1",
+            "--ir-seconds",
+            "0.2",
+            "--out",
+            str(out),
+        ]
+    )
     err = capsys.readouterr().err.strip().splitlines()
     assert status == 2 and len(err) == 1
     assert "invented USB interface" in err[0] and "disconnected" in err[0]
@@ -183,3 +219,24 @@ def test_device_disappearing_mid_sweep_keeps_earlier_positions(monkeypatch, tmp_
     stored = json.loads((out / "measurement.json").read_text())  # complete, valid JSON
     assert stored["positions"][0]["file"] == "pos1.wav"
     assert not [p for p in out.rglob("*") if p.name.startswith(".roomcorr-tmp-")]
+
+
+def test_devices_without_any_device_says_so(monkeypatch, capsys):
+    from roomcorr import cli
+
+    fake = FakeSoundDevice(vanish_at=99)
+    fake.query_devices = lambda dev=None: [] if dev is None else {}
+    monkeypatch.setattr(capture, "_sd", lambda: fake)
+    assert cli.main(["devices"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "no audio devices found" in err[0] and "plug in" in err[0]
+
+
+def test_no_default_device_names_the_option(monkeypatch):
+    from roomcorr.errors import DeviceError
+
+    fake = FakeSoundDevice(vanish_at=99)
+    fake.default.device = [-1, -1]
+    monkeypatch.setattr(capture, "_sd", lambda: fake)
+    with pytest.raises(DeviceError, match="no default input device.*--input-device"):
+        capture.open_devices(48000, 1, 1)

@@ -38,8 +38,9 @@ def test_through_check_finds_where_measurement_and_prediction_differ():
     b = [1 + alpha * A, -2 * np.cos(w0), 1 - alpha * A]
     a = [1 + alpha / A, -2 * np.cos(w0), 1 - alpha / A]
     measured = lfilter(b, a, np.r_[room, np.zeros(6000)])
-    res = through_check(measured[None, None, :], room[None, None, :], fir[None, :], FS,
-                        (50.0, 15000.0))
+    res = through_check(
+        measured[None, None, :], room[None, None, :], fir[None, :], FS, (50.0, 15000.0)
+    )
     ranges = res["over_limit"][0][0]
     assert len(ranges) == 1 and ranges[0][0] < 1000 < ranges[0][1]
     assert 700 < ranges[0][0] and ranges[0][1] < 1400

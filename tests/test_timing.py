@@ -29,7 +29,8 @@ def test_relative_delay_of_a_shifted_noise_burst():
     f = np.fft.rfftfreq(8192)
     b = np.fft.irfft(np.fft.rfft(a, 8192) * np.exp(-2j * np.pi * f * 0.3125), 8192)[:4096]
     assert tm.relative_delay(a[200:3800], b[200:3800], FS, 100, 16000) == pytest.approx(
-        0.3125, abs=2e-3)
+        0.3125, abs=2e-3
+    )
 
 
 def test_plan_puts_markers_around_the_sweeps():
@@ -42,8 +43,7 @@ def test_plan_puts_markers_around_the_sweeps():
     marker = tm.Marker.from_dict(lay["marker"])
     assert np.max(np.abs(mk)) == pytest.approx(10 ** (ms.level_dbfs / 20), rel=1e-3)
     # the markers are not taken for a sweep and vice versa: found exactly where played
-    plan = tm.capture_plan(Sweep.from_dict(lay["sweep"]),
-                           ms.noise_s, ms.tail_s, ms.repeats, marker)
+    plan = tm.capture_plan(Sweep.from_dict(lay["sweep"]), ms.noise_s, ms.tail_s, ms.repeats, marker)
     t = tm.locate_markers(sw + mk, plan, marker)
     assert t.found and t.offset_samples == pytest.approx(0.0, abs=0.05)
 
@@ -59,8 +59,9 @@ def test_ten_second_sweep_with_drift_gives_the_same_ir_as_without(drift_ppm):
     h = np.zeros(3000)
     h[300] = 0.5
     h[700] = -0.2
-    h[300:] += 0.01 * np.random.default_rng(3).standard_normal(2700) * np.exp(
-        -np.arange(2700) / 400)
+    h[300:] += (
+        0.01 * np.random.default_rng(3).standard_normal(2700) * np.exp(-np.arange(2700) / 400)
+    )
     clean = np.r_[np.zeros(3000), scipy.signal.fftconvolve(sig[0], h)]
     rng = np.random.default_rng(4)
     rec, true_ppm = drifted(clean, drift_ppm, extra=2000)
@@ -74,23 +75,26 @@ def test_ten_second_sweep_with_drift_gives_the_same_ir_as_without(drift_ppm):
     if drift_ppm:  # ...while leaving the drift in smears the top octaves (1 ms over 10 s)
         lay_off = dict(lay, marker=None)
         n0 = 3000
-        plain = rec[n0 + 0:]
-        ir_raw, _, _ = analyse_recording(np.r_[plain, np.zeros(5000)], None,
-                                         dict(lay_off, noise_s=ms.noise_s))
+        plain = rec[n0 + 0 :]
+        ir_raw, _, _ = analyse_recording(
+            np.r_[plain, np.zeros(5000)], None, dict(lay_off, noise_s=ms.noise_s)
+        )
         assert band_energy_error_db(ir_raw, ir0, FS, 50, 15000) > -40
 
 
 def test_drift_above_the_limit_fails_its_gate():
-    ms = MeasureSettings(sweep_s=1.0, noise_s=0.3, tail_s=0.4, ir_s=0.2, repeats=1,
-                         max_drift_ppm=100.0)
+    ms = MeasureSettings(
+        sweep_s=1.0, noise_s=0.3, tail_s=0.4, ir_s=0.2, repeats=1, max_drift_ppm=100.0
+    )
     lay = sweep_layout(ms)
     sig, _ = capture_signal(lay, 1)
     h = np.zeros(200)
     h[100] = 0.5
     clean = np.r_[np.zeros(1000), scipy.signal.fftconvolve(sig[0], h)]
     rec, true_ppm = drifted(clean, 400.0, extra=1000)
-    _, fig, gates = analyse_recording(rec + 1e-6 * np.random.default_rng(0).standard_normal(
-        len(rec)), None, lay)
+    _, fig, gates = analyse_recording(
+        rec + 1e-6 * np.random.default_rng(0).standard_normal(len(rec)), None, lay
+    )
     assert fig["drift_ppm"] == pytest.approx(true_ppm, abs=0.5)
     failed = [g for g in gates if not g.passed]
     assert [g.name for g in failed] == ["clock_drift"] and "ppm" in failed[0].message

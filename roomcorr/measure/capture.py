@@ -143,15 +143,24 @@ class Devices:
     two_streams: bool
 
     def to_dict(self) -> dict:
-        return {"input": self.input_name, "output": self.output_name,
-                "input_index": self.input_index, "output_index": self.output_index,
-                "two_streams": self.two_streams}
+        return {
+            "input": self.input_name,
+            "output": self.output_name,
+            "input_index": self.input_index,
+            "output_index": self.output_index,
+            "two_streams": self.two_streams,
+        }
 
 
-def open_devices(fs: int, n_in: int, n_out: int, device: str | int | None = None,
-                 input_device: str | int | None = None,
-                 output_device: str | int | None = None,
-                 two_streams: bool | None = None) -> Devices:
+def open_devices(
+    fs: int,
+    n_in: int,
+    n_out: int,
+    device: str | int | None = None,
+    input_device: str | int | None = None,
+    output_device: str | int | None = None,
+    two_streams: bool | None = None,
+) -> Devices:
     """Resolve both devices and check they run at ``fs`` (before anything plays).
 
     ``input_device`` / ``output_device`` default to ``device``. Two streams are
@@ -262,8 +271,9 @@ def play_record(
     for row, ch in enumerate(out_channels):
         out_buf[n_pre:, ch - 1] += signal[row]
     if devices.two_streams:
-        rec, problems, flags = _two_streams(sd, out_buf, fs, n_in, devices, blocksize,
-                                            int(round(extra_s * fs)), progress)
+        rec, problems, flags = _two_streams(
+            sd, out_buf, fs, n_in, devices, blocksize, int(round(extra_s * fs)), progress
+        )
         rec = rec[:, [c - 1 for c in in_channels]].T.astype(np.float64)
         return Capture(rec, problems, flags, aligned=False)
     in_buf = np.zeros((n_total, n_in), dtype=np.float32)
@@ -294,9 +304,7 @@ def play_record(
             finished_callback=done.set,
         )
     except sd.PortAudioError as exc:
-        raise DeviceError(
-            f"could not open {devices.output_name!r} at {fs} Hz: {exc}"
-        ) from exc
+        raise DeviceError(f"could not open {devices.output_name!r} at {fs} Hz: {exc}") from exc
     with stream:
         try:
             _wait(done, state, n_total, progress)
@@ -320,8 +328,13 @@ def _note_status(state: dict, status) -> None:
             state["flags"].update(names)
 
 
-def _wait(done: threading.Event, state: dict, n_total: int, progress: Progress | None,
-          stall_s: float = 3.0) -> None:
+def _wait(
+    done: threading.Event,
+    state: dict,
+    n_total: int,
+    progress: Progress | None,
+    stall_s: float = 3.0,
+) -> None:
     """Wait for ``done``; report progress; give up when the position stops moving."""
     last, still = -1, 0.0
     while not done.wait(0.05):
@@ -336,9 +349,16 @@ def _wait(done: threading.Event, state: dict, n_total: int, progress: Progress |
             last, still = pos, 0.0
 
 
-def _two_streams(sd, out_buf: np.ndarray, fs: int, n_in: int, devices: Devices,
-                 blocksize: int, n_extra: int, progress: Progress | None
-                 ) -> tuple[np.ndarray, int, list[str]]:
+def _two_streams(
+    sd,
+    out_buf: np.ndarray,
+    fs: int,
+    n_in: int,
+    devices: Devices,
+    blocksize: int,
+    n_extra: int,
+    progress: Progress | None,
+) -> tuple[np.ndarray, int, list[str]]:
     """Record with one stream and play with another; the recording starts first."""
     n_play = out_buf.shape[0]
     n_rec = n_play + n_extra
@@ -372,18 +392,29 @@ def _two_streams(sd, out_buf: np.ndarray, fs: int, n_in: int, devices: Devices,
             raise sd.CallbackStop
 
     try:
-        s_in = sd.InputStream(device=devices.input_index, samplerate=fs, channels=n_in,
-                              dtype="float32", blocksize=blocksize, callback=in_cb,
-                              finished_callback=in_done.set)
+        s_in = sd.InputStream(
+            device=devices.input_index,
+            samplerate=fs,
+            channels=n_in,
+            dtype="float32",
+            blocksize=blocksize,
+            callback=in_cb,
+            finished_callback=in_done.set,
+        )
     except sd.PortAudioError as exc:
         raise DeviceError(
             f"could not open input device {devices.input_name!r} at {fs} Hz: {exc}"
         ) from exc
     try:
-        s_out = sd.OutputStream(device=devices.output_index, samplerate=fs,
-                                channels=out_buf.shape[1], dtype="float32",
-                                blocksize=blocksize, callback=out_cb,
-                                finished_callback=out_done.set)
+        s_out = sd.OutputStream(
+            device=devices.output_index,
+            samplerate=fs,
+            channels=out_buf.shape[1],
+            dtype="float32",
+            blocksize=blocksize,
+            callback=out_cb,
+            finished_callback=out_done.set,
+        )
     except sd.PortAudioError as exc:
         s_in.close()
         raise DeviceError(
@@ -425,8 +456,14 @@ def _two_streams(sd, out_buf: np.ndarray, fs: int, n_in: int, devices: Devices,
     return in_buf, int(st_in["problems"] + st_out["problems"]), flags
 
 
-def record(fs: int, in_channel: int, duration_s: float, device: str | int | None = None,
-           blocksize: int = 0, progress: Progress | None = None) -> np.ndarray:
+def record(
+    fs: int,
+    in_channel: int,
+    duration_s: float,
+    device: str | int | None = None,
+    blocksize: int = 0,
+    progress: Progress | None = None,
+) -> np.ndarray:
     """Record ``duration_s`` from one input channel (1-based) of ``device``; nothing plays.
 
     Returns
@@ -453,9 +490,15 @@ def record(fs: int, in_channel: int, duration_s: float, device: str | int | None
             raise sd.CallbackStop
 
     try:
-        stream = sd.InputStream(device=idx, samplerate=fs, channels=in_channel,
-                                dtype="float32", blocksize=blocksize, callback=cb,
-                                finished_callback=done.set)
+        stream = sd.InputStream(
+            device=idx,
+            samplerate=fs,
+            channels=in_channel,
+            dtype="float32",
+            blocksize=blocksize,
+            callback=cb,
+            finished_callback=done.set,
+        )
     except sd.PortAudioError as exc:
         raise DeviceError(f"could not open input device {info['name']!r}: {exc}") from exc
     with stream:

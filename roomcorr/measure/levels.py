@@ -77,8 +77,19 @@ def octave_levels_dbfs(x: np.ndarray, fs: int, centres_hz: np.ndarray) -> dict[f
 
 
 #: Nominal labels of the base-10 octave mid-bands (IEC 61260-1 annex; exact 1000 * 10**(0.3 x)).
-NOMINAL_OCTAVES_HZ = (16.0, 31.5, 63.0, 125.0, 250.0, 500.0, 1000.0, 2000.0, 4000.0, 8000.0,
-                      16000.0)
+NOMINAL_OCTAVES_HZ = (
+    16.0,
+    31.5,
+    63.0,
+    125.0,
+    250.0,
+    500.0,
+    1000.0,
+    2000.0,
+    4000.0,
+    8000.0,
+    16000.0,
+)
 
 
 def nominal_label(centre_hz: float) -> str:
@@ -92,8 +103,9 @@ def to_spl(level_dbfs: float, sensitivity_dbfs: float) -> float:
     return float(level_dbfs - sensitivity_dbfs + CALIBRATOR_DB_SPL)
 
 
-def sensitivity_from_calibrator(x: np.ndarray, fs: int, calibrator_db_spl: float = 94.0,
-                                tone_hz: float = 1000.0) -> tuple[float, float]:
+def sensitivity_from_calibrator(
+    x: np.ndarray, fs: int, calibrator_db_spl: float = 94.0, tone_hz: float = 1000.0
+) -> tuple[float, float]:
     """Microphone sensitivity from a recording of an acoustic calibrator.
 
     The tone's level is taken from a third-octave band around ``tone_hz``

@@ -43,8 +43,10 @@ class PlainView:
     def meter_text(self, peak_dbfs: float, rms_dbfs: float) -> str:
         if self.sensitivity_dbfs is None:
             return f"input peak {peak_dbfs:6.1f} dBFS, rms {rms_dbfs:6.1f} dBFS"
-        return (f"input peak {peak_dbfs:6.1f} dBFS, level "
-                f"{to_spl(rms_dbfs, self.sensitivity_dbfs):5.1f} dB SPL")
+        return (
+            f"input peak {peak_dbfs:6.1f} dBFS, level "
+            f"{to_spl(rms_dbfs, self.sensitivity_dbfs):5.1f} dB SPL"
+        )
 
     def start(self, label: str, duration_s: float) -> None:
         self._label, self._next, self._peak = label, 0.25, -200.0
@@ -55,8 +57,10 @@ class PlainView:
         self._peak = max(self._peak, peak_dbfs)
         if fraction >= self._next and fraction < 1.0:
             left = (1.0 - fraction) * self._duration
-            self.say(f"  {self._label}: {fraction:4.0%}, {left:4.1f} s left, "
-                     f"{self.meter_text(peak_dbfs, rms_dbfs)}")
+            self.say(
+                f"  {self._label}: {fraction:4.0%}, {left:4.1f} s left, "
+                f"{self.meter_text(peak_dbfs, rms_dbfs)}"
+            )
             while self._next <= fraction:
                 self._next += 0.25
 
@@ -91,8 +95,9 @@ class LiveView(PlainView):
             transient=False,
             refresh_per_second=10,
         )
-        self._task = self._progress.add_task(label, total=1.0, left=f"{duration_s:4.1f} s left",
-                                             meter="")
+        self._task = self._progress.add_task(
+            label, total=1.0, left=f"{duration_s:4.1f} s left", meter=""
+        )
         self._progress.start()
 
     def update(self, fraction: float, peak_dbfs: float, rms_dbfs: float) -> None:
@@ -100,9 +105,12 @@ class LiveView(PlainView):
             return
         self._peak = max(self._peak, peak_dbfs)
         left = (1.0 - fraction) * self._duration
-        self._progress.update(self._task, completed=fraction, left=f"{left:4.1f} s left",
-                              meter=self.meter_text(peak_dbfs, rms_dbfs) + " " +
-                              _bar(peak_dbfs))
+        self._progress.update(
+            self._task,
+            completed=fraction,
+            left=f"{left:4.1f} s left",
+            meter=self.meter_text(peak_dbfs, rms_dbfs) + " " + _bar(peak_dbfs),
+        )
 
     def stop(self) -> None:
         if self._progress is not None:

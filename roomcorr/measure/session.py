@@ -78,8 +78,13 @@ def sweep_layout(ms: MeasureSettings) -> dict:
 def make_sweep(ms: MeasureSettings) -> Sweep:
     """Build the synchronised sweep described by the settings."""
     return synchronized_sweep(
-        ms.sample_rate, ms.f_start_hz, ms.f_end_hz, ms.sweep_s, ms.level_dbfs,
-        ms.fade_in_s, ms.fade_out_s,
+        ms.sample_rate,
+        ms.f_start_hz,
+        ms.f_end_hz,
+        ms.sweep_s,
+        ms.level_dbfs,
+        ms.fade_in_s,
+        ms.fade_out_s,
     )
 
 
@@ -98,8 +103,9 @@ def gate_limits(ms: MeasureSettings) -> dict:
 def _plan(layout: dict) -> tuple[Sweep, tm.Marker | None, tm.Plan]:
     sweep = Sweep.from_dict(layout["sweep"])
     marker = tm.Marker.from_dict(layout["marker"]) if layout.get("marker") else None
-    plan = tm.capture_plan(sweep, layout["noise_s"], layout["tail_s"], int(layout["repeats"]),
-                           marker)
+    plan = tm.capture_plan(
+        sweep, layout["noise_s"], layout["tail_s"], int(layout["repeats"]), marker
+    )
     return sweep, marker, plan
 
 
@@ -110,8 +116,9 @@ def capture_signal(layout: dict, output: int) -> tuple[np.ndarray, list[int]]:
     timing markers (the same row when it is the one measured).
     """
     sweep, marker, _ = _plan(layout)
-    sw, mk = tm.capture_tracks(sweep, layout["noise_s"], layout["tail_s"],
-                               int(layout["repeats"]), marker)
+    sw, mk = tm.capture_tracks(
+        sweep, layout["noise_s"], layout["tail_s"], int(layout["repeats"]), marker
+    )
     ref = layout.get("reference_output")
     if mk is None:
         return sw[None, :], [output]
@@ -216,8 +223,9 @@ def analyse_recording(
     ir = h_mean[:n_ir].copy()
     split = dc.split_harmonics(h_mean, sweep, n_ir, int(layout["harmonics"]))
     hd_f, hd_db = dc.harmonic_distortion(split, fs, sweep.f_start_hz, sweep.f_end_hz)
-    snr = q.band_snr_db(sig, noise, fs, sweep.f_start_hz, sweep.f_end_hz,
-                        sweep_s=sweep.n_samples / fs)
+    snr = q.band_snr_db(
+        sig, noise, fs, sweep.f_start_hz, sweep.f_end_hz, sweep_s=sweep.n_samples / fs
+    )
     arrival_db = q.arrival_snr_db(h_mean, n_ir, slice(n_ir, n_tail))
     if loopback is not None:
         note = "removed with the loopback channel"
@@ -240,8 +248,10 @@ def analyse_recording(
         "repeat_disagreement_db": disagreement,
         "harmonic_distortion": {
             "fundamental_hz": [round(float(f), 2) for f in hd_f],
-            "orders": {str(k): [_num(v) for v in row]
-                       for k, row in zip(split.orders[1:], hd_db, strict=True)},
+            "orders": {
+                str(k): [_num(v) for v in row]
+                for k, row in zip(split.orders[1:], hd_db, strict=True)
+            },
             "unit": "dB relative to the fundamental (|H_k(k f)| / |H_1(f)|)",
         },
     }
@@ -253,8 +263,9 @@ def analyse_recording(
     return ir, figures, gates
 
 
-def level_figures(sweep_part: np.ndarray, noise: np.ndarray, fs: int,
-                  sensitivity_dbfs: float | None) -> dict:
+def level_figures(
+    sweep_part: np.ndarray, noise: np.ndarray, fs: int, sensitivity_dbfs: float | None
+) -> dict:
     """Sweep level at the seat and background noise per octave (dBFS, and dB SPL if known)."""
     centres = q.octave_centres_hz(31.5, 16000.0)
     centres = centres[centres < 0.45 * fs]
@@ -263,15 +274,15 @@ def level_figures(sweep_part: np.ndarray, noise: np.ndarray, fs: int,
         "level_unit": "dB SPL" if sensitivity_dbfs is not None else "dBFS",
         "sweep_rms_dbfs": lv.rms_dbfs(sweep_part),
         "sweep_max_dbfs": lv.short_term_max_dbfs(sweep_part, fs),
-        "noise_dbfs_per_octave": {lv.nominal_label(k): round(v, 2)
-                                  for k, v in noise_oct.items()},
+        "noise_dbfs_per_octave": {lv.nominal_label(k): round(v, 2) for k, v in noise_oct.items()},
     }
     if sensitivity_dbfs is not None:
         out["sweep_max_spl_db"] = lv.to_spl(out["sweep_max_dbfs"], sensitivity_dbfs)
         out["sweep_rms_spl_db"] = lv.to_spl(out["sweep_rms_dbfs"], sensitivity_dbfs)
         out["noise_spl_db_per_octave"] = {
             lv.nominal_label(k): round(lv.to_spl(v, sensitivity_dbfs), 2)
-            for k, v in noise_oct.items()}
+            for k, v in noise_oct.items()
+        }
     return out
 
 
@@ -299,8 +310,7 @@ def write_ir_wav(path: Path, data: np.ndarray, fs: int) -> None:
     import soundfile as sf
 
     with atomic_path(path) as tmp:
-        sf.write(str(tmp), np.asarray(data, dtype=np.float32).T, fs, subtype="FLOAT",
-                 format="WAV")
+        sf.write(str(tmp), np.asarray(data, dtype=np.float32).T, fs, subtype="FLOAT", format="WAV")
 
 
 def gate_lines(gates: list[q.Gate]) -> list[str]:
@@ -324,10 +334,18 @@ def level_check(ms: MeasureSettings, capture_fn: Callable, output: int | None = 
     advice}`` and, with a microphone sensitivity, ``predicted_spl_db`` (highest
     125 ms level of the sweep at the seat).
     """
-    test = synchronized_sweep(ms.sample_rate, ms.f_start_hz, ms.f_end_hz, ms.test_s,
-                              ms.test_level_dbfs, ms.fade_in_s, ms.fade_out_s)
-    sig = np.concatenate([np.zeros(int(0.1 * ms.sample_rate)), test.signal(),
-                          np.zeros(int(0.3 * ms.sample_rate))])
+    test = synchronized_sweep(
+        ms.sample_rate,
+        ms.f_start_hz,
+        ms.f_end_hz,
+        ms.test_s,
+        ms.test_level_dbfs,
+        ms.fade_in_s,
+        ms.fade_out_s,
+    )
+    sig = np.concatenate(
+        [np.zeros(int(0.1 * ms.sample_rate)), test.signal(), np.zeros(int(0.3 * ms.sample_rate))]
+    )
     out = ms.reference_output if output is None else output
     cap = capture_fn(sig[None, :], [out], [ms.input])
     rec = cap.recording[0]
@@ -335,24 +353,35 @@ def level_check(ms: MeasureSettings, capture_fn: Callable, output: int | None = 
     gain = ms.level_dbfs - ms.test_level_dbfs
     predicted = peak + gain
     h = np.abs(dc.deconvolve(rec, test))
-    heard_db = float(20 * np.log10(max(h.max(), 1e-30)
-                                   / max(1.4826 * float(np.median(h)), 1e-30)))
+    heard_db = float(20 * np.log10(max(h.max(), 1e-30) / max(1.4826 * float(np.median(h)), 1e-30)))
     heard = bool(peak > -100.0 and heard_db >= HEARD_DB)
-    res = {"test_level_dbfs": ms.test_level_dbfs, "test_peak_dbfs": peak,
-           "predicted_peak_dbfs": predicted, "heard_db": heard_db, "heard": heard,
-           "output": out}
+    res = {
+        "test_level_dbfs": ms.test_level_dbfs,
+        "test_peak_dbfs": peak,
+        "predicted_peak_dbfs": predicted,
+        "heard_db": heard_db,
+        "heard": heard,
+        "output": out,
+    }
     if ms.mic_sensitivity_dbfs is not None:
         res["predicted_spl_db"] = lv.to_spl(
-            lv.short_term_max_dbfs(rec, ms.sample_rate) + gain, ms.mic_sensitivity_dbfs)
+            lv.short_term_max_dbfs(rec, ms.sample_rate) + gain, ms.mic_sensitivity_dbfs
+        )
     if not heard:
-        advice = (f"no test sweep heard at input {ms.input} (output {out}): check the "
-                  "microphone (cable, phantom power), --input, the amplifier and its volume")
+        advice = (
+            f"no test sweep heard at input {ms.input} (output {out}): check the "
+            "microphone (cable, phantom power), --input, the amplifier and its volume"
+        )
     elif predicted > -3.0:
-        advice = (f"input would peak at {predicted:.1f} dBFS: lower the input gain or the "
-                  f"sweep level by about {predicted + 12:.0f} dB")
+        advice = (
+            f"input would peak at {predicted:.1f} dBFS: lower the input gain or the "
+            f"sweep level by about {predicted + 12:.0f} dB"
+        )
     elif predicted < -40.0:
-        advice = (f"input would peak only at {predicted:.1f} dBFS: raise the microphone gain by "
-                  f"about {-12 - predicted:.0f} dB (or the amplifier, carefully)")
+        advice = (
+            f"input would peak only at {predicted:.1f} dBFS: raise the microphone gain by "
+            f"about {-12 - predicted:.0f} dB (or the amplifier, carefully)"
+        )
     else:
         advice = f"input level fine (predicted peak {predicted:.1f} dBFS)"
     res["advice"] = advice
@@ -360,8 +389,12 @@ def level_check(ms: MeasureSettings, capture_fn: Callable, output: int | None = 
 
 
 def _stale_files(out: Path) -> list[Path]:
-    return [*out.glob("pos*.wav"), *out.glob("raw/pos*_out*.wav"),
-            out / "raw" / PLAYBACK_NAME, out / RECORD_NAME]
+    return [
+        *out.glob("pos*.wav"),
+        *out.glob("raw/pos*_out*.wav"),
+        out / "raw" / PLAYBACK_NAME,
+        out / RECORD_NAME,
+    ]
 
 
 def _load_for_resume(out: Path, ms: MeasureSettings, layout: dict) -> dict:
@@ -442,9 +475,14 @@ def run_measurement(
     layout = sweep_layout(ms)
     unfinished = (out / RECORD_NAME).is_file()
     if out.exists() and any(out.iterdir()) and not (replace or resume):
-        hint = ("holds an unfinished measurement; pass --resume to continue it or --replace "
-                "to start again") if unfinished else "is not empty; choose a new folder or " \
-            "pass --replace"
+        hint = (
+            (
+                "holds an unfinished measurement; pass --resume to continue it or --replace "
+                "to start again"
+            )
+            if unfinished
+            else "is not empty; choose a new folder or pass --replace"
+        )
         raise OutputError(f"{out} {hint}")
     record = _load_for_resume(out, ms, layout) if resume else None
     thru = None
@@ -455,19 +493,23 @@ def run_measurement(
     # devices first: a wrong device or rate stops here, before anything is written
     n_out = max([*ms.outputs, ms.reference_output, *([ms.loopback[0]] if ms.loopback else [])])
     n_in = max([ms.input, *([ms.loopback[1]] if ms.loopback else [])])
-    devices = capture.open_devices(ms.sample_rate, n_in, n_out, ms.device, ms.input_device,
-                                   ms.output_device, ms.two_streams)
+    devices = capture.open_devices(
+        ms.sample_rate, n_in, n_out, ms.device, ms.input_device, ms.output_device, ms.two_streams
+    )
     if ms.loopback is not None and devices.two_streams:
         raise SettingsError(
             "--loopback needs one device for input and output; with two devices leave it out "
             "(the acoustic timing reference takes its place)"
         )
     if ms.level_dbfs > LEVEL_CAP_DBFS:
-        say(f"WARNING: sweep level {ms.level_dbfs} dBFS is above the {LEVEL_CAP_DBFS} dBFS cap "
-            "(--allow-loud). Turn the amplifier down before continuing.")
+        say(
+            f"WARNING: sweep level {ms.level_dbfs} dBFS is above the {LEVEL_CAP_DBFS} dBFS cap "
+            "(--allow-loud). Turn the amplifier down before continuing."
+        )
     say(CAUTIONS)
-    dev_text = (f"input {devices.input_name!r}, output {devices.output_name!r}"
-                + (" (two streams)" if devices.two_streams else ""))
+    dev_text = f"input {devices.input_name!r}, output {devices.output_name!r}" + (
+        " (two streams)" if devices.two_streams else ""
+    )
     say(f"devices: {dev_text}")
     sweep = Sweep.from_dict(layout["sweep"])
 
@@ -476,8 +518,14 @@ def run_measurement(
             view.start(label, sig.shape[1] / ms.sample_rate)
         try:
             return capture.play_record(
-                sig, ms.sample_rate, outs, ins, blocksize=ms.blocksize, devices=devices,
-                progress=None if view is None else view.update)
+                sig,
+                ms.sample_rate,
+                outs,
+                ins,
+                blocksize=ms.blocksize,
+                devices=devices,
+                progress=None if view is None else view.update,
+            )
         finally:
             if view is not None:
                 view.stop()
@@ -493,38 +541,55 @@ def run_measurement(
             "settings": ms.to_dict(),
             "sweep_settings": layout,
             "loopback": ms.loopback is not None,
-            "latency_note": "removed with the loopback channel" if ms.loopback
+            "latency_note": "removed with the loopback channel"
+            if ms.loopback
             else (TIMING_NOTE if ms.markers else NO_LOOPBACK_NOTE),
             "positions": [],
         }
     record["devices"] = devices.to_dict()
-    record["timing_reference"] = None if not ms.markers else {
-        "output": ms.reference_output, "lead_s": layout["lead_s"],
-        "marker": layout["marker"],
-        "note": "arrival_s per position share one time origin: the reference loudspeaker "
-        "arrives lead_s after it",
-    }
+    record["timing_reference"] = (
+        None
+        if not ms.markers
+        else {
+            "output": ms.reference_output,
+            "lead_s": layout["lead_s"],
+            "marker": layout["marker"],
+            "note": "arrival_s per position share one time origin: the reference loudspeaker "
+            "arrives lead_s after it",
+        }
+    )
     if thru is not None:
-        record["through"] = {"design": thru["dir"], "pre_gain_db": thru["pre_gain_db"],
-                             "note": "sweeps played through the design's filters (pre-gain "
-                             "included); impulse responses are room times filter"}
-        say(f"measuring through the filters of {thru['dir']} (pre-gain "
-            f"{thru['pre_gain_db']:+.2f} dB included)")
+        record["through"] = {
+            "design": thru["dir"],
+            "pre_gain_db": thru["pre_gain_db"],
+            "note": "sweeps played through the design's filters (pre-gain "
+            "included); impulse responses are room times filter",
+        }
+        say(
+            f"measuring through the filters of {thru['dir']} (pre-gain "
+            f"{thru['pre_gain_db']:+.2f} dB included)"
+        )
     record["level_unit"] = "dB SPL" if ms.mic_sensitivity_dbfs is not None else "dBFS"
     record["mic_sensitivity_dbfs"] = ms.mic_sensitivity_dbfs
     record_path = out / RECORD_NAME
     if view is not None:
         view.sensitivity_dbfs = ms.mic_sensitivity_dbfs
-    say(f"sweep {sweep.f_start_hz:g}-{sweep.f_end_hz:g} Hz, {sweep.duration_s:.2f} s, "
-        f"peak {sweep.level_dbfs:g} dBFS, {ms.repeats} repeat(s)")
+    say(
+        f"sweep {sweep.f_start_hz:g}-{sweep.f_end_hz:g} Hz, {sweep.duration_s:.2f} s, "
+        f"peak {sweep.level_dbfs:g} dBFS, {ms.repeats} repeat(s)"
+    )
     if ms.markers and not ms.loopback:
-        say(f"timing reference: markers through output {ms.reference_output} before and after "
-            "every sweep (arrival differences and clock drift come from them)")
+        say(
+            f"timing reference: markers through output {ms.reference_output} before and after "
+            "every sweep (arrival differences and clock drift come from them)"
+        )
     elif not ms.loopback:
         say("note: " + NO_LOOPBACK_NOTE)
     if ms.mic_sensitivity_dbfs is None:
-        say("levels in dBFS (no microphone sensitivity: give --mic-sensitivity or run "
-            "'roomcorr calibrate-mic' for dB SPL)")
+        say(
+            "levels in dBFS (no microphone sensitivity: give --mic-sensitivity or run "
+            "'roomcorr calibrate-mic' for dB SPL)"
+        )
     try:
         (out / "raw").mkdir(parents=True, exist_ok=True)
         marker = tm.Marker.from_dict(layout["marker"]) if layout["marker"] else None
@@ -533,18 +598,24 @@ def run_measurement(
         write_ir_wav(out / "raw" / PLAYBACK_NAME, tracks, ms.sample_rate)
         written.append(out / "raw" / PLAYBACK_NAME)
         record["playback_file"] = f"raw/{PLAYBACK_NAME}"
-        record["playback_note"] = ("channel 1: the sweeps (each loudspeaker in turn); "
-                                   "channel 2: the timing markers (reference loudspeaker)")
+        record["playback_note"] = (
+            "channel 1: the sweeps (each loudspeaker in turn); "
+            "channel 2: the timing markers (reference loudspeaker)"
+        )
         check = level_check(ms, capture_fn)
         record["level_check"] = check
         say("level check: " + check["advice"])
         if "predicted_spl_db" in check:
-            say(f"predicted sweep level at the microphone: {check['predicted_spl_db']:.0f} "
-                "dB SPL (highest 125 ms)")
+            say(
+                f"predicted sweep level at the microphone: {check['predicted_spl_db']:.0f} "
+                "dB SPL (highest 125 ms)"
+            )
             if check["predicted_spl_db"] > ms.max_spl_db:
-                say(f"WARNING: that is above {ms.max_spl_db:g} dB SPL; 75 to 85 dB SPL is "
+                say(
+                    f"WARNING: that is above {ms.max_spl_db:g} dB SPL; 75 to 85 dB SPL is "
                     "plenty for a room measurement: turn the amplifier down (protect your "
-                    "hearing)")
+                    "hearing)"
+                )
         if not check["heard"]:
             raise q.QualityGateError(check["advice"] + "; nothing was measured")
         write_record(record_path, record)
@@ -564,8 +635,10 @@ def run_measurement(
         if pos in done:
             continue
         if not yes:
-            ask(f"Place the microphone at position {pos} of {ms.positions} and press Enter "
-                "(Ctrl-C stops at once) ")
+            ask(
+                f"Place the microphone at position {pos} of {ms.positions} and press Enter "
+                "(Ctrl-C stops at once) "
+            )
         pos_rec = {"position": pos, "file": None, "channels": []}
         record["positions"].append(pos_rec)
         irs = []
@@ -573,9 +646,17 @@ def run_measurement(
         skipped = None
         for spk in ms.outputs:
             while True:
-                ir, ch, gates = _measure_one(ms, layout, out, pos, spk, capture_fn, say,
-                                             f"position {pos} of {ms.positions}, output {spk}",
-                                             thru)
+                ir, ch, gates = _measure_one(
+                    ms,
+                    layout,
+                    out,
+                    pos,
+                    spk,
+                    capture_fn,
+                    say,
+                    f"position {pos} of {ms.positions}, output {spk}",
+                    thru,
+                )
                 pos_rec["channels"] = [c for c in pos_rec["channels"] if c["output"] != spk]
                 pos_rec["channels"].append(ch)
                 write_record(record_path, record)
@@ -588,8 +669,11 @@ def run_measurement(
                     if yes:
                         skipped = str(exc)
                         break
-                    answer = ask(f"{exc}\n[r]epeat this loudspeaker, [s]kip position {pos}, "
-                                 "or [q]uit? ").strip().lower()[:1]
+                    answer = (
+                        ask(f"{exc}\n[r]epeat this loudspeaker, [s]kip position {pos}, or [q]uit? ")
+                        .strip()
+                        .lower()[:1]
+                    )
                     if answer == "r":
                         continue
                     if answer == "s":
@@ -609,8 +693,9 @@ def run_measurement(
         write_ir_wav(out / name, np.array(irs), ms.sample_rate)
         pos_rec["file"] = name
         pos_rec["arrival_s"] = arrivals
-        pos_rec["time_origin"] = ("loopback" if ms.loopback else
-                                  ("reference" if ms.markers else "stream"))
+        pos_rec["time_origin"] = (
+            "loopback" if ms.loopback else ("reference" if ms.markers else "stream")
+        )
         write_record(record_path, record)
         say(f"saved {out / name}")
     if not any(p["file"] for p in record["positions"]):
@@ -622,8 +707,9 @@ def run_measurement(
     return record
 
 
-def _through_summary(ms: MeasureSettings, out: Path, record: dict, thru: dict,
-                     say: Callable) -> dict:
+def _through_summary(
+    ms: MeasureSettings, out: Path, record: dict, thru: dict, say: Callable
+) -> dict:
     """Compare measured-through with the design's prediction; say where they differ."""
     import soundfile as sf
 
@@ -637,22 +723,30 @@ def _through_summary(ms: MeasureSettings, out: Path, record: dict, thru: dict,
     # from where the sweep is past its fade-in (full level) to below its end
     sw = make_sweep(ms)
     f_faded = sw.f_start_hz * math.exp(sw.fade_in_s / sw.rate_s)
-    band = (max(ms.f_start_hz * 1.5, f_faded * 1.5, 20.0),
-            min(ms.f_end_hz / 1.2, 0.45 * ms.sample_rate))
+    band = (
+        max(ms.f_start_hz * 1.5, f_faded * 1.5, 20.0),
+        min(ms.f_end_hz / 1.2, 0.45 * ms.sample_rate),
+    )
     res = through_check(measured, thru["irs"], thru["firs"], ms.sample_rate, band)
-    summary = {"positions": [p["position"] for p in saved], "band_hz": list(band),
-               "limit_db": res["limit_db"], "smoothing_oct": res["smoothing_oct"],
-               "max_diff_db": np.round(res["max_diff_db"], 2).tolist(),
-               "over_limit_hz": res["over_limit"],
-               "freq_hz": np.round(res["freq_hz"], 2).tolist(),
-               "measured_db": np.round(res["measured_db"], 2).tolist(),
-               "predicted_db": np.round(res["predicted_db"], 2).tolist()}
+    summary = {
+        "positions": [p["position"] for p in saved],
+        "band_hz": list(band),
+        "limit_db": res["limit_db"],
+        "smoothing_oct": res["smoothing_oct"],
+        "max_diff_db": np.round(res["max_diff_db"], 2).tolist(),
+        "over_limit_hz": res["over_limit"],
+        "freq_hz": np.round(res["freq_hz"], 2).tolist(),
+        "measured_db": np.round(res["measured_db"], 2).tolist(),
+        "predicted_db": np.round(res["predicted_db"], 2).tolist(),
+    }
     for i, p in enumerate(saved):
         for c, spk in enumerate(ms.outputs):
             ranges = res["over_limit"][i][c]
             where = ", ".join(f"{lo:g}-{hi:g} Hz" for lo, hi in ranges[:4]) or "nowhere"
-            say(f"through check, position {p['position']}, output {spk}: measured vs "
-                f"predicted differ by more than {res['limit_db']:g} dB: {where}")
+            say(
+                f"through check, position {p['position']}, output {spk}: measured vs "
+                f"predicted differ by more than {res['limit_db']:g} dB: {where}"
+            )
     return summary
 
 
@@ -680,8 +774,17 @@ def _remove_empty(d: Path) -> None:
         pass
 
 
-def _measure_one(ms: MeasureSettings, layout: dict, out: Path, pos: int, spk: int,
-                 capture_fn: Callable, say: Callable, label: str, thru: dict | None = None):
+def _measure_one(
+    ms: MeasureSettings,
+    layout: dict,
+    out: Path,
+    pos: int,
+    spk: int,
+    capture_fn: Callable,
+    say: Callable,
+    label: str,
+    thru: dict | None = None,
+):
     """Play and record one loudspeaker at one position; write its raw file; analyse it."""
     sig, outs = capture_signal(layout, spk)
     scale = 1.0
@@ -709,13 +812,21 @@ def _measure_one(ms: MeasureSettings, layout: dict, out: Path, pos: int, spk: in
     if "drift_ppm" in figures:
         say(f"  clock drift {figures['drift_ppm']:+.1f} ppm (corrected)")
     if "sweep_max_spl_db" in figures:
-        say(f"  sweep at the microphone: {figures['sweep_max_spl_db']:.0f} dB SPL (highest "
-            "125 ms); background noise per octave in dB SPL is in measurement.json")
+        say(
+            f"  sweep at the microphone: {figures['sweep_max_spl_db']:.0f} dB SPL (highest "
+            "125 ms); background noise per octave in dB SPL is in measurement.json"
+        )
         if figures["sweep_max_spl_db"] > ms.max_spl_db:
-            say(f"WARNING: above {ms.max_spl_db:g} dB SPL; turn the amplifier down (protect "
-                "your hearing)")
-    ch = {"output": spk, "raw_file": raw_name, "figures": figures,
-          "gates": [g.to_dict() for g in gates]}
+            say(
+                f"WARNING: above {ms.max_spl_db:g} dB SPL; turn the amplifier down (protect "
+                "your hearing)"
+            )
+    ch = {
+        "output": spk,
+        "raw_file": raw_name,
+        "figures": figures,
+        "gates": [g.to_dict() for g in gates],
+    }
     return ir, ch, gates
 
 
@@ -781,8 +892,13 @@ def align_recording(data: np.ndarray, layout: dict, ref_channel: int) -> np.ndar
 
 
 def deconvolve_file(
-    recording: str | Path, sweep_settings: str | Path, out_path: str | Path | None = None,
-    *, force: bool = False, replace: bool = False, loopback_channel: int | None = None,
+    recording: str | Path,
+    sweep_settings: str | Path,
+    out_path: str | Path | None = None,
+    *,
+    force: bool = False,
+    replace: bool = False,
+    loopback_channel: int | None = None,
     align: bool = False,
 ) -> tuple[Path, dict, list[q.Gate]]:
     """Deconvolve a sweep recorded elsewhere; write the IR WAV and a JSON of its figures.
@@ -818,7 +934,14 @@ def deconvolve_file(
     if not force:
         q.raise_on_failure(gates, str(rec_path))
     write_ir_wav(dest, ir[None, :], fs)
-    write_record(dest.with_suffix(".json"),
-                 {"recording": str(rec_path), "ir_file": dest.name, "figures": figures,
-                  "gates": [g.to_dict() for g in gates], "sweep_settings": layout})
+    write_record(
+        dest.with_suffix(".json"),
+        {
+            "recording": str(rec_path),
+            "ir_file": dest.name,
+            "figures": figures,
+            "gates": [g.to_dict() for g in gates],
+            "sweep_settings": layout,
+        },
+    )
     return dest, figures, gates

@@ -51,12 +51,18 @@ def load_through(design_dir: str | Path, fs: int, n_outputs: int) -> dict:
             f"--through {d}: the design has {firs.shape[0]} channel(s) but --outputs lists "
             f"{n_outputs} loudspeaker(s); give them in the design's order"
         )
-    return {"dir": str(d), "firs": firs, "pre_gain_db": curves["pre_gain_db"],
-            "irs": curves["irs"], "fs_in": curves["fs_in"]}
+    return {
+        "dir": str(d),
+        "firs": firs,
+        "pre_gain_db": curves["pre_gain_db"],
+        "irs": curves["irs"],
+        "fs_in": curves["fs_in"],
+    }
 
 
-def filter_rows(rows: np.ndarray, outs: list[int], outputs: tuple[int, ...],
-                firs: np.ndarray, level_dbfs: float) -> tuple[np.ndarray, float]:
+def filter_rows(
+    rows: np.ndarray, outs: list[int], outputs: tuple[int, ...], firs: np.ndarray, level_dbfs: float
+) -> tuple[np.ndarray, float]:
     """Convolve each playback row with the filter of its loudspeaker; cap the peak.
 
     Parameters
@@ -76,8 +82,12 @@ def filter_rows(rows: np.ndarray, outs: list[int], outputs: tuple[int, ...],
     scale : float
         Factor applied after filtering (1 or less); divide the responses by it.
     """
-    out = np.array([scipy.signal.fftconvolve(r, firs[outputs.index(o)])[: rows.shape[1]]
-                    for r, o in zip(rows, outs, strict=True)])
+    out = np.array(
+        [
+            scipy.signal.fftconvolve(r, firs[outputs.index(o)])[: rows.shape[1]]
+            for r, o in zip(rows, outs, strict=True)
+        ]
+    )
     cap = 10 ** (level_dbfs / 20)
     peak = float(np.max(np.abs(out))) if out.size else 0.0
     scale = min(1.0, cap / peak) if peak > 0 else 1.0
@@ -87,12 +97,18 @@ def filter_rows(rows: np.ndarray, outs: list[int], outputs: tuple[int, ...],
 def _smoothed_db(ir: np.ndarray, fs: int, grid: np.ndarray, n_fft: int) -> np.ndarray:
     power = np.abs(np.fft.rfft(ir, n_fft)) ** 2
     f = np.fft.rfftfreq(n_fft, 1.0 / fs)
-    return 10 * np.log10(np.maximum(smooth_bins_to_grid(power, f, grid, CHECK_SMOOTHING_OCT),
-                                    1e-30))
+    return 10 * np.log10(
+        np.maximum(smooth_bins_to_grid(power, f, grid, CHECK_SMOOTHING_OCT), 1e-30)
+    )
 
 
-def through_check(measured: np.ndarray, design_irs: np.ndarray, firs: np.ndarray, fs: int,
-                  band_hz: tuple[float, float]) -> dict:
+def through_check(
+    measured: np.ndarray,
+    design_irs: np.ndarray,
+    firs: np.ndarray,
+    fs: int,
+    band_hz: tuple[float, float],
+) -> dict:
     """Measured-through against predicted, per position and channel, 1/6-octave smoothed.
 
     Parameters
@@ -131,9 +147,15 @@ def through_check(measured: np.ndarray, design_irs: np.ndarray, firs: np.ndarray
             diff = meas_db[p, c] - pred_db[p, c]
             max_diff[p, c] = float(np.max(np.abs(diff)))
             over[p].append(_ranges(grid, np.abs(diff) > DIFF_LIMIT_DB))
-    return {"freq_hz": grid, "measured_db": meas_db, "predicted_db": pred_db,
-            "max_diff_db": max_diff, "over_limit": over, "limit_db": DIFF_LIMIT_DB,
-            "smoothing_oct": CHECK_SMOOTHING_OCT}
+    return {
+        "freq_hz": grid,
+        "measured_db": meas_db,
+        "predicted_db": pred_db,
+        "max_diff_db": max_diff,
+        "over_limit": over,
+        "limit_db": DIFF_LIMIT_DB,
+        "smoothing_oct": CHECK_SMOOTHING_OCT,
+    }
 
 
 def _ranges(freq_hz: np.ndarray, mask: np.ndarray) -> list[list[float]]:

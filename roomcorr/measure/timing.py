@@ -92,13 +92,23 @@ class Marker:
         return 10 ** (self.level_dbfs / 20) * x
 
     def to_dict(self) -> dict:
-        return {"fs": self.fs, "duration_s": self.duration_s, "f_lo_hz": self.f_lo_hz,
-                "f_hi_hz": self.f_hi_hz, "level_dbfs": self.level_dbfs}
+        return {
+            "fs": self.fs,
+            "duration_s": self.duration_s,
+            "f_lo_hz": self.f_lo_hz,
+            "f_hi_hz": self.f_hi_hz,
+            "level_dbfs": self.level_dbfs,
+        }
 
     @classmethod
     def from_dict(cls, d: dict) -> Marker:
-        return cls(int(d["fs"]), float(d["duration_s"]), float(d["f_lo_hz"]),
-                   float(d["f_hi_hz"]), float(d["level_dbfs"]))
+        return cls(
+            int(d["fs"]),
+            float(d["duration_s"]),
+            float(d["f_lo_hz"]),
+            float(d["f_hi_hz"]),
+            float(d["level_dbfs"]),
+        )
 
 
 @dataclass(frozen=True)
@@ -123,8 +133,9 @@ class Plan:
     n_total: int
 
 
-def capture_plan(sweep: Sweep, noise_s: float, tail_s: float, repeats: int,
-                 marker: Marker | None) -> Plan:
+def capture_plan(
+    sweep: Sweep, noise_s: float, tail_s: float, repeats: int, marker: Marker | None
+) -> Plan:
     """Where noise, markers and sweeps sit in one capture (module docstring)."""
     fs = sweep.fs
     n_noise = int(round(noise_s * fs))
@@ -139,8 +150,9 @@ def capture_plan(sweep: Sweep, noise_s: float, tail_s: float, repeats: int,
     return Plan(n_noise, (n_noise, b), starts, b + block)
 
 
-def capture_tracks(sweep: Sweep, noise_s: float, tail_s: float, repeats: int,
-                   marker: Marker | None) -> tuple[np.ndarray, np.ndarray | None]:
+def capture_tracks(
+    sweep: Sweep, noise_s: float, tail_s: float, repeats: int, marker: Marker | None
+) -> tuple[np.ndarray, np.ndarray | None]:
     """The sweep track and the marker track of one capture.
 
     Returns
@@ -213,8 +225,7 @@ def refine_peak(h: np.ndarray, i: int, half: int = 64, factor: int = 64) -> floa
     return lo + (k + frac) / factor
 
 
-def relative_delay(a: np.ndarray, b: np.ndarray, fs: int, f_lo_hz: float,
-                   f_hi_hz: float) -> float:
+def relative_delay(a: np.ndarray, b: np.ndarray, fs: int, f_lo_hz: float, f_hi_hz: float) -> float:
     """Delay of ``b`` relative to ``a`` in samples (less than a few samples), from phase.
 
     The cross-spectrum ``B conj(A)`` of two recordings of the same sound through
@@ -264,8 +275,13 @@ class Timing:
     offset_samples: float
 
 
-def locate_markers(recording: np.ndarray, plan: Plan, marker: Marker,
-                   min_snr_db: float = 20.0, min_sharpness: float = 6.0) -> Timing:
+def locate_markers(
+    recording: np.ndarray,
+    plan: Plan,
+    marker: Marker,
+    min_snr_db: float = 20.0,
+    min_sharpness: float = 6.0,
+) -> Timing:
     """Find markers A and B; estimate drift from their distance (module docstring).
 
     Parameters
@@ -285,8 +301,9 @@ def locate_markers(recording: np.ndarray, plan: Plan, marker: Marker,
     # A marker's response is a sharp peak; a measurement sweep seen through the
     # marker's inverse is spread out in time. Sharpness = magnitude over the RMS of
     # the surrounding 10 ms; only magnitudes above 2 % of the largest count.
-    local = np.sqrt(np.maximum(scipy.ndimage.uniform_filter1d(mag**2, int(0.01 * fs) | 1),
-                                0.0)) + 1e-30
+    local = (
+        np.sqrt(np.maximum(scipy.ndimage.uniform_filter1d(mag**2, int(0.01 * fs) | 1), 0.0)) + 1e-30
+    )
     sharp = np.where(mag >= 0.02 * mag.max(), mag / local, 0.0)
     i_max = int(np.argmax(sharp))
     noise = 1.4826 * float(np.median(mag)) + 1e-30
@@ -363,8 +380,9 @@ def correct_drift(x: np.ndarray, drift_ppm: float) -> np.ndarray:
     if abs(drift_ppm) < 1e-3:
         return np.asarray(x, dtype=float)
     ratio = Fraction(1.0 / (1.0 + drift_ppm * 1e-6)).limit_denominator(40000)
-    y = scipy.signal.resample_poly(np.asarray(x, dtype=float), ratio.numerator,
-                                   ratio.denominator, axis=-1)
+    y = scipy.signal.resample_poly(
+        np.asarray(x, dtype=float), ratio.numerator, ratio.denominator, axis=-1
+    )
     return y
 
 
