@@ -72,7 +72,24 @@ def _add_design_options(p: argparse.ArgumentParser) -> None:
     g.add_argument("--weights", type=_float_list, metavar="W,W", help="weight per position")
     g.add_argument("--iir", action="store_true", help="also write biquad sets")
     g.add_argument("--iir-sections", type=int, metavar="N", help="most biquads per channel (10)")
+    _add_phase_options(g)
     p.add_argument("--replace", action="store_true", help="write over an earlier design in --out")
+
+
+def _add_phase_options(g: Any) -> None:
+    g.add_argument(
+        "--phase",
+        choices=("minimum", "mixed"),
+        help="minimum (default, no delay) or mixed: also undo the loudspeakers' crossover phase "
+        "where it is the same at every position, at the cost of a delay (--latency-ms)",
+    )
+    g.add_argument(
+        "--latency-ms",
+        type=float,
+        metavar="MS",
+        help="delay allowed for --phase mixed (default 20 ms; 5-250): video then needs the "
+        "picture delayed as much (lip-sync); keep minimum phase for live monitoring",
+    )
 
 
 _OPTION_KEYS = {
@@ -87,6 +104,8 @@ _OPTION_KEYS = {
     "calibration": "calibration",
     "weights": "position_weights",
     "iir_sections": "iir_sections",
+    "phase": "phase",
+    "latency_ms": "latency_ms",
 }
 
 
@@ -144,6 +163,11 @@ def _print_design_summary(result: Any, out: Path, entries: list[dict]) -> None:
                 f"fit error {e['fit_rms_error_db']:.1f} dB RMS ({e['fit_max_error_db']:.1f} dB "
                 f"max), pre-gain {e['pre_gain_db']:+.2f} dB, peak gain {e['peak_gain_db']:+.2f} dB"
             )
+    if result.mixed_phase is not None:
+        from roomcorr.design.mixedphase import latency_sentence
+
+        mp = result.mixed_phase
+        print(latency_sentence(mp.latency_ms, mp.latency_samples))
     if result.settings.design.ceiling_db > 0:
         print(
             f"WARNING: ceiling {result.settings.design.ceiling_db:+g} dB allows filter gain; "

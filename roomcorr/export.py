@@ -24,6 +24,9 @@ import numpy as np
 
 from roomcorr.atomic import atomic_write_text, atomic_write_with
 from roomcorr.audio_io import write_wav
+from roomcorr.design.mixedphase import from_arrays as mixed_phase_from_arrays
+from roomcorr.design.mixedphase import latency_record
+from roomcorr.design.mixedphase import to_arrays as mixed_phase_arrays
 from roomcorr.errors import OutputError
 from roomcorr.settings import settings_to_dict
 
@@ -105,6 +108,8 @@ def _curves_dict(result: DesignResult) -> dict[str, np.ndarray]:
         data[f"ch{c.index}_band_hz"] = np.array(c.band_hz)
     for fs, h in result.firs.items():
         data[f"fir_{fs}"] = h
+    if getattr(result, "mixed_phase", None) is not None:
+        data.update(mixed_phase_arrays(result.mixed_phase))
     return data
 
 
@@ -138,6 +143,7 @@ def load_design_curves(out_dir: str | Path) -> dict[str, Any]:
         "irs": raw["irs"].astype(np.float64),
         "firs": firs,
         "channels": channels,
+        "mixed_phase": mixed_phase_from_arrays(raw),
     }
 
 
@@ -173,6 +179,7 @@ def write_design(
     written: list[Path] = []
     entries: list[dict[str, Any]] = []
     stats = {(s.fs, s.channel): s for s in result.stats}
+    latency = latency_record(getattr(result, "mixed_phase", None))
     try:
         out.mkdir(parents=True, exist_ok=True)
         for fs, h in result.firs.items():
@@ -199,6 +206,7 @@ def write_design(
                         "peak_gain_db": round(s.peak_gain_db, 3),
                         "worst_case_gain_db": round(s.worst_case_gain_db, 3),
                         "max_boost_db": round(s.max_boost_db, 3),
+                        "latency_samples": latency.get("samples", {}).get(str(fs), 0),
                         "sha256": sha256_of(path),
                     }
                 )
@@ -223,6 +231,7 @@ def write_design(
             ],
             "files": entries,
             "settings": settings_to_dict(result.settings),
+            "latency": latency,
         }
         if extra:
             manifest.update(extra)

@@ -21,6 +21,7 @@ from roomcorr.analysis.window import fdw_power
 from roomcorr.audio_io import read_curve_file
 from roomcorr.design.correction import align_target, correction_curve
 from roomcorr.design.fir import default_n_taps, synthesize_fir
+from roomcorr.design.mixedphase import MixedPhaseDesign, apply_mixed_phase
 from roomcorr.design.safety import FilterStats, apply_safety
 from roomcorr.design.target import auto_band, target_from_points, target_from_table
 from roomcorr.errors import InputFileError, SettingsError
@@ -70,6 +71,7 @@ class DesignResult:
     pre_gain_db: float
     stats: list[FilterStats]
     settings: Settings
+    mixed_phase: MixedPhaseDesign | None = None
 
 
 def default_channel_names(n: int) -> list[str]:
@@ -228,6 +230,9 @@ def run_design(
         firs[rate] = np.stack(
             [synthesize_fir(freq, ch.correction_db, rate, n_taps) for ch in channels]
         )
+    mixed = None
+    if d.phase == "mixed":  # same magnitudes, the loudspeaker's excess phase undone
+        firs, mixed = apply_mixed_phase(irs, fs, arrival, freq, firs, d.latency_ms, weights)
     firs, pre_gain, stats = apply_safety(firs, d.ceiling_db, d.max_boost_db)
     return DesignResult(
         freq_hz=freq,
@@ -238,4 +243,5 @@ def run_design(
         pre_gain_db=pre_gain,
         stats=stats,
         settings=settings,
+        mixed_phase=mixed,
     )

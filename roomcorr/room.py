@@ -159,6 +159,10 @@ _DESIGN_NOTES = {
     "iir_gain_range_db": "gain range of a biquad section, dB (upper end never above max_boost_db)",
     "iir_q_range": "Q range of a biquad section",
     "temperature_c": "air temperature in °C, for the speed of sound (arrival -> distance)",
+    "phase": "minimum (no delay) or mixed: also undo the loudspeakers' crossover phase where "
+    "every position agrees, at the cost of a delay",
+    "latency_ms": "delay of a mixed-phase design, ms (5-250): delay video pictures as much for "
+    "lip-sync; keep minimum phase for live monitoring",
 }
 
 

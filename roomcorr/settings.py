@@ -19,6 +19,7 @@ naming the key. Preset names (files in ``presets/``) can stand for a path.
 from __future__ import annotations
 
 import dataclasses
+import math
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -69,6 +70,11 @@ class DesignSettings:
         Biquad output and the ranges its sections may use.
     temperature_c : float
         Air temperature, for the speed of sound.
+    phase : str
+        ``"minimum"`` (no added latency) or ``"mixed"`` (also undo the
+        loudspeaker's excess phase, late by ``latency_ms``).
+    latency_ms : float
+        Latency budget of a mixed-phase design, ms.
     """
 
     target: str = "flat"
@@ -88,6 +94,14 @@ class DesignSettings:
     iir_gain_range_db: tuple[float, float] = (-15.0, 4.0)
     iir_q_range: tuple[float, float] = (0.3, 12.0)
     temperature_c: float = 20.0
+    phase: str = "minimum"
+    latency_ms: float = 20.0
+
+
+#: Choices of ``DesignSettings.phase``.
+PHASE_CHOICES = ("minimum", "mixed")
+#: Range of ``DesignSettings.latency_ms``.
+LATENCY_RANGE_MS = (5.0, 250.0)
 
 
 @dataclass
@@ -157,6 +171,12 @@ def _coerce(key: str, value: Any) -> Any:
         if isinstance(value, bool) or not isinstance(value, int):
             raise SettingsError(f"design.taps: expected a whole number, got {value!r}")
         return int(value)
+    if key == "phase":
+        if value not in PHASE_CHOICES:
+            raise SettingsError(
+                f"design.phase: expected one of {', '.join(PHASE_CHOICES)}, got {value!r}"
+            )
+        return value
     if key in ("allow_gain", "iir"):
         if not isinstance(value, bool):
             raise SettingsError(f"design.{key}: expected true or false, got {value!r}")
@@ -236,6 +256,14 @@ def validate_design(d: DesignSettings) -> DesignSettings:
     qlo, qhi = d.iir_q_range
     if not 0.05 <= qlo < qhi <= 50.0:
         raise SettingsError("design.iir_q_range: expected 0.05 <= low < high <= 50")
+    lat_lo, lat_hi = LATENCY_RANGE_MS
+    if not (math.isfinite(d.latency_ms) and lat_lo <= d.latency_ms <= lat_hi):
+        raise SettingsError(
+            f"design.latency_ms = {d.latency_ms:g}: must lie between {lat_lo:g} and "
+            f"{lat_hi:g} ms (sound through a mixed-phase filter is late by this much)"
+        )
+    if d.phase not in PHASE_CHOICES:
+        raise SettingsError(f"design.phase: expected one of {', '.join(PHASE_CHOICES)}")
     if not -30.0 <= d.temperature_c <= 60.0:
         raise SettingsError(f"design.temperature_c = {d.temperature_c:g}: expected -30 to 60 °C")
     return d

@@ -467,3 +467,72 @@ def plot_iir(
     ax.set_title(title, loc="left", color=INK)
     ax.legend(loc="best", ncols=2, fontsize=8, frameon=False)
     return fig
+
+
+def plot_mixed_phase(
+    view: dict[str, np.ndarray], latency_ms: float, limit_db: float, limit_ms: float, title: str
+) -> Any:
+    """Direct sound before and after the minimum- and mixed-phase designs, and pre-ringing.
+
+    Parameters
+    ----------
+    view : dict
+        :func:`roomcorr.design.mixedphase.direct_sound_views` of one channel:
+        ``gd_freq_hz``, ``gd_s`` (3, n_f), ``step_t_s``, ``step`` (3, n_t),
+        ``ring_t_s``, ``ring_db``; the three rows are as measured, minimum
+        phase, mixed phase.
+    latency_ms : float
+        The latency (nothing may come earlier than this before the main peak).
+    limit_db, limit_ms : float
+        Energy more than ``limit_ms`` before the main peak stays below ``limit_db``.
+    """
+    fig = new_figure(9.0, 7.2, top=0.92, hspace=0.55, bottom=0.08)
+    axs = fig.subplots(3, 1)
+    colors = (SEAT, MEAN, AFTER)
+    labels = ("as measured", "minimum phase", "mixed phase")
+    f = view["gd_freq_hz"]
+    for row, color, label in zip(view["gd_s"], colors, labels, strict=True):
+        axs[0].plot(f, 1000 * row, color=color, lw=1.3, label=label)
+    _freq_axis(axs[0], float(f[0]), float(f[-1]))
+    axs[0].set_ylabel("group delay (ms)")
+    axs[0].set_title(
+        "direct sound: group delay (mean over positions, relative to 1-10 kHz)",
+        loc="left",
+        fontsize=10,
+        color=INK,
+    )
+    axs[0].legend(fontsize=8, frameon=False)
+    t_ms = 1000 * view["step_t_s"]
+    for row, color, label in zip(view["step"], colors, labels, strict=True):
+        axs[1].plot(t_ms, row, color=color, lw=1.2, label=label)
+    axs[1].set_xlabel("time from main peak (ms)")
+    axs[1].set_ylabel("step (relative)")
+    axs[1].set_title(
+        "direct sound: step response (first position)", loc="left", fontsize=10, color=INK
+    )
+    axs[2].plot(
+        1000 * view["ring_t_s"],
+        view["ring_db"],
+        color=AFTER,
+        lw=1.3,
+        label="energy arriving earlier, share of the total",
+    )
+    axs[2].hlines(
+        limit_db,
+        -latency_ms,
+        -limit_ms,
+        color=AIM,
+        lw=1.2,
+        label=f"limit: {limit_db:g} dB beyond {limit_ms:g} ms",
+    )
+    axs[2].axvline(-latency_ms, color=CAP, lw=1.0, ls="--", label=f"latency {latency_ms:g} ms")
+    axs[2].set_xlim(-latency_ms * 1.1, 0.5)
+    axs[2].set_ylim(-100, 3)
+    axs[2].set_xlabel("time from the filter's main peak (ms)")
+    axs[2].set_ylabel("dB")
+    axs[2].set_title("mixed-phase filter: pre-ringing", loc="left", fontsize=10, color=INK)
+    axs[2].legend(fontsize=8, frameon=False, loc="upper left")
+    for ax in axs:
+        ax.grid(True, color="#eef1f4")
+    fig.suptitle(title, x=0.01, ha="left", color=INK)
+    return fig

@@ -34,6 +34,7 @@ SECTION_TITLES = {
     "result": "Predicted result at every position",
     "filter": "The correction filter",
     "time": "Impulse and step",
+    "phase": "Direct sound and latency (mixed phase)",
     "decay": "Reverberation by octave",
     "ringing": "Low-frequency ringing",
     "iir": "The biquad version",
@@ -400,6 +401,61 @@ def _comparison_sentence(res: dict[str, Any]) -> str:
     )
 
 
+def mixed_phase_section(
+    mixed: dict[str, Any] | None, channel: int, name: str, png: Any
+) -> Section | None:
+    """The mixed-phase section of one channel, or ``None`` for a minimum-phase design.
+
+    ``mixed`` is the ``mixed_phase`` entry of :func:`roomcorr.export.load_design_curves`.
+    """
+    from roomcorr.design.mixedphase import (
+        LATENCY_CAUTION,
+        PRE_RING_LIMIT_DB,
+        PRE_RING_S,
+        latency_sentence,
+    )
+    from roomcorr.report import figures as fg
+
+    if not mixed or channel >= len(mixed["channels"]):
+        return None
+    ch = mixed["channels"][channel]
+    sec = Section(f"phase-{name}", f"{SECTION_TITLES['phase']}: {name}")
+    sec.paragraphs.append(latency_sentence(mixed["latency_ms"], mixed["latency_samples"]))
+    lo, hi = (float(x) for x in ch["band_hz"])
+    sec.paragraphs.append(
+        f"The loudspeaker's excess phase (the measured phase minus that of the minimum-phase "
+        f"response with the same magnitude) was estimated from the direct sound of every "
+        f"position, before the first strong reflection, and undone between {fmt_hz(lo)} and "
+        f"{fmt_hz(hi)} where the positions agree. Below that the room owns the phase, and "
+        "the filter leaves it alone (a pure delay). The magnitude is the minimum-phase "
+        "design's."
+    )
+    if "view_gd_s" in ch:
+        view = {k[len("view_") :]: v for k, v in ch.items() if k.startswith("view_")}
+        sec.figures.append(
+            Figure(
+                f"{name}-phase",
+                f"Direct sound before and after, and pre-ringing, {name}",
+                png(
+                    fg.plot_mixed_phase(
+                        view,
+                        float(mixed["latency_ms"]),
+                        PRE_RING_LIMIT_DB,
+                        1000 * PRE_RING_S,
+                        f"Mixed phase: {name}",
+                    )
+                ),
+            )
+        )
+    else:
+        sec.paragraphs.append(
+            "No filter was designed at the measurement's sample rate, so the direct sound "
+            "could not be shown before and after."
+        )
+    sec.paragraphs.append(LATENCY_CAUTION)
+    return sec
+
+
 def _design_caps(settings: dict[str, Any] | None) -> dict[str, Any]:
     d = (settings or {}).get("design", {}) if isinstance(settings, dict) else {}
     return {
@@ -582,6 +638,10 @@ def build_report(
                     )
                 )
                 sections.append(tm)
+
+        mixed = mixed_phase_section(curves.get("mixed_phase"), c, name, png)
+        if mixed is not None:
+            sections.append(mixed)
 
         if iir and iir.get(name) and "correction_db" in ch:
             sections.append(_iir_section(freq, ch, iir[name], fir, rate, pre_gain, band, png))

@@ -54,7 +54,16 @@ def curves_from_result(result: Any) -> dict[str, Any]:
         "irs": result.irs,
         "firs": dict(result.firs),
         "channels": channels,
+        "mixed_phase": _mixed_phase_of(result),
     }
+
+
+def _mixed_phase_of(result: Any) -> dict[str, Any] | None:
+    """The mixed-phase part of a result in the layout ``load_design_curves`` gives."""
+    from roomcorr.design.mixedphase import from_arrays, to_arrays
+
+    mp = getattr(result, "mixed_phase", None)
+    return None if mp is None else from_arrays(to_arrays(mp))
 
 
 def _runs(mask: np.ndarray) -> list[tuple[int, int]]:
@@ -260,4 +269,9 @@ def summary_sentences(curves: dict[str, Any], max_boost_db: float | None = None)
         )
     else:
         out.append("No pre-gain was needed: no filter rises above the gain ceiling.")
+    mp = curves.get("mixed_phase")
+    if mp:
+        from roomcorr.design.mixedphase import latency_sentence
+
+        out.append(latency_sentence(mp["latency_ms"], mp["latency_samples"]))
     return out
