@@ -293,8 +293,9 @@ def play_record(
         if state["pos"] >= n_total:
             raise sd.CallbackStop
 
-    try:
-        stream = sd.Stream(
+    _run_stream(
+        sd,
+        lambda: sd.Stream(
             device=(devices.input_index, devices.output_index),
             samplerate=fs,
             channels=(n_in, n_out),
@@ -302,9 +303,33 @@ def play_record(
             blocksize=blocksize,
             callback=callback,
             finished_callback=done.set,
-        )
+        ),
+        f"device {devices.output_name!r}",
+        fs,
+        done,
+        state,
+        n_total,
+        progress,
+    )
+    rec = in_buf[n_pre:, [c - 1 for c in in_channels]].T.astype(np.float64)
+    return Capture(rec, int(state["problems"]), sorted(state["flags"]))
+
+
+def _run_stream(
+    sd,
+    make: Callable,
+    what: str,
+    fs: int,
+    done: threading.Event,
+    state: dict,
+    n_total: int,
+    progress: Progress | None,
+) -> None:
+    """Open one stream with ``make()``, run it to the end; Ctrl-C aborts it at once."""
+    try:
+        stream = make()
     except sd.PortAudioError as exc:
-        raise DeviceError(f"could not open {devices.output_name!r} at {fs} Hz: {exc}") from exc
+        raise DeviceError(f"could not open {what} at {fs} Hz: {exc}") from exc
     with stream:
         try:
             _wait(done, state, n_total, progress)
@@ -313,11 +338,31 @@ def play_record(
             raise
     if state["pos"] < n_total:
         raise DeviceError(
-            f"device {devices.output_name!r} stopped after {state['pos'] / fs:.1f} s of "
-            f"{n_total / fs:.1f} s (disconnected?); this sweep was not kept"
+            f"{what} stopped after {state['pos'] / fs:.1f} s of {n_total / fs:.1f} s "
+            "(disconnected?); this take was not kept"
         )
-    rec = in_buf[n_pre:, [c - 1 for c in in_channels]].T.astype(np.float64)
-    return Capture(rec, int(state["problems"]), sorted(state["flags"]))
+
+
+def _recorder(
+    sd, buf: np.ndarray, state: dict, level_col: int, after_block: Callable | None = None
+) -> Callable:
+    """Input callback filling ``buf`` (n, channels) until full; meter from ``level_col``."""
+    n_rec = buf.shape[0]
+
+    def cb(indata, frames, _time, status):
+        pos = state["pos"]
+        _note_status(state, status)
+        n = min(frames, n_rec - pos)
+        if n > 0:
+            buf[pos : pos + n] = indata[:n]
+        state["pos"] = pos + max(n, 0)
+        state["lv"] = _levels(indata[:, level_col:])
+        if after_block is not None:
+            after_block()
+        if state["pos"] >= n_rec:
+            raise sd.CallbackStop
+
+    return cb
 
 
 def _note_status(state: dict, status) -> None:
@@ -367,18 +412,11 @@ def _two_streams(
     st_out = {"pos": 0, "problems": 0, "flags": set(), "lv": (-200.0, -200.0)}
     in_started, in_done, out_done = threading.Event(), threading.Event(), threading.Event()
 
-    def in_cb(indata, frames, _time, status):
-        pos = st_in["pos"]
-        _note_status(st_in, status)
-        n = min(frames, n_rec - pos)
-        if n > 0:
-            in_buf[pos : pos + n] = indata[:n]
-        st_in["pos"] = pos + max(n, 0)
-        st_in["lv"] = _levels(indata)
-        st_out["lv"] = st_in["lv"]
+    def after_block() -> None:
+        st_out["lv"] = st_in["lv"]  # the meter shows the microphone
         in_started.set()
-        if st_in["pos"] >= n_rec:
-            raise sd.CallbackStop
+
+    in_cb = _recorder(sd, in_buf, st_in, 0, after_block)
 
     def out_cb(outdata, frames, _time, status):
         pos = st_out["pos"]
@@ -478,19 +516,11 @@ def record(
     state = {"pos": 0, "problems": 0, "flags": set(), "lv": (-200.0, -200.0)}
     done = threading.Event()
 
-    def cb(indata, frames, _time, status):
-        pos = state["pos"]
-        _note_status(state, status)
-        k = min(frames, n - pos)
-        if k > 0:
-            buf[pos : pos + k] = indata[:k]
-        state["pos"] = pos + max(k, 0)
-        state["lv"] = _levels(indata[:, in_channel - 1 :])
-        if state["pos"] >= n:
-            raise sd.CallbackStop
+    cb = _recorder(sd, buf, state, in_channel - 1)
 
-    try:
-        stream = sd.InputStream(
+    _run_stream(
+        sd,
+        lambda: sd.InputStream(
             device=idx,
             samplerate=fs,
             channels=in_channel,
@@ -498,15 +528,12 @@ def record(
             blocksize=blocksize,
             callback=cb,
             finished_callback=done.set,
-        )
-    except sd.PortAudioError as exc:
-        raise DeviceError(f"could not open input device {info['name']!r}: {exc}") from exc
-    with stream:
-        try:
-            _wait(done, state, n, progress)
-        except KeyboardInterrupt:
-            stream.abort()
-            raise
-    if state["pos"] < n:
-        raise DeviceError(f"input device {info['name']!r} stopped early (disconnected?)")
+        ),
+        f"input device {info['name']!r}",
+        fs,
+        done,
+        state,
+        n,
+        progress,
+    )
     return buf[:, in_channel - 1].astype(np.float64)
