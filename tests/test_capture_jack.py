@@ -293,7 +293,8 @@ def test_cli_measure_deconvolve_design(make_room, tmp_path):  # noqa: F811
     assert (tmp_path / "design" / "manifest.json").exists()
 
 
-def test_ctrl_c_keeps_saved_files_and_leaves_no_partial_ones(make_room, tmp_path):  # noqa: F811
+@pytest.mark.parametrize("streams", [[], ["--two-streams"]])
+def test_ctrl_c_keeps_saved_files_and_leaves_no_partial_ones(make_room, tmp_path, streams):  # noqa: F811
     import signal
     import subprocess
     import time
@@ -328,6 +329,7 @@ def test_ctrl_c_keeps_saved_files_and_leaves_no_partial_ones(make_room, tmp_path
             "--ir-seconds",
             "0.2",
             "--force",
+            *streams,
         ],
         stdout=subprocess.PIPE,
         stderr=subprocess.PIPE,
@@ -496,7 +498,11 @@ def test_compare_recovers_a_moved_loudspeaker_under_changing_latency(make_room, 
             cwd=room,
         )
         assert res.returncode == 0, res.stderr
-        r.close()
+        if run == 0:
+            r.close()  # the first room's device goes; the second stays listed
+    listing = roomcorr_cmd("devices", cwd=room)  # the pair used last in this room
+    line = next(s for s in listing.stdout.splitlines() if "roomsim_cmp1" in s)
+    assert "last used input here" in line and "last used output here" in line
     cmp = roomcorr_cmd("compare", "--json", "--no-filter-check", cwd=room)
     assert cmp.returncode == 0, cmp.stderr
     chans = json.loads(cmp.stdout)["channels"]

@@ -240,3 +240,61 @@ def test_no_default_device_names_the_option(monkeypatch):
     monkeypatch.setattr(capture, "_sd", lambda: fake)
     with pytest.raises(DeviceError, match="no default input device.*--input-device"):
         capture.open_devices(48000, 1, 1)
+
+
+def test_resume_in_a_room_folder_continues_in_a_new_run(offline_room, monkeypatch, tmp_path):
+    from roomcorr import cli
+    from roomcorr import room as rooms
+
+    room = rooms.init_room(tmp_path / "room")
+    real = capture.play_record
+    calls = {"n": 0}
+
+    def interrupted(*a, **k):
+        calls["n"] += 1
+        if calls["n"] == 3:  # level check, position 1, then Ctrl-C during position 2
+            raise KeyboardInterrupt
+        return real(*a, **k)
+
+    monkeypatch.setattr(capture, "play_record", interrupted)
+    args = [
+        "measure",
+        "--room",
+        str(room.root),
+        "--outputs",
+        "1",
+        "--positions",
+        "2",
+        "--yes",
+        "--plain",
+        "--sweep-seconds",
+        "0.5",
+        "--repeats",
+        "1",
+        "--ir-seconds",
+        "0.2",
+    ]
+    assert cli.main(args) == 130
+    first = rooms.list_runs(room, "measurement")
+    assert len(first) == 1 and not first[0].complete
+    assert (first[0].path / "pos1.wav").is_file()
+    monkeypatch.setattr(capture, "play_record", real)
+    assert cli.main([*args, "--resume"]) == 0
+    runs = rooms.list_runs(room, "measurement")
+    assert [r.complete for r in runs] == [False, True]  # the unfinished run is left as it was
+    assert (runs[1].path / "pos1.wav").read_bytes() == (first[0].path / "pos1.wav").read_bytes()
+    stored = json.loads((runs[1].path / "measurement.json").read_text())
+    assert [p["file"] for p in stored["positions"]] == ["pos1.wav", "pos2.wav"]
+    assert not (runs[0].path / "pos2.wav").exists()
+    assert cli.main([*args, "--resume"]) == 2  # nothing left to resume
+
+
+def test_two_streams_need_the_markers(offline_room, monkeypatch, tmp_path):
+    from roomcorr.errors import SettingsError
+
+    two = capture.Devices(0, "invented USB microphone", 1, "invented HDMI output", True)
+    monkeypatch.setattr(capture, "open_devices", lambda *a, **k: two)
+    ms = MeasureSettings(**{**MS.to_dict(), "loopback": None, "markers": False})
+    with pytest.raises(SettingsError, match="no-markers"):
+        run_measurement(ms, tmp_path / "s", yes=True, say=lambda s: None)
+    assert not (tmp_path / "s").exists()

@@ -496,6 +496,11 @@ def run_measurement(
     devices = capture.open_devices(
         ms.sample_rate, n_in, n_out, ms.device, ms.input_device, ms.output_device, ms.two_streams
     )
+    if devices.two_streams and not ms.markers and ms.loopback is None:
+        raise SettingsError(
+            "--no-markers: with two streams (two devices) the timing markers are what finds "
+            "the sweep in the recording; leave --no-markers out"
+        )
     if ms.loopback is not None and devices.two_streams:
         raise SettingsError(
             "--loopback needs one device for input and output; with two devices leave it out "
