@@ -73,7 +73,7 @@ def main() -> None:
 
     ours()  # warm-up: imports, font cache
     t_ours = best_of(ours, repeat=3)
-    n_figs = sum(len(s.figures) for s in holder["r"].sections)
+    n_figs = sum(len(s.all_figures()) for s in holder["r"].sections)
     n_points = curves["freq_hz"].size
 
     def ref() -> None:

@@ -12,6 +12,7 @@ from pathlib import Path
 import numpy as np
 
 from roomcorr.atomic import atomic_write_with
+from roomcorr.checked import checked_number, read_regular_bytes, regular_file
 from roomcorr.errors import InputFileError
 
 #: Shortest impulse response accepted, in seconds (the bass window needs it).
@@ -22,6 +23,9 @@ CLIP_LEVEL = 0.999
 CLIP_RUN = 3
 #: A file whose peak is below this (about -120 dBFS) is treated as silent.
 SILENCE_PEAK = 1e-6
+#: Sample rates and channel counts accepted from a WAV header.
+MIN_FS, MAX_FS = 8000, 768000
+MAX_CHANNELS = 64
 
 
 def read_wav(path: str | Path) -> tuple[np.ndarray, int]:
@@ -34,13 +38,21 @@ def read_wav(path: str | Path) -> tuple[np.ndarray, int]:
     """
     import soundfile as sf
 
-    p = Path(path)
-    if not p.is_file():
-        raise InputFileError(f"{p}: file not found")
+    p = regular_file(path, "audio file")  # a FIFO or device would block for ever
     try:
         data, fs = sf.read(str(p), dtype="float64", always_2d=True)
     except (RuntimeError, sf.LibsndfileError) as exc:
         raise InputFileError(f"{p}: not a readable audio file ({exc})") from None
+    except OSError as exc:
+        raise InputFileError(f"{p}: cannot read ({exc.strerror})") from None
+    # the header's numbers are inputs too: a sane rate and at least one channel
+    fs = checked_number(
+        fs, f"{p}: sample rate", MIN_FS, MAX_FS, integer=True, error=InputFileError, unit="Hz"
+    )
+    if data.shape[1] < 1 or data.shape[1] > MAX_CHANNELS:
+        raise InputFileError(
+            f"{p}: {data.shape[1]} channels; expected 1 to {MAX_CHANNELS} (one per loudspeaker)"
+        )
     return np.ascontiguousarray(data.T), int(fs)
 
 
@@ -115,13 +127,38 @@ def expand_ir_paths(paths: list[str | Path]) -> list[Path]:
     return out
 
 
-def read_ir_set(paths: list[str | Path]) -> tuple[np.ndarray, int, list[Path]]:
+def check_plausible(data: np.ndarray, fs: int, name: str) -> None:
+    """Raise :class:`InputFileError` unless every channel looks like a room impulse response.
+
+    The checks (a clear arrival, time after it, decaying energy, no build-up)
+    are :func:`roomcorr.analysis.plausibility.impulse_response_problems`; the
+    message names the file, the channel and what looks wrong.
+    """
+    from roomcorr.analysis.plausibility import impulse_response_problems
+
+    for ch, x in enumerate(data):
+        problems = impulse_response_problems(x, fs)
+        if problems:
+            raise InputFileError(
+                f"{name}: channel {ch + 1} does not look like an impulse response: "
+                + "; ".join(problems)
+                + ". Check the file (design needs impulse responses, not recordings), "
+                "or pass --force to design from it anyway"
+            )
+
+
+def read_ir_set(
+    paths: list[str | Path], require_impulse: bool = False
+) -> tuple[np.ndarray, int, list[Path]]:
     """Read one impulse-response WAV per microphone position and check them.
 
     Parameters
     ----------
     paths : list of path-like
         WAV files (channels = loudspeakers) or folders of them.
+    require_impulse : bool
+        Also refuse files that do not look like impulse responses
+        (:func:`check_plausible`, run on each file as read, before padding).
 
     Returns
     -------
@@ -149,6 +186,8 @@ def read_ir_set(paths: list[str | Path]) -> tuple[np.ndarray, int, list[Path]]:
                 "needs one channel per loudspeaker, in the same order"
             )
         check_ir(data, fs, str(p))
+        if require_impulse:
+            check_plausible(data, fs, str(p))
         datas.append(data)
     assert fs0 is not None
     n = max(d.shape[1] for d in datas)
@@ -158,41 +197,137 @@ def read_ir_set(paths: list[str | Path]) -> tuple[np.ndarray, int, list[Path]]:
     return irs, fs0, files
 
 
-def read_curve_file(path: str | Path, what: str = "curve") -> tuple[np.ndarray, np.ndarray]:
-    """Read a text file of frequency (Hz) and dB pairs, one per line.
+#: A data line starts with a number (or with a word that tries to be one: nan, inf).
+_DATA_LINE = re.compile(r"[+-]?(\d|\.\d|nan|inf)", re.IGNORECASE)
+#: One plain decimal number (dot decimal mark), optionally with an exponent.
+_NUMBER = re.compile(r"[+-]?(\d+\.?\d*|\.\d+)([eE][+-]?\d+)?")
+#: Lines starting with one of these are comments.
+_COMMENT = ("#", "*", "//", "%", "!")
+#: Largest frequency (Hz) and level (dB) a curve file may hold.
+CURVE_MAX_HZ = 1e6
+CURVE_MAX_DB = 200.0
 
-    Lines that do not start with a number (headers, comments) are skipped.
-    Separators may be spaces, tabs, commas or semicolons; columns after the
-    second are ignored.
+#: Column separators of the layouts read by :func:`read_curve_file`.
+CURVE_LAYOUTS = {
+    "tab": "tab or semicolon between columns; decimal point or decimal comma",
+    "comma": "comma between columns (spaces allowed after it); decimal point",
+    "space": "spaces between columns; decimal point or decimal comma",
+}
+
+
+def _curve_layout(line: str) -> str:
+    """Column separator of a data line: ``tab`` (tab or semicolon), ``comma`` or ``space``."""
+    if "\t" in line or ";" in line:
+        return "tab"
+    if "," in line:
+        words = line.split()
+        # "20,0 -1,2": commas inside space-separated words are decimal commas
+        if len(words) >= 2 and not any(w.endswith(",") or w.startswith(",") for w in words):
+            return "space"
+        return "comma"
+    return "space"
+
+
+def _curve_fields(line: str, layout: str) -> list[str]:
+    """The columns of a data line (separators of its layout, and spaces, split it)."""
+    seps = {"tab": r"[\t;\s]+", "comma": r"[,\s]+", "space": r"\s+"}[layout]
+    return [f for f in re.split(seps, line.strip()) if f]
+
+
+def read_curve_file(path: str | Path, what: str = "curve") -> tuple[np.ndarray, np.ndarray]:
+    """Read a text file of frequency (Hz) and dB pairs, one per line, exactly as written.
+
+    Accepted layouts (:data:`CURVE_LAYOUTS`), recognised from the first data
+    line and then required on every data line:
+
+    * columns separated by a tab, a semicolon, a comma (optionally followed by
+      spaces) or spaces, recognised line by line;
+    * a decimal point, or a decimal comma when the columns are separated by a
+      tab, a semicolon or spaces (``20,0<TAB>-1,2``; ``100;5,5``; ``20,0 -1,2``).
+      A file that uses decimal commas may not also use dots (``1.000,5`` could
+      hold a thousands separator) or comma-separated lines;
+    * UTF-8 with or without a byte-order mark (Latin-1 also read), LF or CRLF
+      line ends.
+
+    Lines that start with text (headers) or a comment mark (``#``, ``*``,
+    ``//``, ``%``, ``!``) and empty lines are skipped. Columns after the second
+    (a phase, say) are ignored. Anything else is refused with the line number:
+    a value that is not a finite number (``nan``, ``inf``), a line with a
+    single value, a line whose commas could be read two ways (``20,0,-1,2``),
+    a non-positive or duplicated frequency, a value out of range.
 
     Returns
     -------
     freq_hz, gain_db : ndarray, shape (n_points,)
         Sorted by frequency.
+
+    Raises
+    ------
+    InputFileError
+        Naming the file and, for a bad line, its number.
     """
     p = Path(path)
+    raw = read_regular_bytes(p, f"{what} file")
     try:
-        text = p.read_text(encoding="utf-8", errors="replace")
-    except FileNotFoundError:
-        raise InputFileError(f"{p}: {what} file not found") from None
-    except OSError as exc:
-        raise InputFileError(f"{p}: cannot read {what} file ({exc.strerror})") from None
+        text = raw.decode("utf-8-sig")
+    except UnicodeDecodeError:
+        text = raw.decode("latin-1")
+    lines = text.splitlines()
+    data = [
+        (n, s)
+        for n, s in ((n, ln.strip()) for n, ln in enumerate(lines, start=1))
+        if s and not s.startswith(_COMMENT) and _DATA_LINE.match(s)
+    ]
+    if not data:
+        raise InputFileError(f"{p}: a {what} file needs at least two 'frequency dB' lines")
+    rows = [(n, s, _curve_layout(s)) for n, s in data]
+    rows = [(n, s, lay, _curve_fields(s, lay)) for n, s, lay in rows]
+    # decimal commas: a comma inside a column of a tab, semicolon or space layout
+    comma_line = next(
+        (n for n, _, lay, fl in rows if lay != "comma" and any("," in f for f in fl[:2])), None
+    )
+    has_dot = any("." in f for *_, fl in rows for f in fl[:2])
     freqs, gains = [], []
-    for lineno, line in enumerate(text.splitlines(), start=1):
-        s = line.strip()
-        if not s or not (s[0].isdigit() or (s[0] in "+-." and len(s) > 1)):
-            continue
-        parts = s.replace(",", " ").replace(";", " ").split()
-        try:
-            f, g = float(parts[0]), float(parts[1])
-        except (ValueError, IndexError):
+    for n, s, lay, fl in rows:
+        if lay == "comma" and len(fl) > 2 and not has_dot:
+            # "20,0,-1,2" in a file without any decimal point: columns or decimal commas?
             raise InputFileError(
-                f"{p}, line {lineno}: expected 'frequency dB', got {s[:40]!r}"
-            ) from None
-        if not (np.isfinite(f) and np.isfinite(g)) or f <= 0:
-            raise InputFileError(f"{p}, line {lineno}: frequency must be positive and finite")
-        freqs.append(f)
-        gains.append(g)
+                f"{p}, line {n}: {s[:40]!r} is ambiguous (commas both between columns "
+                "and as decimal marks?); use a tab or semicolon between columns, or a "
+                "decimal point"
+            )
+        if len(fl) < 2:
+            raise InputFileError(f"{p}, line {n}: expected 'frequency dB', got {s[:40]!r}")
+        vals = []
+        for f in fl[:2]:
+            t = f
+            if comma_line is not None:
+                if "." in t or lay == "comma":
+                    raise InputFileError(
+                        f"{p}, line {n}: {s[:40]!r} mixes decimal points with the decimal "
+                        f"commas of line {comma_line} (is '.' a thousands separator?); use "
+                        "one decimal mark throughout"
+                    )
+                if t.count(",") > 1:
+                    raise InputFileError(f"{p}, line {n}: {t!r} is not a number")
+                t = t.replace(",", ".")
+            if not _NUMBER.fullmatch(t):
+                if t.lower().lstrip("+-").startswith(("nan", "inf")):
+                    raise InputFileError(f"{p}, line {n}: {f!r} is not a finite number")
+                raise InputFileError(
+                    f"{p}, line {n}: {f!r} is not a number (layout: {CURVE_LAYOUTS[lay]})"
+                )
+            vals.append(checked_number(t, f"{p}, line {n}", error=InputFileError))
+        f_hz, g_db = float(vals[0]), float(vals[1])
+        if not 0.0 < f_hz <= CURVE_MAX_HZ:
+            raise InputFileError(
+                f"{p}, line {n}: frequency {fl[0]!r} must be positive and at most "
+                f"{CURVE_MAX_HZ:g} Hz"
+            )
+        if not -CURVE_MAX_DB <= g_db <= CURVE_MAX_DB:
+            raise InputFileError(f"{p}, line {n}: {fl[1]!r} dB is out of range")
+        freqs.append(f_hz)
+        gains.append(g_db)
     if len(freqs) < 2:
         raise InputFileError(f"{p}: a {what} file needs at least two 'frequency dB' lines")
     f_arr, g_arr = np.asarray(freqs), np.asarray(gains)

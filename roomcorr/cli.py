@@ -8,6 +8,7 @@ error and exit status 2. Subcommands are listed in ``_COMMANDS`` as
 from __future__ import annotations
 
 import argparse
+import contextlib
 import sys
 from collections.abc import Callable
 from pathlib import Path
@@ -32,17 +33,41 @@ def _print_cautions() -> None:
         print(line, file=sys.stderr)
 
 
-def _float_list(text: str) -> list[float]:
+def _finite(text: str, integer: bool = False) -> Any:
+    """Option type: one finite number (``nan``, ``inf`` and ``1e999`` are refused).
+
+    Ranges are checked later, with the settings key named
+    (:func:`roomcorr.settings.validate_design`); here only what cannot be a
+    number at all is refused, by the same checked-number helper.
+    """
+    from roomcorr.checked import checked_number
+
     try:
-        return [float(x) for x in text.split(",") if x.strip()]
-    except ValueError:
-        raise argparse.ArgumentTypeError(
-            f"expected comma-separated numbers, got {text!r}"
-        ) from None
+        return checked_number(text, "", integer=integer)
+    except RoomcorrError as exc:
+        raise argparse.ArgumentTypeError(str(exc)) from None
+
+
+def _whole(text: str) -> int:
+    """Option type: one finite whole number."""
+    return _finite(text, integer=True)
+
+
+def _number_list(text: str, integer: bool) -> list[Any]:
+    parts = [x for x in text.split(",") if x.strip()]
+    if not parts:
+        raise argparse.ArgumentTypeError(f"expected comma-separated numbers, got {text!r}")
+    return [_finite(x, integer=integer) for x in parts]
+
+
+def _float_list(text: str) -> list[float]:
+    """Option type: comma-separated finite numbers."""
+    return [float(x) for x in _number_list(text, integer=False)]
 
 
 def _int_list(text: str) -> list[int]:
-    return [int(round(x)) for x in _float_list(text)]
+    """Option type: comma-separated finite whole numbers."""
+    return _number_list(text, integer=True)
 
 
 # --------------------------------------------------------------------------- design
@@ -54,24 +79,24 @@ def _add_design_options(p: argparse.ArgumentParser) -> None:
     g.add_argument(
         "--target", metavar="NAME|FILE", help="target preset (flat, gentle-tilt, ...) or text file"
     )
-    g.add_argument("--band-lo", type=float, metavar="HZ", help="lowest corrected frequency")
-    g.add_argument("--band-hi", type=float, metavar="HZ", help="highest corrected frequency")
-    g.add_argument("--max-boost", type=float, metavar="DB", help="boost cap (default 4 dB)")
-    g.add_argument("--max-cut", type=float, metavar="DB", help="cut cap (default 15 dB)")
+    g.add_argument("--band-lo", type=_finite, metavar="HZ", help="lowest corrected frequency")
+    g.add_argument("--band-hi", type=_finite, metavar="HZ", help="highest corrected frequency")
+    g.add_argument("--max-boost", type=_finite, metavar="DB", help="boost cap (default 4 dB)")
+    g.add_argument("--max-cut", type=_finite, metavar="DB", help="cut cap (default 15 dB)")
     g.add_argument(
-        "--taps", type=int, metavar="N", help="FIR taps at 48 kHz (other rates: same duration)"
+        "--taps", type=_whole, metavar="N", help="FIR taps at 48 kHz (other rates: same duration)"
     )
     g.add_argument(
         "--rates", type=_int_list, metavar="R,R", help="output sample rates (44100,48000,96000)"
     )
-    g.add_argument("--ceiling", type=float, metavar="DB", help="peak-gain ceiling (default 0 dB)")
+    g.add_argument("--ceiling", type=_finite, metavar="DB", help="peak-gain ceiling (default 0 dB)")
     g.add_argument(
         "--allow-gain", action="store_true", help="permit a ceiling above 0 dB (risk of clipping)"
     )
     g.add_argument("--calibration", metavar="FILE", help="microphone calibration text file")
     g.add_argument("--weights", type=_float_list, metavar="W,W", help="weight per position")
     g.add_argument("--iir", action="store_true", help="also write biquad sets")
-    g.add_argument("--iir-sections", type=int, metavar="N", help="most biquads per channel (10)")
+    g.add_argument("--iir-sections", type=_whole, metavar="N", help="most biquads per channel (10)")
     _add_phase_options(g)
     p.add_argument("--replace", action="store_true", help="write over an earlier design in --out")
 
@@ -85,7 +110,7 @@ def _add_phase_options(g: Any) -> None:
     )
     g.add_argument(
         "--latency-ms",
-        type=float,
+        type=_finite,
         metavar="MS",
         help="delay allowed for --phase mixed (default 20 ms; 5-250): video then needs the "
         "picture delayed as much (lip-sync); keep minimum phase for live monitoring",
@@ -134,8 +159,11 @@ def settings_from_args(args: argparse.Namespace, base: Any = None) -> Any:
 def _print_design_summary(result: Any, out: Path, entries: list[dict]) -> None:
     import numpy as np
 
+    from roomcorr.design.safety import PEAK_BAND
+
     print(f"Design written to {out}  ({len(entries) + 1} files, manifest.json lists them)")
     print(f"Common pre-gain: {result.pre_gain_db:+.2f} dB (same for every channel)")
+    print(f"Peak gain below is the largest gain from {PEAK_BAND}, pre-gain included")
     for ch in result.channels:
         lo, hi = ch.band_hz
         inband = (result.freq_hz >= lo) & (result.freq_hz <= hi)
@@ -177,27 +205,39 @@ def _print_design_summary(result: Any, out: Path, entries: list[dict]) -> None:
 
 
 def _design_and_write(
-    ir_paths: list[str], out: Path, settings: Any, replace: bool, extra: dict | None = None
+    ir_paths: list[str],
+    out: Path,
+    settings: Any,
+    replace: bool,
+    extra: dict | None = None,
+    force: bool = False,
 ) -> tuple[Any, list[dict]]:
     from roomcorr.audio_io import read_ir_set
-    from roomcorr.export import write_design
-    from roomcorr.pipeline import run_design
+    from roomcorr.export import check_out_dir, input_digests, write_design
+    from roomcorr.grid import log_grid
+    from roomcorr.pipeline import resolve_calibration, resolve_target, run_design
 
-    irs, fs, files = read_ir_set(ir_paths)
+    check_out_dir(out, replace)  # refuse before the work, not after it
+    irs, fs, files = read_ir_set(ir_paths, require_impulse=not force)
+    # every input is checked before the work starts (and the cautions are printed)
+    resolve_target(log_grid(), settings.design.target)
+    resolve_calibration(log_grid(), settings.design.calibration)
+    _print_cautions()
     result = run_design(irs, fs, settings)
     iir = None
     if settings.design.iir:
         from roomcorr.design.iir_fit import design_iir
 
         iir = design_iir(result)  # fitted and safety-checked before anything is written
-    info = {"measurements": [str(f) for f in files]}
+    from roomcorr.design.safety import PEAK_BAND
+
+    info = {"measurements": [str(f) for f in files], "peak_gain_band": PEAK_BAND}
+    info["inputs"] = input_digests(
+        files, settings.design.calibration, settings.design.target
+    )  # SHA-256 of every input, so the design can be reproduced and checked
     if extra:
         info.update(extra)
-    entries = write_design(result, out, replace=replace, extra=info)
-    if iir is not None:
-        from roomcorr.export_iir import write_iir
-
-        entries += write_iir(iir, out)
+    entries = write_design(result, out, replace=replace, extra=info, iir=iir)
     return result, entries
 
 
@@ -220,6 +260,12 @@ def _add_design(sub: Any) -> argparse.ArgumentParser:
         "--out", metavar="DIR", help="output folder (in a room folder: a new designs/ run)"
     )
     p.add_argument("--room", metavar="ROOM_DIR", help="room folder (default: the one you are in)")
+    p.add_argument(
+        "--force",
+        action="store_true",
+        help="design even from files that do not look like impulse responses (no clear "
+        "arrival, no decay)",
+    )
     _add_design_options(p)
     return p
 
@@ -234,9 +280,9 @@ def _run_design(args: argparse.Namespace) -> int:
         if not args.irs:
             raise SettingsError("design: name the impulse-response files or folders to use")
         settings = settings_from_args(args, rooms.load_room_settings(room) if room else None)
-        _print_cautions()
         out = Path(args.out)
-        result, entries = _design_and_write(args.irs, out, settings, args.replace)
+        result, entries = _design_and_write(args.irs, out, settings, args.replace,
+                                            force=args.force)
         _print_design_summary(result, out, entries)
         return 0
     if room is None:
@@ -252,9 +298,9 @@ def _run_design(args: argparse.Namespace) -> int:
         paths = [str(p) for p in rooms.measurement_files(meas)]
         source = {"measurement": meas.name}
         print(f"Using the latest measurement: {meas.relative_to(room.root)}")
-    _print_cautions()
     with rooms.new_run(room, "design", info=dict(source)) as run_dir:
-        result, entries = _design_and_write(paths, run_dir, settings, False, extra=source)
+        result, entries = _design_and_write(paths, run_dir, settings, False, extra=source,
+                                            force=args.force)
     _print_design_summary(result, run_dir, entries)
     return 0
 
@@ -295,7 +341,6 @@ def _run_demo(args: argparse.Namespace) -> int:
     from roomcorr.export import MANIFEST, read_manifest
 
     settings = settings_from_args(args)
-    _print_cautions()
     out = Path(args.out)
     replace = args.replace
     if (out / MANIFEST).exists() and read_manifest(out).get("demo"):
@@ -318,11 +363,18 @@ def _add_report(sub: Any) -> argparse.ArgumentParser:
     p = sub.add_parser(
         "report",
         help="write report.html (and PNG figures) for a design or measurement folder",
-        description="Write one self-contained report.html into DIR (figures embedded, opens "
-        "from disk without network access) plus the figures as PNG files in DIR/report/. "
-        "DIR is a design output folder or a measurement session folder.",
+        description="Write one self-contained report.html (figures embedded, opens from disk "
+        "without network access) plus the figures as PNG files in report/. DIR is a design "
+        "output folder or a measurement session folder. The report goes into DIR when "
+        "roomcorr wrote DIR (in a room folder: beside the run), else into a new folder "
+        "DIR-report in the working folder; --out chooses another.",
     )
     p.add_argument("dir", metavar="DIR", help="design output folder or measurement folder")
+    p.add_argument(
+        "--out",
+        metavar="OUT_DIR",
+        help="folder for report.html and report/ (new, empty or holding an earlier report)",
+    )
     p.add_argument(
         "--compare-with",
         metavar="RUN_OR_FOLDER",
@@ -336,7 +388,7 @@ def _run_report(args: argparse.Namespace) -> int:
     from roomcorr.report.html import write_report
 
     folder = Path(args.dir)
-    path = write_report(folder, compare_with=args.compare_with)
+    path = write_report(folder, compare_with=args.compare_with, out_dir=args.out)
     if (folder / "manifest.json").is_file() and (folder / "design.npz").is_file():
         from roomcorr.export import load_design_curves, read_manifest
         from roomcorr.report.summary import summary_sentences
@@ -452,33 +504,33 @@ def _add_measure(sub: Any) -> argparse.ArgumentParser:
                    help="play and record with separate streams even on one device")
     p.add_argument("--outputs", type=_int_list, metavar="1,2",
                    help="output channel of each loudspeaker (default 1,2)")
-    p.add_argument("--input", type=int, metavar="N", help="microphone input channel (default 1)")
+    p.add_argument("--input", type=_whole, metavar="N", help="microphone input channel (default 1)")
     p.add_argument("--loopback", type=_pair, metavar="OUT,IN",
                    help="spare output cabled back to an input: timing reference that removes "
                    "the system latency")
-    p.add_argument("--positions", type=int, metavar="N", help="microphone positions (default 1)")
-    p.add_argument("--repeats", type=int, metavar="N", help="sweeps averaged per loudspeaker")
-    p.add_argument("--sweep-seconds", type=float, metavar="S", help="sweep length (default 5)")
+    p.add_argument("--positions", type=_whole, metavar="N", help="microphone positions (default 1)")
+    p.add_argument("--repeats", type=_whole, metavar="N", help="sweeps averaged per loudspeaker")
+    p.add_argument("--sweep-seconds", type=_finite, metavar="S", help="sweep length (default 5)")
     p.add_argument("--band", type=_float_list, metavar="LO,HI", help="sweep band in Hz")
-    p.add_argument("--rate", type=int, metavar="HZ", help="sample rate (default 48000)")
-    p.add_argument("--level", type=float, metavar="DBFS",
+    p.add_argument("--rate", type=_whole, metavar="HZ", help="sample rate (default 48000)")
+    p.add_argument("--level", type=_finite, metavar="DBFS",
                    help=f"sweep peak level (default {DEFAULT_LEVEL_DBFS:g} dBFS)")
     p.add_argument("--allow-loud", action="store_true",
                    help=f"allow a sweep level above {LEVEL_CAP_DBFS:g} dBFS (prints a warning)")
-    p.add_argument("--ir-seconds", type=float, metavar="S", help="impulse response length")
-    p.add_argument("--reference", type=int, metavar="N",
+    p.add_argument("--ir-seconds", type=_finite, metavar="S", help="impulse response length")
+    p.add_argument("--reference", type=_whole, metavar="N",
                    help="output of the timing-reference loudspeaker: its short markers before "
                    "and after every sweep fix the timing and the clock drift (default: the "
                    "first of --outputs)")
     p.add_argument("--no-markers", action="store_true",
                    help="no timing markers (arrival times then include the system latency)")
-    p.add_argument("--mic-sensitivity", type=float, metavar="DBFS",
+    p.add_argument("--mic-sensitivity", type=_finite, metavar="DBFS",
                    help="microphone sensitivity: dBFS read for 94 dB SPL (from 'roomcorr "
                    "calibrate-mic'); levels are then shown in dB SPL")
     p.add_argument("--mic-calibration", metavar="FILE",
                    help="microphone calibration file whose header holds "
                    "'# sensitivity_dbfs = X'")
-    p.add_argument("--blocksize", type=int, metavar="FRAMES",
+    p.add_argument("--blocksize", type=_whole, metavar="FRAMES",
                    help="frames per audio buffer (default: the audio system's choice); "
                    "raise it (e.g. 2048) when buffers are dropped")
     p.add_argument("--yes", action="store_true",
@@ -588,11 +640,11 @@ def _add_calibrate_mic(sub: Any) -> argparse.ArgumentParser:
         "--mic-sensitivity'. Keep the input gain as it will be for the measurement.",
     )
     p.add_argument("--device", help="the microphone's device (name part or number)")
-    p.add_argument("--input", type=int, default=1, metavar="N", help="input channel (1)")
-    p.add_argument("--rate", type=int, default=48000, metavar="HZ", help="sample rate")
-    p.add_argument("--seconds", type=float, default=4.0, metavar="S",
+    p.add_argument("--input", type=_whole, default=1, metavar="N", help="input channel (1)")
+    p.add_argument("--rate", type=_whole, default=48000, metavar="HZ", help="sample rate")
+    p.add_argument("--seconds", type=_finite, default=4.0, metavar="S",
                    help="recording length (default 4)")
-    p.add_argument("--calibrator-level", type=float, default=94.0, metavar="DB",
+    p.add_argument("--calibrator-level", type=_finite, default=94.0, metavar="DB",
                    help="the calibrator's level in dB SPL (94 or 114)")
     p.add_argument("--plain", action="store_true", help="no live meter")
     return p
@@ -649,7 +701,7 @@ def _add_deconvolve(sub: Any) -> argparse.ArgumentParser:
     p.add_argument("recording", metavar="RECORDING.wav")
     p.add_argument("--sweep-settings", required=True, metavar="FILE.json")
     p.add_argument("--out", metavar="IR.wav", help="default: RECORDING_ir.wav")
-    p.add_argument("--loopback-channel", type=int, metavar="N",
+    p.add_argument("--loopback-channel", type=_whole, metavar="N",
                    help="channel of the loopback reference (default from the sweep settings)")
     p.add_argument("--align", action="store_true",
                    help="the recording did not start together with the playback (another "
@@ -747,7 +799,7 @@ def _add_compare(sub: Any) -> argparse.ArgumentParser:
     p.add_argument("b", nargs="?", metavar="B", help="later measurement (same forms as A)")
     p.add_argument("--room", metavar="ROOM_DIR", help="room folder (default: the one you are in)")
     p.add_argument(
-        "--temperature", type=float, metavar="C",
+        "--temperature", type=_finite, metavar="C",
         help="air temperature in °C for the speed of sound (default: design.temperature_c "
         "of the room settings, else 20)",
     )
@@ -824,16 +876,49 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
+def _os_error_line(exc: OSError) -> str:
+    """One line for an operating-system error: the file it concerns and why."""
+    from roomcorr.atomic import disk_error_text
+
+    where = exc.filename if exc.filename is not None else ""
+    text = f"{where}: {disk_error_text(exc)}" if where else disk_error_text(exc)
+    return " ".join(text.split())
+
+
+def _quiet_broken_pipe() -> int:
+    """The reader of our output went away (``roomcorr compare --json | head``): stop
+    quietly, and keep Python from complaining when it flushes standard output at exit."""
+    import os
+
+    with contextlib.suppress(OSError, ValueError):
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+    return 141  # 128 + SIGPIPE, as a shell reports a command ended by a closed pipe
+
+
 def main(argv: list[str] | None = None) -> int:
     """Entry point of the ``roomcorr`` command; returns the exit status."""
     parser = build_parser()
     args = parser.parse_args(argv)
     runners = {name: run for name, _add, run in _COMMANDS}
     try:
-        return runners[args.command](args)
+        status = runners[args.command](args)
+        sys.stdout.flush()  # a closed pipe shows here, inside the handlers below
+        return status
     except RoomcorrError as exc:
         msg = " ".join(str(exc).split())
         print(f"{PROG}: error: {msg}", file=sys.stderr)
+        return 2
+    except BrokenPipeError:
+        return _quiet_broken_pipe()
+    except OSError as exc:  # disk full, read-only folder, name too long, ...
+        print(f"{PROG}: error: {_os_error_line(exc)}", file=sys.stderr)
+        return 2
+    except RuntimeError as exc:
+        if "Libsndfile" not in type(exc).__name__ and "SoundFile" not in type(exc).__name__:
+            raise
+        msg = " ".join(str(exc).split())
+        print(f"{PROG}: error: cannot read or write a sound file ({msg})", file=sys.stderr)
         return 2
     except KeyboardInterrupt:
         print(f"{PROG}: interrupted; files already complete were kept", file=sys.stderr)

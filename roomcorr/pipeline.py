@@ -19,6 +19,7 @@ from roomcorr.analysis.onset import find_onset
 from roomcorr.analysis.smoothing import smooth_log_grid, variable_width_oct
 from roomcorr.analysis.window import fdw_power
 from roomcorr.audio_io import read_curve_file
+from roomcorr.checked import regular_file
 from roomcorr.design.correction import align_target, correction_curve
 from roomcorr.design.fir import default_n_taps, synthesize_fir
 from roomcorr.design.mixedphase import MixedPhaseDesign, apply_mixed_phase
@@ -26,7 +27,7 @@ from roomcorr.design.safety import FilterStats, apply_safety
 from roomcorr.design.target import auto_band, target_from_points, target_from_table
 from roomcorr.errors import InputFileError, SettingsError
 from roomcorr.grid import interp_log, log_grid, points_per_octave_of
-from roomcorr.settings import Settings, find_preset, read_toml
+from roomcorr.settings import Settings, find_preset, is_preset_name, read_toml
 
 __all__ = [
     "ChannelDesign",
@@ -83,7 +84,13 @@ def default_channel_names(n: int) -> list[str]:
 
 
 def resolve_target(freq_hz: np.ndarray, spec: str) -> np.ndarray:
-    """Target shape in dB from a preset name or a frequency/dB text file."""
+    """Target shape in dB from a preset name or a frequency/dB text file.
+
+    A plain name (letters, digits, ``-``, ``_``) names a bundled preset; any
+    other text is a path, which must be a regular file (``.toml`` with a
+    ``[target]`` table, or a curve text file). A path never reaches into the
+    presets folder and a name never leaves it.
+    """
     preset = find_preset(spec)
     if preset is not None:
         data = read_toml(preset)
@@ -92,17 +99,18 @@ def resolve_target(freq_hz: np.ndarray, spec: str) -> np.ndarray:
             raise SettingsError(f"{preset}: preset {spec!r} has no [target] table")
         return target_from_table(freq_hz, table, str(preset))
     p = Path(spec)
-    if p.suffix.lower() == ".toml" and p.is_file():
-        table = read_toml(p).get("target")
-        if not isinstance(table, dict):
-            raise SettingsError(f"{p}: no [target] table")
-        return target_from_table(freq_hz, table, str(p))
-    if not p.is_file():
+    if is_preset_name(spec) and not p.exists():
         from roomcorr.settings import preset_names
 
         raise SettingsError(
             f"--target {spec}: neither a preset ({', '.join(preset_names())}) nor a file"
         )
+    regular_file(p, "target file", SettingsError)
+    if p.suffix.lower() == ".toml":
+        table = read_toml(p).get("target")
+        if not isinstance(table, dict):
+            raise SettingsError(f"{p}: no [target] table")
+        return target_from_table(freq_hz, table, str(p))
     pts_hz, pts_db = read_curve_file(p, "target")
     return target_from_points(freq_hz, pts_hz, pts_db)
 

@@ -20,6 +20,8 @@ Public functions (the signatures other commands rely on)::
     add_measurement(room, paths) -> Path         # copy IR WAVs from elsewhere into a new run
     measurement_files(folder) -> list[Path]      # the IR WAVs of a measurement folder
     compare_measurements(a, b, room=None, temperature_c=None) -> dict
+    check_run(run, use=None) -> str | None       # what changed since the run finished
+    verified(room, folder, use=None)             # InputFileError for a damaged run
 
 Layout of a room folder::
 
@@ -28,9 +30,13 @@ Layout of a room folder::
     ROOM/measurements/2026-01-31_201502Z/   pos1.wav ... measurement.json, complete.json
     ROOM/designs/2026-01-31_203010Z/        manifest.json, design.npz, fir/..., complete.json
 
-Runs are never overwritten or deleted. A run folder without ``complete.json``
-was interrupted (or is still being written) and is never taken as a
-measurement or design by later commands. Every file goes through
+Runs are never overwritten or deleted, and finished runs are read-only to
+roomcorr. A run folder without ``complete.json`` was interrupted (or is still
+being written) and is never taken as a measurement or design by later
+commands. A finished run is verified on read against its ``complete.json``
+(sizes of every file always, SHA-256 of the files a command uses); a damaged
+run is shown as damaged by ``history`` and refused with one line elsewhere.
+``measurements/`` and ``designs/`` must be plain folders inside the room. Every file goes through
 :mod:`roomcorr.atomic`; the one exception is the lock file, which must keep
 its identity for ``flock`` and holds only a note of who holds it.
 """
@@ -50,9 +56,17 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from roomcorr.atomic import atomic_write_bytes, atomic_write_text
+from roomcorr.atomic import (
+    PathEscapeError,
+    atomic_write_bytes,
+    atomic_write_text,
+    clean_stale,
+    contained,
+    fsync_dir,
+    is_link_or_outside,
+)
 from roomcorr.audio_io import natural_key
-from roomcorr.errors import InputFileError, OutputError, SettingsError
+from roomcorr.errors import InputFileError, OutputError, RoomcorrError, SettingsError
 
 if TYPE_CHECKING:
     from roomcorr.settings import Settings
@@ -357,7 +371,9 @@ def load_room_settings(room: Room) -> Settings:
     from roomcorr.settings import settings_from_dict
 
     data = _read_room_toml(room.settings_path)
-    settings = settings_from_dict(data, source=str(room.settings_path))
+    settings = settings_from_dict(
+        data, source=str(room.settings_path), base_dir=room.settings_path.parent
+    )
     try:
         from roomcorr.measure.settings import MeasureSettings
     except ImportError:
@@ -520,21 +536,13 @@ class RunInfo:
     path: Path
     complete: bool
     marker: dict[str, Any]
+    problem: str | None = None  # why the run is damaged (then ``complete`` is False)
 
 
 def _sha256(path: Path) -> str:
     from roomcorr.export import sha256_of
 
     return sha256_of(path)
-
-
-def _fsync_dir(path: Path) -> None:
-    with contextlib.suppress(OSError, AttributeError):
-        fd = os.open(path, os.O_RDONLY)
-        try:
-            os.fsync(fd)
-        finally:
-            os.close(fd)
 
 
 def _run_files(run_dir: Path) -> list[Path]:
@@ -552,7 +560,10 @@ def _make_run_dir(room: Room, kind: str) -> Path:
     same second keep their order (``..._2``, ``..._3``)."""
     stamp = _utc_now().strftime("%Y-%m-%d_%H%M%SZ")
     parent = room.root / KINDS[kind]
+    check_kind_folder(room, kind)
     parent.mkdir(parents=True, exist_ok=True)
+    check_kind_folder(room, kind)  # created by someone else in between: check again
+    clean_stale(parent)
     for n in range(1, 1000):
         name = stamp if n == 1 else f"{stamp}_{n}"
         if any((room.root / sub / name).exists() for sub in KINDS.values()):
@@ -564,6 +575,30 @@ def _make_run_dir(room: Room, kind: str) -> Path:
             continue
         return cand
     raise OutputError(f"{parent}: cannot create a new run folder")  # pragma: no cover
+
+
+def refuse_finished_run(path: str | os.PathLike[str], label: str = "--out") -> None:
+    """Raise :class:`OutputError` if ``path`` is, or lies inside, a finished run of a room
+    folder: finished runs are read-only to roomcorr (a new run is the way to change them)."""
+    p = Path(os.path.abspath(path))
+    for cand in (p, *p.parents):
+        if (cand / COMPLETE_MARKER).is_file() and cand.parent.name in KINDS.values():
+            raise OutputError(
+                f"{label} {path}: inside the finished run {cand.name} of a room folder, which "
+                "roomcorr never changes; choose another folder (in the room: a new run)"
+            )
+
+
+def check_kind_folder(room: Room, kind: str) -> None:
+    """Refuse a ``measurements/`` or ``designs/`` folder that is a link or leads outside."""
+    parent = room.root / KINDS[kind]
+    if (parent.exists() or parent.is_symlink()) and (
+        is_link_or_outside(parent, room.root) or not parent.is_dir()
+    ):
+        raise OutputError(
+            f"{parent}: is a symbolic link or not a folder; runs must stay inside the room "
+            "folder (make it a plain folder)"
+        )
 
 
 @contextlib.contextmanager
@@ -590,7 +625,8 @@ def new_run(room: Room, kind: str, info: dict[str, Any] | None = None) -> Iterat
     The room lock is held for the whole block. If the block raises (including
     Ctrl-C), or the process is killed, the folder keeps whatever was written
     but gets no ``complete.json``, so :func:`latest_measurement` and
-    :func:`list_runs` never take it for a finished run. Nothing is deleted.
+    :func:`list_runs` never take it for a finished run. Nothing written is
+    deleted; a run folder still empty when the block raises is removed.
     """
     if kind not in KINDS:
         raise ValueError(f"kind must be one of {sorted(KINDS)}, not {kind!r}")
@@ -598,12 +634,19 @@ def new_run(room: Room, kind: str, info: dict[str, Any] | None = None) -> Iterat
         started = _utc_now()
         run_dir = _make_run_dir(room, kind)
         snapshot = room.settings_path.read_bytes() if room.settings_path.is_file() else None
-        yield run_dir
+        try:
+            yield run_dir
+        except BaseException:
+            with contextlib.suppress(OSError):
+                run_dir.rmdir()  # a run that failed before writing anything leaves no trace
+            raise
         snapshot_sha = None
         if snapshot is not None:  # written at the end: writers may want an empty folder
             atomic_write_bytes(run_dir / SETTINGS_SNAPSHOT, snapshot)
             snapshot_sha = _sha256(run_dir / SETTINGS_SNAPSHOT)
-        files = {p.relative_to(run_dir).as_posix(): _sha256(p) for p in _run_files(run_dir)}
+        found = _run_files(run_dir)
+        files = {p.relative_to(run_dir).as_posix(): _sha256(p) for p in found}
+        sizes = {p.relative_to(run_dir).as_posix(): p.stat().st_size for p in found}
         marker = {
             "kind": kind,
             "run_id": run_dir.name,
@@ -615,10 +658,11 @@ def new_run(room: Room, kind: str, info: dict[str, Any] | None = None) -> Iterat
             "command": _command_line(),
             "info": dict(info or {}),
             "files": files,
+            "sizes": sizes,
         }
-        _fsync_dir(run_dir)
+        fsync_dir(run_dir)
         atomic_write_text(run_dir / COMPLETE_MARKER, json.dumps(marker, indent=2) + "\n")
-        _fsync_dir(run_dir)
+        fsync_dir(run_dir)
 
 
 def _run_sort_key(p: Path) -> tuple[str, int]:
@@ -628,13 +672,52 @@ def _run_sort_key(p: Path) -> tuple[str, int]:
     return (m.group(1), int(m.group(2) or 1))
 
 
-def _read_marker(run_dir: Path) -> dict[str, Any] | None:
+def _marker_problem(data: Any, run_dir: Path) -> str | None:
+    """Why a parsed ``complete.json`` is unusable (None when it is fine)."""
+    if not isinstance(data, dict):
+        return f"{COMPLETE_MARKER}: expected a JSON object"
+    files = data.get("files", {})
+    sizes = data.get("sizes", {})
+    if not isinstance(files, dict) or not all(
+        isinstance(v, str) and len(v) == 64 for v in files.values()
+    ):
+        return f"{COMPLETE_MARKER}: 'files' is not a table of SHA-256 digests"
+    if not isinstance(sizes, dict) or not all(
+        isinstance(v, int) and not isinstance(v, bool) and v >= 0 for v in sizes.values()
+    ):
+        return f"{COMPLETE_MARKER}: 'sizes' is not a table of file sizes"
+    if not isinstance(data.get("info", {}), dict):
+        return f"{COMPLETE_MARKER}: 'info' is not a table"
+    for rel in [*files, *sizes]:
+        try:
+            contained(run_dir, rel)
+        except PathEscapeError as exc:
+            return f"{COMPLETE_MARKER}: names a file outside the run ({exc})"
+    return None
+
+
+def _load_marker(run_dir: Path) -> tuple[dict[str, Any] | None, str | None]:
+    """(marker, problem): (None, None) for a run without marker (interrupted),
+    (None, problem) for a damaged one, (marker, None) for a sound one."""
     p = run_dir / COMPLETE_MARKER
+    if not p.exists() and not p.is_symlink():
+        return None, None
+    if p.is_symlink() or not p.is_file():
+        return None, f"{COMPLETE_MARKER}: not a plain file"
     try:
         data = json.loads(p.read_text(encoding="utf-8"))
-    except (OSError, json.JSONDecodeError):
-        return None
-    return data if isinstance(data, dict) and data.get("complete") is True else None
+    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
+        return None, f"{COMPLETE_MARKER}: unreadable ({exc})"
+    problem = _marker_problem(data, run_dir)
+    if problem:
+        return None, problem
+    if data.get("complete") is not True:
+        return None, None
+    return data, None
+
+
+def _read_marker(run_dir: Path) -> dict[str, Any] | None:
+    return _load_marker(run_dir)[0]
 
 
 def list_runs(
@@ -656,13 +739,18 @@ def list_runs(
         base = room.root / sub
         if not base.is_dir():
             continue
+        if is_link_or_outside(base, room.root):
+            continue  # never read runs from outside the room (check_kind_folder refuses it)
         for p in base.iterdir():
-            if not p.is_dir() or p.name.startswith("."):
+            if p.name.startswith(".") or not (p.is_dir() or p.is_symlink()):
                 continue
-            marker = _read_marker(p)
+            if is_link_or_outside(p, base):
+                marker, problem = None, "a symbolic link to a folder outside the room"
+            else:
+                marker, problem = _load_marker(p)
             if marker is None and not include_incomplete:
                 continue
-            out.append(RunInfo(k, p.name, p, marker is not None, marker or {}))
+            out.append(RunInfo(k, p.name, p, marker is not None, marker or {}, problem))
     return sorted(out, key=lambda r: (_run_sort_key(r.path), r.kind))
 
 
@@ -671,18 +759,82 @@ def verify_run(run_dir: str | os.PathLike[str]) -> list[str]:
 
     Returns an empty list when every recorded file is present and has the
     SHA-256 stored in ``complete.json``. Raises :class:`InputFileError` for a
-    folder without a marker.
+    folder without a (sound) marker.
     """
     d = Path(run_dir)
-    marker = _read_marker(d)
+    marker, problem = _load_marker(d)
     if marker is None:
-        raise InputFileError(f"{d}: not a complete run (no {COMPLETE_MARKER})")
-    bad = []
+        raise InputFileError(f"{d}: not a complete run ({problem or 'no ' + COMPLETE_MARKER})")
+    return [rel for rel, why in _changed_files(d, marker, None) if why]
+
+
+def _changed_files(
+    d: Path, marker: dict[str, Any], hash_files: list[str] | None
+) -> list[tuple[str, str]]:
+    """(relative path, what changed) for the recorded files of a run: sizes always,
+    SHA-256 for ``hash_files`` (all files when None)."""
+    sizes = marker.get("sizes", {})
+    out = []
     for rel, digest in marker.get("files", {}).items():
         p = d / rel
-        if not p.is_file() or _sha256(p) != digest:
-            bad.append(rel)
-    return bad
+        if p.is_symlink() or not p.is_file():
+            out.append((rel, "missing"))
+        elif rel in sizes and p.stat().st_size != sizes[rel]:
+            out.append((rel, "size changed"))
+        elif (hash_files is None or rel in hash_files) and _sha256(p) != digest:
+            out.append((rel, "content changed (SHA-256 differs)"))
+    return out
+
+
+def check_run(run: RunInfo, use: list[str] | None = None) -> str | None:
+    """Verify a finished run on read; return what is wrong, or None.
+
+    Sizes of every recorded file are compared always (cheap); SHA-256 only for
+    the files in ``use`` (the ones a command is about to read; None: all).
+    """
+    if run.problem:
+        return run.problem
+    if not run.complete:
+        return None
+    bad = _changed_files(run.path, run.marker, use)
+    if not bad:
+        return None
+    rel, why = bad[0]
+    more = f" (and {len(bad) - 1} more)" if len(bad) > 1 else ""
+    return f"{rel}: {why} since the run finished{more}"
+
+
+def verified(room: Room | None, folder: Path, use: list[Path] | None = None) -> None:
+    """Raise :class:`InputFileError` if ``folder`` is a damaged run of ``room``.
+
+    ``use``: the files of the run a command reads (hashed); other files are
+    checked by size only. Folders that are not runs of the room pass.
+    """
+    if room is None:
+        return
+    run = _run_for(room, folder)
+    if run is None:
+        return
+    rels = None
+    if use is not None:
+        rels = []
+        for f in use:
+            with contextlib.suppress(ValueError):
+                rels.append(Path(f).resolve().relative_to(run.path.resolve()).as_posix())
+    problem = check_run(run, rels)
+    if problem:
+        raise InputFileError(f"{run.path}: damaged run: {problem}; measure or design again")
+
+
+def _run_for(room: Room, folder: Path) -> RunInfo | None:
+    try:
+        target = Path(folder).resolve()
+    except OSError:
+        return None
+    for k, sub in KINDS.items():
+        if target.parent == (room.root / sub).resolve():
+            return next((r for r in list_runs(room, k) if r.path.resolve() == target), None)
+    return None
 
 
 def latest_measurement(room: Room) -> Path:
@@ -703,23 +855,33 @@ def latest_measurement(room: Room) -> Path:
 
 
 def resolve_run(room: Room | None, ref: str | os.PathLike[str], kind: str = "measurement") -> Path:
-    """A run id (``2026-01-31_201502Z``, or a unique prefix of one) or a path, as a Path."""
+    """A run id (``2026-01-31_201502Z``, or a unique prefix of one) or a path, as a Path.
+
+    A bare name (no folder separator) is looked up among the room's runs
+    first, so a run id always means a run inside the room folder; a run
+    folder that is a link leading outside the room is refused. Anything else
+    is taken as a path the user gave.
+    """
+    text = os.fspath(ref)
+    bare = isinstance(text, str) and "/" not in text and os.sep not in text
+    if room is not None and bare and text not in ("", ".", ".."):
+        runs = list_runs(room, kind)
+        matches = [r for r in runs if r.run_id == text] or [
+            r for r in runs if r.run_id.startswith(text)
+        ]
+        if len(matches) > 1:
+            raise InputFileError(
+                f"{ref}: matches {len(matches)} {kind} runs; give more of the time stamp"
+            )
+        if len(matches) == 1:
+            run = matches[0]
+            if run.problem:
+                raise InputFileError(f"{run.path}: damaged run: {run.problem}")
+            return run.path
     p = Path(ref)
     if p.exists():
         return p
-    if room is not None:
-        runs = [r for r in list_runs(room, kind) if r.run_id == str(ref)] or [
-            r for r in list_runs(room, kind) if r.run_id.startswith(str(ref))
-        ]
-        if len(runs) == 1:
-            return runs[0].path
-        if len(runs) > 1:
-            raise InputFileError(
-                f"{ref}: matches {len(runs)} {kind} runs; give more of the time stamp"
-            )
     raise InputFileError(f"{ref}: no such file, folder or {kind} run")
-
-
 
 
 def measurement_files(folder: str | os.PathLike[str]) -> list[Path]:
@@ -774,10 +936,7 @@ def _measurement_figures(run_dir: Path) -> dict[str, Any]:
     from roomcorr.audio_io import read_ir_set
 
     figs: dict[str, Any] = {}
-    try:
-        irs, fs, files = read_ir_set(measurement_files(run_dir))
-    except InputFileError as exc:
-        return {"problem": str(exc)}
+    irs, fs, files = read_ir_set(measurement_files(run_dir))
     figs.update(
         positions=irs.shape[0],
         channels=irs.shape[1],
@@ -795,8 +954,10 @@ def _measurement_figures(run_dir: Path) -> dict[str, Any]:
     if record.is_file():
         try:
             data = json.loads(record.read_text(encoding="utf-8"))
-        except (OSError, json.JSONDecodeError):
-            data = {}
+        except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
+            raise InputFileError(f"{record}: damaged ({exc})") from None
+        if not isinstance(data, dict):
+            raise InputFileError(f"{record}: damaged (expected a JSON object)")
         figs.update(_record_figures(data))
     return figs
 
@@ -826,27 +987,37 @@ def _record_figures(data: dict[str, Any]) -> dict[str, Any]:
 
 
 def _design_figures(run_dir: Path) -> dict[str, Any]:
-    p = run_dir / "manifest.json"
-    try:
-        man = json.loads(p.read_text(encoding="utf-8"))
-    except (OSError, json.JSONDecodeError):
-        return {"problem": f"{p}: missing or damaged"}
-    files = [e for e in man.get("files", []) if isinstance(e, dict)]
+    from roomcorr.export import read_manifest
+
+    man = read_manifest(run_dir)  # OutputError for a damaged manifest
+    files = man["files"]
     firs = [e for e in files if e.get("kind") == "fir"]
-    figs: dict[str, Any] = {"pre_gain_db": man.get("pre_gain_db"), "files": len(files)}
+    figs: dict[str, Any] = {"pre_gain_db": _number(man.get("pre_gain_db")), "files": len(files)}
     if firs:
         figs["sample_rates"] = sorted({int(e["sample_rate"]) for e in firs if "sample_rate" in e})
         for key in ("peak_gain_db", "worst_case_gain_db", "max_boost_db"):
-            vals = [float(e[key]) for e in firs if key in e]
+            vals = [_number(e[key]) for e in firs if key in e]
+            if None in vals:
+                raise OutputError(f"{run_dir / 'manifest.json'}: {key} is not a finite number")
             if vals:
                 figs[key] = max(vals)
     bands = [c.get("band_hz") for c in man.get("channels", []) if isinstance(c, dict)]
-    if bands and all(bands):
-        figs["band_hz"] = [min(b[0] for b in bands), max(b[1] for b in bands)]
-    target = man.get("settings", {}).get("design", {}).get("target")
+    if bands and all(isinstance(b, list) and len(b) == 2 for b in bands):
+        figs["band_hz"] = [min(float(b[0]) for b in bands), max(float(b[1]) for b in bands)]
+    design = (man.get("settings") or {}).get("design")
+    target = design.get("target") if isinstance(design, dict) else None
     if target:
-        figs["target"] = target
+        figs["target"] = str(target)
     return figs
+
+
+def _number(v: Any) -> float | None:
+    """A finite float from a JSON value, else None."""
+    import math
+
+    if isinstance(v, bool) or not isinstance(v, int | float) or not math.isfinite(v):
+        return None
+    return float(v)
 
 
 def history(room: Room) -> list[dict[str, Any]]:
@@ -882,10 +1053,24 @@ def history(room: Room) -> list[dict[str, Any]]:
             entry["source"] = design_source(r) if r.complete else info.get("measurement")
         if info.get("note"):
             entry["note"] = info["note"]
+        problem = r.problem
         if r.complete:
-            entry["figures"] = (
-                _measurement_figures(r.path) if r.kind == "measurement" else _design_figures(r.path)
-            )
+            # Sizes of every file; SHA-256 of all but the raw recordings (large, and
+            # read by no command after the run).
+            use = [rel for rel in r.marker.get("files", {}) if not rel.startswith("raw/")]
+            problem = check_run(r, use)
+        if problem is None and r.complete:
+            try:
+                entry["figures"] = (
+                    _measurement_figures(r.path)
+                    if r.kind == "measurement"
+                    else _design_figures(r.path)
+                )
+            except (RoomcorrError, OSError, ValueError, TypeError, KeyError, AttributeError) as e:
+                problem = " ".join(str(e).split()) or type(e).__name__
+        if problem is not None:
+            entry["status"] = "damaged"
+            entry["figures"] = {"problem": problem}
         out.append(entry)
     return out
 
@@ -948,6 +1133,31 @@ def _design_for(room: Room, meas_id: str | None, before: Path) -> Path | None:
     return older[-1].path if older else None
 
 
+def _contain_design_inputs(design_dir: Path, manifest: dict[str, Any], settings: Any) -> None:
+    """Refuse to read a calibration or target file a design's manifest names unless it lies
+    inside the design's room folder and matches the SHA-256 the manifest recorded for it."""
+    from roomcorr.export import sha256_of
+    from roomcorr.settings import find_preset
+
+    room = find_room(design_dir)
+    recorded = {
+        str(e.get("role")): e
+        for e in manifest.get("inputs", []) or []
+        if isinstance(e, dict) and isinstance(e.get("sha256"), str)
+    }
+    for role in ("calibration", "target"):
+        spec = getattr(settings.design, role)
+        if not spec or (role == "target" and find_preset(str(spec)) is not None):
+            continue
+        p = Path(str(spec))
+        where = f"{design_dir / 'manifest.json'}: {role} {spec}"
+        if room is None or is_link_or_outside(p.resolve(), room.root):
+            raise OutputError(f"{where}: lies outside the room folder; not read")
+        entry = recorded.get(role)
+        if entry is None or not p.is_file() or sha256_of(p) != entry["sha256"]:
+            raise OutputError(f"{where}: missing or changed since the design (SHA-256)")
+
+
 def _fit_check(design_dir: Path, irs_b, fs_b: int) -> dict[str, Any]:
     """Old filters (from ``design_dir``) vs a fresh design on the new measurement."""
     import numpy as np
@@ -957,9 +1167,12 @@ def _fit_check(design_dir: Path, irs_b, fs_b: int) -> dict[str, Any]:
     from roomcorr.pipeline import run_design
     from roomcorr.settings import settings_from_dict
 
+    room = find_room(design_dir)
+    verified(room, design_dir, [design_dir / "manifest.json", design_dir / "design.npz"])
     old = load_design_curves(design_dir)
     manifest = read_manifest(design_dir)
     settings = settings_from_dict(manifest.get("settings", {}), source=str(design_dir))
+    _contain_design_inputs(design_dir, manifest, settings)
     rates = sorted(old["firs"])
     if not rates:
         return {"available": False, "reason": f"{design_dir}: holds no FIR filters"}
@@ -994,12 +1207,18 @@ def _resolve_set(room: Room | None, ref: Any) -> tuple[Path, list[Path]]:
     """(the measurement's folder or first file, its IR files) for a run id, folder, WAV
     file, comma-separated WAV files or a list of them."""
     if isinstance(ref, str) and "," in ref and not Path(ref).exists():
-        ref = [x for x in ref.split(",") if x.strip()]
+        ref = [x.strip() for x in ref.split(",") if x.strip()]
     if isinstance(ref, list | tuple):
+        if not ref:
+            raise InputFileError("compare: a measurement was given as commas only; name WAV files")
         files = [f for item in ref for f in measurement_files(item)]
+        for f in files:
+            verified(room, f.parent, [f])
         return Path(ref[0]), files
     p = resolve_run(room, ref)
-    return p, measurement_files(p)
+    files = measurement_files(p)
+    verified(room, p, files)
+    return p, files
 
 
 def compare_measurements(
@@ -1037,7 +1256,11 @@ def compare_measurements(
     if a is None or b is None:
         if room is None:
             raise InputFileError("compare: give two measurements (folders or IR files)")
-        runs = list_runs(room, "measurement", include_incomplete=False)
+        runs = [
+            r
+            for r in list_runs(room, "measurement", include_incomplete=False)
+            if check_run(r, []) is None  # damaged runs are skipped (history names them)
+        ]
         if len(runs) < 2:
             raise InputFileError(
                 f"{room.measurements_dir}: {len(runs)} complete measurement(s); compare needs "
@@ -1075,8 +1298,8 @@ def compare_measurements(
         else:
             try:
                 fit = _fit_check(design, irs_b, fs_b)
-            except (OutputError, SettingsError, InputFileError) as exc:
-                fit = {"available": False, "reason": str(exc)}
+            except RoomcorrError as exc:
+                fit = {"available": False, "reason": " ".join(str(exc).split())}
     res["filter_fit"] = fit
     return res
 

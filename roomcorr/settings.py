@@ -19,12 +19,13 @@ naming the key. Preset names (files in ``presets/``) can stand for a path.
 from __future__ import annotations
 
 import dataclasses
-import math
+import re
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+from roomcorr.checked import checked_number, read_regular_bytes, regular_file
 from roomcorr.errors import SettingsError
 
 #: Version of the settings-file layout written and understood by this release.
@@ -126,41 +127,96 @@ def preset_names() -> list[str]:
     return sorted(p.stem for p in presets_dir().glob("*.toml"))
 
 
+#: A preset name: letters, digits, ``-`` and ``_`` only (no separators, no dots).
+_PRESET_NAME = re.compile(r"[A-Za-z0-9][A-Za-z0-9_-]*")
+
+
+def is_preset_name(spec: str) -> bool:
+    """True if ``spec`` has the form of a preset name (never of a path)."""
+    return bool(_PRESET_NAME.fullmatch(spec))
+
+
 def find_preset(name: str) -> Path | None:
-    """Return the preset file called ``name``, or ``None``."""
-    p = presets_dir() / f"{name}.toml"
-    return p if p.is_file() else None
+    """Return the bundled preset called ``name``, or ``None``.
+
+    Only a plain name (:func:`is_preset_name`) can name a preset, and the file
+    found must lie inside the presets folder: ``../pyproject`` is never a preset.
+    """
+    if not is_preset_name(name):
+        return None
+    folder = presets_dir().resolve()
+    p = (folder / f"{name}.toml").resolve()
+    if p.parent != folder or not p.is_file():
+        return None
+    return p
 
 
 def read_toml(path: str | Path) -> dict[str, Any]:
-    """Read a TOML file, turning every failure into a :class:`SettingsError`."""
+    """Read a TOML file, turning every failure into a :class:`SettingsError`.
+
+    Only regular files are opened (a FIFO would block for ever).
+    """
     p = Path(path)
+    raw = read_regular_bytes(p, "settings file", SettingsError)
     try:
-        with open(p, "rb") as fh:
-            return tomllib.load(fh)
-    except FileNotFoundError:
-        raise SettingsError(f"{p}: settings file not found") from None
+        return tomllib.loads(raw.decode("utf-8-sig"))
+    except UnicodeDecodeError:
+        raise SettingsError(f"{p}: not valid TOML (not UTF-8 text)") from None
     except tomllib.TOMLDecodeError as exc:
         raise SettingsError(f"{p}: not valid TOML ({exc})") from None
-    except OSError as exc:
-        raise SettingsError(f"{p}: cannot read ({exc.strerror})") from None
 
 
 _DESIGN_FIELDS = {f.name: f for f in dataclasses.fields(DesignSettings)}
 
+#: Range of every numeric design setting (inclusive), checked finite as well.
+NUMBER_RANGES: dict[str, tuple[float, float, str]] = {
+    "band_lo_hz": (10.0, 24000.0, "Hz"),
+    "band_hi_hz": (10.0, 24000.0, "Hz"),
+    "max_boost_db": (0.0, BOOST_LIMIT_DB, "dB"),
+    "max_cut_db": (0.0, CUT_LIMIT_DB, "dB"),
+    "taps": (256, 262144, "taps"),
+    "ceiling_db": (-40.0, GAIN_CEILING_LIMIT_DB, "dB"),
+    "position_weights": (0.0, 1e6, ""),
+    "iir_sections": (1, 32, "sections"),
+    "iir_freq_range_hz": (10.0, 24000.0, "Hz"),
+    "iir_gain_range_db": (-CUT_LIMIT_DB, BOOST_LIMIT_DB, "dB"),
+    "iir_q_range": (0.05, 50.0, ""),
+    "temperature_c": (-30.0, 60.0, "°C"),
+    "latency_ms": (*LATENCY_RANGE_MS, "ms"),
+}
+_INTEGER_KEYS = {"taps", "iir_sections", "sample_rates"}
+_HINTS = {
+    "max_boost_db": "large boosts cost headroom and driver excursion",
+    "latency_ms": "sound through a mixed-phase filter is late by this much",
+}
 
-def _as_float(key: str, value: Any) -> float:
-    if isinstance(value, bool) or not isinstance(value, int | float):
+
+def _num(key: str, value: Any) -> float:
+    """One design number, finite and in :data:`NUMBER_RANGES` (any type refused but numbers)."""
+    if isinstance(value, str):  # numbers in a settings file are TOML numbers, not text
         raise SettingsError(f"design.{key}: expected a number, got {value!r}")
-    return float(value)
+    lo, hi, unit = NUMBER_RANGES.get(key, (None, None, ""))
+    return checked_number(
+        value,
+        f"design.{key}",
+        lo,
+        hi,
+        integer=key in _INTEGER_KEYS,
+        unit=unit,
+        hint=_HINTS.get(key, ""),
+    )
 
 
 def _coerce(key: str, value: Any) -> Any:
     default = getattr(DesignSettings(), key)
     if key in ("band_lo_hz", "band_hi_hz"):
-        return None if value in (None, "auto") else _as_float(key, value)
+        return None if value in (None, "auto") else float(_num(key, value))
     if key in ("calibration",):
-        return None if value in (None, "") else str(value)
+        if value in (None, ""):
+            return None
+        if not isinstance(value, str):
+            raise SettingsError(f"design.calibration: expected a file name, got {value!r}")
+        return value
     if key == "target":
         if not isinstance(value, str) or not value:
             raise SettingsError(f"design.target: expected a preset name or file, got {value!r}")
@@ -168,9 +224,7 @@ def _coerce(key: str, value: Any) -> Any:
     if key == "taps":
         if value in (None, "auto"):
             return None
-        if isinstance(value, bool) or not isinstance(value, int):
-            raise SettingsError(f"design.taps: expected a whole number, got {value!r}")
-        return int(value)
+        return int(_num(key, value))
     if key == "phase":
         if value not in PHASE_CHOICES:
             raise SettingsError(
@@ -182,90 +236,82 @@ def _coerce(key: str, value: Any) -> Any:
             raise SettingsError(f"design.{key}: expected true or false, got {value!r}")
         return value
     if key == "iir_sections":
-        if isinstance(value, bool) or not isinstance(value, int):
-            raise SettingsError(f"design.iir_sections: expected a whole number, got {value!r}")
-        return int(value)
+        return int(_num(key, value))
     if key == "sample_rates":
-        if isinstance(value, int):
+        if isinstance(value, int | float) and not isinstance(value, bool):
             value = [value]
         if not isinstance(value, list | tuple) or not value:
             raise SettingsError("design.sample_rates: expected a list of rates in Hz")
-        return tuple(int(_as_float(key, v)) for v in value)
+        return tuple(int(_num(key, v)) for v in value)
     if key == "position_weights":
         if value is None:
             return None
         if not isinstance(value, list | tuple) or not value:
             raise SettingsError("design.position_weights: expected a list of numbers")
-        return tuple(_as_float(key, v) for v in value)
+        return tuple(float(_num(key, v)) for v in value)
     if isinstance(default, tuple):
         if not isinstance(value, list | tuple) or len(value) != 2:
             raise SettingsError(f"design.{key}: expected two numbers [low, high]")
-        return (_as_float(key, value[0]), _as_float(key, value[1]))
-    return _as_float(key, value)
+        return (float(_num(key, value[0])), float(_num(key, value[1])))
+    return float(_num(key, value))
 
 
 def validate_design(d: DesignSettings) -> DesignSettings:
-    """Check ranges and relations; raise :class:`SettingsError` naming the key."""
-    if not 0.0 <= d.max_boost_db <= BOOST_LIMIT_DB:
-        raise SettingsError(
-            f"design.max_boost_db = {d.max_boost_db:g}: must lie between 0 and "
-            f"{BOOST_LIMIT_DB:g} dB (large boosts cost headroom and driver excursion)"
-        )
-    if not 0.0 <= d.max_cut_db <= CUT_LIMIT_DB:
-        raise SettingsError(
-            f"design.max_cut_db = {d.max_cut_db:g}: must lie between 0 and {CUT_LIMIT_DB:g} dB"
-        )
+    """Check ranges and relations; raise :class:`SettingsError` naming the key.
+
+    Every number is checked finite and in range (:data:`NUMBER_RANGES`) here
+    too, so settings built in code cannot carry ``NaN`` past the checks.
+    """
+    _num("max_boost_db", d.max_boost_db)
+    _num("max_cut_db", d.max_cut_db)
     for key in ("band_lo_hz", "band_hi_hz"):
         v = getattr(d, key)
-        if v is not None and not 10.0 <= v <= 24000.0:
-            raise SettingsError(f"design.{key} = {v:g}: must lie between 10 Hz and 24 kHz")
+        if v is not None:
+            _num(key, v)
     if d.band_lo_hz is not None and d.band_hi_hz is not None and d.band_lo_hz >= d.band_hi_hz:
         raise SettingsError("design.band_lo_hz must be below design.band_hi_hz")
-    if d.taps is not None and not 256 <= d.taps <= 262144:
-        raise SettingsError(f"design.taps = {d.taps}: must lie between 256 and 262144")
-    bad = [r for r in d.sample_rates if r not in SUPPORTED_RATES]
+    if d.taps is not None:
+        _num("taps", d.taps)
+    if not d.sample_rates:
+        raise SettingsError("design.sample_rates: expected a list of rates in Hz")
+    bad = [r for r in d.sample_rates if not isinstance(r, int) or r not in SUPPORTED_RATES]
     if bad:
         raise SettingsError(
             f"design.sample_rates: {bad[0]} Hz is not supported; choose from "
             + ", ".join(str(r) for r in SUPPORTED_RATES)
         )
     d.sample_rates = tuple(sorted(set(d.sample_rates)))
-    if d.ceiling_db > 0.0 and not d.allow_gain:
+    if not isinstance(d.allow_gain, bool):
+        raise SettingsError(f"design.allow_gain: expected true or false, got {d.allow_gain!r}")
+    ceiling = checked_number(d.ceiling_db, "design.ceiling_db")  # finite before any '>'
+    if ceiling > 0.0 and not d.allow_gain:
         raise SettingsError(
-            f"design.ceiling_db = {d.ceiling_db:g}: a ceiling above 0 dB needs allow_gain "
+            f"design.ceiling_db = {ceiling:g}: a ceiling above 0 dB needs allow_gain "
             "(--allow-gain); filters with gain can clip and overload amplifiers"
         )
-    if d.ceiling_db > GAIN_CEILING_LIMIT_DB or d.ceiling_db < -40.0:
-        raise SettingsError(
-            f"design.ceiling_db = {d.ceiling_db:g}: must lie between -40 and "
-            f"{GAIN_CEILING_LIMIT_DB:g} dB"
-        )
-    if d.position_weights is not None and any(w < 0 for w in d.position_weights):
-        raise SettingsError("design.position_weights: weights must not be negative")
-    if d.position_weights is not None and sum(d.position_weights) <= 0:
-        raise SettingsError("design.position_weights: at least one weight must be positive")
-    if not 1 <= d.iir_sections <= 32:
-        raise SettingsError(f"design.iir_sections = {d.iir_sections}: must lie between 1 and 32")
-    lo, hi = d.iir_freq_range_hz
-    if not 10.0 <= lo < hi <= 24000.0:
+    _num("ceiling_db", ceiling)
+    if d.position_weights is not None:
+        if not d.position_weights:
+            raise SettingsError("design.position_weights: expected a list of numbers")
+        for w in d.position_weights:
+            _num("position_weights", w)
+        if not sum(d.position_weights) > 0:
+            raise SettingsError("design.position_weights: at least one weight must be positive")
+    _num("iir_sections", d.iir_sections)
+    lo, hi = (_num("iir_freq_range_hz", v) for v in d.iir_freq_range_hz)
+    if not lo < hi:
         raise SettingsError("design.iir_freq_range_hz: expected 10 <= low < high <= 24000")
-    glo, ghi = d.iir_gain_range_db
+    glo, ghi = (_num("iir_gain_range_db", v) for v in d.iir_gain_range_db)
     if not glo < ghi:
         raise SettingsError("design.iir_gain_range_db: expected low < high")
     d.iir_gain_range_db = (glo, min(ghi, d.max_boost_db))
-    qlo, qhi = d.iir_q_range
-    if not 0.05 <= qlo < qhi <= 50.0:
+    qlo, qhi = (_num("iir_q_range", v) for v in d.iir_q_range)
+    if not qlo < qhi:
         raise SettingsError("design.iir_q_range: expected 0.05 <= low < high <= 50")
-    lat_lo, lat_hi = LATENCY_RANGE_MS
-    if not (math.isfinite(d.latency_ms) and lat_lo <= d.latency_ms <= lat_hi):
-        raise SettingsError(
-            f"design.latency_ms = {d.latency_ms:g}: must lie between {lat_lo:g} and "
-            f"{lat_hi:g} ms (sound through a mixed-phase filter is late by this much)"
-        )
+    d.latency_ms = _num("latency_ms", d.latency_ms)
     if d.phase not in PHASE_CHOICES:
         raise SettingsError(f"design.phase: expected one of {', '.join(PHASE_CHOICES)}")
-    if not -30.0 <= d.temperature_c <= 60.0:
-        raise SettingsError(f"design.temperature_c = {d.temperature_c:g}: expected -30 to 60 °C")
+    _num("temperature_c", d.temperature_c)
     return d
 
 
@@ -281,8 +327,31 @@ def design_from_dict(values: dict[str, Any], base: DesignSettings | None = None)
     return validate_design(d)
 
 
-def settings_from_dict(data: dict[str, Any], source: str = "settings") -> Settings:
-    """Build :class:`Settings` from a parsed TOML mapping."""
+def resolve_relative_paths(d: DesignSettings, base_dir: str | Path) -> DesignSettings:
+    """Make the file names of a settings file (calibration, target) relative to its folder.
+
+    A target that is a bundled preset's name stays a name; any other target or
+    calibration given as a relative path is joined to ``base_dir`` (the
+    settings file's own folder), so a settings file means the same wherever
+    roomcorr is started from.
+    """
+    base = Path(base_dir).resolve()
+    if d.calibration and not Path(d.calibration).is_absolute():
+        d.calibration = str(base / d.calibration)
+    if d.target and find_preset(d.target) is None and not Path(d.target).is_absolute():
+        d.target = str(base / d.target)
+    return d
+
+
+def settings_from_dict(
+    data: dict[str, Any], source: str = "settings", base_dir: str | Path | None = None
+) -> Settings:
+    """Build :class:`Settings` from a parsed TOML mapping.
+
+    ``base_dir`` is the folder of the file the mapping came from: relative
+    calibration and target paths are resolved against it
+    (:func:`resolve_relative_paths`).
+    """
     version = data.get("settings_version", SETTINGS_VERSION)
     if not isinstance(version, int) or version > SETTINGS_VERSION or version < 1:
         raise SettingsError(
@@ -300,15 +369,23 @@ def settings_from_dict(data: dict[str, Any], source: str = "settings") -> Settin
         d = design_from_dict(design)
     except SettingsError as exc:
         raise SettingsError(f"{source}: {exc}") from None
+    if base_dir is not None:
+        d = resolve_relative_paths(d, base_dir)
     return Settings(design=d, measure=dict(measure))
 
 
 def load_settings(path: str | Path) -> Settings:
-    """Load a settings file; a bare preset name finds the bundled preset."""
+    """Load a settings file; a bare preset name finds the bundled preset.
+
+    The file must be a regular file; relative paths inside it are relative to
+    its own folder.
+    """
     p = Path(path)
-    if not p.exists() and p.suffix == "" and find_preset(str(path)) is not None:
-        p = find_preset(str(path))  # type: ignore[assignment]
-    return settings_from_dict(read_toml(p), source=str(p))
+    preset = find_preset(str(path))
+    if preset is not None and not p.exists():
+        p = preset
+    regular_file(p, "settings file", SettingsError)
+    return settings_from_dict(read_toml(p), source=str(p), base_dir=p.parent)
 
 
 def settings_to_dict(settings: Settings) -> dict[str, Any]:

@@ -66,9 +66,10 @@ def test_failure_midway_leaves_nothing(tmp_path, result, monkeypatch):
         return real(*a, **k)
 
     monkeypatch.setattr(export, "write_wav", flaky)
-    with pytest.raises(OSError):
+    with pytest.raises(OutputError, match="cannot write the design"):
         write_design(result, tmp_path / "d")
     assert not (tmp_path / "d").exists()
+    assert list(tmp_path.iterdir()) == []  # no staging folder left either
 
 
 def test_replace_needed_and_removes_stale(tmp_path, result):

@@ -5,6 +5,7 @@ from __future__ import annotations
 import csv
 import hashlib
 import json
+import re
 
 import numpy as np
 import pytest
@@ -129,3 +130,89 @@ def test_with_the_fir_pipeline(tmp_path, ir_set):
     # (the FIR itself follows the curve closely).
     s = iir.stats[0]
     assert abs(s.rms_error_fir_db - s.rms_error_db) < 0.5
+
+
+def test_table_is_sorted_by_frequency_and_csv_keeps_cascade_order(folder, design):
+    out, _ = folder
+    for ch in design.channels:
+        secs = ch.sections[48000]
+        rows = [ln.split() for ln in (out / f"iir/48000/{ch.name}.txt").read_text().splitlines()
+                if ln[:3].strip().isdigit()]
+        freqs = [float(r[2]) for r in rows]
+        assert freqs == sorted(freqs)
+        # '#' is the cascade stage: each row names the section at that place in the CSV
+        for r in rows:
+            s = secs[int(r[0]) - 1]
+            assert float(r[2]) == pytest.approx(s.f0_hz, abs=0.005)
+            assert float(r[4]) == pytest.approx(s.q, abs=5e-4)
+        with open(out / f"iir/48000/{ch.name}.csv", newline="") as fh:
+            stages = [row for row in csv.reader(fh)][2:]
+        assert [row[1] for row in stages] == [s.kind for s in secs]
+        assert [int(row[0]) for row in stages] == list(range(1, len(secs) + 1))
+
+
+@pytest.fixture(scope="module")
+def demo_iir(tmp_path_factory):
+    """The demo room's design with biquads: its cascades hold narrow sections by refused dips."""
+    from conftest import REPO
+
+    from roomcorr.audio_io import read_ir_set
+    from roomcorr.design.iir_fit import design_iir
+    from roomcorr.pipeline import run_design
+    from roomcorr.settings import Settings, design_from_dict
+
+    irs, fs, _ = read_ir_set([REPO / "measurements_demo"])
+    result = run_design(irs, fs, Settings(design=design_from_dict({"sample_rates": [48000]})))
+    out = tmp_path_factory.mktemp("demo_iir")
+    export.write_design(result, out)
+    iir = design_iir(result)
+    write_iir(iir, out, fir=result)
+    return out, result, iir
+
+
+def test_both_pre_gains_are_stated(demo_iir):
+    out, result, iir = demo_iir
+    doc = json.loads((out / "iir/48000/left.json").read_text())
+    assert doc["pre_gain_db"] == pytest.approx(iir.pre_gain_db)
+    assert doc["fir_pre_gain_db"] == pytest.approx(result.pre_gain_db)
+    text = (out / "iir/48000/left.txt").read_text()
+    assert f"{iir.pre_gain_db:.2f} dB for these biquads" in text
+    assert f"the FIR files use {result.pre_gain_db:.2f} dB" in text
+    assert "own" in doc["pre_gain_note"]
+
+
+def test_narrow_sections_beside_refused_dips_are_explained(demo_iir):
+    from roomcorr.export_iir import BESIDE_OCT, HIGH_Q
+    from roomcorr.report.summary import WITHHELD_NOTABLE_DB
+
+    out, result, iir = demo_iir
+    explained = 0
+    for ch in iir.channels:
+        doc = json.loads((out / f"iir/48000/{ch.name}.json").read_text())
+        fch = result.channels[ch.index]
+        refused = fch.boost_withheld_db > WITHHELD_NOTABLE_DB
+        for i, s in enumerate(ch.sections[48000], start=1):
+            near = refused & (np.abs(np.log2(result.freq_hz / s.f0_hz)) <= BESIDE_OCT)
+            noted = any(n.startswith(f"Section {i} ") for n in doc["notes"])
+            if s.kind == "peaking" and s.q >= HIGH_Q and near.any():
+                assert noted, (ch.name, i, s)
+                explained += 1
+        for note in doc["notes"]:
+            assert "refused" in note
+            # the figure a note states is the cascade's largest rise above the designed
+            # correction inside that dip, recomputed here with scipy's sosfreqz
+            i = int(note.split()[1])
+            lo, hi = (float(x) for x in re.search(r"dip at (\d+)-(\d+) Hz", note).groups())
+            rise = float(re.search(r"(?:at most|up to) (\d+\.\d) dB", note).group(1))
+            m = (result.freq_hz >= lo - 0.5) & (result.freq_hz <= hi + 0.5)
+            c = ch.coeffs[48000]
+            sos = np.c_[c[:, :3], np.ones(len(c)), c[:, 3:]]
+            _, h = sosfreqz(sos, worN=result.freq_hz[m], fs=48000)
+            got = max(float(np.max(20 * np.log10(np.abs(h)) - fch.correction_db[m])), 0.0)
+            assert abs(got - rise) <= 0.15, (note, got)
+            withheld = float(re.search(r"where (\d+\.\d) dB of boost", note).group(1))
+            assert ("not filled" in note) == (rise < 0.5 * withheld), note
+            assert 1 <= i <= len(ch.sections[48000])
+        text = (out / f"iir/48000/{ch.name}.txt").read_text()
+        assert ("Narrow sections beside refused dips" in text) == bool(doc["notes"])
+    assert explained >= 2  # the demo room has several (a check that can fail)

@@ -249,8 +249,11 @@ def test_every_section_and_figure_present(design_folder):
     out, path, _ = design_folder
     assert path == out / "report.html"
     page = path.read_text(encoding="utf-8")
-    for sid in ["overview", "quality", "safety"] + [f"{s}-mono" for s in CHANNEL_SECTIONS]:
+    for sid in ["overview", "quality", "safety"] + CHANNEL_SECTIONS:
         assert f'<section id="{sid}">' in page, sid
+    for s in CHANNEL_SECTIONS:  # one column per channel inside each per-channel section
+        body = page.split(f'<section id="{s}">')[1].split("</section>")[0]
+        assert f'<div class="channel" id="{s}-mono" data-channel="mono">' in body, s
     keys = re.findall(r'data-figure="([^"]+)"', page)
     # the quality figure comes from measurement.json beside the design's source IRs
     assert keys == [f"mono-{s}" for s in CHANNEL_SECTIONS] + ["quality"]
@@ -356,6 +359,130 @@ def test_renders_in_headless_chromium(design_folder, tmp_path):
     differs = np.any(np.abs(img - background) > 0.1, axis=-1)
     assert differs.mean() > 0.05
     assert img.std() > 0.05
+
+
+def _stereo_room(n_pos=2, dur_s=0.6):
+    """Two loudspeakers of the invented room: the second one's modes and wall sit elsewhere."""
+    left = _synthetic_room(n_pos, dur_s, seed=5)
+    right = np.roll(_synthetic_room(n_pos, dur_s, seed=6), 7, axis=-1)
+    right[..., :7] = 0.0
+    return np.concatenate([left, 0.8 * right], axis=1)
+
+
+@pytest.fixture(scope="module")
+def stereo_folder(tmp_path_factory):
+    from roomcorr.design.iir_fit import design_iir
+    from roomcorr.export import write_design
+    from roomcorr.export_iir import write_iir
+    from roomcorr.pipeline import run_design
+    from roomcorr.settings import DesignSettings, Settings
+
+    out = tmp_path_factory.mktemp("stereo") / "out"
+    settings = Settings(design=DesignSettings(sample_rates=(48000,), iir=True), measure={})
+    result = run_design(_stereo_room(), FS, settings)
+    write_design(result, out)
+    write_iir(design_iir(result), out, fir=result)
+    run = subprocess.run(
+        [sys.executable, "-m", "roomcorr", "report", str(out)],
+        capture_output=True, text=True, timeout=300, env=_ENV,
+    )
+    assert run.returncode == 0, run.stderr
+    return out
+
+
+#: Injected into a copy of the page only (the report itself carries no script): reads the
+#: layout the browser computed and leaves it in the DOM for --dump-dom.
+_MEASURE_JS = """<script>
+window.addEventListener('load', function () {
+  var figs = [].slice.call(document.querySelectorAll('figure img')).map(function (i) {
+    var r = i.getBoundingClientRect();
+    return {key: i.parentNode.getAttribute('data-figure'), width: r.width,
+            natural: i.naturalWidth, top: r.top + window.scrollY, left: r.left};
+  });
+  var pre = document.createElement('pre');
+  pre.id = 'layout';
+  pre.textContent = JSON.stringify({height: document.documentElement.scrollHeight, figs: figs});
+  document.body.appendChild(pre);
+});
+</script>"""
+
+
+def _browser_layout(page: Path, tmp_path: Path, width_px: int) -> dict:
+    exe = _chromium()
+    if exe is None:
+        if os.environ.get("CI") == "true":
+            pytest.fail("chromium is not installed (the CI script must install it)")
+        pytest.skip("chromium not installed")
+    probe = tmp_path / "probe.html"
+    probe.write_text(page.read_text(encoding="utf-8").replace("</body>", _MEASURE_JS + "</body>"),
+                     encoding="utf-8")
+    cmd = [
+        exe, "--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
+        "--disable-background-networking", "--disable-component-update", "--disable-sync",
+        f"--user-data-dir={tmp_path / 'profile'}", f"--window-size={width_px},1000",
+        "--virtual-time-budget=10000", "--dump-dom", probe.resolve().as_uri(),
+    ]
+    r = subprocess.run(cmd, capture_output=True, text=True, timeout=120, check=False)
+    m = re.search(r'<pre id="layout">(.*?)</pre>', r.stdout, re.S)
+    assert m, "chromium did not report the layout"
+    import html as _html
+
+    return json.loads(_html.unescape(m.group(1)))
+
+
+def test_two_channels_side_by_side_with_readable_legends(stereo_folder, tmp_path):
+    from roomcorr.report.figures import LEGEND_PT
+
+    layout = _browser_layout(stereo_folder / "report.html", tmp_path, 1400)
+    figs = {f["key"]: f for f in layout["figs"]}
+    for s in CHANNEL_SECTIONS:
+        left, right = figs[f"left-{s}"], figs[f"right-{s}"]
+        # side by side: the right channel's figure sits to the right, on the same row band
+        assert right["left"] > left["left"] + left["width"] - 1, s
+        assert abs(right["top"] - left["top"]) < 0.6 * right["width"], s
+    # legend text as the reader sees it: points at 90 dpi, scaled like the image on screen
+    # (1 pt = 1/72 inch, the definition of the point)
+    px = [LEGEND_PT * 90 / 72 * f["width"] / f["natural"] for f in layout["figs"]]
+    assert min(px) >= 10.0, px
+    # a two-channel page at 1400 px is far shorter than one channel after the other
+    # (about 12,000 px before; every section now takes one row of channels)
+    assert layout["height"] < 9000, layout["height"]
+    # on a narrow window the columns stack instead of shrinking the figures
+    narrow = _browser_layout(stereo_folder / "report.html", tmp_path, 700)
+    nf = {f["key"]: f for f in narrow["figs"]}
+    assert nf["right-room"]["top"] > nf["left-room"]["top"] + 100
+
+
+# ----------------------------------------------------------------------------- axis limits
+
+
+def test_level_axis_shows_deep_dips():
+    from roomcorr.report import figures as fg
+
+    f = log_grid()
+    avg = _bump(f, 100.0, -60.0, 0.02)  # a 60 dB notch: the axis must reach below it
+    fig = fg.plot_responses(f, avg[None, :], avg, np.zeros_like(f), (30.0, 16000.0), 4.0, "t")
+    lo, hi = fig.axes[0].get_ylim()
+    assert lo < np.min(avg) and hi > 0
+
+
+def test_filter_axes_follow_the_data():
+    from roomcorr.report import figures as fg
+
+    f = log_grid()
+    gain = _bump(f, 60.0, -35.0, 0.05)
+    gd = 120.0 * np.exp(-0.5 * (np.log2(f / 60.0) / 0.05) ** 2) - 50.0 * (f < 30)
+    fig = fg.plot_filter(f, gain, np.zeros_like(f), gd, gain, np.zeros_like(f),
+                         (30.0, 16000.0), 0.0, 48000, "t")
+    g_lo, _ = fig.axes[0].get_ylim()
+    d_lo, d_hi = fig.axes[2].get_ylim()
+    assert g_lo < -35.0
+    assert d_hi > 120.0 and d_lo < -50.0
+    # with caps: an absurd value does not squash the rest
+    gd[np.searchsorted(f, 1000.0)] = 1e6
+    fig = fg.plot_filter(f, gain, np.zeros_like(f), gd, gain, np.zeros_like(f),
+                         (30.0, 16000.0), 0.0, 48000, "t")
+    assert fig.axes[2].get_ylim()[1] == fg.GROUP_DELAY_AXIS_MS[1]
 
 
 # ----------------------------------------------------------------------------- command line

@@ -71,7 +71,7 @@ def test_design_run_report_compares_with_the_earlier_measurement(room_runs):
     assert '<section id="compare">' in page
     # placed right after the overview, listed in the navigation
     assert page.index('<section id="overview">') < page.index('<section id="compare">')
-    assert page.index('<section id="compare">') < page.index('<section id="room-left">')
+    assert page.index('<section id="compare">') < page.index('<section id="room">')
     assert 'href="#compare"' in page
     assert 'data-figure="compare"' in page
     png = design / "report" / "compare.png"

@@ -1,13 +1,17 @@
 """Safety rules applied to every filter before export.
 
 * One common pre-gain for all channels and rates, so the channel balance
-  stays: chosen so that no filter's peak gain (20 Hz to 20 kHz) exceeds the
-  ceiling (0 dB unless the user explicitly allows gain). If every filter
+  stays: chosen so that no filter's peak gain exceeds the ceiling (0 dB
+  unless the user explicitly allows gain). Peak gain is evaluated over the
+  whole band the filter passes, from DC to Nyquist (:data:`PEAK_BAND`), not
+  only over the audible band: gain at 15 Hz costs driver excursion and gain
+  at 22 kHz can clip a DAC as surely as gain at 1 kHz. If every filter
   already sits below the ceiling, no make-up gain is added.
 * Worst-case gain, 20 log10 sum |h|, is reported for every filter: the
   largest output a full-scale input of any waveform could produce.
-* A filter whose boost (gain above the pre-gain, inside 20 Hz to 20 kHz)
-  exceeds the boost cap by more than ``BOOST_TOLERANCE_DB`` is refused.
+* A filter whose boost (gain above the pre-gain, anywhere from DC to
+  Nyquist) exceeds the boost cap by more than ``BOOST_TOLERANCE_DB`` is
+  refused.
 """
 
 from __future__ import annotations
@@ -23,6 +27,9 @@ from roomcorr.errors import SafetyError
 BOOST_TOLERANCE_DB = 0.3
 #: Allowed excess over the ceiling after the pre-gain (rounding), dB.
 CEILING_TOLERANCE_DB = 0.01
+
+#: Where peak gain and boost are evaluated (stated in the manifest and the report).
+PEAK_BAND = "DC to Nyquist"
 
 CAUTIONS = (
     "Caution: start playback quietly and raise the volume slowly; protect your hearing.",
@@ -41,6 +48,16 @@ class FilterStats:
     peak_gain_db: float
     worst_case_gain_db: float
     max_boost_db: float
+
+
+def full_band_peak_gain_db(h: np.ndarray, fs: float) -> float:
+    """Largest gain in dB of FIR ``h`` anywhere from DC to Nyquist (:data:`PEAK_BAND`).
+
+    :func:`roomcorr.design.fir.peak_gain_db` over ``0 .. fs/2``: every bin of
+    a zero-padded FFT (at least 8x the filter length), DC and Nyquist included,
+    refined around the highest maxima by a chirp-z zoom.
+    """
+    return peak_gain_db(h, fs, 0.0, fs / 2.0)
 
 
 def common_pre_gain_db(peaks_db: list[float], ceiling_db: float) -> float:
@@ -72,8 +89,14 @@ def apply_safety(
     SafetyError
         If a filter would break the boost cap or the ceiling.
     """
+    if not (np.isfinite(ceiling_db) and np.isfinite(max_boost_db)):
+        raise SafetyError(  # settings are checked before this; never trust NaN here either
+            f"ceiling {ceiling_db} dB / boost cap {max_boost_db} dB: not finite numbers"
+        )
     peaks = {
-        (fs, ch): peak_gain_db(h[ch], fs) for fs, h in firs.items() for ch in range(h.shape[0])
+        (fs, ch): full_band_peak_gain_db(h[ch], fs)
+        for fs, h in firs.items()
+        for ch in range(h.shape[0])
     }
     pre = common_pre_gain_db(list(peaks.values()), ceiling_db)
     scale = 10 ** (pre / 20)
@@ -85,12 +108,12 @@ def apply_safety(
         for ch in range(h.shape[0]):
             peak = peaks[(fs, ch)] + pre
             boost = peaks[(fs, ch)]
-            if boost > max_boost_db + BOOST_TOLERANCE_DB:
+            if not boost <= max_boost_db + BOOST_TOLERANCE_DB:  # NaN fails too
                 raise SafetyError(
                     f"channel {ch + 1} at {fs} Hz would boost {boost:.1f} dB, above the "
                     f"{max_boost_db:g} dB cap; nothing was written"
                 )
-            if peak > ceiling_db + CEILING_TOLERANCE_DB:
+            if not peak <= ceiling_db + CEILING_TOLERANCE_DB:
                 raise SafetyError(
                     f"channel {ch + 1} at {fs} Hz peaks at {peak:+.2f} dB, above the "
                     f"{ceiling_db:+g} dB ceiling; nothing was written"

@@ -378,7 +378,7 @@ def _wait(
     state: dict,
     n_total: int,
     progress: Progress | None,
-    stall_s: float = 3.0,
+    stall_s: float = 10.0,
 ) -> None:
     """Wait for ``done``; report progress; give up when the position stops moving."""
     last, still = -1, 0.0

@@ -30,6 +30,7 @@ from roomcorr.measure import quality as q
 from roomcorr.measure import timing as tm
 from roomcorr.measure.settings import LEVEL_CAP_DBFS, MeasureSettings
 from roomcorr.measure.sweep import Sweep, synchronized_sweep
+from roomcorr.room import refuse_finished_run
 
 RECORD_NAME = "measurement.json"
 PLAYBACK_NAME = "playback.wav"  # the exact signal played per loudspeaker (in raw/)
@@ -472,6 +473,7 @@ def run_measurement(
 
     ms.validate()
     out = Path(out_dir)
+    refuse_finished_run(out)
     layout = sweep_layout(ms)
     unfinished = (out / RECORD_NAME).is_file()
     if out.exists() and any(out.iterdir()) and not (replace or resume):
@@ -934,6 +936,7 @@ def deconvolve_file(
     if align:
         figures["aligned"] = ALIGN_NOTE
     dest = Path(out_path) if out_path else rec_path.with_name(rec_path.stem + "_ir.wav")
+    refuse_finished_run(dest)
     if dest.exists() and not replace:
         raise OutputError(f"{dest} exists; choose another --out or pass --replace")
     if not force:

@@ -152,6 +152,14 @@ class MeasureSettings:
         if unknown:
             raise SettingsError(f"{source}: unknown measure keys {sorted(unknown)}")
         d = dict(data)
+        from roomcorr.checked import checked_number
+
+        for f in fields(cls):  # every number finite (NaN passes every '>' test)
+            v = d.get(f.name)
+            if isinstance(v, float | int) and not isinstance(v, bool):
+                d[f.name] = checked_number(
+                    v, f"{source}: measure.{f.name}", integer=isinstance(v, int)
+                )
         if "outputs" in d:
             d["outputs"] = tuple(int(c) for c in d["outputs"])
         if d.get("loopback") is not None:

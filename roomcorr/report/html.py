@@ -53,14 +53,30 @@ class Figure:
 
 
 @dataclass
+class Column:
+    """One loudspeaker channel's part of a section (shown side by side with the others)."""
+
+    channel: str
+    paragraphs: list[str] = field(default_factory=list)
+    figures: list[Figure] = field(default_factory=list)
+    table: list[list[str]] | None = None  # first row is the header
+    details: tuple[str, list[str]] | None = None  # (summary, paragraphs): folded away
+
+
+@dataclass
 class Section:
-    """One section of the page."""
+    """One section of the page: text, table and figures, then one column per channel."""
 
     id: str
     title: str
     paragraphs: list[str] = field(default_factory=list)
     figures: list[Figure] = field(default_factory=list)
     table: list[list[str]] | None = None  # first row is the header
+    columns: list[Column] = field(default_factory=list)
+
+    def all_figures(self) -> list[Figure]:
+        """The section's own figures, then every column's, in page order."""
+        return [*self.figures, *(f for c in self.columns for f in c.figures)]
 
 
 @dataclass
@@ -279,35 +295,48 @@ def iir_response_db(doc: dict[str, Any], freq_hz: np.ndarray) -> np.ndarray:
     return out
 
 
-def _iir_section(freq, ch, docs, fir, rate, pre_gain, band, png) -> Section:
+def _iir_column(x: _Channel, ctx: _Context) -> Column | None:
+    """The biquad version of one channel: both pre-gains, the sections by frequency, notes."""
     from roomcorr.report import figures as fg
 
-    name = str(ch["name"])
-    sec = Section(f"iir-{name}", f"{SECTION_TITLES['iir']}: {name}")
+    docs = (ctx.iir or {}).get(x.name)
+    if not docs or "correction_db" not in x.ch:
+        return None
+    freq = ctx.freq
+    col = Column(x.name)
     cascades = {int(d["sample_rate"]): iir_response_db(d, freq) for d in docs}
-    fir_db = filter_response(fir, rate, freq)[0] if fir is not None else None
+    fir_db = filter_response(x.fir, x.rate, freq)[0] if x.fir is not None else None
     doc = min(docs, key=lambda d: abs(int(d["sample_rate"]) - 48000))
     figs = doc.get("figures") or {}
-    sec.paragraphs.append(
+    iir_pre = float(doc.get("pre_gain_db", 0.0))
+    col.paragraphs.append(
         f"{len(doc.get('sections') or [])} biquad sections (Audio EQ Cookbook forms) fitted to "
         "the same correction, for players that take parametric filters instead of an FIR; "
         "the table lists the sections at "
-        f"{doc['sample_rate']} Hz. Peak gain {figs.get('peak_gain_db', float('nan')):.2f} dB, "
+        f"{doc['sample_rate']} Hz by frequency (# is the stage in the .csv). Peak gain "
+        f"{figs.get('peak_gain_db', float('nan')):.2f} dB, "
         f"worst-case gain {figs.get('worst_case_gain_db', float('nan')):.2f} dB, fit error "
         f"{figs.get('fit_rms_error_db', float('nan')):.2f} dB rms."
     )
-    rows = [["section", "type", "frequency (Hz)", "gain (dB)", "Q"]]
-    for i, sct in enumerate(doc.get("sections") or [], start=1):
+    from roomcorr.export_iir import pre_gain_note
+
+    col.paragraphs.append(pre_gain_note(iir_pre, ctx.pre_gain))
+    notes = [str(n) for n in doc.get("notes") or []]
+    if notes:
+        col.details = (f"Why {len(notes)} narrow section(s) sit beside refused dips", notes)
+    rows = [["#", "type", "frequency (Hz)", "gain (dB)", "Q"]]
+    secs = list(enumerate(doc.get("sections") or [], start=1))
+    for i, sct in sorted(secs, key=lambda t: (float(t[1].get("freq_hz", 0)), t[0])):
         rows.append([str(i), str(sct.get("type")), f"{float(sct.get('freq_hz', 0)):.1f}",
                      f"{float(sct.get('gain_db', 0)):.2f}", f"{float(sct.get('q', 0)):.2f}"])
-    sec.table = rows
-    sec.figures.append(
-        Figure(f"{name}-iir", f"Biquad cascade against the FIR, {name}",
-               png(fg.plot_iir(freq, cascades, fir_db,
-                               np.asarray(ch["correction_db"]) + pre_gain, band,
-                               f"Biquads: {name}")))
+    col.table = rows
+    col.figures.append(
+        Figure(f"{x.name}-iir", f"Biquad cascade against the FIR, {x.name}",
+               ctx.png(fg.plot_iir(freq, cascades, fir_db,
+                                   np.asarray(x.ch["correction_db"]) + ctx.pre_gain, x.band,
+                                   f"Biquads: {x.name}")))
     )
-    return sec
+    return col
 
 
 def _channel_sentences(block: list[str]) -> str:
@@ -401,13 +430,170 @@ def _comparison_sentence(res: dict[str, Any]) -> str:
     )
 
 
-def mixed_phase_section(
-    mixed: dict[str, Any] | None, channel: int, name: str, png: Any
-) -> Section | None:
-    """The mixed-phase section of one channel, or ``None`` for a minimum-phase design.
+def _design_caps(settings: dict[str, Any] | None) -> dict[str, Any]:
+    d = (settings or {}).get("design", {}) if isinstance(settings, dict) else {}
+    return {
+        "max_boost_db": d.get("max_boost_db"),
+        "max_cut_db": d.get("max_cut_db"),
+        "ceiling_db": d.get("ceiling_db", 0.0),
+        "allow_gain": d.get("allow_gain", False),
+    }
 
-    ``mixed`` is the ``mixed_phase`` entry of :func:`roomcorr.export.load_design_curves`.
-    """
+
+@dataclass
+class _Context:
+    """What every section of one report shares."""
+
+    freq: np.ndarray
+    fs: int
+    caps: dict[str, Any]
+    pre_gain: float
+    designed: bool
+    png: Any
+    iir: dict[str, list[dict[str, Any]]] | None
+    ringing_notes: list[str] = field(default_factory=list)
+    mixed: dict[str, Any] | None = None  # ``mixed_phase`` of load_design_curves, if any
+
+
+@dataclass
+class _Channel:
+    """One channel's curves and what is computed from them once for all sections."""
+
+    ch: dict[str, Any]
+    index: int
+    name: str
+    tag: str
+    band: tuple[float, float] | None
+    pos_irs: np.ndarray | None
+    fir: np.ndarray | None = None
+    rate: int | None = None
+    predicted: np.ndarray | None = None
+    corrected: np.ndarray | None = None
+    how: str = ""
+
+
+def _channel(curves: dict[str, Any], ch: dict[str, Any], ctx: _Context) -> _Channel:
+    c = int(ch["index"])
+    irs = curves.get("irs")
+    x = _Channel(
+        ch=ch, index=c, name=str(ch["name"]),
+        tag=f"{ch['name']} ({len(ch['measured_db'])} positions)",
+        band=tuple(ch["band_hz"]) if "band_hz" in ch else None,
+        pos_irs=None if irs is None else np.asarray(irs)[:, c],
+    )
+    if ctx.designed:
+        x.fir, x.rate = _fir_for(curves, c)
+    if x.fir is not None and x.pos_irs is not None:
+        if x.rate == ctx.fs:
+            x.predicted, x.corrected = predicted_responses(
+                x.pos_irs, ctx.fs, x.fir, ctx.freq, ch["measured_db"]
+            )
+            x.how = "each measured response convolved with the exported filter"
+        else:  # no filter at the measurement rate: apply the filter's response
+            from roomcorr.design.fir import fir_response_db
+
+            x.predicted = ch["measured_db"] + fir_response_db(x.fir, x.rate, ctx.freq)[None, :]
+            x.how = f"the {x.rate} Hz filter's response added to each measured response"
+    return x
+
+
+def _room_column(x: _Channel, ctx: _Context) -> Column | None:
+    from roomcorr.report import figures as fg
+
+    col = Column(x.name)
+    col.figures.append(
+        Figure(
+            f"{x.name}-room",
+            f"Measured response, {x.name}",
+            ctx.png(
+                fg.plot_responses(
+                    ctx.freq, x.ch["measured_db"], x.ch["average_db"], x.ch.get("target_db"),
+                    x.band, ctx.caps["max_boost_db"], f"Measured: {x.tag}",
+                )
+            ),
+        )
+    )
+    return col
+
+
+def _result_column(x: _Channel, ctx: _Context) -> Column | None:
+    from roomcorr.report import figures as fg
+
+    if x.predicted is None:
+        return None
+    col = Column(x.name)
+    col.paragraphs.append(f"Predicted from {x.how}.")
+    col.figures.append(
+        Figure(
+            f"{x.name}-result",
+            f"Predicted result, {x.name}",
+            ctx.png(fg.plot_predicted(ctx.freq, x.predicted, x.ch["average_db"],
+                                      np.asarray(x.ch["target_db"]) + ctx.pre_gain, x.band,
+                                      f"Corrected: {x.tag}", ctx.pre_gain)),
+        )
+    )
+    return col
+
+
+_REFUSAL_REASONS = {
+    "cancellation": "the dip is a cancellation that moves with the listener, "
+    "so boost would burn headroom for nothing",
+    "spread": "the positions disagree too much there",
+    "cap": "the boost cap was reached",
+}
+
+
+def _filter_column(x: _Channel, ctx: _Context) -> Column | None:
+    from roomcorr.report import figures as fg
+
+    if x.fir is None or x.predicted is None:
+        return None
+    gain, phase, gd = filter_response(x.fir, x.rate, ctx.freq)
+    col = Column(x.name)
+    col.paragraphs.append(
+        f"Minimum-phase FIR at {x.rate} Hz, {len(x.fir)} taps, pre-gain {ctx.pre_gain:.1f} dB "
+        "included."
+    )
+    regions = withheld_regions(ctx.freq, x.ch, ctx.caps["max_boost_db"])
+    for r in regions[:4]:
+        col.paragraphs.append(
+            f"Boost refused around {fmt_hz(r['freq_hz'])} "
+            f"({fmt_hz(r['lo_hz'])} to {fmt_hz(r['hi_hz'])}, "
+            f"{r['withheld_db']:.1f} dB withheld): {_REFUSAL_REASONS[r['reason']]}."
+        )
+    if not regions:
+        col.paragraphs.append("No boost was refused.")
+    col.figures.append(
+        Figure(
+            f"{x.name}-filter",
+            f"Filter magnitude, phase and group delay, {x.name}",
+            ctx.png(fg.plot_filter(ctx.freq, gain, phase, gd, x.ch["correction_db"],
+                                   x.ch["boost_withheld_db"], x.band, ctx.pre_gain, x.rate,
+                                   f"Filter: {x.name}")),
+        )
+    )
+    return col
+
+
+def _time_column(x: _Channel, ctx: _Context) -> Column | None:
+    from roomcorr.report import figures as fg
+
+    if x.corrected is None or x.fir is None or x.pos_irs is None:
+        return None
+    col = Column(x.name)
+    col.figures.append(
+        Figure(
+            f"{x.name}-time",
+            f"Impulse and step response, {x.name}",
+            ctx.png(fg.plot_time(ctx.fs, x.fir, x.pos_irs[0], x.corrected[0],
+                                 f"Time response: {x.name}")),
+        )
+    )
+    return col
+
+
+def _phase_column(x: _Channel, ctx: _Context) -> Column | None:
+    """The mixed-phase part of one channel (``None`` for a minimum-phase design)."""
     from roomcorr.design.mixedphase import (
         LATENCY_CAUTION,
         PRE_RING_LIMIT_DB,
@@ -416,13 +602,14 @@ def mixed_phase_section(
     )
     from roomcorr.report import figures as fg
 
-    if not mixed or channel >= len(mixed["channels"]):
+    mixed = ctx.mixed
+    if not mixed or x.index >= len(mixed["channels"]):
         return None
-    ch = mixed["channels"][channel]
-    sec = Section(f"phase-{name}", f"{SECTION_TITLES['phase']}: {name}")
-    sec.paragraphs.append(latency_sentence(mixed["latency_ms"], mixed["latency_samples"]))
-    lo, hi = (float(x) for x in ch["band_hz"])
-    sec.paragraphs.append(
+    ch = mixed["channels"][x.index]
+    col = Column(x.name)
+    col.paragraphs.append(latency_sentence(mixed["latency_ms"], mixed["latency_samples"]))
+    lo, hi = (float(v) for v in ch["band_hz"])
+    col.paragraphs.append(
         f"The loudspeaker's excess phase (the measured phase minus that of the minimum-phase "
         f"response with the same magnitude) was estimated from the direct sound of every "
         f"position, before the first strong reflection, and undone between {fmt_hz(lo)} and "
@@ -432,38 +619,157 @@ def mixed_phase_section(
     )
     if "view_gd_s" in ch:
         view = {k[len("view_") :]: v for k, v in ch.items() if k.startswith("view_")}
-        sec.figures.append(
+        col.figures.append(
             Figure(
-                f"{name}-phase",
-                f"Direct sound before and after, and pre-ringing, {name}",
-                png(
+                f"{x.name}-phase",
+                f"Direct sound before and after, and pre-ringing, {x.name}",
+                ctx.png(
                     fg.plot_mixed_phase(
                         view,
                         float(mixed["latency_ms"]),
                         PRE_RING_LIMIT_DB,
                         1000 * PRE_RING_S,
-                        f"Mixed phase: {name}",
+                        f"Mixed phase: {x.name}",
                     )
                 ),
             )
         )
     else:
-        sec.paragraphs.append(
+        col.paragraphs.append(
             "No filter was designed at the measurement's sample rate, so the direct sound "
             "could not be shown before and after."
         )
-    sec.paragraphs.append(LATENCY_CAUTION)
+    col.paragraphs.append(LATENCY_CAUTION)
+    return col
+
+
+def _position_decay(x: _Channel, ctx: _Context) -> list[Any]:
+    """Octave-band decay averaged over positions (empty when it cannot be analysed)."""
+    from roomcorr.analysis.decay import octave_band_decay
+
+    if x.pos_irs is None:
+        return []
+    try:
+        per_pos = [octave_band_decay(x.pos_irs[p], ctx.fs) for p in range(len(x.pos_irs))]
+    except ValueError:  # too short or silent: no decay analysis possible
+        return []
+    return _mean_band_decay(per_pos) if per_pos and per_pos[0] else []
+
+
+def _decay_column(x: _Channel, ctx: _Context) -> Column | None:
+    from roomcorr.report import figures as fg
+
+    bands = _position_decay(x, ctx)
+    if not bands:
+        return None
+    col = Column(x.name)
+    col.table = _decay_table(bands)
+    col.figures.append(
+        Figure(f"{x.name}-decay", f"Decay curves and times, {x.name}",
+               ctx.png(fg.plot_decay(bands, f"Decay: {x.name}")))
+    )
+    return col
+
+
+def _ringing_column(x: _Channel, ctx: _Context) -> Column | None:
+    from roomcorr.analysis.decay import low_frequency_decay_map, ringing_modes
+    from roomcorr.report import figures as fg
+
+    if x.pos_irs is None or not _position_decay(x, ctx):
+        return None
+    before_map = low_frequency_decay_map(x.pos_irs[0], ctx.fs)
+    modes = ringing_modes(before_map)
+    maps = [("as measured", before_map)]
+    if x.corrected is not None:
+        maps.append(("corrected", low_frequency_decay_map(x.corrected[0], ctx.fs)))
+    col = Column(x.name)
+    if modes:
+        txt = ", ".join(f"{f0:.0f} Hz ({t0:.2f} s)" for f0, t0 in modes)
+        col.paragraphs.append(
+            f"Peaks still loudest 200 ms after the sound stops (60 dB decay time): {txt}."
+        )
+        ctx.ringing_notes.append(
+            f"{x.name} around {fmt_hz(modes[0][0])} ({modes[0][1]:.2f} s to decay 60 dB)"
+        )
+    col.figures.append(
+        Figure(f"{x.name}-ringing", f"Low-frequency decay map, {x.name}",
+               ctx.png(fg.plot_decay_map(maps, modes, f"Low-frequency decay: {x.name}")))
+    )
+    return col
+
+
+#: Sections with one column per channel: (id, text above the columns, column builder).
+#: Add a per-channel section by writing a ``_xxx_column(x, ctx)`` and listing it here.
+CHANNEL_SECTIONS: list[tuple[str, str, Any]] = [
+    ("room", "Thin lines are the individual microphone positions, the thick line is their "
+     "power average. Grey areas lie outside the correction band.", _room_column),
+    ("result", "Analysed with the same window and smoothing as the measurement. The filters "
+     "include the pre-gain, so the target is drawn lowered by it. Lines close to the target at "
+     "every position mean the correction holds across the listening area.", _result_column),
+    ("filter", "Pink areas mark frequencies where boost was wanted but refused.",
+     _filter_column),
+    ("time", "Top: the filter alone. Bottom: the first position before and after correction. "
+     "Anything left of 0 ms is pre-ringing; a minimum-phase filter has none.", _time_column),
+    ("phase", "", _phase_column),
+    ("iir", "", _iir_column),
+    ("decay", "Schroeder backward integration per octave band with the noise floor "
+     "subtracted and the tail truncated where the decay meets the noise. EDT from 0 to -10 "
+     "dB, T20 from -5 to -25 dB, T30 from -5 to -35 dB, each extrapolated to 60 dB (ISO "
+     "3382-1), averaged over positions; curves show the first position. * marks a value whose "
+     "range comes within 10 dB of the noise floor.", _decay_column),
+    ("ringing", "Sliding-window spectra of the first position from 20 to 300 Hz: each row "
+     "starts 10 ms later than the one below. A bright ridge reaching high up is a room mode "
+     "that keeps ringing after the sound stops.", _ringing_column),
+]
+
+
+def channel_section(
+    sec_id: str, intro: str, chans: list[_Channel], ctx: _Context, build: Any
+) -> Section | None:
+    """A section with one column per channel (None when no channel has anything to show)."""
+    cols = [c for c in (build(x, ctx) for x in chans) if c is not None]
+    if not cols:
+        return None
+    sec = Section(sec_id, SECTION_TITLES[sec_id], columns=cols)
+    if intro:
+        sec.paragraphs.append(intro)
     return sec
 
 
-def _design_caps(settings: dict[str, Any] | None) -> dict[str, Any]:
-    d = (settings or {}).get("design", {}) if isinstance(settings, dict) else {}
-    return {
-        "max_boost_db": d.get("max_boost_db"),
-        "max_cut_db": d.get("max_cut_db"),
-        "ceiling_db": d.get("ceiling_db", 0.0),
-        "allow_gain": d.get("allow_gain", False),
-    }
+def _safety_section(chans: list[_Channel], curves: dict[str, Any], ctx: _Context) -> Section:
+    from roomcorr.design.fir import worst_case_gain_db
+    from roomcorr.design.safety import CAUTIONS, PEAK_BAND, full_band_peak_gain_db
+
+    caps = ctx.caps
+    rows = [["channel", "rate (Hz)", "taps", "peak gain (dB)", "worst-case gain (dB)"]]
+    for x in chans:
+        if x.fir is None:
+            continue
+        for r in sorted(curves["firs"]):
+            h = np.asarray(curves["firs"][r][x.index], dtype=float)
+            rows.append([x.name, str(r), str(h.size), f"{full_band_peak_gain_db(h, r):.2f}",
+                         f"{worst_case_gain_db(h):.2f}"])
+    saf = Section("safety", SECTION_TITLES["safety"])
+    mb = "n/a" if caps["max_boost_db"] is None else f"{caps['max_boost_db']:g} dB"
+    mc = "n/a" if caps["max_cut_db"] is None else f"{caps['max_cut_db']:g} dB"
+    saf.paragraphs.append(
+        f"Pre-gain {ctx.pre_gain:.2f} dB (common to all channels and rates). Caps in force: "
+        f"boost at most {mb}, cut at most {mc}, peak gain ceiling "
+        f"{caps['ceiling_db']:g} dB" + (" (gain allowed)." if caps["allow_gain"] else ".")
+    )
+    saf.paragraphs.append(
+        f"Peak gain is the filter's largest gain anywhere from {PEAK_BAND} (not only between "
+        "20 Hz and 20 kHz); worst-case gain (20 log10 of the sum of |taps|) is the most any "
+        "input waveform could grow."
+    )
+    if ctx.iir:
+        saf.paragraphs.append(
+            "The biquad files carry their own pre-gain (see the biquad section): use each "
+            "pre-gain with its own filters only."
+        )
+    saf.paragraphs.extend(CAUTIONS)
+    saf.table = rows
+    return saf
 
 
 def build_report(
@@ -476,6 +782,10 @@ def build_report(
     comparison: dict[str, Any] | None = None,
 ) -> Report:
     """Compute every section and figure of the report.
+
+    Sections come in :data:`SECTION_TITLES` order; the per-channel ones
+    (:data:`CHANNEL_SECTIONS`) hold one :class:`Column` per loudspeaker channel,
+    drawn side by side.
 
     Parameters
     ----------
@@ -503,25 +813,27 @@ def build_report(
     -------
     Report
     """
-    from roomcorr.analysis.decay import low_frequency_decay_map, octave_band_decay, ringing_modes
     from roomcorr.report import figures as fg
 
     def png(fig: Any) -> bytes:
         return fg.png_bytes(fig, dpi=dpi)
 
-    freq = np.asarray(curves["freq_hz"], dtype=float)
-    fs = int(curves["fs_in"])
-    irs = curves.get("irs")
-    caps = _design_caps(settings)
-    max_boost = caps["max_boost_db"]
-    pre_gain = float(curves.get("pre_gain_db", 0.0))
     designed = bool(curves.get("firs")) and all(
         "correction_db" in ch for ch in curves["channels"]
     )
-
+    ctx = _Context(
+        freq=np.asarray(curves["freq_hz"], dtype=float),
+        fs=int(curves["fs_in"]),
+        caps=_design_caps(settings),
+        pre_gain=float(curves.get("pre_gain_db", 0.0)),
+        designed=designed,
+        png=png,
+        iir=iir,
+        mixed=curves.get("mixed_phase"),
+    )
     overview = Section("overview", SECTION_TITLES["overview"])
     if designed:
-        overview.paragraphs.extend(summary_sentences(curves, max_boost))
+        overview.paragraphs.extend(summary_sentences(curves, ctx.caps["max_boost_db"]))
     else:
         overview.paragraphs.append(
             "This folder holds measurements only; run the design step to see a correction."
@@ -530,208 +842,21 @@ def build_report(
     if comparison is not None:
         sections.append(comparison_section(comparison))
         overview.paragraphs.append(_comparison_sentence(comparison))
-    ringing_notes: list[str] = []
-    safety_rows = [["channel", "rate (Hz)", "taps", "peak gain (dB)", "worst-case gain (dB)"]]
-
-    for ch in curves["channels"]:
-        c = int(ch["index"])
-        name = str(ch["name"])
-        tag = f"{name} ({len(ch['measured_db'])} positions)"
-        band = tuple(ch["band_hz"]) if "band_hz" in ch else None
-        room = Section(f"room-{name}", f"{SECTION_TITLES['room']}: {name}")
-        room.paragraphs.append(
-            "Thin lines are the individual microphone positions, the thick line is their power "
-            "average. Grey areas lie outside the correction band."
-        )
-        room.figures.append(
-            Figure(
-                f"{name}-room",
-                f"Measured response, {name}",
-                png(
-                    fg.plot_responses(
-                        freq, ch["measured_db"], ch["average_db"], ch.get("target_db"), band,
-                        max_boost, f"Measured: {tag}",
-                    )
-                ),
-            )
-        )
-        sections.append(room)
-
-        fir, rate = _fir_for(curves, c) if designed else (None, None)
-        corrected = None
-        if fir is not None and irs is not None:
-            pos_irs = np.asarray(irs)[:, c]
-            if rate == fs:
-                predicted, corrected = predicted_responses(
-                    pos_irs, fs, fir, freq, ch["measured_db"]
-                )
-                how = "each measured response convolved with the exported filter"
-            else:  # no filter at the measurement rate: apply the filter's response
-                from roomcorr.design.fir import fir_response_db
-
-                predicted = ch["measured_db"] + fir_response_db(fir, rate, freq)[None, :]
-                how = f"the {rate} Hz filter's response added to each measured response"
-            res = Section(f"result-{name}", f"{SECTION_TITLES['result']}: {name}")
-            res.paragraphs.append(
-                f"Predicted from {how}, analysed with the same window and smoothing as the "
-                "measurement. The filters include the pre-gain, so the target is drawn lowered "
-                "by it. Lines close to the target at every position mean the correction holds "
-                "across the listening area."
-            )
-            res.figures.append(
-                Figure(
-                    f"{name}-result",
-                    f"Predicted result, {name}",
-                    png(fg.plot_predicted(freq, predicted, ch["average_db"],
-                                          np.asarray(ch["target_db"]) + pre_gain, band,
-                                          f"Corrected: {tag}", pre_gain)),
-                )
-            )
-            sections.append(res)
-
-            gain, phase, gd = filter_response(fir, rate, freq)
-            flt = Section(f"filter-{name}", f"{SECTION_TITLES['filter']}: {name}")
-            flt.paragraphs.append(
-                f"Minimum-phase FIR at {rate} Hz, {len(fir)} taps, pre-gain {pre_gain:.1f} dB "
-                "included. Pink areas mark frequencies where boost was wanted but refused."
-            )
-            regions = withheld_regions(freq, ch, max_boost)
-            if regions:
-                reasons = {
-                    "cancellation": "the dip is a cancellation that moves with the listener, "
-                    "so boost would burn headroom for nothing",
-                    "spread": "the positions disagree too much there",
-                    "cap": "the boost cap was reached",
-                }
-                for r in regions[:4]:
-                    flt.paragraphs.append(
-                        f"Boost refused around {fmt_hz(r['freq_hz'])} "
-                        f"({fmt_hz(r['lo_hz'])} to {fmt_hz(r['hi_hz'])}, "
-                        f"{r['withheld_db']:.1f} dB withheld): {reasons[r['reason']]}."
-                    )
-            else:
-                flt.paragraphs.append("No boost was refused.")
-            flt.figures.append(
-                Figure(
-                    f"{name}-filter",
-                    f"Filter magnitude, phase and group delay, {name}",
-                    png(fg.plot_filter(freq, gain, phase, gd, ch["correction_db"],
-                                       ch["boost_withheld_db"], band, pre_gain, rate,
-                                       f"Filter: {name}")),
-                )
-            )
-            sections.append(flt)
-
-            if corrected is not None:
-                tm = Section(f"time-{name}", f"{SECTION_TITLES['time']}: {name}")
-                tm.paragraphs.append(
-                    "Top: the filter alone. Bottom: the first position before and after "
-                    "correction. Anything left of 0 ms is pre-ringing; a minimum-phase filter "
-                    "has none."
-                )
-                tm.figures.append(
-                    Figure(
-                        f"{name}-time",
-                        f"Impulse and step response, {name}",
-                        png(fg.plot_time(fs, fir, pos_irs[0], corrected[0],
-                                         f"Time response: {name}")),
-                    )
-                )
-                sections.append(tm)
-
-        mixed = mixed_phase_section(curves.get("mixed_phase"), c, name, png)
-        if mixed is not None:
-            sections.append(mixed)
-
-        if iir and iir.get(name) and "correction_db" in ch:
-            sections.append(_iir_section(freq, ch, iir[name], fir, rate, pre_gain, band, png))
-
-        per_pos: list[list[Any]] = []
-        if irs is not None:
-            pos_irs = np.asarray(irs)[:, c]
-            try:
-                per_pos = [octave_band_decay(pos_irs[p], fs) for p in range(len(pos_irs))]
-            except ValueError:  # too short or silent: no decay analysis possible
-                per_pos = []
-        if per_pos and per_pos[0]:
-            bands = _mean_band_decay(per_pos)
-            dec = Section(f"decay-{name}", f"{SECTION_TITLES['decay']}: {name}")
-            dec.paragraphs.append(
-                "Schroeder backward integration per octave band with the noise floor "
-                "subtracted and the tail truncated where the decay meets the noise. EDT from "
-                "0 to -10 dB, T20 from -5 to -25 dB, T30 from -5 to -35 dB, each extrapolated "
-                "to 60 dB (ISO 3382-1), averaged over positions; curves show the first "
-                "position. * marks a value whose range comes within 10 dB of the noise floor."
-            )
-            dec.table = _decay_table(bands)
-            dec.figures.append(
-                Figure(f"{name}-decay", f"Decay curves and times, {name}",
-                       png(fg.plot_decay(bands, f"Decay: {name}")))
-            )
-            sections.append(dec)
-
-            before_map = low_frequency_decay_map(pos_irs[0], fs)
-            modes = ringing_modes(before_map)
-            maps = [("as measured", before_map)]
-            if corrected is not None:
-                maps.append(("corrected", low_frequency_decay_map(corrected[0], fs)))
-            rng = Section(f"ringing-{name}", f"{SECTION_TITLES['ringing']}: {name}")
-            rng.paragraphs.append(
-                "Sliding-window spectra of the first position from 20 to 300 Hz: each row "
-                "starts 10 ms later than the one below. A bright ridge reaching high up is a "
-                "room mode that keeps ringing after the sound stops."
-            )
-            if modes:
-                txt = ", ".join(f"{f0:.0f} Hz ({t0:.2f} s)" for f0, t0 in modes)
-                rng.paragraphs.append(
-                    f"Peaks still loudest 200 ms after the sound stops (60 dB decay time): {txt}."
-                )
-                ringing_notes.append(
-                    f"{name} around {fmt_hz(modes[0][0])} ({modes[0][1]:.2f} s to decay 60 dB)"
-                )
-            rng.figures.append(
-                Figure(f"{name}-ringing", f"Low-frequency decay map, {name}",
-                       png(fg.plot_decay_map(maps, modes, f"Low-frequency decay: {name}")))
-            )
-            sections.append(rng)
-
-        if fir is not None:
-            from roomcorr.design.fir import peak_gain_db, worst_case_gain_db
-
-            for r in sorted(curves["firs"]):
-                h = np.asarray(curves["firs"][r][c], dtype=float)
-                safety_rows.append(
-                    [name, str(r), str(h.size), f"{peak_gain_db(h, r):.2f}",
-                     f"{worst_case_gain_db(h):.2f}"]
-                )
-
-    if ringing_notes and designed:
+    chans = [_channel(curves, ch, ctx) for ch in curves["channels"]]
+    for sec_id, intro, build in CHANNEL_SECTIONS:
+        sec = channel_section(sec_id, intro, chans, ctx, build)
+        if sec is not None:
+            sections.append(sec)
+    if ctx.ringing_notes and designed:
         overview.paragraphs.append(
-            "Loudest ringing after the sound stops: " + "; ".join(ringing_notes)
+            "Loudest ringing after the sound stops: " + "; ".join(ctx.ringing_notes)
             + " (see the low-frequency decay maps)."
         )
     if quality:
         sections.append(_quality_section(quality, png))
-
     if designed:
-        from roomcorr.design.safety import CAUTIONS
-
-        saf = Section("safety", SECTION_TITLES["safety"])
-        mb = "n/a" if max_boost is None else f"{max_boost:g} dB"
-        mc = "n/a" if caps["max_cut_db"] is None else f"{caps['max_cut_db']:g} dB"
-        saf.paragraphs.append(
-            f"Pre-gain {pre_gain:.2f} dB (common to all channels and rates). Caps in force: "
-            f"boost at most {mb}, cut at most {mc}, peak gain ceiling "
-            f"{caps['ceiling_db']:g} dB" + (" (gain allowed)." if caps["allow_gain"] else ".")
-        )
-        saf.paragraphs.append(
-            "Peak gain is the filter's largest gain between 20 Hz and 20 kHz; worst-case gain "
-            "(20 log10 of the sum of |taps|) is the most any input waveform could grow."
-        )
-        saf.paragraphs.extend(CAUTIONS)
-        saf.table = safety_rows
-        sections.append(saf)
-    return Report(title=title, subtitle=f"measured at {fs} Hz", sections=sections)
+        sections.append(_safety_section(chans, curves, ctx))
+    return Report(title=title, subtitle=f"measured at {ctx.fs} Hz", sections=sections)
 
 
 _CSS = """
@@ -741,7 +866,7 @@ header{background:#155e6b;color:#fff;padding:18px 28px}
 header h1{margin:0;font-size:1.5em}header p{margin:4px 0 0;opacity:.85}
 nav{background:#e3eaef;padding:8px 28px;font-size:.9em}
 nav a{color:#155e6b;margin-right:14px;text-decoration:none}
-main{max-width:1100px;margin:0 auto;padding:10px 20px 40px}
+main{max-width:1760px;margin:0 auto;padding:10px 20px 40px}
 section{background:#fff;border-radius:6px;margin:18px 0;padding:14px 22px;
 box-shadow:0 1px 2px rgba(0,0,0,.08)}
 section h2{font-size:1.2em;color:#155e6b;margin:4px 0 10px;border-bottom:2px solid #e3eaef}
@@ -753,11 +878,42 @@ table{border-collapse:collapse;font-size:.9em;margin:8px 0}
 td,th{border:1px solid #d5dce3;padding:3px 10px;text-align:right}
 th{background:#eef2f5}
 #compare td:last-child{text-align:left}
+.channels{display:grid;grid-template-columns:repeat(auto-fit,minmax(min(100%,480px),1fr));
+gap:8px 24px;align-items:start}
+.channel{min-width:0}.channel h3{margin:8px 0 2px;font-size:1.05em;color:#155e6b}
+.scroll{overflow-x:auto}
+details{margin:6px 0}summary{cursor:pointer;color:#155e6b}
 """
 
 
+def _render_block(paragraphs: list[str], table: list[list[str]] | None,
+                  figures: list[Figure]) -> list[str]:
+    """Paragraphs, table and figures of a section or a column, as HTML pieces."""
+    esc = html.escape
+    parts = [f"<p>{esc(p)}</p>" for p in paragraphs]
+    if table:
+        head = "".join(f"<th>{esc(h)}</th>" for h in table[0])
+        body = "".join(
+            "<tr>" + "".join(f"<td>{esc(v)}</td>" for v in row) + "</tr>" for row in table[1:]
+        )
+        parts.append(f'<div class="scroll"><table><thead><tr>{head}</tr></thead>'
+                     f"<tbody>{body}</tbody></table></div>")
+    for f in figures:
+        b64 = base64.b64encode(f.png).decode("ascii")
+        parts.append(
+            f'<figure data-figure="{esc(f.key)}"><img alt="{esc(f.caption)}" '
+            f'src="data:image/png;base64,{b64}"><figcaption>{esc(f.caption)}</figcaption>'
+            "</figure>"
+        )
+    return parts
+
+
 def render_html(report: Report) -> str:
-    """The page as one string: inline CSS, figures as base64 data URIs, no external links."""
+    """The page as one string: inline CSS, figures as base64 data URIs, no external links.
+
+    A section's channel columns sit side by side in a CSS grid (one below the
+    other on a narrow window); no script is needed.
+    """
     esc = html.escape
     nav = " ".join(f'<a href="#{esc(s.id)}">{esc(s.title)}</a>' for s in report.sections)
     parts = [
@@ -772,22 +928,23 @@ def render_html(report: Report) -> str:
         parts.append(f'<section id="{esc(s.id)}"><h2>{esc(s.title)}</h2>')
         if s.id == "overview" and s.paragraphs:
             parts.append("<ul>" + "".join(f"<li>{esc(p)}</li>" for p in s.paragraphs) + "</ul>")
+            parts.extend(_render_block([], s.table, s.figures))
         else:
-            parts.extend(f"<p>{esc(p)}</p>" for p in s.paragraphs)
-        if s.table:
-            head = "".join(f"<th>{esc(h)}</th>" for h in s.table[0])
-            body = "".join(
-                "<tr>" + "".join(f"<td>{esc(v)}</td>" for v in row) + "</tr>"
-                for row in s.table[1:]
-            )
-            parts.append(f"<table><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>")
-        for f in s.figures:
-            b64 = base64.b64encode(f.png).decode("ascii")
-            parts.append(
-                f'<figure data-figure="{esc(f.key)}"><img alt="{esc(f.caption)}" '
-                f'src="data:image/png;base64,{b64}"><figcaption>{esc(f.caption)}</figcaption>'
-                "</figure>"
-            )
+            parts.extend(_render_block(s.paragraphs, s.table, s.figures))
+        if s.columns:
+            parts.append('<div class="channels">')
+            for c in s.columns:
+                parts.append(f'<div class="channel" id="{esc(s.id)}-{esc(c.channel)}" '
+                             f'data-channel="{esc(c.channel)}"><h3>{esc(c.channel)}</h3>')
+                parts.extend(_render_block(c.paragraphs, [], []))
+                if c.details:
+                    summary, paras = c.details
+                    parts.append(f"<details><summary>{esc(summary)}</summary>")
+                    parts.extend(_render_block(paras, [], []))
+                    parts.append("</details>")
+                parts.extend(_render_block([], c.table, c.figures))
+                parts.append("</div>")
+            parts.append("</div>")
         parts.append("</section>")
     parts.append("</main></body></html>")
     return "\n".join(parts)
@@ -987,10 +1144,73 @@ def report_comparison(
     return res
 
 
+def _ours(d: Path) -> bool:
+    """Whether folder ``d`` was written by roomcorr (a design, a measurement or a room run),
+    so its report may go into it; someone else's folder of WAVs is never written to."""
+    from roomcorr.errors import OutputError
+    from roomcorr.export import read_manifest
+
+    if (d / "complete.json").is_file():
+        return True
+    if (d / "manifest.json").is_file():
+        try:
+            return read_manifest(d).get("generator") == "roomcorr"
+        except OutputError:
+            return False
+    try:
+        record = json.loads((d / "measurement.json").read_text(encoding="utf-8"))
+    except (OSError, UnicodeDecodeError, json.JSONDecodeError):
+        return False
+    return isinstance(record, dict)
+
+
+def report_destination(folder: str | Path, out_dir: str | Path | None = None) -> Path:
+    """The folder ``roomcorr report FOLDER [--out OUT_DIR]`` writes into.
+
+    Default: ``folder`` itself when roomcorr wrote it (a design folder, a
+    measurement folder, a run of a room: the report goes beside the run as
+    before), else a new folder ``<name>-report`` in the working folder. A
+    given or default folder must be new, empty or hold an earlier report only.
+
+    Raises
+    ------
+    OutputError
+        For a destination that is a link, a file, a finished room run (other
+        than the reported run itself), or a folder holding other files.
+    """
+    from roomcorr.errors import OutputError
+    from roomcorr.export import check_folder_target
+    from roomcorr.room import refuse_finished_run
+
+    d = Path(folder)
+    if out_dir is None:
+        dest = d if _ours(d) else Path.cwd() / f"{d.resolve().name}-report"
+        option = "report" if dest == d else f"report (default --out {dest})"
+    else:
+        dest = Path(out_dir)
+        option = f"--out {out_dir}"
+    check_folder_target(dest, option)
+    if dest.exists() and dest.resolve() == d.resolve():
+        return dest  # the folder itself (a finished run: its report goes beside its files)
+    refuse_finished_run(dest, option)
+    if not dest.exists():
+        return dest
+    others = sorted(p.name for p in dest.iterdir() if p.name not in (REPORT_HTML, FIG_DIR))
+    if others:
+        raise OutputError(
+            f"{option}: holds {others[0]}, which is not a roomcorr report; choose a new or "
+            "empty folder with --out"
+        )
+    return dest
+
+
 def write_report(
-    folder: str | Path, dpi: int = 90, compare_with: str | Path | None = None
+    folder: str | Path,
+    dpi: int = 90,
+    compare_with: str | Path | None = None,
+    out_dir: str | Path | None = None,
 ) -> Path:
-    """Write ``report.html`` and ``report/*.png`` into a design or measurement folder.
+    """Write ``report.html`` and ``report/*.png`` about a design or measurement folder.
 
     Parameters
     ----------
@@ -1003,17 +1223,28 @@ def write_report(
         Earlier measurement for the comparison section (see
         :func:`report_comparison`); by default a run folder of a room is
         compared with the room's previous complete measurement, if any.
+    out_dir : path, optional
+        Where to write (see :func:`report_destination` for the default).
 
     Returns
     -------
     Path of ``report.html``.
+
+    Notes
+    -----
+    The figures are written into a temporary folder that replaces
+    ``report/`` only when all of them and ``report.html`` are complete, so
+    an interrupted or failed report leaves the earlier one whole and nothing
+    half-written; a new destination folder appears only when it is complete.
     """
-    from roomcorr.atomic import atomic_write_bytes, atomic_write_text
-    from roomcorr.errors import InputFileError, OutputError
+    from roomcorr import room as rooms
+    from roomcorr.errors import InputFileError
 
     d = Path(folder)
     if not d.is_dir():
         raise InputFileError(f"{d}: no such folder; give a design or measurement folder")
+    rooms.verified(rooms.find_room(d), d)  # a damaged run of a room is named, not reported
+    dest = report_destination(d, out_dir)
     is_design = (d / "manifest.json").is_file() and (d / "design.npz").is_file()
     settings = None
     if is_design:
@@ -1036,33 +1267,76 @@ def write_report(
     iir = _read_iir(d) if is_design else None
     comparison = report_comparison(d, compare_with)
     report = build_report(curves, settings, quality, iir=iir, dpi=dpi, comparison=comparison)
-    fig_dir = d / FIG_DIR
-    try:
-        fig_dir.mkdir(exist_ok=True)
-        written = []
-        for s in report.sections:
-            for f in s.figures:
-                rel = f"{FIG_DIR}/{f.key}.png"
-                atomic_write_bytes(d / rel, f.png)
-                written.append(rel)
-        out = atomic_write_text(d / REPORT_HTML, render_html(report))
-    except OSError as exc:
-        raise OutputError(f"{d}: cannot write the report ({exc})") from None
     # A finished room run is sealed by its complete.json (SHA-256 of every file,
     # manifest included): the report is added beside it, never into its manifest.
-    if is_design and not (d / "complete.json").is_file():
-        from roomcorr.export import add_manifest_entries, read_manifest, sha256_of, write_manifest
+    same = dest.resolve() == d.resolve()
+    _write_report_files(
+        dest, report, list_in_manifest=same and is_design and not (d / "complete.json").is_file()
+    )
+    return dest / REPORT_HTML
 
-        manifest = read_manifest(d)
-        known = {e.get("path") for e in manifest.get("files", [])}
-        if known & {*written, REPORT_HTML}:  # a report written before: refresh its digests
-            for e in manifest["files"]:
-                if e.get("path") in {*written, REPORT_HTML}:
-                    e["sha256"] = sha256_of(d / e["path"])
-            write_manifest(d, manifest)
-        entries = [{"path": p, "kind": "report-figure"} for p in written if p not in known]
-        if REPORT_HTML not in known:
-            entries.append({"path": REPORT_HTML, "kind": "report"})
-        if entries:
-            add_manifest_entries(d, entries)
-    return out
+
+def _list_report_in_manifest(d: Path, written: list[str]) -> None:
+    from roomcorr.export import add_manifest_entries, read_manifest, sha256_of, write_manifest
+
+    manifest = read_manifest(d)
+    known = {e.get("path") for e in manifest.get("files", [])}
+    if known & {*written, REPORT_HTML}:  # a report written before: refresh its digests
+        manifest["files"] = [
+            e
+            for e in manifest["files"]
+            if not str(e["path"]).startswith(f"{FIG_DIR}/") or e["path"] in written
+        ]  # figures the new report no longer has went with the old report/
+        for e in manifest["files"]:
+            if e.get("path") in {*written, REPORT_HTML}:
+                e["sha256"] = sha256_of(d / e["path"])
+        write_manifest(d, manifest)
+    entries = [{"path": p, "kind": "report-figure"} for p in written if p not in known]
+    if REPORT_HTML not in known:
+        entries.append({"path": REPORT_HTML, "kind": "report"})
+    if entries:
+        add_manifest_entries(d, entries)
+
+
+def _write_report_files(dest: Path, report: Report, list_in_manifest: bool) -> list[str]:
+    """Write the figures and the page (and their manifest entries) into ``dest``, all or
+    nothing: the folder is built beside ``dest`` and swapped in when complete."""
+    import shutil
+
+    from roomcorr.atomic import (
+        atomic_write_bytes,
+        atomic_write_text,
+        disk_error_text,
+        holds_working_folder,
+        staged_copy,
+        staged_folder,
+    )
+    from roomcorr.errors import OutputError
+
+    figures = [f for s in report.sections for f in s.all_figures()]
+    written = [f"{FIG_DIR}/{f.key}.png" for f in figures]
+    page = render_html(report)
+    try:
+        if dest.exists() and holds_working_folder(dest):
+            # ``roomcorr report .``: the folder itself cannot be swapped under the
+            # shell that runs us, so only report/ is swapped in; then the page and
+            # the manifest are replaced, each atomically.
+            with staged_folder(dest / FIG_DIR) as stage:
+                for f in figures:
+                    atomic_write_bytes(stage / f"{f.key}.png", f.png)
+                atomic_write_text(dest / REPORT_HTML, page)
+            if list_in_manifest:
+                _list_report_in_manifest(dest, written)
+            return written
+        with staged_copy(dest) if dest.exists() else staged_folder(dest) as stage:
+            if (stage / FIG_DIR).is_dir():
+                shutil.rmtree(stage / FIG_DIR)  # links to the old figures; they stay intact
+            (stage / FIG_DIR).mkdir()
+            for f, rel in zip(figures, written, strict=True):
+                atomic_write_bytes(stage / rel, f.png)
+            atomic_write_text(stage / REPORT_HTML, page)
+            if list_in_manifest:
+                _list_report_in_manifest(stage, written)
+    except OSError as exc:
+        raise OutputError(f"{dest}: cannot write the report ({disk_error_text(exc)})") from None
+    return written
