@@ -128,12 +128,11 @@ class FakeSoundDevice:
                 fake.captures += 1
                 self.vanish = fake.captures >= fake.vanish_at
 
-            def __enter__(self):
+            def start(self):
                 import threading
 
                 self.thread = threading.Thread(target=self.run)
                 self.thread.start()
-                return self
 
             def run(self):
                 air = np.zeros(300)
@@ -153,8 +152,11 @@ class FakeSoundDevice:
                     air = np.r_[air, out[:, 0]][-300:]
                 self.fin()
 
-            def __exit__(self, *a):
+            def stop(self):
                 self.thread.join()
+
+            def close(self):
+                pass
 
             def abort(self):
                 pass

@@ -7,8 +7,10 @@ stream. Ctrl-C aborts the stream at once (no fade, no further output).
 
 from __future__ import annotations
 
+import contextlib
+import signal
 import threading
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 
 import numpy as np
@@ -176,6 +178,28 @@ def open_devices(
     return Devices(i_in, str(info_in["name"]), i_out, str(info_out["name"]), two)
 
 
+@contextlib.contextmanager
+def sigint_deferred() -> Iterator[None]:
+    """Hold Ctrl-C back (in this thread) while PortAudio talks to the audio server.
+
+    A SIGINT landing inside such a call (opening, starting, closing a stream) makes
+    the audio server's request fail half-way; with JACK, PortAudio then aborts the
+    whole program at exit. Held back for those milliseconds, the interrupt arrives
+    right after the call, and the stream is aborted as usual. Where signal masks do
+    not exist (Windows) this does nothing.
+    """
+    if threading.current_thread() is not threading.main_thread() or not hasattr(
+        signal, "pthread_sigmask"
+    ):
+        yield
+        return
+    old = signal.pthread_sigmask(signal.SIG_BLOCK, {signal.SIGINT})
+    try:
+        yield
+    finally:
+        signal.pthread_sigmask(signal.SIG_SETMASK, old)
+
+
 _PROBLEM_FLAGS = ("input_overflow", "input_underflow", "output_overflow", "output_underflow")
 
 
@@ -327,15 +351,21 @@ def _run_stream(
 ) -> None:
     """Open one stream with ``make()``, run it to the end; Ctrl-C aborts it at once."""
     try:
-        stream = make()
+        with sigint_deferred():
+            stream = make()
+            stream.start()
     except sd.PortAudioError as exc:
         raise DeviceError(f"could not open {what} at {fs} Hz: {exc}") from exc
-    with stream:
-        try:
-            _wait(done, state, n_total, progress)
-        except KeyboardInterrupt:
+    try:
+        _wait(done, state, n_total, progress)
+    except KeyboardInterrupt:
+        with sigint_deferred():
             stream.abort()  # stop sound output at once
-            raise
+        raise
+    finally:
+        with sigint_deferred(), contextlib.suppress(sd.PortAudioError):
+            stream.stop()
+            stream.close()
     if state["pos"] < n_total:
         raise DeviceError(
             f"{what} stopped after {state['pos'] / fs:.1f} s of {n_total / fs:.1f} s "
@@ -430,42 +460,47 @@ def _two_streams(
             raise sd.CallbackStop
 
     try:
-        s_in = sd.InputStream(
-            device=devices.input_index,
-            samplerate=fs,
-            channels=n_in,
-            dtype="float32",
-            blocksize=blocksize,
-            callback=in_cb,
-            finished_callback=in_done.set,
-        )
+        with sigint_deferred():
+            s_in = sd.InputStream(
+                device=devices.input_index,
+                samplerate=fs,
+                channels=n_in,
+                dtype="float32",
+                blocksize=blocksize,
+                callback=in_cb,
+                finished_callback=in_done.set,
+            )
     except sd.PortAudioError as exc:
         raise DeviceError(
             f"could not open input device {devices.input_name!r} at {fs} Hz: {exc}"
         ) from exc
     try:
-        s_out = sd.OutputStream(
-            device=devices.output_index,
-            samplerate=fs,
-            channels=out_buf.shape[1],
-            dtype="float32",
-            blocksize=blocksize,
-            callback=out_cb,
-            finished_callback=out_done.set,
-        )
+        with sigint_deferred():
+            s_out = sd.OutputStream(
+                device=devices.output_index,
+                samplerate=fs,
+                channels=out_buf.shape[1],
+                dtype="float32",
+                blocksize=blocksize,
+                callback=out_cb,
+                finished_callback=out_done.set,
+            )
     except sd.PortAudioError as exc:
-        s_in.close()
+        with sigint_deferred():
+            s_in.close()
         raise DeviceError(
             f"could not open output device {devices.output_name!r} at {fs} Hz: {exc}"
         ) from exc
     try:
-        s_in.start()
+        with sigint_deferred():
+            s_in.start()
         if not in_started.wait(5.0):
             raise DeviceError(
                 f"input device {devices.input_name!r} delivers no audio (is it in use by "
                 "another program, or unplugged?)"
             )
-        s_out.start()
+        with sigint_deferred():
+            s_out.start()
         _wait(out_done, st_out, n_play, progress)
         if st_out["pos"] < n_play:
             raise DeviceError(
@@ -480,16 +515,15 @@ def _two_streams(
                 "(disconnected?); this sweep was not kept"
             )
     except KeyboardInterrupt:
-        s_out.abort()  # stop sound output at once
-        s_in.abort()
+        with sigint_deferred():
+            s_out.abort()  # stop sound output at once
+            s_in.abort()
         raise
     finally:
         for st in (s_out, s_in):
-            try:
+            with sigint_deferred(), contextlib.suppress(sd.PortAudioError):
                 st.abort()
                 st.close()
-            except sd.PortAudioError:
-                pass
     flags = sorted(st_in["flags"] | st_out["flags"])
     return in_buf, int(st_in["problems"] + st_out["problems"]), flags
 
