@@ -101,6 +101,81 @@ def _add_design_options(p: argparse.ArgumentParser) -> None:
     p.add_argument("--replace", action="store_true", help="write over an earlier design in --out")
 
 
+def _name_list(text: str) -> list[str]:
+    names = [x.strip() for x in text.split(",")]
+    if not all(names):
+        raise argparse.ArgumentTypeError(f"expected comma-separated names, got {text!r}")
+    return names
+
+
+def _add_system_options(p: argparse.ArgumentParser) -> None:
+    """Options for several loudspeakers: names, subwoofer, alignment, crossover, formats."""
+    from roomcorr.settings import CROSSOVER_SLOPES_DB_OCT, FILTER_FORMATS
+
+    g = p.add_argument_group("several loudspeakers and filter files")
+    g.add_argument(
+        "--names",
+        type=_name_list,
+        metavar="A,B",
+        help="channel names in file order (e.g. left,right,sub); default left,right for two "
+        "channels",
+    )
+    g.add_argument("--subwoofer", metavar="NAME", help="the channel that is a subwoofer")
+    g.add_argument(
+        "--align",
+        action=argparse.BooleanOptionalAction,
+        default=None,
+        help="put delays and level trims into the filters (default with more than one "
+        "channel); --no-align lists them as trims in manifest.json instead",
+    )
+    g.add_argument(
+        "--crossover-range",
+        type=_float_list,
+        metavar="LO,HI",
+        help="frequencies the subwoofer crossover may be chosen from (default 50,150 Hz)",
+    )
+    g.add_argument(
+        "--crossover-slope",
+        type=int,
+        choices=CROSSOVER_SLOPES_DB_OCT,
+        metavar="DB",
+        help="Linkwitz-Riley slope in dB/octave: 12, 24 (default) or 48",
+    )
+    g.add_argument(
+        "--formats",
+        type=_name_list,
+        metavar="F,F",
+        help="filter files besides the WAV per channel: "
+        + ", ".join(FILTER_FORMATS[1:])
+        + " (or all)",
+    )
+
+
+def _system_overrides(args: argparse.Namespace) -> dict[str, Any]:
+    from roomcorr.settings import FILTER_FORMATS
+
+    over: dict[str, Any] = {}
+    for opt, key in (
+        ("names", "channel_names"),
+        ("subwoofer", "subwoofer"),
+        ("align", "align"),
+        ("crossover_slope", "crossover_slope_db_oct"),
+    ):
+        if getattr(args, opt, None) is not None:
+            over[key] = getattr(args, opt)
+    rng = getattr(args, "crossover_range", None)
+    if rng is not None:
+        if len(rng) == 1:
+            rng = [rng[0], rng[0]]
+        if len(rng) != 2:
+            raise SettingsError("--crossover-range needs LO,HI in Hz (or one frequency)")
+        over["crossover_range_hz"] = rng
+    fmts = getattr(args, "formats", None)
+    if fmts is not None:
+        over["formats"] = list(FILTER_FORMATS) if fmts == ["all"] else fmts
+    return over
+
+
 def _add_phase_options(g: Any) -> None:
     g.add_argument(
         "--phase",
@@ -149,6 +224,7 @@ def settings_from_args(args: argparse.Namespace, base: Any = None) -> Any:
         overrides["allow_gain"] = True
     if getattr(args, "iir", False):
         overrides["iir"] = True
+    overrides.update(_system_overrides(args))
     try:
         settings.design = design_from_dict(overrides, base=settings.design)
     except SettingsError as exc:
@@ -191,6 +267,7 @@ def _print_design_summary(result: Any, out: Path, entries: list[dict]) -> None:
                 f"fit error {e['fit_rms_error_db']:.1f} dB RMS ({e['fit_max_error_db']:.1f} dB "
                 f"max), pre-gain {e['pre_gain_db']:+.2f} dB, peak gain {e['peak_gain_db']:+.2f} dB"
             )
+    _print_system_summary(result)
     if result.mixed_phase is not None:
         from roomcorr.design.mixedphase import latency_sentence
 
@@ -202,6 +279,37 @@ def _print_design_summary(result: Any, out: Path, entries: list[dict]) -> None:
             "lower the player's volume to avoid clipping.",
             file=sys.stderr,
         )
+
+
+def _names_from_measurement(files: list[Path], settings: Any) -> None:
+    """Channel names stored by ``measure --names`` when the design has none of its own."""
+    import json
+
+    from roomcorr.settings import design_from_dict
+
+    if settings.design.channel_names is not None:
+        return
+    for folder in dict.fromkeys(Path(f).parent for f in files):
+        p = folder / "measurement.json"
+        try:
+            names = json.loads(p.read_text(encoding="utf-8")).get("settings", {}).get("names")
+        except (OSError, ValueError, AttributeError):
+            continue
+        if names:
+            settings.design = design_from_dict({"channel_names": names}, base=settings.design)
+            return
+
+
+def _print_system_summary(result: Any) -> None:
+    from roomcorr.deliver.routes import route_diagram
+    from roomcorr.deliver.system import manifest_fields, system_sentences
+
+    for line in system_sentences(manifest_fields(result)):
+        print(line)
+    if result.system is not None and result.system.sub_index is not None:
+        names = [c.name for c in result.channels]
+        print("Routes (RATE = each sample rate):")
+        print(route_diagram(names, result.system), end="")
 
 
 def _design_and_write(
@@ -219,6 +327,7 @@ def _design_and_write(
 
     check_out_dir(out, replace)  # refuse before the work, not after it
     irs, fs, files = read_ir_set(ir_paths, require_impulse=not force)
+    _names_from_measurement(files, settings)
     # every input is checked before the work starts (and the cautions are printed)
     resolve_target(log_grid(), settings.design.target)
     resolve_calibration(log_grid(), settings.design.calibration)
@@ -267,6 +376,7 @@ def _add_design(sub: Any) -> argparse.ArgumentParser:
         "arrival, no decay)",
     )
     _add_design_options(p)
+    _add_system_options(p)
     return p
 
 
@@ -384,6 +494,14 @@ def _add_report(sub: Any) -> argparse.ArgumentParser:
     return p
 
 
+def _print_report_system(curves: dict[str, Any]) -> None:
+    from roomcorr.deliver.system import system_sentences
+    from roomcorr.report.system import system_fields
+
+    for line in system_sentences(system_fields(curves)):
+        print(line)
+
+
 def _run_report(args: argparse.Namespace) -> int:
     from roomcorr.report.html import write_report
 
@@ -394,8 +512,10 @@ def _run_report(args: argparse.Namespace) -> int:
         from roomcorr.report.summary import summary_sentences
 
         caps = (read_manifest(folder).get("settings") or {}).get("design", {})
-        for line in summary_sentences(load_design_curves(folder), caps.get("max_boost_db")):
+        curves = load_design_curves(folder)
+        for line in summary_sentences(curves, caps.get("max_boost_db")):
             print(line)
+        _print_report_system(curves)
     print(f"report: {path}")
     return 0
 
@@ -504,6 +624,8 @@ def _add_measure(sub: Any) -> argparse.ArgumentParser:
                    help="play and record with separate streams even on one device")
     p.add_argument("--outputs", type=_int_list, metavar="1,2",
                    help="output channel of each loudspeaker (default 1,2)")
+    p.add_argument("--names", type=_name_list, metavar="A,B",
+                   help="loudspeaker names, one per --outputs channel (e.g. left,right,sub)")
     p.add_argument("--input", type=_whole, metavar="N", help="microphone input channel (default 1)")
     p.add_argument("--loopback", type=_pair, metavar="OUT,IN",
                    help="spare output cabled back to an input: timing reference that removes "
@@ -568,7 +690,7 @@ def measure_settings_from_args(
         "outputs": args.outputs, "input": args.input,
         "loopback": args.loopback, "positions": args.positions, "repeats": args.repeats,
         "sweep_s": args.sweep_seconds, "sample_rate": args.rate, "level_dbfs": args.level,
-        "ir_s": args.ir_seconds,
+        "ir_s": args.ir_seconds, "names": args.names,
     }
     base.update({k: v for k, v in over.items() if v is not None})
     if args.allow_loud:

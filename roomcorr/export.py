@@ -40,6 +40,7 @@ from roomcorr.atomic import (
     staged_folder,
 )
 from roomcorr.audio_io import write_wav
+from roomcorr.deliver.system import manifest_fields, system_curves, write_extra_formats
 from roomcorr.design.mixedphase import from_arrays as mixed_phase_from_arrays
 from roomcorr.design.mixedphase import latency_record
 from roomcorr.design.mixedphase import to_arrays as mixed_phase_arrays
@@ -313,6 +314,7 @@ def _curves_dict(result: DesignResult) -> dict[str, np.ndarray]:
         data[f"ch{c.index}_band_hz"] = np.array(c.band_hz)
     for fs, h in result.firs.items():
         data[f"fir_{fs}"] = h
+    data.update(system_curves(result))
     if getattr(result, "mixed_phase", None) is not None:
         data.update(mixed_phase_arrays(result.mixed_phase))
     return data
@@ -369,6 +371,7 @@ def load_design_curves(out_dir: str | Path, verify: bool = True) -> dict[str, An
             "firs": firs,
             "channels": channels,
             "mixed_phase": mixed_phase_from_arrays(raw),
+            "system": {k[len("sys_") :]: v for k, v in raw.items() if k.startswith("sys_")},
         }
     except _DAMAGED_NPZ as exc:
         raise OutputError(f"{p}: damaged ({type(exc).__name__}: {exc}); design again") from None
@@ -462,6 +465,7 @@ def _write_design_files(
                     "sha256": sha256_of(path),
                 }
             )
+    entries += write_extra_formats(result, out, sha256_of)
     curves_path = out / CURVES
 
     def _save(tmp: Path) -> None:
@@ -481,6 +485,7 @@ def _write_design_files(
         "settings": settings_to_dict(result.settings),
         "latency": latency,
     }
+    manifest.update(manifest_fields(result))
     if extra:
         manifest.update(extra)
     write_manifest(out, manifest)

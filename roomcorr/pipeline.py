@@ -20,6 +20,7 @@ from roomcorr.analysis.smoothing import smooth_log_grid, variable_width_oct
 from roomcorr.analysis.window import fdw_power
 from roomcorr.audio_io import read_curve_file
 from roomcorr.checked import regular_file
+from roomcorr.design.align import SystemPlan, apply_plan, plan_system, subwoofer_band_hz
 from roomcorr.design.correction import align_target, correction_curve
 from roomcorr.design.fir import default_n_taps, synthesize_fir
 from roomcorr.design.mixedphase import MixedPhaseDesign, apply_mixed_phase
@@ -72,6 +73,7 @@ class DesignResult:
     pre_gain_db: float
     stats: list[FilterStats]
     settings: Settings
+    system: SystemPlan | None = None
     mixed_phase: MixedPhaseDesign | None = None
 
 
@@ -81,6 +83,18 @@ def default_channel_names(n: int) -> list[str]:
         return ["mono"]
     base = ["left", "right"]
     return [base[i] if i < 2 and n == 2 else f"ch{i + 1}" for i in range(n)]
+
+
+def channel_names_for(n: int, names: tuple[str, ...] | None) -> list[str]:
+    """Names from the settings (``--names``), checked against the channel count."""
+    if names is None:
+        return default_channel_names(n)
+    if len(names) != n:
+        raise SettingsError(
+            f"--names gives {len(names)} names for {n} measured channels; give one name per "
+            "channel, in file order"
+        )
+    return list(names)
 
 
 def resolve_target(freq_hz: np.ndarray, spec: str) -> np.ndarray:
@@ -189,7 +203,7 @@ def run_design(
     """
     d = settings.design
     n_pos, n_ch, _ = irs.shape
-    names = channel_names or default_channel_names(n_ch)
+    names = channel_names or channel_names_for(n_ch, d.channel_names)
     weights = None
     if d.position_weights is not None:
         if len(d.position_weights) != n_pos:
@@ -208,6 +222,8 @@ def run_design(
         avg, spread = power_average(measured[:, c], weights)
         wide = 10 * np.log10(smooth_log_grid(10 ** (avg / 10), ppo, BAND_SMOOTHING_OCT))
         lo, hi = auto_band(freq, wide)
+        if names[c] == d.subwoofer:
+            lo, hi = subwoofer_band_hz(freq, wide, d.crossover_range_hz)
         band = (d.band_lo_hz or lo, d.band_hi_hz or min(hi, fs / 2 * 0.95))
         if band[0] >= band[1]:
             raise SettingsError(
@@ -241,6 +257,9 @@ def run_design(
     mixed = None
     if d.phase == "mixed":  # same magnitudes, the loudspeaker's excess phase undone
         firs, mixed = apply_mixed_phase(irs, fs, arrival, freq, firs, d.latency_ms, weights)
+    system = plan_system(irs, fs, freq, channels, target_shape, firs, d, weights)
+    if system is not None:
+        firs = apply_plan(firs, system)
     firs, pre_gain, stats = apply_safety(firs, d.ceiling_db, d.max_boost_db)
     return DesignResult(
         freq_hz=freq,
@@ -251,5 +270,6 @@ def run_design(
         pre_gain_db=pre_gain,
         stats=stats,
         settings=settings,
+        system=system,
         mixed_phase=mixed,
     )

@@ -177,6 +177,17 @@ _DESIGN_NOTES = {
     "every position agrees, at the cost of a delay",
     "latency_ms": "delay of a mixed-phase design, ms (5-250): delay video pictures as much for "
     "lip-sync; keep minimum phase for live monitoring",
+    "align": "put arrival delays and level trims into the filters: true, false (listed as "
+    "trims in manifest.json instead) or leave out (on with more than one loudspeaker)",
+    "channel_names": "names of the loudspeaker channels, in file order (leave out: left, right)",
+    "subwoofer": "name of the channel that is a subwoofer (leave out: none)",
+    "crossover_range_hz": "frequencies the subwoofer crossover may be chosen from, Hz",
+    "crossover_slope_db_oct": "Linkwitz-Riley slope of the subwoofer crossover: 12, 24 or 48 "
+    "dB/octave",
+    "level_band_hz": "band over which the main loudspeakers' levels are matched, Hz",
+    "sub_level_band_hz": "band of the subwoofer's level match, Hz (leave out: its own band "
+    "below the crossover range)",
+    "formats": "filter files to write: wav (always), multiwav, f32, f64, txt",
 }
 
 
@@ -220,7 +231,7 @@ _MEASURE_NOTES = {
     "positions": "number of microphone positions to measure",
     "clip_dbfs": "quality gates: a recording failing one stops the run unless --force",
 }
-_MEASURE_EXAMPLES = {"device": 2, "loopback": [3, 2]}
+_MEASURE_EXAMPLES = {"device": 2, "loopback": [3, 2], "names": ["left", "right"]}
 _INLINE_NOTE = re.compile(r"^\s+(\w+)\s*:[^#]*#\s*(.+)$")
 
 
@@ -270,6 +281,10 @@ def settings_text(name: str, created: str) -> str:
         "taps": 16384,
         "calibration": "mic-calibration.txt",
         "position_weights": [1.0, 1.0, 1.0],
+        "align": True,
+        "channel_names": ["left", "right", "sub"],
+        "subwoofer": "sub",
+        "sub_level_band_hz": [25.0, 50.0],
     }
     measure, measure_notes = _measure_defaults()
     lines = [

@@ -40,6 +40,15 @@ BOOST_LIMIT_DB = 12.0
 CUT_LIMIT_DB = 40.0
 GAIN_CEILING_LIMIT_DB = 6.0
 
+#: Filter file formats a design can be written in (``wav`` is always written).
+FILTER_FORMATS = ("wav", "multiwav", "f32", "f64", "txt")
+#: Linkwitz-Riley slopes offered for the subwoofer crossover, dB per octave.
+CROSSOVER_SLOPES_DB_OCT = (12, 24, 48)
+#: Most loudspeaker channels one design handles.
+MAX_CHANNELS = 8
+#: Characters allowed in a channel name (it becomes part of file names).
+_NAME_CHARS = frozenset("abcdefghijklmnopqrstuvwxyzABCDEFGHIJKLMNOPQRSTUVWXYZ0123456789-_")
+
 
 @dataclass
 class DesignSettings:
@@ -71,6 +80,27 @@ class DesignSettings:
         Biquad output and the ranges its sections may use.
     temperature_c : float
         Air temperature, for the speed of sound.
+    align : bool or None
+        Bake per-channel delays and level trims into the filters. ``None``
+        (default) does so whenever more than one channel is measured;
+        ``False`` leaves the filters without them and lists them as trims.
+    channel_names : tuple of str or None
+        Name of each measured channel, in file order.
+    subwoofer : str or None
+        Name of the channel that is a subwoofer (it gets the low-pass, the
+        others the high-pass of the crossover).
+    crossover_range_hz : (float, float)
+        Frequencies the subwoofer crossover may be chosen from.
+    crossover_slope_db_oct : int
+        Linkwitz-Riley slope: 12, 24 (default) or 48 dB per octave.
+    level_band_hz : (float, float)
+        Band over which the main loudspeakers' levels are matched.
+    sub_level_band_hz : (float, float) or None
+        Band of the subwoofer's level match; ``None`` chooses its own band
+        below the crossover range.
+    formats : tuple of str
+        Filter file formats written (see :data:`FILTER_FORMATS`); ``wav``
+        (one file per channel and rate) is always written.
     phase : str
         ``"minimum"`` (no added latency) or ``"mixed"`` (also undo the
         loudspeaker's excess phase, late by ``latency_ms``).
@@ -95,6 +125,14 @@ class DesignSettings:
     iir_gain_range_db: tuple[float, float] = (-15.0, 4.0)
     iir_q_range: tuple[float, float] = (0.3, 12.0)
     temperature_c: float = 20.0
+    align: bool | None = None
+    channel_names: tuple[str, ...] | None = None
+    subwoofer: str | None = None
+    crossover_range_hz: tuple[float, float] = (50.0, 150.0)
+    crossover_slope_db_oct: int = 24
+    level_band_hz: tuple[float, float] = (500.0, 2000.0)
+    sub_level_band_hz: tuple[float, float] | None = None
+    formats: tuple[str, ...] = ("wav",)
     phase: str = "minimum"
     latency_ms: float = 20.0
 
@@ -183,6 +221,9 @@ NUMBER_RANGES: dict[str, tuple[float, float, str]] = {
     "iir_q_range": (0.05, 50.0, ""),
     "temperature_c": (-30.0, 60.0, "°C"),
     "latency_ms": (*LATENCY_RANGE_MS, "ms"),
+    "crossover_range_hz": (20.0, 300.0, "Hz"),
+    "level_band_hz": (10.0, 24000.0, "Hz"),
+    "sub_level_band_hz": (10.0, 24000.0, "Hz"),
 }
 _INTEGER_KEYS = {"taps", "iir_sections", "sample_rates"}
 _HINTS = {
@@ -207,7 +248,58 @@ def _num(key: str, value: Any) -> float:
     )
 
 
+def _coerce_system(key: str, value: Any) -> Any:
+    """Coerce the several-loudspeaker keys (align, names, subwoofer, crossover, formats)."""
+    if key == "align":
+        if value in (None, "auto"):
+            return None
+        if not isinstance(value, bool):
+            raise SettingsError(f'design.align: expected true, false or "auto", got {value!r}')
+        return value
+    if key in ("channel_names", "formats"):
+        if value is None and key == "channel_names":
+            return None
+        if isinstance(value, str):
+            value = [v.strip() for v in value.split(",")]
+        if not isinstance(value, list | tuple) or not value:
+            raise SettingsError(f"design.{key}: expected a list of names")
+        if not all(isinstance(v, str) for v in value):
+            raise SettingsError(f"design.{key}: expected names (text), got {value!r}")
+        return tuple(value)
+    if key == "subwoofer":
+        if value in (None, ""):
+            return None
+        if not isinstance(value, str):
+            raise SettingsError(f"design.subwoofer: expected a channel name, got {value!r}")
+        return value
+    if key == "crossover_slope_db_oct":
+        if isinstance(value, bool) or not isinstance(value, int | float) or value != int(value):
+            raise SettingsError(
+                f"design.crossover_slope_db_oct: expected a whole number, got {value!r}"
+            )
+        return int(value)
+    if key == "sub_level_band_hz":
+        if value in (None, "auto"):
+            return None
+        if not isinstance(value, list | tuple) or len(value) != 2:
+            raise SettingsError("design.sub_level_band_hz: expected two numbers [low, high]")
+        return (float(_num(key, value[0])), float(_num(key, value[1])))
+    raise KeyError(key)
+
+
+_SYSTEM_KEYS = (
+    "align",
+    "channel_names",
+    "subwoofer",
+    "crossover_slope_db_oct",
+    "sub_level_band_hz",
+    "formats",
+)
+
+
 def _coerce(key: str, value: Any) -> Any:
+    if key in _SYSTEM_KEYS:
+        return _coerce_system(key, value)
     default = getattr(DesignSettings(), key)
     if key in ("band_lo_hz", "band_hi_hz"):
         return None if value in (None, "auto") else float(_num(key, value))
@@ -312,7 +404,53 @@ def validate_design(d: DesignSettings) -> DesignSettings:
     if d.phase not in PHASE_CHOICES:
         raise SettingsError(f"design.phase: expected one of {', '.join(PHASE_CHOICES)}")
     _num("temperature_c", d.temperature_c)
+    validate_system(d)
     return d
+
+
+def validate_system(d: DesignSettings) -> None:
+    """Check the several-loudspeaker keys; raise :class:`SettingsError` naming the key."""
+    if d.channel_names is not None:
+        names = d.channel_names
+        if len(names) > MAX_CHANNELS:
+            raise SettingsError(
+                f"design.channel_names: {len(names)} names; at most {MAX_CHANNELS} channels"
+            )
+        for n in names:
+            if not n or not set(n) <= _NAME_CHARS or len(n) > 32:
+                raise SettingsError(
+                    f"design.channel_names: {n!r} is not a usable name; use letters, digits, "
+                    "- and _ (at most 32)"
+                )
+        if len(set(names)) != len(names):
+            raise SettingsError("design.channel_names: every channel needs its own name")
+        if d.subwoofer is not None and d.subwoofer not in names:
+            raise SettingsError(
+                f"design.subwoofer = {d.subwoofer!r}: not one of the channel names "
+                + ", ".join(names)
+            )
+    lo, hi = d.crossover_range_hz
+    if not (20.0 <= lo <= hi <= 300.0):
+        raise SettingsError(
+            f"design.crossover_range_hz = [{lo:g}, {hi:g}]: expected 20 <= low <= high <= 300 Hz"
+        )
+    if d.crossover_slope_db_oct not in CROSSOVER_SLOPES_DB_OCT:
+        raise SettingsError(
+            f"design.crossover_slope_db_oct = {d.crossover_slope_db_oct}: choose one of "
+            + ", ".join(str(s) for s in CROSSOVER_SLOPES_DB_OCT)
+            + " (Linkwitz-Riley 2nd, 4th or 8th order)"
+        )
+    for key in ("level_band_hz", "sub_level_band_hz"):
+        band = getattr(d, key)
+        if band is not None and not 10.0 <= band[0] < band[1] <= 24000.0:
+            raise SettingsError(f"design.{key}: expected 10 <= low < high <= 24000 Hz")
+    bad = [f for f in d.formats if f not in FILTER_FORMATS]
+    if bad:
+        raise SettingsError(
+            f"design.formats: {bad[0]!r} is not a filter format; choose from "
+            + ", ".join(FILTER_FORMATS)
+        )
+    d.formats = tuple(f for f in FILTER_FORMATS if f == "wav" or f in d.formats)
 
 
 def design_from_dict(values: dict[str, Any], base: DesignSettings | None = None) -> DesignSettings:

@@ -58,6 +58,7 @@ class MeasureSettings:
     outputs: tuple[int, ...] = (1, 2)
     input: int = 1
     loopback: tuple[int, int] | None = None  # (output, input) joined by a cable
+    names: tuple[str, ...] | None = None  # loudspeaker names, one per output (--names)
     positions: int = 1
     blocksize: int = 0  # 0 = let the audio system choose
     # gate limits
@@ -107,6 +108,11 @@ class MeasureSettings:
                 raise SettingsError("--loopback output must not be a loudspeaker output")
             if self.loopback[1] == self.input:
                 raise SettingsError("--loopback input must differ from the microphone input")
+        if self.names is not None and len(self.names) != len(self.outputs):
+            raise SettingsError(
+                f"--names gives {len(self.names)} names for {len(self.outputs)} outputs; "
+                "give one name per --outputs channel"
+            )
         if not self.outputs or any(int(c) < 1 for c in chans):
             raise SettingsError("channel numbers start at 1 (--outputs, --input, --loopback)")
         if self.reference is not None:
@@ -164,6 +170,8 @@ class MeasureSettings:
             d["outputs"] = tuple(int(c) for c in d["outputs"])
         if d.get("loopback") is not None:
             d["loopback"] = tuple(int(c) for c in d["loopback"])
+        if d.get("names") is not None:
+            d["names"] = tuple(str(n) for n in d["names"])
         s = cls(**d)
         s.validate()
         return s

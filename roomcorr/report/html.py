@@ -842,6 +842,10 @@ def build_report(
     if comparison is not None:
         sections.append(comparison_section(comparison))
         overview.paragraphs.append(_comparison_sentence(comparison))
+    if designed:
+        from roomcorr.report.system import system_sections
+
+        sections.extend(system_sections(curves, png))
     chans = [_channel(curves, ch, ctx) for ch in curves["channels"]]
     for sec_id, intro, build in CHANNEL_SECTIONS:
         sec = channel_section(sec_id, intro, chans, ctx, build)

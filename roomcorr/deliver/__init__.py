@@ -1,0 +1,1 @@
+"""Writers of a design's deliverables: filter formats, routes (see DESIGN.md)."""

@@ -1,0 +1,183 @@
+"""The several-loudspeaker part of a design folder: extra formats, routes, trims.
+
+Called from :func:`roomcorr.export.write_design` after the per-channel WAVs;
+adds files (extra formats) and manifest fields (``routes``, ``outputs``,
+``system``).
+"""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+
+from roomcorr.deliver.formats import MULTI_NAME, filter_files
+from roomcorr.deliver.routes import build_routes, output_trims
+from roomcorr.errors import OutputError
+
+if TYPE_CHECKING:
+    from roomcorr.pipeline import DesignResult
+
+
+def write_extra_formats(result: DesignResult, out: Path, sha256_of: Any) -> list[dict[str, Any]]:
+    """Write the filters in the formats chosen besides the per-channel WAV.
+
+    ``out`` is the folder the design is being built in (the caller swaps it
+    into place as a whole, or removes it).
+
+    Returns
+    -------
+    list of dict
+        Manifest entries (``kind`` ``fir``, ``format``, ``sample_rate``,
+        channel or channel list, ``sha256``).
+    """
+    names = [c.name for c in result.channels]
+    formats = result.settings.design.formats
+    if "multiwav" in formats and MULTI_NAME in names:
+        raise OutputError(
+            f"--names: a channel called {MULTI_NAME!r} collides with the multichannel file; "
+            "rename it"
+        )
+    entries: list[dict[str, Any]] = []
+    for rel, fmt, fs, ch, write in filter_files(result.firs, names, formats):
+        path = out / rel
+        write(path)
+        entry: dict[str, Any] = {"path": rel, "kind": "fir", "format": fmt, "sample_rate": fs}
+        if ch is None:
+            entry["channels"] = names
+        else:
+            entry.update(channel=ch, channel_name=names[ch])
+        entry["taps"] = int(result.firs[fs].shape[1])
+        entry["sha256"] = sha256_of(path)
+        entries.append(entry)
+    return entries
+
+
+def system_summary(result: DesignResult) -> dict[str, Any]:
+    """The ``system`` manifest object: what alignment and integration chose."""
+    plan = result.system
+    if plan is None:
+        return {}
+    doc: dict[str, Any] = {
+        "aligned_in_filters": plan.baked,
+        "temperature_c": plan.temperature_c,
+        "speed_of_sound_m_s": round(plan.c_m_s, 2),
+        "level_bands_hz": [list(b) for b in plan.level_band_hz],
+        "sub_route_gain_db": round(plan.sub_route_gain_db, 3),
+    }
+    integ = plan.integration
+    if integ is not None:
+        doc["crossover"] = {
+            "type": "Linkwitz-Riley",
+            "frequency_hz": round(integ.crossover_hz, 2),
+            "slope_db_per_octave": integ.slope_db_oct,
+            "subwoofer_delay_ms": round(float(plan.delay_s[plan.sub_index]) * 1000.0, 4),
+            "subwoofer_polarity": integ.sub_polarity,
+            "summed_rms_deviation_db": round(integ.rms_dev_db, 2),
+            "summed_rms_deviation_no_delay_db": round(integ.baseline_rms_dev_db, 2),
+            "centre_seat_deepest_dip_db": round(integ.centre_dip_db, 2),
+            "candidates_searched": integ.n_candidates,
+        }
+    return doc
+
+
+def system_curves(result: DesignResult) -> dict[str, Any]:
+    """Arrays for ``design.npz`` (keys prefixed ``sys_``): summed responses around the crossover.
+
+    ``sys_freq_hz`` (n_freqs,), ``sys_summed_measured_db``,
+    ``sys_summed_baseline_db`` and ``sys_summed_after_db`` (n_mains,
+    n_positions, n_freqs), ``sys_crossover_hz`` (with a subwoofer), and
+    ``sys_fields_json``, the manifest's ``outputs`` and ``system`` (for the
+    report). Empty for a single loudspeaker.
+    """
+    plan = result.system
+    if plan is None:
+        return {}
+    fields = {k: v for k, v in manifest_fields(result).items() if k != "routes"}
+    out: dict[str, Any] = {"sys_fields_json": np.array(json.dumps(fields))}
+    integ = plan.integration
+    if integ is None:
+        return out
+    return out | {
+        "sys_freq_hz": integ.freq_hz,
+        "sys_summed_measured_db": plan.summed_measured_db,
+        "sys_summed_baseline_db": integ.summed_baseline_db,
+        "sys_summed_after_db": integ.summed_after_db,
+        "sys_crossover_hz": np.array(integ.crossover_hz),
+    }
+
+
+def manifest_fields(result: DesignResult) -> dict[str, Any]:
+    """Manifest fields for routes, per-output trims and the system choices."""
+    names = [c.name for c in result.channels]
+    fields: dict[str, Any] = {"routes": build_routes(names, sorted(result.firs), result.system)}
+    if result.system is not None:
+        fields["outputs"] = output_trims(result.system)
+        fields["system"] = system_summary(result)
+    return fields
+
+
+def _samples_text(samples: dict[str, int]) -> str:
+    parts = [f"{n} at {int(fs) / 1000:g} kHz" for fs, n in samples.items()]
+    return "samples: " + ", ".join(parts)
+
+
+def system_sentences(fields: dict[str, Any]) -> list[str]:
+    """Plain-language lines on alignment and subwoofer integration.
+
+    Parameters
+    ----------
+    fields : dict
+        The manifest's ``outputs`` and ``system`` (:func:`manifest_fields`).
+    """
+    outputs = fields.get("outputs") or []
+    system = fields.get("system") or {}
+    if not outputs:
+        return []
+    where = (
+        "inside the filters"
+        if system.get("aligned_in_filters")
+        else "NOT in the filters: set them as trims on the playback device"
+    )
+    c = system.get("speed_of_sound_m_s")
+    lines = [
+        f"Alignment ({where}); distances at {system.get('temperature_c', 20):g} °C, "
+        f"c = {c} m/s (ISO 9613-1):"
+    ]
+    for o in outputs:
+        pol = "" if o["polarity"] > 0 else ", polarity inverted"
+        lines.append(
+            f"  {o['name']:>6}: delay {o['delay_ms']:6.3f} ms ({_samples_text(o['delay_samples'])})"
+            f" = {o['distance_m']:.3f} m, level trim {o['gain_db']:+.2f} dB{pol}"
+        )
+    xo = system.get("crossover")
+    if xo:
+        pol = "normal" if xo["subwoofer_polarity"] > 0 else "inverted"
+        f = xo["frequency_hz"]
+        main_ms = [o["delay_ms"] for o in outputs if o["role"] != "sub"]
+        span = (
+            f"{min(main_ms):.2f}"
+            if max(main_ms) - min(main_ms) < 0.005
+            else (f"{min(main_ms):.2f} to {max(main_ms):.2f}")
+        )
+        lines.append(
+            f"Subwoofer: crossover {f:.0f} Hz, Linkwitz-Riley {xo['slope_db_per_octave']} "
+            "dB/octave (12, 24 and 48 dB/octave are offered); subwoofer delay "
+            f"{xo['subwoofer_delay_ms']:.2f} ms (mains {span} ms), polarity {pol}. "
+            "Chosen because the summed "
+            f"response from {f / 2:.0f} to {2 * f:.0f} Hz is then smoothest and loudest over "
+            f"all positions: {xo['summed_rms_deviation_db']:.1f} dB RMS deviation from its "
+            f"mean (1/6 octave, averaged over positions and mains) against "
+            f"{xo['summed_rms_deviation_no_delay_db']:.1f} dB with the same crossover but no "
+            f"delay and normal polarity; deepest dip at the first position "
+            f"{xo['centre_seat_deepest_dip_db']:.1f} dB. "
+            f"{xo['candidates_searched']} candidates searched."
+        )
+        lines.append(
+            "Each main input also feeds the subwoofer output at "
+            f"{system.get('sub_route_gain_db', 0):+.2f} dB (routes in manifest.json). "
+            "Respect the subwoofer's excursion limits and start quietly."
+        )
+    return lines
