@@ -102,6 +102,12 @@ def test_loud_level_needs_permission_and_warns(offline_room, tmp_path):
     assert lines[0].startswith("WARNING") and "-6" in lines[0]
 
 
+#: Short sweeps, one loudspeaker, two positions, no prompts.
+QUICK_TWO_POSITIONS = (
+    "--outputs 1 --positions 2 --yes --plain --sweep-seconds 0.5 --repeats 1 --ir-seconds 0.2"
+).split()
+
+
 class FakeSoundDevice:
     """Stand-in for the sounddevice module: one full-duplex device whose input hears its
     output 300 samples later at half level. From capture number ``vanish_at`` on, the
@@ -193,27 +199,7 @@ def test_device_disappearing_mid_sweep_keeps_earlier_positions(monkeypatch, tmp_
     fake = FakeSoundDevice(vanish_at=3)  # level check, position 1, then position 2 vanishes
     monkeypatch.setattr(capture, "_sd", lambda: fake)
     out = tmp_path / "s"
-    status = cli.main(
-        [
-            "measure",
-            "--device",
-            "invented",
-            "--outputs",
-            "1",
-            "--positions",
-            "2",
-            "--yes",
-            "--plain",
-            "--sweep-seconds",
-            "0.5",
-            "--repeats",
-            "1",
-            "--ir-seconds",
-            "0.2",
-            "--out",
-            str(out),
-        ]
-    )
+    status = cli.main(["measure", "--device", "invented", *QUICK_TWO_POSITIONS, "--out", str(out)])
     err = capsys.readouterr().err.strip().splitlines()
     assert status == 2 and len(err) == 1
     assert "invented USB interface" in err[0] and "disconnected" in err[0]
@@ -259,23 +245,7 @@ def test_resume_in_a_room_folder_continues_in_a_new_run(offline_room, monkeypatc
         return real(*a, **k)
 
     monkeypatch.setattr(capture, "play_record", interrupted)
-    args = [
-        "measure",
-        "--room",
-        str(room.root),
-        "--outputs",
-        "1",
-        "--positions",
-        "2",
-        "--yes",
-        "--plain",
-        "--sweep-seconds",
-        "0.5",
-        "--repeats",
-        "1",
-        "--ir-seconds",
-        "0.2",
-    ]
+    args = ["measure", "--room", str(room.root), *QUICK_TWO_POSITIONS]
     assert cli.main(args) == 130
     first = rooms.list_runs(room, "measurement")
     assert len(first) == 1 and not first[0].complete
