@@ -82,6 +82,13 @@ def _add_design_options(p: argparse.ArgumentParser) -> None:
     g.add_argument("--band-lo", type=_finite, metavar="HZ", help="lowest corrected frequency")
     g.add_argument("--band-hi", type=_finite, metavar="HZ", help="highest corrected frequency")
     g.add_argument("--max-boost", type=_finite, metavar="DB", help="boost cap (default 4 dB)")
+    g.add_argument(
+        "--speaker-low-hz",
+        type=_finite,
+        metavar="HZ",
+        help="your loudspeakers' own low limit (e.g. their -3 dB corner): the filters never "
+        "raise the bass below it (default: the measured roll-off or 80 Hz, the higher)",
+    )
     g.add_argument("--max-cut", type=_finite, metavar="DB", help="cut cap (default 15 dB)")
     g.add_argument(
         "--taps", type=_whole, metavar="N", help="FIR taps at 48 kHz (other rates: same duration)"
@@ -197,6 +204,7 @@ _OPTION_KEYS = {
     "band_lo": "band_lo_hz",
     "band_hi": "band_hi_hz",
     "max_boost": "max_boost_db",
+    "speaker_low_hz": "speaker_low_hz",
     "max_cut": "max_cut_db",
     "taps": "taps",
     "rates": "sample_rates",
@@ -232,6 +240,15 @@ def settings_from_args(args: argparse.Namespace, base: Any = None) -> Any:
     return settings
 
 
+def _print_area_lines(ch: Any) -> None:
+    """Bass limit and the leave-one-position-out prediction of one channel (design/area.py)."""
+    from roomcorr.design.area import area_fields_of
+    from roomcorr.report.summary import area_sentences
+
+    for line in area_sentences(area_fields_of(ch), ch.name):
+        print(f"          {line.split(': ', 1)[1]}")
+
+
 def _print_design_summary(result: Any, out: Path, entries: list[dict]) -> None:
     import numpy as np
 
@@ -253,6 +270,7 @@ def _print_design_summary(result: Any, out: Path, entries: list[dict]) -> None:
             f"  {ch.name:>6}: band {lo:6.0f} Hz - {hi:6.0f} Hz | largest boost {boost:4.1f} dB, "
             f"largest cut {cut:5.1f} dB | peak gain {peak:+.2f} dB, worst-case gain {worst:+.2f} dB"
         )
+        _print_area_lines(ch)
         if withheld.size and withheld.max() > 1.0:
             i = int(np.argmax(withheld))
             f0 = result.freq_hz[inband][i]

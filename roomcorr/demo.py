@@ -307,6 +307,41 @@ def _image_sources(
     return images
 
 
+def early_spectrum(
+    freq_hz: np.ndarray,
+    images: list[tuple[np.ndarray, tuple[int, ...]]],
+    mic: np.ndarray,
+    beta: np.ndarray,
+    wall: np.ndarray,
+    c: float,
+) -> np.ndarray:
+    """Direct sound and image sources at one microphone, ``sum g e^{-jωr/c} / (4πr)``.
+
+    Parameters
+    ----------
+    freq_hz : ndarray, shape (n_freqs,)
+    images : list of (position, reflection counts per wall), from :func:`_image_sources`
+    mic : ndarray, shape (3,)
+    beta : ndarray, shape (6,)
+        Pressure reflection factor of each wall, ``sqrt(1 - α)``.
+    wall : ndarray, shape (n_freqs,)
+        Treble loss of one reflection (applied once per reflection).
+    c : float
+        Speed of sound, m/s.
+
+    Returns
+    -------
+    ndarray, shape (n_freqs,), complex
+    """
+    early = np.zeros(freq_hz.size, dtype=complex)
+    for img, counts in images:
+        r = float(np.linalg.norm(img - mic))
+        order = sum(counts)
+        gain = float(np.prod(beta ** np.asarray(counts))) / (4.0 * np.pi * r)
+        early += gain * wall**order * np.exp(-2j * np.pi * freq_hz * r / c)
+    return early
+
+
 def _shelf(freq_hz: np.ndarray, f_lo: float, f_hi: float) -> np.ndarray:
     """First-order shelf (1 + s/w_hi) / (1 + s/w_lo): gain f_lo/f_hi above f_hi (min-phase)."""
     s = 2j * np.pi * freq_hz
@@ -418,12 +453,7 @@ def synthesize_demo_room(
         images = _image_sources(src, dims)
         speaker = _speaker_response(freq_hz, spk)
         for pos, mic in enumerate(mics):
-            early = np.zeros(freq_hz.size, dtype=complex)
-            for img, counts in images:
-                r = float(np.linalg.norm(img - mic))
-                order = sum(counts)
-                gain = float(np.prod(beta ** np.asarray(counts))) / (4.0 * np.pi * r)
-                early += gain * wall**order * np.exp(-2j * np.pi * freq_hz * r / c)
+            early = early_spectrum(freq_hz, images, mic, beta, wall, c)
             r_direct = float(np.linalg.norm(src - mic))
             direct_delay[pos, ch] = r_direct / c
             t0 = r_direct / c

@@ -41,6 +41,7 @@ from roomcorr.atomic import (
 )
 from roomcorr.audio_io import write_wav
 from roomcorr.deliver.system import manifest_fields, system_curves, write_extra_formats
+from roomcorr.design.area import area_arrays_of, area_fields_of
 from roomcorr.design.mixedphase import from_arrays as mixed_phase_from_arrays
 from roomcorr.design.mixedphase import latency_record
 from roomcorr.design.mixedphase import to_arrays as mixed_phase_arrays
@@ -312,6 +313,7 @@ def _curves_dict(result: DesignResult) -> dict[str, np.ndarray]:
         ):
             data[f"ch{c.index}_{key}"] = getattr(c, key)
         data[f"ch{c.index}_band_hz"] = np.array(c.band_hz)
+        data.update({f"ch{c.index}_{k}": v for k, v in area_arrays_of(c).items()})
     for fs, h in result.firs.items():
         data[f"fir_{fs}"] = h
     data.update(system_curves(result))
@@ -479,7 +481,8 @@ def _write_design_files(
         "generator": "roomcorr",
         "pre_gain_db": round(result.pre_gain_db, 3),
         "channels": [
-            {"index": c.index, "name": c.name, "band_hz": list(c.band_hz)} for c in result.channels
+            {"index": c.index, "name": c.name, "band_hz": list(c.band_hz), **area_fields_of(c)}
+            for c in result.channels
         ],
         "files": entries,
         "settings": settings_to_dict(result.settings),

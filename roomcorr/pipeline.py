@@ -15,20 +15,22 @@ from pathlib import Path
 import numpy as np
 
 from roomcorr.analysis.average import power_average
+from roomcorr.analysis.balance import steady_balance_set
 from roomcorr.analysis.onset import find_onset
 from roomcorr.analysis.smoothing import smooth_log_grid, variable_width_oct
 from roomcorr.analysis.window import fdw_power
 from roomcorr.audio_io import read_curve_file
 from roomcorr.checked import regular_file
 from roomcorr.design.align import SystemPlan, apply_plan, plan_system, subwoofer_band_hz
+from roomcorr.design.area import Prediction, design_channel
 from roomcorr.design.correction import align_target, correction_curve
 from roomcorr.design.fir import default_n_taps, synthesize_fir
 from roomcorr.design.mixedphase import MixedPhaseDesign, apply_mixed_phase
 from roomcorr.design.safety import FilterStats, apply_safety
-from roomcorr.design.target import auto_band, target_from_points, target_from_table
+from roomcorr.design.target import AUTO_LIMITS_HZ, target_from_points, target_from_table
 from roomcorr.errors import InputFileError, SettingsError
 from roomcorr.grid import interp_log, log_grid, points_per_octave_of
-from roomcorr.settings import Settings, find_preset, is_preset_name, read_toml
+from roomcorr.settings import DesignSettings, Settings, find_preset, is_preset_name, read_toml
 
 __all__ = [
     "ChannelDesign",
@@ -59,6 +61,14 @@ class ChannelDesign:
     correction_db: np.ndarray
     boost_withheld_db: np.ndarray
     band_hz: tuple[float, float]
+    #: The loudspeaker's low limit below which the drive is never raised, and how
+    #: it was found ("stated", "measured", "assumed"); see roomcorr.design.area.
+    speaker_low_hz: float | None = None
+    speaker_low_how: str | None = None
+    #: Leave-one-position-out prediction (None with fewer than three positions).
+    prediction: Prediction | None = None
+    #: Where the listening-area rules held the correction back (dB, >= 0).
+    held_back_db: np.ndarray | None = None
 
 
 @dataclass
@@ -180,6 +190,45 @@ def fir_taps_for(fs: int, taps_48k: int | None, band_lo_hz: float) -> int:
     return max(256, int(round(taps_48k * fs / 48000)))
 
 
+def _subwoofer_channel(
+    c: int,
+    name: str,
+    freq: np.ndarray,
+    measured_c: np.ndarray,
+    arrival_c: np.ndarray,
+    weights: np.ndarray | None,
+    target_shape: np.ndarray,
+    d: DesignSettings,
+    fs: int,
+) -> ChannelDesign:
+    """A subwoofer channel: band from its crossover range, target level over its band."""
+    ppo = points_per_octave_of(freq)
+    avg, spread = power_average(measured_c, weights)
+    wide = 10 * np.log10(smooth_log_grid(10 ** (avg / 10), ppo, BAND_SMOOTHING_OCT))
+    lo, hi = subwoofer_band_hz(freq, wide, d.crossover_range_hz)
+    band = (d.band_lo_hz or lo, d.band_hi_hz or min(hi, fs / 2 * 0.95))
+    if band[0] >= band[1]:
+        raise SettingsError(
+            f"channel {name}: correction band {band[0]:.0f}-{band[1]:.0f} Hz is empty; "
+            "set --band-lo/--band-hi"
+        )
+    target = align_target(freq, avg, target_shape, band)
+    corr = correction_curve(freq, avg, spread, target, band, d.max_boost_db, d.max_cut_db)
+    return ChannelDesign(
+        index=c,
+        name=name,
+        arrival_s=arrival_c.copy(),
+        measured_db=measured_c.copy(),
+        average_db=avg,
+        spread_db=spread,
+        target_db=target,
+        raw_correction_db=corr.raw_db,
+        correction_db=corr.correction_db,
+        boost_withheld_db=corr.boost_withheld_db,
+        band_hz=(float(band[0]), float(band[1])),
+    )
+
+
 def run_design(
     irs: np.ndarray,
     fs: int,
@@ -213,38 +262,52 @@ def run_design(
             )
         weights = np.asarray(d.position_weights)
     freq = log_grid()
-    ppo = points_per_octave_of(freq)
     target_shape = resolve_target(freq, d.target)
     cal = resolve_calibration(freq, d.calibration)
     measured, arrival = analyse_positions(irs, fs, freq, cal)
+    # Broad balance from the steady state, detail from the window (analysis/balance.py).
+    measured = steady_balance_set(irs, fs, freq, measured, arrival)
     channels: list[ChannelDesign] = []
     for c in range(n_ch):
-        avg, spread = power_average(measured[:, c], weights)
-        wide = 10 * np.log10(smooth_log_grid(10 ** (avg / 10), ppo, BAND_SMOOTHING_OCT))
-        lo, hi = auto_band(freq, wide)
         if names[c] == d.subwoofer:
-            lo, hi = subwoofer_band_hz(freq, wide, d.crossover_range_hz)
-        band = (d.band_lo_hz or lo, d.band_hi_hz or min(hi, fs / 2 * 0.95))
-        if band[0] >= band[1]:
-            raise SettingsError(
-                f"channel {names[c]}: correction band {band[0]:.0f}-{band[1]:.0f} Hz is empty; "
-                "set --band-lo/--band-hi"
+            # A subwoofer's band and level come from its own range (design/align.py).
+            channels.append(
+                _subwoofer_channel(
+                    c, names[c], freq, measured[:, c], arrival[:, c], weights, target_shape, d, fs
+                )
             )
-        target = align_target(freq, avg, target_shape, band)
-        corr = correction_curve(freq, avg, spread, target, band, d.max_boost_db, d.max_cut_db)
+            continue
+        plan = design_channel(
+            freq,
+            measured[:, c],
+            target_shape,
+            weights=weights,
+            band_lo_hz=d.band_lo_hz,
+            band_hi_hz=d.band_hi_hz,
+            band_limits_hz=(AUTO_LIMITS_HZ[0], min(AUTO_LIMITS_HZ[1], fs / 2 * 0.95)),
+            speaker_low_hz=d.speaker_low_hz,
+            max_boost_db=d.max_boost_db,
+            max_cut_db=d.max_cut_db,
+            name=names[c],
+            shrink=not d.subwoofer,
+        )
         channels.append(
             ChannelDesign(
                 index=c,
                 name=names[c],
                 arrival_s=arrival[:, c].copy(),
                 measured_db=measured[:, c].copy(),
-                average_db=avg,
-                spread_db=spread,
-                target_db=target,
-                raw_correction_db=corr.raw_db,
-                correction_db=corr.correction_db,
-                boost_withheld_db=corr.boost_withheld_db,
-                band_hz=(float(band[0]), float(band[1])),
+                average_db=plan.average_db,
+                spread_db=plan.spread_db,
+                target_db=plan.target_db,
+                raw_correction_db=plan.raw_db,
+                correction_db=plan.correction_db,
+                boost_withheld_db=plan.boost_withheld_db,
+                band_hz=plan.band_hz,
+                speaker_low_hz=plan.speaker_low_hz,
+                speaker_low_how=plan.speaker_low_how,
+                prediction=plan.prediction,
+                held_back_db=plan.held_back_db,
             )
         )
     lowest = min(ch.band_hz[0] for ch in channels)

@@ -106,6 +106,10 @@ class DesignSettings:
         loudspeaker's excess phase, late by ``latency_ms``).
     latency_ms : float
         Latency budget of a mixed-phase design, ms.
+    speaker_low_hz : float or None
+        The loudspeakers' own low-frequency limit (e.g. their -3 dB corner);
+        below it the filters never raise the drive. ``None`` puts the limit
+        at the measured roll-off or an assumed 80 Hz, whichever is higher.
     """
 
     target: str = "flat"
@@ -135,6 +139,7 @@ class DesignSettings:
     formats: tuple[str, ...] = ("wav",)
     phase: str = "minimum"
     latency_ms: float = 20.0
+    speaker_low_hz: float | None = None
 
 
 #: Choices of ``DesignSettings.phase``.
@@ -224,6 +229,7 @@ NUMBER_RANGES: dict[str, tuple[float, float, str]] = {
     "crossover_range_hz": (20.0, 300.0, "Hz"),
     "level_band_hz": (10.0, 24000.0, "Hz"),
     "sub_level_band_hz": (10.0, 24000.0, "Hz"),
+    "speaker_low_hz": (10.0, 1000.0, "Hz"),
 }
 _INTEGER_KEYS = {"taps", "iir_sections", "sample_rates"}
 _HINTS = {
@@ -301,7 +307,7 @@ def _coerce(key: str, value: Any) -> Any:
     if key in _SYSTEM_KEYS:
         return _coerce_system(key, value)
     default = getattr(DesignSettings(), key)
-    if key in ("band_lo_hz", "band_hi_hz"):
+    if key in ("band_lo_hz", "band_hi_hz", "speaker_low_hz"):
         return None if value in (None, "auto") else float(_num(key, value))
     if key in ("calibration",):
         if value in (None, ""):
@@ -356,7 +362,7 @@ def validate_design(d: DesignSettings) -> DesignSettings:
     """
     _num("max_boost_db", d.max_boost_db)
     _num("max_cut_db", d.max_cut_db)
-    for key in ("band_lo_hz", "band_hi_hz"):
+    for key in ("band_lo_hz", "band_hi_hz", "speaker_low_hz"):
         v = getattr(d, key)
         if v is not None:
             _num(key, v)

@@ -5,8 +5,10 @@ from __future__ import annotations
 import numpy as np
 import pytest
 from conftest import REPO
+from scipy.ndimage import maximum_filter1d
 
 from roomcorr.analysis.average import power_average
+from roomcorr.analysis.balance import steady_balance_db
 from roomcorr.analysis.smoothing import smooth_log_grid
 from roomcorr.analysis.window import fdw_power
 from roomcorr.audio_io import read_ir_set
@@ -27,7 +29,9 @@ def _corrected_average_db(result, fs: int) -> np.ndarray:
     The convolution is done in the frequency domain: each position's
     frequency-dependent-windowed power spectrum times the filter's |H|^2 (the
     window judges the room's reflections; it must not truncate the filter's
-    own, deliberate impulse response). The filter's pre-gain is removed so the
+    own, deliberate impulse response). The windowed level's broad trend above
+    the modal range is exchanged for the steady state's, as the design does
+    (roomcorr.analysis.balance). The filter's pre-gain is removed so the
     result compares with the target's level.
     """
     h = result.firs[fs] * 10 ** (-result.pre_gain_db / 20)
@@ -38,17 +42,24 @@ def _corrected_average_db(result, fs: int) -> np.ndarray:
         per_pos = []
         for p in range(result.irs.shape[0]):
             onset = ch.arrival_s[p] * result.fs_in
-            power = fdw_power(result.irs[p, ch.index], result.fs_in, onset, f)
-            per_pos.append(10 * np.log10(smooth_log_grid(power * 10 ** (h_db / 10), 96, 1 / 6)))
+            ir = result.irs[p, ch.index]
+            power = fdw_power(ir, result.fs_in, onset, f)
+            level_db = 10 * np.log10(smooth_log_grid(power, 96, 1 / 6))
+            shift_db = steady_balance_db(ir, result.fs_in, onset, f, level_db) - level_db
+            filtered = smooth_log_grid(power * 10 ** (h_db / 10), 96, 1 / 6)
+            per_pos.append(10 * np.log10(filtered) + shift_db)
         out.append(power_average(np.array(per_pos))[0])
     return np.array(out)
 
 
 def test_corrected_response_meets_target(demo_design):
     """Inside the band the corrected response is within ±1.5 dB of the target,
-    except where boost was withheld (deep dips, position disagreement, cap) or
-    a cut reached the cut cap; those regions are widened by 1/6 octave on each
-    side, the reach of the evaluation smoothing."""
+    except where a cut reached the cut cap (excluded) or the design documents
+    a deliberate shortfall: boost withheld (deep dips, position disagreement,
+    cap; ``boost_withheld_db``) or correction held back by the listening-area
+    rules (``held_back_db``). There the deviation may exceed 1.5 dB by no more
+    than the documented amount (taken as its largest value within 1/6 octave,
+    the reach of the evaluation smoothing)."""
     r = demo_design
     fs = 48000
     corrected = _corrected_average_db(r, fs)
@@ -57,17 +68,16 @@ def test_corrected_response_meets_target(demo_design):
     for ch, got in zip(r.channels, corrected, strict=True):
         lo, hi = ch.band_hz
         inband = (f >= lo * 2**0.5) & (f <= hi / 2**0.5)  # leave the edge fades
-        limited = (ch.boost_withheld_db > 0.25) | (
-            ch.raw_correction_db < -r.settings.design.max_cut_db
-        )
+        limited = ch.raw_correction_db < -r.settings.design.max_cut_db
         grow = int(96 / 6)
         limited = np.convolve(limited.astype(float), np.ones(2 * grow + 1), "same") > 0
+        documented = maximum_filter1d(ch.boost_withheld_db + ch.held_back_db, 2 * grow + 1)
         ok = inband & ~limited
         # with alignment on (the default for two channels) the level trim is in the filter
         trim = r.system.trim_db[ch.index] if r.system is not None and r.system.baked else 0.0
-        err = got - (ch.target_db + trim)
+        err = np.abs(got - (ch.target_db + trim)) - documented
         assert ok.sum() > 150  # over 1.5 octaves of the band checked per channel
-        assert np.max(np.abs(err[ok])) <= 1.5, f"{ch.name}: {np.max(np.abs(err[ok])):.2f} dB"
+        assert np.max(err[ok]) <= 1.5, f"{ch.name}: {np.max(err[ok]):.2f} dB"
         checked += ok.sum()
     assert checked > 350
 

@@ -12,6 +12,8 @@ from typing import Any
 
 import numpy as np
 
+from roomcorr.design.area import area_fields_of
+
 #: Smallest change worth a sentence, dB.
 NOTABLE_DB = 2.0
 #: Refused boost below this is not mentioned, dB.
@@ -45,6 +47,7 @@ def curves_from_result(result: Any) -> dict[str, Any]:
                 "correction_db": c.correction_db,
                 "boost_withheld_db": c.boost_withheld_db,
                 "band_hz": tuple(c.band_hz),
+                **area_fields_of(c),
             }
         )
     return {
@@ -235,11 +238,66 @@ def channel_sentences(
             f"{name}: between {fmt_hz(f[a])} and {fmt_hz(f[b - 1])} the positions disagree by "
             "more than 3 dB, so the correction there follows their average and stays gentle."
         )
+    out.extend(area_sentences(ch, name))
     out.append(
         f"{name}: below {fmt_hz(lo)} and above {fmt_hz(hi)}, outside the correction band, "
         "nothing was changed: lifting a loudspeaker's own roll-off would only cost excursion "
         "and headroom."
     )
+    return out
+
+
+_FOUND_BY = {
+    "stated": "the limit you stated",
+    "measured": "where the measured response rolls off",
+    "assumed": "an assumed limit, since a room hides a loudspeaker's own roll-off; "
+    "state yours with --speaker-low-hz",
+}
+
+
+def area_sentences(ch: dict[str, Any], name: str) -> list[str]:
+    """Plain words on the bass limit and the leave-one-position-out prediction of a channel.
+
+    Parameters
+    ----------
+    ch : dict
+        One channel's curves; uses ``speaker_low_hz``, ``speaker_low_found_by``,
+        ``cv_band_hz``, ``cv_uncorrected_db``, ``cv_predicted_db``,
+        ``cv_positions`` and ``cv_flagged`` when present (designs made before
+        they existed have none, and get no sentence).
+    name : str
+        Channel name as it starts each sentence.
+
+    Returns
+    -------
+    list of str
+    """
+    out = []
+    if ch.get("speaker_low_hz") is not None:
+        low = float(np.asarray(ch["speaker_low_hz"]))
+        how = str(np.asarray(ch.get("speaker_low_found_by", "assumed")))
+        out.append(
+            f"{name}: below {fmt_hz(low)} the filter never raises the bass above its midrange "
+            f"level ({_FOUND_BY.get(how, how)}), so the woofer is not driven harder where it "
+            "has least to give."
+        )
+    if ch.get("cv_predicted_db") is not None:
+        before = float(np.asarray(ch["cv_uncorrected_db"]))
+        after = float(np.asarray(ch["cv_predicted_db"]))
+        band = np.asarray(ch["cv_band_hz"], dtype=float)
+        n = int(np.asarray(ch.get("cv_positions", 0)))
+        out.append(
+            f"{name}: at seats you did not measure, expect the bass ({fmt_hz(band[0])} to "
+            f"{fmt_hz(band[1])}) to vary by about {after:.1f} dB instead of {before:.1f} dB "
+            f"(predicted by designing without each of the {n} positions in turn and checking "
+            "the one left out)."
+        )
+        flagged = np.asarray(ch.get("cv_flagged", np.zeros((0, 3))), dtype=float).reshape(-1, 3)
+        for pos, freq, depth in flagged:
+            out.append(
+                f"{name}: position {int(pos)} sits in a cancellation near {fmt_hz(freq)} "
+                f"({depth:.0f} dB below the other positions); the correction does not follow it."
+            )
     return out
 
 

@@ -1,0 +1,1 @@
+"""Deterministic simulated evaluation rooms and the correction's figures of merit."""
