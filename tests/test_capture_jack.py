@@ -12,7 +12,7 @@ import sys
 import numpy as np
 import pytest
 import soundfile as sf
-from jack_fixtures import FS, jack_server, make_room  # noqa: F401  (pytest fixtures)
+from jack_fixtures import FS, jack_server, make_room, run_measure  # noqa: F401  (pytest fixtures)
 
 from roomcorr.errors import DeviceError
 from roomcorr.measure import capture
@@ -224,38 +224,31 @@ def test_cli_measure_deconvolve_design(make_room, tmp_path):  # noqa: F811
     cfg.write_text("[measure]\nnoise_s = 0.2\ntail_s = 0.35\ntest_s = 0.2\n")
     out = tmp_path / "session"
     cmd = [sys.executable, "-m", "roomcorr"]
-    for attempt in range(3):
-        r = subprocess.run(
-            cmd
-            + [
-                "measure",
-                "--device",
-                "roomsim_d",
-                "--outputs",
-                "1",
-                "--input",
-                "1",
-                "--loopback",
-                "2,2",
-                "--yes",
-                "--out",
-                str(out),
-                "--settings",
-                str(cfg),
-                "--sweep-seconds",
-                "0.5",
-                "--repeats",
-                "1",
-                "--ir-seconds",
-                "0.2",
-                "--replace",
-            ],
-            capture_output=True,
-            text=True,
-            timeout=120,
-        )
-        if r.returncode == 0 or "buffers dropped" not in r.stderr or attempt == 2:
-            break  # retry only dropped buffers on a loaded machine (see above)
+    r = run_measure(
+        [
+            "--device",
+            "roomsim_d",
+            "--outputs",
+            "1",
+            "--input",
+            "1",
+            "--loopback",
+            "2,2",
+            "--yes",
+            "--out",
+            str(out),
+            "--settings",
+            str(cfg),
+            "--sweep-seconds",
+            "0.5",
+            "--repeats",
+            "1",
+            "--ir-seconds",
+            "0.2",
+            "--replace",
+        ],
+        timeout=120,
+    )
     assert r.returncode == 0, r.stderr
     assert "protect your hearing" in r.stdout
     played, _ = sf.read(out / "raw" / "playback.wav")
