@@ -501,22 +501,67 @@ def _run_report(args: argparse.Namespace) -> int:
 
 
 def _add_devices(sub: Any) -> argparse.ArgumentParser:
-    return sub.add_parser(
+    p = sub.add_parser(
         "devices",
-        help="list audio devices with their channel counts and default rates",
-        description="List the audio devices PortAudio sees (needs the 'measure' extra).",
+        help="list audio devices: which can play, which can record, which were used last",
+        description="List the audio devices PortAudio sees, marking which can play (for "
+        "--output-device) and which can record (for --input-device), the system defaults "
+        "and, inside a room folder, the pair used by its latest measurement.",
     )
+    p.add_argument("--room", metavar="ROOM_DIR", help="room folder (default: the one you are in)")
+    return p
+
+
+def _last_devices(room_arg: str | None) -> dict | None:
+    """Devices of the room's latest measurement that recorded them (or None)."""
+    import json
+
+    from roomcorr import room as rooms
+
+    try:
+        room = rooms.open_room(room_arg) if room_arg else rooms.find_room()
+        if room is None:
+            return None
+        for run in reversed(rooms.list_runs(room, "measurement")):
+            path = Path(run.path) / "measurement.json"
+            if path.is_file():
+                devs = json.loads(path.read_text(encoding="utf-8")).get("devices")
+                if isinstance(devs, dict):
+                    return devs
+    except (RoomcorrError, OSError, ValueError, AttributeError):
+        return None
+    return None
 
 
 def _run_devices(args: argparse.Namespace) -> int:
+    from roomcorr.errors import DeviceError
     from roomcorr.measure.capture import list_devices
 
     devs = list_devices()
     if not devs:
-        print("no audio devices found")
+        raise DeviceError(
+            "no audio devices found: plug in the microphone and the output, close programs "
+            "that hold them, then run 'roomcorr devices' again"
+        )
+    last = _last_devices(getattr(args, "room", None)) or {}
     for d in devs:
-        print(f"{d['index']:3d}  {d['name']}  [{d['hostapi']}]  in {d['max_input_channels']}, "
-              f"out {d['max_output_channels']}, default {d['default_samplerate']:g} Hz")
+        can = [w for w, n in (("play", d["max_output_channels"]),
+                              ("record", d["max_input_channels"])) if n > 0]
+        marks = []
+        if d.get("default_input"):
+            marks.append("default input")
+        if d.get("default_output"):
+            marks.append("default output")
+        if last.get("input") == d["name"]:
+            marks.append("last used input here")
+        if last.get("output") == d["name"]:
+            marks.append("last used output here")
+        note = f"  <- {', '.join(marks)}" if marks else ""
+        print(f"{d['index']:3d}  {d['name']}  [{d['hostapi']}]  {'+'.join(can) or '-':11s} "
+              f"in {d['max_input_channels']}, out {d['max_output_channels']}, "
+              f"default {d['default_samplerate']:g} Hz{note}")
+    print("use the number or part of the name: --input-device for the microphone, "
+          "--output-device for the loudspeakers (--device for both)")
     return 0
 
 
@@ -545,7 +590,15 @@ def _add_measure(sub: Any) -> argparse.ArgumentParser:
     )
     p.add_argument("--room", metavar="ROOM_DIR", help="room folder (default: the one you are in)")
     p.add_argument("--settings", metavar="FILE", help="settings TOML; its [measure] table")
-    p.add_argument("--device", help="device name (part of it) or index; see 'roomcorr devices'")
+    p.add_argument("--device", help="device for both playing and recording: name part or "
+                   "number from 'roomcorr devices'")
+    p.add_argument("--input-device", metavar="DEVICE",
+                   help="the microphone's device (e.g. a USB microphone), if not --device")
+    p.add_argument("--output-device", metavar="DEVICE",
+                   help="the loudspeakers' device (headphone/HDMI output, USB DAC), if not "
+                   "--device")
+    p.add_argument("--two-streams", action="store_true", default=None,
+                   help="play and record with separate streams even on one device")
     p.add_argument("--outputs", type=_int_list, metavar="1,2",
                    help="output channel of each loudspeaker (default 1,2)")
     p.add_argument("--names", type=_name_list, metavar="A,B",
@@ -564,9 +617,34 @@ def _add_measure(sub: Any) -> argparse.ArgumentParser:
     p.add_argument("--allow-loud", action="store_true",
                    help=f"allow a sweep level above {LEVEL_CAP_DBFS:g} dBFS (prints a warning)")
     p.add_argument("--ir-seconds", type=_finite, metavar="S", help="impulse response length")
-    p.add_argument("--yes", action="store_true", help="do not wait for Enter between positions")
-    p.add_argument("--force", action="store_true", help="keep recordings that fail a gate")
+    p.add_argument("--reference", type=_whole, metavar="N",
+                   help="output of the timing-reference loudspeaker: its short markers before "
+                   "and after every sweep fix the timing and the clock drift (default: the "
+                   "first of --outputs)")
+    p.add_argument("--no-markers", action="store_true",
+                   help="no timing markers (arrival times then include the system latency)")
+    p.add_argument("--mic-sensitivity", type=_finite, metavar="DBFS",
+                   help="microphone sensitivity: dBFS read for 94 dB SPL (from 'roomcorr "
+                   "calibrate-mic'); levels are then shown in dB SPL")
+    p.add_argument("--mic-calibration", metavar="FILE",
+                   help="microphone calibration file whose header holds "
+                   "'# sensitivity_dbfs = X'")
+    p.add_argument("--blocksize", type=_whole, metavar="FRAMES",
+                   help="frames per audio buffer (default: the audio system's choice); "
+                   "raise it (e.g. 2048) when buffers are dropped")
+    p.add_argument("--yes", action="store_true",
+                   help="do not wait for Enter between positions; a position failing a check "
+                   "is skipped")
+    p.add_argument("--force", action="store_true",
+                   help="keep recordings that fail a gate (also a clock drift above the limit)")
     p.add_argument("--replace", action="store_true", help="allow a non-empty --out folder")
+    p.add_argument("--resume", action="store_true",
+                   help="continue an unfinished measurement (in --out, or the room's latest)")
+    p.add_argument("--plain", action="store_true",
+                   help="plain progress lines instead of the live meter")
+    p.add_argument("--through", metavar="DESIGN_DIR",
+                   help="play the sweeps through this design's filters (pre-gain included) "
+                   "to check the correction before loading it anywhere")
     return p
 
 
@@ -582,7 +660,11 @@ def measure_settings_from_args(
 
         base = dict(load_settings(args.settings).measure)
     over = {
-        "device": args.device, "outputs": args.outputs, "input": args.input,
+        "device": args.device, "input_device": args.input_device,
+        "output_device": args.output_device, "two_streams": args.two_streams,
+        "reference": args.reference, "blocksize": args.blocksize,
+        "mic_sensitivity_dbfs": args.mic_sensitivity,
+        "outputs": args.outputs, "input": args.input,
         "loopback": args.loopback, "positions": args.positions, "repeats": args.repeats,
         "sweep_s": args.sweep_seconds, "sample_rate": args.rate, "level_dbfs": args.level,
         "ir_s": args.ir_seconds, "names": args.names,
@@ -590,6 +672,12 @@ def measure_settings_from_args(
     base.update({k: v for k, v in over.items() if v is not None})
     if args.allow_loud:
         base["allow_loud"] = True
+    if args.no_markers:
+        base["markers"] = False
+    if args.mic_calibration and args.mic_sensitivity is None:
+        from roomcorr.measure.levels import sensitivity_from_file
+
+        base["mic_sensitivity_dbfs"] = sensitivity_from_file(args.mic_calibration)
     if args.band is not None:
         if len(args.band) != 2:
             raise SettingsError("--band needs LO,HI in Hz")
@@ -599,16 +687,20 @@ def measure_settings_from_args(
 
 def _run_measure(args: argparse.Namespace) -> int:
     from roomcorr import room as rooms
-    from roomcorr.measure.session import run_measurement
+    from roomcorr.measure.live import make_view
+    from roomcorr.measure.session import copy_unfinished, run_measurement
 
     room = rooms.open_room(args.room) if args.room else None
     if room is None and not args.out:
         room = rooms.find_room()
+    view = make_view(plain=args.plain)
+    kw = {"yes": args.yes, "force": args.force, "say": view.say, "view": view,
+          "through": args.through}
     if args.out:
         ms = measure_settings_from_args(args)
-        record = run_measurement(
-            ms, args.out, yes=args.yes, force=args.force, replace=args.replace
-        )
+        with view:
+            record = run_measurement(ms, args.out, replace=args.replace, resume=args.resume,
+                                     **kw)
         n = sum(1 for p in record["positions"] if p["file"])
         print(f"measured {n} position(s) into {args.out}; next: roomcorr design {args.out}")
         return 0
@@ -617,12 +709,83 @@ def _run_measure(args: argparse.Namespace) -> int:
             "measure: give --out DIR, or run it inside a room folder (see roomcorr init)"
         )
     ms = measure_settings_from_args(args, rooms.load_room_settings(room).measure)
-    with rooms.new_run(room, "measurement") as run_dir:
-        record = run_measurement(ms, run_dir, yes=args.yes, force=args.force, replace=False)
+    unfinished = None
+    if args.resume:
+        runs = rooms.list_runs(room, "measurement")
+        unfinished = runs[-1].path if runs and not runs[-1].complete else None
+        if unfinished is None:
+            raise SettingsError(
+                f"{room.root}: the latest measurement is complete; nothing to resume"
+            )
+    with view, rooms.new_run(room, "measurement") as run_dir:
+        if unfinished is not None:  # the unfinished run stays as it is; its work is copied
+            copy_unfinished(unfinished, run_dir)
+        record = run_measurement(ms, run_dir, replace=False, resume=unfinished is not None,
+                                 **kw)
     n = sum(1 for p in record["positions"] if p["file"])
     print(
         f"measured {n} position(s) into {run_dir.relative_to(room.root)}; next: roomcorr design"
     )
+    return 0
+
+
+def _add_calibrate_mic(sub: Any) -> argparse.ArgumentParser:
+    p = sub.add_parser(
+        "calibrate-mic",
+        help="find the microphone's sensitivity with an acoustic calibrator (94 dB SPL)",
+        description="Fit the acoustic calibrator (IEC 60942, 1 kHz) snugly over the "
+        "microphone, switch it on, then run this: it records a few seconds (nothing is "
+        "played) and prints the sensitivity in dBFS for 94 dB SPL, for 'roomcorr measure "
+        "--mic-sensitivity'. Keep the input gain as it will be for the measurement.",
+    )
+    p.add_argument("--device", help="the microphone's device (name part or number)")
+    p.add_argument("--input", type=_whole, default=1, metavar="N", help="input channel (1)")
+    p.add_argument("--rate", type=_whole, default=48000, metavar="HZ", help="sample rate")
+    p.add_argument("--seconds", type=_finite, default=4.0, metavar="S",
+                   help="recording length (default 4)")
+    p.add_argument("--calibrator-level", type=_finite, default=94.0, metavar="DB",
+                   help="the calibrator's level in dB SPL (94 or 114)")
+    p.add_argument("--plain", action="store_true", help="no live meter")
+    return p
+
+
+def _run_calibrate_mic(args: argparse.Namespace) -> int:
+    from roomcorr.errors import InputFileError
+    from roomcorr.measure.capture import record
+    from roomcorr.measure.levels import rms_dbfs, sensitivity_from_calibrator
+    from roomcorr.measure.live import make_view
+    from roomcorr.measure.settings import SENSITIVITY_RANGE_DBFS
+
+    if args.calibrator_level not in (94.0, 114.0):
+        raise SettingsError("--calibrator-level: acoustic calibrators give 94 or 114 dB SPL")
+    if not 1.0 <= args.seconds <= 30.0:
+        raise SettingsError("--seconds: use 1 to 30")
+    view = make_view(plain=args.plain)
+    with view:
+        view.start(f"recording the calibrator at input {args.input}", args.seconds)
+        try:
+            x = record(args.rate, args.input, args.seconds, args.device,
+                       progress=view.update)
+        finally:
+            view.stop()
+    x = x[int(0.5 * args.rate):]  # the first half second may hold the stream's start
+    sens, frac = sensitivity_from_calibrator(x, args.rate, args.calibrator_level)
+    lo, hi = SENSITIVITY_RANGE_DBFS
+    if frac < 0.9:
+        raise InputFileError(
+            f"input {args.input}: no steady 1 kHz tone ({frac:.0%} of the level near 1 kHz, "
+            f"input at {rms_dbfs(x):.1f} dBFS); is the calibrator on and seated on the "
+            "microphone?"
+        )
+    if not lo <= sens <= hi:
+        raise InputFileError(
+            f"input {args.input}: the reading gives {sens:.1f} dBFS for 94 dB SPL, outside "
+            f"{lo:g} to {hi:g}; check the input gain (clipping or far too low)"
+        )
+    print(f"microphone sensitivity: {sens:.2f} dBFS for 94 dB SPL "
+          f"({args.calibrator_level:g} dB SPL calibrator, {frac:.1%} of the level at 1 kHz)")
+    print(f"use it: roomcorr measure --mic-sensitivity {sens:.2f} (same input gain), or "
+          f"mic_sensitivity_dbfs = {sens:.2f} in [measure] of the room settings")
     return 0
 
 
@@ -657,6 +820,8 @@ def _run_deconvolve(args: argparse.Namespace) -> int:
     for line in gate_lines(gates):
         print(line)
     print(f"arrival {figures['arrival_s'] * 1000:.2f} ms ({figures['latency_note']})")
+    if "drift_ppm" in figures:
+        print(f"clock drift {figures['drift_ppm']:+.1f} ppm (corrected)")
     print(f"impulse response: {dest}")
     return 0
 
@@ -822,6 +987,7 @@ _COMMANDS: list[tuple[str, Callable[[Any], argparse.ArgumentParser], Callable[..
     ("report", _add_report, _run_report),
     ("devices", _add_devices, _run_devices),
     ("measure", _add_measure, _run_measure),
+    ("calibrate-mic", _add_calibrate_mic, _run_calibrate_mic),
     ("deconvolve", _add_deconvolve, _run_deconvolve),
     ("init", _add_init, _run_init),
     ("history", _add_history, _run_history),

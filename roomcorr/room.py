@@ -231,7 +231,16 @@ _MEASURE_NOTES = {
     "positions": "number of microphone positions to measure",
     "clip_dbfs": "quality gates: a recording failing one stops the run unless --force",
 }
-_MEASURE_EXAMPLES = {"device": 2, "loopback": [3, 2], "names": ["left", "right"]}
+_MEASURE_EXAMPLES = {
+    "device": 2,
+    "loopback": [3, 2],
+    "names": ["left", "right"],
+    "input_device": "USB mic",
+    "output_device": "HDMI",
+    "two_streams": True,
+    "reference": 1,
+    "mic_sensitivity_dbfs": -31.5,
+}
 _INLINE_NOTE = re.compile(r"^\s+(\w+)\s*:[^#]*#\s*(.+)$")
 
 

@@ -18,7 +18,7 @@ import sys  # noqa: E402
 
 import numpy as np  # noqa: E402
 import pytest  # noqa: E402
-from jack_fixtures import FS, jack_server, make_room  # noqa: E402, F401  (pytest fixtures)
+from jack_fixtures import FS, jack_server, make_room, run_measure  # noqa: E402, F401  (pytest fixtures)
 from speaker_rooms import C_M_S, Room, direct_delays_s, simulate  # noqa: E402
 
 
@@ -46,40 +46,33 @@ def test_measured_loudspeakers_are_aligned(make_room, tmp_path):  # noqa: F811
     cfg.write_text("[measure]\nnoise_s = 0.2\ntail_s = 0.35\ntest_s = 0.2\n")
     out = tmp_path / "session"
     cmd = [sys.executable, "-m", "roomcorr"]
-    for attempt in range(3):
-        r = subprocess.run(
-            cmd
-            + [
-                "measure",
-                "--device",
-                "roomsim_align",
-                "--outputs",
-                "1,2,3",
-                "--names",
-                "left,centre,right",
-                "--input",
-                "1",
-                "--loopback",
-                "4,2",
-                "--yes",
-                "--out",
-                str(out),
-                "--settings",
-                str(cfg),
-                "--sweep-seconds",
-                "0.7",
-                "--repeats",
-                "1",
-                "--ir-seconds",
-                "0.2",
-                "--replace",
-            ],
-            capture_output=True,
-            text=True,
-            timeout=180,
-        )
-        if r.returncode == 0 or "buffers dropped" not in r.stderr or attempt == 2:
-            break  # retry only dropped buffers on a loaded machine
+    r = run_measure(
+        [
+            "--device",
+            "roomsim_align",
+            "--outputs",
+            "1,2,3",
+            "--names",
+            "left,centre,right",
+            "--input",
+            "1",
+            "--loopback",
+            "4,2",
+            "--yes",
+            "--out",
+            str(out),
+            "--settings",
+            str(cfg),
+            "--sweep-seconds",
+            "0.7",
+            "--repeats",
+            "1",
+            "--ir-seconds",
+            "0.2",
+            "--replace",
+        ],
+        timeout=180,
+    )
     assert r.returncode == 0, r.stderr
     assert json.loads((out / "measurement.json").read_text())["settings"]["names"] == [
         "left",

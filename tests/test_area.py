@@ -178,6 +178,34 @@ def test_cross_validation_needs_three_positions():
     assert pred is None and np.all(strength == 1.0)
 
 
+def test_cross_validation_keeps_cuts_of_a_modal_peak_every_position_shares():
+    # Analytic case: a resonance at 120 Hz that every position shows (5 to
+    # 7.5 dB high) next to a dip at 150 Hz the positions disagree on (some
+    # want a boost, some a cut). The leave-one-out runs then halve that
+    # region; the halving may scale what the positions disagree on (boosts),
+    # but the peak stands out at every seat, so its cut stays whole: the
+    # same, in the modal range, as a design without any shrinking.
+    heights, dips = [7.0, 6.0, 7.5, 5.0, 6.5], [-4.0, 2.0, -5.0, 3.0, -4.0]
+    base = butterworth_hp_db(F, 30.0, 2)
+    measured = positions(base, 5, seed=3, jitter_db=0.5) + np.array(
+        [
+            modes_db(F, [(120.0, h, 0.04), (150.0, d, 0.04)])
+            for h, d in zip(heights, dips, strict=True)
+        ]
+    )
+    shrunk = design_channel(F, measured, np.zeros_like(F))
+    whole = design_channel(F, measured, np.zeros_like(F), shrink=False)
+    assert shrunk.prediction is not None
+    halved = [(a, b) for a, b, s in shrunk.prediction.strength if s < 1.0]
+    assert any(a <= 120.0 < b or a <= 150.0 < b for a, b in halved)  # the test is not vacuous
+    peak = (F < 212.0) & (whole.correction_db <= -3.0)
+    assert np.count_nonzero(peak) >= 5
+    assert np.allclose(shrunk.correction_db[peak], whole.correction_db[peak], atol=0.1)
+    # ... while the boosts of the halved regions are never larger than unshrunk.
+    boost = (F < 300.0) & (whole.correction_db > 0)
+    assert np.all(shrunk.correction_db[boost] <= whole.correction_db[boost] + 1e-9)
+
+
 def test_agreement_keeps_only_what_most_positions_want():
     # Four positions want +3, +3, +3 and -1 dB: 75 % agree on at least +3 dB of
     # boost interpolated at the 25th percentile (numpy's linear quantile): 2 dB.

@@ -11,12 +11,12 @@ from roomcorr.errors import SafetyError, SettingsError
 from roomcorr.measure import quality as q
 from roomcorr.measure.session import (
     analyse_recording,
+    capture_signal,
     deconvolve_file,
     make_sweep,
     sweep_layout,
 )
 from roomcorr.measure.settings import MeasureSettings
-from roomcorr.measure.sweep import playback_signal
 
 FS = 48000
 
@@ -73,17 +73,29 @@ def test_repeat_disagreement_formula():
     assert q.repeat_disagreement_db(h[None, :]) == float("-inf")
 
 
-GOOD = {"clipped_samples": 0, "peak_dbfs": -12.0, "min_snr_db": 50.0, "dc_offset": 0.0,
-        "stream_problems": 0, "arrival_snr_db": 70.0, "repeat_disagreement_db": -45.0}
+GOOD = {
+    "clipped_samples": 0,
+    "peak_dbfs": -12.0,
+    "min_snr_db": 50.0,
+    "dc_offset": 0.0,
+    "stream_problems": 0,
+    "arrival_snr_db": 70.0,
+    "repeat_disagreement_db": -45.0,
+}
 LIMITS = sweep_layout(MeasureSettings())["limits"]
 
 
 @pytest.mark.parametrize(
     ("key", "value", "gate"),
-    [("clipped_samples", 3, "clipping"), ("peak_dbfs", -70.0, "input_level"),
-     ("min_snr_db", 5.0, "snr"), ("dc_offset", 0.05, "dc_offset"),
-     ("stream_problems", 2, "buffers"), ("arrival_snr_db", 12.0, "arrival"),
-     ("repeat_disagreement_db", -6.0, "repeats_agree")],
+    [
+        ("clipped_samples", 3, "clipping"),
+        ("peak_dbfs", -70.0, "input_level"),
+        ("min_snr_db", 5.0, "snr"),
+        ("dc_offset", 0.05, "dc_offset"),
+        ("stream_problems", 2, "buffers"),
+        ("arrival_snr_db", 12.0, "arrival"),
+        ("repeat_disagreement_db", -6.0, "repeats_agree"),
+    ],
 )
 def test_each_gate_fails_alone(key, value, gate):
     assert all(g.passed for g in q.evaluate_gates(GOOD, LIMITS))
@@ -112,8 +124,8 @@ def test_level_cap_and_settings_validation():
 
 def simulated_recording(ms, h, latency, a2=0.0, noise=1e-5, dc=0.0, seed=0):
     """Offline stand-in for the audio path: latency + room + noise (seeded)."""
-    sw = make_sweep(ms)
-    play = playback_signal(sw, ms.noise_s, ms.tail_s, ms.repeats)
+    sig, _outs = capture_signal(sweep_layout(ms), ms.outputs[0])  # sweeps (+ markers)
+    play = sig.sum(axis=0)
     n = len(play)
     rng = np.random.default_rng(seed)
     sent = np.r_[np.zeros(latency), play][:n]
@@ -121,8 +133,7 @@ def simulated_recording(ms, h, latency, a2=0.0, noise=1e-5, dc=0.0, seed=0):
     return mic, sent
 
 
-MS = MeasureSettings(sweep_s=1.0, noise_s=0.3, tail_s=0.4, ir_s=0.25, repeats=2,
-                     loopback=(3, 2))
+MS = MeasureSettings(sweep_s=1.0, noise_s=0.3, tail_s=0.4, ir_s=0.25, repeats=2, loopback=(3, 2))
 
 
 def test_offline_analysis_removes_latency_and_recovers_ir():
@@ -140,15 +151,30 @@ def test_offline_analysis_removes_latency_and_recovers_ir():
     assert band_energy_error_db(ir, ref, FS, 100, 16000) < -40
 
 
-def test_offline_analysis_without_loopback_keeps_latency_and_says_so():
+def test_offline_analysis_without_loopback_or_markers_keeps_latency_and_says_so():
     h = np.zeros(100)
     h[50] = 0.5
-    ms = MeasureSettings(sweep_s=1.0, noise_s=0.3, tail_s=0.4, ir_s=0.25, repeats=1)
+    ms = MeasureSettings(sweep_s=1.0, noise_s=0.3, tail_s=0.4, ir_s=0.25, repeats=1, markers=False)
     mic, _ = simulated_recording(ms, h, latency=500, dc=0.05)
     _, fig, gates = analyse_recording(mic, None, sweep_layout(ms))
     assert fig["latency_s"] is None and "no loopback" in fig["latency_note"]
     assert fig["arrival_s"] * FS == pytest.approx(550, abs=0.05)
     assert [g.name for g in gates if not g.passed] == ["dc_offset"]
+
+
+@pytest.mark.parametrize("latency", [0, 500, 2401])
+def test_offline_analysis_with_markers_puts_the_reference_at_the_lead(latency):
+    # The measured loudspeaker is the reference: whatever the latency, its arrival lands
+    # at lead_s (10 ms) in the impulse response (timing.py's common origin).
+    h = np.zeros(100)
+    h[50] = 0.5
+    ms = MeasureSettings(sweep_s=1.0, noise_s=0.3, tail_s=0.4, ir_s=0.25, repeats=1)
+    mic, _ = simulated_recording(ms, h, latency=latency)
+    _, fig, gates = analyse_recording(mic, None, sweep_layout(ms))
+    assert fig["latency_s"] is None and "timing reference" in fig["latency_note"]
+    assert fig["arrival_s"] == pytest.approx(0.010, abs=0.05 / FS)
+    assert abs(fig["drift_ppm"]) < 0.1
+    assert all(g.passed for g in gates), [g.message for g in gates if not g.passed]
 
 
 def test_deconvolve_file_round_trip(tmp_path):
@@ -198,3 +224,53 @@ def test_deconvolve_file_aligns_a_recording_made_elsewhere(tmp_path, offset):
     assert fig["arrival_s"] * FS == pytest.approx(120, abs=0.05)
     assert "aligned" in fig
     assert all(g.passed for g in gates)
+
+
+def test_levels_of_a_sine_and_of_noise_bands():
+    from roomcorr.measure import levels as lv
+
+    t = np.arange(FS) / FS
+    # AES17: a full-scale sine reads 0 dBFS; amplitude 0.05 reads 20 log10(0.05)
+    assert lv.rms_dbfs(np.sin(2 * np.pi * 997 * t)) == pytest.approx(0.0, abs=1e-3)
+    x = 0.05 * np.sin(2 * np.pi * 1000 * t)
+    assert lv.rms_dbfs(x) == pytest.approx(20 * np.log10(0.05), abs=1e-3)
+    sens, frac = lv.sensitivity_from_calibrator(
+        x + 1e-4 * np.random.default_rng(0).standard_normal(FS), FS
+    )
+    assert sens == pytest.approx(20 * np.log10(0.05), abs=0.01) and frac > 0.99
+    # 94 dB SPL = 1 Pa (20 uPa reference): a tone at the sensitivity reads 94 dB SPL
+    assert lv.to_spl(sens, sens) == 94.0 and lv.PA_DB_SPL == pytest.approx(
+        20 * np.log10(1 / 20e-6), abs=1e-4
+    )
+    # Parseval: white noise's octave bands add up to its total level (bands cover
+    # 22 Hz .. 22.6 kHz, nearly all of 0 .. 24 kHz: within 0.5 dB)
+    noise = np.random.default_rng(1).standard_normal(8 * FS)
+    bands = lv.octave_levels_dbfs(noise, FS, q.octave_centres_hz(31.5, 16000.0))
+    total = 10 * np.log10(sum(10 ** (v / 10) for v in bands.values()))
+    assert total == pytest.approx(lv.rms_dbfs(noise), abs=0.5)
+    # white noise: each octave holds power in proportion to its width (+3 dB per octave;
+    # from 125 Hz up, where a band holds enough periodogram bins for +-0.3 dB)
+    vals = [bands[k] for k in sorted(bands)]
+    assert np.diff(vals)[2:] == pytest.approx(3.01, abs=0.3)
+    assert [lv.nominal_label(f) for f in sorted(bands)][:3] == ["31.5", "63", "125"]
+
+
+def test_sensitivity_from_a_calibration_file_header(tmp_path):
+    from roomcorr.errors import InputFileError
+    from roomcorr.measure.levels import sensitivity_from_file
+
+    good = tmp_path / "mic.txt"
+    good.write_text(
+        "# invented measurement microphone\n# sensitivity_dbfs = -31.5\n20 -0.5\n1000 0.0\n"
+    )
+    assert sensitivity_from_file(good) == -31.5
+    bad = tmp_path / "nohead.txt"
+    bad.write_text("20 -0.5\n# sensitivity_dbfs = -31.5\n")  # only the header counts
+    with pytest.raises(InputFileError, match="sensitivity_dbfs"):
+        sensitivity_from_file(bad)
+
+
+@pytest.mark.parametrize("value", [20.0, -200.0, float("nan"), 0.0])
+def test_absurd_microphone_sensitivity_is_refused(value):
+    with pytest.raises(SettingsError, match="not plausible"):
+        MeasureSettings(mic_sensitivity_dbfs=value).validate()

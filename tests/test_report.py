@@ -517,3 +517,39 @@ def test_predicted_result_is_closer_to_the_target(design_folder):
     rms_before = np.sqrt(np.mean((ch["average_db"] - ch["target_db"])[m] ** 2))
     rms_after = np.sqrt(np.mean((after - ch["target_db"] - cur["pre_gain_db"])[m] ** 2))
     assert rms_after < 0.7 * rms_before
+
+
+def test_measurement_through_filters_section(tmp_path):
+    """A measurement made with ``measure --through`` gets a section comparing it with the
+    design's prediction, naming where the two differ by more than the limit."""
+    import json as _json
+    import shutil as _shutil
+
+    from roomcorr.report.html import write_report
+
+    folder = tmp_path / "through-run"
+    folder.mkdir()
+    demo = sorted((Path(__file__).resolve().parents[1] / "measurements_demo").glob("*.wav"))[:2]
+    for f in demo:
+        _shutil.copy(f, folder / f.name)
+    freq = np.geomspace(40.0, 16000.0, 120)
+    measured = np.zeros((2, 2, freq.size))
+    predicted = np.zeros_like(measured)
+    measured[1, 0, (freq > 90) & (freq < 140)] = 2.5  # position 2, first channel: 2.5 dB off
+    check = {
+        "positions": [1, 2],
+        "limit_db": 1.0,
+        "smoothing_oct": 1 / 6,
+        "freq_hz": freq.tolist(),
+        "measured_db": measured.tolist(),
+        "predicted_db": predicted.tolist(),
+        "over_limit_hz": [[[], []], [[[92.0, 138.0]], []]],
+    }
+    (folder / "measurement.json").write_text(_json.dumps({"through": {"check": check}}))
+    page = write_report(folder, dpi=40).read_text(encoding="utf-8")
+    assert "Measured through the design" in page  # the section's title
+    assert "Position 2: more than 1 dB apart 92 Hz to 138 Hz." in page
+    assert "Position 1: more than 1 dB apart nowhere." in page
+    assert "1 of 4 loudspeaker positions differ" in page
+    assert (folder / "report" / "left-through.png").is_file()
+    assert (folder / "report" / "right-through.png").is_file()

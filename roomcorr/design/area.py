@@ -21,9 +21,11 @@ One channel's correction is made in five steps, each a pure function here:
    the left-out one. Per region (half an octave wide in the modal range,
    one region above it) the strength of the correction is the one of
    :data:`STRENGTHS` that predicts the smallest error at the left-out
-   positions. The same runs give the plain-words prediction (how much the
-   bass will vary at seats that were not measured) and flag a position
-   whose response sits far below the others (a cancellation).
+   positions. In the modal range that strength scales the boosts only
+   (:data:`FULL_MODAL_CUTS`): a modal peak stands out at every seat, so
+   cutting it is kept whole. The same runs give the plain-words prediction
+   (how much the bass will vary at seats that were not measured) and flag
+   a position whose response sits far below the others (a cancellation).
 5. **Bass limit** (:func:`apply_bass_limit`): below the loudspeaker's low
    limit the filter's gain never exceeds its own 200 Hz to 2 kHz median, so
    the drive there is never raised, whatever the room does.
@@ -65,8 +67,10 @@ from roomcorr.grid import points_per_octave_of
 
 #: Band edge: where the 1-octave response falls this far below the aligned target (dB).
 EDGE_DB = 1.0
-#: The bass's own level gives way to the midrange's over this region, Hz.
-LEVEL_BLEND_HZ = (150.0, 300.0)
+#: The bass's own level gives way to the midrange's over this region, Hz: it holds
+#: over most of the modal range, and the transition straddles the range's top
+#: (further up it would leave a shelf in the midrange's broad balance).
+LEVEL_BLEND_HZ = (200.0, 350.0)
 #: The bass's own level is this quantile of its deviation from the target shape.
 BASS_LEVEL_QUANTILE = 0.5
 #: A boost or cut is kept as far as this share of the positions asks for it.
@@ -87,6 +91,13 @@ CANCELLATION_OCT = 1.0 / 6.0
 BROAD_OCT = 0.0
 #: ... blended in over the octave above this frequency, Hz.
 BROAD_FROM_HZ = 300.0
+#: Cuts in the modal range keep full strength (the cross-validated strength scales
+#: only boosts there): a modal peak is shared by every seat around the listening
+#: position, only its height changes, so cutting it helps wherever the head is.
+FULL_MODAL_CUTS = True
+#: ... fully up to the first frequency, giving way to the chosen strength by the
+#: second (the top of the modal range), Hz.
+FULL_CUTS_HZ = (212.0, 300.0)
 #: Whether cuts, too, need the agreement of the positions.
 CUT_AGREEMENT = False
 #: The low band edge is where the wide response falls this far (dB) below ...
@@ -168,9 +179,10 @@ def choose_level(
     The target's level is the median of the measured response over the
     midrange (200 Hz to 2 kHz), so room gain in the bass or a treble
     roll-off cannot pull it. In the modal range it is lowered to the bass's
-    own median level when that lies lower (blended over the octave above
-    :data:`MODAL_TOP_HZ`): the correction then removes what stands out in
-    the bass instead of lifting the whole bass to the midrange, a broad boost
+    own median level when that lies lower (blended to the midrange level over
+    :data:`LEVEL_BLEND_HZ`, which straddles :data:`MODAL_TOP_HZ`): the
+    correction then removes what stands out in the bass instead of lifting
+    the whole bass to the midrange, a broad boost
     that mostly fills boundary cancellations and costs excursion. Bass that
     lies higher than the midrange (room gain) is cut to its level.
 
@@ -466,6 +478,18 @@ def _variation_db(freq_hz: np.ndarray, level_db: np.ndarray, mask: np.ndarray) -
     return np.sqrt(np.mean((x - x.mean(axis=-1, keepdims=True)) ** 2, axis=-1))
 
 
+def _scaled_curve(freq_hz: np.ndarray, correction_db: np.ndarray, strength) -> np.ndarray:
+    """``correction_db`` times the strength curve; modal cuts whole with :data:`FULL_MODAL_CUTS`."""
+    scaled = strength * correction_db
+    if FULL_MODAL_CUTS:
+        lo_hz, hi_hz = FULL_CUTS_HZ
+        t = np.clip(np.log2(np.asarray(freq_hz) / lo_hz) / np.log2(hi_hz / lo_hz), 0.0, 1.0)
+        w = 0.5 + 0.5 * np.cos(np.pi * t)
+        cut_strength = w + (1.0 - w) * strength
+        scaled = np.where(correction_db < 0, cut_strength * correction_db, scaled)
+    return scaled
+
+
 def cross_validate(
     freq_hz: np.ndarray,
     measured_db: np.ndarray,
@@ -493,6 +517,7 @@ def cross_validate(
     strength : ndarray, shape (n_freqs,)
         Factor (0 to 1) for the correction at each frequency; all ones when
         there are fewer than three positions (nothing to cross-validate).
+        Applied with :func:`_scaled_curve` (modal cuts whole).
     prediction : Prediction or None
     """
     f = np.asarray(freq_hz)
@@ -515,10 +540,10 @@ def cross_validate(
         if not np.any(m):
             strengths.append(1.0)
             continue
-        errs = [
-            float(np.mean(np.sqrt(np.mean((aligned[:, m] + s * loo[:, m] - target_db[m]) ** 2, 1))))
-            for s in STRENGTHS
-        ]
+        errs = []
+        for s in STRENGTHS:
+            err_db = aligned[:, m] + _scaled_curve(f[m], loo[:, m], s) - target_db[m]
+            errs.append(float(np.mean(np.sqrt(np.mean(err_db**2, axis=1)))))
         # Ties go to the weaker correction (less change, less risk).
         strengths.append(STRENGTHS[int(np.argmin(np.round(errs, 3)))])
     strength = _strength_curve(f, regions, strengths)
@@ -527,7 +552,7 @@ def cross_validate(
     if np.count_nonzero(judge) < 8:
         judge = (f >= band_hz[0]) & (f <= max(MODAL_TOP_HZ, 2 * band_hz[0]))
     before = _variation_db(f, measured_db, judge)
-    after = _variation_db(f, measured_db + strength * loo, judge)
+    after = _variation_db(f, measured_db + _scaled_curve(f, loo, strength), judge)
     flagged = flag_cancellations(f, measured_db, others_avg, (band_hz[0], MODAL_TOP_HZ))
     pred = Prediction(
         band_hz=(float(lo_eval), float(MODAL_TOP_HZ)),
@@ -674,7 +699,9 @@ def design_channel(
         strength = np.ones_like(strength)
     # The rules above (caps, allowances, agreement) leave corners a filter of
     # the default length cannot follow; a light smoothing rounds them.
-    smoothed = smooth_log_grid(corr * strength, points_per_octave_of(f), FINAL_SMOOTH_OCT)
+    smoothed = smooth_log_grid(
+        _scaled_curve(f, corr, strength), points_per_octave_of(f), FINAL_SMOOTH_OCT
+    )
     # ... but never so that it lifts a dip the boost rules refused (deep, or
     # where the positions disagree): there the curve stays at or below 0 dB.
     refused = correction_curve(f, avg, spread, avg, band, max_boost_db, max_cut_db)

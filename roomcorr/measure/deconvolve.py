@@ -240,7 +240,7 @@ def harmonic_distortion(
     n = scipy.fft.next_fast_len(max(rows.shape[-1], fs // 10), real=True)
     spec = np.abs(scipy.fft.rfft(rows, n, axis=-1)) ** 2
     f = np.fft.rfftfreq(n, 1.0 / fs)
-    g = 10.0 ** 0.3
+    g = 10.0**0.3
     centres = iec_band_centres(fraction, f_lo_hz * g ** (1 / (2 * fraction)), f_hi_hz)
     half = g ** (1 / (2 * fraction))
     out = np.full((len(split.orders) - 1, len(centres)), np.nan)

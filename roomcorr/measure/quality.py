@@ -166,34 +166,113 @@ def evaluate_gates(figures: dict, limits: dict) -> list[Gate]:
     """
     g = []
     f, lim = figures, limits
-    g.append(Gate("clipping", f["clipped_samples"] == 0, f["clipped_samples"], 0, "samples",
-                  f"input clipping: {f['clipped_samples']} samples at or above "
-                  f"{lim['clip_dbfs']} dBFS; lower the input gain or the output level"))
-    g.append(Gate("input_level", f["peak_dbfs"] >= lim["min_peak_dbfs"], f["peak_dbfs"],
-                  lim["min_peak_dbfs"], "dBFS",
-                  f"input too low: peak {f['peak_dbfs']:.1f} dBFS below "
-                  f"{lim['min_peak_dbfs']} dBFS; raise the microphone gain"))
-    g.append(Gate("snr", f["min_snr_db"] >= lim["min_snr_db"], f["min_snr_db"],
-                  lim["min_snr_db"], "dB",
-                  f"signal-to-noise ratio {f['min_snr_db']:.1f} dB in the worst octave band is "
-                  f"below {lim['min_snr_db']} dB; reduce background noise, raise the level "
-                  "carefully or use a longer sweep"))
-    g.append(Gate("dc_offset", abs(f["dc_offset"]) <= lim["max_dc_offset"], f["dc_offset"],
-                  lim["max_dc_offset"], "full scale",
-                  f"DC offset {f['dc_offset']:.4f} of full scale in the input; check the "
-                  "microphone power (phantom) and the interface"))
-    g.append(Gate("buffers", f["stream_problems"] == 0, f["stream_problems"], 0, "buffers",
-                  f"{f['stream_problems']} audio buffers dropped or repeated; close other audio "
-                  "programs or use a larger block size"))
-    g.append(Gate("arrival", f["arrival_snr_db"] >= lim["min_arrival_db"], f["arrival_snr_db"],
-                  lim["min_arrival_db"], "dB",
-                  f"no arrival found (impulse peak only {f['arrival_snr_db']:.1f} dB above "
-                  "noise): is the loudspeaker connected, switched on and on the chosen output?"))
+    g.append(
+        Gate(
+            "clipping",
+            f["clipped_samples"] == 0,
+            f["clipped_samples"],
+            0,
+            "samples",
+            f"input clipping: {f['clipped_samples']} samples at or above "
+            f"{lim['clip_dbfs']} dBFS; lower the input gain or the output level",
+        )
+    )
+    g.append(
+        Gate(
+            "input_level",
+            f["peak_dbfs"] >= lim["min_peak_dbfs"],
+            f["peak_dbfs"],
+            lim["min_peak_dbfs"],
+            "dBFS",
+            f"input too low: peak {f['peak_dbfs']:.1f} dBFS below "
+            f"{lim['min_peak_dbfs']} dBFS; raise the microphone gain",
+        )
+    )
+    g.append(
+        Gate(
+            "snr",
+            f["min_snr_db"] >= lim["min_snr_db"],
+            f["min_snr_db"],
+            lim["min_snr_db"],
+            "dB",
+            f"signal-to-noise ratio {f['min_snr_db']:.1f} dB in the worst octave band is "
+            f"below {lim['min_snr_db']} dB; reduce background noise, raise the level "
+            "carefully or use a longer sweep",
+        )
+    )
+    g.append(
+        Gate(
+            "dc_offset",
+            abs(f["dc_offset"]) <= lim["max_dc_offset"],
+            f["dc_offset"],
+            lim["max_dc_offset"],
+            "full scale",
+            f"DC offset {f['dc_offset']:.4f} of full scale in the input; check the "
+            "microphone power (phantom) and the interface",
+        )
+    )
+    g.append(
+        Gate(
+            "buffers",
+            f["stream_problems"] == 0,
+            f["stream_problems"],
+            0,
+            "buffers",
+            f"{f['stream_problems']} audio buffers dropped or repeated; close other audio "
+            "programs or use a larger block size",
+        )
+    )
+    g.append(
+        Gate(
+            "arrival",
+            f["arrival_snr_db"] >= lim["min_arrival_db"],
+            f["arrival_snr_db"],
+            lim["min_arrival_db"],
+            "dB",
+            f"no arrival found (impulse peak only {f['arrival_snr_db']:.1f} dB above "
+            "noise): is the loudspeaker connected, switched on and on the chosen output?",
+        )
+    )
+    tref = f.get("timing_reference")
+    if tref is not None and f.get("latency_s") is None:
+        g.append(
+            Gate(
+                "timing_reference",
+                bool(tref["found"]),
+                tref["marker_snr_db"],
+                0,
+                "dB",
+                f"timing marker of output {tref['reference_output']} not found in the "
+                "recording: is the reference loudspeaker connected and on? (choose "
+                "another with --reference)",
+            )
+        )
+    if tref is not None and tref["found"] and "max_drift_ppm" in lim:
+        d = float(tref["drift_ppm"])
+        g.append(
+            Gate(
+                "clock_drift",
+                abs(d) <= lim["max_drift_ppm"],
+                d,
+                lim["max_drift_ppm"],
+                "ppm",
+                f"the microphone's and the output's clocks differ by {d:.0f} ppm, more "
+                f"than {lim['max_drift_ppm']:g} ppm: check the sample rate of both "
+                "devices in the system's sound settings",
+            )
+        )
     rd = f["repeat_disagreement_db"]
-    g.append(Gate("repeats_agree", rd <= lim["max_repeat_disagreement_db"],
-                  rd if np.isfinite(rd) else -999.0, lim["max_repeat_disagreement_db"], "dB",
-                  f"repeats disagree ({rd:.1f} dB difference energy); keep the room quiet and "
-                  "still, or use a loopback channel if the latency varies"))
+    g.append(
+        Gate(
+            "repeats_agree",
+            rd <= lim["max_repeat_disagreement_db"],
+            rd if np.isfinite(rd) else -999.0,
+            lim["max_repeat_disagreement_db"],
+            "dB",
+            f"repeats disagree ({rd:.1f} dB difference energy); keep the room quiet and "
+            "still, or use a loopback channel if the latency varies",
+        )
+    )
     return g
 
 

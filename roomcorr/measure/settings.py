@@ -7,6 +7,7 @@ Levels start low and are capped: the sweep's peak defaults to
 
 from __future__ import annotations
 
+import math
 from dataclasses import asdict, dataclass, fields
 from typing import Any
 
@@ -14,6 +15,12 @@ from roomcorr.errors import SafetyError, SettingsError
 
 DEFAULT_LEVEL_DBFS = -20.0
 LEVEL_CAP_DBFS = -6.0
+#: Plausible microphone sensitivities, dBFS for 94 dB SPL (1 Pa). Outside this a
+#: figure is a typing error (0 dBFS would mean 94 dB SPL already clips).
+SENSITIVITY_RANGE_DBFS = (-80.0, -3.0)
+#: Sweep level at the seat above which roomcorr warns: 75 to 85 dB SPL is plenty for
+#: a domestic room measurement (common practice).
+DEFAULT_MAX_SPL_DB = 85.0
 
 
 @dataclass
@@ -26,26 +33,34 @@ class MeasureSettings:
     sample_rate: int = 48000
     f_start_hz: float = 20.0
     f_end_hz: float = 20000.0
-    sweep_s: float = 5.0            # requested; the synchronised sweep is a little shorter/longer
-    level_dbfs: float = DEFAULT_LEVEL_DBFS   # sweep peak level
-    allow_loud: bool = False        # needed for level_dbfs above LEVEL_CAP_DBFS
+    sweep_s: float = 5.0  # requested; the synchronised sweep is a little shorter/longer
+    level_dbfs: float = DEFAULT_LEVEL_DBFS  # sweep peak level
+    allow_loud: bool = False  # needed for level_dbfs above LEVEL_CAP_DBFS
     fade_in_s: float = 0.05
     fade_out_s: float = 0.005
-    noise_s: float = 1.0            # noise-only recording before the first sweep
-    tail_s: float = 1.5             # silence after each sweep (decay + latency)
+    noise_s: float = 1.0  # noise-only recording before the first sweep
+    tail_s: float = 1.5  # silence after each sweep (decay + latency)
     repeats: int = 2
-    ir_s: float = 1.0               # length of the saved impulse responses
-    harmonics: int = 5              # highest harmonic order analysed
-    method: str = "division"        # deconvolution inverse: "division" or "analytic"
+    ir_s: float = 1.0  # length of the saved impulse responses
+    harmonics: int = 5  # highest harmonic order analysed
+    method: str = "division"  # deconvolution inverse: "division" or "analytic"
     test_level_dbfs: float = -40.0  # quiet level check before the first sweep
     test_s: float = 1.0
     device: str | int | None = None
+    input_device: str | int | None = None  # microphone's device when it differs from device
+    output_device: str | int | None = None  # loudspeakers' device when it differs from device
+    two_streams: bool | None = None  # separate play and record streams (default: devices differ)
+    reference: int | None = None  # output of the timing-reference loudspeaker (default: first)
+    markers: bool = True  # timing markers before and after the sweeps
+    max_drift_ppm: float = 500.0  # clock mismatch above this stops the run unless --force
+    mic_sensitivity_dbfs: float | None = None  # dBFS for 94 dB SPL (1 Pa) at the microphone
+    max_spl_db: float = DEFAULT_MAX_SPL_DB  # warn when the sweep is louder at the seat
     outputs: tuple[int, ...] = (1, 2)
     input: int = 1
-    loopback: tuple[int, int] | None = None   # (output, input) joined by a cable
-    names: tuple[str, ...] | None = None      # loudspeaker names, one per output (--names)
+    loopback: tuple[int, int] | None = None  # (output, input) joined by a cable
+    names: tuple[str, ...] | None = None  # loudspeaker names, one per output (--names)
     positions: int = 1
-    blocksize: int = 0              # 0 = let the audio system choose
+    blocksize: int = 0  # 0 = let the audio system choose
     # gate limits
     clip_dbfs: float = -0.1
     min_peak_dbfs: float = -50.0
@@ -100,6 +115,34 @@ class MeasureSettings:
             )
         if not self.outputs or any(int(c) < 1 for c in chans):
             raise SettingsError("channel numbers start at 1 (--outputs, --input, --loopback)")
+        if self.reference is not None:
+            if int(self.reference) < 1:
+                raise SettingsError("--reference: channel numbers start at 1")
+            if self.loopback is not None and self.reference == self.loopback[0]:
+                raise SettingsError("--reference must be a loudspeaker output, not the loopback")
+        if self.loopback is not None and self.two_streams:
+            raise SettingsError(
+                "--loopback needs one device for input and output (one stream); with two "
+                "devices the acoustic timing reference (--reference) takes its place"
+            )
+        if not (math.isfinite(self.max_drift_ppm) and 1.0 <= self.max_drift_ppm <= 5000.0):
+            raise SettingsError(f"measure.max_drift_ppm = {self.max_drift_ppm}: use 1 to 5000")
+        sens = self.mic_sensitivity_dbfs
+        lo, hi = SENSITIVITY_RANGE_DBFS
+        if sens is not None and not (math.isfinite(sens) and lo <= sens <= hi):
+            raise SettingsError(
+                f"microphone sensitivity {sens} dBFS for 94 dB SPL is not plausible (expected "
+                f"{lo:g} to {hi:g}); check --mic-sensitivity or the calibration file header"
+            )
+        if not (math.isfinite(self.max_spl_db) and 60.0 <= self.max_spl_db <= 110.0):
+            raise SettingsError(f"measure.max_spl_db = {self.max_spl_db}: use 60 to 110 dB SPL")
+        if self.blocksize < 0 or self.blocksize > 65536:
+            raise SettingsError(f"--blocksize {self.blocksize}: use 0 (automatic) to 65536")
+
+    @property
+    def reference_output(self) -> int:
+        """Output channel of the timing-reference loudspeaker."""
+        return int(self.reference) if self.reference is not None else int(self.outputs[0])
 
     def to_dict(self) -> dict[str, Any]:
         d = asdict(self)
@@ -120,8 +163,9 @@ class MeasureSettings:
         for f in fields(cls):  # every number finite (NaN passes every '>' test)
             v = d.get(f.name)
             if isinstance(v, float | int) and not isinstance(v, bool):
-                d[f.name] = checked_number(v, f"{source}: measure.{f.name}",
-                                           integer=isinstance(v, int))
+                d[f.name] = checked_number(
+                    v, f"{source}: measure.{f.name}", integer=isinstance(v, int)
+                )
         if "outputs" in d:
             d["outputs"] = tuple(int(c) for c in d["outputs"])
         if d.get("loopback") is not None:

@@ -90,8 +90,12 @@ class Sweep:
         f = np.fft.rfftfreq(n_fft, 1.0 / self.fs)
         f_safe = np.maximum(f, 1e-9)
         L = self.rate_s
-        inv = 2.0 * np.sqrt(f_safe / L) * np.exp(
-            -2j * np.pi * f_safe * L * (1.0 - np.log(f_safe / self.f_start_hz)) + 1j * np.pi / 4
+        inv = (
+            2.0
+            * np.sqrt(f_safe / L)
+            * np.exp(
+                -2j * np.pi * f_safe * L * (1.0 - np.log(f_safe / self.f_start_hz)) + 1j * np.pi / 4
+            )
         )
         inv *= band_taper(f, self.f_start_hz, self.f_end_hz, self.fs, taper_octaves)
         return inv / (self.fs * self.amplitude)

@@ -584,3 +584,35 @@ def plot_mixed_phase(
         ax.grid(True, color="#eef1f4")
     fig.suptitle(title, x=0.01, ha="left", color=INK)
     return fig
+
+
+def plot_through(
+    freq_hz: np.ndarray,
+    measured_db: np.ndarray,
+    predicted_db: np.ndarray,
+    positions: list[Any],
+    title: str,
+) -> Any:
+    """Measured through the filters (solid) against the design's prediction (dashed).
+
+    Parameters
+    ----------
+    freq_hz : ndarray, shape (n_freqs,)
+    measured_db, predicted_db : ndarray, shape (n_positions, n_freqs)
+    positions : list
+        Position labels, one per row.
+    title : str
+    """
+    fig = new_figure(height_in=4.4)
+    ax = fig.subplots()
+    palette = (MEAN, AIM, AFTER, SEAT, INK)
+    for i, (m, p) in enumerate(zip(measured_db, predicted_db, strict=True)):
+        color = palette[i % len(palette)]
+        ax.semilogx(freq_hz, m, color=color, lw=1.4, label=f"position {positions[i]}, measured")
+        ax.semilogx(freq_hz, p, color=color, lw=1.1, ls="--", label="predicted")
+    _freq_axis(ax, float(freq_hz[0]), float(freq_hz[-1]))
+    ax.set_ylabel("level (dB)")
+    ax.set_title(title, loc="left", fontsize=11, color=INK)
+    ax.legend(fontsize=LEGEND_PT, frameon=False, ncol=2, loc="upper center",
+              bbox_to_anchor=(0.5, -0.16))
+    return fig

@@ -39,6 +39,7 @@ SECTION_TITLES = {
     "ringing": "Low-frequency ringing",
     "iir": "The biquad version",
     "quality": "How good the measurement was",
+    "through": "Measured through the design's filters",
     "safety": "Safety and levels",
 }
 
@@ -780,6 +781,7 @@ def build_report(
     title: str = "Room correction report",
     dpi: int = 90,
     comparison: dict[str, Any] | None = None,
+    through: dict[str, Any] | None = None,
 ) -> Report:
     """Compute every section and figure of the report.
 
@@ -808,6 +810,10 @@ def build_report(
         :func:`roomcorr.room.compare_measurements` result (``with_curves=True``)
         against an earlier measurement; adds the comparison section after the
         overview. Left out when None.
+    through : dict, optional
+        ``through.check`` of a ``measurement.json`` made with ``measure
+        --through``: the responses measured through a design's filters
+        against that design's prediction (see :func:`through_section`).
 
     Returns
     -------
@@ -858,9 +864,75 @@ def build_report(
         )
     if quality:
         sections.append(_quality_section(quality, png))
+    if through and "measured_db" in through:
+        sections.append(through_section(through, [str(c["name"]) for c in curves["channels"]], png))
+        overview.paragraphs.append(_through_sentence(through))
     if designed:
         sections.append(_safety_section(chans, curves, ctx))
     return Report(title=title, subtitle=f"measured at {ctx.fs} Hz", sections=sections)
+
+
+def _through_ranges(ranges: list[list[float]]) -> str:
+    return ", ".join(f"{fmt_hz(lo)} to {fmt_hz(hi)}" for lo, hi in ranges[:5]) or "nowhere"
+
+
+def through_section(check: dict[str, Any], names: list[str], png: Any) -> Section:
+    """Measured through the filters against the design's prediction, one column per channel.
+
+    ``check`` is ``through.check`` of ``measurement.json``: ``freq_hz``,
+    ``measured_db`` and ``predicted_db`` (positions x channels x freqs, 1/6
+    octave), ``positions``, ``limit_db`` and ``over_limit_hz`` (per position and
+    channel, the ranges where the two differ by more than ``limit_db``).
+    """
+    from roomcorr.report import figures as fg
+
+    freq = np.asarray(check["freq_hz"], dtype=float)
+    meas = np.asarray(check["measured_db"], dtype=float)
+    pred = np.asarray(check["predicted_db"], dtype=float)
+    limit = float(check.get("limit_db", 1.0))
+    positions = list(check.get("positions") or range(1, meas.shape[0] + 1))
+    over = check.get("over_limit_hz") or []
+    sec = Section("through", SECTION_TITLES["through"])
+    sec.paragraphs.append(
+        "The sweeps were played through the design's filters (pre-gain included) and "
+        "compared with what the design predicted for the same positions "
+        f"({float(check.get('smoothing_oct', 1 / 6)):.2g}-octave smoothing). Where the two "
+        f"differ by more than {limit:g} dB, the room or the microphone position changed, or "
+        "the filters are not loaded as designed."
+    )
+    for c in range(meas.shape[1]):
+        name = names[c] if c < len(names) else f"channel {c + 1}"
+        col = Column(name)
+        for i, pos in enumerate(positions):
+            ranges = over[i][c] if i < len(over) and c < len(over[i]) else []
+            col.paragraphs.append(
+                f"Position {pos}: more than {limit:g} dB apart {_through_ranges(ranges)}."
+            )
+        col.figures.append(
+            Figure(
+                f"{name}-through",
+                f"Measured through the filters against the prediction, {name}",
+                png(fg.plot_through(freq, meas[:, c], pred[:, c], positions, f"Through: {name}")),
+            )
+        )
+        sec.columns.append(col)
+    return sec
+
+
+def _through_sentence(check: dict[str, Any]) -> str:
+    over = check.get("over_limit_hz") or []
+    n_bad = sum(1 for per_pos in over for ranges in per_pos if ranges)
+    n_all = sum(len(per_pos) for per_pos in over)
+    limit = float(check.get("limit_db", 1.0))
+    if n_bad == 0:
+        return (
+            f"Measured through the filters, every position stays within {limit:g} dB of the "
+            "design's prediction."
+        )
+    return (
+        f"Measured through the filters, {n_bad} of {n_all} loudspeaker positions differ from "
+        f"the design's prediction by more than {limit:g} dB somewhere (see that section)."
+    )
 
 
 _CSS = """
@@ -952,6 +1024,17 @@ def render_html(report: Report) -> str:
         parts.append("</section>")
     parts.append("</main></body></html>")
     return "\n".join(parts)
+
+
+def _read_through(folder: Path) -> dict[str, Any] | None:
+    """``through.check`` of a measurement made with ``measure --through`` (None otherwise)."""
+    p = folder / "measurement.json"
+    try:
+        data = json.loads(p.read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return None
+    check = (data.get("through") or {}).get("check") if isinstance(data, dict) else None
+    return check if isinstance(check, dict) and "measured_db" in check else None
 
 
 def _read_quality(folder: Path) -> list[dict[str, Any]] | None:
@@ -1251,6 +1334,7 @@ def write_report(
     dest = report_destination(d, out_dir)
     is_design = (d / "manifest.json").is_file() and (d / "design.npz").is_file()
     settings = None
+    through = None
     if is_design:
         from roomcorr.export import load_design_curves, read_manifest
 
@@ -1268,9 +1352,12 @@ def write_report(
     else:
         curves = _session_curves(d)
         quality = _read_quality(d)
+        through = _read_through(d)
     iir = _read_iir(d) if is_design else None
     comparison = report_comparison(d, compare_with)
-    report = build_report(curves, settings, quality, iir=iir, dpi=dpi, comparison=comparison)
+    report = build_report(
+        curves, settings, quality, iir=iir, dpi=dpi, comparison=comparison, through=through
+    )
     # A finished room run is sealed by its complete.json (SHA-256 of every file,
     # manifest included): the report is added beside it, never into its manifest.
     same = dest.resolve() == d.resolve()
