@@ -263,6 +263,12 @@ def test_browser_shows_history_and_draws_a_design(demo_room, tmp_path):
         wait.until(ec.text_to_be_present_in_element((By.ID, "status"), "saved as design"))
         assert len(rooms.list_runs(demo_room, "design")) == n_designs + 1
         assert (demo_room.root / "targets" / "shaped.toml").is_file()
+        # Compare (here the one measurement with itself): the CLI's text and both curves
+        driver.find_element(By.CSS_SELECTOR, "nav button[data-tab=room]").click()
+        driver.find_element(By.ID, "c-go").click()
+        wait.until(ec.text_to_be_present_in_element((By.ID, "status"), "compared"))
+        assert "speed of sound" in driver.find_element(By.ID, "explore-text").text
+        assert len(driver.find_elements(By.CSS_SELECTOR, "#plots canvas")) >= 2
         driver.find_element(By.CSS_SELECTOR, "nav button[data-tab=files]").click()
         links = driver.find_elements(By.CSS_SELECTOR, "#files tbody a")
         assert any(a.text.endswith(".wav") for a in links)
@@ -395,3 +401,21 @@ def test_live_channel_needs_the_token_and_reports_a_saved_design(client, demo_ro
         assert ws.receive_json() == {"type": "design", "state": "started"}
         done = ws.receive_json()
         assert done["state"] == "finished" and done["run_id"] == r.json()["run_id"]
+
+
+def test_compare_gives_what_roomcorr_compare_prints(client, demo_room):
+    # The same engine: the app's comparison is the CLI's (roomcorr compare) for two runs.
+    first = rooms.latest_measurement(demo_room)
+    second = rooms.add_measurement(demo_room, rooms.measurement_files(first))
+    r = client.get(f"/api/compare/{first.name}/{second.name}", headers=_auth())
+    assert r.status_code == 200, r.text
+    view = r.json()
+    expect = rooms.compare_measurements(first, second, room=demo_room, with_curves=True)
+    assert view["text"] == rooms.format_comparison(expect)
+    for ch_view, ch in zip(view["channels"], expect["channels"], strict=True):
+        after = ch["curves"]["after_db"]
+        np.testing.assert_allclose(ch_view["curves"]["after_db"], after, atol=1e-3)
+        assert ch_view["level_change_db"] == pytest.approx(ch["level_change_db"], abs=1e-9)
+    for bad in ("..", ".hidden", "%2e%2e%2f%2e%2e%2fetc"):
+        r = client.get(f"/api/compare/{bad}/{second.name}", headers=_auth())
+        assert r.status_code in (403, 404), bad

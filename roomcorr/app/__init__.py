@@ -6,6 +6,7 @@ JSON-ready data (dicts, lists, floats, strings).
 """
 
 from roomcorr.app.explore import (
+    compare_view,
     design_view,
     measurement_view,
     room_overview,
@@ -13,4 +14,11 @@ from roomcorr.app.explore import (
     run_files,
 )
 
-__all__ = ["design_view", "measurement_view", "room_overview", "run_file", "run_files"]
+__all__ = [
+    "compare_view",
+    "design_view",
+    "measurement_view",
+    "room_overview",
+    "run_file",
+    "run_files",
+]

@@ -178,6 +178,41 @@ def measurement_view(room: rooms.Room, run_id: str) -> dict[str, Any]:
     }
 
 
+def _plain(value: Any) -> Any:
+    """JSON-ready copy: arrays to lists, numpy scalars to floats, non-finite to None."""
+    if isinstance(value, dict):
+        return {str(k): _plain(v) for k, v in value.items()}
+    if isinstance(value, list | tuple):
+        return [_plain(v) for v in value]
+    if isinstance(value, np.ndarray):
+        return _finite_list(value) if value.ndim <= 1 else [_plain(v) for v in value]
+    if isinstance(value, np.generic):
+        value = value.item()
+    if isinstance(value, float) and not math.isfinite(value):
+        return None
+    if isinstance(value, Path):
+        return str(value)
+    return value
+
+
+def compare_view(room: rooms.Room, before: str, after: str) -> dict[str, Any]:
+    """Two measurement runs of the room compared, as ``roomcorr compare`` does.
+
+    Returns
+    -------
+    dict
+        The result of :func:`roomcorr.room.compare_measurements` (with the
+        response curves of both, per channel) and ``text``: the lines
+        ``roomcorr compare`` prints.
+    """
+    a = run_folder(room, "measurement", before)
+    b = run_folder(room, "measurement", after)
+    res = rooms.compare_measurements(a, b, room=room, with_curves=True)
+    out = _plain(res)
+    out["text"] = rooms.format_comparison(res)
+    return out
+
+
 def run_files(room: rooms.Room, run_id: str) -> list[dict[str, Any]]:
     """The files a design run wrote, as its manifest lists them (path, kind, SHA-256...)."""
     folder = run_folder(room, "design", run_id)
@@ -210,6 +245,7 @@ def run_file(room: rooms.Room, kind: str, run_id: str, rel_path: str) -> Path:
 
 
 __all__ = [
+    "compare_view",
     "design_view",
     "measurement_view",
     "room_overview",

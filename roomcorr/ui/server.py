@@ -256,6 +256,10 @@ def create_app(room: rooms.Room, token: str, port: int) -> ASGIApp:
             api(lambda run_id: service.measurement_view(room, run_id)),
         ),
         Route("/api/files/{run_id}", api(lambda run_id: service.run_files(room, run_id))),
+        Route(
+            "/api/compare/{before}/{after}",
+            api(lambda before, after: service.compare_view(room, before, after)),
+        ),
         Route("/api/file/{kind}/{run_id}/{path:path}", run_file),
         Route("/api/presets", api(target_presets)),
         Route("/api/preview", preview, methods=["POST"]),

@@ -200,6 +200,34 @@ async function openRun(run) {
   }
 }
 
+async function openCompare() {
+  const a = el("c-before").value, b = el("c-after").value;
+  if (!a || !b) { status("compare needs two finished measurements", true); return; }
+  showTab("explore");
+  clearPlots();
+  el("explore-controls").innerHTML = "";
+  el("explore-title").textContent = `What changed from ${a} to ${b}`;
+  status("comparing ...");
+  try {
+    const res = await api(`/api/compare/${encodeURIComponent(a)}/${encodeURIComponent(b)}`);
+    el("explore-text").textContent = "";
+    const pre = document.createElement("pre");
+    pre.textContent = res.text.join("\n");
+    el("explore-text").appendChild(pre);
+    res.channels.forEach(ch => {
+      if (!ch.curves) return;
+      addPlot(`${ch.name}: before and after`, `Level change ${Number(ch.level_change_db).toFixed(1)} dB, arrival change ${Number(ch.arrival_change_ms).toFixed(3)} ms.`,
+        ch.curves.freq_hz, [
+          { label: "before", data: ch.curves.before_db, color: COLORS[2], width: 1.5 },
+          { label: "after", data: ch.curves.after_db, color: COLORS[1], width: 1.5 },
+        ], "level (dB)");
+    });
+    status(`compared ${a} with ${b}`);
+  } catch (err) {
+    status(String(err.message || err), true);
+  }
+}
+
 async function loadFiles(runId) {
   const files = await api(`/api/files/${encodeURIComponent(runId)}`);
   document.getElementById("files-title").textContent = `Files of design ${runId}`;
@@ -231,6 +259,14 @@ let pending = null;
 function el(id) { return document.getElementById(id); }
 
 function fillMeasurements(runs) {
+  const done = runs.filter(r => r.kind === "measurement" && r.status === "complete");
+  for (const [id, pick] of [["c-before", done.length - 2], ["c-after", done.length - 1]]) {
+    const s = el(id);
+    const keep = s.value;
+    s.innerHTML = "";
+    done.forEach(r => { const o = document.createElement("option"); o.value = r.run_id; o.textContent = r.run_id; s.appendChild(o); });
+    s.value = keep || (done[Math.max(0, pick)] || {}).run_id || "";
+  }
   const sel = el("d-measurement");
   const keep = sel.value;
   sel.innerHTML = "";
@@ -352,6 +388,7 @@ async function setupDesign() {
   ["d-boost", "d-lo", "d-hi", "d-measurement"].forEach(id => el(id).addEventListener("input", schedule));
   el("d-add-point").addEventListener("click", () => { addPointRow(1000, 0); shaped = true; schedule(); });
   el("d-save").addEventListener("click", saveDesign);
+  el("c-go").addEventListener("click", openCompare);
   const p = presets.find(q => q.name === sel.value);
   setControls(p ? p.table : {});
 }
