@@ -10,19 +10,17 @@ from __future__ import annotations
 
 import shutil
 import tempfile
-import threading
 import time
 from pathlib import Path
 
-import httpx
-import uvicorn
+import httpx2 as httpx
 from _util import best_of, print_table
 
 from roomcorr import room as rooms
 from roomcorr.app.design import DesignPreview
 from roomcorr.audio_io import read_ir_set
 from roomcorr.pipeline import run_design
-from roomcorr.ui.server import TOKEN_HEADER, bind_loopback, create_app
+from roomcorr.ui.server import TOKEN_HEADER, background_server
 
 REPO = Path(__file__).resolve().parents[1]
 TOKEN = "bench-token"
@@ -77,25 +75,13 @@ def main() -> None:
         irs, fs, _ = read_ir_set([str(f) for f in files])
         design_s = best_of(lambda: run_design(irs, fs, settings), 2)
 
-        sock = bind_loopback(0)
-        port = sock.getsockname()[1]
-        server = uvicorn.Server(
-            uvicorn.Config(create_app(room, TOKEN, port), log_level="warning", lifespan="off")
-        )
-        thread = threading.Thread(target=server.run, kwargs={"sockets": [sock]}, daemon=True)
-        thread.start()
-        while not server.started:
-            time.sleep(0.02)
-        base = f"http://127.0.0.1:{port}"
-        hdr = {TOKEN_HEADER: TOKEN}
-        with httpx.Client(base_url=base, headers=hdr, timeout=60) as client:
-            client.post("/api/preview", json=edit)  # the analysis is made once, here
-            http_preview_s = best_of(lambda: client.post("/api/preview", json=edit), 5)
-            static_s = best_of(lambda: client.get("/static/app.js"), 5)
-        page_s = _page_load_s(f"{base}/?token={TOKEN}", Path(tmp) / "profile")
-        server.should_exit = True
-        thread.join(timeout=10)
-        sock.close()
+        with background_server(room, TOKEN) as base:
+            hdr = {TOKEN_HEADER: TOKEN}
+            with httpx.Client(base_url=base, headers=hdr, timeout=60) as client:
+                client.post("/api/preview", json=edit)  # the analysis is made once, here
+                http_preview_s = best_of(lambda: client.post("/api/preview", json=edit), 5)
+                static_s = best_of(lambda: client.get("/static/app.js"), 5)
+            page_s = _page_load_s(f"{base}/?token={TOKEN}", Path(tmp) / "profile")
 
     rows = [
         [

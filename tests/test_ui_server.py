@@ -9,8 +9,6 @@ from __future__ import annotations
 
 import os
 import shutil
-import threading
-import time
 from pathlib import Path
 
 import numpy as np
@@ -26,7 +24,7 @@ from starlette.testclient import TestClient  # noqa: E402
 from roomcorr import cli  # noqa: E402
 from roomcorr import room as rooms  # noqa: E402
 from roomcorr.export import load_design_curves  # noqa: E402
-from roomcorr.ui.server import TOKEN_HEADER, bind_loopback, create_app  # noqa: E402
+from roomcorr.ui.server import TOKEN_HEADER, background_server, bind_loopback, create_app  # noqa: E402
 
 REPO = Path(__file__).resolve().parents[1]
 TOKEN = "test-token-0123456789"
@@ -202,20 +200,12 @@ def test_browser_shows_history_and_draws_a_design(demo_room, tmp_path):
             pytest.fail("chromium and chromium-driver must be installed (the CI script does)")
         pytest.skip("chromium or chromedriver not installed")
     pytest.importorskip("selenium")
-    import uvicorn
     from selenium import webdriver
     from selenium.webdriver.chrome.service import Service
     from selenium.webdriver.common.by import By
     from selenium.webdriver.support import expected_conditions as ec
     from selenium.webdriver.support.ui import WebDriverWait
 
-    sock = bind_loopback(0)
-    port = sock.getsockname()[1]
-    server = uvicorn.Server(
-        uvicorn.Config(create_app(demo_room, TOKEN, port), log_level="warning", lifespan="off")
-    )
-    thread = threading.Thread(target=server.run, kwargs={"sockets": [sock]}, daemon=True)
-    thread.start()
     opts = webdriver.ChromeOptions()
     opts.binary_location = found[0]
     for flag in (
@@ -234,51 +224,47 @@ def test_browser_shows_history_and_draws_a_design(demo_room, tmp_path):
     opts.set_capability("goog:loggingPrefs", {"browser": "ALL"})
     driver = webdriver.Chrome(service=Service(found[1]), options=opts)
     try:
-        while not server.started:
-            time.sleep(0.05)
-        driver.get(f"http://127.0.0.1:{port}/?token={TOKEN}")
-        wait = WebDriverWait(driver, 60)
-        rows = wait.until(lambda d: d.find_elements(By.CSS_SELECTOR, "#runs tbody tr.pick"))
-        n_runs = len(rooms.history(demo_room))
-        assert len(driver.find_elements(By.CSS_SELECTOR, "#runs tbody tr")) == n_runs
-        assert "token" not in driver.current_url  # the key does not stay in the address bar
-        design_row = next(r for r in rows if r.text.startswith("design"))
-        design_row.click()
-        wait.until(lambda d: len(d.find_elements(By.CSS_SELECTOR, "#plots canvas")) >= 4)
-        wait.until(ec.text_to_be_present_in_element((By.ID, "status"), "design"))
-        shot = Path(os.environ.get("ROOMCORR_UI_SHOT", tmp_path / "explore.png"))
-        driver.save_screenshot(str(shot))
-        # Design: a change of the tilt redraws the preview; saving makes a new design run
-        n_designs = len(rooms.list_runs(demo_room, "design"))
-        driver.find_element(By.CSS_SELECTOR, "nav button[data-tab=design]").click()
-        wait.until(lambda d: len(d.find_elements(By.CSS_SELECTOR, "#design-plots canvas")) >= 2)
-        driver.execute_script(
-            "const s = document.getElementById('d-tilt'); s.value = -1.0;"
-            "s.dispatchEvent(new Event('input'));"
-        )
-        wait.until(ec.text_to_be_present_in_element((By.ID, "o-tilt"), "-1.0"))
-        wait.until(ec.text_to_be_present_in_element((By.ID, "status"), "preview of"))
-        driver.save_screenshot(str(shot.with_name("design.png")))
-        driver.find_element(By.ID, "d-save").click()
-        wait.until(ec.text_to_be_present_in_element((By.ID, "status"), "saved as design"))
-        assert len(rooms.list_runs(demo_room, "design")) == n_designs + 1
-        assert (demo_room.root / "targets" / "shaped.toml").is_file()
-        # Compare (here the one measurement with itself): the CLI's text and both curves
-        driver.find_element(By.CSS_SELECTOR, "nav button[data-tab=room]").click()
-        driver.find_element(By.ID, "c-go").click()
-        wait.until(ec.text_to_be_present_in_element((By.ID, "status"), "compared"))
-        assert "speed of sound" in driver.find_element(By.ID, "explore-text").text
-        assert len(driver.find_elements(By.CSS_SELECTOR, "#plots canvas")) >= 2
-        driver.find_element(By.CSS_SELECTOR, "nav button[data-tab=files]").click()
-        links = driver.find_elements(By.CSS_SELECTOR, "#files tbody a")
-        assert any(a.text.endswith(".wav") for a in links)
-        severe = [e for e in driver.get_log("browser") if e["level"] == "SEVERE"]
-        assert not severe, severe
+        with background_server(demo_room, TOKEN) as base:
+            driver.get(f"{base}/?token={TOKEN}")
+            wait = WebDriverWait(driver, 60)
+            rows = wait.until(lambda d: d.find_elements(By.CSS_SELECTOR, "#runs tbody tr.pick"))
+            n_runs = len(rooms.history(demo_room))
+            assert len(driver.find_elements(By.CSS_SELECTOR, "#runs tbody tr")) == n_runs
+            assert "token" not in driver.current_url  # the key does not stay in the address bar
+            design_row = next(r for r in rows if r.text.startswith("design"))
+            design_row.click()
+            wait.until(lambda d: len(d.find_elements(By.CSS_SELECTOR, "#plots canvas")) >= 4)
+            wait.until(ec.text_to_be_present_in_element((By.ID, "status"), "design"))
+            shot = Path(os.environ.get("ROOMCORR_UI_SHOT", tmp_path / "explore.png"))
+            driver.save_screenshot(str(shot))
+            # Design: a change of the tilt redraws the preview; saving makes a new design run
+            n_designs = len(rooms.list_runs(demo_room, "design"))
+            driver.find_element(By.CSS_SELECTOR, "nav button[data-tab=design]").click()
+            wait.until(lambda d: len(d.find_elements(By.CSS_SELECTOR, "#design-plots canvas")) >= 2)
+            driver.execute_script(
+                "const s = document.getElementById('d-tilt'); s.value = -1.0;"
+                "s.dispatchEvent(new Event('input'));"
+            )
+            wait.until(ec.text_to_be_present_in_element((By.ID, "o-tilt"), "-1.0"))
+            wait.until(ec.text_to_be_present_in_element((By.ID, "status"), "preview of"))
+            driver.save_screenshot(str(shot.with_name("design.png")))
+            driver.find_element(By.ID, "d-save").click()
+            wait.until(ec.text_to_be_present_in_element((By.ID, "status"), "saved as design"))
+            assert len(rooms.list_runs(demo_room, "design")) == n_designs + 1
+            assert (demo_room.root / "targets" / "shaped.toml").is_file()
+            # Compare (here the one measurement with itself): the CLI's text and both curves
+            driver.find_element(By.CSS_SELECTOR, "nav button[data-tab=room]").click()
+            driver.find_element(By.ID, "c-go").click()
+            wait.until(ec.text_to_be_present_in_element((By.ID, "status"), "compared"))
+            assert "speed of sound" in driver.find_element(By.ID, "explore-text").text
+            assert len(driver.find_elements(By.CSS_SELECTOR, "#plots canvas")) >= 2
+            driver.find_element(By.CSS_SELECTOR, "nav button[data-tab=files]").click()
+            links = driver.find_elements(By.CSS_SELECTOR, "#files tbody a")
+            assert any(a.text.endswith(".wav") for a in links)
+            severe = [e for e in driver.get_log("browser") if e["level"] == "SEVERE"]
+            assert not severe, severe
     finally:
         driver.quit()
-        server.should_exit = True
-        thread.join(timeout=10)
-        sock.close()
     from matplotlib.image import imread
 
     img = imread(shot)[..., :3]

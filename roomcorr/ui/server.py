@@ -16,11 +16,14 @@ Security model (every rule has a test in ``tests/test_ui_server.py``):
 
 from __future__ import annotations
 
+import contextlib
 import json
 import secrets
 import socket
+import threading
+import time
 import webbrowser
-from collections.abc import Awaitable, Callable, MutableMapping
+from collections.abc import Awaitable, Callable, Iterator, MutableMapping
 from http.cookies import SimpleCookie
 from importlib import resources
 from pathlib import Path
@@ -276,6 +279,28 @@ def bind_loopback(port: int = 0) -> socket.socket:
     sock.bind((LOOPBACK, port))
     sock.listen(64)
     return sock
+
+
+@contextlib.contextmanager
+def background_server(room: rooms.Room, token: str) -> Iterator[str]:
+    """Run the app for ``room`` in a thread (tests, benchmarks); yields its base address.
+
+    The server is stopped and its socket closed when the block ends.
+    """
+    sock = bind_loopback(0)
+    port = sock.getsockname()[1]
+    config = uvicorn.Config(create_app(room, token, port), log_level="warning", lifespan="off")
+    server = uvicorn.Server(config)
+    thread = threading.Thread(target=server.run, kwargs={"sockets": [sock]}, daemon=True)
+    thread.start()
+    try:
+        while not server.started and thread.is_alive():
+            time.sleep(0.02)
+        yield f"http://{LOOPBACK}:{port}"
+    finally:
+        server.should_exit = True
+        thread.join(timeout=10)
+        sock.close()
 
 
 def serve(
