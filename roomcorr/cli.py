@@ -512,39 +512,22 @@ def _add_devices(sub: Any) -> argparse.ArgumentParser:
     return p
 
 
-def _last_devices(room_arg: str | None) -> dict | None:
-    """Devices of the room's latest measurement that recorded them (or None)."""
-    import json
-
+def _room_quietly(room_arg: str | None) -> Any:
+    """The room named or around us, or None (also when it cannot be opened)."""
     from roomcorr import room as rooms
 
     try:
-        room = rooms.open_room(room_arg) if room_arg else rooms.find_room()
-        if room is None:
-            return None
-        for run in reversed(rooms.list_runs(room, "measurement")):
-            path = Path(run.path) / "measurement.json"
-            if path.is_file():
-                devs = json.loads(path.read_text(encoding="utf-8")).get("devices")
-                if isinstance(devs, dict):
-                    return devs
-    except (RoomcorrError, OSError, ValueError, AttributeError):
+        return rooms.open_room(room_arg) if room_arg else rooms.find_room()
+    except RoomcorrError:
         return None
-    return None
 
 
 def _run_devices(args: argparse.Namespace) -> int:
-    from roomcorr.errors import DeviceError
-    from roomcorr.measure.capture import list_devices
+    from roomcorr.app.measure import devices_view
 
-    devs = list_devices()
-    if not devs:
-        raise DeviceError(
-            "no audio devices found: plug in the microphone and the output, close programs "
-            "that hold them, then run 'roomcorr devices' again"
-        )
-    last = _last_devices(getattr(args, "room", None)) or {}
-    for d in devs:
+    view = devices_view(_room_quietly(getattr(args, "room", None)))
+    last = view["last"]
+    for d in view["devices"]:
         can = [w for w, n in (("play", d["max_output_channels"]),
                               ("record", d["max_input_channels"])) if n > 0]
         marks = []
@@ -687,8 +670,8 @@ def measure_settings_from_args(
 
 def _run_measure(args: argparse.Namespace) -> int:
     from roomcorr import room as rooms
+    from roomcorr.app.measure import measure_in_room, measure_into
     from roomcorr.measure.live import make_view
-    from roomcorr.measure.session import copy_unfinished, run_measurement
 
     room = rooms.open_room(args.room) if args.room else None
     if room is None and not args.out:
@@ -699,8 +682,8 @@ def _run_measure(args: argparse.Namespace) -> int:
     if args.out:
         ms = measure_settings_from_args(args)
         with view:
-            record = run_measurement(ms, args.out, replace=args.replace, resume=args.resume,
-                                     **kw)
+            record = measure_into(ms, args.out, replace=args.replace, resume=args.resume,
+                                  **kw)
         n = sum(1 for p in record["positions"] if p["file"])
         print(f"measured {n} position(s) into {args.out}; next: roomcorr design {args.out}")
         return 0
@@ -709,22 +692,11 @@ def _run_measure(args: argparse.Namespace) -> int:
             "measure: give --out DIR, or run it inside a room folder (see roomcorr init)"
         )
     ms = measure_settings_from_args(args, rooms.load_room_settings(room).measure)
-    unfinished = None
-    if args.resume:
-        runs = rooms.list_runs(room, "measurement")
-        unfinished = runs[-1].path if runs and not runs[-1].complete else None
-        if unfinished is None:
-            raise SettingsError(
-                f"{room.root}: the latest measurement is complete; nothing to resume"
-            )
-    with view, rooms.new_run(room, "measurement") as run_dir:
-        if unfinished is not None:  # the unfinished run stays as it is; its work is copied
-            copy_unfinished(unfinished, run_dir)
-        record = run_measurement(ms, run_dir, replace=False, resume=unfinished is not None,
-                                 **kw)
-    n = sum(1 for p in record["positions"] if p["file"])
+    with view:
+        res = measure_in_room(room, ms, resume=args.resume, **kw)
     print(
-        f"measured {n} position(s) into {run_dir.relative_to(room.root)}; next: roomcorr design"
+        f"measured {res['positions_saved']} position(s) into "
+        f"{res['run_dir'].relative_to(room.root)}; next: roomcorr design"
     )
     return 0
 
