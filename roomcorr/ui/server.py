@@ -132,6 +132,22 @@ class Live:
 
     def __init__(self) -> None:
         self.sockets: set[WebSocket] = set()
+        # per page: its event loop and a queue drained in order (events from threads)
+        self.queues: dict[WebSocket, tuple[asyncio.AbstractEventLoop, asyncio.Queue]] = {}
+
+    def publish_threadsafe(self, event: dict[str, Any]) -> None:
+        """Send ``event`` to every page from any thread (a measurement's worker), in order."""
+        for loop, q in list(self.queues.values()):
+            with contextlib.suppress(RuntimeError):  # that page's loop has ended
+                loop.call_soon_threadsafe(q.put_nowait, event)
+
+    async def _drain(self, ws: WebSocket, q: asyncio.Queue) -> None:
+        while True:
+            event = await q.get()
+            try:
+                await ws.send_json(event)
+            except Exception:  # noqa: BLE001 - a page that went away
+                return
 
     async def publish(self, event: dict[str, Any]) -> None:
         for ws in list(self.sockets):
@@ -144,6 +160,9 @@ class Live:
         await ws.accept()
         self.sockets.add(ws)
         await ws.send_json({"type": "hello"})
+        q: asyncio.Queue = asyncio.Queue()
+        self.queues[ws] = (asyncio.get_running_loop(), q)
+        drain = asyncio.create_task(self._drain(ws, q))
         try:
             while True:
                 await ws.receive_text()  # the page sends nothing; this waits for it to leave
@@ -151,6 +170,8 @@ class Live:
             pass
         finally:
             self.sockets.discard(ws)
+            self.queues.pop(ws, None)
+            drain.cancel()
 
 
 def target_presets() -> list[dict[str, Any]]:
@@ -306,12 +327,7 @@ class MeasureRoutes:
         return (self.job is not None and self.job.running()) or self.tone_lock.locked()
 
     def _sender(self) -> Callable[[dict[str, Any]], None]:
-        loop = asyncio.get_running_loop()
-
-        def send(event: dict[str, Any]) -> None:
-            asyncio.run_coroutine_threadsafe(self.live.publish(event), loop)
-
-        return send
+        return self.live.publish_threadsafe
 
     @staticmethod
     def _json(data: Any, status: int = 200) -> Response:
