@@ -722,38 +722,14 @@ def _add_calibrate_mic(sub: Any) -> argparse.ArgumentParser:
 
 
 def _run_calibrate_mic(args: argparse.Namespace) -> int:
-    from roomcorr.errors import InputFileError
-    from roomcorr.measure.capture import record
-    from roomcorr.measure.levels import rms_dbfs, sensitivity_from_calibrator
+    from roomcorr.app.measure import calibrate_microphone
     from roomcorr.measure.live import make_view
-    from roomcorr.measure.settings import SENSITIVITY_RANGE_DBFS
 
-    if args.calibrator_level not in (94.0, 114.0):
-        raise SettingsError("--calibrator-level: acoustic calibrators give 94 or 114 dB SPL")
-    if not 1.0 <= args.seconds <= 30.0:
-        raise SettingsError("--seconds: use 1 to 30")
     view = make_view(plain=args.plain)
     with view:
-        view.start(f"recording the calibrator at input {args.input}", args.seconds)
-        try:
-            x = record(args.rate, args.input, args.seconds, args.device,
-                       progress=view.update)
-        finally:
-            view.stop()
-    x = x[int(0.5 * args.rate):]  # the first half second may hold the stream's start
-    sens, frac = sensitivity_from_calibrator(x, args.rate, args.calibrator_level)
-    lo, hi = SENSITIVITY_RANGE_DBFS
-    if frac < 0.9:
-        raise InputFileError(
-            f"input {args.input}: no steady 1 kHz tone ({frac:.0%} of the level near 1 kHz, "
-            f"input at {rms_dbfs(x):.1f} dBFS); is the calibrator on and seated on the "
-            "microphone?"
-        )
-    if not lo <= sens <= hi:
-        raise InputFileError(
-            f"input {args.input}: the reading gives {sens:.1f} dBFS for 94 dB SPL, outside "
-            f"{lo:g} to {hi:g}; check the input gain (clipping or far too low)"
-        )
+        res = calibrate_microphone(args.rate, args.input, args.seconds, args.device,
+                                   args.calibrator_level, view=view)
+    sens, frac = res["sensitivity_dbfs"], res["fraction_at_1k"]
     print(f"microphone sensitivity: {sens:.2f} dBFS for 94 dB SPL "
           f"({args.calibrator_level:g} dB SPL calibrator, {frac:.1%} of the level at 1 kHz)")
     print(f"use it: roomcorr measure --mic-sensitivity {sens:.2f} (same input gain), or "

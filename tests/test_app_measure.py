@@ -17,7 +17,7 @@ from scipy.signal import fftconvolve
 
 from roomcorr import room as rooms
 from roomcorr.app import measure as am
-from roomcorr.errors import SafetyError, SettingsError
+from roomcorr.errors import InputFileError, SafetyError, SettingsError
 from roomcorr.measure import capture
 from roomcorr.measure.session import CAUTIONS
 from roomcorr.measure.settings import LEVEL_CAP_DBFS, MeasureSettings
@@ -309,6 +309,49 @@ class FakeSounddevice:
 
         self.Stream = Stream
 
+        class OutputStream(Stream):
+            def __init__(
+                self, device, samplerate, channels, dtype, blocksize, callback, finished_callback
+            ):
+                self.cb, self.done = callback, finished_callback
+                self.n_out = channels
+                self.thread = threading.Thread(target=self._run_out, daemon=True)
+
+            def _run_out(self):
+                k = 0
+                while not outer.aborted:
+                    if k == outer.press:
+                        outer.stop.set()
+                    outdata = np.full((256, self.n_out), np.nan, np.float32)
+                    try:
+                        self.cb(outdata, 256, None, None)
+                    except (outer.CallbackStop, outer.CallbackAbort):
+                        outer.blocks.append(outdata.copy())
+                        break
+                    outer.blocks.append(outdata.copy())
+                    k += 1
+                self.done()
+
+        class InputStream(Stream):
+            def __init__(
+                self, device, samplerate, channels, dtype, blocksize, callback, finished_callback
+            ):
+                self.cb, self.done = callback, finished_callback
+                self.n_in = channels
+                self.thread = threading.Thread(target=self._run_in, daemon=True)
+
+            def _run_in(self):
+                while not outer.aborted:
+                    try:
+                        self.cb(np.zeros((256, self.n_in), np.float32), 256, None, None)
+                    except (outer.CallbackStop, outer.CallbackAbort):
+                        break
+                    threading.Event().wait(0.001)
+                self.done()
+
+        self.OutputStream = OutputStream
+        self.InputStream = InputStream
+
 
 def test_stop_silences_the_output_from_the_next_block_and_raises(monkeypatch):
     stop = threading.Event()
@@ -322,3 +365,47 @@ def test_stop_silences_the_output_from_the_next_block_and_raises(monkeypatch):
     assert len(fake.blocks) == 61  # the block after Stop is the last one asked for
     assert np.all(fake.blocks[-1] == 0.0)  # ...and it is silence
     assert np.all(played[40 * 256 : 60 * 256] == np.float32(0.1))  # sound until Stop
+
+
+def test_stop_silences_two_streams_too(monkeypatch):
+    # two devices (a USB microphone beside another output): the output stream's callback
+    # goes silent from the block after Stop; both streams are aborted
+    stop = threading.Event()
+    fake = FakeSounddevice(press_stop_at_block=60, stop=stop)
+    monkeypatch.setattr(capture, "_sd", lambda: fake)
+    two = capture.Devices(0, "usb mic", 1, "hdmi", True)
+    sig = 0.1 * np.ones((1, 48000 * 5))
+    with pytest.raises(capture.Stopped):
+        capture.play_record(sig, 48000, [1], [1], devices=two, stop=stop)
+    assert len(fake.blocks) == 61 and np.all(fake.blocks[-1] == 0.0)
+    assert np.all(np.concatenate(fake.blocks[40:60]) == np.float32(0.1))
+    assert fake.aborted
+
+
+@pytest.mark.parametrize("calibrator_db", [94.0, 114.0])
+def test_calibrate_microphone_reads_the_calibrators_level(monkeypatch, calibrator_db):
+    # AES17: a sine of peak A reads 20 log10(A) dBFS; a 94 dB SPL calibrator at that level
+    # means that sensitivity (114 dB SPL: 20 dB less per pascal)
+    fs = 48000
+    t = np.arange(3 * fs) / fs
+
+    def record(rate, channel, seconds, device=None, progress=None):
+        assert (rate, channel, seconds) == (fs, 2, 3.0)
+        return 0.05 * np.sin(2 * np.pi * 1000.0 * t)
+
+    monkeypatch.setattr(capture, "record", record)
+    res = am.calibrate_microphone(fs, 2, 3.0, None, calibrator_db)
+    expect = 20 * np.log10(0.05) - (calibrator_db - 94.0)
+    assert res["sensitivity_dbfs"] == pytest.approx(expect, abs=0.05)
+    assert res["fraction_at_1k"] > 0.99
+
+
+def test_calibrate_microphone_refuses_noise_and_bad_options(monkeypatch):
+    noise = np.random.default_rng(3).standard_normal(3 * 48000) * 0.01
+    monkeypatch.setattr(capture, "record", lambda *a, **k: noise)
+    with pytest.raises(InputFileError, match="no steady 1 kHz tone"):
+        am.calibrate_microphone(48000, 1, 3.0)
+    with pytest.raises(SettingsError, match="94 or 114"):
+        am.calibrate_microphone(48000, 1, 3.0, None, 100.0)
+    with pytest.raises(SettingsError, match="1 to 30"):
+        am.calibrate_microphone(48000, 1, 0.2)

@@ -16,6 +16,7 @@ app call these functions; neither orchestrates a measurement on its own.
   output at once; the unfinished run stays as Ctrl-C leaves it (resumable; a run
   stopped before anything was written is removed).
 * :func:`measure_into` is the same for a plain output folder (``--out``).
+* :func:`calibrate_microphone` reads an acoustic calibrator (``calibrate-mic``).
 * Cautions: :func:`acknowledge_cautions` stores, once per room, that the user
   read them (``cautions-acknowledged.json`` in the room folder, written
   atomically); the browser app refuses sound without it.
@@ -31,6 +32,7 @@ import json
 import math
 import queue
 import threading
+import weakref
 from collections.abc import Callable
 from pathlib import Path
 from typing import Any
@@ -40,9 +42,15 @@ import numpy as np
 from roomcorr import room as rooms
 from roomcorr.app.through import load_through, through_summary
 from roomcorr.atomic import atomic_write_text
-from roomcorr.errors import DeviceError, RoomcorrError, SafetyError, SettingsError
+from roomcorr.errors import (
+    DeviceError,
+    InputFileError,
+    RoomcorrError,
+    SafetyError,
+    SettingsError,
+)
 from roomcorr.measure import capture
-from roomcorr.measure.levels import rms_dbfs
+from roomcorr.measure.levels import rms_dbfs, sensitivity_from_calibrator
 from roomcorr.measure.session import (
     CAUTIONS,
     RECORD_NAME,
@@ -50,7 +58,7 @@ from roomcorr.measure.session import (
     run_measurement,
     write_record,
 )
-from roomcorr.measure.settings import LEVEL_CAP_DBFS, MeasureSettings
+from roomcorr.measure.settings import LEVEL_CAP_DBFS, SENSITIVITY_RANGE_DBFS, MeasureSettings
 
 #: Peak level of the wiring test tone (dBFS): as quiet as the level check's range,
 #: well below the sweep's default of -20 dBFS (common practice: a wiring check is
@@ -127,6 +135,50 @@ def devices_view(room: rooms.Room | None = None) -> dict[str, Any]:
             "that hold them, then run 'roomcorr devices' again"
         )
     return {"devices": devs, "last": last_devices(room) or {}}
+
+
+def calibrate_microphone(
+    fs: int,
+    input_channel: int,
+    seconds: float,
+    device: str | int | None = None,
+    calibrator_level_db: float = 94.0,
+    view: Any = None,
+) -> dict[str, float]:
+    """Record an acoustic calibrator on the microphone (nothing plays); its sensitivity.
+
+    Returns ``{"sensitivity_dbfs", "fraction_at_1k"}`` (dBFS read for 94 dB SPL,
+    and the share of the level near 1 kHz). Refuses a reading without a steady
+    1 kHz tone or outside the plausible range, naming the input.
+    """
+    if calibrator_level_db not in (94.0, 114.0):
+        raise SettingsError("--calibrator-level: acoustic calibrators give 94 or 114 dB SPL")
+    if not 1.0 <= seconds <= 30.0:
+        raise SettingsError("--seconds: use 1 to 30")
+    if view is not None:
+        view.start(f"recording the calibrator at input {input_channel}", seconds)
+    try:
+        x = capture.record(
+            fs, input_channel, seconds, device, progress=None if view is None else view.update
+        )
+    finally:
+        if view is not None:
+            view.stop()
+    x = x[int(0.5 * fs) :]  # the first half second may hold the stream's start
+    sens, frac = sensitivity_from_calibrator(x, fs, calibrator_level_db)
+    lo, hi = SENSITIVITY_RANGE_DBFS
+    if frac < 0.9:
+        raise InputFileError(
+            f"input {input_channel}: no steady 1 kHz tone ({frac:.0%} of the level near 1 kHz, "
+            f"input at {rms_dbfs(x):.1f} dBFS); is the calibrator on and seated on the "
+            "microphone?"
+        )
+    if not lo <= sens <= hi:
+        raise InputFileError(
+            f"input {input_channel}: the reading gives {sens:.1f} dBFS for 94 dB SPL, outside "
+            f"{lo:g} to {hi:g}; check the input gain (clipping or far too low)"
+        )
+    return {"sensitivity_dbfs": float(sens), "fraction_at_1k": float(frac)}
 
 
 # --------------------------------------------------------------------------- cautions
@@ -486,6 +538,17 @@ def measure_in_room(
 #: Replies a prompt accepts, by the page's button.
 ANSWERS = {"continue": "", "repeat": "r", "skip": "s", "quit": "q"}
 
+_JOBS: weakref.WeakSet[MeasureJob] = weakref.WeakSet()
+
+
+def stop_all(timeout_s: float = 5.0) -> None:
+    """Stop every running :class:`MeasureJob` of this process (the app is shutting down)."""
+    jobs = [j for j in list(_JOBS) if j.running()]
+    for job in jobs:
+        job.stop()
+    for job in jobs:
+        job.wait(timeout_s)
+
 
 class MeasureJob:
     """One measurement running in a thread (the browser app's Start, Stop and prompts).
@@ -524,6 +587,7 @@ class MeasureJob:
         self.ms.validate()
         self.state = "running"
         self.thread = threading.Thread(target=self._run, name="roomcorr-measure", daemon=True)
+        _JOBS.add(self)
         self.thread.start()
 
     def _ask(self, text: str) -> str:

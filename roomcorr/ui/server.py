@@ -491,6 +491,7 @@ def background_server(room: rooms.Room, token: str) -> Iterator[str]:
             time.sleep(0.02)
         yield f"http://{LOOPBACK}:{port}"
     finally:
+        measuring.stop_all()
         server.should_exit = True
         thread.join(timeout=10)
         sock.close()
@@ -518,4 +519,5 @@ def serve(
     try:
         server.run(sockets=[sock])
     finally:
+        measuring.stop_all()  # Ctrl-C while sweeping: silence first, then leave
         sock.close()
