@@ -252,8 +252,9 @@ def test_test_tone_not_heard_says_what_to_check(room, monkeypatch):
 
 
 class FakeSounddevice:
-    """Enough of sounddevice for play_record: a full-duplex stream whose callback is
-    called block by block in a thread; what the callback writes is kept."""
+    """Enough of sounddevice for play_record: streams whose callbacks are called block by
+    block in a thread; what an output callback writes is kept. The Stop button is pressed
+    (``stop`` set) just before output block ``press_stop_at_block``."""
 
     class CallbackStop(Exception):
         pass
@@ -272,28 +273,36 @@ class FakeSounddevice:
         outer = self
 
         class Stream:
+            """Full duplex (channels = (in, out)); subclasses play or record only."""
+
             def __init__(
                 self, device, samplerate, channels, dtype, blocksize, callback, finished_callback
             ):
-                self.cb, self.done = callback, finished_callback
-                self.n_in, self.n_out = channels
+                self.cb, self.done, self.channels = callback, finished_callback, channels
                 self.thread = threading.Thread(target=self._run, daemon=True)
+
+            def call(self, outdata, indata):
+                self.cb(indata, outdata, 256, None, None)
 
             def _run(self):
                 k = 0
                 while not outer.aborted:
-                    if k == outer.press:
+                    n_in, n_out = self.shape()
+                    outdata = np.full((256, n_out), np.nan, np.float32) if n_out else None
+                    if n_out and k == outer.press:
                         outer.stop.set()  # the Stop button, between two audio blocks
-                    indata = np.zeros((256, self.n_in), np.float32)
-                    outdata = np.full((256, self.n_out), np.nan, np.float32)
                     try:
-                        self.cb(indata, outdata, 256, None, None)
+                        self.call(outdata, np.zeros((256, n_in), np.float32))
                     except (outer.CallbackStop, outer.CallbackAbort):
-                        outer.blocks.append(outdata.copy())
                         break
-                    outer.blocks.append(outdata.copy())
+                    finally:
+                        if n_out:
+                            outer.blocks.append(outdata.copy())
                     k += 1
                 self.done()
+
+            def shape(self):
+                return self.channels
 
             def start(self):
                 self.thread.start()
@@ -307,50 +316,22 @@ class FakeSounddevice:
             def close(self):
                 self.thread.join(5)
 
-        self.Stream = Stream
-
         class OutputStream(Stream):
-            def __init__(
-                self, device, samplerate, channels, dtype, blocksize, callback, finished_callback
-            ):
-                self.cb, self.done = callback, finished_callback
-                self.n_out = channels
-                self.thread = threading.Thread(target=self._run_out, daemon=True)
+            def shape(self):
+                return 0, self.channels
 
-            def _run_out(self):
-                k = 0
-                while not outer.aborted:
-                    if k == outer.press:
-                        outer.stop.set()
-                    outdata = np.full((256, self.n_out), np.nan, np.float32)
-                    try:
-                        self.cb(outdata, 256, None, None)
-                    except (outer.CallbackStop, outer.CallbackAbort):
-                        outer.blocks.append(outdata.copy())
-                        break
-                    outer.blocks.append(outdata.copy())
-                    k += 1
-                self.done()
+            def call(self, outdata, indata):
+                self.cb(outdata, 256, None, None)
 
         class InputStream(Stream):
-            def __init__(
-                self, device, samplerate, channels, dtype, blocksize, callback, finished_callback
-            ):
-                self.cb, self.done = callback, finished_callback
-                self.n_in = channels
-                self.thread = threading.Thread(target=self._run_in, daemon=True)
+            def shape(self):
+                return self.channels, 0
 
-            def _run_in(self):
-                while not outer.aborted:
-                    try:
-                        self.cb(np.zeros((256, self.n_in), np.float32), 256, None, None)
-                    except (outer.CallbackStop, outer.CallbackAbort):
-                        break
-                    threading.Event().wait(0.001)
-                self.done()
+            def call(self, outdata, indata):
+                self.cb(indata, 256, None, None)
+                threading.Event().wait(0.001)
 
-        self.OutputStream = OutputStream
-        self.InputStream = InputStream
+        self.Stream, self.OutputStream, self.InputStream = Stream, OutputStream, InputStream
 
 
 def test_stop_silences_the_output_from_the_next_block_and_raises(monkeypatch):

@@ -41,6 +41,7 @@ def set_room_measure(room: rooms.Room, values: dict) -> None:
         assert n == 1, key
     room.settings_path.write_text(head + sep + measure, encoding="utf-8")
 
+
 ROUTES = [
     ("get", "/api/measure/devices", None),
     ("get", "/api/measure/cautions", None),
@@ -75,9 +76,16 @@ def room(tmp_path, monkeypatch):
     monkeypatch.setattr(capture, "open_devices", lambda *a, **k: devs)
     monkeypatch.setattr(capture, "play_record", fake_play_record)
     listed = [
-        {"index": 0, "name": "offline room", "hostapi": "none", "max_input_channels": 2,
-         "max_output_channels": 2, "default_samplerate": 48000.0, "default_input": True,
-         "default_output": True}
+        {
+            "index": 0,
+            "name": "offline room",
+            "hostapi": "none",
+            "max_input_channels": 2,
+            "max_output_channels": 2,
+            "default_samplerate": 48000.0,
+            "default_input": True,
+            "default_output": True,
+        }
     ]
     monkeypatch.setattr(capture, "list_devices", lambda: listed)
     r = rooms.init_room(tmp_path / "studio")
@@ -120,8 +128,10 @@ def test_no_sound_before_the_cautions_are_acknowledged(client, room, monkeypatch
     monkeypatch.setattr(capture, "play_record", lambda *a, **k: played.append(1))
     view = client.get("/api/measure/cautions", headers=_auth()).json()
     assert view["acknowledged"] is False and "protect your hearing" in view["text"]
-    for path, body in (("/api/measure/tone", {"output": 1, "settings": QUICK}),
-                       ("/api/measure/start", {"settings": QUICK})):
+    for path, body in (
+        ("/api/measure/tone", {"output": 1, "settings": QUICK}),
+        ("/api/measure/start", {"settings": QUICK}),
+    ):
         r = client.post(path, headers=_auth(), json=body)
         assert r.status_code == 400 and "acknowledge the cautions" in r.json()["error"]
     assert not played and rooms.list_runs(room, "measurement") == []
@@ -145,13 +155,15 @@ def test_the_level_cap_and_the_settings_are_checked_like_the_command_line(client
     for settings, words in bad:
         r = client.post("/api/measure/start", headers=_auth(), json={"settings": settings})
         assert r.status_code == 400 and words in r.json()["error"], (settings, r.text)
-        r = client.post("/api/measure/tone", headers=_auth(), json={"output": 1,
-                                                                     "settings": settings})
+        r = client.post(
+            "/api/measure/tone", headers=_auth(), json={"output": 1, "settings": settings}
+        )
         assert r.status_code == 400, settings
     r = client.post("/api/measure/start", headers=_auth(), content=b"[1, 2]")
     assert r.status_code == 400
-    r = client.post("/api/measure/tone", headers=_auth(), json={"output": "../1",
-                                                                 "settings": QUICK})
+    r = client.post(
+        "/api/measure/tone", headers=_auth(), json={"output": "../1", "settings": QUICK}
+    )
     assert r.status_code == 400
     assert rooms.list_runs(room, "measurement") == []
 
@@ -179,11 +191,15 @@ def test_devices_are_listed(client):
 def test_start_refused_while_a_command_holds_the_room(client, room):
     am.acknowledge_cautions(room)
     holder = subprocess.Popen(
-        [sys.executable, "-c",
-         "import time; from roomcorr import room as r; "
-         f"room = r.open_room({str(room.root)!r});\n"
-         "with r.room_lock(room, 'test holder'):\n print('held', flush=True); time.sleep(60)"],
-        stdout=subprocess.PIPE, text=True,
+        [
+            sys.executable,
+            "-c",
+            "import time; from roomcorr import room as r; "
+            f"room = r.open_room({str(room.root)!r});\n"
+            "with r.room_lock(room, 'test holder'):\n print('held', flush=True); time.sleep(60)",
+        ],
+        stdout=subprocess.PIPE,
+        text=True,
     )
     try:
         assert holder.stdout.readline().strip() == "held"
@@ -211,8 +227,7 @@ def test_a_measurement_over_the_live_channel_with_prompts(client, room):
             seen.append(ev)
             if ev["type"] == "prompt":
                 assert ev["choices"] == ["continue", "quit"]
-                a = client.post("/api/measure/answer", headers=_auth(),
-                                json={"answer": "continue"})
+                a = client.post("/api/measure/answer", headers=_auth(), json={"answer": "continue"})
                 assert a.status_code == 200, a.text
             if ev["type"] in ("finished", "failed", "stopped"):
                 break

@@ -14,7 +14,6 @@ from __future__ import annotations
 
 import hashlib
 import os
-import shutil
 import time
 from pathlib import Path
 
@@ -26,6 +25,7 @@ pytest.importorskip("starlette")
 pytest.importorskip("uvicorn")
 
 from test_ui_measure import set_room_measure  # noqa: E402
+from ui_browser import assert_not_blank, chromium  # noqa: E402
 
 from roomcorr import cli  # noqa: E402
 from roomcorr import room as rooms  # noqa: E402
@@ -46,45 +46,6 @@ def room_response() -> np.ndarray:
     return h
 
 
-def _browser(tmp_path: Path):
-    exe = shutil.which("chromium") or shutil.which("chromium-browser")
-    driver = shutil.which("chromedriver")
-    if not (exe and driver):
-        if os.environ.get("CI") == "true":
-            pytest.fail("chromium and chromium-driver must be installed (the CI script does)")
-        pytest.skip("chromium or chromedriver not installed")
-    pytest.importorskip("selenium")
-    from selenium import webdriver
-    from selenium.webdriver.chrome.service import Service
-
-    opts = webdriver.ChromeOptions()
-    opts.binary_location = exe
-    for flag in (
-        "--headless",
-        "--no-sandbox",
-        "--disable-gpu",
-        "--disable-quic",
-        "--no-first-run",
-        "--disable-background-networking",
-        "--disable-component-update",
-        "--disable-sync",
-        f"--user-data-dir={tmp_path / 'profile'}",
-        "--window-size=1300,1500",
-    ):
-        opts.add_argument(flag)
-    opts.set_capability("goog:loggingPrefs", {"browser": "ALL"})
-    return webdriver.Chrome(service=Service(driver), options=opts)
-
-
-def _not_blank(path: Path) -> None:
-    from matplotlib.image import imread
-
-    img = imread(path)[..., :3]
-    background = np.median(img.reshape(-1, 3), axis=0)
-    differs = np.any(np.abs(img - background) > 0.1, axis=-1)
-    assert differs.mean() > 0.03 and img.std() > 0.03, path  # not blank
-
-
 def _set(driver, element_id: str, value: str) -> None:
     driver.execute_script(
         "const e = document.getElementById(arguments[0]); e.value = arguments[1];"
@@ -99,12 +60,13 @@ def test_measure_design_save_and_export_in_the_browser(make_room, tmp_path):  # 
     from selenium.webdriver.support import expected_conditions as ec
     from selenium.webdriver.support.ui import WebDriverWait
 
-    make_room(DEVICE, {"speakers": [{"ir": room_response().tolist()}], "noise_rms": 1e-4,
-                       "seed": 4})
+    make_room(
+        DEVICE, {"speakers": [{"ir": room_response().tolist()}], "noise_rms": 1e-4, "seed": 4}
+    )
     room = rooms.init_room(tmp_path / "hall")
     set_room_measure(room, {"noise_s": 0.3, "tail_s": 0.4, "ir_s": 0.25, "test_s": 0.3})
     shots = Path(os.environ.get("ROOMCORR_UI_SHOT", tmp_path / "x.png")).parent
-    driver = _browser(tmp_path)
+    driver = chromium(tmp_path, window="1300,1500")
     try:
         with background_server(room, TOKEN) as base:
             driver.get(f"{base}/?token={TOKEN}")
@@ -119,10 +81,14 @@ def test_measure_design_save_and_export_in_the_browser(make_room, tmp_path):  # 
             assert (room.root / "cautions-acknowledged.json").is_file()
             # devices: the test room plays and records
             for sel in ("m-in-dev", "m-out-dev"):
-                wait.until(lambda d, s=sel: d.find_elements(
-                    By.CSS_SELECTOR, f"#{s} option[data-name='{DEVICE}']"))
-                option = driver.find_element(By.CSS_SELECTOR,
-                                             f"#{sel} option[data-name='{DEVICE}']")
+                wait.until(
+                    lambda d, s=sel: d.find_elements(
+                        By.CSS_SELECTOR, f"#{s} option[data-name='{DEVICE}']"
+                    )
+                )
+                option = driver.find_element(
+                    By.CSS_SELECTOR, f"#{sel} option[data-name='{DEVICE}']"
+                )
                 option.click()
             rows = driver.find_elements(By.CSS_SELECTOR, "#m-speakers tbody tr")
             rows[1].find_element(By.CSS_SELECTOR, ".m-remove").click()  # one loudspeaker
@@ -144,8 +110,10 @@ def test_measure_design_save_and_export_in_the_browser(make_room, tmp_path):  # 
                 prompt = driver.find_element(By.ID, "m-prompt")
                 if prompt.is_displayed():
                     words = driver.find_element(By.ID, "m-prompt-text").text
-                    buttons = {b.get_attribute("data-choice"): b for b in
-                               prompt.find_elements(By.TAG_NAME, "button")}
+                    buttons = {
+                        b.get_attribute("data-choice"): b
+                        for b in prompt.find_elements(By.TAG_NAME, "button")
+                    }
                     if "continue" in buttons:
                         if "position 2" in words:
                             driver.save_screenshot(str(shots / "measure-next.png"))
@@ -165,8 +133,11 @@ def test_measure_design_save_and_export_in_the_browser(make_room, tmp_path):  # 
             assert len(meas) == 1 and len(rooms.measurement_files(meas[0].path)) == 2
             # Design: the new measurement, a change of the tilt, a save
             driver.find_element(By.CSS_SELECTOR, "nav button[data-tab=design]").click()
-            wait.until(lambda d: d.find_elements(
-                By.CSS_SELECTOR, f"#d-measurement option[value='{meas[0].run_id}']"))
+            wait.until(
+                lambda d: d.find_elements(
+                    By.CSS_SELECTOR, f"#d-measurement option[value='{meas[0].run_id}']"
+                )
+            )
             _set(driver, "d-measurement", meas[0].run_id)
             wait.until(lambda d: len(d.find_elements(By.CSS_SELECTOR, "#design-plots canvas")) >= 2)
             driver.execute_script(
@@ -182,8 +153,13 @@ def test_measure_design_save_and_export_in_the_browser(make_room, tmp_path):  # 
             run_app = rooms.list_runs(room, "design", include_incomplete=False)[-1]
             # Export: the Files page lists what the design wrote, with its SHA-256
             driver.find_element(By.CSS_SELECTOR, "nav button[data-tab=room]").click()
-            design_row = wait.until(lambda d: [r for r in d.find_elements(
-                By.CSS_SELECTOR, "#runs tbody tr.pick") if run_app.run_id in r.text])
+            design_row = wait.until(
+                lambda d: [
+                    r
+                    for r in d.find_elements(By.CSS_SELECTOR, "#runs tbody tr.pick")
+                    if run_app.run_id in r.text
+                ]
+            )
             design_row[0].click()
             wait.until(lambda d: len(d.find_elements(By.CSS_SELECTOR, "#plots canvas")) >= 4)
             driver.find_element(By.CSS_SELECTOR, "nav button[data-tab=files]").click()
@@ -191,8 +167,9 @@ def test_measure_design_save_and_export_in_the_browser(make_room, tmp_path):  # 
             for tr in driver.find_elements(By.CSS_SELECTOR, "#files tbody tr"):
                 cells = tr.find_elements(By.TAG_NAME, "td")
                 listed[cells[0].text] = cells[3].text
-            wavs = sorted(p.relative_to(run_app.path).as_posix()
-                          for p in run_app.path.rglob("*.wav"))
+            wavs = sorted(
+                p.relative_to(run_app.path).as_posix() for p in run_app.path.rglob("*.wav")
+            )
             assert wavs and set(wavs) <= set(listed)
             for rel in wavs:
                 digest = hashlib.sha256((run_app.path / rel).read_bytes()).hexdigest()
@@ -202,7 +179,7 @@ def test_measure_design_save_and_export_in_the_browser(make_room, tmp_path):  # 
             assert not severe, severe
     finally:
         driver.quit()
-    _not_blank(shot)
+    assert_not_blank(shot)
     # the same measurement and settings through the command line: the same bytes
     target = room.root / "targets" / "warmer.toml"
     assert target.is_file()

@@ -8,7 +8,6 @@ design files themselves and against scipy (an outside reference).
 from __future__ import annotations
 
 import os
-import shutil
 from pathlib import Path
 
 import numpy as np
@@ -20,6 +19,7 @@ pytest.importorskip("starlette")
 pytest.importorskip("uvicorn")
 
 from starlette.testclient import TestClient  # noqa: E402
+from ui_browser import assert_not_blank, chromium  # noqa: E402
 
 from roomcorr import cli  # noqa: E402
 from roomcorr import room as rooms  # noqa: E402
@@ -187,42 +187,12 @@ def test_the_server_binds_loopback_only():
 # --------------------------------------------------------------------------- real browser
 
 
-def _browser_available() -> tuple[str, str] | None:
-    exe = shutil.which("chromium") or shutil.which("chromium-browser")
-    driver = shutil.which("chromedriver")
-    return (exe, driver) if exe and driver else None
-
-
 def test_browser_shows_history_and_draws_a_design(demo_room, tmp_path):
-    found = _browser_available()
-    if found is None:
-        if os.environ.get("CI") == "true":
-            pytest.fail("chromium and chromium-driver must be installed (the CI script does)")
-        pytest.skip("chromium or chromedriver not installed")
-    pytest.importorskip("selenium")
-    from selenium import webdriver
-    from selenium.webdriver.chrome.service import Service
+    driver = chromium(tmp_path)
     from selenium.webdriver.common.by import By
     from selenium.webdriver.support import expected_conditions as ec
     from selenium.webdriver.support.ui import WebDriverWait
 
-    opts = webdriver.ChromeOptions()
-    opts.binary_location = found[0]
-    for flag in (
-        "--headless",
-        "--no-sandbox",
-        "--disable-gpu",
-        "--disable-quic",
-        "--no-first-run",
-        "--disable-background-networking",
-        "--disable-component-update",
-        "--disable-sync",
-        f"--user-data-dir={tmp_path / 'profile'}",
-        "--window-size=1300,2200",
-    ):
-        opts.add_argument(flag)
-    opts.set_capability("goog:loggingPrefs", {"browser": "ALL"})
-    driver = webdriver.Chrome(service=Service(found[1]), options=opts)
     try:
         with background_server(demo_room, TOKEN) as base:
             driver.get(f"{base}/?token={TOKEN}")
@@ -265,12 +235,7 @@ def test_browser_shows_history_and_draws_a_design(demo_room, tmp_path):
             assert not severe, severe
     finally:
         driver.quit()
-    from matplotlib.image import imread
-
-    img = imread(shot)[..., :3]
-    background = np.median(img.reshape(-1, 3), axis=0)
-    differs = np.any(np.abs(img - background) > 0.1, axis=-1)
-    assert differs.mean() > 0.03 and img.std() > 0.03  # not blank
+    assert_not_blank(shot)
 
 
 def test_a_damaged_run_is_reported_not_served(client, demo_room):

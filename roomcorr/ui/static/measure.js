@@ -1,6 +1,7 @@
 // roomcorr browser app, Measure page: devices, wiring tones, the live meter, the listening
 // area and the run itself. Every sound and every file is the server's application layer
 // (roomcorr/app/measure.py); this page only sends choices and draws the events it receives.
+// Loaded after app.js, whose api(), status(), loadRoom() and TOKEN it uses.
 "use strict";
 
 const measure = {
@@ -19,25 +20,12 @@ const measure = {
   levelCap: -6,
 };
 
-function mEl(id) { return document.getElementById(id); }
+
 
 function mLog(text) {
-  const log = mEl("m-log");
+  const log = el("m-log");
   log.textContent = (log.textContent + text + "\n").split("\n").slice(-80).join("\n");
   log.scrollTop = log.scrollHeight;
-}
-
-async function mApi(path, body) {
-  const init = { headers: { "x-roomcorr-token": TOKEN } };
-  if (body !== undefined) {
-    init.method = "POST";
-    init.headers["content-type"] = "application/json";
-    init.body = JSON.stringify(body);
-  }
-  const resp = await fetch(path, init);
-  const data = await resp.json();
-  if (!resp.ok) throw new Error(data.error || resp.statusText);
-  return data;
 }
 
 // ---------------------------------------------------------------- set-up
@@ -55,7 +43,7 @@ function addSpeaker(name, output) {
   tr.querySelector(".m-tone").addEventListener("click", () => playTone(tr));
   tr.querySelector(".m-remove").addEventListener("click", () => { tr.remove(); drawArea(); });
   tr.querySelectorAll("input").forEach(i => i.addEventListener("input", drawArea));
-  mEl("m-speakers").querySelector("tbody").appendChild(tr);
+  el("m-speakers").querySelector("tbody").appendChild(tr);
   drawArea();
 }
 
@@ -64,21 +52,21 @@ function currentSettings() {
   const s = {
     outputs: rows.map(tr => Number(tr.querySelector(".m-output").value)),
     names: rows.map(tr => tr.querySelector(".m-name").value.trim() || `out${tr.querySelector(".m-output").value}`),
-    input: Number(mEl("m-input").value),
-    positions: Number(mEl("m-positions").value),
-    level_dbfs: Number(mEl("m-level").value),
-    sweep_s: Number(mEl("m-sweep").value),
-    repeats: Number(mEl("m-repeats").value),
+    input: Number(el("m-input").value),
+    positions: Number(el("m-positions").value),
+    level_dbfs: Number(el("m-level").value),
+    sweep_s: Number(el("m-sweep").value),
+    repeats: Number(el("m-repeats").value),
   };
-  if (mEl("m-in-dev").value !== "") s.input_device = mEl("m-in-dev").value;
-  if (mEl("m-out-dev").value !== "") s.output_device = mEl("m-out-dev").value;
-  if (mEl("m-loud").checked) s.allow_loud = true;
+  if (el("m-in-dev").value !== "") s.input_device = el("m-in-dev").value;
+  if (el("m-out-dev").value !== "") s.output_device = el("m-out-dev").value;
+  if (el("m-loud").checked) s.allow_loud = true;
   return s;
 }
 
 function fillDevices(view) {
   const fill = (id, key, lastName) => {
-    const sel = mEl(id);
+    const sel = el(id);
     sel.innerHTML = "";
     const def = document.createElement("option");
     def.value = ""; def.textContent = "system default"; sel.appendChild(def);
@@ -96,19 +84,19 @@ function fillDevices(view) {
 }
 
 function showLevel() {
-  const v = Number(mEl("m-level").value);
-  mEl("o-level").textContent = v.toFixed(0);
-  mEl("m-level").classList.toggle("loud", v > measure.levelCap);
+  const v = Number(el("m-level").value);
+  el("o-level").textContent = v.toFixed(0);
+  el("m-level").classList.toggle("loud", v > measure.levelCap);
 }
 
 function onLoud() {
-  const box = mEl("m-loud");
+  const box = el("m-loud");
   if (box.checked) {
     const ok = window.confirm(`Allow sweeps louder than ${measure.levelCap} dBFS? Turn the amplifier down first. ` +
       "Loud sweeps can damage hearing and loudspeakers; respect their excursion limits and local rules on noise.");
     if (!ok) box.checked = false;
   }
-  const slider = mEl("m-level");
+  const slider = el("m-level");
   slider.max = box.checked ? "0" : String(measure.levelCap);
   if (Number(slider.value) > Number(slider.max)) slider.value = slider.max;
   showLevel();
@@ -116,16 +104,16 @@ function onLoud() {
 
 function setAcknowledged(ack, when) {
   measure.acknowledged = ack;
-  mEl("m-cautions").classList.toggle("done", ack);
-  mEl("m-ack").hidden = ack;
-  mEl("m-ack-done").hidden = !ack;
-  if (ack && when) mEl("m-ack-done").textContent = `Read and acknowledged for this room (${when}). They still apply every time.`;
+  el("m-cautions").classList.toggle("done", ack);
+  el("m-ack").hidden = ack;
+  el("m-ack-done").hidden = !ack;
+  if (ack && when) el("m-ack-done").textContent = `Read and acknowledged for this room (${when}). They still apply every time.`;
   updateButtons();
 }
 
 function updateButtons() {
-  mEl("m-start").disabled = !measure.acknowledged || measure.running;
-  mEl("m-stop").disabled = false;
+  el("m-start").disabled = !measure.acknowledged || measure.running;
+  el("m-stop").disabled = false;
   document.querySelectorAll("#m-speakers .m-tone").forEach(b => { b.disabled = !measure.acknowledged || measure.running; });
   document.querySelectorAll("#m-setup input, #m-setup select, #m-setup .m-remove, #m-add-speaker")
     .forEach(i => { i.disabled = measure.running; });
@@ -135,7 +123,7 @@ function updateButtons() {
 
 async function acknowledge() {
   try {
-    const view = await mApi("/api/measure/acknowledge", { acknowledged: true });
+    const view = await api("/api/measure/acknowledge", { acknowledged: true });
     setAcknowledged(view.acknowledged, view.acknowledged_utc);
     status("cautions acknowledged for this room");
   } catch (err) {
@@ -149,7 +137,7 @@ async function playTone(tr) {
   heard.textContent = "playing ...";
   heard.className = "m-heard";
   try {
-    const res = await mApi("/api/measure/tone", { output: out, settings: currentSettings() });
+    const res = await api("/api/measure/tone", { output: out, settings: currentSettings() });
     if (res.stopped) { heard.textContent = "stopped"; return; }
     heard.textContent = res.heard ? `heard (${res.heard_db.toFixed(0)} dB over the quiet)` : "not heard";
     heard.className = "m-heard " + (res.heard ? "ok" : "bad");
@@ -169,9 +157,9 @@ async function startMeasuring() {
   measure.current = null;
   measure.speaker = null;
   measure.captures = 0;
-  mEl("m-log").textContent = "";
+  el("m-log").textContent = "";
   try {
-    await mApi("/api/measure/start", { settings: s, resume: mEl("m-resume").checked });
+    await api("/api/measure/start", { settings: s, resume: el("m-resume").checked });
     measure.running = true;
     updateButtons();
     drawArea();
@@ -184,7 +172,7 @@ async function startMeasuring() {
 
 async function stopMeasuring() {
   try {
-    await mApi("/api/measure/stop", {});
+    await api("/api/measure/stop", {});
     status("stopping: sound off");
   } catch (err) {
     status(String(err.message || err), true);
@@ -192,9 +180,9 @@ async function stopMeasuring() {
 }
 
 async function answer(choice) {
-  mEl("m-prompt").hidden = true;
+  el("m-prompt").hidden = true;
   try {
-    await mApi("/api/measure/answer", { answer: choice });
+    await api("/api/measure/answer", { answer: choice });
   } catch (err) {
     status(String(err.message || err), true);
   }
@@ -208,8 +196,8 @@ const CHOICE_TEXT = {
 };
 
 function showPrompt(ev) {
-  mEl("m-prompt-text").textContent = ev.text.replace(/\s*\(Ctrl-C stops at once\)\s*/, " ").replace(/and press Enter/, "");
-  const box = mEl("m-prompt-buttons");
+  el("m-prompt-text").textContent = ev.text.replace(/\s*\(Ctrl-C stops at once\)\s*/, " ").replace(/and press Enter/, "");
+  const box = el("m-prompt-buttons");
   box.innerHTML = "";
   ev.choices.forEach(c => {
     const b = document.createElement("button");
@@ -220,7 +208,7 @@ function showPrompt(ev) {
     b.addEventListener("click", () => answer(c));
     box.appendChild(b);
   });
-  mEl("m-prompt").hidden = false;
+  el("m-prompt").hidden = false;
 }
 
 // ---------------------------------------------------------------- live events
@@ -231,10 +219,10 @@ function speakerName(output) {
 }
 
 function showProgress(text, fraction) {
-  mEl("m-progress-text").textContent = text;
+  el("m-progress-text").textContent = text;
   const total = Math.max(1, measure.positions * Math.max(1, measure.outputs.length));
   const whole = Math.min(1, (measure.captures + (fraction || 0)) / total);
-  mEl("m-progress-bar").style.width = `${(100 * whole).toFixed(1)}%`;
+  el("m-progress-bar").style.width = `${(100 * whole).toFixed(1)}%`;
 }
 
 function onEvent(ev) {
@@ -294,16 +282,16 @@ function onEvent(ev) {
       measure.running = false;
       measure.current = null;
       measure.speaker = null;
-      mEl("m-prompt").hidden = true;
+      el("m-prompt").hidden = true;
       updateButtons();
       drawArea();
       if (ev.type === "finished") {
         showProgress(`finished: ${ev.positions_saved} position(s) saved as measurement ${ev.run_id}`, 0);
-        mEl("m-progress-bar").style.width = "100%";
+        el("m-progress-bar").style.width = "100%";
         status(`measured ${ev.positions_saved} position(s) into ${ev.run_id}; next: the Design page`);
       } else if (ev.type === "stopped") {
         showProgress("stopped: sound off. Positions already saved are kept; tick 'continue' to resume.");
-        mEl("m-resume").checked = !!ev.resumable;
+        el("m-resume").checked = !!ev.resumable;
         status("measurement stopped", true);
       } else {
         showProgress(`not finished: ${ev.error}`);
@@ -328,7 +316,7 @@ function connectMeasureLive() {
 function meterX(db, w) { return w * Math.min(1, Math.max(0, (db + 60) / 60)); }
 
 function drawMeter() {
-  const canvas = mEl("m-meter");
+  const canvas = el("m-meter");
   const ctx = canvas.getContext("2d");
   const w = canvas.width, h = canvas.height;
   const now = performance.now();
@@ -352,7 +340,7 @@ function drawMeter() {
   let txt = `input peak ${peak.toFixed(1)} dBFS, rms ${rms.toFixed(1)} dBFS`;
   if (peak <= -119) txt = "input: no signal yet (the meter runs while sound plays)";
   else if (peak < -60) txt = `input peak ${peak.toFixed(1)} dBFS: quiet`;
-  mEl("m-meter-text").textContent = txt;
+  el("m-meter-text").textContent = txt;
   // the level sinks when no blocks arrive (between sweeps)
   measure.level = { peak: Math.max(-120, peak - 1.5), rms: Math.max(-120, rms - 1.5) };
   requestAnimationFrame(drawMeter);
@@ -377,10 +365,10 @@ function svgNode(tag, attrs, text) {
 }
 
 function drawArea() {
-  const svg = mEl("m-area");
+  const svg = el("m-area");
   if (!svg) return;
   svg.innerHTML = "";
-  const n = measure.running ? measure.positions : Number(mEl("m-positions").value);
+  const n = measure.running ? measure.positions : Number(el("m-positions").value);
   const names = measure.running ? measure.names : speakerRows().map(tr => tr.querySelector(".m-name").value || "?");
   svg.appendChild(svgNode("rect", { x: 10, y: 10, width: 400, height: 280, rx: 10, class: "room" }));
   names.forEach((name, i) => {
@@ -404,7 +392,7 @@ function drawArea() {
     svg.appendChild(svgNode("text", { x: s.x, y: s.y + 4, class: "num" }, String(p)));
   });
   const saved = Object.values(measure.done).filter(v => v === "saved").length;
-  mEl("m-area-text").textContent = next
+  el("m-area-text").textContent = next
     ? `${saved} of ${n} positions measured; next: position ${next} (the ringed circle)`
     : `${saved} of ${n} positions measured`;
 }
@@ -414,38 +402,38 @@ function drawArea() {
 async function setupMeasure() {
   addSpeaker("left", 1);
   addSpeaker("right", 2);
-  mEl("m-add-speaker").addEventListener("click", () => {
+  el("m-add-speaker").addEventListener("click", () => {
     const used = speakerRows().map(tr => Number(tr.querySelector(".m-output").value));
     addSpeaker(`speaker${used.length + 1}`, Math.max(0, ...used) + 1);
   });
-  mEl("m-positions").addEventListener("input", drawArea);
-  mEl("m-level").addEventListener("input", showLevel);
-  mEl("m-loud").addEventListener("change", onLoud);
-  mEl("m-ack").addEventListener("click", acknowledge);
-  mEl("m-start").addEventListener("click", startMeasuring);
-  mEl("m-stop").addEventListener("click", stopMeasuring);
+  el("m-positions").addEventListener("input", drawArea);
+  el("m-level").addEventListener("input", showLevel);
+  el("m-loud").addEventListener("change", onLoud);
+  el("m-ack").addEventListener("click", acknowledge);
+  el("m-start").addEventListener("click", startMeasuring);
+  el("m-stop").addEventListener("click", stopMeasuring);
   showLevel();
   requestAnimationFrame(drawMeter);
   connectMeasureLive();
   try {
-    const c = await mApi("/api/measure/cautions");
+    const c = await api("/api/measure/cautions");
     measure.levelCap = c.level_cap_dbfs;
-    mEl("m-level").max = String(c.level_cap_dbfs);
-    mEl("m-caution-text").textContent = c.text;
-    mEl("m-tone-note").textContent = `Test tones play for a second at ${c.test_tone_dbfs} dBFS, never louder than the sweep.`;
+    el("m-level").max = String(c.level_cap_dbfs);
+    el("m-caution-text").textContent = c.text;
+    el("m-tone-note").textContent = `Test tones play for a second at ${c.test_tone_dbfs} dBFS, never louder than the sweep.`;
     setAcknowledged(c.acknowledged, c.acknowledged_utc);
-    const st = await mApi("/api/measure/state");
-    mEl("m-resume").checked = false;
-    mEl("m-resume-box").hidden = !st.resumable;
+    const st = await api("/api/measure/state");
+    el("m-resume").checked = false;
+    el("m-resume-box").hidden = !st.resumable;
   } catch (err) {
     status(String(err.message || err), true);
   }
   try {
-    const view = await mApi("/api/measure/devices");
+    const view = await api("/api/measure/devices");
     fillDevices(view);
-    mEl("m-devices-note").textContent = view.problem || "";
+    el("m-devices-note").textContent = view.problem || "";
   } catch (err) {
-    mEl("m-devices-note").textContent = String(err.message || err);
+    el("m-devices-note").textContent = String(err.message || err);
   }
   updateButtons();
 }
