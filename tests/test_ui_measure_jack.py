@@ -175,6 +175,24 @@ def test_measure_design_save_and_export_in_the_browser(make_room, tmp_path):  # 
                 digest = hashlib.sha256((run_app.path / rel).read_bytes()).hexdigest()
                 assert listed[rel] == digest, rel
             driver.save_screenshot(str(shots / "files.png"))
+            # Stop: a longer sweep stopped while it plays; nothing finished is left behind
+            driver.find_element(By.CSS_SELECTOR, "nav button[data-tab=measure]").click()
+            _set(driver, "m-positions", "1")
+            _set(driver, "m-sweep", "6")
+            driver.find_element(By.ID, "m-start").click()
+            wait.until(lambda d: d.find_element(By.ID, "m-prompt").is_displayed())
+            d_prompt = driver.find_element(
+                By.CSS_SELECTOR, "#m-prompt button[data-choice=continue]"
+            )
+            d_prompt.click()
+            wait.until(ec.text_to_be_present_in_element((By.ID, "m-progress-text"), "position 1"))
+            wait.until(ec.text_to_be_present_in_element((By.ID, "m-progress-text"), "%"))
+            driver.find_element(By.ID, "m-stop").click()
+            wait.until(ec.text_to_be_present_in_element((By.ID, "status"), "stopped"))
+            assert "sound off" in driver.find_element(By.ID, "m-progress-text").text
+            done = rooms.list_runs(room, "measurement", include_incomplete=False)
+            assert [r.run_id for r in done] == [meas[0].run_id]
+            assert driver.find_element(By.ID, "m-start").is_enabled()  # ready again
             severe = [e for e in driver.get_log("browser") if e["level"] == "SEVERE"]
             assert not severe, severe
     finally:

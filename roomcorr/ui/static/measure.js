@@ -288,10 +288,13 @@ function onEvent(ev) {
       if (ev.type === "finished") {
         showProgress(`finished: ${ev.positions_saved} position(s) saved as measurement ${ev.run_id}`, 0);
         el("m-progress-bar").style.width = "100%";
+        el("m-resume").checked = false;
+        el("m-resume-box").hidden = true;
         status(`measured ${ev.positions_saved} position(s) into ${ev.run_id}; next: the Design page`);
       } else if (ev.type === "stopped") {
         showProgress("stopped: sound off. Positions already saved are kept; tick 'continue' to resume.");
         el("m-resume").checked = !!ev.resumable;
+        el("m-resume-box").hidden = !ev.resumable;
         status("measurement stopped", true);
       } else {
         showProgress(`not finished: ${ev.error}`);
