@@ -216,6 +216,13 @@ def test_settings_keep_the_level_cap_and_refuse_other_keys(room):
         am.settings_for_room(room, {"positions": float("nan")})
     with pytest.raises(SettingsError):
         am.settings_for_room(room, {"outputs": "1,2"})
+    # names become file names of the filters: plain names only
+    for bad in ("../../escape", "a/b", "", ".hidden", "x" * 40):
+        with pytest.raises(SettingsError, match="plain name"):
+            am.settings_for_room(room, {"outputs": [1], "names": [bad]})
+    assert am.settings_for_room(room, {"outputs": [1], "names": ["front-left_2"]}).names == (
+        "front-left_2",
+    )
 
 
 @pytest.mark.parametrize("sweep_level", [-20.0, -36.0])
