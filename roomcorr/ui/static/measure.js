@@ -20,8 +20,6 @@ const measure = {
   levelCap: -6,
 };
 
-
-
 function mLog(text) {
   const log = el("m-log");
   log.textContent = (log.textContent + text + "\n").split("\n").slice(-80).join("\n");
