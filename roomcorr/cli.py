@@ -425,7 +425,7 @@ def _demo_measurements(scratch: Path) -> tuple[list[str], str]:
 def _run_demo(args: argparse.Namespace) -> int:
     import tempfile
 
-    from roomcorr.export import MANIFEST, read_manifest
+    from roomcorr.deliver.export import MANIFEST, read_manifest
 
     settings = settings_from_args(args)
     out = Path(args.out)
@@ -485,7 +485,7 @@ def _run_report(args: argparse.Namespace) -> int:
     folder = Path(args.dir)
     path = write_report(folder, compare_with=args.compare_with, out_dir=args.out)
     if (folder / "manifest.json").is_file() and (folder / "design.npz").is_file():
-        from roomcorr.export import load_design_curves, read_manifest
+        from roomcorr.deliver.export import load_design_curves, read_manifest
         from roomcorr.report.summary import summary_sentences
 
         caps = (read_manifest(folder).get("settings") or {}).get("design", {})
@@ -1015,7 +1015,7 @@ def build_parser() -> argparse.ArgumentParser:
 
 def _os_error_line(exc: OSError) -> str:
     """One line for an operating-system error: the file it concerns and why."""
-    from roomcorr.atomic import disk_error_text
+    from roomcorr.deliver.atomic import disk_error_text
 
     where = exc.filename if exc.filename is not None else ""
     text = f"{where}: {disk_error_text(exc)}" if where else disk_error_text(exc)

@@ -37,7 +37,7 @@ commands. A finished run is verified on read against its ``complete.json``
 (sizes of every file always, SHA-256 of the files a command uses); a damaged
 run is shown as damaged by ``history`` and refused with one line elsewhere.
 ``measurements/`` and ``designs/`` must be plain folders inside the room. Every file goes through
-:mod:`roomcorr.atomic`; the one exception is the lock file, which must keep
+:mod:`roomcorr.deliver.atomic`; the one exception is the lock file, which must keep
 its identity for ``flock`` and holds only a note of who holds it.
 """
 
@@ -56,7 +56,8 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from roomcorr.atomic import (
+from roomcorr.audio_io import natural_key
+from roomcorr.deliver.atomic import (
     PathEscapeError,
     atomic_write_bytes,
     atomic_write_text,
@@ -65,7 +66,6 @@ from roomcorr.atomic import (
     fsync_dir,
     is_link_or_outside,
 )
-from roomcorr.audio_io import natural_key
 from roomcorr.errors import InputFileError, OutputError, RoomcorrError, SettingsError
 
 if TYPE_CHECKING:
@@ -564,13 +564,13 @@ class RunInfo:
 
 
 def _sha256(path: Path) -> str:
-    from roomcorr.export import sha256_of
+    from roomcorr.deliver.export import sha256_of
 
     return sha256_of(path)
 
 
 def _run_files(run_dir: Path) -> list[Path]:
-    from roomcorr.atomic import TMP_PREFIX
+    from roomcorr.deliver.atomic import TMP_PREFIX
 
     return sorted(
         p
@@ -1011,7 +1011,7 @@ def _record_figures(data: dict[str, Any]) -> dict[str, Any]:
 
 
 def _design_figures(run_dir: Path) -> dict[str, Any]:
-    from roomcorr.export import read_manifest
+    from roomcorr.deliver.export import read_manifest
 
     man = read_manifest(run_dir)  # OutputError for a damaged manifest
     files = man["files"]
@@ -1160,7 +1160,7 @@ def _design_for(room: Room, meas_id: str | None, before: Path) -> Path | None:
 def _contain_design_inputs(design_dir: Path, manifest: dict[str, Any], settings: Any) -> None:
     """Refuse to read a calibration or target file a design's manifest names unless it lies
     inside the design's room folder and matches the SHA-256 the manifest recorded for it."""
-    from roomcorr.export import sha256_of
+    from roomcorr.deliver.export import sha256_of
     from roomcorr.settings import find_preset
 
     room = find_room(design_dir)
@@ -1187,7 +1187,7 @@ def _fit_check(design_dir: Path, irs_b, fs_b: int) -> dict[str, Any]:
     import numpy as np
 
     from roomcorr.analysis.compare import filter_fit, fir_response_db
-    from roomcorr.export import load_design_curves, read_manifest
+    from roomcorr.deliver.export import load_design_curves, read_manifest
     from roomcorr.pipeline import run_design
     from roomcorr.settings import settings_from_dict
 

@@ -308,7 +308,7 @@ def test_finished_run_cannot_be_replaced(work, capsys):
 def test_atomic_path_leaves_no_temp_file_when_interrupted_at_once(tmp_path, monkeypatch):
     # Ctrl-C arriving right after the temporary file is created (before any
     # writing): the file must not be left behind.
-    import roomcorr.atomic as atomic
+    import roomcorr.deliver.atomic as atomic
 
     real_close = os.close
     hit = {"n": 0}
@@ -330,7 +330,7 @@ def test_interrupted_swap_is_undone_by_the_next_run(tmp_path):
     # A process killed between parking the old folder and moving the new one in
     # (the fallback swap where no atomic exchange exists) leaves the old folder
     # parked; the next clean-up moves it back whole.
-    from roomcorr.atomic import OLD_PREFIX, clean_stale
+    from roomcorr.deliver.atomic import OLD_PREFIX, clean_stale
 
     dead = subprocess.run(
         [sys.executable, "-c", "import os; print(os.getpid())"], capture_output=True, text=True
@@ -648,7 +648,7 @@ def test_full_disk_in_a_room(work, capsys):
 
 def test_enospc_midway_without_a_mount(work, capsys, monkeypatch):
     # Where no tmpfs can be mounted: the disk "fills" on the second WAV.
-    import roomcorr.export as export
+    import roomcorr.deliver.export as export
 
     real = export.write_wav
     calls = {"n": 0}
@@ -797,7 +797,7 @@ def test_raw_recordings_are_checked_by_size(work, capsys):
 
 
 def test_design_differences_names_what_changed(work):
-    from roomcorr.export import design_differences
+    from roomcorr.deliver.export import design_differences
 
     d = work / "d"
     assert design_differences(d) == [] and design_is_whole(d)

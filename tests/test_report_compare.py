@@ -32,7 +32,7 @@ def _expected_distance_m(temperature_c: float = 20.0) -> float:
 @pytest.fixture(scope="module")
 def room_runs(tmp_path_factory):
     from roomcorr.audio_io import read_ir_set, write_wav
-    from roomcorr.export import write_design
+    from roomcorr.deliver.export import write_design
     from roomcorr.pipeline import run_design
 
     base = tmp_path_factory.mktemp("cmp")

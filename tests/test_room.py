@@ -294,7 +294,7 @@ def test_measurement_files_natural_order_and_add_measurement(room: R.Room, tmp_p
 
 def _design(room: R.Room, meas: Path) -> Path:
     from roomcorr.audio_io import read_ir_set
-    from roomcorr.export import write_design
+    from roomcorr.deliver.export import write_design
     from roomcorr.pipeline import run_design
 
     settings = R.load_room_settings(room)
@@ -465,7 +465,7 @@ def test_design_source_from_the_manifest_file_list(room: R.Room):
     # A design command that records its inputs only in manifest.json (the
     # "measurements" file list) is still traced back to its measurement run.
     from roomcorr.audio_io import read_ir_set
-    from roomcorr.export import write_design
+    from roomcorr.deliver.export import write_design
     from roomcorr.pipeline import run_design
 
     m1 = _measure(room, room_set(SPK_L, SPK_R, C20))

@@ -23,7 +23,7 @@ from starlette.testclient import TestClient  # noqa: E402
 
 from roomcorr import cli  # noqa: E402
 from roomcorr import room as rooms  # noqa: E402
-from roomcorr.export import load_design_curves  # noqa: E402
+from roomcorr.deliver.export import load_design_curves  # noqa: E402
 from roomcorr.ui.server import TOKEN_HEADER, background_server, bind_loopback, create_app  # noqa: E402
 
 REPO = Path(__file__).resolve().parents[1]

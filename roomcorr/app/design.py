@@ -20,12 +20,12 @@ import numpy as np
 
 from roomcorr import room as rooms
 from roomcorr.app.explore import run_folder
-from roomcorr.atomic import atomic_write_text
 from roomcorr.audio_io import read_ir_set
+from roomcorr.deliver.atomic import atomic_write_text
+from roomcorr.deliver.export import check_out_dir, input_digests, write_design
 from roomcorr.design.safety import PEAK_BAND
 from roomcorr.design.target import target_from_table
 from roomcorr.errors import SettingsError
-from roomcorr.export import check_out_dir, input_digests, write_design
 from roomcorr.grid import log_grid
 from roomcorr.pipeline import (
     Analysis,

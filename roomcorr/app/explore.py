@@ -14,8 +14,8 @@ import numpy as np
 
 from roomcorr import room as rooms
 from roomcorr.audio_io import read_ir_set
+from roomcorr.deliver.export import load_design_curves, read_manifest
 from roomcorr.errors import InputFileError
-from roomcorr.export import load_design_curves, read_manifest
 from roomcorr.grid import log_grid
 from roomcorr.pipeline import analyse_positions, default_channel_names
 

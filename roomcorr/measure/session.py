@@ -22,7 +22,7 @@ from typing import Any
 
 import numpy as np
 
-from roomcorr.atomic import atomic_path, atomic_write_text
+from roomcorr.deliver.atomic import atomic_path, atomic_write_text
 from roomcorr.errors import InputFileError, OutputError, SettingsError
 from roomcorr.measure import deconvolve as dc
 from roomcorr.measure import levels as lv

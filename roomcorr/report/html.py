@@ -1,7 +1,7 @@
 """One self-contained HTML page (plus PNG files) about a design or a measurement session.
 
 :func:`build_report` turns the curves of a design (layout of
-:func:`roomcorr.export.load_design_curves`) into sections with figures and
+:func:`roomcorr.deliver.export.load_design_curves`) into sections with figures and
 tables; :func:`render_html` makes the page (figures embedded as base64 PNG,
 inline styles, no network access); :func:`write_report` does the file work
 for ``roomcorr report DIR``: it reads DIR, writes ``DIR/report/*.png`` and
@@ -319,7 +319,7 @@ def _iir_column(x: _Channel, ctx: _Context) -> Column | None:
         f"worst-case gain {figs.get('worst_case_gain_db', float('nan')):.2f} dB, fit error "
         f"{figs.get('fit_rms_error_db', float('nan')):.2f} dB rms."
     )
-    from roomcorr.export_iir import pre_gain_note
+    from roomcorr.deliver.export_iir import pre_gain_note
 
     col.paragraphs.append(pre_gain_note(iir_pre, ctx.pre_gain))
     notes = [str(n) for n in doc.get("notes") or []]
@@ -792,7 +792,7 @@ def build_report(
     Parameters
     ----------
     curves : dict
-        Layout of :func:`roomcorr.export.load_design_curves`. A measurement
+        Layout of :func:`roomcorr.deliver.export.load_design_curves`. A measurement
         session without a design gives ``channels`` with only ``name``,
         ``index``, ``measured_db``, ``average_db`` and ``firs`` empty; the
         design sections are then left out.
@@ -1234,8 +1234,8 @@ def report_comparison(
 def _ours(d: Path) -> bool:
     """Whether folder ``d`` was written by roomcorr (a design, a measurement or a room run),
     so its report may go into it; someone else's folder of WAVs is never written to."""
+    from roomcorr.deliver.export import read_manifest
     from roomcorr.errors import OutputError
-    from roomcorr.export import read_manifest
 
     if (d / "complete.json").is_file():
         return True
@@ -1265,8 +1265,8 @@ def report_destination(folder: str | Path, out_dir: str | Path | None = None) ->
         For a destination that is a link, a file, a finished room run (other
         than the reported run itself), or a folder holding other files.
     """
+    from roomcorr.deliver.export import check_folder_target
     from roomcorr.errors import OutputError
-    from roomcorr.export import check_folder_target
     from roomcorr.room import refuse_finished_run
 
     d = Path(folder)
@@ -1336,7 +1336,7 @@ def write_report(
     settings = None
     through = None
     if is_design:
-        from roomcorr.export import load_design_curves, read_manifest
+        from roomcorr.deliver.export import load_design_curves, read_manifest
 
         curves = load_design_curves(d)
         manifest = read_manifest(d)
@@ -1368,7 +1368,12 @@ def write_report(
 
 
 def _list_report_in_manifest(d: Path, written: list[str]) -> None:
-    from roomcorr.export import add_manifest_entries, read_manifest, sha256_of, write_manifest
+    from roomcorr.deliver.export import (
+        add_manifest_entries,
+        read_manifest,
+        sha256_of,
+        write_manifest,
+    )
 
     manifest = read_manifest(d)
     known = {e.get("path") for e in manifest.get("files", [])}
@@ -1394,7 +1399,7 @@ def _write_report_files(dest: Path, report: Report, list_in_manifest: bool) -> l
     nothing: the folder is built beside ``dest`` and swapped in when complete."""
     import shutil
 
-    from roomcorr.atomic import (
+    from roomcorr.deliver.atomic import (
         atomic_write_bytes,
         atomic_write_text,
         disk_error_text,
