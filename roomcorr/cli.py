@@ -357,7 +357,7 @@ def _add_design(sub: Any) -> argparse.ArgumentParser:
 
 
 def _run_design(args: argparse.Namespace) -> int:
-    from roomcorr import room as rooms
+    from roomcorr import rooms
 
     room = rooms.open_room(args.room) if args.room else None
     if room is None and not args.out:
@@ -516,7 +516,7 @@ def _last_devices(room_arg: str | None) -> dict | None:
     """Devices of the room's latest measurement that recorded them (or None)."""
     import json
 
-    from roomcorr import room as rooms
+    from roomcorr import rooms
 
     try:
         room = rooms.open_room(room_arg) if room_arg else rooms.find_room()
@@ -686,7 +686,7 @@ def measure_settings_from_args(
 
 
 def _run_measure(args: argparse.Namespace) -> int:
-    from roomcorr import room as rooms
+    from roomcorr import rooms
     from roomcorr.measure.live import make_view
     from roomcorr.measure.session import copy_unfinished, run_measurement
 
@@ -843,7 +843,7 @@ def _add_init(sub: Any) -> argparse.ArgumentParser:
 
 
 def _run_init(args: argparse.Namespace) -> int:
-    from roomcorr.room import init_room
+    from roomcorr.rooms import init_room
 
     room = init_room(args.room_dir, args.name)
     print(f"Room folder ready: {room.root}")
@@ -870,7 +870,8 @@ def _add_history(sub: Any) -> argparse.ArgumentParser:
 def _run_history(args: argparse.Namespace) -> int:
     import json
 
-    from roomcorr.room import format_history, history, open_room, room_name
+    from roomcorr.app.history import format_history, history
+    from roomcorr.rooms import open_room, room_name
 
     room = open_room(args.room_dir)
     entries = history(room)
@@ -913,7 +914,9 @@ def _add_compare(sub: Any) -> argparse.ArgumentParser:
 def _run_compare(args: argparse.Namespace) -> int:
     import json
 
-    from roomcorr.room import compare_measurements, find_room, format_comparison, open_room
+    from roomcorr.app.compare import compare_measurements
+    from roomcorr.report.compare import format_comparison
+    from roomcorr.rooms import find_room, open_room
 
     if (args.a is None) != (args.b is None):
         raise SettingsError("compare: give both A and B, or neither (the last two measurements)")
@@ -928,7 +931,7 @@ def _run_compare(args: argparse.Namespace) -> int:
         with_curves=bool(args.plot),
     )
     if args.plot:
-        from roomcorr.room import write_comparison_plot
+        from roomcorr.report.compare import write_comparison_plot
 
         write_comparison_plot(res, args.plot)
         for ch in res["channels"]:
@@ -962,7 +965,7 @@ def _add_ui(sub: Any) -> argparse.ArgumentParser:
 
 
 def _run_ui(args: argparse.Namespace) -> int:
-    from roomcorr import room as rooms
+    from roomcorr import rooms
 
     room = rooms.open_room(args.room or ".")
     if not 0 <= args.port <= 65535:

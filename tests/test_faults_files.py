@@ -26,10 +26,11 @@ import numpy as np
 import pytest
 from conftest import REPO, synthetic_ir
 
-from roomcorr import room as R
+from roomcorr import rooms as R
 from roomcorr.audio_io import write_wav
 from roomcorr.cli import main
 from roomcorr.design.safety import CAUTIONS
+from roomcorr.errors import OutputError
 
 FS = 48000
 TEMP_PREFIXES = (".roomcorr-tmp-", ".roomcorr-old-")
@@ -233,7 +234,7 @@ def test_run_folder_that_is_a_link_is_refused(work, capsys, kind):
         code, _, err = cli(capsys, "design", "--room", room.root, "--rates", "48000")
         assert_one_line_error(code, err, "symbolic link")
     else:
-        with pytest.raises(R.OutputError, match="symbolic link"), R.new_run(room, "measurement"):
+        with pytest.raises(OutputError, match="symbolic link"), R.new_run(room, "measurement"):
             pass
     assert snapshot(work) == before  # no run landed outside
 
@@ -773,7 +774,7 @@ def test_nothing_writes_inside_a_finished_run(work, capsys, kind):
         from roomcorr.measure.session import run_measurement
         from roomcorr.measure.settings import MeasureSettings
 
-        with pytest.raises(R.OutputError, match="finished run"):
+        with pytest.raises(OutputError, match="finished run"):
             run_measurement(MeasureSettings(), run_dir, replace=True)
     assert snapshot(work) == before
 

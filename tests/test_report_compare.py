@@ -13,7 +13,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from roomcorr import room as rooms
+from roomcorr import rooms
 from roomcorr.report import html as rh
 
 ROOT = Path(__file__).resolve().parent.parent

@@ -21,8 +21,7 @@ pytest.importorskip("uvicorn")
 
 from starlette.testclient import TestClient  # noqa: E402
 
-from roomcorr import cli  # noqa: E402
-from roomcorr import room as rooms  # noqa: E402
+from roomcorr import cli, rooms  # noqa: E402
 from roomcorr.deliver.export import load_design_curves  # noqa: E402
 from roomcorr.ui.server import TOKEN_HEADER, background_server, bind_loopback, create_app  # noqa: E402
 
@@ -356,7 +355,7 @@ def test_save_waits_for_the_room_lock(client, demo_room):
 
     holder = subprocess.Popen(
         [sys.executable, "-c",
-         "import sys, time; from roomcorr import room as r; "
+         "import sys, time; from roomcorr import rooms as r; "
          f"room = r.open_room({str(demo_room.root)!r});\n"
          "with r.room_lock(room, 'test holder'):\n print('held', flush=True); time.sleep(60)"],
         stdout=subprocess.PIPE, text=True,

@@ -18,7 +18,7 @@ from typing import Any
 
 import numpy as np
 
-from roomcorr import room as rooms
+from roomcorr import rooms
 from roomcorr.app.explore import run_folder
 from roomcorr.audio_io import read_ir_set
 from roomcorr.deliver.atomic import atomic_write_text

@@ -18,7 +18,6 @@ anything outside is refused as damaged.
 from __future__ import annotations
 
 import contextlib
-import hashlib
 import json
 import math
 import shutil
@@ -38,6 +37,7 @@ from roomcorr.deliver.atomic import (
     contained,
     disk_error_text,
     holds_working_folder,
+    sha256_of,
     staged_folder,
 )
 from roomcorr.deliver.system import manifest_fields, system_curves, write_extra_formats
@@ -46,7 +46,7 @@ from roomcorr.design.mixedphase import from_arrays as mixed_phase_from_arrays
 from roomcorr.design.mixedphase import latency_record
 from roomcorr.design.mixedphase import to_arrays as mixed_phase_arrays
 from roomcorr.errors import OutputError
-from roomcorr.room import refuse_finished_run
+from roomcorr.rooms import refuse_finished_run
 from roomcorr.settings import settings_to_dict
 
 if TYPE_CHECKING:
@@ -55,15 +55,6 @@ if TYPE_CHECKING:
 MANIFEST = "manifest.json"
 CURVES = "design.npz"
 FORMAT_VERSION = 1
-
-
-def sha256_of(path: Path) -> str:
-    """SHA-256 hex digest of a file."""
-    h = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for chunk in iter(lambda: fh.read(1 << 20), b""):
-            h.update(chunk)
-    return h.hexdigest()
 
 
 def _manifest_problem(doc: Any, out: Path) -> str | None:
