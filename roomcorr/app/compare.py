@@ -18,6 +18,7 @@ from roomcorr.deliver.export import load_design_curves, read_manifest
 from roomcorr.design.fir import fir_response_db as _fir_db
 from roomcorr.errors import InputFileError, OutputError, RoomcorrError
 from roomcorr.pipeline import default_channel_names, run_design
+from roomcorr.report.compare import write_comparison_plot
 from roomcorr.rooms import (
     Room,
     check_run,
@@ -26,6 +27,7 @@ from roomcorr.rooms import (
     list_runs,
     load_room_settings,
     measurement_files,
+    open_room,
     resolve_run,
     run_sort_key,
     verified,
@@ -239,4 +241,50 @@ def compare_measurements(
             except RoomcorrError as exc:
                 fit = {"available": False, "reason": " ".join(str(exc).split())}
     res["filter_fit"] = fit
+    return res
+
+
+def compare_command(
+    a: str | None = None,
+    b: str | None = None,
+    room_dir: str | None = None,
+    temperature_c: float | None = None,
+    fit_check: bool = True,
+    plot: str | None = None,
+) -> dict[str, Any]:
+    """What ``roomcorr compare`` does: compare two measurements, optionally drawing them.
+
+    Parameters
+    ----------
+    a, b : str, optional
+        As for :func:`compare_measurements`; both or neither (then the room's
+        last two measurements).
+    room_dir : str, optional
+        Room folder (default: the one holding the working folder).
+    temperature_c : float, optional
+    fit_check : bool
+    plot : str, optional
+        PNG file to draw both responses into
+        (:func:`roomcorr.report.compare.write_comparison_plot`).
+
+    Returns
+    -------
+    dict
+        :func:`compare_measurements`' result (without the curves of the plot).
+    """
+    room = open_room(room_dir) if room_dir else find_room()
+    if room is None and a is None:
+        room = open_room(".")  # raises with the message on how to make a room folder
+    res = compare_measurements(
+        a,
+        b,
+        room=room,
+        temperature_c=temperature_c,
+        fit_check=fit_check,
+        with_curves=bool(plot),
+    )
+    if plot:
+        write_comparison_plot(res, plot)
+        for ch in res["channels"]:
+            ch.pop("curves", None)
     return res

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import json
 import math
+import os
 from pathlib import Path
 from typing import Any
 
@@ -13,7 +14,16 @@ from roomcorr.analysis.compare import direct_arrival_s
 from roomcorr.audio_io import read_ir_set
 from roomcorr.deliver.export import read_manifest
 from roomcorr.errors import InputFileError, OutputError, RoomcorrError
-from roomcorr.rooms import Room, check_run, design_source, is_locked, list_runs, measurement_files
+from roomcorr.rooms import (
+    Room,
+    check_run,
+    design_source,
+    is_locked,
+    list_runs,
+    measurement_files,
+    open_room,
+    room_name,
+)
 
 
 def _measurement_figures(run_dir: Path) -> dict[str, Any]:
@@ -151,6 +161,18 @@ def history(room: Room) -> list[dict[str, Any]]:
             entry["figures"] = {"problem": problem}
         out.append(entry)
     return out
+
+
+def room_history(room_dir: str | os.PathLike[str]) -> dict[str, Any]:
+    """What ``roomcorr history`` shows: the room folder, its name and every run.
+
+    Returns
+    -------
+    dict
+        ``room`` (the folder), ``name`` and ``runs`` (:func:`history` entries).
+    """
+    room = open_room(room_dir)
+    return {"room": str(room.root), "name": room_name(room), "runs": history(room)}
 
 
 def _fmt(v: Any, spec: str = "+.2f", unit: str = "") -> str:

@@ -38,6 +38,7 @@ def _holder_note(path: Path) -> str:
 
 
 def command_line() -> str:
+    """The command as the lock note and run markers record it (``roomcorr design``)."""
     args = [Path(sys.argv[0]).name if sys.argv else "python", *sys.argv[1:3]]
     if args[0] in ("__main__.py", "roomcorr", "-m", "-c"):
         args[0] = "roomcorr"

@@ -38,6 +38,7 @@ from roomcorr.errors import InputFileError, OutputError
 from roomcorr.rooms.folder import COMPLETE_MARKER, KINDS, SETTINGS_SNAPSHOT, Room, iso_utc, utc_now
 from roomcorr.rooms.lock import command_line, room_lock
 
+#: A run folder's name: its UTC time stamp, then ``_2``, ``_3``... for runs of the same second.
 RUN_ID = re.compile(r"^(\d{4}-\d{2}-\d{2}_\d{6}Z)(?:_(\d+))?$")
 
 
