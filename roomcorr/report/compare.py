@@ -16,7 +16,8 @@ from roomcorr.report.figures import FREQ_LABELS, FREQ_TICKS, new_figure, png_byt
 
 
 def format_comparison(res: dict[str, Any]) -> list[str]:
-    """Lines for ``roomcorr compare`` from :func:`compare_measurements`' result."""
+    """Lines for ``roomcorr compare`` from the result of
+    :func:`roomcorr.app.compare.compare_measurements`."""
     lines = [
         f"before: {res['before']}",
         f"after:  {res['after']}",
@@ -96,7 +97,8 @@ def format_comparison(res: dict[str, Any]) -> list[str]:
 def comparison_png(res: dict[str, Any]) -> bytes:
     """PNG of both responses overlaid per channel, for ``roomcorr compare --plot``.
 
-    ``res`` must come from :func:`compare_measurements` with ``with_curves=True``.
+    ``res`` must come from :func:`roomcorr.app.compare.compare_measurements` with
+    ``with_curves=True``.
     Each channel gets a full-range panel (1/24-octave, 20 Hz to 20 kHz) and a
     low-frequency panel (20 to 500 Hz) with the peaks and dips that appeared,
     moved or vanished marked.
