@@ -15,7 +15,7 @@ import numpy as np
 import pytest
 from scipy.signal import fftconvolve
 
-from roomcorr import room as rooms
+from roomcorr import rooms
 from roomcorr.app import measure as am
 from roomcorr.errors import InputFileError, SafetyError, SettingsError
 from roomcorr.measure import capture

@@ -18,7 +18,7 @@ pytest.importorskip("uvicorn")
 
 from starlette.testclient import TestClient  # noqa: E402
 
-from roomcorr import room as rooms  # noqa: E402
+from roomcorr import rooms  # noqa: E402
 from roomcorr.app import measure as am  # noqa: E402
 from roomcorr.measure import capture  # noqa: E402
 from roomcorr.ui.server import TOKEN_HEADER, create_app  # noqa: E402
@@ -194,7 +194,7 @@ def test_start_refused_while_a_command_holds_the_room(client, room):
         [
             sys.executable,
             "-c",
-            "import time; from roomcorr import room as r; "
+            "import time; from roomcorr import rooms as r; "
             f"room = r.open_room({str(room.root)!r});\n"
             "with r.room_lock(room, 'test holder'):\n print('held', flush=True); time.sleep(60)",
         ],

@@ -27,8 +27,10 @@ pytest.importorskip("uvicorn")
 from test_ui_measure import set_room_measure  # noqa: E402
 from ui_browser import assert_not_blank, chromium  # noqa: E402
 
-from roomcorr import cli  # noqa: E402
-from roomcorr import room as rooms  # noqa: E402
+from roomcorr import (
+    cli,  # noqa: E402
+    rooms,  # noqa: E402
+)
 from roomcorr.ui.server import background_server  # noqa: E402
 
 TOKEN = "browser-measure-token-7"

@@ -39,9 +39,9 @@ from typing import Any
 
 import numpy as np
 
-from roomcorr import room as rooms
+from roomcorr import rooms
 from roomcorr.app.through import load_through, through_summary
-from roomcorr.atomic import atomic_write_text
+from roomcorr.deliver.atomic import atomic_write_text
 from roomcorr.errors import (
     DeviceError,
     InputFileError,

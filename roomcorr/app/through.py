@@ -19,8 +19,8 @@ import numpy as np
 import scipy.signal
 
 from roomcorr.analysis.smoothing import smooth_bins_to_grid
+from roomcorr.deliver.export import load_design_curves
 from roomcorr.errors import InputFileError, OutputError
-from roomcorr.export import load_design_curves
 from roomcorr.grid import log_grid
 from roomcorr.measure.session import make_sweep
 from roomcorr.measure.settings import MeasureSettings
