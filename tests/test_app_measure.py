@@ -217,7 +217,7 @@ def test_settings_keep_the_level_cap_and_refuse_other_keys(room):
     with pytest.raises(SettingsError):
         am.settings_for_room(room, {"outputs": "1,2"})
     # names become file names of the filters: plain names only
-    for bad in ("../../escape", "a/b", "", ".hidden", "x" * 40):
+    for bad in ("../../escape", "a/b", "", ".hidden", "x" * 40, "two words"):
         with pytest.raises(SettingsError, match="plain name"):
             am.settings_for_room(room, {"outputs": [1], "names": [bad]})
     assert am.settings_for_room(room, {"outputs": [1], "names": ["front-left_2"]}).names == (

@@ -22,8 +22,9 @@ SENSITIVITY_RANGE_DBFS = (-80.0, -3.0)
 #: Sweep level at the seat above which roomcorr warns: 75 to 85 dB SPL is plenty for
 #: a domestic room measurement (common practice).
 DEFAULT_MAX_SPL_DB = 85.0
-#: A loudspeaker name: it becomes part of the filter files' names (``fir/48000/NAME.wav``).
-_LOUDSPEAKER_NAME = re.compile(r"[A-Za-z0-9][A-Za-z0-9_-]{0,31}")
+#: A loudspeaker name: it becomes part of the filter files' names (``fir/48000/NAME.wav``);
+#: the same characters as ``design.channel_names`` accepts.
+_LOUDSPEAKER_NAME = re.compile(r"[A-Za-z0-9_-]{1,32}")
 
 
 @dataclass
@@ -120,7 +121,7 @@ class MeasureSettings:
             if not _LOUDSPEAKER_NAME.fullmatch(str(name)):  # names become filter file names
                 raise SettingsError(
                     f"--names: {name!r} is not a plain name; use letters, digits, - and _ "
-                    "(at most 32, starting with a letter or digit)"
+                    "(at most 32)"
                 )
         if not self.outputs or any(int(c) < 1 for c in chans):
             raise SettingsError("channel numbers start at 1 (--outputs, --input, --loopback)")
