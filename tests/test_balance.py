@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 
 import roomcorr.analysis.balance as balance
-from roomcorr.analysis.balance import steady_balance_db
+from roomcorr.analysis.balance import steady_balance_db, steady_balance_set
 from roomcorr.analysis.smoothing import smooth_log_grid, variable_width_oct
 from roomcorr.analysis.window import fdw_power
 from roomcorr.grid import log_grid, points_per_octave_of
@@ -59,3 +59,20 @@ def test_above_the_modal_range_the_windowed_detail_stays(monkeypatch):
     monkeypatch.setattr(balance, "MODAL_DETAIL_HZ", None)
     plain = steady_balance_db(ir, FS, 100.0, F, windowed)
     assert np.allclose(got[above], plain[above])
+
+
+def test_without_modal_detail_the_set_keeps_the_windowed_detail(monkeypatch):
+    # steady_balance_set(..., modal_detail=False) (used with a subwoofer) is the
+    # balance without the modal range's long-window detail, position by position.
+    rng = np.random.default_rng(9)
+    n = FS // 2
+    irs = rng.standard_normal((2, 1, n)) * np.exp(-np.arange(n) / (0.1 * FS))
+    irs[:, :, 200] += 20.0
+    arrival = np.full((2, 1), 200.0 / FS)
+    windowed = np.stack([[_windowed_db(irs[p, 0], 200.0)] for p in range(2)])
+    off = steady_balance_set(irs, FS, F, windowed, arrival, modal_detail=False)
+    on = steady_balance_set(irs, FS, F, windowed, arrival)
+    monkeypatch.setattr(balance, "MODAL_DETAIL_HZ", None)
+    plain = steady_balance_set(irs, FS, F, windowed, arrival)
+    assert np.allclose(off, plain)
+    assert not np.allclose(on, plain)  # the switch matters (not vacuous)
