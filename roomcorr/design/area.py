@@ -102,7 +102,7 @@ BROAD_FROM_HZ = 300.0
 FULL_MODAL_CUTS = True
 #: ... fully up to the first frequency, giving way to the chosen strength by the
 #: second (the top of the modal range), Hz.
-FULL_CUTS_HZ = (212.0, 300.0)
+FULL_CUTS_HZ = (250.0, 300.0)
 #: Whether cuts, too, need the agreement of the positions.
 CUT_AGREEMENT = False
 #: The low band edge is where the wide response falls this far (dB) below ...
