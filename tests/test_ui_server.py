@@ -405,3 +405,19 @@ def test_compare_gives_what_roomcorr_compare_prints(client, demo_room):
     for bad in ("..", ".hidden", "%2e%2e%2f%2e%2e%2fetc"):
         r = client.get(f"/api/compare/{bad}/{second.name}", headers=_auth())
         assert r.status_code in (403, 404), bad
+
+
+def test_decay_route_serves_the_application_layers_data(client, demo_room):
+    from roomcorr.app import decay_view
+
+    meas = rooms.latest_measurement(demo_room).name
+    r = client.get(f"/api/decay/measurement/{meas}?bands=3&position=1", headers=_auth())
+    assert r.status_code == 200, r.text
+    assert r.json() == decay_view(demo_room, "measurement", meas, 3, 1)
+    for query in ("bands=2", "bands=-1", "position=9", "position=x", "bands=1e3"):
+        bad = client.get(f"/api/decay/measurement/{meas}?{query}", headers=_auth())
+        assert bad.status_code == 400 and bad.json()["error"], query
+    refused = (f"/api/decay/design/{meas}", f"/api/decay/x/{meas}", "/api/decay/measurement/..")
+    for path in refused:
+        assert client.get(path, headers=_auth()).status_code in (400, 404), path
+    assert client.get(f"/api/decay/measurement/{meas}").status_code == 403  # no token

@@ -339,6 +339,100 @@ def decay_parameters(curve: SchroederCurve) -> tuple[dict[str, float], dict[str,
     return values, valid
 
 
+def band_sos(centre_hz: float, fs: float, fraction: int = 1, order: int = 3) -> np.ndarray:
+    """Butterworth band-pass for one 1/``fraction``-octave band, as second-order sections.
+
+    Parameters
+    ----------
+    centre_hz : float
+        Exact mid-band frequency.
+    fs : float
+        Sample rate in Hz.
+    fraction : int
+        Bandwidth designator b (1 octave, 3 third-octave).
+    order : int
+        Butterworth prototype order (the band-pass has twice this order).
+
+    Returns
+    -------
+    sos : ndarray, shape (order, 6)
+        Edges at ``centre_hz * G ** (+-1 / (2 b))`` (IEC 61260-1), -3 dB there.
+        For ``fraction=1`` the same sections as :func:`octave_band_sos`.
+    """
+    from scipy.signal import butter
+
+    lo = centre_hz * _G ** (-0.5 / fraction)
+    hi = centre_hz * _G ** (0.5 / fraction)
+    if hi >= 0.49 * fs:
+        raise ValueError(f"band {centre_hz:.0f} Hz does not fit below Nyquist at fs={fs}")
+    return butter(order, [lo, hi], btype="bandpass", fs=fs, output="sos")
+
+
+def band_decay(
+    ir: np.ndarray,
+    fs: float,
+    fraction: int = 1,
+    f_lo_hz: float = 63.0,
+    f_hi_hz: float = 8000.0,
+    compensate: bool = True,
+) -> list[BandDecay]:
+    """EDT, T20 and T30 per octave (``fraction=1``) or third-octave (``3``) band.
+
+    Parameters
+    ----------
+    ir : ndarray, shape (n_samples,)
+        Room impulse response (direct sound anywhere near the start).
+    fs : float
+        Sample rate in Hz.
+    fraction : int
+        1 for octave bands, 3 for third-octave bands.
+    f_lo_hz, f_hi_hz : float
+        Nominal first and last band (bands that do not fit below Nyquist are skipped).
+    compensate : bool
+        Noise-floor compensation in the backward integration.
+
+    Returns
+    -------
+    list of BandDecay, one per band from low to high.
+
+    References
+    ----------
+    ISO 3382-1 (ranges; octave or one-third-octave bands); IEC 61260-1 (band
+    centres and edges); Schroeder (1965); Lundeby et al. (1995).
+    """
+    from scipy.signal import sosfilt
+
+    from roomcorr.analysis.bands import band_centres_hz
+
+    if fraction not in (1, 3):
+        raise ValueError(f"fraction must be 1 (octave) or 3 (third-octave), not {fraction!r}")
+    ir = np.asarray(ir, dtype=float)
+    centres = (
+        octave_band_centres(f_lo_hz, f_hi_hz)
+        if fraction == 1
+        else band_centres_hz(3, f_lo_hz, f_hi_hz)
+    )
+    out = []
+    for fc in centres:
+        if fc * _G ** (0.5 / fraction) >= 0.49 * fs:
+            continue
+        band = sosfilt(band_sos(fc, fs, fraction), ir)
+        curve = schroeder_decay(band, fs, compensate=compensate)
+        values, valid = decay_parameters(curve)
+        out.append(
+            BandDecay(
+                centre_hz=float(fc),
+                label=nominal_label(fc),
+                edt_s=values["edt"],
+                t20_s=values["t20"],
+                t30_s=values["t30"],
+                valid=valid,
+                curve=curve,
+            )
+        )
+    return out
+
+
 def octave_band_decay(
     ir: np.ndarray,
     fs: float,
@@ -347,6 +441,8 @@ def octave_band_decay(
     compensate: bool = True,
 ) -> list[BandDecay]:
     """EDT, T20 and T30 per octave band of one impulse response.
+
+    :func:`band_decay` with ``fraction=1``.
 
     Parameters
     ----------
@@ -368,25 +464,35 @@ def octave_band_decay(
     ISO 3382-1 (ranges); IEC 61260-1 (band centres and edges); Schroeder (1965);
     Lundeby et al. (1995).
     """
-    from scipy.signal import sosfilt
+    return band_decay(ir, fs, 1, f_lo_hz, f_hi_hz, compensate)
 
-    ir = np.asarray(ir, dtype=float)
+
+def mean_band_decay(per_position: list[list[BandDecay]]) -> list[BandDecay]:
+    """Band values averaged over positions (the report's and the app's combined view).
+
+    Parameters
+    ----------
+    per_position : list of list of BandDecay
+        :func:`band_decay` of each position, same bands.
+
+    Returns
+    -------
+    list of BandDecay
+        EDT, T20 and T30 the mean over positions (NaN ignored); ``valid`` only
+        where every position's value is valid; the curve of the first position.
+    """
     out = []
-    for fc in octave_band_centres(f_lo_hz, f_hi_hz):
-        if fc * _G**0.5 >= 0.49 * fs:
-            continue
-        band = sosfilt(octave_band_sos(fc, fs), ir)
-        curve = schroeder_decay(band, fs, compensate=compensate)
-        values, valid = decay_parameters(curve)
+    for k, first in enumerate(per_position[0]):
+        rows = [pos[k] for pos in per_position if k < len(pos)]
         out.append(
             BandDecay(
-                centre_hz=float(fc),
-                label=nominal_label(fc),
-                edt_s=values["edt"],
-                t20_s=values["t20"],
-                t30_s=values["t30"],
-                valid=valid,
-                curve=curve,
+                centre_hz=first.centre_hz,
+                label=first.label,
+                edt_s=float(np.nanmean([r.edt_s for r in rows])),
+                t20_s=float(np.nanmean([r.t20_s for r in rows])),
+                t30_s=float(np.nanmean([r.t30_s for r in rows])),
+                valid={key: all(r.valid[key] for r in rows) for key in first.valid},
+                curve=first.curve,
             )
         )
     return out
