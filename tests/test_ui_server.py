@@ -421,3 +421,16 @@ def test_decay_route_serves_the_application_layers_data(client, demo_room):
     for path in refused:
         assert client.get(path, headers=_auth()).status_code in (400, 404), path
     assert client.get(f"/api/decay/measurement/{meas}").status_code == 403  # no token
+
+
+def test_preview_refuses_target_points_the_target_rules_refuse(client):
+    # The same checks as a target file on the command line (design.target.target_points).
+    hdr = {**_auth(), "content-type": "application/json"}
+    for points in (b"[[NaN, 1.0]]", b"[[1000, Infinity]]", b"[[5, 1]]", b"[[1000, 30]]",
+                   b"[[1000, 1], [1000, 2]]"):
+        body = b'{"target": null, "table": {"points": ' + points + b"}}"
+        bad = client.post("/api/preview", headers=hdr, content=body)
+        assert bad.status_code == 400 and "target point" in bad.json()["error"], points
+    good = client.post("/api/preview", headers=_auth(),
+                       json={"table": {"points": [[40.0, 3.0], [1000.0, -1.0]]}})
+    assert good.status_code == 200, good.text
