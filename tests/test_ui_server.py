@@ -93,6 +93,21 @@ def test_filter_magnitude_matches_scipy_freqz_of_the_wav(client, demo_room):
     np.testing.assert_allclose(filt["magnitude_db"], 20 * np.log10(np.abs(resp)), atol=0.01)
 
 
+def test_filter_phase_and_group_delay_match_scipy(client, demo_room):
+    # Outside reference: scipy.signal.freqz (phase) and scipy.signal.group_delay of the WAV.
+    run_id = _design_id(demo_room)
+    filt = client.get(f"/api/design/{run_id}", headers=_auth()).json()["filters"]["48000"][1]
+    path = demo_room.designs_dir / run_id / "fir" / "48000" / f"{filt['channel']}.wav"
+    h, fs = sf.read(path, dtype="float64")
+    f = np.array(filt["freq_hz"])
+    _, resp = scipy.signal.freqz(h, worN=f, fs=fs)
+    diff = np.radians(filt["phase_deg"]) - np.angle(resp)
+    assert np.degrees(np.max(np.abs(np.angle(np.exp(1j * diff))))) < 0.5  # rounded to 0.1 degree
+    _, gd = scipy.signal.group_delay((h, [1.0]), w=f, fs=fs)
+    # read between FFT bins 0.2 Hz apart: 1 % where the delay changes fast (a notch)
+    np.testing.assert_allclose(filt["group_delay_ms"], gd / fs * 1000.0, rtol=0.01, atol=0.02)
+
+
 def test_files_list_and_download_with_matching_sha256(client, demo_room):
     import hashlib
 

@@ -84,10 +84,11 @@ def design_view(room: rooms.Room, run_id: str) -> dict[str, Any]:
         ``spread_db``, ``target_db``, ``correction_db``, ``boost_withheld_db``
         and ``predicted_db`` (average plus correction, per position as well);
         ``filters``: per sample rate and channel the FIR's magnitude (dB, with
-        the pre-gain), phase (degrees, unwrapped) and group delay (ms);
+        the pre-gain), phase (degrees, wrapped) and group delay (ms), from the
+        report's :func:`roomcorr.report.html.filter_response`;
         ``manifest``: the design's manifest.
     """
-    from roomcorr.design.fir import fir_response_db
+    from roomcorr.report.html import filter_response
 
     folder = run_folder(room, "design", run_id)
     rooms.verified(room, folder, use=[folder / "design.npz", folder / "manifest.json"])
@@ -120,21 +121,18 @@ def design_view(room: rooms.Room, run_id: str) -> dict[str, Any]:
     filters: dict[str, list[dict[str, Any]]] = {}
     f_plot = f[f <= 20000.0]
     for fs, firs in sorted(curves["firs"].items()):
+        band = f_plot[f_plot < fs / 2]
         per_rate = []
         for c, h in enumerate(np.asarray(firs)):
-            band = f_plot[f_plot < fs / 2]
-            n_fft = 1 << int(np.ceil(np.log2(max(h.size * 2, 65536))))
-            spec = np.fft.rfft(h, n_fft)
-            bins = np.fft.rfftfreq(n_fft, 1.0 / fs)
-            phase = np.unwrap(np.angle(spec))
-            gd = -np.gradient(phase, 2 * np.pi * bins) * 1000.0
+            # the report's filter figures: gain, wrapped phase and group delay of the taps
+            gain, phase, gd = filter_response(h, int(fs), band)
             per_rate.append(
                 {
                     "channel": curves["channels"][c]["name"],
                     "freq_hz": _finite_list(band, 2),
-                    "magnitude_db": _finite_list(fir_response_db(h, fs, band)),
-                    "phase_deg": _finite_list(np.degrees(np.interp(band, bins, phase)), 1),
-                    "group_delay_ms": _finite_list(np.interp(band, bins, gd)),
+                    "magnitude_db": _finite_list(gain),
+                    "phase_deg": _finite_list(phase, 1),
+                    "group_delay_ms": _finite_list(gd),
                 }
             )
         filters[str(fs)] = per_rate
