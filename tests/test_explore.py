@@ -187,11 +187,20 @@ def test_ranges_too_close_to_the_noise_are_marked(tmp_path):
     np.testing.assert_allclose(view["channels"][0]["combined"]["t30_s"], 0.5, rtol=0.03)
 
 
+def test_one_channel_is_the_same_as_in_the_whole_view(demo_room):
+    run_id = _design_id(demo_room)
+    whole = decay_view(demo_room, "design", run_id)
+    one = decay_view(demo_room, "design", run_id, channel=1)
+    assert one["channels"][0] == {"name": whole["channels"][0]["name"]}
+    assert one["channels"][1] == whole["channels"][1]
+
+
 def test_decay_view_refusals(demo_room):
     meas = rooms.latest_measurement(demo_room).name
     for kind, run_id, kw in (
         ("measurement", meas, {"fraction": 2}),
         ("measurement", meas, {"position": 4}),
+        ("measurement", meas, {"channel": 2}),
         ("measurement", "..", {}),
         ("measurement", "no-such-run", {}),
         ("design", meas, {}),

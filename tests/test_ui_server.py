@@ -641,7 +641,9 @@ def test_decay_route_serves_the_application_layers_data(client, demo_room):
     r = client.get(f"/api/decay/measurement/{meas}?bands=3&position=1", headers=_auth())
     assert r.status_code == 200, r.text
     assert r.json() == decay_view(demo_room, "measurement", meas, 3, 1)
-    for query in ("bands=2", "bands=-1", "position=9", "position=x", "bands=1e3"):
+    one = client.get(f"/api/decay/measurement/{meas}?channel=1", headers=_auth())
+    assert one.json() == decay_view(demo_room, "measurement", meas, channel=1)
+    for query in ("bands=2", "bands=-1", "position=9", "position=x", "bands=1e3", "channel=2"):
         bad = client.get(f"/api/decay/measurement/{meas}?{query}", headers=_auth())
         assert bad.status_code == 400 and bad.json()["error"], query
     refused = (f"/api/decay/design/{meas}", f"/api/decay/x/{meas}", "/api/decay/measurement/..")

@@ -40,6 +40,7 @@ References
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -359,6 +360,12 @@ def band_sos(centre_hz: float, fs: float, fraction: int = 1, order: int = 3) -> 
         Edges at ``centre_hz * G ** (+-1 / (2 b))`` (IEC 61260-1), -3 dB there.
         For ``fraction=1`` the same sections as :func:`octave_band_sos`.
     """
+    return _band_sos(float(centre_hz), float(fs), int(fraction), int(order)).copy()  # cached
+
+
+@functools.lru_cache(maxsize=256)
+def _band_sos(centre_hz: float, fs: float, fraction: int, order: int) -> np.ndarray:
+    """:func:`band_sos`, designed once per band and rate (every position uses the same)."""
     from scipy.signal import butter
 
     lo = centre_hz * _G ** (-0.5 / fraction)

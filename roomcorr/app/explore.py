@@ -25,9 +25,10 @@ PLOT_POINTS_PER_OCTAVE = 48
 
 def _finite_list(values: np.ndarray, ndigits: int = 3) -> list[float | None]:
     """Floats rounded for transport; NaN and infinities become ``None`` (JSON null)."""
-    out: list[float | None] = []
-    for v in np.asarray(values, dtype=float).ravel():
-        out.append(round(float(v), ndigits) if math.isfinite(v) else None)
+    a = np.round(np.asarray(values, dtype=float).ravel(), ndigits)
+    out: list[float | None] = a.tolist()
+    if not np.all(np.isfinite(a)):
+        out = [v if v is not None and math.isfinite(v) else None for v in out]
     return out
 
 
@@ -221,7 +222,12 @@ def _decay_map(m: Any, modes: list[tuple[float, float]] | None = None) -> dict[s
 
 
 def decay_view(
-    room: rooms.Room, kind: str, run_id: str, fraction: int = 1, position: int = 0
+    room: rooms.Room,
+    kind: str,
+    run_id: str,
+    fraction: int = 1,
+    position: int = 0,
+    channel: int | None = None,
 ) -> dict[str, Any]:
     """Decay times per band and the low-frequency ringing map of a run, ready to plot.
 
@@ -242,6 +248,9 @@ def decay_view(
     position : int
         Position (0-based) whose Schroeder curves and ringing map are returned
         (the report shows the first).
+    channel : int, optional
+        Analyse only this channel (0-based); the others are listed by name only.
+        Default: every channel.
 
     Returns
     -------
@@ -257,6 +266,8 @@ def decay_view(
         band: ``time_s``, ``edc_db``) and ``ringing``: ``measured`` and, for a
         design made at the measurement's rate, ``corrected`` maps (``time_s``,
         ``freq_hz``, ``level_db`` of shape (n_times, n_freqs), ``modes``).
+        A channel left out by ``channel``, or one too short or silent for a
+        decay analysis, has its ``name`` only.
 
     Raises
     ------
@@ -299,8 +310,13 @@ def decay_view(
         positions = [p.stem for p in files]
     if not (isinstance(position, int) and 0 <= position < irs.shape[0]):
         raise InputFileError(f"position={position!r}: run {run_id} has {irs.shape[0]} positions")
+    if channel is not None and not (isinstance(channel, int) and 0 <= channel < len(names)):
+        raise InputFileError(f"channel={channel!r}: run {run_id} has {len(names)} channels")
     channels = []
     for c, name in enumerate(names):
+        if channel is not None and c != channel:
+            channels.append({"name": name})
+            continue
         try:
             per_pos = [band_decay(irs[p, c], fs, fraction) for p in range(irs.shape[0])]
         except ValueError:  # too short or silent: no decay analysis, as in the report

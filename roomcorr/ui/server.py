@@ -252,9 +252,11 @@ def create_app(room: rooms.Room, token: str, port: int) -> ASGIApp:
     async def decay(request: Request) -> Response:
         p, q = request.path_params, request.query_params
         try:
-            numbers = {}
-            for key, default in (("bands", "1"), ("position", "0")):
+            numbers: dict[str, int | None] = {"channel": None}
+            for key, default in (("bands", "1"), ("position", "0"), ("channel", None)):
                 text = q.get(key, default)
+                if text is None:
+                    continue
                 if not text.isdigit() or len(text) > 3:
                     raise RoomcorrError(f"{key}={text!r}: expected a small whole number")
                 numbers[key] = int(text)
@@ -265,6 +267,7 @@ def create_app(room: rooms.Room, token: str, port: int) -> ASGIApp:
                 p["run_id"],
                 numbers["bands"],
                 numbers["position"],
+                numbers["channel"],
             )
         except RoomcorrError as exc:
             return _error(exc, 404 if "no such" in str(exc) or "not a" in str(exc) else 400)

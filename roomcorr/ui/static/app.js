@@ -179,9 +179,11 @@ async function openRun(run) {
   document.getElementById("explore-title").textContent = `${run.kind} ${run.run_id}`;
   status(`loading ${run.kind} ${run.run_id} ...`);
   const t0 = performance.now();
-  const decay = decayUrl(run, 1, 0);
+  const decay = decayUrl(run, 1, 0, 0);
   const decayData = api(decay);  // fetched while the responses are drawn
   decayData.catch(() => {});
+  const filesData = run.kind === "design" ? api(`/api/files/${encodeURIComponent(run.run_id)}`) : null;
+  if (filesData) filesData.catch(() => {});
   try {
     if (run.kind === "design") {
       const view = await api(`/api/design/${encodeURIComponent(run.run_id)}`);
@@ -194,7 +196,7 @@ async function openRun(run) {
       const sel = document.querySelectorAll("#explore-controls select");
       if (sel[1]) sel[1].value = rate;
       drawDesign(view, ch, rate);
-      await loadFiles(run.run_id);
+      await loadFiles(run.run_id, filesData);
     } else {
       const view = await api(`/api/measurement/${encodeURIComponent(run.run_id)}`);
       const draw = c => {
@@ -249,20 +251,22 @@ function bandColor(k, n) {
   return `rgb(${c.join(",")})`;
 }
 
-function decayUrl(run, fraction, pos) {
-  return `/api/decay/${run.kind}/${encodeURIComponent(run.run_id)}?bands=${fraction}&position=${pos}`;
+function decayUrl(run, fraction, pos, ch) {
+  return `/api/decay/${run.kind}/${encodeURIComponent(run.run_id)}?bands=${fraction}&position=${pos}&channel=${ch}`;
 }
 
-async function openDecay(run, fraction = 1, position = "combined", prefetched = null) {
+async function openDecay(run, fraction = 1, position = "combined", prefetched = null, channel = null) {
+  // one loudspeaker at a time: the server analyses only the channel shown
   const pos = position === "combined" ? 0 : Number(position);
+  const ch = channel !== null ? channel : decayState && decayState.run === run ? decayState.ch : 0;
   const t0 = performance.now();
-  const view = await (prefetched || api(decayUrl(run, fraction, pos)));
-  const ch = decayState && decayState.run === run ? decayState.ch : 0;
+  const view = await (prefetched || api(decayUrl(run, fraction, pos, ch)));
   decayState = { run, view, ch, fraction, position, fetchMs: performance.now() - t0 };
   el("decay-title").hidden = false;
   el("decay-controls").innerHTML = "";
   controls([
-    ["loudspeaker", view.channels.map((c, i) => [i, c.name]), v => { decayState.ch = Number(v); drawDecay(); }],
+    ["loudspeaker", view.channels.map((c, i) => [i, c.name]),
+      v => openDecay(run, decayState.fraction, decayState.position, null, Number(v)).catch(e => status(String(e.message || e), true))],
     ["bands", [["1", "octave"], ["3", "third-octave"]], v => openDecay(run, Number(v), decayState.position).catch(e => status(String(e.message || e), true))],
     ["decay times of", [["combined", "all positions (mean)"], ...view.positions.map((p, i) => [String(i), p])],
       v => openDecay(run, decayState.fraction, v).catch(e => status(String(e.message || e), true))],
@@ -397,6 +401,14 @@ function decayTable(rows, labels) {
 const HEAT_FLOOR_DB = -45;
 const HEAT_STOPS = [[-45, [24, 33, 45]], [-32, [35, 72, 104]], [-20, [31, 122, 116]], [-10, [196, 168, 92]], [0, [252, 246, 226]]];
 
+// one colour per 0.1 dB from the floor to 0 dB, so a map of many pixels is a table look-up
+const HEAT_LUT = Array.from({ length: -HEAT_FLOOR_DB * 10 + 1 }, (_, k) => heatColor(HEAT_FLOOR_DB + k / 10));
+
+function heatIndex(db) {
+  if (db == null || !(db > HEAT_FLOOR_DB)) return 0;
+  return db >= 0 ? HEAT_LUT.length - 1 : Math.round((db - HEAT_FLOOR_DB) * 10);
+}
+
 function heatColor(db) {
   const v = Math.max(HEAT_FLOOR_DB, Math.min(0, db == null ? HEAT_FLOOR_DB : db));
   for (let i = 1; i < HEAT_STOPS.length; i++) {
@@ -443,7 +455,7 @@ function heatMap(parent, label, map, modes, readout, count) {
       const ti = Math.max(0, Math.min(t.length - 1, Math.round((1 - (y + 0.5) / g.ph) * (t.length - 1))));
       const rowv = lv[ti];
       for (let x = 0; x < g.pw; x++) {
-        const c = heatColor(rowv[cols[x]]);
+        const c = HEAT_LUT[heatIndex(rowv[cols[x]])];
         const k = 4 * (y * g.pw + x);
         img.data[k] = c[0]; img.data[k + 1] = c[1]; img.data[k + 2] = c[2]; img.data[k + 3] = 255;
       }
@@ -547,8 +559,8 @@ async function openCompare() {
   }
 }
 
-async function loadFiles(runId) {
-  const files = await api(`/api/files/${encodeURIComponent(runId)}`);
+async function loadFiles(runId, prefetched = null) {
+  const files = await (prefetched || api(`/api/files/${encodeURIComponent(runId)}`));
   document.getElementById("files-title").textContent = `Files of design ${runId}`;
   const body = document.querySelector("#files tbody");
   body.innerHTML = "";
