@@ -128,6 +128,35 @@ def test_band_filter_edges_minus_3_db():
     assert db[2] == pytest.approx(-3.01, abs=0.05)
 
 
+@pytest.mark.parametrize("fc", [63.0, 1000.0, 8000.0])
+def test_third_octave_band_edges_minus_3_db(fc):
+    # IEC 61260-1: third-octave edges at fc * G ** (+-1/6); Butterworth -3.01 dB there (scipy)
+    sos = decay.band_sos(fc, FS, fraction=3)
+    g = 10 ** (3 / 10)
+    f = np.array([fc, fc * g ** (-1 / 6), fc * g ** (1 / 6)])
+    _, h = sosfreqz(sos, worN=f, fs=FS)
+    db = 20 * np.log10(np.abs(h))
+    assert db[0] == pytest.approx(0.0, abs=0.1)
+    assert db[1:] == pytest.approx([-3.01, -3.01], abs=0.05)
+    # the octave case is the report's own octave filter
+    assert np.array_equal(decay.band_sos(fc, FS, 1), decay.octave_band_sos(fc, FS))
+
+
+def test_third_octave_bands_follow_iec_61260():
+    bands = decay.band_decay(_ir_for_bands(), FS, fraction=3)
+    # nominal third-octave labels 63 Hz to 8 kHz (IEC 61260-1 Annex E)
+    assert [b.label for b in bands][:4] == ["63", "80", "100", "125"]
+    assert len(bands) == 22 and bands[-1].label == "8k"
+    with pytest.raises(ValueError):
+        decay.band_decay(_ir_for_bands(), FS, fraction=2)
+
+
+def _ir_for_bands() -> np.ndarray:
+    rng = np.random.default_rng(5)
+    t = np.arange(FS // 2) / FS
+    return rng.standard_normal(t.size) * 10 ** (-3 * t / 0.4)
+
+
 def test_octave_band_t30_recovered():
     h = _decaying_noise(T60_ROOM, seed=15, noise_db=-60.0)
     bands = decay.octave_band_decay(h, FS)
