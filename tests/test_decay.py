@@ -200,3 +200,14 @@ def test_decay_map_finds_the_long_ringing_mode():
 def test_all_zero_response_is_rejected():
     with pytest.raises(ValueError):
         decay.schroeder_decay(np.zeros(1000), FS)
+
+
+def test_band_width_and_filter_limit():
+    # IEC 61260-1 (base 10): octave bandwidth 0.7046 f_m, third-octave 0.2308 f_m (computed
+    # from the band edges G ** (+-1/2b)); a band is filter-limited where B T < 16
+    # (Jacobsen 1987, from memory).
+    assert decay.band_width_hz(1000.0, 1) == pytest.approx(704.6, abs=0.1)
+    assert decay.band_width_hz(1000.0, 3) == pytest.approx(230.8, abs=0.1)
+    assert decay.filter_limited(63.0, 3, 0.3)  # B T = 4.4
+    assert not decay.filter_limited(1000.0, 1, 0.3)  # B T = 211
+    assert not decay.filter_limited(63.0, 3, float("nan"))

@@ -382,6 +382,14 @@ def test_browser_explore_shows_decay_times_and_ringing_maps(demo_room, tmp_path)
             third = decay_view(demo_room, "design", run_id, 3, 1)["channels"][0]["per_position"][1]
             expect = [_decay_cells(third, k) for k in range(22)]
             wait.until(lambda d: [r[1:4] for r in _decay_rows(d)] == expect)
+            # a measurement run: the same section, one map (nothing corrected yet)
+            driver.execute_script("delete document.body.dataset.exploreMs;")
+            driver.find_element(By.CSS_SELECTOR, "nav button[data-tab=room]").click()
+            rows = driver.find_elements(By.CSS_SELECTOR, "#runs tbody tr.pick")
+            next(r for r in rows if r.text.startswith("measurement")).click()
+            wait.until(lambda d: d.execute_script("return document.body.dataset.exploreMs"))
+            assert len(driver.find_elements(By.CSS_SELECTOR, "#ringing canvas.heat-map")) == 1
+            assert len(_decay_rows(driver)) == 8
             _no_console_errors(driver)
     finally:
         driver.quit()

@@ -184,9 +184,20 @@ DECAY_CURVE_POINTS = 600
 DECAY_CURVE_FLOOR_DB = -70.0
 
 
-def _band_rows(bands: list[Any]) -> dict[str, Any]:
-    """EDT/T20/T30 of a list of :class:`~roomcorr.analysis.decay.BandDecay` as columns."""
+def _band_rows(bands: list[Any], fraction: int) -> dict[str, Any]:
+    """EDT/T20/T30 of a list of :class:`~roomcorr.analysis.decay.BandDecay` as columns.
+
+    ``valid`` as the report marks values (range within the noise margin);
+    ``filter_limited`` where the band filter is too narrow for the decay time
+    (:func:`roomcorr.analysis.decay.filter_limited`).
+    """
+    from roomcorr.analysis.decay import filter_limited
+
     return {
+        "filter_limited": {
+            k: [filter_limited(b.centre_hz, fraction, getattr(b, f"{k}_s")) for b in bands]
+            for k in ("edt", "t20", "t30")
+        },
         "edt_s": _finite_list(np.array([b.edt_s for b in bands]), 4),
         "t20_s": _finite_list(np.array([b.t20_s for b in bands]), 4),
         "t30_s": _finite_list(np.array([b.t30_s for b in bands]), 4),
@@ -261,7 +272,9 @@ def decay_view(
         (``label``, ``centre_hz``), ``combined`` (mean over positions: ``edt_s``,
         ``t20_s``, ``t30_s`` with ``valid`` flags per parameter; a value is not
         valid when the range comes within ``noise_margin_db`` of the noise
-        floor), ``per_position`` (the same per position, with
+        floor; ``filter_limited`` where bandwidth x decay time is below
+        ``min_bandwidth_time``, so that the band filter's own ringing
+        lengthens it), ``per_position`` (the same per position, with
         ``dynamic_range_db``), ``curves`` (Schroeder curves of ``position`` per
         band: ``time_s``, ``edc_db``) and ``ringing``: ``measured`` and, for a
         design made at the measurement's rate, ``corrected`` maps (``time_s``,
@@ -276,6 +289,7 @@ def decay_view(
         the run does not have.
     """
     from roomcorr.analysis.decay import (
+        MIN_BANDWIDTH_TIME,
         NOISE_MARGIN_DB,
         RANGES_DB,
         band_decay,
@@ -328,8 +342,8 @@ def decay_view(
                 "label": [b.label for b in combined],
                 "centre_hz": _finite_list(np.array([b.centre_hz for b in combined]), 2),
             }
-            item["combined"] = _band_rows(combined)
-            item["per_position"] = [_band_rows(bands) for bands in per_pos]
+            item["combined"] = _band_rows(combined, fraction)
+            item["per_position"] = [_band_rows(bands, fraction) for bands in per_pos]
             item["curves"] = [_decay_curve(b.curve) for b in per_pos[position]]
             measured_map = low_frequency_decay_map(irs[position, c], fs)
             ringing = {"measured": _decay_map(measured_map, ringing_modes(measured_map))}
@@ -349,6 +363,7 @@ def decay_view(
         "position": position,
         "ranges_db": {k: list(v) for k, v in RANGES_DB.items()},
         "noise_margin_db": NOISE_MARGIN_DB,
+        "min_bandwidth_time": MIN_BANDWIDTH_TIME,
         "channels": channels,
     }
 

@@ -375,7 +375,7 @@ function drawDecay() {
 function decayTable(rows, labels) {
   const t = document.createElement("table");
   t.className = "decay";
-  t.innerHTML = "<thead><tr><th>band (Hz)</th><th>EDT (s)</th><th>T20 (s)</th><th>T30 (s)</th><th>peak-to-noise (dB)</th></tr></thead><tbody></tbody>";
+  t.innerHTML = "<thead><tr><th>band (Hz)</th><th>EDT (s)</th><th>T20 (s)</th><th>T30 (s)</th><th>peak-to-noise (dB)</th><th>note</th></tr></thead><tbody></tbody>";
   const body = t.querySelector("tbody");
   labels.forEach((l, i) => {
     const tr = document.createElement("tr");
@@ -386,6 +386,8 @@ function decayTable(rows, labels) {
     }
     const dyn = rows.dynamic_range_db ? rows.dynamic_range_db[i] : null;
     cells.push(dyn == null ? "-" : dyn.toFixed(0));
+    const narrow = DECAY_KEYS.filter(([key]) => rows.filter_limited[key][i]).map(([, name]) => name);
+    cells.push(narrow.length ? `${narrow.join(", ")}: the band filter rings about as long as the room (bandwidth × time < ${decayState.view.min_bandwidth_time}): unreliable` : "");
     cells.forEach(c => {
       const td = document.createElement("td");
       td.textContent = c;
