@@ -528,6 +528,11 @@ def mean_band_decay(per_position: list[list[BandDecay]]) -> list[BandDecay]:
         EDT, T20 and T30 the mean over positions (NaN ignored); ``valid`` only
         where every position's value is valid; the curve of the first position.
     """
+
+    def mean(values: list[float]) -> float:  # NaN when no position has a value, silently
+        finite = [v for v in values if np.isfinite(v)]
+        return float(np.mean(finite)) if finite else float("nan")
+
     out = []
     for k, first in enumerate(per_position[0]):
         rows = [pos[k] for pos in per_position if k < len(pos)]
@@ -535,9 +540,9 @@ def mean_band_decay(per_position: list[list[BandDecay]]) -> list[BandDecay]:
             BandDecay(
                 centre_hz=first.centre_hz,
                 label=first.label,
-                edt_s=float(np.nanmean([r.edt_s for r in rows])),
-                t20_s=float(np.nanmean([r.t20_s for r in rows])),
-                t30_s=float(np.nanmean([r.t30_s for r in rows])),
+                edt_s=mean([r.edt_s for r in rows]),
+                t20_s=mean([r.t20_s for r in rows]),
+                t30_s=mean([r.t30_s for r in rows]),
                 valid={key: all(r.valid[key] for r in rows) for key in first.valid},
                 curve=first.curve,
             )
