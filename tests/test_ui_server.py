@@ -500,12 +500,7 @@ def test_browser_drags_target_points_and_saves_what_the_cli_designs(demo_room, t
     curve.write_text("".join(f"{f!r} {g!r}\n" for f, g in sorted(kept)))
     cmd = ["design", "--room", str(demo_room.root), "--target", str(curve), "--max-boost", "4"]
     assert cli.main(cmd) == 0
-    run_cli = rooms.list_runs(demo_room, "design", include_incomplete=False)[-1].path
-    assert run_cli != run_app
-    wavs = sorted(p.relative_to(run_app) for p in run_app.rglob("*.wav"))
-    assert wavs and wavs == sorted(p.relative_to(run_cli) for p in run_cli.rglob("*.wav"))
-    for rel in wavs:
-        assert (run_app / rel).read_bytes() == (run_cli / rel).read_bytes(), rel
+    _assert_same_filters(run_app, demo_room)
 
 
 def test_a_damaged_run_is_reported_not_served(client, demo_room):
@@ -548,6 +543,16 @@ def test_preview_is_the_designs_own_curves(demo_room):
         assert ch_view["band_hz"] == pytest.approx(ch.band_hz, abs=0.1)
 
 
+def _assert_same_filters(run_app: Path, room: rooms.Room) -> None:
+    """The room's latest design (just made by the CLI) has the app's filter files, byte for byte."""
+    run_cli = rooms.list_runs(room, "design", include_incomplete=False)[-1].path
+    assert run_cli != run_app
+    wavs = sorted(p.relative_to(run_app) for p in run_app.rglob("*.wav"))
+    assert wavs and wavs == sorted(p.relative_to(run_cli) for p in run_cli.rglob("*.wav"))
+    for rel in wavs:
+        assert (run_app / rel).read_bytes() == (run_cli / rel).read_bytes(), rel
+
+
 def test_app_design_gives_the_cli_filters_byte_for_byte(demo_room):
     from roomcorr.app.design import DesignPreview
 
@@ -558,12 +563,7 @@ def test_app_design_gives_the_cli_filters_byte_for_byte(demo_room):
     assert target.is_file()
     args = ["design", "--room", str(demo_room.root), "--target", str(target), "--max-boost", "3.5"]
     assert cli.main(args) == 0
-    run_cli = rooms.list_runs(demo_room, "design", include_incomplete=False)[-1].path
-    assert run_cli != run_app
-    wavs = sorted(p.relative_to(run_app) for p in run_app.rglob("*.wav"))
-    assert wavs and wavs == sorted(p.relative_to(run_cli) for p in run_cli.rglob("*.wav"))
-    for rel in wavs:
-        assert (run_app / rel).read_bytes() == (run_cli / rel).read_bytes(), rel
+    _assert_same_filters(run_app, demo_room)
 
 
 def test_preview_and_save_refusals(client, demo_room):

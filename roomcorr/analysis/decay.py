@@ -112,29 +112,14 @@ def nominal_label(centre_hz: float) -> str:
 
 
 def octave_band_sos(centre_hz: float, fs: float, order: int = 3) -> np.ndarray:
-    """Butterworth band-pass for one octave band, as second-order sections.
-
-    Parameters
-    ----------
-    centre_hz : float
-        Exact mid-band frequency.
-    fs : float
-        Sample rate in Hz.
-    order : int
-        Butterworth prototype order (the band-pass has twice this order).
+    """Butterworth band-pass for one octave band: :func:`band_sos` with ``fraction=1``.
 
     Returns
     -------
     sos : ndarray, shape (order, 6)
         Edges at ``centre_hz * G ** (+-1/2)`` (IEC 61260-1), -3 dB there.
     """
-    from scipy.signal import butter
-
-    lo = centre_hz * _G**-0.5
-    hi = centre_hz * _G**0.5
-    if hi >= 0.49 * fs:
-        raise ValueError(f"octave band {centre_hz:.0f} Hz does not fit below Nyquist at fs={fs}")
-    return butter(order, [lo, hi], btype="bandpass", fs=fs, output="sos")
+    return band_sos(centre_hz, fs, 1, order)
 
 
 @dataclass
@@ -365,7 +350,6 @@ def band_sos(centre_hz: float, fs: float, fraction: int = 1, order: int = 3) -> 
     -------
     sos : ndarray, shape (order, 6)
         Edges at ``centre_hz * G ** (+-1 / (2 b))`` (IEC 61260-1), -3 dB there.
-        For ``fraction=1`` the same sections as :func:`octave_band_sos`.
     """
     return _band_sos(float(centre_hz), float(fs), int(fraction), int(order)).copy()  # cached
 
@@ -456,27 +440,8 @@ def octave_band_decay(
 ) -> list[BandDecay]:
     """EDT, T20 and T30 per octave band of one impulse response.
 
-    :func:`band_decay` with ``fraction=1``.
-
-    Parameters
-    ----------
-    ir : ndarray, shape (n_samples,)
-        Room impulse response (direct sound anywhere near the start).
-    fs : float
-        Sample rate in Hz.
-    f_lo_hz, f_hi_hz : float
-        Nominal first and last band (bands that do not fit below Nyquist are skipped).
-    compensate : bool
-        Noise-floor compensation in the backward integration.
-
-    Returns
-    -------
-    list of BandDecay, one per band from low to high.
-
-    References
-    ----------
-    ISO 3382-1 (ranges); IEC 61260-1 (band centres and edges); Schroeder (1965);
-    Lundeby et al. (1995).
+    :func:`band_decay` with ``fraction=1`` (the report's bands); parameters,
+    result and references as there.
     """
     return band_decay(ir, fs, 1, f_lo_hz, f_hi_hz, compensate)
 
