@@ -222,8 +222,10 @@ const DECAY_KEYS = [["edt", "EDT", "#3f5fa8"], ["t20", "T20", "#1f7a74"], ["t30"
 const OCTAVE_LABELS = new Set(["31.5", "63", "125", "250", "500", "1k", "2k", "4k", "8k", "16k"]);
 const heatMaps = [];
 let decayState = null;
+let decaySeq = 0;
 
 function clearDecay() {
+  decaySeq += 1;
   clearPlots("decay-plots");
   el("decay-controls").innerHTML = "";
   el("decay-table").innerHTML = "";
@@ -260,7 +262,9 @@ async function openDecay(run, fraction = 1, position = "combined", prefetched = 
   const pos = position === "combined" ? 0 : Number(position);
   const ch = channel !== null ? channel : decayState && decayState.run === run ? decayState.ch : 0;
   const t0 = performance.now();
+  const seq = ++decaySeq;
   const view = await (prefetched || api(decayUrl(run, fraction, pos, ch)));
+  if (seq !== decaySeq) return;  // a later choice was made meanwhile: that one is drawn
   decayState = { run, view, ch, fraction, position, fetchMs: performance.now() - t0 };
   el("decay-title").hidden = false;
   el("decay-controls").innerHTML = "";
@@ -310,7 +314,12 @@ function drawDecay() {
   const byCentre = new Map(centres.map((c, i) => [c, labels[i]]));
   const timesPlot = new uPlot({
     ...plotSize(),
-    scales: { x: { time: false, distr: 3, log: 2, range: (u, lo, hi) => [centres[0] / 1.2, centres[centres.length - 1] * 1.2] }, y: { range: (u, lo, hi) => [0, Math.max(0.1, hi * 1.1)] } },
+    scales: {
+      // the whole span with a margin at first; a zoom (drag) keeps what was chosen
+      x: { time: false, distr: 3, log: 2, range: (u, lo, hi) => (lo <= centres[0] && hi >= centres[centres.length - 1]
+        ? [centres[0] / 1.2, centres[centres.length - 1] * 1.2] : [lo, hi]) },
+      y: { range: (u, lo, hi) => [0, Math.max(0.1, hi * 1.1)] },
+    },
     axes: [
       { label: "band (Hz)", stroke: "#5d6b76", grid: { stroke: "#eceff1" }, splits: () => centres,
         values: (u, ticks) => ticks.map(t => { const l = byCentre.get(t) || ""; return view.fraction === 1 || OCTAVE_LABELS.has(l) ? l : ""; }) },
