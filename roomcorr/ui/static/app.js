@@ -652,8 +652,10 @@ function pointProblem(f, g) {
 
 function freeHz(f, skip) {
   // no frequency twice: step past a point that already sits there
+  const taken = g => targetPoints.some((p, i) => i !== skip && p[0] === g);
   let out = f;
-  while (targetPoints.some((p, i) => i !== skip && p[0] === out)) out = roundHz(out * 1.003 + 0.1);
+  const step = f * 1.003 + 0.1 <= POINT_HZ[1] ? 1.003 : 1 / 1.003;
+  while (taken(out)) out = roundHz(step > 1 ? out * step + 0.1 : out * step - 0.1);
   return out;
 }
 
