@@ -194,7 +194,7 @@ def _report_decay_sections(run_dir: Path) -> None:
     """The report's decay and ringing sections of a design (figures included), as it makes them."""
     import numpy as np
 
-    from roomcorr.export import load_design_curves
+    from roomcorr.deliver.export import load_design_curves
     from roomcorr.report import figures as fg
     from roomcorr.report import html
 

@@ -14,12 +14,11 @@ import numpy as np
 import pytest
 import soundfile as sf
 
-from roomcorr import cli
-from roomcorr import room as rooms
+from roomcorr import cli, rooms
 from roomcorr.analysis.decay import low_frequency_decay_map, octave_band_centres, ringing_modes
 from roomcorr.app import decay_view
+from roomcorr.deliver.export import load_design_curves
 from roomcorr.errors import InputFileError
-from roomcorr.export import load_design_curves
 
 REPO = Path(__file__).resolve().parents[1]
 FS = 48000
