@@ -192,22 +192,12 @@ def main() -> None:
 
 def _report_decay_sections(run_dir: Path) -> None:
     """The report's decay and ringing sections of a design (figures included), as it makes them."""
-    import numpy as np
-
     from roomcorr.deliver.export import load_design_curves
     from roomcorr.report import figures as fg
     from roomcorr.report import html
 
     curves = load_design_curves(run_dir)
-    ctx = html._Context(
-        freq=np.asarray(curves["freq_hz"], dtype=float),
-        fs=int(curves["fs_in"]),
-        caps=html._design_caps(None),
-        pre_gain=float(curves["pre_gain_db"]),
-        designed=True,
-        png=lambda fig: fg.png_bytes(fig, dpi=90),
-        iir=None,
-    )
+    ctx = html.report_context(curves, png=lambda fig: fg.png_bytes(fig, dpi=90))
     for ch in curves["channels"]:
         x = html._channel(curves, ch, ctx)
         html._decay_column(x, ctx)

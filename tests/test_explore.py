@@ -42,15 +42,7 @@ def _report_channels(room: rooms.Room, run_id: str):
     from roomcorr.report import html
 
     curves = load_design_curves(room.designs_dir / run_id)
-    ctx = html._Context(
-        freq=np.asarray(curves["freq_hz"], dtype=float),
-        fs=int(curves["fs_in"]),
-        caps=html._design_caps(None),
-        pre_gain=float(curves["pre_gain_db"]),
-        designed=True,
-        png=None,
-        iir=None,
-    )
+    ctx = html.report_context(curves)
     return [html._channel(curves, ch, ctx) for ch in curves["channels"]], ctx
 
 

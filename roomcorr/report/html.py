@@ -767,6 +767,29 @@ def _safety_section(chans: list[_Channel], curves: dict[str, Any], ctx: _Context
     return saf
 
 
+def report_context(
+    curves: dict[str, Any],
+    settings: dict[str, Any] | None = None,
+    png: Any = None,
+    iir: dict[str, list[dict[str, Any]]] | None = None,
+) -> _Context:
+    """What every section of a report of ``curves`` shares (arguments as :func:`build_report`).
+
+    Each channel's own data is then ``_channel(curves, ch, ctx)``.
+    """
+    designed = bool(curves.get("firs")) and all("correction_db" in ch for ch in curves["channels"])
+    return _Context(
+        freq=np.asarray(curves["freq_hz"], dtype=float),
+        fs=int(curves["fs_in"]),
+        caps=_design_caps(settings),
+        pre_gain=float(curves.get("pre_gain_db", 0.0)),
+        designed=designed,
+        png=png,
+        iir=iir,
+        mixed=curves.get("mixed_phase"),
+    )
+
+
 def build_report(
     curves: dict[str, Any],
     settings: dict[str, Any] | None = None,
@@ -818,19 +841,8 @@ def build_report(
     def png(fig: Any) -> bytes:
         return fg.png_bytes(fig, dpi=dpi)
 
-    designed = bool(curves.get("firs")) and all(
-        "correction_db" in ch for ch in curves["channels"]
-    )
-    ctx = _Context(
-        freq=np.asarray(curves["freq_hz"], dtype=float),
-        fs=int(curves["fs_in"]),
-        caps=_design_caps(settings),
-        pre_gain=float(curves.get("pre_gain_db", 0.0)),
-        designed=designed,
-        png=png,
-        iir=iir,
-        mixed=curves.get("mixed_phase"),
-    )
+    ctx = report_context(curves, settings, png, iir)
+    designed = ctx.designed
     overview = Section("overview", SECTION_TITLES["overview"])
     if designed:
         overview.paragraphs.extend(summary_sentences(curves, ctx.caps["max_boost_db"]))
