@@ -610,7 +610,10 @@ def _phase_column(x: _Channel, ctx: _Context) -> Column | None:
         f"position, before the first strong reflection, and undone between {fmt_hz(lo)} and "
         f"{fmt_hz(hi)} where the positions agree. Below that the room owns the phase, and "
         "the filter leaves it alone (a pure delay). The magnitude is the minimum-phase "
-        "design's."
+        "design's. From 300 Hz up (fading in from 150 Hz) the filter also takes out the group "
+        "delay of its own magnitude correction, as far as the pre-ringing limit allows, so "
+        "the corrected direct sound arrives at once at every frequency; in the bass it stays "
+        "minimum phase."
     )
     if "view_gd_s" in ch:
         view = {k[len("view_") :]: v for k, v in ch.items() if k.startswith("view_")}
