@@ -25,7 +25,7 @@ pytest.importorskip("starlette")
 pytest.importorskip("uvicorn")
 
 from test_ui_measure import set_room_measure  # noqa: E402
-from ui_browser import assert_not_blank, chromium  # noqa: E402
+from test_ui_server import _assert_not_blank, _chrome  # noqa: E402
 
 from roomcorr import (
     cli,  # noqa: E402
@@ -68,7 +68,7 @@ def test_measure_design_save_and_export_in_the_browser(make_room, tmp_path):  # 
     room = rooms.init_room(tmp_path / "hall")
     set_room_measure(room, {"noise_s": 0.3, "tail_s": 0.4, "ir_s": 0.25, "test_s": 0.3})
     shots = Path(os.environ.get("ROOMCORR_UI_SHOT", tmp_path / "x.png")).parent
-    driver = chromium(tmp_path, window="1300,1500")
+    driver = _chrome(tmp_path, height=1500)
     try:
         with background_server(room, TOKEN) as base:
             driver.get(f"{base}/?token={TOKEN}")
@@ -199,7 +199,7 @@ def test_measure_design_save_and_export_in_the_browser(make_room, tmp_path):  # 
             assert not severe, severe
     finally:
         driver.quit()
-    assert_not_blank(shot)
+    _assert_not_blank(shot)
     # the same measurement and settings through the command line: the same bytes
     target = room.root / "targets" / "warmer.toml"
     assert target.is_file()
