@@ -56,7 +56,7 @@ def _plain_matplotlib(n_figs: int, n_axes: int, n_lines: int, n_points: int, dpi
 
 
 def main() -> None:
-    from roomcorr.export import write_design
+    from roomcorr.deliver.export import write_design
     from roomcorr.report.html import build_report, render_html
     from roomcorr.report.summary import curves_from_result
     from roomcorr.settings import settings_to_dict

@@ -16,7 +16,7 @@ from pathlib import Path
 import httpx2 as httpx
 from _util import best_of, print_table
 
-from roomcorr import room as rooms
+from roomcorr import rooms
 from roomcorr.app.design import DesignPreview
 from roomcorr.audio_io import read_ir_set
 from roomcorr.pipeline import run_design

@@ -31,7 +31,7 @@ def _sha(p: Path) -> str:
 
 
 def _whole(d: Path) -> bool:
-    from roomcorr.export import design_differences
+    from roomcorr.deliver.export import design_differences
 
     return not design_differences(d)
 

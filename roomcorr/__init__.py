@@ -21,7 +21,7 @@ def __getattr__(name: str):  # lazy, so `roomcorr --help` stays fast
 
         return read_ir_set
     if name == "write_design":
-        from roomcorr.export import write_design
+        from roomcorr.deliver.export import write_design
 
         return write_design
     if name == "load_settings":

@@ -12,8 +12,8 @@ from typing import Any
 
 import numpy as np
 
-from roomcorr.atomic import atomic_write_with
 from roomcorr.checked import checked_number, read_regular_bytes, regular_file
+from roomcorr.deliver.atomic import atomic_write_with
 from roomcorr.errors import InputFileError
 
 #: Shortest impulse response accepted, in seconds (the bass window needs it).

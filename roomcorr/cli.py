@@ -311,21 +311,6 @@ def _print_system_summary(result: Any) -> None:
         print(route_diagram(names, result.system), end="")
 
 
-def _design_and_write(
-    ir_paths: list[str],
-    out: Path,
-    settings: Any,
-    replace: bool,
-    extra: dict | None = None,
-    force: bool = False,
-) -> tuple[Any, list[dict]]:
-    from roomcorr.app.design import design_from_files
-
-    return design_from_files(
-        ir_paths, out, settings, replace, extra=extra, force=force, on_start=_print_cautions
-    )
-
-
 def _add_design(sub: Any) -> argparse.ArgumentParser:
     p = sub.add_parser(
         "design",
@@ -357,38 +342,19 @@ def _add_design(sub: Any) -> argparse.ArgumentParser:
 
 
 def _run_design(args: argparse.Namespace) -> int:
-    from roomcorr import room as rooms
+    from roomcorr.app.design import design_command
 
-    room = rooms.open_room(args.room) if args.room else None
-    if room is None and not args.out:
-        room = rooms.find_room()
-    if args.out:  # a plain output folder, room or not
-        if not args.irs:
-            raise SettingsError("design: name the impulse-response files or folders to use")
-        settings = settings_from_args(args, rooms.load_room_settings(room) if room else None)
-        out = Path(args.out)
-        result, entries = _design_and_write(args.irs, out, settings, args.replace,
-                                            force=args.force)
-        _print_design_summary(result, out, entries)
-        return 0
-    if room is None:
-        raise SettingsError(
-            "design: give --out DIR, or run it inside a room folder (see roomcorr init)"
-        )
-    from roomcorr.app.design import design_in_room
-
-    settings = settings_from_args(args, rooms.load_room_settings(room))
-    run_dir, result, entries = design_in_room(
-        room,
-        settings,
-        ir_paths=args.irs or None,
+    out, result, entries = design_command(
+        args.irs,
+        lambda base: settings_from_args(args, base),
+        out=args.out,
+        room_dir=args.room,
+        replace=args.replace,
         force=args.force,
         on_start=_print_cautions,
-        on_source=lambda meas: print(
-            f"Using the latest measurement: {meas.relative_to(room.root)}"
-        ),
+        on_source=lambda meas: print(f"Using the latest measurement: {meas}"),
     )
-    _print_design_summary(result, run_dir, entries)
+    _print_design_summary(result, out, entries)
     return 0
 
 
@@ -408,38 +374,20 @@ def _add_demo(sub: Any) -> argparse.ArgumentParser:
     return p
 
 
-def _demo_measurements(scratch: Path) -> tuple[list[str], str]:
-    """The bundled demo folder, or a fresh synthesis of the same room into ``scratch``."""
-    for cand in (
-        Path.cwd() / "measurements_demo",
-        Path(__file__).resolve().parent.parent / "measurements_demo",
-    ):
-        if cand.is_dir() and any(cand.glob("*.wav")):
-            return [str(cand)], f"bundled measurements in {cand}"
-    from roomcorr.demo import write_demo_measurements
-
-    write_demo_measurements(scratch)
-    return [str(scratch)], "demo room synthesised afresh (no measurements_demo/ folder here)"
-
-
 def _run_demo(args: argparse.Namespace) -> int:
-    import tempfile
-
-    from roomcorr.export import MANIFEST, read_manifest
+    from roomcorr.app.demo import run_demo
 
     settings = settings_from_args(args)
     out = Path(args.out)
-    replace = args.replace
-    if (out / MANIFEST).exists() and read_manifest(out).get("demo"):
-        replace = True  # the demo may refresh its own earlier output
-    with tempfile.TemporaryDirectory(prefix="roomcorr-demo-") as scratch:
-        paths, where = _demo_measurements(Path(scratch))
-        print(f"Demo: an invented living room, {where}")
-        result, entries = _design_and_write(paths, out, settings, replace, extra={"demo": True})
-    _print_design_summary(result, out, entries)
-    from roomcorr.report.html import write_report
-
-    print(f"Report (open in any browser): {write_report(out)}")
+    report = run_demo(
+        out,
+        settings,
+        args.replace,
+        on_source=lambda where: print(f"Demo: an invented living room, {where}"),
+        on_start=_print_cautions,
+        on_design=lambda result, entries: _print_design_summary(result, out, entries),
+    )
+    print(f"Report (open in any browser): {report}")
     return 0
 
 
@@ -471,28 +419,12 @@ def _add_report(sub: Any) -> argparse.ArgumentParser:
     return p
 
 
-def _print_report_system(curves: dict[str, Any]) -> None:
-    from roomcorr.deliver.system import system_sentences
-    from roomcorr.report.system import system_fields
-
-    for line in system_sentences(system_fields(curves)):
-        print(line)
-
-
 def _run_report(args: argparse.Namespace) -> int:
-    from roomcorr.report.html import write_report
+    from roomcorr.app.report import report_folder
 
-    folder = Path(args.dir)
-    path = write_report(folder, compare_with=args.compare_with, out_dir=args.out)
-    if (folder / "manifest.json").is_file() and (folder / "design.npz").is_file():
-        from roomcorr.export import load_design_curves, read_manifest
-        from roomcorr.report.summary import summary_sentences
-
-        caps = (read_manifest(folder).get("settings") or {}).get("design", {})
-        curves = load_design_curves(folder)
-        for line in summary_sentences(curves, caps.get("max_boost_db")):
-            print(line)
-        _print_report_system(curves)
+    path, lines = report_folder(args.dir, compare_with=args.compare_with, out_dir=args.out)
+    for line in lines:
+        print(line)
     print(f"report: {path}")
     return 0
 
@@ -516,7 +448,7 @@ def _last_devices(room_arg: str | None) -> dict | None:
     """Devices of the room's latest measurement that recorded them (or None)."""
     import json
 
-    from roomcorr import room as rooms
+    from roomcorr import rooms
 
     try:
         room = rooms.open_room(room_arg) if room_arg else rooms.find_room()
@@ -686,7 +618,7 @@ def measure_settings_from_args(
 
 
 def _run_measure(args: argparse.Namespace) -> int:
-    from roomcorr import room as rooms
+    from roomcorr import rooms
     from roomcorr.measure.live import make_view
     from roomcorr.measure.session import copy_unfinished, run_measurement
 
@@ -843,7 +775,7 @@ def _add_init(sub: Any) -> argparse.ArgumentParser:
 
 
 def _run_init(args: argparse.Namespace) -> int:
-    from roomcorr.room import init_room
+    from roomcorr.rooms import init_room
 
     room = init_room(args.room_dir, args.name)
     print(f"Room folder ready: {room.root}")
@@ -870,15 +802,13 @@ def _add_history(sub: Any) -> argparse.ArgumentParser:
 def _run_history(args: argparse.Namespace) -> int:
     import json
 
-    from roomcorr.room import format_history, history, open_room, room_name
+    from roomcorr.app.history import format_history, room_history
 
-    room = open_room(args.room_dir)
-    entries = history(room)
+    doc = room_history(args.room_dir)
     if args.json:
-        doc = {"room": str(room.root), "name": room_name(room), "runs": entries}
         print(json.dumps(doc, indent=2))
     else:
-        print("\n".join(format_history(entries, room_name(room))))
+        print("\n".join(format_history(doc["runs"], doc["name"])))
     return 0
 
 
@@ -913,26 +843,17 @@ def _add_compare(sub: Any) -> argparse.ArgumentParser:
 def _run_compare(args: argparse.Namespace) -> int:
     import json
 
-    from roomcorr.room import compare_measurements, find_room, format_comparison, open_room
+    from roomcorr.app.compare import compare_command
+    from roomcorr.report.compare import format_comparison
 
     if (args.a is None) != (args.b is None):
         raise SettingsError("compare: give both A and B, or neither (the last two measurements)")
     if args.temperature is not None and not -30.0 <= args.temperature <= 60.0:
         raise SettingsError(f"--temperature {args.temperature:g}: expected -30 to 60 °C")
-    room = open_room(args.room) if args.room else find_room()
-    if room is None and args.a is None:
-        room = open_room(".")  # raises with the message on how to make a room folder
-    res = compare_measurements(
-        args.a, args.b, room=room, temperature_c=args.temperature,
-        fit_check=not args.no_filter_check,
-        with_curves=bool(args.plot),
+    res = compare_command(
+        args.a, args.b, room_dir=args.room, temperature_c=args.temperature,
+        fit_check=not args.no_filter_check, plot=args.plot,
     )
-    if args.plot:
-        from roomcorr.room import write_comparison_plot
-
-        write_comparison_plot(res, args.plot)
-        for ch in res["channels"]:
-            ch.pop("curves", None)
     if args.json:
         print(json.dumps(res, indent=2))
     else:
@@ -962,7 +883,7 @@ def _add_ui(sub: Any) -> argparse.ArgumentParser:
 
 
 def _run_ui(args: argparse.Namespace) -> int:
-    from roomcorr import room as rooms
+    from roomcorr import rooms
 
     room = rooms.open_room(args.room or ".")
     if not 0 <= args.port <= 65535:
@@ -1015,7 +936,7 @@ def build_parser() -> argparse.ArgumentParser:
 
 def _os_error_line(exc: OSError) -> str:
     """One line for an operating-system error: the file it concerns and why."""
-    from roomcorr.atomic import disk_error_text
+    from roomcorr.deliver.atomic import disk_error_text
 
     where = exc.filename if exc.filename is not None else ""
     text = f"{where}: {disk_error_text(exc)}" if where else disk_error_text(exc)

@@ -88,7 +88,7 @@ from pathlib import Path
 
 import numpy as np
 
-from roomcorr.atomic import atomic_write_with
+from roomcorr.deliver.atomic import atomic_write_with
 from roomcorr.errors import OutputError
 
 #: Speed of sound used by the demo room, m/s (air at about 20 °C).

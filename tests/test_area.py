@@ -260,7 +260,7 @@ def test_prediction_reaches_summary_manifest_and_curves_file(tmp_path):
     from conftest import REPO
 
     from roomcorr.audio_io import read_ir_set
-    from roomcorr.export import load_design_curves, write_design
+    from roomcorr.deliver.export import load_design_curves, write_design
     from roomcorr.pipeline import run_design
     from roomcorr.report.summary import summary_sentences
     from roomcorr.settings import Settings, design_from_dict

@@ -9,9 +9,9 @@ import stat
 import numpy as np
 import pytest
 
-from roomcorr.atomic import atomic_write_text
+from roomcorr.deliver.atomic import atomic_write_text
+from roomcorr.deliver.export import load_design_curves, sha256_of, write_design
 from roomcorr.errors import OutputError
-from roomcorr.export import load_design_curves, sha256_of, write_design
 from roomcorr.pipeline import run_design
 from roomcorr.settings import Settings, design_from_dict
 
@@ -26,7 +26,7 @@ def test_atomic_write_leaves_no_temp_and_normal_mode(tmp_path):
 
 
 def test_atomic_write_failure_keeps_old(tmp_path):
-    from roomcorr.atomic import atomic_path
+    from roomcorr.deliver.atomic import atomic_path
 
     p = atomic_write_text(tmp_path / "a.txt", "old")
     with pytest.raises(RuntimeError), atomic_path(p) as tmp:
@@ -54,7 +54,7 @@ def test_write_design_and_reload(tmp_path, result):
 
 
 def test_failure_midway_leaves_nothing(tmp_path, result, monkeypatch):
-    import roomcorr.export as export
+    import roomcorr.deliver.export as export
 
     calls = {"n": 0}
     real = export.write_wav

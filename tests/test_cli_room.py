@@ -7,7 +7,7 @@ import json
 from conftest import REPO
 from test_cli import run
 
-from roomcorr import room as rooms
+from roomcorr import rooms
 
 
 def test_design_in_room_uses_latest_measurement(tmp_path):

@@ -1,4 +1,4 @@
-"""Tests of roomcorr.export_iir: files re-read and re-evaluated with independent tools."""
+"""Tests of roomcorr.deliver.export_iir: files re-read and re-evaluated with independent tools."""
 
 from __future__ import annotations
 
@@ -11,12 +11,12 @@ import numpy as np
 import pytest
 from scipy.signal import freqz, sosfreqz
 
-from roomcorr import export
+from roomcorr.deliver import export
+from roomcorr.deliver.export_iir import write_iir
 from roomcorr.design import biquad as bq
 from roomcorr.design import iir_fit as fit
 from roomcorr.design.biquad import Section
 from roomcorr.errors import OutputError
-from roomcorr.export_iir import write_iir
 from roomcorr.grid import log_grid
 
 FREQ = log_grid()
@@ -182,7 +182,7 @@ def test_both_pre_gains_are_stated(demo_iir):
 
 
 def test_narrow_sections_beside_refused_dips_are_explained(demo_iir):
-    from roomcorr.export_iir import BESIDE_OCT, HIGH_Q
+    from roomcorr.deliver.export_iir import BESIDE_OCT, HIGH_Q
     from roomcorr.report.summary import WITHHELD_NOTABLE_DB
 
     out, result, iir = demo_iir

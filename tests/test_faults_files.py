@@ -26,10 +26,11 @@ import numpy as np
 import pytest
 from conftest import REPO, synthetic_ir
 
-from roomcorr import room as R
+from roomcorr import rooms as R
 from roomcorr.audio_io import write_wav
 from roomcorr.cli import main
 from roomcorr.design.safety import CAUTIONS
+from roomcorr.errors import OutputError
 
 FS = 48000
 TEMP_PREFIXES = (".roomcorr-tmp-", ".roomcorr-old-")
@@ -233,7 +234,7 @@ def test_run_folder_that_is_a_link_is_refused(work, capsys, kind):
         code, _, err = cli(capsys, "design", "--room", room.root, "--rates", "48000")
         assert_one_line_error(code, err, "symbolic link")
     else:
-        with pytest.raises(R.OutputError, match="symbolic link"), R.new_run(room, "measurement"):
+        with pytest.raises(OutputError, match="symbolic link"), R.new_run(room, "measurement"):
             pass
     assert snapshot(work) == before  # no run landed outside
 
@@ -308,7 +309,7 @@ def test_finished_run_cannot_be_replaced(work, capsys):
 def test_atomic_path_leaves_no_temp_file_when_interrupted_at_once(tmp_path, monkeypatch):
     # Ctrl-C arriving right after the temporary file is created (before any
     # writing): the file must not be left behind.
-    import roomcorr.atomic as atomic
+    import roomcorr.deliver.atomic as atomic
 
     real_close = os.close
     hit = {"n": 0}
@@ -330,7 +331,7 @@ def test_interrupted_swap_is_undone_by_the_next_run(tmp_path):
     # A process killed between parking the old folder and moving the new one in
     # (the fallback swap where no atomic exchange exists) leaves the old folder
     # parked; the next clean-up moves it back whole.
-    from roomcorr.atomic import OLD_PREFIX, clean_stale
+    from roomcorr.deliver.atomic import OLD_PREFIX, clean_stale
 
     dead = subprocess.run(
         [sys.executable, "-c", "import os; print(os.getpid())"], capture_output=True, text=True
@@ -648,7 +649,7 @@ def test_full_disk_in_a_room(work, capsys):
 
 def test_enospc_midway_without_a_mount(work, capsys, monkeypatch):
     # Where no tmpfs can be mounted: the disk "fills" on the second WAV.
-    import roomcorr.export as export
+    import roomcorr.deliver.export as export
 
     real = export.write_wav
     calls = {"n": 0}
@@ -773,7 +774,7 @@ def test_nothing_writes_inside_a_finished_run(work, capsys, kind):
         from roomcorr.measure.session import run_measurement
         from roomcorr.measure.settings import MeasureSettings
 
-        with pytest.raises(R.OutputError, match="finished run"):
+        with pytest.raises(OutputError, match="finished run"):
             run_measurement(MeasureSettings(), run_dir, replace=True)
     assert snapshot(work) == before
 
@@ -797,7 +798,7 @@ def test_raw_recordings_are_checked_by_size(work, capsys):
 
 
 def test_design_differences_names_what_changed(work):
-    from roomcorr.export import design_differences
+    from roomcorr.deliver.export import design_differences
 
     d = work / "d"
     assert design_differences(d) == [] and design_is_whole(d)

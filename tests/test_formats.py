@@ -13,9 +13,9 @@ import soundfile as sf
 from scipy.signal import correlate, fftconvolve
 from speaker_rooms import Room, seats, simulate
 
+from roomcorr.deliver.export import read_manifest, sha256_of, write_design
 from roomcorr.deliver.formats import coefficients_text, read_filter_file
 from roomcorr.deliver.routes import route_diagram
-from roomcorr.export import read_manifest, sha256_of, write_design
 from roomcorr.pipeline import run_design
 from roomcorr.settings import FILTER_FORMATS, Settings, design_from_dict
 
@@ -255,7 +255,7 @@ def test_cli_bad_system_options(ir_files, tmp_path, args, words):
 
 
 def test_report_has_the_system_section(design):
-    from roomcorr.export import load_design_curves
+    from roomcorr.deliver.export import load_design_curves
     from roomcorr.report.html import build_report, render_html
 
     _, out = design

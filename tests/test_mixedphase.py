@@ -393,7 +393,7 @@ def test_design_folder_round_trip_and_report_section(tmp_path, designs):
     """design.npz carries the mixed-phase part; the report gains one section per channel
     with the direct sound before/after and the pre-ringing against the limit, stating
     the latency and the caution; a minimum-phase design has no such section."""
-    from roomcorr.export import load_design_curves, read_manifest, write_design
+    from roomcorr.deliver.export import load_design_curves, read_manifest, write_design
     from roomcorr.report.html import build_report
 
     minimum, mixed = designs

@@ -218,9 +218,9 @@ _ENV = {**os.environ, "PYTHONPATH": str(Path(__file__).resolve().parent.parent)}
 
 @pytest.fixture(scope="module")
 def design_folder(tmp_path_factory):
+    from roomcorr.deliver.export import write_design
+    from roomcorr.deliver.export_iir import write_iir
     from roomcorr.design.iir_fit import design_iir
-    from roomcorr.export import write_design
-    from roomcorr.export_iir import write_iir
     from roomcorr.pipeline import run_design
     from roomcorr.settings import DesignSettings, Settings
 
@@ -278,7 +278,7 @@ def test_page_is_self_contained(design_folder):
 
 
 def test_report_files_are_in_the_manifest(design_folder):
-    from roomcorr.export import read_manifest, sha256_of
+    from roomcorr.deliver.export import read_manifest, sha256_of
 
     out, _, _ = design_folder
     files = {e["path"]: e for e in read_manifest(out)["files"]}
@@ -288,7 +288,7 @@ def test_report_files_are_in_the_manifest(design_folder):
 
 
 def test_summary_sentences_head_the_page(design_folder):
-    from roomcorr.export import load_design_curves, read_manifest
+    from roomcorr.deliver.export import load_design_curves, read_manifest
 
     out, path, _ = design_folder
     page = path.read_text(encoding="utf-8")
@@ -371,9 +371,9 @@ def _stereo_room(n_pos=2, dur_s=0.6):
 
 @pytest.fixture(scope="module")
 def stereo_folder(tmp_path_factory):
+    from roomcorr.deliver.export import write_design
+    from roomcorr.deliver.export_iir import write_iir
     from roomcorr.design.iir_fit import design_iir
-    from roomcorr.export import write_design
-    from roomcorr.export_iir import write_iir
     from roomcorr.pipeline import run_design
     from roomcorr.settings import DesignSettings, Settings
 
@@ -503,7 +503,7 @@ def test_cli_report_command(design_folder, tmp_path):
 def test_predicted_result_is_closer_to_the_target(design_folder):
     # what the report's prediction must show for a working design: inside the band the
     # corrected power average deviates less from the (pre-gain lowered) target than before
-    from roomcorr.export import load_design_curves
+    from roomcorr.deliver.export import load_design_curves
 
     out, _, _ = design_folder
     cur = load_design_curves(out)

@@ -13,7 +13,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from roomcorr import room as rooms
+from roomcorr import rooms
 from roomcorr.report import html as rh
 
 ROOT = Path(__file__).resolve().parent.parent
@@ -32,7 +32,7 @@ def _expected_distance_m(temperature_c: float = 20.0) -> float:
 @pytest.fixture(scope="module")
 def room_runs(tmp_path_factory):
     from roomcorr.audio_io import read_ir_set, write_wav
-    from roomcorr.export import write_design
+    from roomcorr.deliver.export import write_design
     from roomcorr.pipeline import run_design
 
     base = tmp_path_factory.mktemp("cmp")

@@ -1,4 +1,5 @@
-"""Tests of roomcorr.room: room folders, settings file, runs, lock, history, compare."""
+"""Tests of roomcorr.rooms (room folders, settings file, runs, lock), roomcorr.app.history,
+roomcorr.app.compare and roomcorr.report.compare."""
 
 from __future__ import annotations
 
@@ -16,10 +17,14 @@ import numpy as np
 import pytest
 from test_compare import FS, SPK_L, SPK_R, room_set  # the synthetic room model
 
-from roomcorr import room as R
+from roomcorr import rooms as R
 from roomcorr.analysis.compare import speed_of_sound_m_s
+from roomcorr.app.compare import compare_measurements
+from roomcorr.app.history import format_history, history
 from roomcorr.audio_io import write_wav
 from roomcorr.errors import InputFileError, OutputError, SettingsError
+from roomcorr.report.compare import comparison_png, format_comparison, write_comparison_plot
+from roomcorr.rooms.runs import RUN_ID
 from roomcorr.settings import DesignSettings
 
 REPO = Path(__file__).resolve().parents[1]
@@ -157,7 +162,7 @@ def test_runs_are_time_stamped_never_overwritten_and_marked_complete(room: R.Roo
     d1 = _measure(room, irs)
     d2 = _measure(room, irs * 0.5)  # same second is likely: must still be a new folder
     assert d1 != d2 and d1.parent == d2.parent == room.measurements_dir
-    assert R._RUN_ID.match(d1.name) and R._RUN_ID.match(d2.name)
+    assert RUN_ID.match(d1.name) and RUN_ID.match(d2.name)
     assert R.latest_measurement(room) == d2
     marker = json.loads((d1 / R.COMPLETE_MARKER).read_text())
     assert marker["complete"] is True and marker["kind"] == "measurement"
@@ -193,7 +198,7 @@ _CHILD = textwrap.dedent(
     import sys, time
     from pathlib import Path
     import numpy as np
-    from roomcorr import room as R
+    from roomcorr import rooms as R
     from roomcorr.audio_io import write_wav
     room = R.open_room(sys.argv[1])
     flag = Path(sys.argv[2])
@@ -235,7 +240,7 @@ def test_sigkill_mid_run_leaves_earlier_runs_intact_and_no_half_run(room: R.Room
         assert {f.name: f.read_bytes() for f in p.iterdir()} == digests[p]
         assert R.verify_run(p) == []
     assert R.latest_measurement(room) == earlier[-1]
-    hist = R.history(room)
+    hist = history(room)
     assert [h["status"] for h in hist] == ["complete", "complete", "incomplete"]
     assert not R.is_locked(room)  # the operating system dropped the dead process's lock
     newer = _measure(room, irs)
@@ -282,7 +287,7 @@ def test_measurement_files_natural_order_and_add_measurement(room: R.Room, tmp_p
     run = R.add_measurement(room, [src], note="before the rug")
     assert sorted(p.name for p in run.glob("*.wav")) == ["pos1.wav", "pos2.wav", "pos3.wav"]
     assert (run / "pos3.wav").read_bytes() == (src / "seat10.wav").read_bytes()
-    assert R.history(room)[0]["note"] == "before the rug"
+    assert history(room)[0]["note"] == "before the rug"
     (src / "seat2.wav").write_bytes(b"not audio")
     with pytest.raises(InputFileError, match="seat2.wav"):
         R.add_measurement(room, [src])
@@ -294,7 +299,7 @@ def test_measurement_files_natural_order_and_add_measurement(room: R.Room, tmp_p
 
 def _design(room: R.Room, meas: Path) -> Path:
     from roomcorr.audio_io import read_ir_set
-    from roomcorr.export import write_design
+    from roomcorr.deliver.export import write_design
     from roomcorr.pipeline import run_design
 
     settings = R.load_room_settings(room)
@@ -309,7 +314,7 @@ def test_history_lists_key_figures(room: R.Room):
     irs = room_set(SPK_L, SPK_R, C20)
     m = _measure(room, irs)
     d = _design(room, m)
-    hist = R.history(room)
+    hist = history(room)
     assert [(h["kind"], h["run_id"]) for h in hist] == [("measurement", m.name), ("design", d.name)]
     fm = hist[0]["figures"]
     assert (fm["positions"], fm["channels"], fm["sample_rate"]) == (3, 2, FS)
@@ -332,7 +337,7 @@ def test_compare_default_last_two_with_filter_fit(room: R.Room):
     # Gain-only change of the right loudspeaker (-3 dB): the level change is
     # recovered and the old filters still fit (the level is arbitrary).
     m2 = _measure(room, room_set(SPK_L, SPK_R, C20, gain_r=10 ** (-3 / 20)))
-    res = R.compare_measurements(room=room)
+    res = compare_measurements(room=room)
     assert (res["before"], res["after"]) == (str(m1), str(m2))
     right = res["channels"][1]
     assert right["name"] == "right"
@@ -353,7 +358,7 @@ def test_compare_moved_speaker_with_run_ids_and_temperature(room: R.Room):
     from test_compare import MICS
 
     want = np.mean([np.linalg.norm(moved - mic) - np.linalg.norm(SPK_R - mic) for mic in MICS])
-    res = R.compare_measurements(m1.name, m2.name, room=room, temperature_c=30.0)
+    res = compare_measurements(m1.name, m2.name, room=room, temperature_c=30.0)
     assert res["channels"][1]["distance_change_m"] == pytest.approx(want, abs=0.02)
     assert res["speed_of_sound_m_s"] == pytest.approx(c, abs=1e-3)
     assert res["filter_fit"]["available"]
@@ -364,9 +369,9 @@ def test_compare_moved_speaker_with_run_ids_and_temperature(room: R.Room):
 def test_compare_needs_two_measurements(room: R.Room):
     _measure(room, room_set(SPK_L, SPK_R, C20))
     with pytest.raises(InputFileError, match="compare needs two"):
-        R.compare_measurements(room=room)
+        compare_measurements(room=room)
     with pytest.raises(InputFileError, match="no such"):
-        R.compare_measurements("nope-a", "nope-b", room=room)
+        compare_measurements("nope-a", "nope-b", room=room)
 
 
 def test_text_output_names_the_figures(room: R.Room):
@@ -375,15 +380,15 @@ def test_text_output_names_the_figures(room: R.Room):
     _measure(room, room_set(SPK_L, SPK_R + np.array([0.0, -0.3, 0.0]), C20))
     with R.new_run(room, "measurement"):
         pass  # an empty run is still a complete run folder, with no IR files ...
-    hist = R.history(room)
-    text = "\n".join(R.format_history(hist, R.room_name(room)))
+    hist = history(room)
+    text = "\n".join(format_history(hist, R.room_name(room)))
     assert text.startswith("Room lounge: 4 run(s)")
     assert "from measurement " + m1.name in text and "(first)" in text
     assert "3 position(s) x 2 channel(s), 48000 Hz" in text
     assert "problem:" in text  # ... which history reports instead of failing
     runs = R.list_runs(room, "measurement", include_incomplete=False)
-    res = R.compare_measurements(runs[0].path, runs[1].path, room=room)
-    out = "\n".join(R.format_comparison(res))
+    res = compare_measurements(runs[0].path, runs[1].path, room=room)
+    out = "\n".join(format_comparison(res))
     assert "ISO 9613-1" in out and "right:" in out and "distance +0.2" in out
     assert "filter check against" in out
     json.dumps(res)  # plain JSON types only
@@ -465,7 +470,7 @@ def test_design_source_from_the_manifest_file_list(room: R.Room):
     # A design command that records its inputs only in manifest.json (the
     # "measurements" file list) is still traced back to its measurement run.
     from roomcorr.audio_io import read_ir_set
-    from roomcorr.export import write_design
+    from roomcorr.deliver.export import write_design
     from roomcorr.pipeline import run_design
 
     m1 = _measure(room, room_set(SPK_L, SPK_R, C20))
@@ -477,8 +482,8 @@ def test_design_source_from_the_manifest_file_list(room: R.Room):
         write_design(
             run_design(irs, fs, settings), d, extra={"measurements": [str(f) for f in files]}
         )
-    assert R.history(room)[-1]["source"] == m1.name
-    res = R.compare_measurements(m1, m2, room=room)
+    assert history(room)[-1]["source"] == m1.name
+    res = compare_measurements(m1, m2, room=room)
     assert res["filter_fit"]["design"] == str(d)
 
 
@@ -489,9 +494,9 @@ def test_compare_accepts_lists_of_files(tmp_path: Path):
     moved = SPK_R + np.array([0.0, -0.2, 0.0])
     _write_set(a_dir, room_set(SPK_L, SPK_R, C20))
     _write_set(b_dir, room_set(SPK_L, moved, C20))
-    whole = R.compare_measurements(a_dir, b_dir, fit_check=False)
+    whole = compare_measurements(a_dir, b_dir, fit_check=False)
     files_b = R.measurement_files(b_dir)
-    listed = R.compare_measurements(
+    listed = compare_measurements(
         ",".join(str(f) for f in R.measurement_files(a_dir)),
         [str(f) for f in files_b],
         fit_check=False,
@@ -508,8 +513,8 @@ def test_comparison_plot_png(tmp_path: Path):
     b_dir.mkdir()
     _write_set(a_dir, room_set(SPK_L, SPK_R, C20))
     _write_set(b_dir, room_set(SPK_L, SPK_R + np.array([0.0, -0.3, 0.0]), C20))
-    res = R.compare_measurements(a_dir, b_dir, fit_check=False, with_curves=True)
-    out = R.write_comparison_plot(res, tmp_path / "cmp.png")
+    res = compare_measurements(a_dir, b_dir, fit_check=False, with_curves=True)
+    out = write_comparison_plot(res, tmp_path / "cmp.png")
     data = out.read_bytes()
     assert data[:8] == b"\x89PNG\r\n\x1a\n"  # PNG signature (PNG specification, 5.2)
     import matplotlib.image as mpimg
@@ -518,6 +523,6 @@ def test_comparison_plot_png(tmp_path: Path):
     assert img.shape[0] > 300 and img.shape[1] > 600
     assert float(np.std(img[..., :3])) > 0.05  # not blank
     with pytest.raises(OutputError, match=r"\.png"):
-        R.write_comparison_plot(res, tmp_path / "cmp.jpg")
+        write_comparison_plot(res, tmp_path / "cmp.jpg")
     with pytest.raises(ValueError, match="with_curves"):
-        R.comparison_png(R.compare_measurements(a_dir, b_dir, fit_check=False))
+        comparison_png(compare_measurements(a_dir, b_dir, fit_check=False))

@@ -231,8 +231,7 @@ def test_no_default_device_names_the_option(monkeypatch):
 
 
 def test_resume_in_a_room_folder_continues_in_a_new_run(offline_room, monkeypatch, tmp_path):
-    from roomcorr import cli
-    from roomcorr import room as rooms
+    from roomcorr import cli, rooms
 
     room = rooms.init_room(tmp_path / "room")
     real = capture.play_record

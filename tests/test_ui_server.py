@@ -21,9 +21,11 @@ pytest.importorskip("uvicorn")
 
 from starlette.testclient import TestClient  # noqa: E402
 
-from roomcorr import cli  # noqa: E402
-from roomcorr import room as rooms  # noqa: E402
-from roomcorr.export import load_design_curves  # noqa: E402
+from roomcorr import cli, rooms  # noqa: E402
+from roomcorr.app.compare import compare_measurements  # noqa: E402
+from roomcorr.app.history import history  # noqa: E402
+from roomcorr.deliver.export import load_design_curves  # noqa: E402
+from roomcorr.report.compare import format_comparison  # noqa: E402
 from roomcorr.ui.server import TOKEN_HEADER, background_server, bind_loopback, create_app  # noqa: E402
 
 REPO = Path(__file__).resolve().parents[1]
@@ -59,7 +61,7 @@ def _design_id(room: rooms.Room) -> str:
 
 def test_room_lists_the_same_runs_as_history(client, demo_room):
     data = client.get("/api/room", headers=_auth()).json()
-    expect = rooms.history(demo_room)
+    expect = history(demo_room)
     assert [(r["kind"], r["run_id"], r["status"]) for r in data["runs"]] == [
         (r["kind"], r["run_id"], r["status"]) for r in expect
     ]
@@ -228,7 +230,7 @@ def test_browser_shows_history_and_draws_a_design(demo_room, tmp_path):
             driver.get(f"{base}/?token={TOKEN}")
             wait = WebDriverWait(driver, 60)
             rows = wait.until(lambda d: d.find_elements(By.CSS_SELECTOR, "#runs tbody tr.pick"))
-            n_runs = len(rooms.history(demo_room))
+            n_runs = len(history(demo_room))
             assert len(driver.find_elements(By.CSS_SELECTOR, "#runs tbody tr")) == n_runs
             assert "token" not in driver.current_url  # the key does not stay in the address bar
             design_row = next(r for r in rows if r.text.startswith("design"))
@@ -356,7 +358,7 @@ def test_save_waits_for_the_room_lock(client, demo_room):
 
     holder = subprocess.Popen(
         [sys.executable, "-c",
-         "import sys, time; from roomcorr import room as r; "
+         "import sys, time; from roomcorr import rooms as r; "
          f"room = r.open_room({str(demo_room.root)!r});\n"
          "with r.room_lock(room, 'test holder'):\n print('held', flush=True); time.sleep(60)"],
         stdout=subprocess.PIPE, text=True,
@@ -396,8 +398,8 @@ def test_compare_gives_what_roomcorr_compare_prints(client, demo_room):
     r = client.get(f"/api/compare/{first.name}/{second.name}", headers=_auth())
     assert r.status_code == 200, r.text
     view = r.json()
-    expect = rooms.compare_measurements(first, second, room=demo_room, with_curves=True)
-    assert view["text"] == rooms.format_comparison(expect)
+    expect = compare_measurements(first, second, room=demo_room, with_curves=True)
+    assert view["text"] == format_comparison(expect)
     for ch_view, ch in zip(view["channels"], expect["channels"], strict=True):
         after = ch["curves"]["after_db"]
         np.testing.assert_allclose(ch_view["curves"]["after_db"], after, atol=1e-3)

@@ -442,27 +442,6 @@ def _row(
     }
 
 
-def fir_response_db(fir: np.ndarray, fs: int, freq_hz: np.ndarray) -> np.ndarray:
-    """Magnitude response of FIR filters at ``freq_hz`` (above ``fs/2``: held), dB.
-
-    Parameters
-    ----------
-    fir : ndarray, shape (..., n_taps)
-    fs : int
-    freq_hz : ndarray, shape (n_freqs,)
-
-    Returns
-    -------
-    ndarray, shape (..., n_freqs)
-    """
-    from roomcorr.design.fir import fir_response_db as _fir_db
-
-    f = np.minimum(np.asarray(freq_hz, dtype=float), fs / 2.0)
-    h = np.atleast_2d(np.asarray(fir, dtype=float))
-    out = np.maximum(np.stack([_fir_db(row, fs, f) for row in h]), -300.0)
-    return out.reshape(np.shape(fir)[:-1] + (f.size,))
-
-
 def corrected_deviation_db(
     freq_hz: np.ndarray,
     response_db: np.ndarray,

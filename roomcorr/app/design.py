@@ -18,14 +18,14 @@ from typing import Any
 
 import numpy as np
 
-from roomcorr import room as rooms
+from roomcorr import rooms
 from roomcorr.app.explore import run_folder
-from roomcorr.atomic import atomic_write_text
 from roomcorr.audio_io import read_ir_set
+from roomcorr.deliver.atomic import atomic_write_text
+from roomcorr.deliver.export import check_out_dir, input_digests, write_design
 from roomcorr.design.safety import PEAK_BAND
 from roomcorr.design.target import target_from_table
 from roomcorr.errors import SettingsError
-from roomcorr.export import check_out_dir, input_digests, write_design
 from roomcorr.grid import log_grid
 from roomcorr.pipeline import (
     Analysis,
@@ -158,6 +158,69 @@ def design_in_room(
             paths, run_dir, settings, False, extra=source, force=force, on_start=on_start
         )
     return run_dir, result, entries
+
+
+def design_command(
+    ir_paths: list[str],
+    settings_for: Callable[[Settings | None], Settings],
+    out: str | None = None,
+    room_dir: str | None = None,
+    replace: bool = False,
+    force: bool = False,
+    on_start: Callable[[], None] | None = None,
+    on_source: Callable[[Path], None] | None = None,
+) -> tuple[Path, DesignResult, list[dict[str, Any]]]:
+    """What ``roomcorr design`` does: design into ``out``, or into a new run of a room.
+
+    With ``out`` the design goes into that folder (inside a room or not) and
+    ``ir_paths`` must be given; otherwise it goes into a new design run of the
+    room ``room_dir`` (default: the room folder holding the working folder).
+
+    Parameters
+    ----------
+    ir_paths : list of str
+        Impulse-response files or folders; in a room, empty means its latest measurement.
+    settings_for : callable
+        Turns the room's settings (None outside a room) into the settings of this
+        design (the command line applies its options here).
+    out, room_dir : str, optional
+        Output folder; room folder.
+    replace, force, on_start
+        As for :func:`design_from_files`.
+    on_source : callable, optional
+        Called with the measurement run used (relative to the room folder) when
+        none was named.
+
+    Returns
+    -------
+    (Path, DesignResult, list of dict)
+        The folder written, the design and the manifest's file entries.
+    """
+    room = rooms.open_room(room_dir) if room_dir else None
+    if room is None and not out:
+        room = rooms.find_room()
+    if out:  # a plain output folder, room or not
+        if not ir_paths:
+            raise SettingsError("design: name the impulse-response files or folders to use")
+        settings = settings_for(rooms.load_room_settings(room) if room else None)
+        result, entries = design_from_files(
+            ir_paths, Path(out), settings, replace, force=force, on_start=on_start
+        )
+        return Path(out), result, entries
+    if room is None:
+        raise SettingsError(
+            "design: give --out DIR, or run it inside a room folder (see roomcorr init)"
+        )
+    settings = settings_for(rooms.load_room_settings(room))
+    root = room.root
+    return design_in_room(
+        room,
+        settings,
+        ir_paths=ir_paths or None,
+        force=force,
+        on_start=on_start,
+        on_source=None if on_source is None else lambda meas: on_source(meas.relative_to(root)),
+    )
 
 
 # --------------------------------------------------------------------------- live preview

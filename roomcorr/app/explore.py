@@ -12,12 +12,15 @@ from typing import Any
 
 import numpy as np
 
-from roomcorr import room as rooms
+from roomcorr import rooms
+from roomcorr.app.compare import compare_measurements
+from roomcorr.app.history import history
 from roomcorr.audio_io import read_ir_set
+from roomcorr.deliver.export import load_design_curves, read_manifest
 from roomcorr.errors import InputFileError
-from roomcorr.export import load_design_curves, read_manifest
 from roomcorr.grid import log_grid
 from roomcorr.pipeline import analyse_positions, default_channel_names
+from roomcorr.report.compare import format_comparison
 
 #: Plot curves are thinned to this many points per octave (the design grid has 96).
 PLOT_POINTS_PER_OCTAVE = 48
@@ -64,10 +67,10 @@ def room_overview(room: rooms.Room) -> dict[str, Any]:
     Returns
     -------
     dict
-        ``name``, ``root``, ``runs`` (:func:`roomcorr.room.history` entries
+        ``name``, ``root``, ``runs`` (:func:`roomcorr.app.history.history` entries
         with paths made relative to the room folder).
     """
-    runs = rooms.history(room)
+    runs = history(room)
     for r in runs:
         r["path"] = Path(r["path"]).relative_to(room.root).as_posix()
     return {"name": rooms.room_name(room), "root": str(room.root), "runs": runs}
@@ -201,15 +204,15 @@ def compare_view(room: rooms.Room, before: str, after: str) -> dict[str, Any]:
     Returns
     -------
     dict
-        The result of :func:`roomcorr.room.compare_measurements` (with the
+        The result of :func:`roomcorr.app.compare.compare_measurements` (with the
         response curves of both, per channel) and ``text``: the lines
         ``roomcorr compare`` prints.
     """
     a = run_folder(room, "measurement", before)
     b = run_folder(room, "measurement", after)
-    res = rooms.compare_measurements(a, b, room=room, with_curves=True)
+    res = compare_measurements(a, b, room=room, with_curves=True)
     out = _plain(res)
-    out["text"] = rooms.format_comparison(res)
+    out["text"] = format_comparison(res)
     return out
 
 

@@ -15,7 +15,7 @@ txt         ``fir/<rate>/<name>.txt``       one coefficient per line (plain text
 
 The text file holds the 32-bit float coefficients (the same as the WAV) with
 9 significant digits, enough to give each value back exactly. All files go through
-:mod:`roomcorr.atomic`.
+:mod:`roomcorr.deliver.atomic`.
 """
 
 from __future__ import annotations
@@ -25,8 +25,8 @@ from pathlib import Path
 
 import numpy as np
 
-from roomcorr.atomic import atomic_write_bytes, atomic_write_text
 from roomcorr.audio_io import write_wav
+from roomcorr.deliver.atomic import atomic_write_bytes, atomic_write_text
 
 #: Name of the multichannel file in each rate folder.
 MULTI_NAME = "all"

@@ -1,6 +1,6 @@
 """The several-loudspeaker part of a design folder: extra formats, routes, trims.
 
-Called from :func:`roomcorr.export.write_design` after the per-channel WAVs;
+Called from :func:`roomcorr.deliver.export.write_design` after the per-channel WAVs;
 adds files (extra formats) and manifest fields (``routes``, ``outputs``,
 ``system``).
 """

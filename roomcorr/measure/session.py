@@ -22,7 +22,7 @@ from typing import Any
 
 import numpy as np
 
-from roomcorr.atomic import atomic_path, atomic_write_text
+from roomcorr.deliver.atomic import atomic_path, atomic_write_text
 from roomcorr.errors import InputFileError, OutputError, SettingsError
 from roomcorr.measure import deconvolve as dc
 from roomcorr.measure import levels as lv
@@ -30,7 +30,7 @@ from roomcorr.measure import quality as q
 from roomcorr.measure import timing as tm
 from roomcorr.measure.settings import LEVEL_CAP_DBFS, MeasureSettings
 from roomcorr.measure.sweep import Sweep, synchronized_sweep
-from roomcorr.room import refuse_finished_run
+from roomcorr.rooms import refuse_finished_run
 
 RECORD_NAME = "measurement.json"
 PLAYBACK_NAME = "playback.wav"  # the exact signal played per loudspeaker (in raw/)

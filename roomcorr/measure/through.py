@@ -31,8 +31,8 @@ CHECK_SMOOTHING_OCT = 1.0 / 6.0
 def load_through(design_dir: str | Path, fs: int, n_outputs: int) -> dict:
     """The design's filters at ``fs``: ``{"dir", "firs" (n_channels, n_taps), "pre_gain_db",
     "irs" (n_positions, n_channels, n), "fs_in"}``; errors name the folder and what to do."""
+    from roomcorr.deliver.export import load_design_curves
     from roomcorr.errors import OutputError
-    from roomcorr.export import load_design_curves
 
     d = Path(design_dir)
     try:

@@ -1,7 +1,7 @@
 """One self-contained HTML page (plus PNG files) about a design or a measurement session.
 
 :func:`build_report` turns the curves of a design (layout of
-:func:`roomcorr.export.load_design_curves`) into sections with figures and
+:func:`roomcorr.deliver.export.load_design_curves`) into sections with figures and
 tables; :func:`render_html` makes the page (figures embedded as base64 PNG,
 inline styles, no network access); :func:`write_report` does the file work
 for ``roomcorr report DIR``: it reads DIR, writes ``DIR/report/*.png`` and
@@ -319,7 +319,7 @@ def _iir_column(x: _Channel, ctx: _Context) -> Column | None:
         f"worst-case gain {figs.get('worst_case_gain_db', float('nan')):.2f} dB, fit error "
         f"{figs.get('fit_rms_error_db', float('nan')):.2f} dB rms."
     )
-    from roomcorr.export_iir import pre_gain_note
+    from roomcorr.deliver.export_iir import pre_gain_note
 
     col.paragraphs.append(pre_gain_note(iir_pre, ctx.pre_gain))
     notes = [str(n) for n in doc.get("notes") or []]
@@ -341,7 +341,7 @@ def _iir_column(x: _Channel, ctx: _Context) -> Column | None:
 
 
 def _channel_sentences(block: list[str]) -> str:
-    """One channel's lines of :func:`roomcorr.room.format_comparison` as plain sentences.
+    """One channel's lines of :func:`roomcorr.report.compare.format_comparison` as plain sentences.
 
     Lines indented by two spaces are items; deeper lines continue the item above
     (band cells, peak and dip lines). Items are joined with "; ".
@@ -369,19 +369,19 @@ def comparison_section(res: dict[str, Any]) -> Section:
     Parameters
     ----------
     res : dict
-        :func:`roomcorr.room.compare_measurements` result with ``with_curves=True``
+        :func:`roomcorr.app.compare.compare_measurements` result with ``with_curves=True``
         (``before`` and ``after`` are shown as given).
 
     Returns
     -------
     Section
         Id ``compare``; one figure (key ``compare``, from
-        :func:`roomcorr.room.comparison_png`); table rows ``channel, arrival
+        :func:`roomcorr.report.compare.comparison_png`); table rows ``channel, arrival
         change (ms), distance change (m), level change (dB), what changed``, the
         last column holding that channel's sentences of
-        :func:`roomcorr.room.format_comparison`.
+        :func:`roomcorr.report.compare.format_comparison`.
     """
-    from roomcorr.room import comparison_png, format_comparison
+    from roomcorr.report.compare import comparison_png, format_comparison
 
     lines = format_comparison(res)
     blocks: list[list[str]] = [[]]
@@ -792,7 +792,7 @@ def build_report(
     Parameters
     ----------
     curves : dict
-        Layout of :func:`roomcorr.export.load_design_curves`. A measurement
+        Layout of :func:`roomcorr.deliver.export.load_design_curves`. A measurement
         session without a design gives ``channels`` with only ``name``,
         ``index``, ``measured_db``, ``average_db`` and ``firs`` empty; the
         design sections are then left out.
@@ -807,7 +807,7 @@ def build_report(
     dpi : int
         Resolution of the PNGs.
     comparison : dict, optional
-        :func:`roomcorr.room.compare_measurements` result (``with_curves=True``)
+        :func:`roomcorr.app.compare.compare_measurements` result (``with_curves=True``)
         against an earlier measurement; adds the comparison section after the
         overview. Left out when None.
     through : dict, optional
@@ -1097,7 +1097,7 @@ def _session_curves(folder: Path) -> dict[str, Any]:
 
 
 def _complete(run_dir: Path) -> bool:
-    from roomcorr.room import COMPLETE_MARKER
+    from roomcorr.rooms import COMPLETE_MARKER
 
     try:
         data = json.loads((run_dir / COMPLETE_MARKER).read_text(encoding="utf-8"))
@@ -1113,7 +1113,7 @@ def _source_measurement(d: Path, room: Any) -> tuple[Any, Any]:
     a measurement folder) or, for a design outside a room, the list of IR files
     in its manifest.
     """
-    from roomcorr import room as rooms
+    from roomcorr import rooms
 
     if not ((d / "manifest.json").is_file() and (d / "design.npz").is_file()):
         return room, d
@@ -1149,7 +1149,7 @@ def _source_measurement(d: Path, room: Any) -> tuple[Any, Any]:
 
 def _earlier_measurement(room: Any, after: Any) -> Path | None:
     """The newest complete measurement run of ``room`` older than run folder ``after``."""
-    from roomcorr import room as rooms
+    from roomcorr import rooms
 
     if room is None or not isinstance(after, Path):
         return None
@@ -1195,7 +1195,7 @@ def report_comparison(
     Returns
     -------
     dict or None
-        :func:`roomcorr.room.compare_measurements` result with curves, with
+        :func:`roomcorr.app.compare.compare_measurements` result with curves, with
         ``before`` and ``after`` shortened to paths inside the room. None
         without an earlier measurement (or when the automatic comparison is not
         possible, e.g. a different number of loudspeakers).
@@ -1205,7 +1205,8 @@ def report_comparison(
     InputFileError
         Only when ``compare_with`` is given and cannot be used.
     """
-    from roomcorr import room as rooms
+    from roomcorr import rooms
+    from roomcorr.app.compare import compare_measurements
     from roomcorr.errors import InputFileError, RoomcorrError
 
     d = Path(folder).resolve()
@@ -1215,7 +1216,7 @@ def report_comparison(
         if before is None:
             return None
         try:
-            res = rooms.compare_measurements(before, after, room=room, with_curves=True)
+            res = compare_measurements(before, after, room=room, with_curves=True)
         except RoomcorrError:
             return None
     else:
@@ -1225,7 +1226,7 @@ def report_comparison(
                 "report a measurement folder, or a design that names its measurement"
             )
         before = rooms.resolve_run(room or rooms.find_room(), compare_with)
-        res = rooms.compare_measurements(before, after, room=room, with_curves=True)
+        res = compare_measurements(before, after, room=room, with_curves=True)
     res["before"] = _label(before, room)
     res["after"] = _label(after, room)
     return res
@@ -1234,8 +1235,8 @@ def report_comparison(
 def _ours(d: Path) -> bool:
     """Whether folder ``d`` was written by roomcorr (a design, a measurement or a room run),
     so its report may go into it; someone else's folder of WAVs is never written to."""
+    from roomcorr.deliver.export import read_manifest
     from roomcorr.errors import OutputError
-    from roomcorr.export import read_manifest
 
     if (d / "complete.json").is_file():
         return True
@@ -1265,9 +1266,9 @@ def report_destination(folder: str | Path, out_dir: str | Path | None = None) ->
         For a destination that is a link, a file, a finished room run (other
         than the reported run itself), or a folder holding other files.
     """
+    from roomcorr.deliver.export import check_folder_target
     from roomcorr.errors import OutputError
-    from roomcorr.export import check_folder_target
-    from roomcorr.room import refuse_finished_run
+    from roomcorr.rooms import refuse_finished_run
 
     d = Path(folder)
     if out_dir is None:
@@ -1324,7 +1325,7 @@ def write_report(
     an interrupted or failed report leaves the earlier one whole and nothing
     half-written; a new destination folder appears only when it is complete.
     """
-    from roomcorr import room as rooms
+    from roomcorr import rooms
     from roomcorr.errors import InputFileError
 
     d = Path(folder)
@@ -1336,7 +1337,7 @@ def write_report(
     settings = None
     through = None
     if is_design:
-        from roomcorr.export import load_design_curves, read_manifest
+        from roomcorr.deliver.export import load_design_curves, read_manifest
 
         curves = load_design_curves(d)
         manifest = read_manifest(d)
@@ -1368,7 +1369,12 @@ def write_report(
 
 
 def _list_report_in_manifest(d: Path, written: list[str]) -> None:
-    from roomcorr.export import add_manifest_entries, read_manifest, sha256_of, write_manifest
+    from roomcorr.deliver.export import (
+        add_manifest_entries,
+        read_manifest,
+        sha256_of,
+        write_manifest,
+    )
 
     manifest = read_manifest(d)
     known = {e.get("path") for e in manifest.get("files", [])}
@@ -1394,7 +1400,7 @@ def _write_report_files(dest: Path, report: Report, list_in_manifest: bool) -> l
     nothing: the folder is built beside ``dest`` and swapped in when complete."""
     import shutil
 
-    from roomcorr.atomic import (
+    from roomcorr.deliver.atomic import (
         atomic_write_bytes,
         atomic_write_text,
         disk_error_text,

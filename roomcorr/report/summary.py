@@ -1,7 +1,7 @@
 """Plain-language sentences about a design: what was corrected, what was left alone and why.
 
 Pure functions on the curves of a design (the mapping returned by
-:func:`roomcorr.export.load_design_curves`, or :func:`curves_from_result` for a
+:func:`roomcorr.deliver.export.load_design_curves`, or :func:`curves_from_result` for a
 :class:`roomcorr.pipeline.DesignResult` in memory). The report prints them at
 the top of the page and the command line can print the same sentences.
 """
@@ -31,7 +31,7 @@ def fmt_hz(f: float) -> str:
 
 def curves_from_result(result: Any) -> dict[str, Any]:
     """The curves of a :class:`~roomcorr.pipeline.DesignResult` in the layout of
-    :func:`roomcorr.export.load_design_curves` (so the report treats both alike)."""
+    :func:`roomcorr.deliver.export.load_design_curves` (so the report treats both alike)."""
     channels = []
     for c in result.channels:
         channels.append(
@@ -307,7 +307,7 @@ def summary_sentences(curves: dict[str, Any], max_boost_db: float | None = None)
     Parameters
     ----------
     curves : dict
-        Layout of :func:`roomcorr.export.load_design_curves`.
+        Layout of :func:`roomcorr.deliver.export.load_design_curves`.
     max_boost_db : float, optional
         The boost cap in force (from the design settings).
 

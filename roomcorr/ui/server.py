@@ -39,7 +39,7 @@ from starlette.routing import Route, WebSocketRoute
 from starlette.websockets import WebSocket, WebSocketDisconnect
 
 from roomcorr import app as service
-from roomcorr import room as rooms
+from roomcorr import rooms
 from roomcorr.app.design import DesignPreview
 from roomcorr.errors import RoomcorrError
 from roomcorr.settings import find_preset, preset_names, read_toml
@@ -167,7 +167,7 @@ def create_app(room: rooms.Room, token: str, port: int) -> ASGIApp:
 
     Parameters
     ----------
-    room : roomcorr.room.Room
+    room : roomcorr.rooms.Room
     token : str
     port : int
         Port the server is bound to.

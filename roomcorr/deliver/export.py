@@ -6,7 +6,7 @@ Layout of a design output folder::
     DIR/design.npz              the curves (for reports and comparisons)
     DIR/fir/48000/left.wav      one 32-bit float WAV per channel and sample rate
 
-Every file goes through :mod:`roomcorr.atomic`. All filters are computed
+Every file goes through :mod:`roomcorr.deliver.atomic`. All filters are computed
 before the first file is written, and the folder is built as a whole in a
 temporary sibling and swapped in when complete: an interruption (kill,
 Ctrl-C, full disk) leaves the earlier folder whole and nothing half-written.
@@ -18,7 +18,6 @@ anything outside is refused as damaged.
 from __future__ import annotations
 
 import contextlib
-import hashlib
 import json
 import math
 import shutil
@@ -28,7 +27,8 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from roomcorr.atomic import (
+from roomcorr.audio_io import write_wav
+from roomcorr.deliver.atomic import (
     TMP_PREFIX,
     PathEscapeError,
     atomic_write_text,
@@ -37,16 +37,16 @@ from roomcorr.atomic import (
     contained,
     disk_error_text,
     holds_working_folder,
+    sha256_of,
     staged_folder,
 )
-from roomcorr.audio_io import write_wav
 from roomcorr.deliver.system import manifest_fields, system_curves, write_extra_formats
 from roomcorr.design.area import area_arrays_of, area_fields_of
 from roomcorr.design.mixedphase import from_arrays as mixed_phase_from_arrays
 from roomcorr.design.mixedphase import latency_record
 from roomcorr.design.mixedphase import to_arrays as mixed_phase_arrays
 from roomcorr.errors import OutputError
-from roomcorr.room import refuse_finished_run
+from roomcorr.rooms import refuse_finished_run
 from roomcorr.settings import settings_to_dict
 
 if TYPE_CHECKING:
@@ -55,15 +55,6 @@ if TYPE_CHECKING:
 MANIFEST = "manifest.json"
 CURVES = "design.npz"
 FORMAT_VERSION = 1
-
-
-def sha256_of(path: Path) -> str:
-    """SHA-256 hex digest of a file."""
-    h = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for chunk in iter(lambda: fh.read(1 << 20), b""):
-            h.update(chunk)
-    return h.hexdigest()
 
 
 def _manifest_problem(doc: Any, out: Path) -> str | None:
@@ -256,7 +247,7 @@ def check_out_dir(out: Path, replace: bool) -> None:
     """Refuse an output folder that must not be written (see :func:`write_design`).
 
     First tidies what an interrupted earlier run left beside ``out``
-    (:func:`roomcorr.atomic.clean_stale`), so the checks see the folder as it is.
+    (:func:`roomcorr.deliver.atomic.clean_stale`), so the checks see the folder as it is.
     """
     check_folder_target(out, f"--out {out}")
     if holds_working_folder(out):
@@ -393,7 +384,7 @@ def write_design(
     """Write the FIR filters, curves and manifest of a design (and its biquads).
 
     The whole design is built in a temporary sibling folder and swapped in
-    when complete (:func:`roomcorr.atomic.staged_folder`): an interruption at
+    when complete (:func:`roomcorr.deliver.atomic.staged_folder`): an interruption at
     any moment leaves either the earlier folder whole or the new one whole.
 
     Parameters
@@ -408,7 +399,7 @@ def write_design(
         More top-level manifest fields (e.g. which measurement was used).
     iir : IirDesign, optional
         Biquad sets to write beside the FIR filters
-        (:func:`roomcorr.export_iir.write_iir`).
+        (:func:`roomcorr.deliver.export_iir.write_iir`).
 
     Returns
     -------
@@ -421,7 +412,7 @@ def write_design(
         with staged_folder(out) as stage:
             entries = _write_design_files(result, stage, extra)
             if iir is not None:
-                from roomcorr.export_iir import write_iir
+                from roomcorr.deliver.export_iir import write_iir
 
                 entries = entries + write_iir(iir, stage, fir=result)
     except OSError as exc:

@@ -18,6 +18,7 @@ from __future__ import annotations
 
 import contextlib
 import errno
+import hashlib
 import os
 import re
 import secrets
@@ -348,3 +349,12 @@ def _link_tree(src: Path, dst: Path) -> None:
                 os.link(p, q)
             except OSError:
                 shutil.copy2(p, q)
+
+
+def sha256_of(path: Path) -> str:
+    """SHA-256 hex digest of a file."""
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for chunk in iter(lambda: fh.read(1 << 20), b""):
+            h.update(chunk)
+    return h.hexdigest()

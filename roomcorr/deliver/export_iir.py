@@ -17,8 +17,8 @@ section (``b0 = 10 ** (pre_gain_db / 20)`` rounded down to float32, all else 0);
 the cascade is complete and safe. Coefficient values are float32-exact and
 written with full float64 precision, so devices running either precision use
 exactly the values that were checked. Each file gets a manifest entry of kind
-``"iir"`` (via :func:`roomcorr.export.add_manifest_entries`). Every file goes
-through :mod:`roomcorr.atomic`.
+``"iir"`` (via :func:`roomcorr.deliver.export.add_manifest_entries`). Every file goes
+through :mod:`roomcorr.deliver.atomic`.
 """
 
 from __future__ import annotations
@@ -31,7 +31,7 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from roomcorr.atomic import atomic_write_text
+from roomcorr.deliver.atomic import atomic_write_text
 from roomcorr.design import biquad as bq
 from roomcorr.design.iir_fit import IirDesign, IirStats
 from roomcorr.errors import OutputError
@@ -337,7 +337,7 @@ def write_iir(
     design : IirDesign
     out_dir : path-like
         Design output folder (must exist; normally written by
-        :func:`roomcorr.export.write_design` first).
+        :func:`roomcorr.deliver.export.write_design` first).
     update_manifest : bool
         Append entries to ``manifest.json`` (needs the manifest to exist).
     fir : DesignResult, optional
@@ -359,7 +359,7 @@ def write_iir(
         p.parent.mkdir(parents=True, exist_ok=True)
         atomic_write_text(p, text)
     if update_manifest:
-        from roomcorr import export
+        from roomcorr.deliver import export
 
         export.add_manifest_entries(out, entries)
     return entries
