@@ -9,7 +9,12 @@ roomcorr and for a naive regularised inversion of the centre seat
 (pyfar.dsp.regularized_spectrum_inversion, then pyfar.dsp.minimum_phase).
 Definitions in ``roomcorr/evaluation/metrics.py``.
 
-Run: ``python benchmarks/bench_quality.py [ROOM ...] [--no-naive]``.
+With ``--perturbed`` the rooms are the seeded perturbed copies of
+:func:`roomcorr.evaluation.simulate.perturbed_scenarios` (two per room: other
+dimensions, absorption, loudspeaker corners and listening position), which
+the design was never tuned on.
+
+Run: ``python benchmarks/bench_quality.py [ROOM ...] [--no-naive] [--perturbed]``.
 """
 
 from __future__ import annotations
@@ -19,7 +24,12 @@ import sys
 import numpy as np
 
 from roomcorr.evaluation.score import RoomScore, naive_inversion_firs, score_filters, score_roomcorr
-from roomcorr.evaluation.simulate import evaluation_room, scenario_names
+from roomcorr.evaluation.simulate import (
+    evaluation_room,
+    perturbed_scenarios,
+    scenario_names,
+    simulate_room,
+)
 
 
 def _db0(x: float) -> str:
@@ -79,10 +89,16 @@ def _table(title: str, scores: list[RoomScore]) -> None:
 
 
 def main(argv: list[str]) -> None:
-    names = [a for a in argv if not a.startswith("--")] or scenario_names()
+    names = [a for a in argv if not a.startswith("--")]
+    if "--perturbed" in argv:
+        rooms = [s for s in perturbed_scenarios() if not names or s["name"] in names]
+        make = simulate_room
+    else:
+        rooms, make = names or scenario_names(), evaluation_room
     ours, naive = [], []
-    for name in names:
-        room = evaluation_room(name)
+    for which in rooms:
+        room = make(which)
+        name = room.name
         s = score_roomcorr(room)
         ours.append(s)
         bands = ", ".join(f"{lo:.0f}-{hi:.0f} Hz" for lo, hi in s.info["band_hz"])

@@ -267,8 +267,10 @@ def analyse(
     freq = log_grid()
     cal = resolve_calibration(freq, d.calibration)
     measured, arrival = analyse_positions(irs, fs, freq, cal)
-    # Broad balance from the steady state, detail from the window (analysis/balance.py).
-    measured = steady_balance_set(irs, fs, freq, measured, arrival)
+    # Broad balance from the steady state, detail from the window (analysis/balance.py);
+    # the modal range's detail from the steady state too, except with a subwoofer,
+    # whose integration with the mains is planned on the windowed bass (design/align.py).
+    measured = steady_balance_set(irs, fs, freq, measured, arrival, modal_detail=not d.subwoofer)
     return Analysis(freq, fs, measured, arrival, weights, names)
 
 

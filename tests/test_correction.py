@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import numpy as np
+import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
@@ -10,7 +11,8 @@ from roomcorr.analysis.smoothing import smooth_log_grid
 from roomcorr.design.correction import DIP_REFUSE_DB, align_target, correction_curve
 from roomcorr.design.fir import default_n_taps, peak_gain_db, synthesize_fir
 from roomcorr.design.safety import apply_safety, common_pre_gain_db
-from roomcorr.design.target import auto_band, band_fade, target_from_table
+from roomcorr.design.target import auto_band, band_fade, target_from_points, target_from_table
+from roomcorr.errors import SettingsError
 from roomcorr.grid import log_grid
 
 F = log_grid()
@@ -74,6 +76,46 @@ def test_tilt_target_slope():
     t = target_from_table(F, {"tilt_db_per_octave": -0.7, "tilt_pivot_hz": 1000}, "t")
     assert np.isclose(t[np.argmin(abs(F - 1000))], 0.0, atol=0.01)
     assert np.isclose(t[np.argmin(abs(F - 2000))], -0.7, atol=0.01)
+
+
+@pytest.mark.parametrize(
+    "table",
+    [
+        {"tilt_db_per_octave": float("nan")},  # NaN passes a bare abs(x) > 3 test
+        {"bass_shelf_db": float("inf")},
+        {"tilt_db_per_octave": 3.5},
+        {"bass_shelf_hz": 0.0},
+        {"tilt_pivot_hz": "1000"},
+        {"points": [[float("nan"), 1.0]]},
+        {"points": [[1000.0, float("nan")]]},
+        {"points": [[5.0, 1.0]]},  # below the design grid (10 Hz)
+        {"points": [[30000.0, 1.0]]},  # above it (24 kHz)
+        {"points": [[1000.0, 25.0]]},  # beyond the point gain limit
+        {"points": [[1000.0, 1.0], [1000.0, 2.0]]},  # the same frequency twice
+        {"points": [[1000.0, True]]},
+        {"points": [[1000.0]]},
+        {"points": "1000 1"},
+        {"points": [[100.0 + k, 0.0] for k in range(65)]},
+    ],
+)
+def test_target_table_values_are_checked(table):
+    with pytest.raises(SettingsError):
+        target_from_table(F, table, "t")
+
+
+def test_target_points_alone_are_the_curve_files_interpolation():
+    # A flat table with points is exactly the target of a frequency/dB text file
+    # (interp_log, ends held): the app's dragged points and a curve file agree bit for bit.
+    pts = [[2000.0, -1.5], [60.0, 3.0], [500.0, 0.5]]
+    table = target_from_table(
+        F, {"tilt_db_per_octave": 0.0, "bass_shelf_db": 0.0, "points": pts}, "t"
+    )
+    arr = np.array(sorted(pts))
+    assert np.array_equal(table, target_from_points(F, arr[:, 0], arr[:, 1]))
+    # linear in log frequency between points (the definition), held beyond the ends
+    mid = np.argmin(abs(F - np.sqrt(60.0 * 500.0)))
+    assert table[mid] == pytest.approx(1.75, abs=0.02)
+    assert np.all(table[F <= 60.0] == 3.0) and np.all(table[F >= 2000.0] == -1.5)
 
 
 def test_auto_band_finds_rolloff():

@@ -128,6 +128,33 @@ def test_band_filter_edges_minus_3_db():
     assert db[2] == pytest.approx(-3.01, abs=0.05)
 
 
+@pytest.mark.parametrize("fc", [63.0, 1000.0, 8000.0])
+def test_third_octave_band_edges_minus_3_db(fc):
+    # IEC 61260-1: third-octave edges at fc * G ** (+-1/6); Butterworth -3.01 dB there (scipy)
+    sos = decay.band_sos(fc, FS, fraction=3)
+    g = 10 ** (3 / 10)
+    f = np.array([fc, fc * g ** (-1 / 6), fc * g ** (1 / 6)])
+    _, h = sosfreqz(sos, worN=f, fs=FS)
+    db = 20 * np.log10(np.abs(h))
+    assert db[0] == pytest.approx(0.0, abs=0.1)
+    assert db[1:] == pytest.approx([-3.01, -3.01], abs=0.05)
+
+
+def test_third_octave_bands_follow_iec_61260():
+    bands = decay.band_decay(_ir_for_bands(), FS, fraction=3)
+    # nominal third-octave labels 63 Hz to 8 kHz (IEC 61260-1 Annex E)
+    assert [b.label for b in bands][:4] == ["63", "80", "100", "125"]
+    assert len(bands) == 22 and bands[-1].label == "8k"
+    with pytest.raises(ValueError):
+        decay.band_decay(_ir_for_bands(), FS, fraction=2)
+
+
+def _ir_for_bands() -> np.ndarray:
+    rng = np.random.default_rng(5)
+    t = np.arange(FS // 2) / FS
+    return rng.standard_normal(t.size) * 10 ** (-3 * t / 0.4)
+
+
 def test_octave_band_t30_recovered():
     h = _decaying_noise(T60_ROOM, seed=15, noise_db=-60.0)
     bands = decay.octave_band_decay(h, FS)
@@ -171,3 +198,14 @@ def test_decay_map_finds_the_long_ringing_mode():
 def test_all_zero_response_is_rejected():
     with pytest.raises(ValueError):
         decay.schroeder_decay(np.zeros(1000), FS)
+
+
+def test_band_width_and_filter_limit():
+    # IEC 61260-1 (base 10): octave bandwidth 0.7046 f_m, third-octave 0.2308 f_m (computed
+    # from the band edges G ** (+-1/2b)); a band is filter-limited where B T < 16
+    # (Jacobsen 1987, from memory).
+    assert decay.band_width_hz(1000.0, 1) == pytest.approx(704.6, abs=0.1)
+    assert decay.band_width_hz(1000.0, 3) == pytest.approx(230.8, abs=0.1)
+    assert decay.filter_limited(63.0, 3, 0.3)  # B T = 4.4
+    assert not decay.filter_limited(1000.0, 1, 0.3)  # B T = 211
+    assert not decay.filter_limited(63.0, 3, float("nan"))

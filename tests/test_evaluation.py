@@ -14,7 +14,14 @@ from roomcorr.evaluation.metrics import (
     ripple_db,
     steady_state_db,
 )
-from roomcorr.evaluation.simulate import evaluation_room, load_scenarios, scenario_names
+from roomcorr.evaluation.simulate import (
+    PERTURB_CORNER_HZ,
+    PERTURB_DIMS,
+    evaluation_room,
+    load_scenarios,
+    perturbed_scenarios,
+    scenario_names,
+)
 from roomcorr.grid import log_grid
 
 F = log_grid()
@@ -131,3 +138,22 @@ def test_prediction_is_not_optimistic(study_score):
 def test_scenario_names_are_unique():
     names = scenario_names()
     assert len(set(names)) == len(names)
+
+
+def test_perturbed_rooms_are_seeded_and_inside_their_bounds():
+    a, b = perturbed_scenarios(), perturbed_scenarios()
+    assert a == b and len(a) == 2 * len(scenario_names())
+    assert len({s["name"] for s in a}) == len(a)
+    bases = {s["name"]: s for s in load_scenarios()}
+    for s in a:
+        base = bases[s["name"].rsplit("-", 1)[0]]
+        ratio = np.asarray(s["dims_m"]) / np.asarray(base["dims_m"])
+        assert np.all(ratio >= PERTURB_DIMS[0] - 1e-3) and np.all(ratio <= PERTURB_DIMS[1] + 1e-3)
+        corner = s["speakers"][0]["hp_hz"]
+        assert PERTURB_CORNER_HZ[0] - 0.01 <= corner <= PERTURB_CORNER_HZ[1] + 0.01
+        assert s["held_out"] == base["held_out"]  # still 25 to 45 cm from the centre
+        dims = np.asarray(s["dims_m"])
+        for spk in s["speakers"]:
+            assert np.all(np.asarray(spk["pos_m"]) > 0) and np.all(np.asarray(spk["pos_m"]) < dims)
+        seats = np.asarray(s["seat_m"]) + np.asarray(s["measured"] + s["held_out"])
+        assert np.all(seats > 0) and np.all(seats < dims)

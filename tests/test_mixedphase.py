@@ -158,6 +158,49 @@ def test_minimum_phase_response_needs_no_correction():
     assert spread_ms(part) < 0.05
 
 
+def cookbook_peaking(f0_hz: float, gain_db: float, q: float, fs: int = FS):
+    """Peaking EQ, Audio EQ Cookbook (Bristow-Johnson; W3C note 2021)."""
+    amp, w0 = 10 ** (gain_db / 40), 2 * np.pi * f0_hz / fs
+    alpha = np.sin(w0) / (2 * q)
+    b = np.array([1 + alpha * amp, -2 * np.cos(w0), 1 - alpha * amp])
+    a = np.array([1 + alpha / amp, -2 * np.cos(w0), 1 - alpha / amp])
+    return b / a[0], a / a[0]
+
+
+def test_filter_own_group_delay_flattened_above_300_hz():
+    """A minimum-phase correction (three Cookbook peaking sections: -6 dB at 700 Hz, +3 dB
+    at 2.5 kHz, -8 dB at 70 Hz) has a group delay of its own: ±0.24 ms from 300 Hz to
+    10 kHz by scipy.signal.group_delay of the sections. For a loudspeaker that is a pure
+    delay (no excess phase) the mixed-phase filter that also flattens its own group delay
+    makes the corrected direct sound's group delay flat within ±0.05 ms there; below
+    150 Hz it keeps the minimum-phase filter's group delay (within 0.03 ms of it, plus
+    the latency, by scipy.signal.group_delay of both FIRs); its magnitude, main peak and
+    pre-ringing obey the limits."""
+    unit = np.zeros(8192)
+    unit[0] = 1.0
+    sections = [cookbook_peaking(700, -6, 1.0), cookbook_peaking(2500, 3, 1.4)]
+    sections.append(cookbook_peaking(70, -8, 3.0))
+    h_min = unit
+    for b, a in sections:
+        h_min = signal.lfilter(b, a, h_min)
+    analytic = sum(signal.group_delay((b, a), w=CHECK_HZ, fs=FS)[1] for b, a in sections) / FS
+    assert spread_ms(analytic) > 0.2
+    assert spread_ms(group_delay_s(h_min, FS, CHECK_HZ)) > 0.2  # the window sees it too
+    h, peak = mixed_phase_fir(h_min, FS, GRID, np.zeros(GRID.size), 960, own_from_hz=300.0)
+    assert spread_ms(group_delay_s(h, FS, CHECK_HZ)) < 0.05
+    bass = np.geomspace(30, 120, 10)
+    gd_mix = signal.group_delay((h, [1.0]), w=bass, fs=FS)[1] / FS
+    gd_min = signal.group_delay((h_min, [1.0]), w=bass, fs=FS)[1] / FS
+    np.testing.assert_allclose(gd_mix - 960 / FS, gd_min, atol=0.03e-3)
+    assert peak == 960 == int(np.argmax(np.abs(h)))
+    assert pre_ringing_db(h, FS, peak) <= PRE_RING_LIMIT_DB
+    assert magnitude_error_db(h, h_min, FS) < 0.1
+    # without the flattening the filter's phase part is the inverse all-pass alone (here
+    # none): the minimum-phase filter's own group delay is left as it was
+    h0, _ = mixed_phase_fir(h_min, FS, GRID, np.zeros(GRID.size), 960)
+    assert spread_ms(group_delay_s(h0, FS, CHECK_HZ)) > 0.2
+
+
 def test_excess_spectrum_of_minimum_phase_is_flat():
     """Excess phase = measured phase minus the phase of the real-cepstrum minimum-phase
     counterpart (Oppenheim & Schafer ch. 5.6 and 13). An FIR whose zeros all lie inside
@@ -216,14 +259,16 @@ def test_phase_is_closed_at_nyquist():
     gain_db=st.lists(st.floats(-15.0, 4.0), min_size=6, max_size=6),
     fs=st.sampled_from([44100, 48000, 96000]),
     seed=st.integers(0, 2**16),
+    own_from_hz=st.sampled_from([None, 300.0]),
 )
 def test_pre_ringing_and_latency_limits_hold_for_any_input(
-    f0, q, n_pos, noise_db, latency_ms, gain_db, fs, seed
+    f0, q, n_pos, noise_db, latency_ms, gain_db, fs, seed, own_from_hz
 ):
-    """Whatever the measurement and the curve: the main peak sits at or before the
-    latency, nothing lies before time zero, energy more than 2 ms before the peak is
-    at most -40 dB of the total, the magnitude stays within 0.1 dB of the minimum-phase
-    filter, and the filter stays finite and as long as before."""
+    """Whatever the measurement and the curve, with or without flattening the filter's
+    own group delay: the main peak sits at or before the latency, nothing lies before
+    time zero, energy more than 2 ms before the peak is at most -40 dB of the total, the
+    magnitude stays within 0.1 dB of the minimum-phase filter, and the filter stays
+    finite and as long as before."""
     rng = np.random.default_rng(seed)
     b, a = cookbook_allpass(min(f0, 0.3 * fs), q, fs)
     base = signal.lfilter(b, a, minimum_phase_system(12000, fs))
@@ -238,12 +283,15 @@ def test_pre_ringing_and_latency_limits_hold_for_any_input(
     curve = np.interp(np.log2(GRID), np.linspace(np.log2(20), np.log2(20000), 6), gain_db)
     h_min = synthesize_fir(GRID, curve, fs, 4096 * fs // 48000)
     lat = int(round(latency_ms * fs / 1000))
-    h, peak, strength, err = within_tolerance(h_min, fs, GRID, est.excess_gd_s, lat, est.band_hz[1])
+    h, peak, strength, flat, err = within_tolerance(
+        h_min, fs, GRID, est.excess_gd_s, lat, est.band_hz[1], own_from_hz
+    )
     assert h.size == h_min.size + lat and np.all(np.isfinite(h))
     assert peak <= lat and peak == int(np.argmax(np.abs(h)))
     assert pre_ringing_db(h, fs, peak) <= PRE_RING_LIMIT_DB + 1e-6
     assert err <= 0.1 and err == pytest.approx(magnitude_error_db(h, h_min, fs))
-    assert 0.0 <= strength <= 1.0
+    assert 0.0 <= strength <= 1.0 and 0.0 <= flat <= 1.0
+    assert flat == 0.0 or (own_from_hz is not None and strength == 1.0)
 
 
 def test_settings_validate_phase_and_latency():
@@ -335,25 +383,50 @@ def test_latency_exact_at_every_rate(designs):
 
 
 def test_group_delay_figures_on_simulated_loudspeaker(scenario, designs):
-    """The loudspeaker's part of the direct sound's group delay (after removing the
-    filter's own minimum-phase group delay, which both designs share) is flat within
-    ±0.1 ms at the measured seats and ±0.2 ms at held-out seats, 300 Hz - 10 kHz,
-    where uncorrected it varies by at least ±0.3 ms."""
+    """The loudspeaker's excess phase: through a mixed-phase filter that undoes only it
+    (the filter's own minimum-phase group delay kept and taken out again), the
+    loudspeaker's part of the direct sound's group delay is flat within ±0.1 ms at the
+    measured seats and ±0.2 ms at held-out seats, 300 Hz - 10 kHz, where uncorrected it
+    varies by at least ±0.3 ms and minimum phase cannot touch it."""
     minimum, mixed = designs
     fs = scenario.fs
     h_min = minimum.firs[fs][0]
-    h_mix = mixed.firs[fs][0]
-    lat = mixed.mixed_phase.latency_samples[fs]
+    mp = mixed.mixed_phase
+    est, lat = mp.estimates[0], mp.latency_samples[fs]
+    h_exc = within_tolerance(
+        mp.min_phase_firs[fs][0], fs, GRID, est.excess_gd_s, lat, est.band_hz[1]
+    )[0]
     own = group_delay_s(np.concatenate([np.zeros(lat), h_min]), fs, CHECK_HZ)
     for direct, limit in ((scenario.direct_measured, 0.1), (scenario.direct_held_out, 0.2)):
         for d in direct:
             assert spread_ms(group_delay_s(d, fs, CHECK_HZ)) >= 0.3
-            residual = group_delay_s(np.convolve(d, h_mix), fs, CHECK_HZ) - own
+            residual = group_delay_s(np.convolve(d, h_exc), fs, CHECK_HZ) - own
             assert spread_ms(residual) <= limit
             unchanged = group_delay_s(np.convolve(d, h_min), fs, CHECK_HZ) - group_delay_s(
                 h_min, fs, CHECK_HZ
             )
             assert spread_ms(unchanged) >= 0.3  # minimum phase cannot touch it
+
+
+def test_total_group_delay_of_corrected_direct_sound(scenario, designs):
+    """The issue's figure, the group delay of the corrected direct sound itself (the
+    filter's own group delay included): from 1 to 10 kHz within ±0.1 ms at the measured
+    seats and ±0.2 ms at held-out seats; from 300 Hz to 10 kHz at most 0.6 times the
+    minimum-phase design's spread at every seat (measured in the benchmark: ±0.39 against
+    ±0.86 ms; the pre-ringing limit keeps the rest, see docs). Read by the independent
+    tests' group_delay_s."""
+    minimum, mixed = designs
+    fs = scenario.fs
+    h_min, h_mix = minimum.firs[fs][0], mixed.firs[fs][0]
+    assert all(s.flat_strength > 0 for s in mixed.mixed_phase.stats)
+    above_1k = CHECK_HZ >= 1000
+    for direct, limit in ((scenario.direct_measured, 0.1), (scenario.direct_held_out, 0.2)):
+        for d in direct:
+            via_mix = group_delay_s(np.convolve(d, h_mix), fs, CHECK_HZ)
+            via_min = group_delay_s(np.convolve(d, h_min), fs, CHECK_HZ)
+            assert spread_ms(via_mix[above_1k]) <= limit
+            assert spread_ms(via_min[above_1k]) >= 0.3  # minimum phase leaves it
+            assert spread_ms(via_mix) <= 0.6 * spread_ms(via_min)
 
 
 def test_cli_states_latency(tmp_path, scenario):

@@ -95,6 +95,21 @@ def test_filter_magnitude_matches_scipy_freqz_of_the_wav(client, demo_room):
     np.testing.assert_allclose(filt["magnitude_db"], 20 * np.log10(np.abs(resp)), atol=0.01)
 
 
+def test_filter_phase_and_group_delay_match_scipy(client, demo_room):
+    # Outside reference: scipy.signal.freqz (phase) and scipy.signal.group_delay of the WAV.
+    run_id = _design_id(demo_room)
+    filt = client.get(f"/api/design/{run_id}", headers=_auth()).json()["filters"]["48000"][1]
+    path = demo_room.designs_dir / run_id / "fir" / "48000" / f"{filt['channel']}.wav"
+    h, fs = sf.read(path, dtype="float64")
+    f = np.array(filt["freq_hz"])
+    _, resp = scipy.signal.freqz(h, worN=f, fs=fs)
+    diff = np.radians(filt["phase_deg"]) - np.angle(resp)
+    assert np.degrees(np.max(np.abs(np.angle(np.exp(1j * diff))))) < 0.5  # rounded to 0.1 degree
+    _, gd = scipy.signal.group_delay((h, [1.0]), w=f, fs=fs)
+    # read between FFT bins 0.2 Hz apart: 1 % where the delay changes fast (a notch)
+    np.testing.assert_allclose(filt["group_delay_ms"], gd / fs * 1000.0, rtol=0.01, atol=0.02)
+
+
 def test_files_list_and_download_with_matching_sha256(client, demo_room):
     import hashlib
 
@@ -195,7 +210,8 @@ def _browser_available() -> tuple[str, str] | None:
     return (exe, driver) if exe and driver else None
 
 
-def test_browser_shows_history_and_draws_a_design(demo_room, tmp_path):
+def _chrome(tmp_path: Path, height: int = 2200):
+    """Headless Debian Chromium through Selenium (skips, or fails on CI, without it)."""
     found = _browser_available()
     if found is None:
         if os.environ.get("CI") == "true":
@@ -204,9 +220,6 @@ def test_browser_shows_history_and_draws_a_design(demo_room, tmp_path):
     pytest.importorskip("selenium")
     from selenium import webdriver
     from selenium.webdriver.chrome.service import Service
-    from selenium.webdriver.common.by import By
-    from selenium.webdriver.support import expected_conditions as ec
-    from selenium.webdriver.support.ui import WebDriverWait
 
     opts = webdriver.ChromeOptions()
     opts.binary_location = found[0]
@@ -220,11 +233,51 @@ def test_browser_shows_history_and_draws_a_design(demo_room, tmp_path):
         "--disable-component-update",
         "--disable-sync",
         f"--user-data-dir={tmp_path / 'profile'}",
-        "--window-size=1300,2200",
+        f"--window-size=1300,{height}",
     ):
         opts.add_argument(flag)
     opts.set_capability("goog:loggingPrefs", {"browser": "ALL"})
-    driver = webdriver.Chrome(service=Service(found[1]), options=opts)
+    return webdriver.Chrome(service=Service(found[1]), options=opts)
+
+
+def _assert_not_blank(shot: Path) -> None:
+    """A screenshot with content: not one colour, a fair share of pixels off the background."""
+    from matplotlib.image import imread
+
+    img = imread(shot)[..., :3]
+    background = np.median(img.reshape(-1, 3), axis=0)
+    differs = np.any(np.abs(img - background) > 0.1, axis=-1)
+    assert differs.mean() > 0.03 and img.std() > 0.03, shot
+
+
+def _element_shot(driver, element, path: Path) -> None:
+    """A screenshot of one element: scrolled into view, the window's image cut to its box."""
+    from matplotlib.image import imread, imsave
+
+    driver.execute_script("arguments[0].scrollIntoView({block: 'start'});", element)
+    box = driver.execute_script(
+        "const r = arguments[0].getBoundingClientRect();"
+        "return [r.left, r.top, r.right, r.bottom, window.devicePixelRatio];",
+        element,
+    )
+    whole = path.with_name(path.stem + "-window.png")
+    driver.save_screenshot(str(whole))
+    img = imread(whole)
+    x0, y0, x1, y1 = (int(round(v * box[4])) for v in box[:4])
+    imsave(path, img[max(0, y0) : y1, max(0, x0) : x1])
+
+
+def _no_console_errors(driver) -> None:
+    severe = [e for e in driver.get_log("browser") if e["level"] == "SEVERE"]
+    assert not severe, severe
+
+
+def test_browser_shows_history_and_draws_a_design(demo_room, tmp_path):
+    driver = _chrome(tmp_path)
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.support import expected_conditions as ec
+    from selenium.webdriver.support.ui import WebDriverWait
+
     try:
         with background_server(demo_room, TOKEN) as base:
             driver.get(f"{base}/?token={TOKEN}")
@@ -236,6 +289,7 @@ def test_browser_shows_history_and_draws_a_design(demo_room, tmp_path):
             design_row = next(r for r in rows if r.text.startswith("design"))
             design_row.click()
             wait.until(lambda d: len(d.find_elements(By.CSS_SELECTOR, "#plots canvas")) >= 4)
+            wait.until(lambda d: d.execute_script("return document.body.dataset.exploreMs"))
             wait.until(ec.text_to_be_present_in_element((By.ID, "status"), "design"))
             shot = Path(os.environ.get("ROOMCORR_UI_SHOT", tmp_path / "explore.png"))
             driver.save_screenshot(str(shot))
@@ -263,16 +317,192 @@ def test_browser_shows_history_and_draws_a_design(demo_room, tmp_path):
             driver.find_element(By.CSS_SELECTOR, "nav button[data-tab=files]").click()
             links = driver.find_elements(By.CSS_SELECTOR, "#files tbody a")
             assert any(a.text.endswith(".wav") for a in links)
-            severe = [e for e in driver.get_log("browser") if e["level"] == "SEVERE"]
-            assert not severe, severe
+            _no_console_errors(driver)
     finally:
         driver.quit()
-    from matplotlib.image import imread
+    _assert_not_blank(shot)
 
-    img = imread(shot)[..., :3]
-    background = np.median(img.reshape(-1, 3), axis=0)
-    differs = np.any(np.abs(img - background) > 0.1, axis=-1)
-    assert differs.mean() > 0.03 and img.std() > 0.03  # not blank
+
+def _decay_cells(rows: dict, k: int) -> list[str]:
+    """Row k of the report's decay table (two decimals, * near the noise) from decay_view rows."""
+    out = []
+    for key in ("edt", "t20", "t30"):
+        v = rows[f"{key}_s"][k]
+        out.append("n/a" if v is None else f"{v:.2f}" + ("" if rows["valid"][key][k] else " *"))
+    return out
+
+
+def _decay_rows(driver) -> list[list[str]]:
+    """The cells of the page's decay table, read in one step (the table is redrawn on changes)."""
+    return driver.execute_script(
+        "return [...document.querySelectorAll('#decay-times table.decay tbody tr')]"
+        ".map(tr => [...tr.cells].map(td => td.textContent));"
+    )
+
+
+def test_browser_explore_shows_decay_times_and_ringing_maps(demo_room, tmp_path):
+    from selenium.webdriver.common.action_chains import ActionChains
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.support.ui import Select, WebDriverWait
+
+    from roomcorr.app import decay_view
+
+    run_id = _design_id(demo_room)
+    driver = _chrome(tmp_path, height=3400)
+    try:
+        with background_server(demo_room, TOKEN) as base:
+            driver.get(f"{base}/?token={TOKEN}")
+            wait = WebDriverWait(driver, 60)
+            rows = wait.until(lambda d: d.find_elements(By.CSS_SELECTOR, "#runs tbody tr.pick"))
+            next(r for r in rows if r.text.startswith("design") and run_id in r.text).click()
+            wait.until(lambda d: d.execute_script("return document.body.dataset.exploreMs"))
+            assert driver.find_elements(By.CSS_SELECTOR, "#decay-times canvas")
+            maps = driver.find_elements(By.CSS_SELECTOR, "#ringing canvas.heat-map")
+            assert len(maps) == 2  # as measured and corrected
+            # the table shows the application layer's numbers, * where the report puts one
+            view = decay_view(demo_room, "design", run_id)
+            combined = view["channels"][0]["combined"]
+            shown = _decay_rows(driver)
+            assert [r[0] for r in shown] == view["channels"][0]["bands"]["label"]
+            assert [r[1:4] for r in shown] == [_decay_cells(combined, k) for k in range(len(shown))]
+            shot = tmp_path / "decay.png"
+            _element_shot(driver, driver.find_element(By.ID, "decay-times"), shot)
+            _assert_not_blank(shot)
+            ring = tmp_path / "ringing.png"
+            _element_shot(driver, driver.find_element(By.ID, "ringing"), ring)
+            _assert_not_blank(ring)
+            # hovering a map reads its level back
+            ActionChains(driver).move_to_element(maps[0]).perform()
+            readout = driver.find_element(By.CSS_SELECTOR, "#ringing .readout")
+            wait.until(lambda d: " Hz, " in readout.text)
+            # third-octave bands for the second position: a new table of 22 bands
+            selects = driver.find_elements(By.CSS_SELECTOR, "#decay-controls select")
+            Select(selects[1]).select_by_value("3")
+            wait.until(lambda d: len(_decay_rows(d)) == 22)
+            selects = driver.find_elements(By.CSS_SELECTOR, "#decay-controls select")
+            Select(selects[2]).select_by_value("1")
+            third = decay_view(demo_room, "design", run_id, 3, 1)["channels"][0]["per_position"][1]
+            expect = [_decay_cells(third, k) for k in range(22)]
+            wait.until(lambda d: [r[1:4] for r in _decay_rows(d)] == expect)
+            # a measurement run: the same section, one map (nothing corrected yet)
+            driver.execute_script("delete document.body.dataset.exploreMs;")
+            driver.find_element(By.CSS_SELECTOR, "nav button[data-tab=room]").click()
+            rows = driver.find_elements(By.CSS_SELECTOR, "#runs tbody tr.pick")
+            next(r for r in rows if r.text.startswith("measurement")).click()
+            wait.until(lambda d: d.execute_script("return document.body.dataset.exploreMs"))
+            assert len(driver.find_elements(By.CSS_SELECTOR, "#ringing canvas.heat-map")) == 1
+            assert len(_decay_rows(driver)) == 8
+            _no_console_errors(driver)
+    finally:
+        driver.quit()
+
+
+def test_browser_drags_target_points_and_saves_what_the_cli_designs(demo_room, tmp_path):
+    # Points added by clicking the target line, one dragged up, one sideways, one removed
+    # by a double-click; the design saved then equals the CLI's from the same points
+    # written as a frequency/dB target file (byte for byte).
+    from selenium.webdriver.common.action_chains import ActionChains
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.support import expected_conditions as ec
+    from selenium.webdriver.support.ui import WebDriverWait
+
+    driver = _chrome(tmp_path, height=1800)
+
+    def state() -> dict:
+        return driver.execute_script("return window.roomcorrDesign()")
+
+    def table() -> list[list[float]]:
+        rows = driver.find_elements(By.CSS_SELECTOR, "#d-points tbody tr")
+        return [
+            [float(i.get_attribute("value")) for i in tr.find_elements(By.TAG_NAME, "input")]
+            for tr in rows
+        ]
+
+    try:
+        with background_server(demo_room, TOKEN) as base:
+            driver.get(f"{base}/?token={TOKEN}")
+            wait = WebDriverWait(driver, 60)
+            wait.until(lambda d: d.find_elements(By.CSS_SELECTOR, "#runs tbody tr.pick"))
+            driver.find_element(By.CSS_SELECTOR, "nav button[data-tab=design]").click()
+            wait.until(lambda d: state()["previews"] >= 1)
+            over = driver.find_element(By.CSS_SELECTOR, "#design-plots .target-plot .u-over")
+            w, h = over.rect["width"], over.rect["height"]
+
+            def at(x: float, y: float) -> tuple[int, int]:  # Selenium offsets from the centre
+                return int(round(x - w / 2)), int(round(y - h / 2))
+
+            def settled(n: int) -> None:
+                wait.until(lambda d: state()["previews"] > n)
+                wait.until(lambda d: not d.execute_script("return inFlight || queued"))
+
+            for f in (80.0, 400.0, 2000.0):
+                x, y = driver.execute_script(f"return window.roomcorrDesign().targetPixel({f})")
+                n = state()["previews"]
+                ActionChains(driver).move_to_element_with_offset(over, *at(x, y)).click().perform()
+                settled(n)
+            points = state()["points"]
+            assert len(points) == 3 and table() == points
+            for (f, g), want in zip(points, (80.0, 400.0, 2000.0), strict=True):
+                assert f == pytest.approx(want, rel=0.02) and abs(g) <= 1.0  # on the line
+            # drag the first point up by 48 pixels, in small steps
+            n, before = state()["previews"], state()["target"][0]
+            hx, hy = state()["handles"][0]
+            chain = ActionChains(driver).move_to_element_with_offset(over, *at(hx, hy))
+            chain = chain.click_and_hold()
+            for _ in range(8):
+                chain = chain.move_by_offset(0, -6)
+            chain.release().perform()
+            settled(n)
+            moved = state()
+            assert moved["points"][0][0] == points[0][0]
+            assert moved["points"][0][1] > points[0][1] + 3.0
+            assert table() == moved["points"]
+            assert moved["lastEdit"]["table"]["points"] == sorted(moved["points"])
+            changed = [abs(a - b) for a, b in zip(moved["target"][0], before, strict=True)
+                       if a is not None and b is not None]
+            assert max(changed) > 1.0  # the preview's target followed the point
+            # drag the second point sideways: higher frequency, same gain
+            n = state()["previews"]
+            hx, hy = state()["handles"][1]
+            chain = ActionChains(driver).move_to_element_with_offset(over, *at(hx, hy))
+            chain.click_and_hold().move_by_offset(15, 0).move_by_offset(15, 0).release().perform()
+            settled(n)
+            side = state()["points"][1]
+            assert side[0] > points[1][0] * 1.05 and side[1] == pytest.approx(points[1][1], abs=0.3)
+            # double-click the third point: removed from the plot and the list
+            n = state()["previews"]
+            hx, hy = state()["handles"][2]
+            chain = ActionChains(driver).move_to_element_with_offset(over, *at(hx, hy))
+            chain.double_click().perform()
+            settled(n)
+            kept = state()["points"]
+            assert len(kept) == 2 and table() == kept
+            # the list refuses what the target rules refuse, and keeps the last good value
+            f_input = driver.find_elements(By.CSS_SELECTOR, "#d-points tbody tr input")[0]
+            typed = "arguments[0].value = arguments[1];"
+            typed += "arguments[0].dispatchEvent(new Event('input'));"
+            driver.execute_script(typed, f_input, "30000")
+            wait.until(lambda d: "bad" in f_input.get_attribute("class"))
+            assert "frequency must be" in driver.find_element(By.ID, "status").text
+            assert state()["points"] == kept
+            driver.execute_script(typed, f_input, str(kept[0][0]))
+            wait.until(lambda d: "bad" not in f_input.get_attribute("class"))
+            name = driver.find_element(By.ID, "d-name")
+            name.clear()
+            name.send_keys("dragged")
+            n_designs = len(rooms.list_runs(demo_room, "design"))
+            driver.find_element(By.ID, "d-save").click()
+            wait.until(ec.text_to_be_present_in_element((By.ID, "status"), "saved as design"))
+            assert len(rooms.list_runs(demo_room, "design")) == n_designs + 1
+            _no_console_errors(driver)
+    finally:
+        driver.quit()
+    run_app = rooms.list_runs(demo_room, "design", include_incomplete=False)[-1].path
+    curve = tmp_path / "dragged.txt"
+    curve.write_text("".join(f"{f!r} {g!r}\n" for f, g in sorted(kept)))
+    cmd = ["design", "--room", str(demo_room.root), "--target", str(curve), "--max-boost", "4"]
+    assert cli.main(cmd) == 0
+    _assert_same_filters(run_app, demo_room)
 
 
 def test_a_damaged_run_is_reported_not_served(client, demo_room):
@@ -315,6 +545,16 @@ def test_preview_is_the_designs_own_curves(demo_room):
         assert ch_view["band_hz"] == pytest.approx(ch.band_hz, abs=0.1)
 
 
+def _assert_same_filters(run_app: Path, room: rooms.Room) -> None:
+    """The room's latest design (just made by the CLI) has the app's filter files, byte for byte."""
+    run_cli = rooms.list_runs(room, "design", include_incomplete=False)[-1].path
+    assert run_cli != run_app
+    wavs = sorted(p.relative_to(run_app) for p in run_app.rglob("*.wav"))
+    assert wavs and wavs == sorted(p.relative_to(run_cli) for p in run_cli.rglob("*.wav"))
+    for rel in wavs:
+        assert (run_app / rel).read_bytes() == (run_cli / rel).read_bytes(), rel
+
+
 def test_app_design_gives_the_cli_filters_byte_for_byte(demo_room):
     from roomcorr.app.design import DesignPreview
 
@@ -325,12 +565,7 @@ def test_app_design_gives_the_cli_filters_byte_for_byte(demo_room):
     assert target.is_file()
     args = ["design", "--room", str(demo_room.root), "--target", str(target), "--max-boost", "3.5"]
     assert cli.main(args) == 0
-    run_cli = rooms.list_runs(demo_room, "design", include_incomplete=False)[-1].path
-    assert run_cli != run_app
-    wavs = sorted(p.relative_to(run_app) for p in run_app.rglob("*.wav"))
-    assert wavs and wavs == sorted(p.relative_to(run_cli) for p in run_cli.rglob("*.wav"))
-    for rel in wavs:
-        assert (run_app / rel).read_bytes() == (run_cli / rel).read_bytes(), rel
+    _assert_same_filters(run_app, demo_room)
 
 
 def test_preview_and_save_refusals(client, demo_room):
@@ -407,3 +642,34 @@ def test_compare_gives_what_roomcorr_compare_prints(client, demo_room):
     for bad in ("..", ".hidden", "%2e%2e%2f%2e%2e%2fetc"):
         r = client.get(f"/api/compare/{bad}/{second.name}", headers=_auth())
         assert r.status_code in (403, 404), bad
+
+
+def test_decay_route_serves_the_application_layers_data(client, demo_room):
+    from roomcorr.app import decay_view
+
+    meas = rooms.latest_measurement(demo_room).name
+    r = client.get(f"/api/decay/measurement/{meas}?bands=3&position=1", headers=_auth())
+    assert r.status_code == 200, r.text
+    assert r.json() == decay_view(demo_room, "measurement", meas, 3, 1)
+    one = client.get(f"/api/decay/measurement/{meas}?channel=1", headers=_auth())
+    assert one.json() == decay_view(demo_room, "measurement", meas, channel=1)
+    for query in ("bands=2", "bands=-1", "position=9", "position=x", "bands=1e3", "channel=2"):
+        bad = client.get(f"/api/decay/measurement/{meas}?{query}", headers=_auth())
+        assert bad.status_code == 400 and bad.json()["error"], query
+    refused = (f"/api/decay/design/{meas}", f"/api/decay/x/{meas}", "/api/decay/measurement/..")
+    for path in refused:
+        assert client.get(path, headers=_auth()).status_code in (400, 404), path
+    assert client.get(f"/api/decay/measurement/{meas}").status_code == 403  # no token
+
+
+def test_preview_refuses_target_points_the_target_rules_refuse(client):
+    # The same checks as a target file on the command line (design.target.target_points).
+    hdr = {**_auth(), "content-type": "application/json"}
+    for points in (b"[[NaN, 1.0]]", b"[[1000, Infinity]]", b"[[5, 1]]", b"[[1000, 30]]",
+                   b"[[1000, 1], [1000, 2]]"):
+        body = b'{"target": null, "table": {"points": ' + points + b"}}"
+        bad = client.post("/api/preview", headers=hdr, content=body)
+        assert bad.status_code == 400 and "target point" in bad.json()["error"], points
+    good = client.post("/api/preview", headers=_auth(),
+                       json={"table": {"points": [[40.0, 3.0], [1000.0, -1.0]]}})
+    assert good.status_code == 200, good.text

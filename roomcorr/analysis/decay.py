@@ -40,6 +40,7 @@ References
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -56,6 +57,13 @@ RANGES_DB: dict[str, tuple[float, float]] = {
 NOISE_MARGIN_DB = 10.0
 
 _G = 10.0 ** (3.0 / 10.0)  # IEC 61260-1 octave ratio, base 10
+
+#: A band filter rings for a while of its own: where the product of its bandwidth and
+#: the decay time is below this, the band's decay is partly the filter's and unreliable
+#: (Jacobsen 1987, from memory; our analytic check, tests/test_explore.py: a pure
+#: exponential with T = 0.3 s is off by 30 % in the 63 Hz third-octave band, B T = 4.4,
+#: and within 1 % (T20, T30) and 5 % (EDT) wherever B T >= 16).
+MIN_BANDWIDTH_TIME = 16.0
 
 
 def octave_band_centres(f_lo_hz: float = 63.0, f_hi_hz: float = 8000.0) -> np.ndarray:
@@ -104,29 +112,14 @@ def nominal_label(centre_hz: float) -> str:
 
 
 def octave_band_sos(centre_hz: float, fs: float, order: int = 3) -> np.ndarray:
-    """Butterworth band-pass for one octave band, as second-order sections.
-
-    Parameters
-    ----------
-    centre_hz : float
-        Exact mid-band frequency.
-    fs : float
-        Sample rate in Hz.
-    order : int
-        Butterworth prototype order (the band-pass has twice this order).
+    """Butterworth band-pass for one octave band: :func:`band_sos` with ``fraction=1``.
 
     Returns
     -------
     sos : ndarray, shape (order, 6)
         Edges at ``centre_hz * G ** (+-1/2)`` (IEC 61260-1), -3 dB there.
     """
-    from scipy.signal import butter
-
-    lo = centre_hz * _G**-0.5
-    hi = centre_hz * _G**0.5
-    if hi >= 0.49 * fs:
-        raise ValueError(f"octave band {centre_hz:.0f} Hz does not fit below Nyquist at fs={fs}")
-    return butter(order, [lo, hi], btype="bandpass", fs=fs, output="sos")
+    return band_sos(centre_hz, fs, 1, order)
 
 
 @dataclass
@@ -339,14 +332,49 @@ def decay_parameters(curve: SchroederCurve) -> tuple[dict[str, float], dict[str,
     return values, valid
 
 
-def octave_band_decay(
+def band_sos(centre_hz: float, fs: float, fraction: int = 1, order: int = 3) -> np.ndarray:
+    """Butterworth band-pass for one 1/``fraction``-octave band, as second-order sections.
+
+    Parameters
+    ----------
+    centre_hz : float
+        Exact mid-band frequency.
+    fs : float
+        Sample rate in Hz.
+    fraction : int
+        Bandwidth designator b (1 octave, 3 third-octave).
+    order : int
+        Butterworth prototype order (the band-pass has twice this order).
+
+    Returns
+    -------
+    sos : ndarray, shape (order, 6)
+        Edges at ``centre_hz * G ** (+-1 / (2 b))`` (IEC 61260-1), -3 dB there.
+    """
+    return _band_sos(float(centre_hz), float(fs), int(fraction), int(order)).copy()  # cached
+
+
+@functools.lru_cache(maxsize=256)
+def _band_sos(centre_hz: float, fs: float, fraction: int, order: int) -> np.ndarray:
+    """:func:`band_sos`, designed once per band and rate (every position uses the same)."""
+    from scipy.signal import butter
+
+    lo = centre_hz * _G ** (-0.5 / fraction)
+    hi = centre_hz * _G ** (0.5 / fraction)
+    if hi >= 0.49 * fs:
+        raise ValueError(f"band {centre_hz:.0f} Hz does not fit below Nyquist at fs={fs}")
+    return butter(order, [lo, hi], btype="bandpass", fs=fs, output="sos")
+
+
+def band_decay(
     ir: np.ndarray,
     fs: float,
+    fraction: int = 1,
     f_lo_hz: float = 63.0,
     f_hi_hz: float = 8000.0,
     compensate: bool = True,
 ) -> list[BandDecay]:
-    """EDT, T20 and T30 per octave band of one impulse response.
+    """EDT, T20 and T30 per octave (``fraction=1``) or third-octave (``3``) band.
 
     Parameters
     ----------
@@ -354,6 +382,8 @@ def octave_band_decay(
         Room impulse response (direct sound anywhere near the start).
     fs : float
         Sample rate in Hz.
+    fraction : int
+        1 for octave bands, 3 for third-octave bands.
     f_lo_hz, f_hi_hz : float
         Nominal first and last band (bands that do not fit below Nyquist are skipped).
     compensate : bool
@@ -365,17 +395,26 @@ def octave_band_decay(
 
     References
     ----------
-    ISO 3382-1 (ranges); IEC 61260-1 (band centres and edges); Schroeder (1965);
-    Lundeby et al. (1995).
+    ISO 3382-1 (ranges; octave or one-third-octave bands); IEC 61260-1 (band
+    centres and edges); Schroeder (1965); Lundeby et al. (1995).
     """
     from scipy.signal import sosfilt
 
+    from roomcorr.analysis.bands import band_centres_hz
+
+    if fraction not in (1, 3):
+        raise ValueError(f"fraction must be 1 (octave) or 3 (third-octave), not {fraction!r}")
     ir = np.asarray(ir, dtype=float)
+    centres = (
+        octave_band_centres(f_lo_hz, f_hi_hz)
+        if fraction == 1
+        else band_centres_hz(3, f_lo_hz, f_hi_hz)
+    )
     out = []
-    for fc in octave_band_centres(f_lo_hz, f_hi_hz):
-        if fc * _G**0.5 >= 0.49 * fs:
+    for fc in centres:
+        if fc * _G ** (0.5 / fraction) >= 0.49 * fs:
             continue
-        band = sosfilt(octave_band_sos(fc, fs), ir)
+        band = sosfilt(band_sos(fc, fs, fraction), ir)
         curve = schroeder_decay(band, fs, compensate=compensate)
         values, valid = decay_parameters(curve)
         out.append(
@@ -387,6 +426,90 @@ def octave_band_decay(
                 t30_s=values["t30"],
                 valid=valid,
                 curve=curve,
+            )
+        )
+    return out
+
+
+def octave_band_decay(
+    ir: np.ndarray,
+    fs: float,
+    f_lo_hz: float = 63.0,
+    f_hi_hz: float = 8000.0,
+    compensate: bool = True,
+) -> list[BandDecay]:
+    """EDT, T20 and T30 per octave band of one impulse response.
+
+    :func:`band_decay` with ``fraction=1`` (the report's bands); parameters,
+    result and references as there.
+    """
+    return band_decay(ir, fs, 1, f_lo_hz, f_hi_hz, compensate)
+
+
+def band_width_hz(centre_hz: float | np.ndarray, fraction: int = 1) -> float | np.ndarray:
+    """Bandwidth of a 1/``fraction``-octave band: ``f_m * (G ** (1/2b) - G ** (-1/2b))``.
+
+    References
+    ----------
+    IEC 61260-1:2014, band edges (equations (4) and (5)).
+    """
+    half = _G ** (0.5 / fraction)
+    return np.asarray(centre_hz, dtype=float) * (half - 1.0 / half)
+
+
+def filter_limited(centre_hz: float, fraction: int, decay_s: float) -> bool:
+    """Whether a band's decay time is too short for its filter (bandwidth x time < 16).
+
+    Parameters
+    ----------
+    centre_hz : float
+        Mid-band frequency.
+    fraction : int
+        1 octave, 3 third-octave.
+    decay_s : float
+        A decay time of that band (NaN gives False: nothing to judge).
+
+    References
+    ----------
+    F. Jacobsen, "A note on acoustic decay measurements", J. Sound Vib. 115, 163-170,
+    1987 (B T > 16, from memory); see :data:`MIN_BANDWIDTH_TIME`.
+    """
+    if not np.isfinite(decay_s):
+        return False
+    return bool(float(band_width_hz(centre_hz, fraction)) * decay_s < MIN_BANDWIDTH_TIME)
+
+
+def mean_band_decay(per_position: list[list[BandDecay]]) -> list[BandDecay]:
+    """Band values averaged over positions (the report's and the app's combined view).
+
+    Parameters
+    ----------
+    per_position : list of list of BandDecay
+        :func:`band_decay` of each position, same bands.
+
+    Returns
+    -------
+    list of BandDecay
+        EDT, T20 and T30 the mean over positions (NaN ignored); ``valid`` only
+        where every position's value is valid; the curve of the first position.
+    """
+
+    def mean(values: list[float]) -> float:  # NaN when no position has a value, silently
+        finite = [v for v in values if np.isfinite(v)]
+        return float(np.mean(finite)) if finite else float("nan")
+
+    out = []
+    for k, first in enumerate(per_position[0]):
+        rows = [pos[k] for pos in per_position if k < len(pos)]
+        out.append(
+            BandDecay(
+                centre_hz=first.centre_hz,
+                label=first.label,
+                edt_s=mean([r.edt_s for r in rows]),
+                t20_s=mean([r.t20_s for r in rows]),
+                t30_s=mean([r.t30_s for r in rows]),
+                valid={key: all(r.valid[key] for r in rows) for key in first.valid},
+                curve=first.curve,
             )
         )
     return out

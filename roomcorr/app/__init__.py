@@ -7,6 +7,7 @@ JSON-ready data (dicts, lists, floats, strings).
 
 from roomcorr.app.explore import (
     compare_view,
+    decay_view,
     design_view,
     measurement_view,
     room_overview,
@@ -16,6 +17,7 @@ from roomcorr.app.explore import (
 
 __all__ = [
     "compare_view",
+    "decay_view",
     "design_view",
     "measurement_view",
     "room_overview",

@@ -28,9 +28,10 @@ PLOT_POINTS_PER_OCTAVE = 48
 
 def _finite_list(values: np.ndarray, ndigits: int = 3) -> list[float | None]:
     """Floats rounded for transport; NaN and infinities become ``None`` (JSON null)."""
-    out: list[float | None] = []
-    for v in np.asarray(values, dtype=float).ravel():
-        out.append(round(float(v), ndigits) if math.isfinite(v) else None)
+    a = np.round(np.asarray(values, dtype=float).ravel(), ndigits)
+    out: list[float | None] = a.tolist()
+    if not np.all(np.isfinite(a)):
+        out = [v if v is not None and math.isfinite(v) else None for v in out]
     return out
 
 
@@ -87,10 +88,11 @@ def design_view(room: rooms.Room, run_id: str) -> dict[str, Any]:
         ``spread_db``, ``target_db``, ``correction_db``, ``boost_withheld_db``
         and ``predicted_db`` (average plus correction, per position as well);
         ``filters``: per sample rate and channel the FIR's magnitude (dB, with
-        the pre-gain), phase (degrees, unwrapped) and group delay (ms);
+        the pre-gain), phase (degrees, wrapped) and group delay (ms), from the
+        report's :func:`roomcorr.report.html.filter_response`;
         ``manifest``: the design's manifest.
     """
-    from roomcorr.design.fir import fir_response_db
+    from roomcorr.report.html import filter_response
 
     folder = run_folder(room, "design", run_id)
     rooms.verified(room, folder, use=[folder / "design.npz", folder / "manifest.json"])
@@ -123,21 +125,18 @@ def design_view(room: rooms.Room, run_id: str) -> dict[str, Any]:
     filters: dict[str, list[dict[str, Any]]] = {}
     f_plot = f[f <= 20000.0]
     for fs, firs in sorted(curves["firs"].items()):
+        band = f_plot[f_plot < fs / 2]
         per_rate = []
         for c, h in enumerate(np.asarray(firs)):
-            band = f_plot[f_plot < fs / 2]
-            n_fft = 1 << int(np.ceil(np.log2(max(h.size * 2, 65536))))
-            spec = np.fft.rfft(h, n_fft)
-            bins = np.fft.rfftfreq(n_fft, 1.0 / fs)
-            phase = np.unwrap(np.angle(spec))
-            gd = -np.gradient(phase, 2 * np.pi * bins) * 1000.0
+            # the report's filter figures: gain, wrapped phase and group delay of the taps
+            gain, phase, gd = filter_response(h, int(fs), band)
             per_rate.append(
                 {
                     "channel": curves["channels"][c]["name"],
                     "freq_hz": _finite_list(band, 2),
-                    "magnitude_db": _finite_list(fir_response_db(h, fs, band)),
-                    "phase_deg": _finite_list(np.degrees(np.interp(band, bins, phase)), 1),
-                    "group_delay_ms": _finite_list(np.interp(band, bins, gd)),
+                    "magnitude_db": _finite_list(gain),
+                    "phase_deg": _finite_list(phase, 1),
+                    "group_delay_ms": _finite_list(gd),
                 }
             )
         filters[str(fs)] = per_rate
@@ -178,6 +177,197 @@ def measurement_view(room: rooms.Room, run_id: str) -> dict[str, Any]:
             }
             for c in range(n_ch)
         ],
+    }
+
+
+#: Schroeder curves are sent with at most this many points per band (the plot is a few
+#: hundred pixels wide).
+DECAY_CURVE_POINTS = 600
+#: Decay curves are cut where they fall below this level (the report's figure does the same).
+DECAY_CURVE_FLOOR_DB = -70.0
+
+
+def _band_rows(bands: list[Any], fraction: int) -> dict[str, Any]:
+    """EDT/T20/T30 of a list of :class:`~roomcorr.analysis.decay.BandDecay` as columns.
+
+    ``valid`` as the report marks values (range within the noise margin);
+    ``filter_limited`` where the band filter is too narrow for the decay time
+    (:func:`roomcorr.analysis.decay.filter_limited`).
+    """
+    from roomcorr.analysis.decay import filter_limited
+
+    return {
+        "filter_limited": {
+            k: [filter_limited(b.centre_hz, fraction, getattr(b, f"{k}_s")) for b in bands]
+            for k in ("edt", "t20", "t30")
+        },
+        "edt_s": _finite_list(np.array([b.edt_s for b in bands]), 4),
+        "t20_s": _finite_list(np.array([b.t20_s for b in bands]), 4),
+        "t30_s": _finite_list(np.array([b.t30_s for b in bands]), 4),
+        "valid": {k: [bool(b.valid[k]) for b in bands] for k in ("edt", "t20", "t30")},
+        "dynamic_range_db": _finite_list(np.array([b.dynamic_range_db for b in bands]), 1),
+    }
+
+
+def _decay_curve(curve: Any) -> dict[str, Any]:
+    """A Schroeder curve thinned for plotting (finite part above the floor)."""
+    sel = np.flatnonzero(np.isfinite(curve.edc_db) & (curve.edc_db > DECAY_CURVE_FLOOR_DB))
+    step = max(1, int(np.ceil(sel.size / DECAY_CURVE_POINTS)))
+    sel = sel[::step]
+    return {
+        "time_s": _finite_list(curve.time_s[sel], 4),
+        "edc_db": _finite_list(curve.edc_db[sel], 2),
+        "truncation_s": round(float(curve.truncation_s), 4),
+    }
+
+
+def _decay_map(m: Any, modes: list[tuple[float, float]] | None = None) -> dict[str, Any]:
+    out: dict[str, Any] = {
+        "time_s": _finite_list(m.time_s, 4),
+        "freq_hz": _finite_list(m.freq_hz, 3),
+        "level_db": [_finite_list(row, 1) for row in np.asarray(m.level_db)],
+    }
+    if modes is not None:
+        out["modes"] = [
+            {"freq_hz": round(float(f), 2), "decay_s": _finite_list(np.array([d]), 3)[0]}
+            for f, d in modes
+        ]
+    return out
+
+
+def decay_view(
+    room: rooms.Room,
+    kind: str,
+    run_id: str,
+    fraction: int = 1,
+    position: int = 0,
+    channel: int | None = None,
+) -> dict[str, Any]:
+    """Decay times per band and the low-frequency ringing map of a run, ready to plot.
+
+    The same functions as the report's decay and ringing sections
+    (:func:`roomcorr.analysis.decay.band_decay`, :func:`mean_band_decay`,
+    :func:`low_frequency_decay_map`, :func:`ringing_modes`); for a design run
+    the corrected map is made from the measured responses convolved with the
+    design's filter at the measurement's rate
+    (:func:`roomcorr.report.html.corrected_responses`), as the report does.
+
+    Parameters
+    ----------
+    room : Room
+    kind : {"design", "measurement"}
+    run_id : str
+    fraction : {1, 3}
+        Octave or third-octave bands.
+    position : int
+        Position (0-based) whose Schroeder curves and ringing map are returned
+        (the report shows the first).
+    channel : int, optional
+        Analyse only this channel (0-based); the others are listed by name only.
+        Default: every channel.
+
+    Returns
+    -------
+    dict
+        ``run_id``, ``kind``, ``fs``, ``fraction``, ``positions`` (names),
+        ``position``, ``ranges_db`` (ISO 3382-1 evaluation ranges),
+        ``noise_margin_db``; ``channels``: per channel ``name``, ``bands``
+        (``label``, ``centre_hz``), ``combined`` (mean over positions: ``edt_s``,
+        ``t20_s``, ``t30_s`` with ``valid`` flags per parameter; a value is not
+        valid when the range comes within ``noise_margin_db`` of the noise
+        floor; ``filter_limited`` where bandwidth x decay time is below
+        ``min_bandwidth_time``, so that the band filter's own ringing
+        lengthens it), ``per_position`` (the same per position, with
+        ``dynamic_range_db``), ``curves`` (Schroeder curves of ``position`` per
+        band: ``time_s``, ``edc_db``) and ``ringing``: ``measured`` and, for a
+        design made at the measurement's rate, ``corrected`` maps (``time_s``,
+        ``freq_hz``, ``level_db`` of shape (n_times, n_freqs), ``modes``).
+        A channel left out by ``channel``, or one too short or silent for a
+        decay analysis, has its ``name`` only.
+
+    Raises
+    ------
+    InputFileError
+        For an unknown run, a band fraction other than 1 or 3 or a position
+        the run does not have.
+    """
+    from roomcorr.analysis.decay import (
+        MIN_BANDWIDTH_TIME,
+        NOISE_MARGIN_DB,
+        RANGES_DB,
+        band_decay,
+        low_frequency_decay_map,
+        mean_band_decay,
+        ringing_modes,
+    )
+
+    if fraction not in (1, 3):
+        raise InputFileError(f"bands={fraction!r}: use 1 (octave) or 3 (third-octave)")
+    folder = run_folder(room, kind, run_id)
+    firs: np.ndarray | None = None
+    if kind == "design":
+        rooms.verified(room, folder, use=[folder / "design.npz", folder / "manifest.json"])
+        curves = load_design_curves(folder)
+        irs = np.asarray(curves["irs"], dtype=float)
+        fs = int(curves["fs_in"])
+        names = [str(ch["name"]) for ch in curves["channels"]]
+        measured = [str(m) for m in read_manifest(folder).get("measurements", [])]
+        positions = (
+            [Path(m).stem for m in measured]
+            if len(measured) == irs.shape[0]
+            else [f"position {p + 1}" for p in range(irs.shape[0])]
+        )
+        if fs in curves["firs"]:
+            firs = np.asarray(curves["firs"][fs], dtype=float)
+    else:
+        files = rooms.measurement_files(folder)
+        rooms.verified(room, folder, use=files)
+        irs, fs, _ = read_ir_set([str(p) for p in files])
+        names = default_channel_names(irs.shape[1])
+        positions = [p.stem for p in files]
+    if not (isinstance(position, int) and 0 <= position < irs.shape[0]):
+        raise InputFileError(f"position={position!r}: run {run_id} has {irs.shape[0]} positions")
+    if channel is not None and not (isinstance(channel, int) and 0 <= channel < len(names)):
+        raise InputFileError(f"channel={channel!r}: run {run_id} has {len(names)} channels")
+    channels = []
+    for c, name in enumerate(names):
+        if channel is not None and c != channel:
+            channels.append({"name": name})
+            continue
+        try:
+            per_pos = [band_decay(irs[p, c], fs, fraction) for p in range(irs.shape[0])]
+        except ValueError:  # too short or silent: no decay analysis, as in the report
+            per_pos = []
+        item: dict[str, Any] = {"name": name}
+        if per_pos and per_pos[0]:
+            combined = mean_band_decay(per_pos)
+            item["bands"] = {
+                "label": [b.label for b in combined],
+                "centre_hz": _finite_list(np.array([b.centre_hz for b in combined]), 2),
+            }
+            item["combined"] = _band_rows(combined, fraction)
+            item["per_position"] = [_band_rows(bands, fraction) for bands in per_pos]
+            item["curves"] = [_decay_curve(b.curve) for b in per_pos[position]]
+            measured_map = low_frequency_decay_map(irs[position, c], fs)
+            ringing = {"measured": _decay_map(measured_map, ringing_modes(measured_map))}
+            if firs is not None and c < firs.shape[0]:
+                from roomcorr.report.html import corrected_responses
+
+                corrected = corrected_responses(irs[position : position + 1, c], firs[c])
+                ringing["corrected"] = _decay_map(low_frequency_decay_map(corrected[0], fs))
+            item["ringing"] = ringing
+        channels.append(item)
+    return {
+        "run_id": folder.name,
+        "kind": kind,
+        "fs": fs,
+        "fraction": fraction,
+        "positions": positions,
+        "position": position,
+        "ranges_db": {k: list(v) for k, v in RANGES_DB.items()},
+        "noise_margin_db": NOISE_MARGIN_DB,
+        "min_bandwidth_time": MIN_BANDWIDTH_TIME,
+        "channels": channels,
     }
 
 
@@ -249,6 +439,7 @@ def run_file(room: rooms.Room, kind: str, run_id: str, rel_path: str) -> Path:
 
 __all__ = [
     "compare_view",
+    "decay_view",
     "design_view",
     "measurement_view",
     "room_overview",

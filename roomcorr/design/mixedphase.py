@@ -19,13 +19,37 @@ lost. A real filter's phase at Nyquist is a multiple of π; the estimate's
 integral is not, and the missing part is added above the estimated range
 (:func:`closing_group_delay`).
 
+The magnitude correction itself, being minimum phase, has a group delay of
+its own, which adds to the direct sound's (room-driven cuts a sixth of an
+octave wide and narrower: through the minimum-phase design the direct sound's
+group delay varies by ±0.6 to ±0.86 ms from 300 Hz to 10 kHz in the
+benchmark's simulated rooms). With ``own_from_hz`` (the design uses
+``OWN_FLAT_FROM_HZ`` = 300 Hz) that is taken out too: the group delay
+removed becomes ``τ_e + w(f)·(τ_own(f) − τ_own,ref)``, where ``τ_own`` is the minimum-phase
+filter's group delay read the way the direct sound's is judged
+(:func:`windowed_group_delay_s`: 4 ms before to 16 ms after the main peak,
+``|H|²``-weighted over 1/12 octave), ``w`` rises from 0 an octave below
+``own_from_hz`` to 1 at it (sin² on log frequency: the blend is smooth in
+group delay), and the bass below keeps its minimum phase (the room owns it).
+The filter times the loudspeaker's all-pass part then aims at the phase
+``−ω·const`` there (the loudspeaker's own minimum-phase part, such as its
+bass roll-off, stays: about 0.09 ms at 300 Hz for a 35 Hz high-pass). A
+window mixes neighbouring frequencies, so the realised filter's windowed group
+delay is read once more and the remainder removed (``OWN_REFINE_ROUNDS``).
+Flattening narrow features needs energy before the main peak (a group-delay
+feature Δf wide spreads over about 1/Δf on both sides); the pre-ringing limit
+below bounds it, and if the magnitude then strays beyond tolerance the
+flattening is weakened first (:func:`within_tolerance`), the loudspeaker's
+excess phase last.
+
 Realising it: the product is transformed back on an FFT long enough that
 nothing wraps into the filter, the main peak is placed at (or before) ``D``,
 anything more than ``D`` before it is dropped (it would lie before time
 zero), and the far pre-ringing is tapered: energy more than
 ``PRE_RING_S`` before the main peak is held at or below
 ``PRE_RING_LIMIT_DB`` relative to the filter's total energy (a rising
-half-Hann over that region, then a scale-down if still needed; pre-echo is
+half-Hann over the first ``PRE_RING_FADE_FRACTION`` of that region from time
+zero, then a scale-down if still needed; pre-echo is
 masked only briefly, see REFERENCES.md). A few rounds of restoring
 ``|H_min|`` and re-applying these time limits keep the magnitude within
 ``MAGNITUDE_TOLERANCE_DB`` of ``|H_min|``; the limits are applied last, so
@@ -45,12 +69,14 @@ References
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
 
 from roomcorr.design.excess_phase import (
+    REFERENCE_BAND_HZ,
     ExcessPhaseEstimate,
     estimate_excess_phase,
     excess_gd_on_bins,
@@ -63,12 +89,24 @@ PRE_RING_S = 0.002
 PRE_RING_LIMIT_DB = -40.0
 #: The scale-down aims this far inside the limit, dB.
 PRE_RING_MARGIN_DB = 0.5
+#: The far region fades in (rising half-Hann) over this fraction of its length, from time zero.
+PRE_RING_FADE_FRACTION = 0.25
 #: Rounds of magnitude restoration.
 RESTORE_ROUNDS = 3
 #: Magnitude of the mixed filter against the minimum-phase one (20 Hz - 20 kHz), dB.
 MAGNITUDE_TOLERANCE_DB = 0.1
 #: Fractions of the excess group delay tried, in turn, to keep the magnitude in tolerance.
 CORRECTION_STRENGTHS = (1.0, 0.75, 0.5, 0.25, 0.0)
+#: The filter's own group delay is flattened fully from this frequency up, Hz ...
+OWN_FLAT_FROM_HZ = 300.0
+#: ... fading in (sin² on a log-frequency scale) over this many octaves below it.
+OWN_FLAT_FADE_OCT = 1.0
+#: Rounds of correcting the flattening by what the realised filter still shows.
+OWN_REFINE_ROUNDS = 1
+#: The direct sound's group delay is judged on this window around its main peak: s before, s after.
+GD_WINDOW_S = (0.004, 0.016)
+#: ... and smoothed (power-weighted) over this width, octaves.
+GD_WIDTH_OCT = 1.0 / 12.0
 LATENCY_CAUTION = (
     "Sound through mixed-phase filters is late by the latency: delay the picture of a video "
     "by the same amount (lip-sync), and keep minimum-phase filters for live monitoring, "
@@ -87,6 +125,7 @@ class MixedPhaseStats:
     pre_ringing_db: float
     magnitude_error_db: float
     strength: float = 1.0
+    flat_strength: float = 0.0
 
 
 @dataclass
@@ -221,8 +260,9 @@ def _limit_time(y: np.ndarray, fs: int, n_taps: int, latency: int) -> tuple[np.n
         p = latency
     edge = p - int(round(PRE_RING_S * fs))
     if edge > 0:
-        k = np.arange(edge)
-        h[:edge] *= 0.5 * (1 - np.cos(np.pi * (k + 1) / (edge + 1)))
+        n_fade = max(1, int(round(PRE_RING_FADE_FRACTION * edge)))
+        k = np.arange(n_fade)
+        h[:n_fade] *= 0.5 * (1 - np.cos(np.pi * (k + 1) / (n_fade + 1)))
         total = float(np.sum(h**2))
         far = float(np.sum(h[:edge] ** 2))
         limit = 10 ** ((PRE_RING_LIMIT_DB - PRE_RING_MARGIN_DB) / 10)
@@ -234,19 +274,91 @@ def _limit_time(y: np.ndarray, fs: int, n_taps: int, latency: int) -> tuple[np.n
     return h, p
 
 
+def windowed_group_delay_s(h: np.ndarray, fs: int, freq_hz: np.ndarray) -> np.ndarray:
+    """Group delay of the first milliseconds of ``h`` around its main peak, s.
+
+    The definition of the direct sound's group delay used throughout (the
+    benchmark's figure reads it the same way): ``GD_WINDOW_S[0]`` before to
+    ``GD_WINDOW_S[1]`` after the largest sample, a half-Hann fade over the last
+    quarter of the part after the peak; ``-dφ/dω`` from the phase step between
+    neighbouring bins of an FFT of at least 2**16 points, ``|H|²``-weighted
+    over ``GD_WIDTH_OCT`` (:func:`smoothed_group_delay_s`), relative to the
+    main peak. A window of 20 ms holds six periods of 300 Hz.
+
+    Parameters
+    ----------
+    h : ndarray, shape (n_taps,)
+    fs : int
+    freq_hz : ndarray, shape (n_freqs,)
+
+    Returns
+    -------
+    ndarray, shape (n_freqs,)
+    """
+    h = np.asarray(h, dtype=float)
+    p = int(np.argmax(np.abs(h)))
+    a = max(0, p - int(round(GD_WINDOW_S[0] * fs)))
+    b = min(h.size, p + int(round(GD_WINDOW_S[1] * fs)))
+    seg = h[a:b].copy()
+    n_tail = max(1, (b - p) // 4)
+    k = np.arange(1, n_tail + 1)
+    seg[seg.size - n_tail :] *= 0.5 * (1 + np.cos(np.pi * k / (n_tail + 1)))
+    gd = smoothed_group_delay_s(seg, fs, freq_hz, GD_WIDTH_OCT, min_fft=1 << 16)
+    return gd - (p - a) / fs
+
+
+def own_flat_weight(freq_hz: np.ndarray, from_hz: float) -> np.ndarray:
+    """How much of the filter's own group delay is flattened: 0 below ``from_hz``
+    ``/ 2**OWN_FLAT_FADE_OCT``, 1 from ``from_hz`` up, sin² on log frequency between."""
+    x = np.log2(np.maximum(np.asarray(freq_hz, dtype=float), 1e-9) / from_hz)
+    x = np.clip(1.0 + x / OWN_FLAT_FADE_OCT, 0.0, 1.0)
+    return np.sin(0.5 * np.pi * x) ** 2
+
+
+def own_group_delay_to_remove(
+    h_min: np.ndarray, fs: int, freq_hz: np.ndarray, from_hz: float, top_hz: float
+) -> np.ndarray:
+    """The minimum-phase filter's own group delay, to be removed above ``from_hz``.
+
+    Its windowed group delay (:func:`windowed_group_delay_s`) relative to its
+    median from ``REFERENCE_BAND_HZ[0]`` to ``top_hz``, times
+    :func:`own_flat_weight`, held at its ``top_hz`` value above.
+
+    Returns
+    -------
+    ndarray, shape (n_freqs,)
+        Group delay (s) on ``freq_hz``.
+    """
+    freq_hz = np.asarray(freq_hz, dtype=float)
+    top = min(float(top_hz), 0.45 * fs)
+    gd = windowed_group_delay_s(h_min, fs, np.minimum(freq_hz, top))
+    ref_band = (freq_hz >= REFERENCE_BAND_HZ[0]) & (freq_hz <= top)
+    ref = float(np.median(gd[ref_band])) if np.any(ref_band) else 0.0
+    return own_flat_weight(freq_hz, from_hz) * (gd - ref)
+
+
 def magnitude_error_db(h: np.ndarray, h_ref: np.ndarray, fs: int) -> float:
     """Largest ``|20 log10 |H| / |H_ref||`` from 20 Hz to 20 kHz (or Nyquist), dB.
 
     Evaluated on the bins of an FFT four times the longer filter's length.
     """
-    n = max(len(h), len(h_ref))
-    n_fft = 1 << int(np.ceil(np.log2(4 * n)))
+    return _magnitude_check(h_ref, max(len(h), len(h_ref)), fs)(h)
+
+
+def _magnitude_check(h_ref: np.ndarray, n: int, fs: int) -> Callable[[np.ndarray], float]:
+    """:func:`magnitude_error_db` against ``h_ref`` for filters of at most ``n`` taps,
+    with ``|H_ref|`` computed once."""
+    n_fft = 1 << int(np.ceil(np.log2(4 * max(n, len(h_ref)))))
     f = np.fft.rfftfreq(n_fft, 1.0 / fs)
     sel = (f >= 20.0) & (f <= min(20000.0, 0.5 * fs))
-    a = np.abs(np.fft.rfft(h, n_fft))[sel]
-    b = np.abs(np.fft.rfft(h_ref, n_fft))[sel]
     tiny = np.finfo(float).tiny
-    return float(np.max(np.abs(20 * np.log10(np.maximum(a, tiny) / np.maximum(b, tiny)))))
+    b = np.maximum(np.abs(np.fft.rfft(h_ref, n_fft))[sel], tiny)
+
+    def error_db(h: np.ndarray) -> float:
+        a = np.maximum(np.abs(np.fft.rfft(h, n_fft))[sel], tiny)
+        return float(np.max(np.abs(20 * np.log10(a / b))))
+
+    return error_db
 
 
 def mixed_phase_fir(
@@ -257,6 +369,8 @@ def mixed_phase_fir(
     latency: int,
     rounds: int = RESTORE_ROUNDS,
     top_hz: float = 16000.0,
+    own_from_hz: float | None = None,
+    strength: float = 1.0,
 ) -> tuple[np.ndarray, int]:
     """Turn a minimum-phase filter into a mixed-phase one that removes an excess group delay.
 
@@ -274,6 +388,13 @@ def mixed_phase_fir(
     top_hz : float
         Top of the estimated range; the phase is closed above it
         (:func:`closing_group_delay`).
+    own_from_hz : float, optional
+        Also remove ``h_min``'s own group delay from this frequency up
+        (:func:`own_group_delay_to_remove`), so that the filter adds a flat
+        group delay there; ``None`` leaves it (the phase part is then the
+        inverse all-pass alone).
+    strength : float
+        Fraction of the whole group delay to remove (0: a pure delay).
 
     Returns
     -------
@@ -290,15 +411,37 @@ def mixed_phase_fir(
     .. [2] Gerchberg & Saxton, Optik 35, 1972.
     """
     h_min = np.asarray(h_min, dtype=float)
-    n_taps = h_min.size
     latency = int(latency)
-    if not 0 <= latency < n_taps:
-        raise ValueError(f"latency {latency} samples must lie in [0, {n_taps})")
+    if not 0 <= latency < h_min.size:
+        raise ValueError(f"latency {latency} samples must lie in [0, {h_min.size})")
+    excess = np.asarray(excess_gd_s, dtype=float)
+    if own_from_hz is None:
+        return _realise(h_min, fs, est_freq_hz, strength * excess, latency, rounds, top_hz)
+    own, h, p = flattening_group_delay(
+        h_min, fs, est_freq_hz, excess, latency, own_from_hz, top_hz, rounds
+    )
+    if strength != 1.0:
+        h, p = _realise(h_min, fs, est_freq_hz, strength * (excess + own), latency, rounds, top_hz)
+    return h, p
+
+
+def _realise(
+    h_min: np.ndarray,
+    fs: int,
+    est_freq_hz: np.ndarray,
+    remove_gd_s: np.ndarray,
+    latency: int,
+    rounds: int,
+    top_hz: float,
+) -> tuple[np.ndarray, int]:
+    """``h_min`` delayed by ``latency`` with ``remove_gd_s`` taken out of its group delay,
+    under the time limits, its magnitude restored ``rounds`` times."""
+    n_taps = h_min.size
     n_out = n_taps + latency
     # room for the output, the anticausal part beyond the latency (dropped) and margin
     n_fft = 1 << int(np.ceil(np.log2(n_out + 2 * latency + n_taps // 4)))
     bins_hz = np.fft.rfftfreq(n_fft, 1.0 / fs)
-    tau = excess_gd_on_bins(est_freq_hz, excess_gd_s, bins_hz)
+    tau = excess_gd_on_bins(est_freq_hz, remove_gd_s, bins_hz)
     tau = tau + closing_group_delay(bins_hz, correction_phase(bins_hz, tau)[-1], top_hz)
     phase = correction_phase(bins_hz, tau) - 2 * np.pi * bins_hz * latency / fs
     target = np.fft.rfft(h_min, n_fft)
@@ -314,6 +457,50 @@ def mixed_phase_fir(
     return h, p
 
 
+def flattening_group_delay(
+    h_min: np.ndarray,
+    fs: int,
+    est_freq_hz: np.ndarray,
+    excess_gd_s: np.ndarray,
+    latency: int,
+    from_hz: float,
+    top_hz: float,
+    rounds: int = RESTORE_ROUNDS,
+) -> tuple[np.ndarray, np.ndarray, int]:
+    """The filter's own group delay to remove so that the realised filter's is flat.
+
+    Starts from :func:`own_group_delay_to_remove` and corrects it
+    ``OWN_REFINE_ROUNDS`` times by what the realised filter (time limits and
+    all) still shows: its windowed group delay (:func:`windowed_group_delay_s`)
+    against the wanted one, ``-excess_gd_s`` plus a constant, weighted by
+    :func:`own_flat_weight`. The windowed group delay of a filter with
+    narrow features is not its smoothed group delay minus what is removed
+    (the window mixes neighbouring frequencies), hence the correction.
+
+    Returns
+    -------
+    own_gd_s : ndarray, shape (n_freqs,)
+        Group delay to remove on top of ``excess_gd_s``, s.
+    h : ndarray, shape (n_taps + latency,)
+        The filter realised with ``excess_gd_s + own_gd_s`` removed.
+    peak_index : int
+    """
+    freq_hz = np.asarray(est_freq_hz, dtype=float)
+    top = min(float(top_hz), 0.45 * fs)
+    weight = own_flat_weight(freq_hz, from_hz)
+    ref_band = (freq_hz >= REFERENCE_BAND_HZ[0]) & (freq_hz <= top)
+    own = own_group_delay_to_remove(h_min, fs, freq_hz, from_hz, top_hz)
+    for _ in range(OWN_REFINE_ROUNDS):
+        # only its group delay is read here: no magnitude restoration needed
+        h, _ = _realise(h_min, fs, freq_hz, excess_gd_s + own, latency, 0, top_hz)
+        left = windowed_group_delay_s(h, fs, np.minimum(freq_hz, top)) + excess_gd_s
+        if np.any(ref_band):
+            left = left - float(np.median(left[ref_band]))
+        own = own + weight * left
+    h, p = _realise(h_min, fs, freq_hz, excess_gd_s + own, latency, rounds, top_hz)
+    return own, h, p
+
+
 def within_tolerance(
     h_min: np.ndarray,
     fs: int,
@@ -321,13 +508,16 @@ def within_tolerance(
     excess_gd_s: np.ndarray,
     latency: int,
     top_hz: float,
-) -> tuple[np.ndarray, int, float, float]:
+    own_from_hz: float | None = None,
+) -> tuple[np.ndarray, int, float, float, float]:
     """:func:`mixed_phase_fir`, weakened until the magnitude stays within tolerance.
 
     If the time limits (latency, pre-ringing) cost more than
-    ``MAGNITUDE_TOLERANCE_DB`` of magnitude, the excess group delay is scaled
-    by each of ``CORRECTION_STRENGTHS`` in turn; at strength 0 the result is
-    the minimum-phase filter delayed by the latency, which always fits.
+    ``MAGNITUDE_TOLERANCE_DB`` of magnitude, the flattening of the filter's own
+    group delay (with ``own_from_hz``) is scaled by each of
+    ``CORRECTION_STRENGTHS`` in turn, and then, without it, the excess group
+    delay; at strength 0 for both the result is the minimum-phase filter
+    delayed by the latency, which always fits.
 
     Returns
     -------
@@ -335,17 +525,32 @@ def within_tolerance(
     peak_index : int
     strength : float
         The fraction of the excess group delay that was removed.
+    flat_strength : float
+        The fraction of the filter's own group delay that was removed above
+        ``own_from_hz`` (0 without it).
     magnitude_error_db : float
         Largest magnitude difference to ``h_min``, 20 Hz - 20 kHz.
     """
-    for strength in CORRECTION_STRENGTHS:
-        h, p = mixed_phase_fir(
-            h_min, fs, est_freq_hz, strength * excess_gd_s, latency, top_hz=top_hz
+    excess = np.asarray(excess_gd_s, dtype=float)
+    error_db = _magnitude_check(h_min, h_min.size + int(latency), fs)
+    if own_from_hz is not None:
+        own, h, p = flattening_group_delay(
+            h_min, fs, est_freq_hz, excess, latency, own_from_hz, top_hz
         )
-        err = magnitude_error_db(h, h_min, fs)
+        for flat in CORRECTION_STRENGTHS[:-1]:
+            if flat != 1.0:
+                h, p = _realise(
+                    h_min, fs, est_freq_hz, excess + flat * own, latency, RESTORE_ROUNDS, top_hz
+                )
+            err = error_db(h)
+            if err <= MAGNITUDE_TOLERANCE_DB:
+                return h, p, 1.0, float(flat), err
+    for strength in CORRECTION_STRENGTHS:
+        h, p = _realise(h_min, fs, est_freq_hz, strength * excess, latency, RESTORE_ROUNDS, top_hz)
+        err = error_db(h)
         if err <= MAGNITUDE_TOLERANCE_DB:
             break
-    return h, p, float(strength), err
+    return h, p, float(strength), 0.0, err
 
 
 def apply_mixed_phase(
@@ -396,8 +601,8 @@ def apply_mixed_phase(
         rows = []
         for c in range(n_ch):
             est = estimates[c]
-            h, p, strength, err = within_tolerance(
-                hs[c], rate, freq_hz, est.excess_gd_s, lat[rate], est.band_hz[1]
+            h, p, strength, flat, err = within_tolerance(
+                hs[c], rate, freq_hz, est.excess_gd_s, lat[rate], est.band_hz[1], OWN_FLAT_FROM_HZ
             )
             rows.append(h)
             stats.append(
@@ -409,6 +614,7 @@ def apply_mixed_phase(
                     pre_ringing_db=pre_ringing_db(h, rate, p),
                     magnitude_error_db=err,
                     strength=strength,
+                    flat_strength=flat,
                 )
             )
         out[rate] = np.stack(rows)
@@ -426,17 +632,21 @@ def apply_mixed_phase(
 
 
 def smoothed_group_delay_s(
-    x: np.ndarray, fs: int, freq_hz: np.ndarray, width_oct: float = 1.0 / 12.0
+    x: np.ndarray,
+    fs: int,
+    freq_hz: np.ndarray,
+    width_oct: float = 1.0 / 12.0,
+    min_fft: int = 1 << 14,
 ) -> np.ndarray:
     """Group delay of ``x`` in seconds at ``freq_hz``, power-weighted over ``width_oct``.
 
     From the phase step between neighbouring bins of an FFT at least four times
-    the length of ``x`` (and 2**14); each value is the ``|X|²``-weighted mean of
+    the length of ``x`` (and ``min_fft``); each value is the ``|X|²``-weighted mean of
     the bins within ``width_oct`` around the frequency, so bins where ``x`` has
     little energy (and an unreliable phase) count little.
     """
     x = np.asarray(x, dtype=float)
-    n_fft = max(1 << 14, 1 << int(np.ceil(np.log2(4 * x.size))))
+    n_fft = max(int(min_fft), 1 << int(np.ceil(np.log2(4 * x.size))))
     spec = np.fft.rfft(x, n_fft)
     gd = -np.angle(spec[1:] * np.conj(spec[:-1])) / (2 * np.pi * fs / n_fft)
     w = np.abs(spec[1:] * spec[:-1])
@@ -545,6 +755,10 @@ def latency_record(design: MixedPhaseDesign | None) -> dict[str, Any]:
         },
         "correction_strength": {
             str(fs): [s.strength for s in design.stats if s.fs == fs]
+            for fs in sorted(design.latency_samples)
+        },
+        "flattening_strength": {
+            str(fs): [s.flat_strength for s in design.stats if s.fs == fs]
             for fs in sorted(design.latency_samples)
         },
         "magnitude_difference_db": {

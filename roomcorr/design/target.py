@@ -18,6 +18,7 @@ from typing import Any
 
 import numpy as np
 
+from roomcorr.checked import checked_number
 from roomcorr.errors import SettingsError
 from roomcorr.grid import interp_log
 
@@ -31,6 +32,16 @@ AUTO_LIMITS_HZ = (15.0, 20000.0)
 #: Width of the raised-cosine fade to 0 dB outside the band, in octaves.
 FADE_OCT = 0.5
 
+#: Limits of a ``[target]`` table (the preset files and the browser app's editor).
+TILT_LIMIT_DB = 3.0
+SHELF_LIMIT_DB = 10.0
+#: Target points and the tilt pivot and shelf corner lie on the design grid.
+POINT_RANGE_HZ = (10.0, 24000.0)
+#: A target point moves the target at most this far (dB) from the tilt and shelf.
+POINT_LIMIT_DB = 20.0
+#: At most this many target points.
+MAX_POINTS = 64
+
 _TARGET_KEYS = {"tilt_db_per_octave", "tilt_pivot_hz", "bass_shelf_db", "bass_shelf_hz", "points"}
 
 
@@ -39,32 +50,60 @@ def target_from_table(freq_hz: np.ndarray, table: dict[str, Any], source: str) -
     unknown = set(table) - _TARGET_KEYS
     if unknown:
         raise SettingsError(f"{source}: unknown target key {sorted(unknown)[0]!r}")
-    try:
-        tilt = float(table.get("tilt_db_per_octave", 0.0))
-        pivot = float(table.get("tilt_pivot_hz", 1000.0))
-        shelf_db = float(table.get("bass_shelf_db", 0.0))
-        shelf_hz = float(table.get("bass_shelf_hz", 120.0))
-    except (TypeError, ValueError):
-        raise SettingsError(f"{source}: target values must be numbers") from None
-    if pivot <= 0 or shelf_hz <= 0:
-        raise SettingsError(f"{source}: target frequencies must be positive")
-    if abs(tilt) > 3.0 or abs(shelf_db) > 10.0:
-        raise SettingsError(f"{source}: tilt beyond ±3 dB/octave or shelf beyond ±10 dB")
+
+    def number(key: str, default: float, lo: float, hi: float, unit: str) -> float:
+        value = table.get(key, default)
+        if isinstance(value, str | bool):
+            raise SettingsError(f"{source}: target values must be numbers")
+        return checked_number(value, f"{source}: target {key}", lo, hi, unit=unit)
+
+    # NaN compares false with every limit: each value goes through checked_number
+    tilt = number("tilt_db_per_octave", 0.0, -TILT_LIMIT_DB, TILT_LIMIT_DB, "dB/octave")
+    pivot = number("tilt_pivot_hz", 1000.0, *POINT_RANGE_HZ, "Hz")
+    shelf_db = number("bass_shelf_db", 0.0, -SHELF_LIMIT_DB, SHELF_LIMIT_DB, "dB")
+    shelf_hz = number("bass_shelf_hz", 120.0, *POINT_RANGE_HZ, "Hz")
     f = np.asarray(freq_hz, dtype=float)
     out = tilt * np.log2(f / pivot)
     # A smooth second-order-like shelf in dB: full gain well below, 0 well above.
     out += shelf_db / (1.0 + (f / shelf_hz) ** 2)
     points = table.get("points")
     if points:
-        try:
-            arr = np.asarray(points, dtype=float)
-        except (TypeError, ValueError):
-            raise SettingsError(f"{source}: target points must be [frequency, dB] pairs") from None
-        if arr.ndim != 2 or arr.shape[1] != 2 or np.any(arr[:, 0] <= 0):
-            raise SettingsError(f"{source}: target points must be [frequency, dB] pairs")
+        arr = target_points(points, source)
         order = np.argsort(arr[:, 0])
         out += interp_log(f, arr[order, 0], arr[order, 1])
     return out
+
+
+def target_points(points: Any, source: str) -> np.ndarray:
+    """A target's ``points`` as an array of [Hz, dB] rows, every value checked.
+
+    Frequencies lie in :data:`POINT_RANGE_HZ` (the design grid), gains within
+    ±:data:`POINT_LIMIT_DB`, all finite; no frequency twice.
+
+    Returns
+    -------
+    ndarray, shape (n_points, 2)
+    """
+    pairs_msg = f"{source}: target points must be [frequency, dB] pairs"
+    if not isinstance(points, list | tuple) or len(points) > MAX_POINTS:
+        raise SettingsError(f"{pairs_msg}, at most {MAX_POINTS}")
+    rows = []
+    for k, pair in enumerate(points, start=1):
+        if not isinstance(pair, list | tuple) or len(pair) != 2:
+            raise SettingsError(pairs_msg)
+        if any(isinstance(v, str | bool) for v in pair):
+            raise SettingsError(pairs_msg)
+        f_hz = checked_number(
+            pair[0], f"{source}: target point {k} frequency", *POINT_RANGE_HZ, unit="Hz"
+        )
+        g_db = checked_number(
+            pair[1], f"{source}: target point {k} gain", -POINT_LIMIT_DB, POINT_LIMIT_DB, unit="dB"
+        )
+        rows.append((f_hz, g_db))
+    arr = np.asarray(rows, dtype=float).reshape(-1, 2)
+    if np.unique(arr[:, 0]).size != arr.shape[0]:
+        raise SettingsError(f"{source}: target points: the same frequency appears twice")
+    return arr
 
 
 def target_from_points(freq_hz: np.ndarray, pts_hz: np.ndarray, pts_db: np.ndarray) -> np.ndarray:

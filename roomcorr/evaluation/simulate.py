@@ -233,3 +233,61 @@ def write_measured_wavs(room: EvaluationRoom, folder: str | Path) -> list[Path]:
     out = Path(folder)
     out.mkdir(parents=True, exist_ok=True)
     return [write_wav(out / f"pos{i + 1}.wav", ir, room.fs) for i, ir in enumerate(room.measured)]
+
+
+#: Seed of the perturbed copies of the rooms (:func:`perturbed_scenarios`).
+PERTURB_SEED = 20261202
+#: Ranges of the perturbation: dimension factor, wall-absorption factor, loudspeaker
+#: corner (Hz), and how far the listening position moves (m, per horizontal axis).
+PERTURB_DIMS = (0.8, 1.25)
+PERTURB_ALPHA = (0.6, 1.5)
+PERTURB_CORNER_HZ = (35.0, 80.0)
+PERTURB_SEAT_M = 0.3
+
+
+def perturb_scenario(scenario: dict[str, Any], rng: np.random.Generator, tag: str) -> dict:
+    """A seeded variation of one room, for checking a design on rooms it was not tuned on.
+
+    Every dimension is scaled by its own factor from :data:`PERTURB_DIMS`
+    (loudspeakers and the listening position keep their relative places),
+    every wall's absorption by a factor from :data:`PERTURB_ALPHA` (kept
+    within 0.03 to 0.6), the listening position moves by up to
+    :data:`PERTURB_SEAT_M` along each horizontal axis, and each
+    loudspeaker's high-pass corner is drawn anew from
+    :data:`PERTURB_CORNER_HZ` (the pair keeps its small mismatch and its Q).
+    Seat offsets are kept, so held-out seats stay 25 to 45 cm from the centre.
+
+    Returns
+    -------
+    dict
+        A scenario like the entries of ``scenarios.json``, named ``<name>-<tag>``.
+    """
+    s = json.loads(json.dumps(scenario))
+    old = np.asarray(s["dims_m"], dtype=float)
+    dims = old * rng.uniform(*PERTURB_DIMS, size=3)
+    scale = dims / old
+    s["dims_m"] = [round(float(x), 3) for x in dims]
+    alpha = np.asarray(s["wall_alpha"], dtype=float) * rng.uniform(*PERTURB_ALPHA, size=6)
+    s["wall_alpha"] = [round(float(x), 3) for x in np.clip(alpha, 0.03, 0.6)]
+    corner = float(rng.uniform(*PERTURB_CORNER_HZ))
+    first = float(s["speakers"][0]["hp_hz"])
+    for spk in s["speakers"]:
+        spk["pos_m"] = [round(float(x), 3) for x in np.asarray(spk["pos_m"]) * scale]
+        spk["hp_hz"] = round(corner * float(spk["hp_hz"]) / first, 2)
+    seat = np.asarray(s["seat_m"], dtype=float) * scale
+    seat[:2] += rng.uniform(-PERTURB_SEAT_M, PERTURB_SEAT_M, size=2)
+    offsets = np.asarray(s["measured"] + s["held_out"], dtype=float)
+    margin = 0.15
+    lo = margin - offsets.min(axis=0)
+    hi = dims - margin - offsets.max(axis=0)
+    s["seat_m"] = [round(float(x), 3) for x in np.clip(seat, lo, hi)]
+    s["name"] = f"{s['name']}-{tag}"
+    return s
+
+
+def perturbed_scenarios(per_room: int = 2, seed: int = PERTURB_SEED) -> list[dict[str, Any]]:
+    """``per_room`` seeded perturbed copies of every bundled room (:func:`perturb_scenario`)."""
+    rng = np.random.default_rng(seed)
+    return [
+        perturb_scenario(s, rng, f"p{k + 1}") for s in load_scenarios() for k in range(per_room)
+    ]

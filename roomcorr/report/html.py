@@ -21,6 +21,7 @@ from typing import Any
 
 import numpy as np
 
+from roomcorr.analysis.decay import mean_band_decay as _mean_band_decay
 from roomcorr.report.summary import fmt_hz, summary_sentences, withheld_regions
 
 REPORT_HTML = "report.html"
@@ -97,6 +98,23 @@ def _fir_for(curves: dict[str, Any], index: int) -> tuple[np.ndarray | None, int
     return np.asarray(firs[rate][index], dtype=float), int(rate)
 
 
+def corrected_responses(irs: np.ndarray, fir: np.ndarray) -> np.ndarray:
+    """Each position's response convolved with the filter, cut to the original length.
+
+    Parameters
+    ----------
+    irs : ndarray, shape (n_positions, n_samples)
+    fir : ndarray, shape (n_taps,)
+
+    Returns
+    -------
+    corrected_irs : ndarray, shape (n_positions, n_samples)
+    """
+    from scipy.signal import fftconvolve
+
+    return fftconvolve(irs, fir[None, :], axes=-1)[:, : irs.shape[-1]]
+
+
 def predicted_responses(
     irs: np.ndarray, fs: int, fir: np.ndarray, freq_hz: np.ndarray, measured_db: np.ndarray
 ) -> tuple[np.ndarray, np.ndarray]:
@@ -121,12 +139,9 @@ def predicted_responses(
     corrected_irs : ndarray, shape (n_positions, n_samples)
         Convolved responses cut to the original length.
     """
-    from scipy.signal import fftconvolve
-
     from roomcorr.pipeline import analyse_positions
 
-    n = irs.shape[-1]
-    conv = fftconvolve(irs, fir[None, :], axes=-1)[:, :n]
+    conv = corrected_responses(irs, fir)
     after, _ = analyse_positions(conv[:, None, :], fs, freq_hz)
     before, _ = analyse_positions(irs[:, None, :], fs, freq_hz)
     return measured_db + after[:, 0] - before[:, 0], conv
@@ -162,27 +177,6 @@ def filter_response(
     phase[ok] = np.degrees(np.arctan2(im, re))
     gd[ok] = np.interp(f[ok], bins, gd_bins) / fs * 1000.0
     return gain, phase, gd
-
-
-def _mean_band_decay(per_position: list[list[Any]]) -> list[Any]:
-    """Band values averaged over positions; curves of the first position; valid only if all are."""
-    from roomcorr.analysis.decay import BandDecay
-
-    out = []
-    for k, first in enumerate(per_position[0]):
-        rows = [pos[k] for pos in per_position if k < len(pos)]
-        out.append(
-            BandDecay(
-                centre_hz=first.centre_hz,
-                label=first.label,
-                edt_s=float(np.nanmean([r.edt_s for r in rows])),
-                t20_s=float(np.nanmean([r.t20_s for r in rows])),
-                t30_s=float(np.nanmean([r.t30_s for r in rows])),
-                valid={key: all(r.valid[key] for r in rows) for key in first.valid},
-                curve=first.curve,
-            )
-        )
-    return out
 
 
 def _decay_table(bands: list[Any]) -> list[list[str]]:
@@ -616,7 +610,10 @@ def _phase_column(x: _Channel, ctx: _Context) -> Column | None:
         f"position, before the first strong reflection, and undone between {fmt_hz(lo)} and "
         f"{fmt_hz(hi)} where the positions agree. Below that the room owns the phase, and "
         "the filter leaves it alone (a pure delay). The magnitude is the minimum-phase "
-        "design's."
+        "design's. From 300 Hz up (fading in from 150 Hz) the filter also takes out the group "
+        "delay of its own magnitude correction, as far as the pre-ringing limit allows, so "
+        "the corrected direct sound arrives at once at every frequency; in the bass it stays "
+        "minimum phase."
     )
     if "view_gd_s" in ch:
         view = {k[len("view_") :]: v for k, v in ch.items() if k.startswith("view_")}
@@ -773,6 +770,29 @@ def _safety_section(chans: list[_Channel], curves: dict[str, Any], ctx: _Context
     return saf
 
 
+def report_context(
+    curves: dict[str, Any],
+    settings: dict[str, Any] | None = None,
+    png: Any = None,
+    iir: dict[str, list[dict[str, Any]]] | None = None,
+) -> _Context:
+    """What every section of a report of ``curves`` shares (arguments as :func:`build_report`).
+
+    Each channel's own data is then ``_channel(curves, ch, ctx)``.
+    """
+    designed = bool(curves.get("firs")) and all("correction_db" in ch for ch in curves["channels"])
+    return _Context(
+        freq=np.asarray(curves["freq_hz"], dtype=float),
+        fs=int(curves["fs_in"]),
+        caps=_design_caps(settings),
+        pre_gain=float(curves.get("pre_gain_db", 0.0)),
+        designed=designed,
+        png=png,
+        iir=iir,
+        mixed=curves.get("mixed_phase"),
+    )
+
+
 def build_report(
     curves: dict[str, Any],
     settings: dict[str, Any] | None = None,
@@ -824,19 +844,8 @@ def build_report(
     def png(fig: Any) -> bytes:
         return fg.png_bytes(fig, dpi=dpi)
 
-    designed = bool(curves.get("firs")) and all(
-        "correction_db" in ch for ch in curves["channels"]
-    )
-    ctx = _Context(
-        freq=np.asarray(curves["freq_hz"], dtype=float),
-        fs=int(curves["fs_in"]),
-        caps=_design_caps(settings),
-        pre_gain=float(curves.get("pre_gain_db", 0.0)),
-        designed=designed,
-        png=png,
-        iir=iir,
-        mixed=curves.get("mixed_phase"),
-    )
+    ctx = report_context(curves, settings, png, iir)
+    designed = ctx.designed
     overview = Section("overview", SECTION_TITLES["overview"])
     if designed:
         overview.paragraphs.extend(summary_sentences(curves, ctx.caps["max_boost_db"]))

@@ -249,8 +249,33 @@ def create_app(room: rooms.Room, token: str, port: int) -> ASGIApp:
             return _error(exc, 404)
         return FileResponse(path, filename=path.name)
 
+    async def decay(request: Request) -> Response:
+        p, q = request.path_params, request.query_params
+        try:
+            numbers: dict[str, int | None] = {"channel": None}
+            for key, default in (("bands", "1"), ("position", "0"), ("channel", None)):
+                text = q.get(key, default)
+                if text is None:
+                    continue
+                if not text.isdigit() or len(text) > 3:
+                    raise RoomcorrError(f"{key}={text!r}: expected a small whole number")
+                numbers[key] = int(text)
+            data = await run_in_threadpool(
+                service.decay_view,
+                room,
+                p["kind"],
+                p["run_id"],
+                numbers["bands"],
+                numbers["position"],
+                numbers["channel"],
+            )
+        except RoomcorrError as exc:
+            return _error(exc, 404 if "no such" in str(exc) or "not a" in str(exc) else 400)
+        return Response(json.dumps(data, allow_nan=False), media_type="application/json")
+
     routes = [
         Route("/", index),
+        Route("/api/decay/{kind}/{run_id}", decay),
         Route("/static/{name}", static),
         Route("/api/room", api(lambda: service.room_overview(room))),
         Route("/api/design/{run_id}", api(lambda run_id: service.design_view(room, run_id))),

@@ -35,6 +35,7 @@ function showTab(name) {
   document.querySelectorAll("nav button").forEach(b => b.classList.toggle("active", b.dataset.tab === name));
   document.querySelectorAll(".tab").forEach(t => t.classList.toggle("active", t.id === "tab-" + name));
   [...plots, ...designPlots].forEach(p => p.setSize(plotSize()));
+  heatMaps.forEach(h => h.draw());
 }
 
 function plotSize() {
@@ -82,9 +83,12 @@ async function loadRoom(quiet = false) {
   fillMeasurements(room.runs);
 }
 
-function clearPlots() {
-  while (plots.length) plots.pop().destroy();
-  document.getElementById("plots").innerHTML = "";
+function clearPlots(where = "plots") {
+  const box = document.getElementById(where);
+  for (let i = plots.length - 1; i >= 0; i--) {
+    if (box.contains(plots[i].root)) plots.splice(i, 1)[0].destroy();
+  }
+  box.innerHTML = "";
 }
 
 function hzLabel(v) {
@@ -94,7 +98,7 @@ function hzLabel(v) {
   return v >= 1000 ? `${v / 1000}k` : `${v}`;
 }
 
-function addPlot(title, note, x, series, yLabel, logX = true, where = "plots") {
+function addPlot(title, note, x, series, yLabel, logX = true, where = "plots", extra = {}) {
   const box = document.createElement("div");
   box.className = "plot";
   box.innerHTML = `<h3></h3><p></p>`;
@@ -108,7 +112,8 @@ function addPlot(title, note, x, series, yLabel, logX = true, where = "plots") {
       { label: "frequency (Hz)", stroke: "#5d6b76", grid: { stroke: "#eceff1" }, values: (u, ticks) => ticks.map(hzLabel) },
       { label: yLabel, stroke: "#5d6b76", grid: { stroke: "#eceff1" } },
     ],
-    cursor: { drag: { x: true, y: true, uni: 30 } },
+    cursor: extra.drag === false ? { drag: { x: false, y: false } } : { drag: { x: true, y: true, uni: 30 } },
+    hooks: extra.hooks || {},
     series: [{ label: "Hz", value: (u, v) => (v == null ? "-" : v.toFixed(0)) },
       ...series.map(s => ({ label: s.label, stroke: s.color, width: s.width || 1.5, show: s.show !== false, dash: s.dash,
         value: (u, v) => (v == null ? "-" : v.toFixed(1)) }))],
@@ -118,9 +123,9 @@ function addPlot(title, note, x, series, yLabel, logX = true, where = "plots") {
   return plot;
 }
 
-function controls(items) {
-  const el = document.getElementById("explore-controls");
-  el.innerHTML = "";
+function controls(items, where = "explore-controls", keep = false) {
+  const el = document.getElementById(where);
+  if (!keep) el.innerHTML = "";
   for (const [label, options, onChange] of items) {
     const wrap = document.createElement("label");
     wrap.textContent = label + " ";
@@ -157,19 +162,28 @@ function drawDesign(view, chIndex, rate) {
   if (filt) {
     addPlot(`Filter at ${rate} Hz: magnitude`, `Includes the common pre-gain of ${view.pre_gain_db.toFixed(2)} dB.`, filt.freq_hz,
       [{ label: "magnitude", data: filt.magnitude_db, color: COLORS[0], width: 2 }], "dB");
-    addPlot(`Filter at ${rate} Hz: phase and group delay`, "Minimum phase: the delay is largest where the correction changes fastest.", filt.freq_hz, [
+    addPlot(`Filter at ${rate} Hz: group delay`, "Minimum phase: the delay is largest where the correction changes fastest.", filt.freq_hz, [
       { label: "group delay (ms)", data: filt.group_delay_ms, color: COLORS[2], width: 1.5 },
-      { label: "phase (degrees)", data: filt.phase_deg, color: COLORS[3], show: false },
-    ], "ms / degrees");
+    ], "ms");
+    addPlot(`Filter at ${rate} Hz: phase`, "Wrapped to ±180 degrees.", filt.freq_hz, [
+      { label: "phase (degrees)", data: filt.phase_deg, color: COLORS[3], width: 1.2 },
+    ], "degrees");
   }
 }
 
 async function openRun(run) {
   showTab("explore");
   clearPlots();
+  clearDecay();
   document.getElementById("explore-text").textContent = "";
   document.getElementById("explore-title").textContent = `${run.kind} ${run.run_id}`;
   status(`loading ${run.kind} ${run.run_id} ...`);
+  const t0 = performance.now();
+  const decay = decayUrl(run, 1, 0, 0);
+  const decayData = api(decay);  // fetched while the responses are drawn
+  decayData.catch(() => {});
+  const filesData = run.kind === "design" ? api(`/api/files/${encodeURIComponent(run.run_id)}`) : null;
+  if (filesData) filesData.catch(() => {});
   try {
     if (run.kind === "design") {
       const view = await api(`/api/design/${encodeURIComponent(run.run_id)}`);
@@ -182,7 +196,7 @@ async function openRun(run) {
       const sel = document.querySelectorAll("#explore-controls select");
       if (sel[1]) sel[1].value = rate;
       drawDesign(view, ch, rate);
-      await loadFiles(run.run_id);
+      await loadFiles(run.run_id, filesData);
     } else {
       const view = await api(`/api/measurement/${encodeURIComponent(run.run_id)}`);
       const draw = c => {
@@ -194,10 +208,337 @@ async function openRun(run) {
       controls([["loudspeaker", view.channels.map((c, i) => [i, c.name]), v => draw(Number(v))]]);
       draw(0);
     }
-    status(`${run.kind} ${run.run_id}`);
+    await openDecay(run, 1, "combined", decayData);
+    document.body.dataset.exploreMs = (performance.now() - t0).toFixed(0);
   } catch (err) {
     status(String(err.message || err), true);
   }
+}
+
+// ---------------------------------------------------------------- explore: decay and ringing
+// Decay times (ISO 3382-1 EDT, T20, T30 per band), Schroeder curves and the low-frequency
+// ringing map, exactly as /api/decay returns them (the report's functions on the server).
+const DECAY_KEYS = [["edt", "EDT", "#3f5fa8"], ["t20", "T20", "#1f7a74"], ["t30", "T30", "#b5532a"]];
+const OCTAVE_LABELS = new Set(["31.5", "63", "125", "250", "500", "1k", "2k", "4k", "8k", "16k"]);
+const heatMaps = [];
+let decayState = null;
+let decaySeq = 0;
+
+function clearDecay() {
+  decaySeq += 1;
+  clearPlots("decay-plots");
+  el("decay-controls").innerHTML = "";
+  el("decay-table").innerHTML = "";
+  el("decay-title").hidden = true;
+  heatMaps.length = 0;
+  decayState = null;
+}
+
+function plotBox(where, title, note) {
+  const box = document.createElement("div");
+  box.className = "plot";
+  box.innerHTML = "<h3></h3><p></p>";
+  box.querySelector("h3").textContent = title;
+  box.querySelector("p").textContent = note;
+  el(where).appendChild(box);
+  return box;
+}
+
+function bandColor(k, n) {
+  // low bands dark blue, through teal, to warm sand for the high bands
+  const stops = [[31, 58, 110], [31, 122, 116], [138, 109, 29], [181, 83, 42]];
+  const x = n > 1 ? (k / (n - 1)) * (stops.length - 1) : 0;
+  const i = Math.min(stops.length - 2, Math.floor(x)), f = x - i;
+  const c = stops[i].map((v, j) => Math.round(v + f * (stops[i + 1][j] - v)));
+  return `rgb(${c.join(",")})`;
+}
+
+function decayUrl(run, fraction, pos, ch) {
+  return `/api/decay/${run.kind}/${encodeURIComponent(run.run_id)}?bands=${fraction}&position=${pos}&channel=${ch}`;
+}
+
+async function openDecay(run, fraction = 1, position = "combined", prefetched = null, channel = null) {
+  // one loudspeaker at a time: the server analyses only the channel shown
+  const pos = position === "combined" ? 0 : Number(position);
+  const ch = channel !== null ? channel : decayState && decayState.run === run ? decayState.ch : 0;
+  const t0 = performance.now();
+  const seq = ++decaySeq;
+  const view = await (prefetched || api(decayUrl(run, fraction, pos, ch)));
+  if (seq !== decaySeq) return;  // a later choice was made meanwhile: that one is drawn
+  decayState = { run, view, ch, fraction, position, fetchMs: performance.now() - t0 };
+  el("decay-title").hidden = false;
+  el("decay-controls").innerHTML = "";
+  controls([
+    ["loudspeaker", view.channels.map((c, i) => [i, c.name]),
+      v => openDecay(run, decayState.fraction, decayState.position, null, Number(v)).catch(e => status(String(e.message || e), true))],
+    ["bands", [["1", "octave"], ["3", "third-octave"]], v => openDecay(run, Number(v), decayState.position).catch(e => status(String(e.message || e), true))],
+    ["decay times of", [["combined", "all positions (mean)"], ...view.positions.map((p, i) => [String(i), p])],
+      v => openDecay(run, decayState.fraction, v).catch(e => status(String(e.message || e), true))],
+  ], "decay-controls");
+  const sel = el("decay-controls").querySelectorAll("select");
+  sel[0].value = String(ch); sel[1].value = String(fraction); sel[2].value = String(position);
+  drawDecay();
+}
+
+function drawDecay() {
+  const t0 = performance.now();
+  const { view, position } = decayState;
+  clearPlots("decay-plots");
+  el("decay-table").innerHTML = "";
+  heatMaps.length = 0;
+  const ch = view.channels[decayState.ch];
+  const shown = view.positions[view.position];
+  if (!ch.bands) {
+    el("decay-table").textContent = `${ch.name}: the responses are too short or silent for a decay analysis.`;
+    return;
+  }
+  const rows = position === "combined" ? ch.combined : ch.per_position[Number(position)];
+  const centres = ch.bands.centre_hz, labels = ch.bands.label;
+  const series = [], data = [centres];
+  for (const [key, name, color] of DECAY_KEYS) {
+    const vals = rows[`${key}_s`], ok = rows.valid[key];
+    series.push({ label: name, stroke: color, width: 2, points: { show: true, size: 7, fill: color },
+      value: (u, v) => (v == null ? "-" : `${v.toFixed(2)} s`) });
+    data.push(vals.map((v, i) => (ok[i] ? v : null)));
+    if (ok.some(x => !x)) {
+      series.push({ label: `${name} * near the noise`, stroke: color, width: 2, paths: () => null,
+        points: { show: true, size: 11, fill: "#fff", width: 2 }, value: (u, v) => (v == null ? "-" : `${v.toFixed(2)} s *`) });
+      data.push(vals.map((v, i) => (ok[i] ? null : v)));
+    }
+  }
+  const box = plotBox("decay-plots", `Decay times, ${ch.name}`,
+    `${view.fraction === 1 ? "Octave" : "Third-octave"} bands, ${position === "combined" ? "mean of all positions" : shown}. ` +
+    "EDT from 0 to -10 dB, T20 from -5 to -25 dB, T30 from -5 to -35 dB, each extrapolated to 60 dB (ISO 3382-1). " +
+    `Hollow markers (*) are values whose range comes within ${view.noise_margin_db} dB of the noise floor. Click a legend entry to hide it; drag to zoom.`);
+  box.id = "decay-times";
+  const byCentre = new Map(centres.map((c, i) => [c, labels[i]]));
+  const timesPlot = new uPlot({
+    ...plotSize(),
+    scales: {
+      // the whole span with a margin at first; a zoom (drag) keeps what was chosen
+      x: { time: false, distr: 3, log: 2, range: (u, lo, hi) => (lo <= centres[0] && hi >= centres[centres.length - 1]
+        ? [centres[0] / 1.2, centres[centres.length - 1] * 1.2] : [lo, hi]) },
+      y: { range: (u, lo, hi) => [0, Math.max(0.1, hi * 1.1)] },
+    },
+    axes: [
+      { label: "band (Hz)", stroke: "#5d6b76", grid: { stroke: "#eceff1" }, splits: () => centres,
+        values: (u, ticks) => ticks.map(t => { const l = byCentre.get(t) || ""; return view.fraction === 1 || OCTAVE_LABELS.has(l) ? l : ""; }) },
+      { label: "decay time (s)", stroke: "#5d6b76", grid: { stroke: "#eceff1" } },
+    ],
+    cursor: { drag: { x: true, y: false } },
+    series: [{ label: "band", value: (u, v) => (v == null ? "-" : byCentre.get(v) || v.toFixed(0)) }, ...series],
+  }, data, box);
+  plots.push(timesPlot);
+  box.appendChild(decayTable(rows, labels));
+
+  // Schroeder curves of the shown position, one per band
+  const curvePos = position === "combined" ? view.positions[0] : shown;
+  const joined = uPlot.join(ch.curves.map(c => [c.time_s, c.edc_db]));
+  const cbox = plotBox("decay-plots", `Decay curves, ${ch.name}, ${curvePos}`,
+    "Backward-integrated energy per band, noise subtracted, cut where the decay meets the noise. Dashed lines: -5, -25 and -35 dB.");
+  const ranges = [-5, -25, -35];
+  const curvesPlot = new uPlot({
+    ...plotSize(),
+    scales: { x: { time: false }, y: { range: [-70, 2] } },
+    axes: [{ label: "time (s)", stroke: "#5d6b76", grid: { stroke: "#eceff1" } },
+      { label: "decay (dB)", stroke: "#5d6b76", grid: { stroke: "#eceff1" } }],
+    cursor: { drag: { x: true, y: true, uni: 30 } },
+    series: [{ label: "s", value: (u, v) => (v == null ? "-" : v.toFixed(3)) },
+      ...labels.map((l, k) => ({ label: l, stroke: bandColor(k, labels.length), width: 1.3, spanGaps: true,
+        value: (u, v) => (v == null ? "-" : v.toFixed(1)) }))],
+    hooks: { draw: [u => {
+      const ctx = u.ctx;
+      ctx.save();
+      ctx.strokeStyle = "#9aa6b1"; ctx.setLineDash([5, 5]); ctx.lineWidth = 1;
+      for (const r of ranges) {
+        const y = u.valToPos(r, "y", true);
+        ctx.beginPath(); ctx.moveTo(u.bbox.left, y); ctx.lineTo(u.bbox.left + u.bbox.width, y); ctx.stroke();
+      }
+      ctx.restore();
+    }] },
+  }, joined, cbox);
+  plots.push(curvesPlot);
+
+  // low-frequency ringing map(s)
+  const maps = [["as measured", ch.ringing.measured]];
+  if (ch.ringing.corrected) maps.push(["corrected", ch.ringing.corrected]);
+  const modes = ch.ringing.measured.modes || [];
+  const words = modes.map(m => `${m.freq_hz.toFixed(0)} Hz (${m.decay_s == null ? "-" : m.decay_s.toFixed(2)} s)`).join(", ");
+  const rbox = plotBox("decay-plots", `Low-frequency ringing, ${ch.name}, ${curvePos}`,
+    "Sliding-window spectra from 20 to 300 Hz; time runs upwards from the direct sound. A bright ridge reaching high up is a room mode that keeps ringing." +
+    (words ? ` Still loudest 200 ms after the sound stops (60 dB decay time): ${words}.` : "") +
+    " Drag across a map to zoom in frequency, double-click to reset.");
+  rbox.id = "ringing";
+  const row = document.createElement("div");
+  row.className = "heat-row";
+  rbox.appendChild(row);
+  const readout = document.createElement("div");
+  readout.className = "readout";
+  readout.textContent = "Point at a map to read its level.";
+  rbox.appendChild(readout);
+  maps.forEach(([label, m], i) => heatMaps.push(heatMap(row, label, m, i === 0 ? modes : [], readout, maps.length)));
+  decayState.drawMs = performance.now() - t0;
+  status(`decay of ${view.kind} ${view.run_id}: fetched in ${decayState.fetchMs.toFixed(0)} ms, drawn in ${decayState.drawMs.toFixed(0)} ms`);
+}
+
+function decayTable(rows, labels) {
+  const t = document.createElement("table");
+  t.className = "decay";
+  t.innerHTML = "<thead><tr><th>band (Hz)</th><th>EDT (s)</th><th>T20 (s)</th><th>T30 (s)</th><th>peak-to-noise (dB)</th><th>note</th></tr></thead><tbody></tbody>";
+  const body = t.querySelector("tbody");
+  labels.forEach((l, i) => {
+    const tr = document.createElement("tr");
+    const cells = [l];
+    for (const [key] of DECAY_KEYS) {
+      const v = rows[`${key}_s`][i];
+      cells.push(v == null ? "n/a" : v.toFixed(2) + (rows.valid[key][i] ? "" : " *"));
+    }
+    const dyn = rows.dynamic_range_db ? rows.dynamic_range_db[i] : null;
+    cells.push(dyn == null ? "-" : dyn.toFixed(0));
+    const narrow = DECAY_KEYS.filter(([key]) => rows.filter_limited[key][i]).map(([, name]) => name);
+    cells.push(narrow.length ? `${narrow.join(", ")}: the band filter rings about as long as the room (bandwidth × time < ${decayState.view.min_bandwidth_time}): unreliable` : "");
+    cells.forEach(c => {
+      const td = document.createElement("td");
+      td.textContent = c;
+      if (c.endsWith(" *")) td.className = "near-noise";
+      tr.appendChild(td);
+    });
+    body.appendChild(tr);
+  });
+  return t;
+}
+
+// Colour ramp of the ringing map (level in dB relative to the loudest bin of the first slice)
+const HEAT_FLOOR_DB = -45;
+const HEAT_STOPS = [[-45, [24, 33, 45]], [-32, [35, 72, 104]], [-20, [31, 122, 116]], [-10, [196, 168, 92]], [0, [252, 246, 226]]];
+
+// one colour per 0.1 dB from the floor to 0 dB, so a map of many pixels is a table look-up
+const HEAT_LUT = Array.from({ length: -HEAT_FLOOR_DB * 10 + 1 }, (_, k) => heatColor(HEAT_FLOOR_DB + k / 10));
+
+function heatIndex(db) {
+  if (db == null || !(db > HEAT_FLOOR_DB)) return 0;
+  return db >= 0 ? HEAT_LUT.length - 1 : Math.round((db - HEAT_FLOOR_DB) * 10);
+}
+
+function heatColor(db) {
+  const v = Math.max(HEAT_FLOOR_DB, Math.min(0, db == null ? HEAT_FLOOR_DB : db));
+  for (let i = 1; i < HEAT_STOPS.length; i++) {
+    const [d1, c1] = HEAT_STOPS[i];
+    if (v <= d1) {
+      const [d0, c0] = HEAT_STOPS[i - 1];
+      const f = (v - d0) / (d1 - d0);
+      return c0.map((c, j) => Math.round(c + f * (c1[j] - c)));
+    }
+  }
+  return HEAT_STOPS[HEAT_STOPS.length - 1][1];
+}
+
+function heatMap(parent, label, map, modes, readout, count) {
+  const wrap = document.createElement("div");
+  wrap.className = "heat";
+  const canvas = document.createElement("canvas");
+  canvas.className = "heat-map";
+  wrap.appendChild(canvas);
+  parent.appendChild(wrap);
+  const f = map.freq_hz, t = map.time_s, lv = map.level_db;
+  const full = [f[0], f[f.length - 1]];
+  const st = { lo: full[0], hi: full[1], drag: null };
+  const M = { l: 58, r: 64, t: 22, b: 42 };
+  const df = (f[f.length - 1] - f[0]) / (f.length - 1);
+
+  function geometry() {
+    const { width, height } = plotSize();
+    const w = Math.max(300, Math.floor((width - 12 * (count - 1)) / count));
+    return { w, h: Math.max(260, height), pw: w - M.l - M.r, ph: Math.max(260, height) - M.t - M.b };
+  }
+  const fAt = (x, g) => st.lo * Math.pow(st.hi / st.lo, (x - M.l) / g.pw);
+  const xAt = (hz, g) => M.l + (Math.log(hz / st.lo) / Math.log(st.hi / st.lo)) * g.pw;
+
+  function draw() {
+    const g = geometry();
+    canvas.width = g.w; canvas.height = g.h;
+    const ctx = canvas.getContext("2d");
+    ctx.fillStyle = "#fff"; ctx.fillRect(0, 0, g.w, g.h);
+    const img = ctx.createImageData(g.pw, g.ph);
+    const cols = new Int32Array(g.pw);
+    for (let x = 0; x < g.pw; x++) cols[x] = Math.max(0, Math.min(f.length - 1, Math.round((fAt(M.l + x + 0.5, g) - f[0]) / df)));
+    for (let y = 0; y < g.ph; y++) {
+      const ti = Math.max(0, Math.min(t.length - 1, Math.round((1 - (y + 0.5) / g.ph) * (t.length - 1))));
+      const rowv = lv[ti];
+      for (let x = 0; x < g.pw; x++) {
+        const c = HEAT_LUT[heatIndex(rowv[cols[x]])];
+        const k = 4 * (y * g.pw + x);
+        img.data[k] = c[0]; img.data[k + 1] = c[1]; img.data[k + 2] = c[2]; img.data[k + 3] = 255;
+      }
+    }
+    ctx.putImageData(img, M.l, M.t);
+    ctx.fillStyle = "#23303b"; ctx.font = "13px system-ui, sans-serif";
+    ctx.fillText(label, M.l, 15);
+    ctx.fillStyle = "#5d6b76"; ctx.font = "12px system-ui, sans-serif"; ctx.textAlign = "center";
+    for (const hz of [20, 30, 40, 50, 70, 100, 150, 200, 300]) {
+      if (hz < st.lo * 0.99 || hz > st.hi * 1.01) continue;
+      const x = xAt(hz, g);
+      ctx.fillRect(x, M.t + g.ph, 1, 5);
+      ctx.fillText(String(hz), x, M.t + g.ph + 18);
+    }
+    ctx.fillText("frequency (Hz)", M.l + g.pw / 2, g.h - 6);
+    ctx.textAlign = "right";
+    const tMax = t[t.length - 1] * 1000;
+    for (let ms = 0; ms <= tMax + 1e-6; ms += 100) {
+      const y = M.t + g.ph * (1 - ms / tMax);
+      ctx.fillRect(M.l - 5, y, 5, 1);
+      ctx.fillText(String(ms), M.l - 8, y + 4);
+    }
+    ctx.save(); ctx.translate(14, M.t + g.ph / 2); ctx.rotate(-Math.PI / 2); ctx.textAlign = "center";
+    ctx.fillText("time after the direct sound (ms)", 0, 0); ctx.restore();
+    // colour bar
+    const bx = M.l + g.pw + 14;
+    for (let y = 0; y < g.ph; y++) {
+      const c = heatColor(HEAT_FLOOR_DB * y / (g.ph - 1));
+      ctx.fillStyle = `rgb(${c.join(",")})`; ctx.fillRect(bx, M.t + y, 12, 1);
+    }
+    ctx.fillStyle = "#5d6b76"; ctx.textAlign = "left";
+    for (const d of [0, -15, -30, -45]) ctx.fillText(`${d}`, bx + 16, M.t + g.ph * (d / HEAT_FLOOR_DB) + 4);
+    ctx.fillText("dB", bx + 16, M.t - 6);
+    // ringing modes
+    ctx.strokeStyle = "#ffffff"; ctx.fillStyle = "#ffffff"; ctx.textAlign = "center";
+    modes.forEach((m, k) => {
+      if (m.freq_hz < st.lo || m.freq_hz > st.hi) return;
+      const x = xAt(m.freq_hz, g), ytop = M.t + 16 + 30 * k;
+      ctx.beginPath(); ctx.moveTo(x, M.t + g.ph); ctx.lineTo(x, ytop + 4); ctx.stroke();
+      ctx.fillText(`${m.freq_hz.toFixed(0)} Hz, ${m.decay_s == null ? "-" : m.decay_s.toFixed(2)} s`, x, ytop);
+    });
+    if (st.drag && st.drag.x1 !== undefined) {
+      ctx.fillStyle = "rgba(255,255,255,0.25)";
+      const a = Math.min(st.drag.x0, st.drag.x1), b = Math.max(st.drag.x0, st.drag.x1);
+      ctx.fillRect(a, M.t, b - a, g.ph);
+    }
+  }
+
+  const inside = (x, y, g) => x >= M.l && x < M.l + g.pw && y >= M.t && y < M.t + g.ph;
+  canvas.addEventListener("mousemove", ev => {
+    const g = geometry(), x = ev.offsetX, y = ev.offsetY;
+    if (st.drag) { st.drag.x1 = Math.max(M.l, Math.min(M.l + g.pw, x)); draw(); }
+    if (!inside(x, y, g)) return;
+    const hz = fAt(x, g), j = Math.round((hz - f[0]) / df);
+    const ti = Math.round((1 - (y - M.t) / g.ph) * (t.length - 1));
+    const v = lv[ti][j];
+    readout.textContent = `${label}: ${hz.toFixed(1)} Hz, ${(t[ti] * 1000).toFixed(0)} ms: ${v == null ? "-" : v.toFixed(1)} dB`;
+  });
+  canvas.addEventListener("mousedown", ev => { if (inside(ev.offsetX, ev.offsetY, geometry())) st.drag = { x0: ev.offsetX }; });
+  canvas.addEventListener("mouseup", () => {
+    const g = geometry(), d = st.drag;
+    st.drag = null;
+    if (d && d.x1 !== undefined && Math.abs(d.x1 - d.x0) > 5) {
+      const a = fAt(Math.min(d.x0, d.x1), g), b = fAt(Math.max(d.x0, d.x1), g);
+      st.lo = Math.max(full[0], a); st.hi = Math.min(full[1], Math.max(b, a * 1.05));
+    }
+    draw();
+  });
+  canvas.addEventListener("mouseleave", () => { if (st.drag) { st.drag = null; draw(); } });
+  canvas.addEventListener("dblclick", () => { st.lo = full[0]; st.hi = full[1]; draw(); });
+  draw();
+  return { draw, canvas };
 }
 
 async function openCompare() {
@@ -205,6 +546,7 @@ async function openCompare() {
   if (!a || !b) { status("compare needs two finished measurements", true); return; }
   showTab("explore");
   clearPlots();
+  clearDecay();
   el("explore-controls").innerHTML = "";
   el("explore-title").textContent = `What changed from ${a} to ${b}`;
   status("comparing ...");
@@ -228,8 +570,8 @@ async function openCompare() {
   }
 }
 
-async function loadFiles(runId) {
-  const files = await api(`/api/files/${encodeURIComponent(runId)}`);
+async function loadFiles(runId, prefetched = null) {
+  const files = await (prefetched || api(`/api/files/${encodeURIComponent(runId)}`));
   document.getElementById("files-title").textContent = `Files of design ${runId}`;
   const body = document.querySelector("#files tbody");
   body.innerHTML = "";
@@ -256,6 +598,19 @@ let presets = [];
 let shaped = false;
 let pending = null;
 
+// Target points [Hz, dB], added to the tilt and shelf. The table and the plot handles
+// both show this list; every edit goes through setPoint, which applies the target rules
+// (the server checks the same ones: roomcorr.design.target.target_points).
+const POINT_HZ = [10, 24000];
+const POINT_DB = 20;
+const MAX_POINTS = 64;
+const HANDLE_PX = 9;
+let targetPoints = [];
+let lastView = null;
+let dragging = null;
+// live previews: at most one request in flight; edits made meanwhile send one more
+let inFlight = false, queued = false, previewCount = 0, lastEdit = null;
+
 function el(id) { return document.getElementById(id); }
 
 function fillMeasurements(runs) {
@@ -281,19 +636,85 @@ function setControls(table) {
   el("d-tilt").value = table.tilt_db_per_octave || 0;
   el("d-shelf").value = table.bass_shelf_db || 0;
   el("d-shelf-hz").value = table.bass_shelf_hz || 120;
-  const body = document.querySelector("#d-points tbody");
-  body.innerHTML = "";
-  (table.points || []).forEach(([f, g]) => addPointRow(f, g));
+  targetPoints = (table.points || []).map(([f, g]) => [Number(f), Number(g)]);
+  renderPoints();
   showValues();
 }
 
-function addPointRow(f, g) {
-  const tr = document.createElement("tr");
-  tr.innerHTML = `<td><input type="number" min="10" max="24000" value="${f}"> Hz</td>
-    <td><input type="number" min="-20" max="20" step="0.5" value="${g}"> dB</td><td><button type="button">remove</button></td>`;
-  tr.querySelectorAll("input").forEach(i => i.addEventListener("input", () => { shaped = true; schedule(); }));
-  tr.querySelector("button").addEventListener("click", () => { tr.remove(); shaped = true; schedule(); });
-  document.querySelector("#d-points tbody").appendChild(tr);
+function roundHz(f) { return f >= 100 ? Math.round(f) : Math.round(f * 10) / 10; }
+function roundDb(g) { return Math.round(g * 10) / 10; }
+
+function pointProblem(f, g) {
+  if (!Number.isFinite(f) || f < POINT_HZ[0] || f > POINT_HZ[1]) return `frequency must be ${POINT_HZ[0]} to ${POINT_HZ[1]} Hz`;
+  if (!Number.isFinite(g) || Math.abs(g) > POINT_DB) return `gain must be within ±${POINT_DB} dB`;
+  return null;
+}
+
+function freeHz(f, skip) {
+  // no frequency twice: step past a point that already sits there
+  const taken = g => targetPoints.some((p, i) => i !== skip && p[0] === g);
+  let out = f;
+  const step = f * 1.003 + 0.1 <= POINT_HZ[1] ? 1.003 : 1 / 1.003;
+  while (taken(out)) out = roundHz(step > 1 ? out * step + 0.1 : out * step - 0.1);
+  return out;
+}
+
+function setPoint(i, f, g) {
+  // clamp to the target rules, round to what the table shows, avoid duplicates
+  f = roundHz(Math.max(POINT_HZ[0], Math.min(POINT_HZ[1], f)));
+  g = roundDb(Math.max(-POINT_DB, Math.min(POINT_DB, g)));
+  targetPoints[i] = [freeHz(f, i), g];
+  const tr = document.querySelectorAll("#d-points tbody tr")[i];
+  if (tr) {
+    const [fi, gi] = tr.querySelectorAll("input");
+    fi.value = targetPoints[i][0]; gi.value = targetPoints[i][1];
+    fi.classList.remove("bad"); gi.classList.remove("bad");
+  }
+}
+
+function addPoint(f, g) {
+  if (targetPoints.length >= MAX_POINTS) { status(`at most ${MAX_POINTS} target points`, true); return -1; }
+  targetPoints.push([0, 0]);
+  setPoint(targetPoints.length - 1, f, g);
+  renderPoints();
+  shaped = true;
+  return targetPoints.length - 1;
+}
+
+function removePoint(i) {
+  targetPoints.splice(i, 1);
+  renderPoints();
+  shaped = true;
+  schedule();
+}
+
+function renderPoints() {
+  const body = document.querySelector("#d-points tbody");
+  body.innerHTML = "";
+  targetPoints.forEach(([f, g], i) => {
+    const tr = document.createElement("tr");
+    tr.innerHTML = `<td><input type="number" min="${POINT_HZ[0]}" max="${POINT_HZ[1]}" step="1"> Hz</td>
+      <td><input type="number" min="${-POINT_DB}" max="${POINT_DB}" step="0.1"> dB</td><td><button type="button">remove</button></td>`;
+    const [fi, gi] = tr.querySelectorAll("input");
+    fi.value = f; gi.value = g;
+    const edited = () => {
+      const nf = Number(fi.value), ng = Number(gi.value);
+      const problem = fi.value === "" || gi.value === "" ? "a point needs a frequency and a gain" : pointProblem(nf, ng);
+      fi.classList.toggle("bad", !!problem && (fi.value === "" || !!pointProblem(nf, 0)));
+      gi.classList.toggle("bad", !!problem && !fi.classList.contains("bad"));
+      if (problem) { status(`target point ${i + 1}: ${problem}`, true); return; }
+      if (targetPoints.some((p, k) => k !== i && p[0] === nf)) { fi.classList.add("bad"); status(`target point ${i + 1}: another point has ${nf} Hz`, true); return; }
+      targetPoints[i] = [nf, ng];
+      shaped = true;
+      schedule();
+    };
+    fi.addEventListener("input", edited);
+    gi.addEventListener("input", edited);
+    tr.querySelector("button").addEventListener("click", () => removePoint(i));
+    body.appendChild(tr);
+  });
+  el("d-point-count").textContent = targetPoints.length ? `${targetPoints.length} point${targetPoints.length > 1 ? "s" : ""}` : "none yet: click the target line to add one";
+  designPlots.forEach(u => u.redraw(false, false));
 }
 
 function showValues() {
@@ -308,13 +729,9 @@ function currentEdit() {
   if (el("d-lo").value) edit.band_lo_hz = Number(el("d-lo").value);
   if (el("d-hi").value) edit.band_hi_hz = Number(el("d-hi").value);
   if (shaped) {
-    const points = [...document.querySelectorAll("#d-points tbody tr")].map(tr => {
-      const [f, g] = tr.querySelectorAll("input");
-      return [Number(f.value), Number(g.value)];
-    }).filter(([f]) => f > 0);
     edit.table = { tilt_db_per_octave: Number(el("d-tilt").value), tilt_pivot_hz: 1000.0,
       bass_shelf_db: Number(el("d-shelf").value), bass_shelf_hz: Number(el("d-shelf-hz").value) };
-    if (points.length) edit.table.points = points.sort((a, b) => a[0] - b[0]);
+    if (targetPoints.length) edit.table.points = targetPoints.map(p => [p[0], p[1]]).sort((a, b) => a[0] - b[0]);
   } else {
     edit.target = el("d-preset").value;
   }
@@ -324,45 +741,204 @@ function currentEdit() {
 function schedule() {
   showValues();
   if (pending) clearTimeout(pending);
-  pending = setTimeout(runPreview, 60);
+  pending = setTimeout(() => { pending = null; requestPreview(); }, 60);
+}
+
+function requestPreview() {
+  if (inFlight) { queued = true; return; }
+  runPreview();
 }
 
 async function runPreview() {
-  pending = null;
+  inFlight = true;
   const t0 = performance.now();
+  const edit = currentEdit();
   try {
-    const view = await api("/api/preview", currentEdit());
+    const view = await api("/api/preview", edit);
+    lastEdit = edit;
+    previewCount += 1;
     drawPreview(view);
     status(`preview of ${view.measurement} in ${(performance.now() - t0).toFixed(0)} ms`);
   } catch (err) {
     status(String(err.message || err), true);
+  } finally {
+    inFlight = false;
+    if (queued) { queued = false; runPreview(); }
   }
 }
 
+// ---- the target line as something to hold: handles, click to add, drag, double-click to remove
+
+function interpLog(f, xs, ys) {
+  // linear in log frequency, ends held (as the target's own interpolation)
+  if (!xs.length) return 0;
+  if (f <= xs[0]) return ys[0];
+  if (f >= xs[xs.length - 1]) return ys[ys.length - 1];
+  let i = 1;
+  while (xs[i] < f) i++;
+  const a = Math.log(xs[i - 1]), b = Math.log(xs[i]);
+  return ys[i - 1] + ((Math.log(f) - a) / (b - a)) * (ys[i] - ys[i - 1]);
+}
+
+function targetAt(u, f) {
+  const x = u.data[0], y = u.data[2];
+  const xs = [], ys = [];
+  for (let i = 0; i < x.length; i++) if (y[i] != null) { xs.push(x[i]); ys.push(y[i]); }
+  return interpLog(f, xs, ys);
+}
+
+function sentPoints(edit) {
+  if (!edit) return [];
+  if (edit.table) return edit.table.points || [];
+  const preset = presets.find(q => q.name === edit.target);
+  return [...((preset && preset.table.points) || [])].map(p => [Number(p[0]), Number(p[1])]).sort((a, b) => a[0] - b[0]);
+}
+
+function sentPointsAt(f) {
+  // the points of the previewed target (the curve drawn now), at f
+  const pts = sentPoints(lastEdit);
+  return interpLog(f, pts.map(p => p[0]), pts.map(p => p[1]));
+}
+
+function handleXY(u, i) {
+  const [f, g] = targetPoints[i];
+  // on the drawn target: its value at f, moved by how far this point has changed since
+  const base = targetAt(u, f) - sentPointsAt(f);
+  return [u.valToPos(f, "x"), u.valToPos(base + g, "y")];
+}
+
+function nearestHandle(u, x, y) {
+  let best = -1, dist = HANDLE_PX;
+  targetPoints.forEach((p, i) => {
+    const [hx, hy] = handleXY(u, i);
+    const d = Math.hypot(hx - x, hy - y);
+    if (d <= dist) { best = i; dist = d; }
+  });
+  return best;
+}
+
+function drawHandles(u) {
+  if (!lastView) return;
+  const ctx = u.ctx, r = devicePixelRatio || 1;
+  ctx.save();
+  targetPoints.forEach((p, i) => {
+    const [x, y] = handleXY(u, i);
+    if (!Number.isFinite(x) || !Number.isFinite(y)) return;
+    ctx.beginPath();
+    ctx.arc(u.bbox.left + x * r, u.bbox.top + y * r, (dragging && dragging.i === i ? 7 : 5.5) * r, 0, 2 * Math.PI);
+    ctx.fillStyle = dragging && dragging.i === i ? "#b5532a" : "#ffffff";
+    ctx.strokeStyle = "#23303b";
+    ctx.lineWidth = 2 * r;
+    ctx.fill();
+    ctx.stroke();
+  });
+  ctx.restore();
+}
+
+function attachTargetEditing(u) {
+  const over = u.over;
+  over.title = "Click the plot to add a target point, drag a point to move it, double-click a point to remove it.";
+  const local = ev => { const b = over.getBoundingClientRect(); return [ev.clientX - b.left, ev.clientY - b.top]; };
+  over.addEventListener("mousedown", ev => {
+    if (ev.button !== 0) return;
+    const [x, y] = local(ev);
+    const i = nearestHandle(u, x, y);
+    dragging = { u, i, x0: x, y0: y, moved: false, start: i >= 0 ? targetPoints[i].slice() : null,
+      f0: u.posToVal(x, "x"), v0: u.posToVal(y, "y") };
+    ev.preventDefault();
+    ev.stopPropagation();
+  }, true);
+  over.addEventListener("mousemove", ev => {
+    const [x, y] = local(ev);
+    over.style.cursor = dragging && dragging.i >= 0 ? "grabbing" : nearestHandle(u, x, y) >= 0 ? "grab" : "copy";
+  });
+  over.addEventListener("dblclick", ev => {
+    const [x, y] = local(ev);
+    const i = nearestHandle(u, x, y);
+    if (i >= 0) { removePoint(i); status(`target point removed; ${targetPoints.length} left`); }
+    ev.stopPropagation();
+  }, true);
+}
+
+window.addEventListener("mousemove", ev => {
+  if (!dragging) return;
+  const d = dragging, u = d.u;
+  const b = u.over.getBoundingClientRect();
+  const x = ev.clientX - b.left, y = ev.clientY - b.top;
+  if (!d.moved && Math.hypot(x - d.x0, y - d.y0) < 3) return;
+  d.moved = true;
+  if (d.i < 0) return;  // a drag on the background: nothing to move
+  const f = u.posToVal(Math.max(0, Math.min(b.width, x)), "x");
+  const g = d.start[1] + (u.posToVal(y, "y") - d.v0);
+  setPoint(d.i, f, g);
+  shaped = true;
+  designPlots.forEach(p => p.redraw(false, false));
+  requestPreview();
+});
+
+window.addEventListener("mouseup", () => {
+  if (!dragging) return;
+  const d = dragging;
+  dragging = null;
+  if (!d.moved && d.i < 0) {
+    // a click: a new point where the target should pass through
+    const f = d.f0;
+    if (f >= POINT_HZ[0] && f <= POINT_HZ[1]) {
+      const own = interpLog(f, [...targetPoints].sort((a, b) => a[0] - b[0]).map(p => p[0]), [...targetPoints].sort((a, b) => a[0] - b[0]).map(p => p[1]));
+      const i = addPoint(f, own + (d.v0 - targetAt(d.u, f)));
+      if (i >= 0) status(`target point added at ${targetPoints[i][0]} Hz`);
+    }
+  }
+  designPlots.forEach(p => p.redraw(false, false));
+  if (d.moved || d.i < 0) requestPreview();
+});
+
+function previewSeries(ch) {
+  const pred = ch.average_db.map((v, i) => (v == null || ch.correction_db[i] == null ? null : v + ch.correction_db[i]));
+  return [ch.average_db, ch.target_db, pred, ch.correction_db, ch.boost_withheld_db];
+}
+
 function drawPreview(view) {
-  while (designPlots.length) designPlots.pop().destroy();
-  el("design-plots").innerHTML = "";
+  lastView = view;
   const words = [];
-  view.channels.forEach((ch, c) => {
-    const pred = ch.average_db.map((v, i) => (v == null || ch.correction_db[i] == null ? null : v + ch.correction_db[i]));
-    const before = plots.length;
-    addPlot(`${ch.name}: average, target and predicted`, `Band ${ch.band_hz[0].toFixed(0)}–${ch.band_hz[1].toFixed(0)} Hz.`, view.freq_hz, [
-      { label: "measured average", data: ch.average_db, color: COLORS[1], width: 1.5 },
-      { label: "target", data: ch.target_db, color: "#23303b", width: 1.5, dash: [6, 4] },
-      { label: "predicted average", data: pred, color: COLORS[0], width: 2 },
-      { label: "correction", data: ch.correction_db, color: COLORS[2], width: 1.5, show: false },
-      { label: "boost withheld", data: ch.boost_withheld_db, color: COLORS[3], show: false },
-    ], "level (dB)", true, "design-plots");
-    addPlot(`${ch.name}: predicted at every position`, "", view.freq_hz,
-      ch.predicted_db.map((m, p) => ({ label: view.positions[p], data: m, color: COLORS[p % COLORS.length], width: 1.1 })),
-      "level (dB)", true, "design-plots");
-    designPlots.push(...plots.splice(before));
+  const sameShape = designPlots.length === 2 * view.channels.length &&
+    designPlots[0].data[0].length === view.freq_hz.length;
+  if (sameShape) {
+    view.channels.forEach((ch, c) => {
+      designPlots[2 * c].setData([view.freq_hz, ...previewSeries(ch)], !dragging);
+      designPlots[2 * c + 1].setData([view.freq_hz, ...ch.predicted_db], !dragging);
+    });
+  } else {
+    while (designPlots.length) designPlots.pop().destroy();
+    el("design-plots").innerHTML = "";
+    view.channels.forEach((ch, c) => {
+      const before = plots.length;
+      const [avg, target, pred, corr, withheld] = previewSeries(ch);
+      const u = addPlot(`${ch.name}: average, target and predicted`,
+        "Click to add a target point, drag a point up, down or sideways, double-click it to remove it. " +
+        "Points are joined by straight lines on the frequency axis and hold their value beyond the first and last.", view.freq_hz, [
+          { label: "measured average", data: avg, color: COLORS[1], width: 1.5 },
+          { label: "target", data: target, color: "#23303b", width: 1.5, dash: [6, 4] },
+          { label: "predicted average", data: pred, color: COLORS[0], width: 2 },
+          { label: "correction", data: corr, color: COLORS[2], width: 1.5, show: false },
+          { label: "boost withheld", data: withheld, color: COLORS[3], show: false },
+        ], "level (dB)", true, "design-plots", { drag: false, hooks: { draw: [drawHandles] } });
+      u.root.classList.add("target-plot");
+      attachTargetEditing(u);
+      addPlot(`${ch.name}: predicted at every position`, "", view.freq_hz,
+        ch.predicted_db.map((m, p) => ({ label: view.positions[p], data: m, color: COLORS[p % COLORS.length], width: 1.1 })),
+        "level (dB)", true, "design-plots");
+      designPlots.push(...plots.splice(before));
+    });
+  }
+  view.channels.forEach(ch => {
     if (ch.bass_variation_db) {
       words.push(`${ch.name}: the bass varies by about ${ch.bass_variation_db.now.toFixed(1)} dB now; ` +
         `expect about ${ch.bass_variation_db.unmeasured_seats.toFixed(1)} dB at seats you did not measure.`);
     }
   });
   el("design-text").textContent = words.join(" ");
+  document.body.dataset.previews = String(previewCount);
 }
 
 async function saveDesign() {
@@ -386,12 +962,26 @@ async function setupDesign() {
   sel.addEventListener("change", pick);
   ["d-tilt", "d-shelf", "d-shelf-hz"].forEach(id => el(id).addEventListener("input", () => { shaped = true; schedule(); }));
   ["d-boost", "d-lo", "d-hi", "d-measurement"].forEach(id => el(id).addEventListener("input", schedule));
-  el("d-add-point").addEventListener("click", () => { addPointRow(1000, 0); shaped = true; schedule(); });
+  el("d-add-point").addEventListener("click", () => { addPoint(1000, 0); schedule(); });
+  el("d-clear-points").addEventListener("click", () => { targetPoints = []; renderPoints(); shaped = true; schedule(); });
   el("d-save").addEventListener("click", saveDesign);
   el("c-go").addEventListener("click", openCompare);
   const p = presets.find(q => q.name === sel.value);
   setControls(p ? p.table : {});
 }
+
+// for the browser tests: what the page last sent and drew
+window.roomcorrDesign = () => {
+  const u = designPlots[0];
+  return {
+    points: targetPoints.map(p => p.slice()), lastEdit, previews: previewCount,
+    target: lastView ? lastView.channels.map(c => c.target_db) : null,
+    // where the first loudspeaker's plot draws each handle, and its target line at a frequency
+    // (CSS pixels from the plot area's top left corner)
+    handles: u ? targetPoints.map((_, i) => handleXY(u, i)) : [],
+    targetPixel: f => (u ? [u.valToPos(f, "x"), u.valToPos(targetAt(u, f), "y")] : null),
+  };
+};
 
 function connectLive() {
   const proto = location.protocol === "https:" ? "wss" : "ws";
@@ -406,5 +996,8 @@ document.querySelectorAll("nav button").forEach(b => b.addEventListener("click",
   showTab(b.dataset.tab);
   if (b.dataset.tab === "design" && !designPlots.length) schedule();
 }));
-window.addEventListener("resize", () => [...plots, ...designPlots].forEach(p => p.setSize(plotSize())));
+window.addEventListener("resize", () => {
+  [...plots, ...designPlots].forEach(p => p.setSize(plotSize()));
+  heatMaps.forEach(h => h.draw());
+});
 loadRoom().then(setupDesign).then(connectLive).catch(err => status(String(err.message || err), true));
