@@ -125,7 +125,9 @@ def design_view(room: rooms.Room, run_id: str) -> dict[str, Any]:
     filters: dict[str, list[dict[str, Any]]] = {}
     f_plot = f[f <= 20000.0]
     for fs, firs in sorted(curves["firs"].items()):
-        band = f_plot[f_plot < fs / 2]
+        # evaluated at the frequencies as sent (rounded to 0.01 Hz): a notch's
+        # group delay can change by 0.1 ms within that rounding
+        band = np.round(f_plot[f_plot < fs / 2], 2)
         per_rate = []
         for c, h in enumerate(np.asarray(firs)):
             # the report's filter figures: gain, wrapped phase and group delay of the taps
