@@ -15,6 +15,8 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 import numpy as np
+import pyfar as pf
+from scipy.signal import fftconvolve
 
 from roomcorr.demo import (
     _image_sources,
@@ -126,3 +128,81 @@ def seats(centre: tuple[float, float, float], n: int, spacing_m: float = 0.3) ->
         (x + spacing_m, y + spacing_m, z),
     ]
     return [centre, *ring[: n - 1]]
+
+
+# ----------------------------------------------------------------------------- subwoofer rooms
+
+#: Rooms with two mains at the front and a subwoofer: dimensions (m), the
+#: subwoofer's place (m) and its own processing delay (s).
+SUB_ROOMS = {
+    # rear corner, subwoofer with 8 ms of its own processing delay
+    "rear-corner": ((5.2, 4.1, 2.6), (4.9, 0.3, 0.3), 0.008),
+    # front corner, no extra delay: the subwoofer already arrives nearly in time
+    "front-corner": ((5.2, 4.1, 2.6), (0.3, 0.3, 0.3), 0.0),
+    # larger room, far corner
+    "far-corner": ((6.1, 4.6, 2.5), (5.8, 4.3, 0.3), 0.008),
+}
+
+
+def sub_room(dims, sub_m, latency_s, mics) -> Room:
+    """Two mains 1.7 m apart on the front wall's axis and a subwoofer at ``sub_m``."""
+    ly = dims[1]
+    return Room(
+        dims_m=dims,
+        speakers_m=[(0.5, ly / 2 - 0.85, 1.0), (0.5, ly / 2 + 0.85, 1.0), sub_m],
+        kinds=["main", "main", "sub"],
+        gains_db=[0.0, -1.0, 3.0],
+        mics_m=mics,
+        latency_s=[0.0, 0.0, latency_s],
+    )
+
+
+def seat_centre(dims) -> tuple[float, float, float]:
+    """The measured seat: 60 % of the way back, on the room's axis, ear height 1.1 m."""
+    return (dims[0] * 0.6, dims[1] / 2, 1.1)
+
+
+def held_out_behind(centre) -> list:
+    """Held-out seats: a second row 0.5 m behind the measured seat (3 seats, 0.4 m apart)."""
+    return seats((centre[0] + 0.5, centre[1], centre[2]), 3, 0.4)
+
+
+def held_out_between(centre, offset_m: float = 0.18) -> list:
+    """Held-out seats inside the measured area, on the diagonals between its positions."""
+    x, y, z = centre
+    d = offset_m
+    return [
+        (x + d, y + d, z),
+        (x - d, y - d, z + 0.03),
+        (x + d, y - d, z - 0.03),
+        (x - d, y + d, z),
+    ]
+
+
+def summed_figures(irs, firs, delays, polarity, route_gain, fc, fs: int = 48000):
+    """Summed response of each main plus the subwoofer through its route, evaluated with
+    scipy's fftconvolve and pyfar's 1/6-octave smoothing: mean over positions and mains
+    of the RMS deviation from its own mean in fc/2..2fc, and the deepest dip per position.
+    ``delays`` (samples) are taken off and ``polarity`` undone first when given: the
+    baseline with no delay and normal polarity. Channels 0 and 1 are the mains, 2 the
+    subwoofer."""
+    h = firs.copy()
+    if delays is not None:
+        for c, n in enumerate(delays):
+            h[c] = np.r_[h[c, n:], np.zeros(n)] * polarity[c]
+    n_pos = irs.shape[0]
+    sums = []
+    for p in range(n_pos):
+        sub = route_gain * fftconvolve(irs[p, 2], h[2])
+        for m in (0, 1):
+            sums.append(fftconvolve(irs[p, m], h[m]) + sub)
+    sig = pf.Signal(np.array(sums), fs)
+    sm, _ = pf.dsp.smooth_fractional_octave(sig, 6)
+    f = sm.frequencies
+    band = (f >= fc / 2) & (f <= 2 * fc)
+    # equal weight per octave: sample the smoothed curve on a log grid
+    fl = np.geomspace(fc / 2, 2 * fc, 97)
+    db = np.array([np.interp(fl, f[band], 20 * np.log10(np.abs(x[band]))) for x in sm.freq])
+    dev = np.sqrt(np.mean((db - db.mean(axis=1, keepdims=True)) ** 2, axis=1))
+    dip = db.mean(axis=1) - db.min(axis=1)
+    return float(dev.mean()), dip.reshape(n_pos, 2).max(axis=1)

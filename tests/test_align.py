@@ -7,13 +7,22 @@ the speed of sound of ISO 9613-1 at 20 °C (343.2 m/s).
 from __future__ import annotations
 
 import numpy as np
-import pyfar as pf
 import pytest
 from hypothesis import given
 from hypothesis import settings as settings_h
 from hypothesis import strategies as st
-from scipy.signal import fftconvolve
-from speaker_rooms import C_M_S, Room, direct_delays_s, seats, simulate
+from speaker_rooms import (
+    C_M_S,
+    SUB_ROOMS,
+    Room,
+    direct_delays_s,
+    held_out_behind,
+    seat_centre,
+    seats,
+    simulate,
+    sub_room,
+    summed_figures,
+)
 
 from roomcorr.analysis.compare import speed_of_sound_m_s
 from roomcorr.design.align import (
@@ -156,66 +165,15 @@ def test_levels_recovered_in_free_field():
 # ----------------------------------------------------------------------------- subwoofer
 
 
-def _sub_room(dims, sub_m, latency_s, mics) -> Room:
-    ly = dims[1]
-    return Room(
-        dims_m=dims,
-        speakers_m=[(0.5, ly / 2 - 0.85, 1.0), (0.5, ly / 2 + 0.85, 1.0), sub_m],
-        kinds=["main", "main", "sub"],
-        gains_db=[0.0, -1.0, 3.0],
-        mics_m=mics,
-        latency_s=[0.0, 0.0, latency_s],
-    )
-
-
-def _summed_figures(irs, firs, delays, polarity, route_gain, fc):
-    """Summed response of each main plus the subwoofer through its route, evaluated with
-    scipy's fftconvolve and pyfar's 1/6-octave smoothing: mean over positions and mains
-    of the RMS deviation from its own mean in fc/2..2fc, and the deepest dip per position.
-    ``delays`` (samples) are taken off and ``polarity`` undone first when given: the
-    baseline with no delay and normal polarity."""
-    h = firs.copy()
-    if delays is not None:
-        for c, n in enumerate(delays):
-            h[c] = np.r_[h[c, n:], np.zeros(n)] * polarity[c]
-    n_pos = irs.shape[0]
-    sums = []
-    for p in range(n_pos):
-        sub = route_gain * fftconvolve(irs[p, 2], h[2])
-        for m in (0, 1):
-            sums.append(fftconvolve(irs[p, m], h[m]) + sub)
-    sig = pf.Signal(np.array(sums), FS)
-    sm, _ = pf.dsp.smooth_fractional_octave(sig, 6)
-    f = sm.frequencies
-    band = (f >= fc / 2) & (f <= 2 * fc)
-    # equal weight per octave: sample the smoothed curve on a log grid
-    fl = np.geomspace(fc / 2, 2 * fc, 97)
-    db = np.array([np.interp(fl, f[band], 20 * np.log10(np.abs(x[band]))) for x in sm.freq])
-    dev = np.sqrt(np.mean((db - db.mean(axis=1, keepdims=True)) ** 2, axis=1))
-    dip = db.mean(axis=1) - db.min(axis=1)
-    return float(dev.mean()), dip.reshape(n_pos, 2).max(axis=1)
-
-
-SUB_ROOMS = {
-    # rear corner, subwoofer with 8 ms of its own processing delay
-    "rear-corner": ((5.2, 4.1, 2.6), (4.9, 0.3, 0.3), 0.008),
-    # front corner, no extra delay: the subwoofer already arrives nearly in time
-    "front-corner": ((5.2, 4.1, 2.6), (0.3, 0.3, 0.3), 0.0),
-    # larger room, far corner
-    "far-corner": ((6.1, 4.6, 2.5), (5.8, 4.3, 0.3), 0.008),
-}
-
-
 @pytest.fixture(scope="module", params=sorted(SUB_ROOMS))
 def sub_case(request):
     dims, sub_m, lat = SUB_ROOMS[request.param]
-    centre = (dims[0] * 0.6, dims[1] / 2, 1.1)
-    room = _sub_room(dims, sub_m, lat, seats(centre, 5))
+    centre = seat_centre(dims)
+    room = sub_room(dims, sub_m, lat, seats(centre, 5))
     irs = simulate(room)
     r = _design(irs, channel_names=["left", "right", "sub"], subwoofer="sub")
     # held-out seats the design never saw: a second row 0.5 m behind
-    behind = (centre[0] + 0.5, centre[1], centre[2])
-    held = simulate(_sub_room(dims, sub_m, lat, seats(behind, 3, 0.4)))
+    held = simulate(sub_room(dims, sub_m, lat, held_out_behind(centre)))
     return request.param, r, held
 
 
@@ -227,10 +185,10 @@ def test_subwoofer_integration_is_smooth_through_the_crossover(sub_case):
     assert 50 <= fc <= 150
     route = 10 ** (plan.sub_route_gain_db / 20)
     h = r.firs[FS]
-    after, dips = _summed_figures(r.irs, h, None, None, route, fc)
-    base, _ = _summed_figures(r.irs, h, plan.delay_samples[FS], plan.polarity, route, fc)
-    held_after, _ = _summed_figures(held, h, None, None, route, fc)
-    held_base, _ = _summed_figures(held, h, plan.delay_samples[FS], plan.polarity, route, fc)
+    after, dips = summed_figures(r.irs, h, None, None, route, fc)
+    base, _ = summed_figures(r.irs, h, plan.delay_samples[FS], plan.polarity, route, fc)
+    held_after, _ = summed_figures(held, h, None, None, route, fc)
+    held_base, _ = summed_figures(held, h, plan.delay_samples[FS], plan.polarity, route, fc)
     print(
         f"{name}: crossover {fc:.0f} Hz, sub delay {plan.delay_s[2] * 1e3:.2f} ms, "
         f"polarity {plan.polarity[2]}; RMS deviation {after:.2f} dB vs {base:.2f} dB "
@@ -243,11 +201,15 @@ def test_subwoofer_integration_is_smooth_through_the_crossover(sub_case):
     assert after < base and held_after < held_base
     if name == "rear-corner":
         # issue 11: at most 0.7 times the deviation with no delay and normal polarity
-        # (measured 0.61). In the two other rooms the ratio was 0.74 (far corner) and
-        # 0.84 (front corner, where the subwoofer already arrives nearly in time): the
-        # seat-to-seat variation of the room's modes, about 1.5 dB RMS at single seats
-        # after correction, is a floor no common delay or polarity removes. Reported,
-        # not asserted.
+        # (measured 0.67; 0.96 at the held-out seats 0.5 m behind, which the test does not
+        # hold to it). In the two other rooms the ratio was 0.79 (far corner) and 0.89
+        # (front corner, where the subwoofer already arrives nearly in time): the
+        # seat-to-seat variation of the room's modes is a floor no filter common to all
+        # seats removes. Even a common filter of unlimited resolution and boost, fitted to
+        # the five measured seats, would leave 1.34 dB against the baseline's 1.86 dB (0.72)
+        # in the front corner and 1.47 against 2.12 dB (0.69) in the far corner (the
+        # design's own figures on its search grid).
+        # Reported, not asserted (benchmarks/bench_multichannel.py prints the table).
         assert after <= 0.7 * base
 
 
@@ -338,10 +300,12 @@ def test_system_settings_defaults_and_round_trip():
     trims=st.lists(st.floats(-20.0, 0.0), min_size=3, max_size=3),
     fc=st.floats(40.0, 200.0),
     slope=st.sampled_from([12, 24, 48]),
+    cut_db=st.floats(0.0, 15.0),
 )
-def test_applying_a_plan_never_raises_a_filters_gain(delays, trims, fc, slope):
-    """Crossover halves, polarity, whole-sample delays and trims <= 0 dB can only lower
-    the peak gain of a correction filter (safety: the crossover never adds boost)."""
+def test_applying_a_plan_never_raises_a_filters_gain(delays, trims, fc, slope, cut_db):
+    """Crossover halves, the shared cut, polarity, whole-sample delays and trims <= 0 dB
+    can only lower the peak gain of a correction filter (safety: neither the crossover nor
+    the shared cut adds boost)."""
     from types import SimpleNamespace
 
     from roomcorr.design.crossover import Integration
@@ -351,7 +315,8 @@ def test_applying_a_plan_never_raises_a_filters_gain(delays, trims, fc, slope):
     grid = log_grid()
     corr = 3.5 * np.exp(-0.5 * (np.log2(grid / 70) / 0.4) ** 2) - 8 * (grid > 3000)
     h = np.stack([synthesize_fir(grid, corr + k, FS, 8192) for k in (0.0, -1.0, 0.5)])
-    integ = Integration(fc, slope, 0.0, -1, 0, 0, 0, 0, 0, 0, 0, 0, grid, grid, grid)
+    cut = -cut_db * np.exp(-0.5 * (np.log2(grid / fc) / 0.15) ** 2)
+    integ = Integration(fc, slope, 0.0, -1, 0, 0, 0, 0, 0, 0, 0, 0, grid, grid, grid, cut)
     plan = SimpleNamespace(
         delay_samples={FS: delays},
         baked=True,
@@ -364,6 +329,46 @@ def test_applying_a_plan_never_raises_a_filters_gain(delays, trims, fc, slope):
     assert out.shape == (3, 8192 + max(delays))
     for c in range(3):
         assert peak_gain_db(out[c], FS) <= peak_gain_db(h[c], FS) + trims[c] + 0.01
+
+
+def test_the_shared_cut_is_in_every_output_alike():
+    """A plan with a shared cut applied to unit impulses: each output is its crossover half
+    (scipy's Butterworth squared, Linkwitz 1976) times the cut curve, the same cut for the
+    mains and the subwoofer, so the sums' phase relation is kept."""
+    from types import SimpleNamespace
+
+    from scipy.signal import butter, freqz, sosfreqz
+
+    from roomcorr.design.crossover import Integration, search_grid_hz, shared_cut_db
+
+    fc = 80.0
+    grid = search_grid_hz((50.0, 150.0))
+    level = 3.0 * np.exp(-0.5 * (np.log2(grid / 95.0) / 0.1) ** 2)[None].repeat(4, 0)
+    cut = shared_cut_db(grid, level, fc, 15.0)
+    integ = Integration(fc, 24, 0.0, 1, 0, 0, 0, 0, 0, 0, 0, 0, grid, grid, grid, cut)
+    n = 16384
+    h = np.zeros((3, n))
+    h[:, 0] = 1.0
+    plan = SimpleNamespace(
+        delay_samples={FS: [0, 0, 0]},
+        baked=True,
+        roles=["main", "main", "sub"],
+        polarity=[1, 1, 1],
+        trim_db=np.zeros(3),
+        integration=integ,
+    )
+    out = apply_plan({FS: h}, plan)[FS]
+    f = np.geomspace(50.0, 190.0, 40)
+    lp = sosfreqz(np.vstack([butter(2, fc, "low", fs=FS, output="sos")] * 2), f, fs=FS)[1]
+    hp = sosfreqz(np.vstack([butter(2, fc, "high", fs=FS, output="sos")] * 2), f, fs=FS)[1]
+    expected_db = np.interp(np.log2(f), np.log2(grid), cut)
+    for c, half in ((0, hp), (1, hp), (2, lp)):
+        got = freqz(out[c], worN=f, fs=FS)[1] / half
+        np.testing.assert_allclose(20 * np.log10(np.abs(got)), expected_db, atol=0.1)
+    # the same (complex) cut in every output
+    a = freqz(out[0], worN=f, fs=FS)[1] / hp
+    b = freqz(out[2], worN=f, fs=FS)[1] / lp
+    np.testing.assert_allclose(a, b, atol=1e-4)  # within -80 dB (tails cut at the length)
 
 
 def test_a_subwoofer_alone_is_refused():

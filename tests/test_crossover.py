@@ -10,13 +10,17 @@ from scipy.signal import butter, sosfreqz
 
 from roomcorr.design.crossover import (
     DELAY_STEP_S,
+    SHARED_CUT_SHARE,
     SLOPES_DB_OCT,
+    SMOOTHING_OCT,
     apply_crossover,
     crossover_candidates,
     linkwitz_riley_response,
     linkwitz_riley_sos,
+    region_mask,
     search_grid_hz,
     search_integration,
+    shared_cut_db,
 )
 from roomcorr.design.fir import peak_gain_db, synthesize_fir
 from roomcorr.grid import log_grid
@@ -113,3 +117,71 @@ def test_search_recovers_a_known_delay_and_polarity(slope, polarity):
     assert res.rms_dev_db < 0.02 and res.centre_dip_db < 0.05
     assert res.baseline_rms_dev_db > 1.0  # the late subwoofer alone leaves a dip
     assert res.n_candidates == crossover_candidates((60.0, 100.0)).size * 201 * 2
+
+
+def _bumped_sums(f, n_sums, n_bumped, fc, height_db=3.0):
+    """Flat sums; the first ``n_bumped`` carry a +height dB plateau 1/3 octave wide at fc."""
+    level = np.zeros((n_sums, f.size))
+    plateau = np.abs(np.log2(f / fc)) <= 1 / 6
+    level[:n_bumped, plateau] = height_db
+    return level, plateau
+
+
+def test_shared_cut_takes_a_shared_plateau_down_to_the_mean():
+    # analytic: a +3 dB plateau over 1/3 of the 2-octave region raises each sum's mean by
+    # 3 * share of region points; the cut brings the plateau down to that mean, nothing else
+    fc = 90.0
+    f = search_grid_hz((50.0, 150.0))
+    level, plateau = _bumped_sums(f, 10, 10, fc)
+    mask = region_mask(f, fc)
+    mean = 3.0 * plateau[mask].mean()
+    cut = shared_cut_db(f, level, fc, 15.0)
+    np.testing.assert_allclose(cut[plateau], -(3.0 - mean), atol=1e-9)
+    assert np.all(cut[~plateau] == 0.0)
+    # never deeper than the cut limit, never a boost
+    deep = shared_cut_db(f, 4 * level, fc, 1.0)
+    assert deep.min() == pytest.approx(-1.0) and deep.max() == 0.0
+
+
+def test_shared_cut_needs_nearly_every_sum_to_agree():
+    fc = 90.0
+    f = search_grid_hz((50.0, 150.0))
+    n = 10
+    few = int(np.floor((1 - SHARED_CUT_SHARE) * n))  # a peak that too few sums show
+    level, _ = _bumped_sums(f, n, few, fc)
+    assert np.all(shared_cut_db(f, level, fc, 15.0) == 0.0)
+
+
+def test_shared_cut_fades_out_beyond_the_region():
+    # a peak at the region's top edge: the cut falls to 0 within SMOOTHING_OCT above 2 fc
+    fc = 100.0
+    f = search_grid_hz((50.0, 150.0))
+    level = np.where(np.abs(np.log2(f / 200.0)) <= 1 / 12, 4.0, 0.0)[None].repeat(5, 0)
+    cut = shared_cut_db(f, level, fc, 15.0)
+    assert cut.min() < -3.0
+    assert np.all(cut[f >= 200.0 * 2**SMOOTHING_OCT * (1 + 1e-9)] == 0.0)
+    assert np.all(np.diff(cut[f >= 200.0]) >= -1e-12)  # rising monotonically to 0
+
+
+def test_search_with_a_shared_cut_keeps_the_choice_and_includes_the_cut():
+    """The same peak in both paths at every position: the shared cut is designed after
+    the choice, so delay, polarity and crossover stay; the figures include the cut and
+    the reported sums are smoother (the cut multiplies each sum exactly)."""
+    f = search_grid_hz((60.0, 100.0))
+    peak = 1 + 0.6 * np.exp(-0.5 * (np.log2(f / 110.0) / 0.08) ** 2)
+    main = (peak * np.ones((2, 3, 1))).astype(complex)
+    sub = peak * np.exp(-2j * np.pi * f * 0.004) * np.ones((3, 1))
+    plain = search_integration(main, sub, main, sub, f, FS, (60.0, 100.0), 24)
+    cut = search_integration(main, sub, main, sub, f, FS, (60.0, 100.0), 24, max_cut_db=15.0)
+    assert plain.shared_cut_db is None
+    assert (cut.crossover_hz, cut.sub_delay_s, cut.sub_polarity) == (
+        plain.crossover_hz,
+        plain.sub_delay_s,
+        plain.sub_polarity,
+    )
+    assert cut.shared_cut_db.min() < -1.0 and cut.shared_cut_db.max() == 0.0
+    assert cut.rms_dev_db < 0.5 * plain.rms_dev_db
+    # the reported sums are the plain ones with the cut added (dB), up to the smoothing
+    inside = region_mask(f, cut.crossover_hz)
+    diff = cut.summed_after_db - plain.summed_after_db - cut.shared_cut_db
+    assert np.max(np.abs(diff[..., inside])) < 0.5

@@ -79,8 +79,15 @@ def system_summary(result: DesignResult) -> dict[str, Any]:
             "summed_rms_deviation_no_delay_db": round(integ.baseline_rms_dev_db, 2),
             "centre_seat_deepest_dip_db": round(integ.centre_dip_db, 2),
             "candidates_searched": integ.n_candidates,
+            "shared_cut_deepest_db": round(_deepest_cut_db(integ), 2),
         }
     return doc
+
+
+def _deepest_cut_db(integ: Any) -> float:
+    """Depth (dB, >= 0) of the cut shared by every output, 0 without one."""
+    cut = integ.shared_cut_db
+    return 0.0 if cut is None else float(max(0.0, -np.min(cut)))
 
 
 def system_curves(result: DesignResult) -> dict[str, Any]:
@@ -88,7 +95,8 @@ def system_curves(result: DesignResult) -> dict[str, Any]:
 
     ``sys_freq_hz`` (n_freqs,), ``sys_summed_measured_db``,
     ``sys_summed_baseline_db`` and ``sys_summed_after_db`` (n_mains,
-    n_positions, n_freqs), ``sys_crossover_hz`` (with a subwoofer), and
+    n_positions, n_freqs), ``sys_crossover_hz`` and ``sys_shared_cut_db``
+    (n_freqs,; zeros without a cut) (with a subwoofer), and
     ``sys_fields_json``, the manifest's ``outputs`` and ``system`` (for the
     report). Empty for a single loudspeaker.
     """
@@ -106,6 +114,9 @@ def system_curves(result: DesignResult) -> dict[str, Any]:
         "sys_summed_baseline_db": integ.summed_baseline_db,
         "sys_summed_after_db": integ.summed_after_db,
         "sys_crossover_hz": np.array(integ.crossover_hz),
+        "sys_shared_cut_db": (
+            np.zeros(integ.freq_hz.size) if integ.shared_cut_db is None else integ.shared_cut_db
+        ),
     }
 
 
@@ -175,6 +186,13 @@ def system_sentences(fields: dict[str, Any]) -> list[str]:
             f"{xo['centre_seat_deepest_dip_db']:.1f} dB. "
             f"{xo['candidates_searched']} candidates searched."
         )
+        depth = xo.get("shared_cut_deepest_db", 0.0)
+        if depth > 0.05:
+            lines.append(
+                f"Peaks that nearly every position shows in the sum around the crossover are "
+                f"cut by up to {depth:.1f} dB, the same in every output (so the sum keeps the "
+                "phase relation chosen above; only a cut, never a boost)."
+            )
         lines.append(
             "Each main input also feeds the subwoofer output at "
             f"{system.get('sub_route_gain_db', 0):+.2f} dB (routes in manifest.json). "

@@ -26,6 +26,10 @@ This module then makes the channels play together:
   that route, so one input alone plays its main and the subwoofer at equal
   levels (and all inputs together play the pair and the subwoofer at equal
   levels, since the mains then add up in the bass too).
+* **Shared cut.** The peaks that the chosen sums share around the
+  crossover are cut in every output alike
+  (:func:`roomcorr.design.crossover.shared_cut_db`), which changes the
+  sums' magnitude and leaves the phase relation the search chose as it is.
 
 With ``align`` on (the default with more than one channel) delays and trims
 are baked into the filters as whole-sample shifts (at most half a sample,
@@ -48,7 +52,7 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
-from scipy.signal import freqz
+from scipy.signal import fftconvolve, freqz
 
 from roomcorr.analysis.compare import speed_of_sound_m_s
 from roomcorr.design.crossover import (
@@ -59,6 +63,7 @@ from roomcorr.design.crossover import (
     search_integration,
     smoothed_db,
 )
+from roomcorr.design.fir import synthesize_fir
 from roomcorr.design.target import AUTO_LIMITS_HZ, ROLLOFF_DB
 from roomcorr.errors import SettingsError
 
@@ -400,6 +405,7 @@ def plan_system(
             design.crossover_slope_db_oct,
             weights,
             delay_centre_s=centre,
+            max_cut_db=float(design.max_cut_db),
         )
         delays[sub] = integration.sub_delay_s
         polarity[sub] = integration.sub_polarity
@@ -428,11 +434,26 @@ def plan_system(
     )
 
 
+def shared_cut_fir(integ: Integration, fs: int, n_taps: int) -> np.ndarray | None:
+    """Minimum-phase FIR of the integration's shared cut at ``fs``, or ``None`` without one.
+
+    Returns
+    -------
+    ndarray, shape (n_taps,), or None
+    """
+    cut = integ.shared_cut_db
+    if cut is None or not np.any(cut < 0):
+        return None
+    return synthesize_fir(integ.freq_hz, cut, fs, n_taps)
+
+
 def apply_plan(firs: dict[int, np.ndarray], plan: SystemPlan) -> dict[int, np.ndarray]:
-    """Put crossover, polarity and (when baked) delays and trims into the filters.
+    """Put crossover, shared cut, polarity and (when baked) delays and trims into the filters.
 
     Every filter of one rate gets the same length: the correction's length
-    plus the largest delay in samples at that rate.
+    plus the largest delay in samples at that rate. The shared cut (only a
+    cut, the same for every output) is convolved in and the result kept at
+    the correction's length, as the crossover is.
 
     Parameters
     ----------
@@ -448,11 +469,15 @@ def apply_plan(firs: dict[int, np.ndarray], plan: SystemPlan) -> dict[int, np.nd
     for rate, h in firs.items():
         shifts = plan.delay_samples[rate] if plan.baked else [0] * h.shape[0]
         n_out = h.shape[1] + max(shifts)
+        cut = None
         if integ is not None:
             lp, hp = linkwitz_riley_sos(integ.crossover_hz, rate, integ.slope_db_oct)
+            cut = shared_cut_fir(integ, rate, h.shape[1])
         rows = []
         for c in range(h.shape[0]):
             x = h[c]
+            if cut is not None:
+                x = fftconvolve(x, cut)[: h.shape[1]]
             if integ is not None:
                 x = apply_crossover(x, lp if plan.roles[c] == SUB else hp)
             x = x * plan.polarity[c]

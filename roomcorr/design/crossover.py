@@ -33,6 +33,24 @@ delay from ``-DELAY_SPAN_S`` to ``+DELAY_SPAN_S`` in steps of
 ``DELAY_STEP_S`` around the delay that aligns the onsets, both
 polarities. Its size is reported.
 
+Shared cut of the sum
+---------------------
+Once crossover, delay and polarity are chosen, what is left of the sum's
+irregularity is the magnitude the two paths add up to, not their phase
+(in the simulated rooms the chosen sum is within about 0.2 dB RMS as
+smooth as the in-phase sum of the two magnitudes). Each loudspeaker's own
+correction cannot see that sum. :func:`shared_cut_db` therefore designs
+one more curve on the summed responses themselves (every position, every
+main): a cut of the peaks above each sum's own mean over the crossover
+region that :data:`SHARED_CUT_SHARE` of the sums show. The curve is applied
+to every output alike, so it multiplies each sum exactly and leaves the
+phase relation the search chose untouched. It only cuts: no boost, no
+filling of dips, no extra drive below any loudspeaker's limit. The share is
+stricter than a single loudspeaker's agreement rule (``AGREE_SHARE`` of
+``design/area.py``) because a peak of a sum of two sources moves faster
+with the listener than a modal peak of one: their path difference changes
+too.
+
 References
 ----------
 .. [1] S. H. Linkwitz, "Active crossover networks for noncoincident
@@ -49,6 +67,7 @@ import numpy as np
 from scipy.signal import butter, sosfilt, sosfreqz
 
 from roomcorr.analysis.smoothing import smooth_log_grid
+from roomcorr.design.area import agreement_limits
 from roomcorr.grid import points_per_octave_of
 
 #: Linkwitz-Riley slopes offered, dB per octave (orders 2, 4, 8).
@@ -67,6 +86,9 @@ LOSS_WEIGHT = 0.5
 DIP_FREE_DB = 4.0
 #: The cost's region runs from ``fc / REGION_FACTOR`` to ``fc * REGION_FACTOR``.
 REGION_FACTOR = 2.0
+#: A peak of the sum is cut as far as this share of the summed responses
+#: (positions x mains) rises above its own mean.
+SHARED_CUT_SHARE = 0.9
 
 
 def butterworth_order(slope_db_oct: int) -> int:
@@ -195,12 +217,53 @@ def region_figures(level_db: np.ndarray, mask: np.ndarray) -> tuple[np.ndarray, 
     return dev, dip
 
 
+def shared_cut_db(
+    freq_hz: np.ndarray, level_db: np.ndarray, fc_hz: float, max_cut_db: float
+) -> np.ndarray:
+    """Cut (dB, never positive) of the peaks the summed responses share around ``fc``.
+
+    Each sum's level is taken relative to its own mean from ``fc / 2`` to
+    ``2 fc`` (the figure the search minimises); the cut at each frequency is
+    the excess that :data:`SHARED_CUT_SHARE` of the sums reach
+    (:func:`roomcorr.design.area.agreement_limits`), at most ``max_cut_db``.
+    Outside the region it falls to 0 dB with a raised cosine over
+    :data:`SMOOTHING_OCT` (the resolution it was designed at).
+
+    Parameters
+    ----------
+    freq_hz : ndarray, shape (n_freqs,)
+        Log grid reaching at least ``SMOOTHING_OCT`` beyond the region
+        (:func:`search_grid_hz`).
+    level_db : ndarray, shape (n_sums, n_freqs)
+        Smoothed levels of the summed responses (:func:`smoothed_db`).
+    fc_hz : float
+    max_cut_db : float
+
+    Returns
+    -------
+    ndarray, shape (n_freqs,)
+    """
+    f = np.asarray(freq_hz, dtype=float)
+    x = np.asarray(level_db, dtype=float).reshape(-1, f.size)
+    mask = region_mask(f, fc_hz)
+    rel = x - x[:, mask].mean(axis=1, keepdims=True)
+    _, cut_ok = agreement_limits(rel, np.zeros(f.size), SHARED_CUT_SHARE)
+    lo, hi = np.log2(fc_hz / REGION_FACTOR), np.log2(fc_hz * REGION_FACTOR)
+    octs = np.log2(f)
+    beyond = np.maximum(lo - octs, octs - hi).clip(min=0.0) / SMOOTHING_OCT
+    fade = np.cos(0.5 * np.pi * np.minimum(beyond, 1.0)) ** 2
+    return -np.minimum(cut_ok, max_cut_db) * fade
+
+
 @dataclass
 class Integration:
     """What the subwoofer search chose and the figures behind the choice.
 
     Curves are on ``freq_hz`` (the search grid); ``summed_*_db`` have shape
-    (n_mains, n_positions, n_freqs).
+    (n_mains, n_positions, n_freqs). ``shared_cut_db`` (n_freqs,) is the cut
+    applied to every output (:func:`shared_cut_db`), ``None`` without one;
+    the figures and summed curves include it, the baseline's too (it stays in
+    the filters when the delay is taken away).
     """
 
     crossover_hz: float
@@ -218,6 +281,7 @@ class Integration:
     freq_hz: np.ndarray
     summed_after_db: np.ndarray = field(repr=False)
     summed_baseline_db: np.ndarray = field(repr=False)
+    shared_cut_db: np.ndarray | None = field(default=None, repr=False)
 
 
 def _costs(
@@ -261,6 +325,7 @@ def search_integration(
     weights: np.ndarray | None = None,
     delay_centre_s: float = 0.0,
     centre_position: int = 0,
+    max_cut_db: float = 0.0,
 ) -> Integration:
     """Choose crossover frequency, subwoofer delay and polarity.
 
@@ -287,6 +352,9 @@ def search_integration(
         around it.
     centre_position : int
         Position whose deepest dip is reported (the main seat).
+    max_cut_db : float
+        Deepest shared cut of the sum (:func:`shared_cut_db`) designed after
+        the choice; 0 for none.
 
     Returns
     -------
@@ -321,6 +389,12 @@ def search_integration(
     lp, hp = linkwitz_riley_response(freq_hz, fc, fs, slope_db_oct)
     m_after = main * hp
     s_after = pol * sub * lp * np.exp(-2j * np.pi * freq_hz * tau)
+    cut = None
+    if max_cut_db > 0:
+        cut = shared_cut_db(freq_hz, smoothed_db(m_after + s_after, freq_hz), fc, max_cut_db)
+        g = 10.0 ** (cut / 20.0)
+        m_after, s_after = m_after * g, s_after * g
+        hp, lp = hp * g, lp * g
     _, dev, loss, dip = _costs(m_after, s_after, freq_hz, fc, w)
     base_m, base_s = main_raw * hp, sub_raw * lp
     _, base_dev, _, _ = _costs(base_m, base_s, freq_hz, fc, w)
@@ -340,4 +414,5 @@ def search_integration(
         freq_hz=freq_hz,
         summed_after_db=smoothed_db(m_after + s_after, freq_hz),
         summed_baseline_db=smoothed_db(base_m + base_s, freq_hz),
+        shared_cut_db=cut,
     )
