@@ -2,20 +2,31 @@
 
 Goals (issue: browser app): from an edit of the target to the updated preview
 under 300 ms for the demo room, page load under 1 s (the Room page, and a design
-opened in Explore with its decay times and ringing maps fetched and drawn).
+opened in Explore with its decay times and ringing maps fetched and drawn), the
+live meter at least 10 updates a second without dropped audio buffers.
 Printed against work done without the server in the same run (the whole
 ``run_design`` for the same settings, the report's own decay and ringing
 sections, and fetching one static file), so the ratios travel between machines.
+
+The live meter is measured on a measurement started through the app's own
+route, with a real-time stand-in for the audio device (:class:`_ClockedAudio`:
+256-frame blocks at 48 kHz, each callback called when its block is due, the
+microphone hearing the output one block later); meter events are counted where
+a page receives them (the live WebSocket). A callback served more than one block
+period after its due time is counted as late (a sound card would have under-run);
+the same measurement without the app and its meter is the reference.
 """
 
 from __future__ import annotations
 
 import shutil
 import tempfile
+import threading
 import time
 from pathlib import Path
 
 import httpx2 as httpx
+import numpy as np
 from _util import best_of, print_table
 
 from roomcorr import rooms
@@ -90,6 +101,133 @@ def _browser_times(url: str, profile: Path, run_id: str) -> dict[str, float] | N
         browser.quit()
 
 
+class _ClockedAudio:
+    """Enough of ``sounddevice`` for one full-duplex stream, paced by the clock."""
+
+    BLOCK = 256
+
+    class CallbackStop(Exception):
+        pass
+
+    class CallbackAbort(Exception):
+        pass
+
+    class PortAudioError(Exception):
+        pass
+
+    def __init__(self) -> None:
+        self.late = 0
+        self.blocks = 0
+        outer = self
+
+        class Stream:
+            def __init__(
+                self, device, samplerate, channels, dtype, blocksize, callback, finished_callback
+            ):
+                self.fs, self.cb, self.done = samplerate, callback, finished_callback
+                self.n_in, self.n_out = channels
+                self.running = True
+                self.thread = threading.Thread(target=self._run, daemon=True)
+
+            def _run(self) -> None:
+                period = outer.BLOCK / self.fs
+                rng = np.random.default_rng(0)
+                heard = np.zeros((outer.BLOCK, self.n_out), np.float32)
+                t0, k = time.perf_counter(), 0
+                while self.running:
+                    due = t0 + k * period
+                    wait = due - time.perf_counter()
+                    if wait > 0:
+                        time.sleep(wait)
+                    elif -wait > period:
+                        outer.late += 1
+                    indata = np.zeros((outer.BLOCK, self.n_in), np.float32)
+                    indata[:, 0] = 0.5 * heard.sum(axis=1) + 1e-4 * rng.standard_normal(outer.BLOCK)
+                    outdata = np.zeros((outer.BLOCK, self.n_out), np.float32)
+                    try:
+                        self.cb(indata, outdata, outer.BLOCK, None, None)
+                    except (outer.CallbackStop, outer.CallbackAbort):
+                        break
+                    heard = outdata
+                    outer.blocks += 1
+                    k += 1
+                self.done()
+
+            def start(self) -> None:
+                self.thread.start()
+
+            def abort(self) -> None:
+                self.running = False
+
+            def stop(self) -> None:
+                self.thread.join(10)
+
+            def close(self) -> None:
+                self.running = False
+
+        self.Stream = Stream
+
+
+def live_meter_rate(tmp: Path) -> dict:
+    """Meter events per second as a page receives them, and late audio callbacks."""
+    from starlette.testclient import TestClient
+
+    from roomcorr.app import measure as am
+    from roomcorr.measure import capture
+    from roomcorr.ui.server import create_app
+
+    room = rooms.init_room(tmp / "meter")
+    audio = _ClockedAudio()
+    saved = capture._sd, capture.open_devices
+    capture._sd = lambda: audio
+    capture.open_devices = lambda *a, **k: capture.Devices(0, "clocked", 0, "clocked", False)
+    try:
+        am.acknowledge_cautions(room)
+        client = TestClient(create_app(room, TOKEN, 1), base_url="http://127.0.0.1:1")
+        hdr = {TOKEN_HEADER: TOKEN}
+        settings = {"outputs": [1], "positions": 1, "sweep_s": 2.0, "repeats": 1}
+        spans, meters, start = [], 0, None
+        with client.websocket_connect(f"ws://127.0.0.1:1/api/live?token={TOKEN}") as ws:
+            ws.receive_json()
+            r = client.post("/api/measure/start", headers=hdr, json={"settings": settings})
+            r.raise_for_status()
+            while True:
+                ev = ws.receive_json()
+                now = time.perf_counter()
+                if ev["type"] == "capture":
+                    start, meters = now, 0
+                elif ev["type"] == "meter" and start is not None:
+                    meters += 1
+                elif ev["type"] == "capture_done" and start is not None:
+                    spans.append((meters, now - start))
+                    start = None
+                elif ev["type"] == "prompt":
+                    client.post("/api/measure/answer", headers=hdr, json={"answer": "continue"})
+                elif ev["type"] in ("finished", "stopped", "failed"):
+                    break
+    finally:
+        capture._sd, capture.open_devices = saved
+    rates = [n / s for n, s in spans if s > 0]
+    # reference: the same measurement without the app and without a meter
+    plain = _ClockedAudio()
+    capture._sd = lambda: plain
+    capture.open_devices = lambda *a, **k: capture.Devices(0, "clocked", 0, "clocked", False)
+    try:
+        ms = am.settings_for_room(room, settings)
+        am.measure_in_room(room, ms, say=lambda text: None, answer=lambda text: "")
+    finally:
+        capture._sd, capture.open_devices = saved
+    return {
+        "result": ev["type"],
+        "min_rate": min(rates) if rates else 0.0,
+        "captures": len(spans),
+        "late": audio.late,
+        "blocks": audio.blocks,
+        "late_plain": plain.late,
+        "blocks_plain": plain.blocks,
+    }
+
+
 def main() -> None:
     from roomcorr.app import decay_view, design_view
     from roomcorr.app.design import design_in_room
@@ -123,6 +261,7 @@ def main() -> None:
                 http_decay_s = best_of(lambda: client.get(one), 3)
                 decay_kb = len(client.get(one).content) / 1000
             browser = _browser_times(f"{base}/?token={TOKEN}", Path(tmp) / "profile", run_id)
+        meter = live_meter_rate(Path(tmp))
 
     def shown(key: str) -> str:
         return "no browser" if browser is None else f"{browser[key] * 1000:.0f} ms"
@@ -180,6 +319,18 @@ def main() -> None:
             "open a design in Explore: fetch and draw all (goal < 1 s)",
             shown("explore"),
             "-",
+            "-",
+        ],
+        [
+            f"live meter, slowest of {meter['captures']} captures (goal >= 10/s)",
+            f"{meter['min_rate']:.1f} updates/s",
+            f"audio blocks {48000 / _ClockedAudio.BLOCK:.1f}/s",
+            f"{meter['min_rate'] / (48000 / _ClockedAudio.BLOCK):.3f}",
+        ],
+        [
+            "late audio blocks with the app's meter (goal 0)",
+            f"{meter['late']} of {meter['blocks']}",
+            f"no app, no meter: {meter['late_plain']} of {meter['blocks_plain']}",
             "-",
         ],
     ]

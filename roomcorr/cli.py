@@ -444,39 +444,22 @@ def _add_devices(sub: Any) -> argparse.ArgumentParser:
     return p
 
 
-def _last_devices(room_arg: str | None) -> dict | None:
-    """Devices of the room's latest measurement that recorded them (or None)."""
-    import json
-
+def _room_quietly(room_arg: str | None) -> Any:
+    """The room named or around us, or None (also when it cannot be opened)."""
     from roomcorr import rooms
 
     try:
-        room = rooms.open_room(room_arg) if room_arg else rooms.find_room()
-        if room is None:
-            return None
-        for run in reversed(rooms.list_runs(room, "measurement")):
-            path = Path(run.path) / "measurement.json"
-            if path.is_file():
-                devs = json.loads(path.read_text(encoding="utf-8")).get("devices")
-                if isinstance(devs, dict):
-                    return devs
-    except (RoomcorrError, OSError, ValueError, AttributeError):
+        return rooms.open_room(room_arg) if room_arg else rooms.find_room()
+    except RoomcorrError:
         return None
-    return None
 
 
 def _run_devices(args: argparse.Namespace) -> int:
-    from roomcorr.errors import DeviceError
-    from roomcorr.measure.capture import list_devices
+    from roomcorr.app.measure import devices_view
 
-    devs = list_devices()
-    if not devs:
-        raise DeviceError(
-            "no audio devices found: plug in the microphone and the output, close programs "
-            "that hold them, then run 'roomcorr devices' again"
-        )
-    last = _last_devices(getattr(args, "room", None)) or {}
-    for d in devs:
+    view = devices_view(_room_quietly(getattr(args, "room", None)))
+    last = view["last"]
+    for d in view["devices"]:
         can = [w for w, n in (("play", d["max_output_channels"]),
                               ("record", d["max_input_channels"])) if n > 0]
         marks = []
@@ -619,8 +602,8 @@ def measure_settings_from_args(
 
 def _run_measure(args: argparse.Namespace) -> int:
     from roomcorr import rooms
+    from roomcorr.app.measure import measure_in_room, measure_into
     from roomcorr.measure.live import make_view
-    from roomcorr.measure.session import copy_unfinished, run_measurement
 
     room = rooms.open_room(args.room) if args.room else None
     if room is None and not args.out:
@@ -631,8 +614,8 @@ def _run_measure(args: argparse.Namespace) -> int:
     if args.out:
         ms = measure_settings_from_args(args)
         with view:
-            record = run_measurement(ms, args.out, replace=args.replace, resume=args.resume,
-                                     **kw)
+            record = measure_into(ms, args.out, replace=args.replace, resume=args.resume,
+                                  **kw)
         n = sum(1 for p in record["positions"] if p["file"])
         print(f"measured {n} position(s) into {args.out}; next: roomcorr design {args.out}")
         return 0
@@ -641,22 +624,11 @@ def _run_measure(args: argparse.Namespace) -> int:
             "measure: give --out DIR, or run it inside a room folder (see roomcorr init)"
         )
     ms = measure_settings_from_args(args, rooms.load_room_settings(room).measure)
-    unfinished = None
-    if args.resume:
-        runs = rooms.list_runs(room, "measurement")
-        unfinished = runs[-1].path if runs and not runs[-1].complete else None
-        if unfinished is None:
-            raise SettingsError(
-                f"{room.root}: the latest measurement is complete; nothing to resume"
-            )
-    with view, rooms.new_run(room, "measurement") as run_dir:
-        if unfinished is not None:  # the unfinished run stays as it is; its work is copied
-            copy_unfinished(unfinished, run_dir)
-        record = run_measurement(ms, run_dir, replace=False, resume=unfinished is not None,
-                                 **kw)
-    n = sum(1 for p in record["positions"] if p["file"])
+    with view:
+        res = measure_in_room(room, ms, resume=args.resume, **kw)
     print(
-        f"measured {n} position(s) into {run_dir.relative_to(room.root)}; next: roomcorr design"
+        f"measured {res['positions_saved']} position(s) into "
+        f"{res['run_dir'].relative_to(room.root)}; next: roomcorr design"
     )
     return 0
 
@@ -682,38 +654,14 @@ def _add_calibrate_mic(sub: Any) -> argparse.ArgumentParser:
 
 
 def _run_calibrate_mic(args: argparse.Namespace) -> int:
-    from roomcorr.errors import InputFileError
-    from roomcorr.measure.capture import record
-    from roomcorr.measure.levels import rms_dbfs, sensitivity_from_calibrator
+    from roomcorr.app.measure import calibrate_microphone
     from roomcorr.measure.live import make_view
-    from roomcorr.measure.settings import SENSITIVITY_RANGE_DBFS
 
-    if args.calibrator_level not in (94.0, 114.0):
-        raise SettingsError("--calibrator-level: acoustic calibrators give 94 or 114 dB SPL")
-    if not 1.0 <= args.seconds <= 30.0:
-        raise SettingsError("--seconds: use 1 to 30")
     view = make_view(plain=args.plain)
     with view:
-        view.start(f"recording the calibrator at input {args.input}", args.seconds)
-        try:
-            x = record(args.rate, args.input, args.seconds, args.device,
-                       progress=view.update)
-        finally:
-            view.stop()
-    x = x[int(0.5 * args.rate):]  # the first half second may hold the stream's start
-    sens, frac = sensitivity_from_calibrator(x, args.rate, args.calibrator_level)
-    lo, hi = SENSITIVITY_RANGE_DBFS
-    if frac < 0.9:
-        raise InputFileError(
-            f"input {args.input}: no steady 1 kHz tone ({frac:.0%} of the level near 1 kHz, "
-            f"input at {rms_dbfs(x):.1f} dBFS); is the calibrator on and seated on the "
-            "microphone?"
-        )
-    if not lo <= sens <= hi:
-        raise InputFileError(
-            f"input {args.input}: the reading gives {sens:.1f} dBFS for 94 dB SPL, outside "
-            f"{lo:g} to {hi:g}; check the input gain (clipping or far too low)"
-        )
+        res = calibrate_microphone(args.rate, args.input, args.seconds, args.device,
+                                   args.calibrator_level, view=view)
+    sens, frac = res["sensitivity_dbfs"], res["fraction_at_1k"]
     print(f"microphone sensitivity: {sens:.2f} dBFS for 94 dB SPL "
           f"({args.calibrator_level:g} dB SPL calibrator, {frac:.1%} of the level at 1 kHz)")
     print(f"use it: roomcorr measure --mic-sensitivity {sens:.2f} (same input gain), or "

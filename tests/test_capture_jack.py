@@ -744,7 +744,9 @@ def test_measure_through_a_design_gives_room_times_filter(make_room, tmp_path): 
         **dict(TWO, ir_s=0.4, tail_s=0.5),
     )
     lines = []
-    rec = run_measurement(
+    from roomcorr.app.measure import measure_into
+
+    rec = measure_into(
         ms, tmp_path / "out", ask=repeat_on_xruns(), say=lines.append, through=design
     )
     ir, _ = sf.read(tmp_path / "out" / "pos1.wav", always_2d=True)

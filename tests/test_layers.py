@@ -43,9 +43,6 @@ KNOWN = {
     # IEC 61260-1 band centres, a table both stages use
     ("roomcorr.measure.deconvolve", "roomcorr.analysis.bands"),
     ("roomcorr.measure.quality", "roomcorr.analysis.bands"),
-    # playback through a design: orchestration, moving to app/
-    ("roomcorr.measure.through", "roomcorr.analysis.smoothing"),
-    ("roomcorr.measure.through", "roomcorr.deliver.export"),
     # write_report works out the comparison itself; the orchestration belongs in app/
     ("roomcorr.report.html", "roomcorr.app.compare"),
 }

@@ -1,9 +1,10 @@
-"""Measuring through a design's filters (roomcorr.measure.through), offline parts."""
+"""Measuring through a design's filters (measure.through, app.through), offline parts."""
 
 import numpy as np
 import pytest
 
-from roomcorr.measure.through import _ranges, filter_rows, through_check
+from roomcorr.app.through import _ranges, through_check
+from roomcorr.measure.through import filter_rows
 
 FS = 48000
 

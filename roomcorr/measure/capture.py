@@ -2,7 +2,10 @@
 
 Playback and recording run in one full-duplex stream so the offset between
 what is played and what is recorded is the (fixed) system latency of that
-stream. Ctrl-C aborts the stream at once (no fade, no further output).
+stream. Ctrl-C aborts the stream at once (no fade, no further output), and so
+does a ``stop`` event (the browser app's Stop button): the audio callback
+writes silence from the next buffer on and aborts its stream, and the waiting
+thread raises :class:`Stopped`.
 """
 
 from __future__ import annotations
@@ -16,6 +19,13 @@ from dataclasses import dataclass
 import numpy as np
 
 from roomcorr.errors import DeviceError, SettingsError
+
+
+class Stopped(Exception):
+    """A capture was stopped on request (a set ``stop`` event); the sound stopped at once.
+
+    Not a user error: it travels like Ctrl-C (files already complete are kept).
+    """
 
 
 def _sd():
@@ -252,6 +262,7 @@ def play_record(
     devices: Devices | None = None,
     extra_s: float = 1.0,
     progress: Progress | None = None,
+    stop: threading.Event | None = None,
 ) -> Capture:
     """Play ``signal`` on ``out_channels`` while recording ``in_channels``.
 
@@ -278,12 +289,17 @@ def play_record(
         (room for the latency and for the second stream's later start).
     progress : callable, optional
         See :data:`Progress`.
+    stop : threading.Event, optional
+        When set, the output goes silent within one buffer, the stream is
+        aborted and :class:`Stopped` is raised.
 
     Returns
     -------
     Capture
     """
     sd = _sd()
+    if stop is not None and stop.is_set():
+        raise Stopped("stopped before the capture started")
     signal = np.atleast_2d(np.asarray(signal, dtype=np.float32))
     n_out = max(out_channels)
     n_in = max(in_channels)
@@ -296,7 +312,7 @@ def play_record(
         out_buf[n_pre:, ch - 1] += signal[row]
     if devices.two_streams:
         rec, problems, flags = _two_streams(
-            sd, out_buf, fs, n_in, devices, blocksize, int(round(extra_s * fs)), progress
+            sd, out_buf, fs, n_in, devices, blocksize, int(round(extra_s * fs)), progress, stop
         )
         rec = rec[:, [c - 1 for c in in_channels]].T.astype(np.float64)
         return Capture(rec, problems, flags, aligned=False)
@@ -305,6 +321,9 @@ def play_record(
     done = threading.Event()
 
     def callback(indata, outdata, frames, _time, status):
+        if stop is not None and stop.is_set():
+            outdata.fill(0)
+            raise sd.CallbackAbort
         pos = state["pos"]
         _note_status(state, status)
         n = min(frames, n_total - pos)
@@ -334,6 +353,7 @@ def play_record(
         state,
         n_total,
         progress,
+        stop,
     )
     rec = in_buf[n_pre:, [c - 1 for c in in_channels]].T.astype(np.float64)
     return Capture(rec, int(state["problems"]), sorted(state["flags"]))
@@ -348,8 +368,9 @@ def _run_stream(
     state: dict,
     n_total: int,
     progress: Progress | None,
+    stop: threading.Event | None = None,
 ) -> None:
-    """Open one stream with ``make()``, run it to the end; Ctrl-C aborts it at once."""
+    """Open one stream with ``make()``, run it to the end; Ctrl-C or ``stop`` aborts it."""
     try:
         with sigint_deferred():
             stream = make()
@@ -357,8 +378,8 @@ def _run_stream(
     except sd.PortAudioError as exc:
         raise DeviceError(f"could not open {what} at {fs} Hz: {exc}") from exc
     try:
-        _wait(done, state, n_total, progress)
-    except KeyboardInterrupt:
+        _wait(done, state, n_total, progress, stop=stop)
+    except (KeyboardInterrupt, Stopped):
         with sigint_deferred():
             stream.abort()  # stop sound output at once
         raise
@@ -409,10 +430,17 @@ def _wait(
     n_total: int,
     progress: Progress | None,
     stall_s: float = 10.0,
+    stop: threading.Event | None = None,
 ) -> None:
-    """Wait for ``done``; report progress; give up when the position stops moving."""
+    """Wait for ``done``; report progress; give up when the position stops moving.
+
+    Raises :class:`Stopped` as soon as ``stop`` is set (checked every 50 ms; the
+    audio callback itself has already silenced the output).
+    """
     last, still = -1, 0.0
     while not done.wait(0.05):
+        if stop is not None and stop.is_set():
+            raise Stopped("stopped on request")
         pos = state["pos"]
         if progress is not None:
             progress(min(pos / n_total, 1.0), *state["lv"])
@@ -422,6 +450,8 @@ def _wait(
                 return  # the caller reports the short recording
         else:
             last, still = pos, 0.0
+    if stop is not None and stop.is_set():  # the callback aborted its stream
+        raise Stopped("stopped on request")
 
 
 def _two_streams(
@@ -433,6 +463,7 @@ def _two_streams(
     blocksize: int,
     n_extra: int,
     progress: Progress | None,
+    stop: threading.Event | None = None,
 ) -> tuple[np.ndarray, int, list[str]]:
     """Record with one stream and play with another; the recording starts first."""
     n_play = out_buf.shape[0]
@@ -449,6 +480,9 @@ def _two_streams(
     in_cb = _recorder(sd, in_buf, st_in, 0, after_block)
 
     def out_cb(outdata, frames, _time, status):
+        if stop is not None and stop.is_set():
+            outdata.fill(0)
+            raise sd.CallbackAbort
         pos = st_out["pos"]
         _note_status(st_out, status)
         n = min(frames, n_play - pos)
@@ -501,20 +535,20 @@ def _two_streams(
             )
         with sigint_deferred():
             s_out.start()
-        _wait(out_done, st_out, n_play, progress)
+        _wait(out_done, st_out, n_play, progress, stop=stop)
         if st_out["pos"] < n_play:
             raise DeviceError(
                 f"output device {devices.output_name!r} stopped after "
                 f"{st_out['pos'] / fs:.1f} s of {n_play / fs:.1f} s (disconnected?); this "
                 "sweep was not kept"
             )
-        _wait(in_done, st_in, n_rec, None)
+        _wait(in_done, st_in, n_rec, None, stop=stop)
         if st_in["pos"] < n_rec:
             raise DeviceError(
                 f"input device {devices.input_name!r} stopped after {st_in['pos'] / fs:.1f} s "
                 "(disconnected?); this sweep was not kept"
             )
-    except KeyboardInterrupt:
+    except (KeyboardInterrupt, Stopped):
         with sigint_deferred():
             s_out.abort()  # stop sound output at once
             s_in.abort()

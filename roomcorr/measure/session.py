@@ -16,6 +16,7 @@ from __future__ import annotations
 import json
 import math
 import shutil
+import threading
 from collections.abc import Callable
 from pathlib import Path
 from typing import Any
@@ -438,7 +439,9 @@ def run_measurement(
     say: Callable[[str], None] = print,
     ask: Callable[[str], str] = input,
     view: Any = None,
-    through: str | Path | None = None,
+    through: dict | None = None,
+    stop: threading.Event | None = None,
+    notify: Callable[[dict], None] | None = None,
 ) -> dict:
     """Run a whole session and write the output folder (module docstring).
 
@@ -460,9 +463,18 @@ def run_measurement(
         Printing and prompting (the CLI passes print/input).
     view : LiveView, optional
         Live level meter and progress (:mod:`roomcorr.measure.live`); None = plain.
-    through : path, optional
-        A design folder: play the sweeps through its filters (:mod:`.through`) and
-        compare the result with the design's prediction.
+    through : dict, optional
+        A design's filters (``roomcorr.app.through.load_through``): the sweeps are
+        played through them (:func:`.through.filter_rows`). The comparison with the
+        design's prediction is the caller's (``roomcorr.app.measure``).
+    stop : threading.Event, optional
+        Set from another thread to silence the output at once and end the run
+        (:class:`roomcorr.measure.capture.Stopped` is raised; files already
+        complete are kept, as with Ctrl-C).
+    notify : callable, optional
+        Called with a small dict at each step (``{"type": "position", ...}``,
+        ``"speaker"``, ``"gates"``, ``"saved"``, ``"skipped"``, ``"level_check"``)
+        so an app can draw the progress.
 
     Returns
     -------
@@ -487,11 +499,8 @@ def run_measurement(
         )
         raise OutputError(f"{out} {hint}")
     record = _load_for_resume(out, ms, layout) if resume else None
-    thru = None
-    if through is not None:
-        from roomcorr.measure import through as th
-
-        thru = th.load_through(through, ms.sample_rate, len(ms.outputs))
+    thru = through
+    tell = notify if notify is not None else (lambda event: None)
     # devices first: a wrong device or rate stops here, before anything is written
     n_out = max([*ms.outputs, ms.reference_output, *([ms.loopback[0]] if ms.loopback else [])])
     n_in = max([ms.input, *([ms.loopback[1]] if ms.loopback else [])])
@@ -532,12 +541,14 @@ def run_measurement(
                 blocksize=ms.blocksize,
                 devices=devices,
                 progress=None if view is None else view.update,
+                stop=stop,
             )
         finally:
             if view is not None:
                 view.stop()
 
     created = not out.exists()
+    raw_created = not (out / "raw").exists()
     written: list[Path] = []
     if record is None:
         if replace and out.exists():
@@ -612,6 +623,7 @@ def run_measurement(
         check = level_check(ms, capture_fn)
         record["level_check"] = check
         say("level check: " + check["advice"])
+        tell({"type": "level_check", **check})
         if "predicted_spl_db" in check:
             say(
                 f"predicted sweep level at the microphone: {check['predicted_spl_db']:.0f} "
@@ -631,16 +643,23 @@ def run_measurement(
         if not record["positions"]:  # a failed start leaves nothing that blocks a retry
             for f in written:
                 f.unlink(missing_ok=True)
-            if created:
+            if created or raw_created:  # a room's new run folder exists already
                 _remove_empty(out / "raw")
+            if created:
                 _remove_empty(out)
         raise
     done = {p["position"] for p in record["positions"]}
     if done:
         say(f"resuming: position(s) {sorted(done)} kept")
+    for p in record["positions"]:
+        if p.get("file"):
+            tell({"type": "saved", "position": p["position"], "file": p["file"]})
+        elif p.get("skipped"):
+            tell({"type": "skipped", "position": p["position"], "reason": p["skipped"]})
     for pos in range(1, ms.positions + 1):
         if pos in done:
             continue
+        tell({"type": "position", "position": pos, "positions": ms.positions})
         if not yes:
             ask(
                 f"Place the microphone at position {pos} of {ms.positions} and press Enter "
@@ -653,6 +672,7 @@ def run_measurement(
         skipped = None
         for spk in ms.outputs:
             while True:
+                tell({"type": "speaker", "position": pos, "output": spk})
                 ir, ch, gates = _measure_one(
                     ms,
                     layout,
@@ -667,6 +687,14 @@ def run_measurement(
                 pos_rec["channels"] = [c for c in pos_rec["channels"] if c["output"] != spk]
                 pos_rec["channels"].append(ch)
                 write_record(record_path, record)
+                tell(
+                    {
+                        "type": "gates",
+                        "position": pos,
+                        "output": spk,
+                        "gates": [g.to_dict() for g in gates],
+                    }
+                )
                 if force or all(g.passed for g in gates):
                     break
                 where = f"position {pos}, output {spk}"
@@ -695,6 +723,7 @@ def run_measurement(
             pos_rec["skipped"] = skipped
             write_record(record_path, record)
             say(f"skipped position {pos}: {skipped}")
+            tell({"type": "skipped", "position": pos, "reason": skipped})
             continue
         name = f"pos{pos}.wav"
         write_ir_wav(out / name, np.array(irs), ms.sample_rate)
@@ -705,56 +734,11 @@ def run_measurement(
         )
         write_record(record_path, record)
         say(f"saved {out / name}")
+        tell({"type": "saved", "position": pos, "file": name})
     if not any(p["file"] for p in record["positions"]):
         reasons = [p.get("skipped") for p in record["positions"] if p.get("skipped")]
         raise q.QualityGateError(reasons[-1] if reasons else "no position was measured")
-    if thru is not None:
-        record["through"]["check"] = _through_summary(ms, out, record, thru, say)
-        write_record(record_path, record)
     return record
-
-
-def _through_summary(
-    ms: MeasureSettings, out: Path, record: dict, thru: dict, say: Callable
-) -> dict:
-    """Compare measured-through with the design's prediction; say where they differ."""
-    import soundfile as sf
-
-    from roomcorr.measure.through import through_check
-
-    saved = [p for p in record["positions"] if p.get("file")]
-    measured = np.array([sf.read(str(out / p["file"]), always_2d=True)[0].T for p in saved])
-    if thru["fs_in"] != ms.sample_rate:
-        say(f"through check skipped: the design was made from {thru['fs_in']} Hz measurements")
-        return {"skipped": "different sample rate"}
-    # from where the sweep is past its fade-in (full level) to below its end
-    sw = make_sweep(ms)
-    f_faded = sw.f_start_hz * math.exp(sw.fade_in_s / sw.rate_s)
-    band = (
-        max(ms.f_start_hz * 1.5, f_faded * 1.5, 20.0),
-        min(ms.f_end_hz / 1.2, 0.45 * ms.sample_rate),
-    )
-    res = through_check(measured, thru["irs"], thru["firs"], ms.sample_rate, band)
-    summary = {
-        "positions": [p["position"] for p in saved],
-        "band_hz": list(band),
-        "limit_db": res["limit_db"],
-        "smoothing_oct": res["smoothing_oct"],
-        "max_diff_db": np.round(res["max_diff_db"], 2).tolist(),
-        "over_limit_hz": res["over_limit"],
-        "freq_hz": np.round(res["freq_hz"], 2).tolist(),
-        "measured_db": np.round(res["measured_db"], 2).tolist(),
-        "predicted_db": np.round(res["predicted_db"], 2).tolist(),
-    }
-    for i, p in enumerate(saved):
-        for c, spk in enumerate(ms.outputs):
-            ranges = res["over_limit"][i][c]
-            where = ", ".join(f"{lo:g}-{hi:g} Hz" for lo, hi in ranges[:4]) or "nowhere"
-            say(
-                f"through check, position {p['position']}, output {spk}: measured vs "
-                f"predicted differ by more than {res['limit_db']:g} dB: {where}"
-            )
-    return summary
 
 
 def copy_unfinished(src: str | Path, dst: str | Path) -> None:

@@ -8,6 +8,7 @@ Levels start low and are capped: the sweep's peak defaults to
 from __future__ import annotations
 
 import math
+import re
 from dataclasses import asdict, dataclass, fields
 from typing import Any
 
@@ -21,6 +22,9 @@ SENSITIVITY_RANGE_DBFS = (-80.0, -3.0)
 #: Sweep level at the seat above which roomcorr warns: 75 to 85 dB SPL is plenty for
 #: a domestic room measurement (common practice).
 DEFAULT_MAX_SPL_DB = 85.0
+#: A loudspeaker name: it becomes part of the filter files' names (``fir/48000/NAME.wav``);
+#: the same characters as ``design.channel_names`` accepts.
+_LOUDSPEAKER_NAME = re.compile(r"[A-Za-z0-9_-]{1,32}")
 
 
 @dataclass
@@ -113,6 +117,12 @@ class MeasureSettings:
                 f"--names gives {len(self.names)} names for {len(self.outputs)} outputs; "
                 "give one name per --outputs channel"
             )
+        for name in self.names or ():
+            if not _LOUDSPEAKER_NAME.fullmatch(str(name)):  # names become filter file names
+                raise SettingsError(
+                    f"--names: {name!r} is not a plain name; use letters, digits, - and _ "
+                    "(at most 32)"
+                )
         if not self.outputs or any(int(c) < 1 for c in chans):
             raise SettingsError("channel numbers start at 1 (--outputs, --input, --loopback)")
         if self.reference is not None:

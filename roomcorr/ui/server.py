@@ -16,6 +16,7 @@ Security model (every rule has a test in ``tests/test_ui_server.py``):
 
 from __future__ import annotations
 
+import asyncio
 import contextlib
 import json
 import secrets
@@ -40,6 +41,7 @@ from starlette.websockets import WebSocket, WebSocketDisconnect
 
 from roomcorr import app as service
 from roomcorr import rooms
+from roomcorr.app import measure as measuring
 from roomcorr.app.design import DesignPreview
 from roomcorr.errors import RoomcorrError
 from roomcorr.settings import find_preset, preset_names, read_toml
@@ -130,6 +132,22 @@ class Live:
 
     def __init__(self) -> None:
         self.sockets: set[WebSocket] = set()
+        # per page: its event loop and a queue drained in order (events from threads)
+        self.queues: dict[WebSocket, tuple[asyncio.AbstractEventLoop, asyncio.Queue]] = {}
+
+    def publish_threadsafe(self, event: dict[str, Any]) -> None:
+        """Send ``event`` to every page from any thread (a measurement's worker), in order."""
+        for loop, q in list(self.queues.values()):
+            with contextlib.suppress(RuntimeError):  # that page's loop has ended
+                loop.call_soon_threadsafe(q.put_nowait, event)
+
+    async def _drain(self, ws: WebSocket, q: asyncio.Queue) -> None:
+        while True:
+            event = await q.get()
+            try:
+                await ws.send_json(event)
+            except Exception:  # noqa: BLE001 - a page that went away
+                return
 
     async def publish(self, event: dict[str, Any]) -> None:
         for ws in list(self.sockets):
@@ -142,6 +160,9 @@ class Live:
         await ws.accept()
         self.sockets.add(ws)
         await ws.send_json({"type": "hello"})
+        q: asyncio.Queue = asyncio.Queue()
+        self.queues[ws] = (asyncio.get_running_loop(), q)
+        drain = asyncio.create_task(self._drain(ws, q))
         try:
             while True:
                 await ws.receive_text()  # the page sends nothing; this waits for it to leave
@@ -149,6 +170,8 @@ class Live:
             pass
         finally:
             self.sockets.discard(ws)
+            self.queues.pop(ws, None)
+            drain.cancel()
 
 
 def target_presets() -> list[dict[str, Any]]:
@@ -227,7 +250,11 @@ def create_app(room: rooms.Room, token: str, port: int) -> ASGIApp:
             return _error(exc)
         return Response(json.dumps(data, allow_nan=False), media_type="application/json")
 
+    measurer = MeasureRoutes(room, live, body)
+
     async def save(request: Request) -> Response:
+        if measurer.busy():
+            return _error(RoomcorrError("a measurement is running; save when it has finished"), 409)
         try:
             edit = await body(request)
             prev = await run_in_threadpool(preview_for, edit.get("measurement"))
@@ -293,8 +320,174 @@ def create_app(room: rooms.Room, token: str, port: int) -> ASGIApp:
         Route("/api/preview", preview, methods=["POST"]),
         Route("/api/save", save, methods=["POST"]),
         WebSocketRoute("/api/live", live.endpoint),
+        *measurer.routes(),
     ]
     return Guard(Starlette(routes=routes), token, port)
+
+
+class MeasureRoutes:
+    """The Measure page's routes: devices, cautions, test tone, start, answer, stop, state.
+
+    Sound is refused until the room's cautions are acknowledged; one measurement
+    (or test tone) at a time; live meter, progress and prompts go out on the
+    live channel as events of :mod:`roomcorr.app.measure`. Settings are only the
+    keys of :data:`roomcorr.app.measure.APP_MEASURE_KEYS`, checked like a
+    settings file (the level cap and ``allow_loud`` included).
+    """
+
+    def __init__(
+        self,
+        room: rooms.Room,
+        live: Live,
+        body: Callable[[Request], Awaitable[dict[str, Any]]],
+    ) -> None:
+        self.room = room
+        self.live = live
+        self.body = body
+        self.job: measuring.MeasureJob | None = None
+        self.tone_stop = threading.Event()
+        self.tone_lock = threading.Lock()
+
+    def busy(self) -> bool:
+        return (self.job is not None and self.job.running()) or self.tone_lock.locked()
+
+    def _sender(self) -> Callable[[dict[str, Any]], None]:
+        return self.live.publish_threadsafe
+
+    @staticmethod
+    def _json(data: Any, status: int = 200) -> Response:
+        return Response(
+            json.dumps(data, allow_nan=False), status_code=status, media_type="application/json"
+        )
+
+    async def devices(self, request: Request) -> Response:
+        try:
+            data = await run_in_threadpool(measuring.devices_view, self.room)
+        except RoomcorrError as exc:  # no device: the page says what to do, and still works
+            data = {"devices": [], "last": {}, "problem": " ".join(str(exc).split())}
+        return self._json(data)
+
+    async def cautions(self, request: Request) -> Response:
+        return self._json(await run_in_threadpool(measuring.cautions_view, self.room))
+
+    async def acknowledge(self, request: Request) -> Response:
+        try:
+            data = await self.body(request)
+            if data.get("acknowledged") is not True:
+                raise RoomcorrError('acknowledge: send {"acknowledged": true} after reading')
+            view = await run_in_threadpool(measuring.acknowledge_cautions, self.room)
+        except RoomcorrError as exc:
+            return _error(exc, 409 if "in use" in str(exc) else 400)
+        await self.live.publish({"type": "cautions", "acknowledged": True})
+        return self._json(view)
+
+    async def _settings(self, data: dict[str, Any]) -> Any:
+        changes = data.get("settings") or {}
+        if not isinstance(changes, dict):
+            raise RoomcorrError("settings: expected a JSON object")
+        return await run_in_threadpool(measuring.settings_for_room, self.room, changes)
+
+    async def tone(self, request: Request) -> Response:
+        try:
+            data = await self.body(request)
+            measuring.require_acknowledged(self.room)
+            if self.busy():
+                return _error(RoomcorrError("a measurement or tone is playing; wait or stop"), 409)
+            ms = await self._settings(data)
+            output = data.get("output")
+            if not isinstance(output, int) or isinstance(output, bool):
+                raise RoomcorrError("tone: give the loudspeaker's output channel number")
+            send = self._sender()
+
+            def meter(fraction: float, peak: float, rms: float) -> None:
+                send(
+                    {
+                        "type": "meter",
+                        "label": f"test tone, output {output}",
+                        "fraction": round(fraction, 4),
+                        "peak_dbfs": round(peak, 2),
+                        "rms_dbfs": round(rms, 2),
+                    }
+                )
+
+            def play() -> dict[str, Any]:
+                if not self.tone_lock.acquire(blocking=False):
+                    raise RoomcorrError("a tone is playing already")
+                try:
+                    self.tone_stop.clear()
+                    return measuring.play_test_tone(ms, output, stop=self.tone_stop, meter=meter)
+                finally:
+                    self.tone_lock.release()
+
+            res = await run_in_threadpool(play)
+        except measuring.capture.Stopped:
+            return self._json({"stopped": True})
+        except RoomcorrError as exc:
+            return _error(exc)
+        await self.live.publish({"type": "tone", **res})
+        return self._json(res)
+
+    async def start(self, request: Request) -> Response:
+        try:
+            data = await self.body(request)
+            if self.busy():
+                return _error(RoomcorrError("a measurement is running already"), 409)
+            measuring.require_acknowledged(self.room)
+            ms = await self._settings(data)
+            if rooms.is_locked(self.room):
+                return _error(
+                    RoomcorrError(f"{self.room.root}: in use by another roomcorr command"), 409
+                )
+            job = measuring.MeasureJob(
+                self.room, ms, self._sender(), resume=data.get("resume") is True
+            )
+            job.start()
+        except RoomcorrError as exc:
+            return _error(exc)
+        self.job = job
+        return self._json(
+            {"state": "running", "positions": ms.positions, "outputs": list(ms.outputs)}
+        )
+
+    async def answer(self, request: Request) -> Response:
+        try:
+            data = await self.body(request)
+            if self.job is None:
+                raise RoomcorrError("no measurement is running")
+            self.job.answer(str(data.get("answer", "")))
+        except RoomcorrError as exc:
+            return _error(exc, 409 if "no measurement" in str(exc) else 400)
+        return self._json({"answered": data["answer"]})
+
+    async def stop(self, request: Request) -> Response:
+        self.tone_stop.set()
+        running = self.job is not None and self.job.running()
+        if self.job is not None:
+            self.job.stop()
+        return self._json({"stopping": running})
+
+    async def state(self, request: Request) -> Response:
+        job = self.job
+        return self._json(
+            {
+                "state": "idle" if job is None else job.state,
+                "prompt": None if job is None else job.prompt,
+                "result": None if job is None else job.result,
+                "resumable": measuring.unfinished_measurement(self.room) is not None,
+            }
+        )
+
+    def routes(self) -> list[Route]:
+        return [
+            Route("/api/measure/devices", self.devices),
+            Route("/api/measure/cautions", self.cautions),
+            Route("/api/measure/acknowledge", self.acknowledge, methods=["POST"]),
+            Route("/api/measure/tone", self.tone, methods=["POST"]),
+            Route("/api/measure/start", self.start, methods=["POST"]),
+            Route("/api/measure/answer", self.answer, methods=["POST"]),
+            Route("/api/measure/stop", self.stop, methods=["POST"]),
+            Route("/api/measure/state", self.state),
+        ]
 
 
 def bind_loopback(port: int = 0) -> socket.socket:
@@ -323,6 +516,7 @@ def background_server(room: rooms.Room, token: str) -> Iterator[str]:
             time.sleep(0.02)
         yield f"http://{LOOPBACK}:{port}"
     finally:
+        measuring.stop_all()
         server.should_exit = True
         thread.join(timeout=10)
         sock.close()
@@ -350,4 +544,5 @@ def serve(
     try:
         server.run(sockets=[sock])
     finally:
+        measuring.stop_all()  # Ctrl-C while sweeping: silence first, then leave
         sock.close()
