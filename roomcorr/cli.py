@@ -819,7 +819,7 @@ def _run_compare(args: argparse.Namespace) -> int:
 def _add_ui(sub: Any) -> argparse.ArgumentParser:
     p = sub.add_parser(
         "ui",
-        help="open the room in a local browser app (explore runs, plots, files)",
+        help="open the room in a local browser app (measure, design, explore runs and files)",
         description="Start a local server on 127.0.0.1 (a free port) for a room folder and open "
         "it in the browser. The printed address holds a one-time key; only this machine can "
         "reach it. Ctrl-C stops it.",
