@@ -317,6 +317,13 @@ def test_browser_shows_history_and_draws_a_design(demo_room, tmp_path):
             driver.find_element(By.CSS_SELECTOR, "nav button[data-tab=files]").click()
             links = driver.find_elements(By.CSS_SELECTOR, "#files tbody a")
             assert any(a.text.endswith(".wav") for a in links)
+            # Export: the full report of the design shown, written beside its files
+            shown = driver.find_element(By.ID, "files-title").text.rsplit(" ", 1)[-1]
+            driver.find_element(By.ID, "report-write").click()
+            wait.until(ec.text_to_be_present_in_element((By.ID, "status"), "report written"))
+            link = driver.find_element(By.ID, "report-link")
+            assert link.is_displayed() and link.get_attribute("href").endswith("/report.html")
+            assert (demo_room.designs_dir / shown / "report.html").is_file()
             _no_console_errors(driver)
     finally:
         driver.quit()
@@ -673,3 +680,47 @@ def test_preview_refuses_target_points_the_target_rules_refuse(client):
     good = client.post("/api/preview", headers=_auth(),
                        json={"table": {"points": [[40.0, 3.0], [1000.0, -1.0]]}})
     assert good.status_code == 200, good.text
+
+
+# --------------------------------------------------------------------------- the full report
+
+
+def test_report_is_the_one_the_cli_writes_and_keeps_the_run_whole(client, demo_room):
+    run_id = _design_id(demo_room)
+    run_dir = demo_room.designs_dir / run_id
+    r = client.post(f"/api/report/design/{run_id}", headers=_auth(), json={})
+    assert r.status_code == 200, r.text
+    data = r.json()
+    assert data["path"] == "report.html" and data["summary"]
+    served = client.get(f"/api/file/design/{run_id}/report.html", headers=_auth())
+    assert served.status_code == 200
+    assert served.content == (run_dir / "report.html").read_bytes()
+    # The same engine: `roomcorr report RUN` writes the same page, byte for byte.
+    assert cli.main(["report", str(run_dir)]) == 0
+    assert (run_dir / "report.html").read_bytes() == served.content
+    rooms.verified(demo_room, run_dir)  # the run's own files are untouched (SHA-256 of all)
+
+
+def test_report_refusals(client, demo_room):
+    run_id = _design_id(demo_room)
+    assert client.post(f"/api/report/design/{run_id}", json={}).status_code == 403  # no token
+    for kind, rid in (("design", ".."), ("design", "no-such-run"), ("settings", run_id)):
+        r = client.post(f"/api/report/{kind}/{rid}", headers=_auth(), json={})
+        assert r.status_code in (400, 404), (kind, rid)
+    import subprocess
+    import sys
+
+    holder = subprocess.Popen(
+        [sys.executable, "-c",
+         "import sys, time; from roomcorr import rooms as r; "
+         f"room = r.open_room({str(demo_room.root)!r});\n"
+         "with r.room_lock(room, 'test holder'):\n print('held', flush=True); time.sleep(60)"],
+        stdout=subprocess.PIPE, text=True,
+    )
+    try:
+        assert holder.stdout.readline().strip() == "held"
+        r = client.post(f"/api/report/design/{run_id}", headers=_auth(), json={})
+        assert r.status_code == 409 and r.json()["error"]
+    finally:
+        holder.kill()
+        holder.wait()

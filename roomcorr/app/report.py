@@ -3,7 +3,10 @@
 from __future__ import annotations
 
 from pathlib import Path
+from typing import Any
 
+from roomcorr import rooms
+from roomcorr.app.explore import run_folder
 from roomcorr.deliver.export import load_design_curves, read_manifest
 from roomcorr.deliver.system import system_sentences
 from roomcorr.report.html import write_report
@@ -45,3 +48,35 @@ def report_folder(
         lines += summary_sentences(curves, caps.get("max_boost_db"))
         lines += system_sentences(system_fields(curves))
     return path, lines
+
+
+def report_in_room(room: rooms.Room, kind: str, run_id: str) -> dict[str, Any]:
+    """Write the full report of a run of the room, beside its files (the browser app).
+
+    The same report as ``roomcorr report RUN`` writes for a run of a room
+    (:func:`report_folder`, default destination), written under the room lock
+    so it never races a command writing to the room.
+
+    Parameters
+    ----------
+    room : roomcorr.rooms.Room
+    kind : {"design", "measurement"}
+    run_id : str
+        Plain name of an existing run (contained in the room folder).
+
+    Returns
+    -------
+    dict
+        ``path``: the report's path relative to the run folder; ``summary``:
+        the plain-language lines (empty for a measurement).
+
+    Raises
+    ------
+    RoomcorrError
+        For a run id that is not a run of the room, a damaged run, or a room
+        held by another command.
+    """
+    folder = run_folder(room, kind, run_id)
+    with rooms.room_lock(room, "writing a report"):
+        path, lines = report_folder(folder)
+    return {"path": path.resolve().relative_to(folder).as_posix(), "summary": lines}

@@ -43,6 +43,7 @@ from roomcorr import app as service
 from roomcorr import rooms
 from roomcorr.app import measure as measuring
 from roomcorr.app.design import DesignPreview
+from roomcorr.app.report import report_in_room
 from roomcorr.errors import RoomcorrError
 from roomcorr.settings import find_preset, preset_names, read_toml
 
@@ -185,6 +186,11 @@ def target_presets() -> list[dict[str, Any]]:
     return out
 
 
+def _room_busy(exc: RoomcorrError) -> bool:
+    """Whether ``exc`` says another command holds the room (:func:`rooms.room_lock`)."""
+    return ": in use by " in str(exc) or "lock" in str(exc)
+
+
 def create_app(room: rooms.Room, token: str, port: int) -> ASGIApp:
     """The app for one room folder, guarded by :class:`Guard`.
 
@@ -262,7 +268,7 @@ def create_app(room: rooms.Room, token: str, port: int) -> ASGIApp:
             run_dir, entries = await run_in_threadpool(prev.save, edit, str(edit.get("name", "")))
         except RoomcorrError as exc:
             await live.publish({"type": "design", "state": "failed", "error": str(exc)})
-            return _error(exc, 409 if "lock" in str(exc) or "held" in str(exc) else 400)
+            return _error(exc, 409 if _room_busy(exc) else 400)
         await live.publish({"type": "design", "state": "finished", "run_id": run_dir.name})
         return JSONResponse({"run_id": run_dir.name, "files": len(entries)})
 
@@ -275,6 +281,16 @@ def create_app(room: rooms.Room, token: str, port: int) -> ASGIApp:
         except RoomcorrError as exc:
             return _error(exc, 404)
         return FileResponse(path, filename=path.name)
+
+    async def report(request: Request) -> Response:
+        if measurer.busy():
+            return _error(RoomcorrError("a measurement is running; write the report later"), 409)
+        p = request.path_params
+        try:
+            data = await run_in_threadpool(report_in_room, room, p["kind"], p["run_id"])
+        except RoomcorrError as exc:
+            return _error(exc, 409 if _room_busy(exc) else 404 if "not a" in str(exc) else 400)
+        return JSONResponse(data)
 
     async def decay(request: Request) -> Response:
         p, q = request.path_params, request.query_params
@@ -319,6 +335,7 @@ def create_app(room: rooms.Room, token: str, port: int) -> ASGIApp:
         Route("/api/presets", api(target_presets)),
         Route("/api/preview", preview, methods=["POST"]),
         Route("/api/save", save, methods=["POST"]),
+        Route("/api/report/{kind}/{run_id}", report, methods=["POST"]),
         WebSocketRoute("/api/live", live.endpoint),
         *measurer.routes(),
     ]

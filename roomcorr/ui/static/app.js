@@ -570,8 +570,32 @@ async function openCompare() {
   }
 }
 
+// The full report of the design shown on the Files tab: the same report.html
+// `roomcorr report RUN` writes, beside the run's files (written on the server).
+let filesRun = null;
+
+async function writeReport() {
+  if (!filesRun) return;
+  const note = document.getElementById("report-note");
+  const link = document.getElementById("report-link");
+  note.textContent = "writing the report...";
+  try {
+    const res = await api(`/api/report/design/${encodeURIComponent(filesRun)}`, {});
+    link.href = `/api/file/design/${encodeURIComponent(filesRun)}/${res.path.split("/").map(encodeURIComponent).join("/")}`;
+    link.hidden = false;
+    note.textContent = res.summary.length ? res.summary[0] : "";
+    status(`report written: ${res.path}`);
+  } catch (err) {
+    note.textContent = "";
+    status(String(err.message || err), true);
+  }
+}
+
 async function loadFiles(runId, prefetched = null) {
   const files = await (prefetched || api(`/api/files/${encodeURIComponent(runId)}`));
+  filesRun = runId;
+  document.getElementById("report-link").hidden = true;
+  document.getElementById("report-note").textContent = "";
   document.getElementById("files-title").textContent = `Files of design ${runId}`;
   const body = document.querySelector("#files tbody");
   body.innerHTML = "";
@@ -966,6 +990,7 @@ async function setupDesign() {
   el("d-clear-points").addEventListener("click", () => { targetPoints = []; renderPoints(); shaped = true; schedule(); });
   el("d-save").addEventListener("click", saveDesign);
   el("c-go").addEventListener("click", openCompare);
+  el("report-write").addEventListener("click", writeReport);
   const p = presets.find(q => q.name === sel.value);
   setControls(p ? p.table : {});
 }
