@@ -547,8 +547,17 @@ def test_resume_after_sigkill_at_position_2_of_3(make_room, tmp_path):  # noqa: 
     )
     proc.stdin.write(REPEAT_ANSWERS)
     proc.stdin.flush()
+    def pos1_recorded() -> bool:
+        # saved = the WAV written AND the record updated after it (a kill between the two
+        # rightly measures position 1 again on --resume)
+        try:
+            rec = json.loads((out / "measurement.json").read_text())
+        except (OSError, ValueError):
+            return False
+        return any(p.get("file") == "pos1.wav" for p in rec.get("positions", []))
+
     for _ in range(600):  # until position 1 is saved
-        if (out / "pos1.wav").exists() or proc.poll() is not None:
+        if pos1_recorded() or proc.poll() is not None:
             break
         time.sleep(0.1)
     proc.send_signal(signal.SIGKILL)  # no chance to clean up: as a crash or power loss
