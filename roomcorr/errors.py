@@ -27,5 +27,9 @@ class OutputError(RoomcorrError):
     """An output folder or file cannot be written as asked."""
 
 
+class RoomBusyError(OutputError):
+    """Another roomcorr command holds the room folder's lock (try again when it ends)."""
+
+
 class DeviceError(RoomcorrError):
     """The audio device or audio library is missing or misbehaves."""

@@ -17,7 +17,7 @@ from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
 
-from roomcorr.errors import OutputError
+from roomcorr.errors import OutputError, RoomBusyError
 from roomcorr.rooms.folder import LOCK_FILE, Room, iso_utc, utc_now
 
 _HELD: dict[Path, list[Any]] = {}
@@ -77,7 +77,7 @@ def room_lock(room: Room, purpose: str = "") -> Iterator[None]:
         _try_lock(fd)
     except BlockingIOError:
         os.close(fd)
-        raise OutputError(
+        raise RoomBusyError(
             f"{room.root}: in use by {_holder_note(path)}; wait for it to finish and "
             "try again (two commands must not write one room folder at once)"
         ) from None

@@ -44,7 +44,7 @@ from roomcorr import rooms
 from roomcorr.app import measure as measuring
 from roomcorr.app.design import DesignPreview
 from roomcorr.app.report import report_in_room
-from roomcorr.errors import RoomcorrError
+from roomcorr.errors import RoomBusyError, RoomcorrError
 from roomcorr.settings import find_preset, preset_names, read_toml
 
 TOKEN_HEADER = "x-roomcorr-token"
@@ -186,11 +186,6 @@ def target_presets() -> list[dict[str, Any]]:
     return out
 
 
-def _room_busy(exc: RoomcorrError) -> bool:
-    """Whether ``exc`` says another command holds the room (:func:`rooms.room_lock`)."""
-    return ": in use by " in str(exc) or "lock" in str(exc)
-
-
 def create_app(room: rooms.Room, token: str, port: int) -> ASGIApp:
     """The app for one room folder, guarded by :class:`Guard`.
 
@@ -268,7 +263,7 @@ def create_app(room: rooms.Room, token: str, port: int) -> ASGIApp:
             run_dir, entries = await run_in_threadpool(prev.save, edit, str(edit.get("name", "")))
         except RoomcorrError as exc:
             await live.publish({"type": "design", "state": "failed", "error": str(exc)})
-            return _error(exc, 409 if _room_busy(exc) else 400)
+            return _error(exc, 409 if isinstance(exc, RoomBusyError) else 400)
         await live.publish({"type": "design", "state": "finished", "run_id": run_dir.name})
         return JSONResponse({"run_id": run_dir.name, "files": len(entries)})
 
@@ -289,7 +284,8 @@ def create_app(room: rooms.Room, token: str, port: int) -> ASGIApp:
         try:
             data = await run_in_threadpool(report_in_room, room, p["kind"], p["run_id"])
         except RoomcorrError as exc:
-            return _error(exc, 409 if _room_busy(exc) else 404 if "not a" in str(exc) else 400)
+            busy, missing = isinstance(exc, RoomBusyError), "not a" in str(exc)
+            return _error(exc, 409 if busy else 404 if missing else 400)
         return JSONResponse(data)
 
     async def decay(request: Request) -> Response:
@@ -394,7 +390,7 @@ class MeasureRoutes:
                 raise RoomcorrError('acknowledge: send {"acknowledged": true} after reading')
             view = await run_in_threadpool(measuring.acknowledge_cautions, self.room)
         except RoomcorrError as exc:
-            return _error(exc, 409 if "in use" in str(exc) else 400)
+            return _error(exc, 409 if isinstance(exc, RoomBusyError) else 400)
         await self.live.publish({"type": "cautions", "acknowledged": True})
         return self._json(view)
 
@@ -453,7 +449,7 @@ class MeasureRoutes:
             ms = await self._settings(data)
             if rooms.is_locked(self.room):
                 return _error(
-                    RoomcorrError(f"{self.room.root}: in use by another roomcorr command"), 409
+                    RoomBusyError(f"{self.room.root}: in use by another roomcorr command"), 409
                 )
             job = measuring.MeasureJob(
                 self.room, ms, self._sender(), resume=data.get("resume") is True
