@@ -157,7 +157,8 @@ def filter_response(
     :func:`scipy.signal.group_delay`), read at ``freq_hz`` by linear
     interpolation between bins at most ``fs / min_fft`` apart; where the delay
     changes by more than 1 µs between two bins (a notch) the frequency is
-    evaluated exactly by a direct DFT. Frequencies at or above Nyquist give NaN.
+    evaluated exactly (:func:`scipy.signal.freqz`). Frequencies at or above
+    Nyquist give NaN.
     """
     h = np.asarray(fir, dtype=float)
     f = np.asarray(freq_hz, dtype=float)
@@ -178,19 +179,20 @@ def filter_response(
     phase[ok] = np.degrees(np.arctan2(im, re))
     gd[ok] = np.interp(f[ok], bins, gd_bins) / fs * 1000.0
     # Near a notch the delay changes fast between two bins and a line between
-    # them misreads it: evaluate those few frequencies exactly (direct DFT).
+    # them misreads it: evaluate those few frequencies exactly (scipy's freqz,
+    # the same identity as scipy.signal.group_delay).
     idx = np.flatnonzero(ok)
     k = np.clip(np.searchsorted(bins, f[idx]), 1, bins.size - 1)
-    fast = np.abs(gd_bins[k] - gd_bins[k - 1]) > 0.001 * fs / 1000.0
-    if np.any(fast):
-        sel = idx[fast]
-        n = np.arange(h.size)
-        for i in sel:
-            e = np.exp(-2j * np.pi * f[i] / fs * n)
-            s_i, r_i = h @ e, (n * h) @ e
-            gain[i] = 20 * np.log10(np.abs(s_i)) if s_i != 0 else -np.inf
-            phase[i] = np.degrees(np.angle(s_i))
-            gd[i] = np.real(r_i / s_i) / fs * 1000.0 if s_i != 0 else np.nan
+    sel = idx[np.abs(gd_bins[k] - gd_bins[k - 1]) > 0.001 * fs / 1000.0]
+    if sel.size:
+        from scipy.signal import freqz
+
+        _, s_sel = freqz(h, worN=f[sel], fs=fs)
+        _, r_sel = freqz(np.arange(h.size) * h, worN=f[sel], fs=fs)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            gain[sel] = 20 * np.log10(np.abs(s_sel))
+            gd[sel] = np.real(r_sel / s_sel) / fs * 1000.0
+        phase[sel] = np.degrees(np.angle(s_sel))
     return gain, phase, gd
 
 
