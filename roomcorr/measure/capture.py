@@ -15,6 +15,7 @@ import signal
 import threading
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 
@@ -321,17 +322,9 @@ def play_record(
     done = threading.Event()
 
     def callback(indata, outdata, frames, _time, status):
-        if stop is not None and stop.is_set():
-            outdata.fill(0)
-            raise sd.CallbackAbort
-        pos = state["pos"]
-        _note_status(state, status)
-        n = min(frames, n_total - pos)
+        pos, n = _play_block(sd, outdata, frames, status, state, out_buf, stop)
         if n > 0:
-            outdata[:n] = out_buf[pos : pos + n]
             in_buf[pos : pos + n] = indata[:n]
-        outdata[max(n, 0) :] = 0
-        state["pos"] = pos + max(n, 0)
         state["lv"] = _levels(indata)
         if state["pos"] >= n_total:
             raise sd.CallbackStop
@@ -392,6 +385,34 @@ def _run_stream(
             f"{what} stopped after {state['pos'] / fs:.1f} s of {n_total / fs:.1f} s "
             "(disconnected?); this take was not kept"
         )
+
+
+def _play_block(
+    sd,
+    outdata: np.ndarray,
+    frames: int,
+    status: Any,
+    state: dict,
+    out_buf: np.ndarray,
+    stop: threading.Event | None,
+) -> tuple[int, int]:
+    """Fill one output block from ``out_buf`` at ``state["pos"]`` (silence after its end).
+
+    Returns the block's start position and how many of its frames came from
+    ``out_buf``; advances ``state["pos"]``. A set ``stop`` silences the block and
+    aborts the stream (``sd.CallbackAbort``): the loudspeakers go quiet within
+    one buffer.
+    """
+    if stop is not None and stop.is_set():
+        outdata.fill(0)
+        raise sd.CallbackAbort
+    pos = state["pos"]
+    _note_status(state, status)
+    n = max(min(frames, out_buf.shape[0] - pos), 0)
+    outdata[:n] = out_buf[pos : pos + n]
+    outdata[n:] = 0
+    state["pos"] = pos + n
+    return pos, n
 
 
 def _recorder(
@@ -480,16 +501,7 @@ def _two_streams(
     in_cb = _recorder(sd, in_buf, st_in, 0, after_block)
 
     def out_cb(outdata, frames, _time, status):
-        if stop is not None and stop.is_set():
-            outdata.fill(0)
-            raise sd.CallbackAbort
-        pos = st_out["pos"]
-        _note_status(st_out, status)
-        n = min(frames, n_play - pos)
-        if n > 0:
-            outdata[:n] = out_buf[pos : pos + n]
-        outdata[max(n, 0) :] = 0
-        st_out["pos"] = pos + max(n, 0)
+        _play_block(sd, outdata, frames, status, st_out, out_buf, stop)
         if st_out["pos"] >= n_play:
             raise sd.CallbackStop
 
