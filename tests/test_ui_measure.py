@@ -6,9 +6,6 @@ real audio server is tests/test_ui_measure_jack.py.
 
 from __future__ import annotations
 
-import subprocess
-import sys
-
 import numpy as np
 import pytest
 from scipy.signal import fftconvolve
@@ -16,6 +13,7 @@ from scipy.signal import fftconvolve
 pytest.importorskip("starlette")
 pytest.importorskip("uvicorn")
 
+from room_holder import room_held_elsewhere  # noqa: E402
 from starlette.testclient import TestClient  # noqa: E402
 
 from roomcorr import rooms  # noqa: E402
@@ -190,25 +188,10 @@ def test_devices_are_listed(client):
 
 def test_start_refused_while_a_command_holds_the_room(client, room):
     am.acknowledge_cautions(room)
-    holder = subprocess.Popen(
-        [
-            sys.executable,
-            "-c",
-            "import time; from roomcorr import rooms as r; "
-            f"room = r.open_room({str(room.root)!r});\n"
-            "with r.room_lock(room, 'test holder'):\n print('held', flush=True); time.sleep(60)",
-        ],
-        stdout=subprocess.PIPE,
-        text=True,
-    )
-    try:
-        assert holder.stdout.readline().strip() == "held"
+    with room_held_elsewhere(room):
         r = client.post("/api/measure/start", headers=_auth(), json={"settings": QUICK})
         assert r.status_code == 409 and "in use" in r.json()["error"]
         assert rooms.list_runs(room, "measurement") == []
-    finally:
-        holder.kill()
-        holder.wait()
 
 
 def test_a_measurement_over_the_live_channel_with_prompts(client, room):

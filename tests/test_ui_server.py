@@ -7,12 +7,8 @@ design files themselves and against scipy (an outside reference).
 
 from __future__ import annotations
 
-import contextlib
 import os
 import shutil
-import subprocess
-import sys
-from collections.abc import Iterator
 from pathlib import Path
 
 import numpy as np
@@ -23,6 +19,7 @@ import soundfile as sf
 pytest.importorskip("starlette")
 pytest.importorskip("uvicorn")
 
+from room_holder import room_held_elsewhere  # noqa: E402
 from starlette.testclient import TestClient  # noqa: E402
 
 from roomcorr import cli, rooms  # noqa: E402
@@ -59,23 +56,6 @@ def _auth() -> dict[str, str]:
 def _design_id(room: rooms.Room) -> str:
     return rooms.list_runs(room, "design", include_incomplete=False)[-1].run_id
 
-
-@contextlib.contextmanager
-def _room_held_elsewhere(room: rooms.Room) -> Iterator[None]:
-    """Another process (as a CLI command would) holds the room's lock inside the block."""
-    holder = subprocess.Popen(
-        [sys.executable, "-c",
-         "import sys, time; from roomcorr import rooms as r; "
-         f"room = r.open_room({str(room.root)!r});\n"
-         "with r.room_lock(room, 'test holder'):\n print('held', flush=True); time.sleep(60)"],
-        stdout=subprocess.PIPE, text=True,
-    )
-    try:
-        assert holder.stdout.readline().strip() == "held"
-        yield
-    finally:
-        holder.kill()
-        holder.wait()
 
 
 # --------------------------------------------------------------------------- same engine
@@ -617,7 +597,7 @@ def test_preview_and_save_refusals(client, demo_room):
 def test_save_waits_for_the_room_lock(client, demo_room):
     before = len(rooms.list_runs(demo_room, "design"))
     # Another process (a CLI command) holds the room: the app must refuse to write.
-    with _room_held_elsewhere(demo_room):
+    with room_held_elsewhere(demo_room):
         r = client.post("/api/save", headers=_auth(), json={"target": "flat"})
         assert r.status_code == 409 and r.json()["error"]
         assert len(rooms.list_runs(demo_room, "design")) == before
@@ -715,6 +695,6 @@ def test_report_refusals(client, demo_room):
     for kind, rid in (("design", ".."), ("design", "no-such-run"), ("settings", run_id)):
         r = client.post(f"/api/report/{kind}/{rid}", headers=_auth(), json={})
         assert r.status_code in (400, 404), (kind, rid)
-    with _room_held_elsewhere(demo_room):
+    with room_held_elsewhere(demo_room):
         r = client.post(f"/api/report/design/{run_id}", headers=_auth(), json={})
         assert r.status_code == 409 and r.json()["error"]
