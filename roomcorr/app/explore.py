@@ -298,6 +298,7 @@ def decay_view(
         NOISE_MARGIN_DB,
         RANGES_DB,
         band_decay,
+        decay_method,
         low_frequency_decay_map,
         mean_band_decay,
         ringing_modes,
@@ -369,6 +370,7 @@ def decay_view(
         "ranges_db": {k: list(v) for k, v in RANGES_DB.items()},
         "noise_margin_db": NOISE_MARGIN_DB,
         "min_bandwidth_time": MIN_BANDWIDTH_TIME,
+        "method": decay_method(),
         "channels": channels,
     }
 

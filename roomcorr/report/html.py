@@ -21,6 +21,7 @@ from typing import Any
 
 import numpy as np
 
+from roomcorr.analysis.decay import decay_method as _decay_method
 from roomcorr.analysis.decay import mean_band_decay as _mean_band_decay
 from roomcorr.report.summary import fmt_hz, summary_sentences, withheld_regions
 
@@ -200,7 +201,9 @@ def _decay_table(bands: list[Any]) -> list[list[str]]:
     def cell(v: float, ok: bool) -> str:
         if not np.isfinite(v):
             return "n/a"
-        return f"{v:.2f}" + ("" if ok else " *")
+        # rounded first to the 4 decimals the app's decay view stores, so both print the
+        # same two decimals (no double-rounding difference at x.xx5)
+        return f"{float(np.round(v, 4)):.2f}" + ("" if ok else " *")
 
     rows = [["band (Hz)", "EDT (s)", "T20 (s)", "T30 (s)", "peak-to-noise (dB)"]]
     for b in bands:
@@ -727,11 +730,12 @@ CHANNEL_SECTIONS: list[tuple[str, str, Any]] = [
      "Anything left of 0 ms is pre-ringing; a minimum-phase filter has none.", _time_column),
     ("phase", "", _phase_column),
     ("iir", "", _iir_column),
-    ("decay", "Schroeder backward integration per octave band with the noise floor "
-     "subtracted and the tail truncated where the decay meets the noise. EDT from 0 to -10 "
-     "dB, T20 from -5 to -25 dB, T30 from -5 to -35 dB, each extrapolated to 60 dB (ISO "
-     "3382-1), averaged over positions; curves show the first position. * marks a value whose "
-     "range comes within 10 dB of the noise floor.", _decay_column),
+    ("decay", _decay_method() + ". Per octave band: the noise floor is subtracted, the "
+     "backward integration stops where the late decay meets the noise and the energy it "
+     "would still have had is added back. EDT from 0 to -10 dB, T20 from -5 to -25 dB, T30 "
+     "from -5 to -35 dB, each extrapolated to 60 dB (ISO 3382-1), averaged over positions; "
+     "curves show the first position. * marks a value whose range comes within 10 dB of the "
+     "noise floor.", _decay_column),
     ("ringing", "Sliding-window spectra of the first position from 20 to 300 Hz: each row "
      "starts 10 ms later than the one below. A bright ridge reaching high up is a room mode "
      "that keeps ringing after the sound stops.", _ringing_column),

@@ -309,6 +309,7 @@ function drawDecay() {
   const box = plotBox("decay-plots", `Decay times, ${ch.name}`,
     `${view.fraction === 1 ? "Octave" : "Third-octave"} bands, ${position === "combined" ? "mean of all positions" : shown}. ` +
     "EDT from 0 to -10 dB, T20 from -5 to -25 dB, T30 from -5 to -35 dB, each extrapolated to 60 dB (ISO 3382-1). " +
+    `${view.method}. ` +
     `Hollow markers (*) are values whose range comes within ${view.noise_margin_db} dB of the noise floor. Click a legend entry to hide it; drag to zoom.`);
   box.id = "decay-times";
   const byCentre = new Map(centres.map((c, i) => [c, labels[i]]));
