@@ -461,7 +461,7 @@ def plot_quality(recordings: list[dict[str, Any]], title: str) -> Any:
     ax1.set_title("signal to noise per octave", loc="left", fontsize=10)
     ax1.legend(fontsize=LEGEND_PT, frameon=False)
     _freq_axis(ax2, 20, 20000, sparse=True)
-    ax2.set_ylabel("harmonic level (dB re fundamental)")
+    ax2.set_ylabel("harmonic level\n(dB re fundamental)")
     ax2.set_title("harmonic distortion", loc="left", fontsize=10)
     if ax2.lines:
         ax2.legend(fontsize=LEGEND_PT, frameon=False)
@@ -469,7 +469,7 @@ def plot_quality(recordings: list[dict[str, Any]], title: str) -> Any:
     reps = [np.nan if r.get("repeat_db") is None else float(r["repeat_db"]) for r in recordings]
     ax3.barh(range(len(reps)), np.nan_to_num(reps, nan=0.0), color=MEAN)
     ax3.set_yticks(range(len(reps)), labels, fontsize=LEGEND_PT)
-    ax3.set_xlabel("difference (dB re response)")
+    ax3.set_xlabel("difference\n(dB re response)")
     ax3.set_title("repeat agreement", loc="left", fontsize=10)
     if all(np.isnan(reps)):
         ax3.text(0.5, 0.5, "single sweep:\nno repeats", ha="center", va="center",
