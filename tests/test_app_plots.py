@@ -203,6 +203,22 @@ def test_browser_plots_fit_their_curves_and_a_finger_can_drag(room, tmp_path):
             assert row.value_of_css_property("cursor") == "pointer"
             assert "open" in row.find_element(By.CSS_SELECTOR, "td.open").text
 
+            # Measure, idle: Stop is not red; the meter's words follow its marks
+            driver.find_element(By.CSS_SELECTOR, "nav button[data-tab=measure]").click()
+            stop = driver.find_element(By.ID, "m-stop")
+            assert "idle" in stop.get_attribute("class")
+            assert stop.value_of_css_property("background-color") in (
+                "rgba(255, 255, 255, 1)", "rgb(255, 255, 255)")
+            # a -4 dBFS peak, held (its mark stays), then the level sinks below -60 dBFS
+            driver.execute_script("measure.level = {peak: -4, rms: -12}; measure.peakHold = -4;"
+                                  "measure.peakHoldAt = performance.now() + 1e7;")
+            wait.until(lambda d: d.execute_script("return measure.level.peak < -70"))
+            wait.until(lambda d: "now silent" in d.find_element(By.ID, "m-meter-text").text
+                       or "now peak -" in d.find_element(By.ID, "m-meter-text").text)
+            text = driver.find_element(By.ID, "m-meter-text").text
+            assert text.startswith("input peak -4.0 dBFS (purple mark") and "quiet" not in text
+            driver.find_element(By.CSS_SELECTOR, "nav button[data-tab=room]").click()
+
             # Design: every level plot spans its curves with at most 10 dB to spare
             driver.find_element(By.CSS_SELECTOR, "nav button[data-tab=design]").click()
             wait.until(lambda d: state()["previews"] >= 1)
