@@ -23,7 +23,13 @@ from test_ui_server import PORT, TOKEN, _auth, _chrome, _no_console_errors  # no
 from roomcorr import cli, rooms  # noqa: E402
 from roomcorr.app.design import DesignPreview  # noqa: E402
 from roomcorr.app.explore import compare_view, decay_view  # noqa: E402
-from roomcorr.app.history import LABELS_FILE, history, run_labels, set_run_label  # noqa: E402
+from roomcorr.app.history import (  # noqa: E402
+    LABELS_FILE,
+    format_history,
+    history,
+    run_labels,
+    set_run_label,
+)
 from roomcorr.deliver.export import read_manifest  # noqa: E402
 from roomcorr.errors import InputFileError, RoomBusyError  # noqa: E402
 from roomcorr.report import figures as fg  # noqa: E402
@@ -112,6 +118,9 @@ def test_names_and_notes_live_in_one_room_file(room):
     assert doc["runs"][f"measurement/{meas.run_id}"] == label
     entry = next(r for r in history(room) if r["run_id"] == meas.run_id)
     assert entry["label"] == label and entry["status"] == "complete"  # the run stays whole
+    text = "\n".join(format_history(history(room)))  # roomcorr history shows them too
+    assert f'{meas.run_id}  measurement  complete  "before the rug"' in text
+    assert "      note: sofa moved / left" in text
     rooms.verified(room, meas.path)  # its sealed files are untouched
     # both empty: the label goes
     assert set_run_label(room, "measurement", meas.run_id, "", "") == {}
@@ -319,6 +328,8 @@ def test_browser_plots_fit_their_curves_and_a_finger_can_drag(room, tmp_path):
             shown_plots = driver.execute_script("return window.roomcorrPlots('plots')")
             titles = [t["title"] for t in shown_plots]
             assert any("difference (after − before)" in t for t in titles), titles
+            margins = _margins(shown_plots)  # before/after and difference, 20 Hz to 20 kHz
+            assert margins and all(m <= MAX_MARGIN_DB for _, m in margins), margins
 
             # a name and a note, given on the Room page, stored in the room's labels file
             driver.find_element(By.CSS_SELECTOR, "nav button[data-tab=room]").click()

@@ -205,7 +205,12 @@ def format_history(entries: list[dict[str, Any]], name: str = "") -> list[str]:
             head += f"  from measurement {Path(str(e['source'])).name}"
         if e.get("note"):
             head += f"  ({e['note']})"
+        label = e.get("label") or {}
+        if label.get("name"):
+            head += f"  \"{label['name']}\""
         lines.append(head)
+        if label.get("note"):
+            lines.append("      note: " + " / ".join(label["note"].splitlines()))
         f = e.get("figures") or {}
         if f.get("problem"):
             lines.append(f"      problem: {f['problem']}")
