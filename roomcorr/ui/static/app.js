@@ -55,7 +55,7 @@ function describe(run) {
   const parts = [];
   if (run.source) parts.push(`from ${run.source}`);
   if (f.target) parts.push(`target ${f.target}`);
-  if (f.pre_gain_db !== undefined && f.pre_gain_db !== null) parts.push(`pre-gain ${Number(f.pre_gain_db).toFixed(1)} dB`);
+  if (f.pre_gain_db !== undefined && f.pre_gain_db !== null) parts.push(`pre-gain ${Number(f.pre_gain_db).toFixed(2)} dB`);
   return parts.join(", ");
 }
 
@@ -779,7 +779,7 @@ function fillMeasurements(runs) {
     const s = el(id);
     const keep = s.value;
     s.innerHTML = "";
-    done.forEach(r => { const o = document.createElement("option"); o.value = r.run_id; o.textContent = r.run_id; s.appendChild(o); });
+    done.forEach(r => { const o = document.createElement("option"); o.value = r.run_id; o.textContent = runTitle(r); s.appendChild(o); });
     s.value = keep || (done[Math.max(0, pick)] || {}).run_id || "";
   }
   const sel = el("d-measurement");
@@ -787,7 +787,7 @@ function fillMeasurements(runs) {
   sel.innerHTML = "";
   runs.filter(r => r.kind === "measurement" && r.status === "complete").reverse().forEach(r => {
     const o = document.createElement("option");
-    o.value = r.run_id; o.textContent = r.run_id; sel.appendChild(o);
+    o.value = r.run_id; o.textContent = runTitle(r); sel.appendChild(o);
   });
   if (keep) sel.value = keep;
 }
