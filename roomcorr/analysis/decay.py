@@ -52,6 +52,9 @@ from dataclasses import dataclass, field
 import numpy as np
 import pyfar as pf
 import pyrato as ra
+from scipy.signal import butter, find_peaks, resample_poly, sosfilt
+
+from roomcorr.analysis import bands
 
 #: ISO 3382-1 evaluation ranges in dB below the start of the decay curve.
 RANGES_DB: dict[str, tuple[float, float]] = {
@@ -77,46 +80,15 @@ MIN_BANDWIDTH_TIME = 16.0
 def octave_band_centres(f_lo_hz: float = 63.0, f_hi_hz: float = 8000.0) -> np.ndarray:
     """Exact octave mid-band frequencies between two nominal frequencies.
 
-    Parameters
-    ----------
-    f_lo_hz, f_hi_hz : float
-        Nominal first and last band (e.g. 63 and 8000); bands whose exact
-        mid-band frequency lies within a third of an octave of the span are kept.
-
-    Returns
-    -------
-    centres_hz : ndarray, shape (n_bands,)
-        ``1000 * G ** x`` with ``G = 10 ** (3 / 10)`` (IEC 61260-1, odd bandwidth
-        designator b = 1).
+    :func:`roomcorr.analysis.bands.octave_centres_hz` (IEC 61260-1, base 10,
+    ``1000 * G ** x`` with ``G = 10 ** (3 / 10)``), the project's one band table.
     """
-    try:  # a shared bands module, when the project has one, is the single source
-        from roomcorr.analysis import bands  # type: ignore[attr-defined]
-
-        fn = getattr(bands, "octave_centres_hz", None)
-        if callable(fn):
-            return np.asarray(fn(f_lo_hz, f_hi_hz), dtype=float)
-    except ImportError:
-        pass
-    x = np.arange(-6, 5)
-    fm = 1000.0 * _G**x
-    tol = 2.0 ** (1.0 / 3.0)
-    keep = (fm >= f_lo_hz / tol) & (fm <= f_hi_hz * tol)
-    return fm[keep]
+    return np.asarray(bands.octave_centres_hz(f_lo_hz, f_hi_hz), dtype=float)
 
 
 def nominal_label(centre_hz: float) -> str:
-    """Short nominal label of an octave band, e.g. ``"63"``, ``"1k"``, ``"8k"``."""
-    try:  # the shared bands module, when present, is the single source
-        from roomcorr.analysis import bands  # type: ignore[attr-defined]
-
-        return str(bands.nominal_label(centre_hz))
-    except (ImportError, AttributeError, ValueError):
-        pass
-    nominal = [31.5, 63, 125, 250, 500, 1000, 2000, 4000, 8000, 16000]
-    n = min(nominal, key=lambda v: abs(np.log2(v / centre_hz)))
-    if n >= 1000:
-        return f"{n / 1000:g}k"
-    return f"{n:g}"
+    """Short nominal label of a band, e.g. ``"63"``, ``"1k"``, ``"8k"`` (the bands module's)."""
+    return str(bands.nominal_label(centre_hz))
 
 
 def octave_band_sos(centre_hz: float, fs: float, order: int = 3) -> np.ndarray:
@@ -369,8 +341,6 @@ def band_sos(centre_hz: float, fs: float, fraction: int = 1, order: int = 3) -> 
 @functools.lru_cache(maxsize=256)
 def _band_sos(centre_hz: float, fs: float, fraction: int, order: int) -> np.ndarray:
     """:func:`band_sos`, designed once per band and rate (every position uses the same)."""
-    from scipy.signal import butter
-
     lo = centre_hz * _G ** (-0.5 / fraction)
     hi = centre_hz * _G ** (0.5 / fraction)
     if hi >= 0.49 * fs:
@@ -410,17 +380,13 @@ def band_decay(
     ISO 3382-1 (ranges; octave or one-third-octave bands); IEC 61260-1 (band
     centres and edges); Schroeder (1965); Lundeby et al. (1995).
     """
-    from scipy.signal import sosfilt
-
-    from roomcorr.analysis.bands import band_centres_hz
-
     if fraction not in (1, 3):
         raise ValueError(f"fraction must be 1 (octave) or 3 (third-octave), not {fraction!r}")
     ir = np.asarray(ir, dtype=float)
     centres = (
         octave_band_centres(f_lo_hz, f_hi_hz)
         if fraction == 1
-        else band_centres_hz(3, f_lo_hz, f_hi_hz)
+        else bands.band_centres_hz(3, f_lo_hz, f_hi_hz)
     )
     out = []
     for fc in centres:
@@ -575,8 +541,6 @@ def low_frequency_decay_map(
     -------
     DecayMap
     """
-    from scipy.signal import resample_poly
-
     ir = np.asarray(ir, dtype=float)
     dec = max(1, int(fs // 1000))
     x = resample_poly(ir, 1, dec) if dec > 1 else ir
@@ -621,8 +585,6 @@ def ringing_modes(
         At most ``n_modes``, most audible ringing first. A peak that never falls
         ``drop_db`` is fitted over the whole map.
     """
-    from scipy.signal import find_peaks
-
     lv = decay_map.level_db
     t = decay_map.time_s
     peaks, _ = find_peaks(lv[0], prominence=3.0)
