@@ -84,3 +84,12 @@ def test_run_date_reads_only_run_ids():
     assert glance.run_date("2026-12-04_203110Z") == "2026-12-04 20:31 UTC"
     assert glance.run_date("my-folder") is None
     assert glance.run_date("2026-13-40_250000Z") is None  # not a date: no date shown
+
+
+def test_the_decay_section_names_the_library(demo_report):
+    # the issue: the report says which library computed the decay times
+    import pyrato
+
+    _, _, page = demo_report
+    body = unescape(_section(page, "decay"))
+    assert f"EDT, T20 and T30 computed with pyrato {pyrato.__version__}" in body
