@@ -219,7 +219,8 @@ def test_browser_plots_fit_their_curves_and_a_finger_can_drag(room, tmp_path):
             assert stop.value_of_css_property("background-color") in (
                 "rgba(255, 255, 255, 1)", "rgb(255, 255, 255)")
             # a -4 dBFS peak, held (its mark stays), then the level sinks below -60 dBFS
-            driver.execute_script("measure.level = {peak: -4, rms: -12}; measure.peakHold = -4;"
+            # (the level starts just under the held peak, so the hold is not renewed)
+            driver.execute_script("measure.level = {peak: -4.5, rms: -12}; measure.peakHold = -4;"
                                   "measure.peakHoldAt = performance.now() + 1e7;")
             wait.until(lambda d: d.execute_script("return measure.level.peak < -70"))
             wait.until(lambda d: "now silent" in d.find_element(By.ID, "m-meter-text").text
