@@ -114,7 +114,7 @@ def section_notes(
         if inside.any():
             cascade = bq.cascade_response_db(coeffs, f[inside], fs)
             excess = float(np.max(cascade - np.asarray(correction_db)[inside]))
-        where = f"the dip at {r['lo_hz']:.0f}-{r['hi_hz']:.0f} Hz"
+        where = f"the dip at {hz_range(r['lo_hz'], r['hi_hz'])}"
         head = (
             f"Section {i} ({s.f0_hz:.0f} Hz, {s.gain_db:+.1f} dB, Q {s.q:.1f}) sits beside "
             f"{where}, where {r['withheld_db']:.1f} dB of boost was refused"
@@ -139,6 +139,12 @@ def section_notes(
             )
         notes.append(f"{head}: {why}. {tail}")
     return notes
+
+
+def hz_range(lo_hz: float, hi_hz: float) -> str:
+    """``102-123 Hz``, or ``193 Hz`` when both ends round to the same whole hertz."""
+    lo, hi = f"{lo_hz:.0f}", f"{hi_hz:.0f}"
+    return f"{lo} Hz" if lo == hi else f"{lo}-{hi} Hz"
 
 
 def _channel_regions(fir: DesignResult | None, index: int) -> tuple[list, Any]:
