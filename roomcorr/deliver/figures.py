@@ -74,6 +74,15 @@ def _finite(v: Any) -> float | None:
     return float(v)
 
 
+def is_filter_entry(e: dict[str, Any]) -> bool:
+    """True for the manifest entry of a filter's own WAV file, which carries its safety figures.
+
+    Entries of kind ``"fir"`` with a ``format`` (the multichannel WAV, raw float and text
+    copies of the same filters, :mod:`roomcorr.deliver.system`) carry none.
+    """
+    return e.get("kind") == "fir" and "format" not in e
+
+
 def _r(v: float) -> float:
     out = round(float(v), STORED_DIGITS)
     return 0.0 if out == 0.0 else out
@@ -115,7 +124,7 @@ def design_figures(
     keys = {"largest_boost_db": "max_boost_db", "peak_gain_db": "peak_gain_db",
             "worst_case_gain_db": "worst_case_gain_db"}
     for e in fir_entries:
-        if e.get("kind", "fir") != "fir":
+        if not is_filter_entry(e):
             continue
         name = str(e.get("channel_name", e.get("channel", "")))
         ch = per.setdefault(name, {})
@@ -155,7 +164,7 @@ def filter_rows(fir_entries: list[dict[str, Any]]) -> list[dict[str, Any]]:
     """
     rows = []
     for e in fir_entries:
-        if e.get("kind") != "fir":
+        if not is_filter_entry(e):
             continue
         rows.append({
             "name": str(e.get("channel_name", e.get("channel", ""))),

@@ -335,9 +335,9 @@ def _iir_column(x: _Channel, ctx: _Context) -> Column | None:
         "the same correction, for players that take parametric filters instead of an FIR; "
         "the table lists the sections at "
         f"{doc['sample_rate']} Hz by frequency (# is the stage in the .csv). Peak gain "
-        f"{figs.get('peak_gain_db', float('nan')):.2f} dB, "
-        f"worst-case gain {figs.get('worst_case_gain_db', float('nan')):.2f} dB, fit error "
-        f"{figs.get('fit_rms_error_db', float('nan')):.2f} dB rms."
+        f"{fmt_db(figs.get('peak_gain_db'), 2)}, "
+        f"worst-case gain {fmt_db(figs.get('worst_case_gain_db'), 2)}, fit error "
+        f"{fmt_db(figs.get('fit_rms_error_db'), 2)} rms."
     )
     from roomcorr.deliver.export_iir import pre_gain_note
 
