@@ -252,23 +252,29 @@ def _print_area_lines(ch: Any) -> None:
 def _print_design_summary(result: Any, out: Path, entries: list[dict]) -> None:
     import numpy as np
 
+    from roomcorr.deliver.export import read_manifest
+    from roomcorr.deliver.figures import figures_of_manifest, fmt_db
     from roomcorr.design.safety import PEAK_BAND
 
+    # every figure from the manifest's figures block (one place per figure)
+    figs = figures_of_manifest(read_manifest(out))
+    per_channel = {c["name"]: c for c in figs["channels"]}
     print(f"Design written to {out}  ({len(entries) + 1} files, manifest.json lists them)")
-    print(f"Common pre-gain: {result.pre_gain_db:+.2f} dB (same for every channel)")
-    print(f"Peak gain below is the largest gain from {PEAK_BAND}, pre-gain included")
+    print(f"Common pre-gain: {fmt_db(figs['pre_gain_db'], 2, True)} (same for every channel)")
+    print(f"Largest boost and peak gain below are the filters' largest gain from {PEAK_BAND}, "
+          "boost before and peak gain after the pre-gain")
     for ch in result.channels:
         lo, hi = ch.band_hz
         inband = (result.freq_hz >= lo) & (result.freq_hz <= hi)
         corr = ch.correction_db[inband]
         withheld = ch.boost_withheld_db[inband]
-        stats = [s for s in result.stats if s.channel == ch.index]
-        peak = max(s.peak_gain_db for s in stats)
-        worst = max(s.worst_case_gain_db for s in stats)
-        boost, cut = max(float(corr.max()), 0.0), min(float(corr.min()), 0.0)
+        f = per_channel[ch.name]
+        cut = min(float(corr.min()), 0.0)
         print(
-            f"  {ch.name:>6}: band {lo:6.0f} Hz - {hi:6.0f} Hz | largest boost {boost:4.1f} dB, "
-            f"largest cut {cut:5.1f} dB | peak gain {peak:+.2f} dB, worst-case gain {worst:+.2f} dB"
+            f"  {ch.name:>6}: band {lo:6.0f} Hz - {hi:6.0f} Hz | largest boost "
+            f"{fmt_db(f['largest_boost_db'])}, largest cut {fmt_db(cut)} | peak gain "
+            f"{fmt_db(f['peak_gain_db'], 2, True)}, worst-case gain "
+            f"{fmt_db(f['worst_case_gain_db'], 2, True)}"
         )
         _print_area_lines(ch)
         if withheld.size and withheld.max() > 1.0:
@@ -283,7 +289,8 @@ def _print_design_summary(result: Any, out: Path, entries: list[dict]) -> None:
             print(
                 f"  {e['channel_name']:>6}: {e['sections']} biquads at {e['sample_rate']} Hz, "
                 f"fit error {e['fit_rms_error_db']:.1f} dB RMS ({e['fit_max_error_db']:.1f} dB "
-                f"max), pre-gain {e['pre_gain_db']:+.2f} dB, peak gain {e['peak_gain_db']:+.2f} dB"
+                f"max), pre-gain {fmt_db(e['pre_gain_db'], 2, True)}, peak gain "
+                f"{fmt_db(e['peak_gain_db'], 2, True)}"
             )
     _print_system_summary(result)
     if result.mixed_phase is not None:

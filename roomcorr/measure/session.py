@@ -320,7 +320,8 @@ def gate_lines(gates: list[q.Gate]) -> list[str]:
     lines = []
     for g in gates:
         value = "single sweep" if g.value == -999.0 else f"{g.value:.4g} {g.unit}"
-        lines.append(f"  {'ok  ' if g.passed else 'FAIL'} {g.name}: {value} (limit {g.limit:g})")
+        word = "ok  " if g.passed else ("WARN" if g.severity == "warning" else "FAIL")
+        lines.append(f"  {word} {g.name}: {value} (limit {g.limit:g})")
     return lines
 
 
@@ -695,7 +696,7 @@ def run_measurement(
                         "gates": [g.to_dict() for g in gates],
                     }
                 )
-                if force or all(g.passed for g in gates):
+                if force or not q.blocking(gates):
                     break
                 where = f"position {pos}, output {spk}"
                 try:

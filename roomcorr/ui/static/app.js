@@ -43,6 +43,14 @@ function plotSize() {
   return { width: w, height: Math.round(Math.min(380, w * 0.42)) };
 }
 
+function fmtDb(value, digits, signed) {
+  // one way to write a dB figure (as fmt_db in roomcorr/deliver/figures.py): never "-0.0"
+  let v = Number(Number(value).toFixed(digits));
+  if (Object.is(v, -0) || v === 0) v = 0;
+  const text = v.toFixed(digits);
+  return (signed && v > 0 ? "+" : "") + text + " dB";
+}
+
 function describe(run) {
   const f = run.figures || {};
   if (run.kind === "measurement") {
@@ -50,12 +58,17 @@ function describe(run) {
     if (f.positions) parts.push(`${f.positions} positions`);
     if (f.channels) parts.push(`${f.channels} loudspeakers`);
     if (f.sample_rate) parts.push(`${f.sample_rate} Hz`);
+    if (f.gates_warned && f.gates_warned.length) parts.push(`WARNING: ${f.gates_warned.join(", ")}`);
     return parts.join(", ");
   }
   const parts = [];
   if (run.source) parts.push(`from ${run.source}`);
   if (f.target) parts.push(`target ${f.target}`);
-  if (f.pre_gain_db !== undefined && f.pre_gain_db !== null) parts.push(`pre-gain ${Number(f.pre_gain_db).toFixed(2)} dB`);
+  // the manifest's figures (history's JSON), written as roomcorr/deliver/figures.py fmt_db does
+  if (f.pre_gain_db !== undefined && f.pre_gain_db !== null) parts.push(`pre-gain ${fmtDb(f.pre_gain_db, 2, true)}`);
+  if (f.largest_boost_db !== undefined && f.largest_boost_db !== null) parts.push(`largest boost ${fmtDb(f.largest_boost_db, 1)}`);
+  if (f.peak_gain_db !== undefined && f.peak_gain_db !== null) parts.push(`peak gain ${fmtDb(f.peak_gain_db, 2, true)}`);
+  if (f.latency_ms) parts.push(`latency ${f.latency_ms} ms`);
   return parts.join(", ");
 }
 
