@@ -74,3 +74,66 @@ def acoustic_reference_runs(before, after, reference: int = 0, seed: int = 0, no
         h = h + 10 ** (noise_db / 20) * np.max(np.abs(h)) * rng.standard_normal(h.shape)
         out.append(h[None])
     return out
+
+
+def record_through_path(
+    irs: np.ndarray,
+    layout: dict,
+    output: int,
+    latency_s: float,
+    drift_ppm: float,
+    rng: np.random.Generator,
+    noise_rms: float = 1e-5,
+) -> np.ndarray:
+    """What the microphone of a two-device set-up records while ``output`` is measured.
+
+    The played rows (:func:`roomcorr.measure.session.capture_signal`: the sweeps on
+    ``output``, the markers on the reference) pass through the loudspeakers' room
+    responses ``irs`` (n_speakers, n_samples; output k is ``irs[k - 1]``), then an
+    extra latency and a microphone clock ``drift_ppm`` fast. The drift is applied by
+    Fourier resampling (``scipy.signal.resample``) and the latency by an FFT phase
+    shift: neither is roomcorr's own resampler (which uses ``resample_poly``).
+    """
+    from scipy.signal import fftconvolve, resample
+
+    from roomcorr.measure.session import capture_signal
+
+    rows, outs = capture_signal(layout, output)
+    n = rows.shape[1] + irs.shape[1] - 1
+    y = np.zeros(n)
+    for row, out in zip(rows, outs, strict=True):
+        y += fftconvolve(row, irs[out - 1])[:n]
+    pad = int(0.1 * FS)
+    y = _shift(np.concatenate([y, np.zeros(pad)]), latency_s)
+    y = resample(y, int(round(len(y) * (1 + drift_ppm * 1e-6))))
+    return y + noise_rms * rng.standard_normal(len(y))
+
+
+def measure_offline(speakers, seed: int, reference_output: int = 1) -> np.ndarray:
+    """One run of ``roomcorr measure`` with two devices and the acoustic reference, offline:
+    per loudspeaker a recording through :func:`record_through_path` (own latency 0 to 50
+    ms, drift -150 to +80 ppm, both seeded), analysed by
+    :func:`roomcorr.measure.session.analyse_recording`. Returns (1, n_speakers, n_ir)."""
+    from roomcorr.measure.session import analyse_recording, sweep_layout
+    from roomcorr.measure.settings import MeasureSettings
+
+    ms = MeasureSettings(
+        outputs=tuple(range(1, len(speakers) + 1)),
+        reference=reference_output,
+        sweep_s=1.0,
+        noise_s=0.2,
+        tail_s=0.35,
+        ir_s=0.2,
+        repeats=1,
+        two_streams=True,
+    )
+    layout = sweep_layout(ms)
+    rng = np.random.default_rng(seed)
+    irs = 0.5 * room_irs(speakers, seed=seed + 7, length_s=0.3)
+    drift = float(rng.uniform(-150.0, 80.0))
+    out = []
+    for k in range(1, len(speakers) + 1):
+        rec = record_through_path(irs, layout, k, float(rng.uniform(0.0, 0.05)), drift, rng)
+        ir, _, _ = analyse_recording(rec, None, layout)
+        out.append(ir)
+    return np.array(out)[None]
