@@ -108,9 +108,10 @@ def test_free_field_cannot_decide_and_says_both_readings():
     # Without reflections nothing but the relative arrival is known: both readings.
     r = cmp.attribute_move(np.array([0.0, 0.27]), np.array([0.01, 0.01]), 0, NAMES)
     assert not r["sure"]
-    assert "either the left moved 0.27 m closer or the right moved 0.27 m away" in r[
-        "sentence"
-    ] or "either the right moved 0.27 m away or the left moved 0.27 m closer" in r["sentence"]
+    assert (
+        "either the left moved 0.27 m closer or the right moved 0.27 m away" in r["sentence"]
+        or "either the right moved 0.27 m away or the left moved 0.27 m closer" in r["sentence"]
+    )
     assert "changed delay in the signal path" in r["sentence"]
 
 
@@ -161,3 +162,121 @@ def test_absolute_origin_keeps_distances_as_measured():
     assert res["channels"][1]["distance_change_m"] == pytest.approx(
         distance_change_m(RIGHT_M, spk1[1]), abs=0.01
     )
+
+
+# ------------------------------------------------------------------ does the design still fit?
+ROOT = __import__("pathlib").Path(__file__).resolve().parent.parent
+DEMO = ROOT / "measurements_demo"
+ABSOLUTE = {"timing_basis": {"kind": "loopback"}}
+
+
+def _noisy(irs: np.ndarray, seed: int, level_db: float = -70.0) -> np.ndarray:
+    rng = np.random.default_rng(seed)
+    return irs + 10 ** (level_db / 20) * np.max(np.abs(irs)) * rng.standard_normal(irs.shape)
+
+
+def _delayed(x: np.ndarray, delay_s: float) -> np.ndarray:
+    n = x.shape[-1]
+    f = np.fft.rfftfreq(2 * n, 1 / FS)
+    return np.fft.irfft(np.fft.rfft(x, 2 * n) * np.exp(-2j * np.pi * f * delay_s), 2 * n)[..., :n]
+
+
+@pytest.fixture(scope="module")
+def designed_room(tmp_path_factory):
+    """A room with one measurement (the demo set plus noise) and the design made from it."""
+    from roomcorr import rooms
+    from roomcorr.audio_io import read_ir_set, write_wav
+    from roomcorr.deliver.export import write_design
+    from roomcorr.pipeline import run_design
+
+    base = tmp_path_factory.mktemp("fit")
+    room = rooms.init_room(base / "room", name="fit room")
+    irs, fs, _ = read_ir_set(rooms.measurement_files(DEMO))
+    src = base / "m1"
+    src.mkdir()
+    first = _noisy(irs, 0)
+    for p in range(first.shape[0]):
+        write_wav(src / f"pos{p + 1}.wav", first[p], fs)
+    m1 = rooms.add_measurement(room, [src], record=ABSOLUTE)
+    settings = rooms.load_room_settings(room)
+    settings.design.sample_rates = (48000,)
+    with rooms.new_run(room, "design", info={"measurement": m1.name}) as design:
+        write_design(run_design(first, fs, settings), design, extra={"measurement": m1.name})
+    return room, m1, design, irs, base
+
+
+def _second(designed_room, irs2: np.ndarray, tag: str):
+    from roomcorr import rooms
+    from roomcorr.app.compare import compare_measurements
+    from roomcorr.audio_io import write_wav
+
+    room, m1, design, _, base = designed_room
+    src = base / tag
+    src.mkdir()
+    for p in range(irs2.shape[0]):
+        write_wav(src / f"pos{p + 1}.wav", irs2[p], FS)
+    m2 = rooms.add_measurement(room, [src], record=ABSOLUTE)
+    return compare_measurements(m1.name, m2.name, room=room)["filter_fit"]
+
+
+@pytest.mark.parametrize(
+    "change",
+    ["arrival 0.1 ms", "level 0.5 dB", "polarity", "arrival 0.5 ms and level -1 dB"],
+)
+def test_a_change_the_filters_carry_makes_the_verdict_re_design(designed_room, change):
+    # Issue 18: 0.1 ms of relative arrival (36 degrees at 1 kHz: 360 f tau, analytic),
+    # 0.5 dB of relative level or a polarity flip between two runs -> "re-design", reason
+    # named. The right channel changes; the left stays.
+    room, m1, design, irs, _ = designed_room
+    b = _noisy(irs, 1)
+    if change.startswith("arrival"):
+        b[:, 1] = _delayed(b[:, 1], float(change.split()[1]) * 1e-3)
+    if "level" in change:
+        b[:, 1] *= 10 ** (float(change.split("level ")[1].split()[0]) / 20)
+    if change == "polarity":
+        b[:, 1] *= -1
+    fit = _second(designed_room, b, change.replace(" ", "_"))
+    assert fit["available"] and fit["design"] == design.name and fit["made_from"] == m1.name
+    assert fit["verdict"] == "re-design", fit
+    text = " ".join(fit["reasons"])
+    if "arrival" in change:
+        assert "delay of left off by +" in text and "degrees at 1000 Hz" in text
+        want = float(change.split()[1])
+        right = next(c for c in fit["system"]["channels"] if c["name"] == "right")
+        left = next(c for c in fit["system"]["channels"] if c["name"] == "left")
+        # the fresh design delays the left by the right's extra arrival (within 0.02 ms)
+        assert left["delay_change_ms"] - right["delay_change_ms"] == pytest.approx(want, abs=0.02)
+    if "level" in change:
+        assert "level of" in text and "trims" in text
+    if change == "polarity":
+        assert "polarity of right inverted" in text
+
+
+def test_an_unchanged_re_measurement_keeps_fit_in_19_of_20(designed_room):
+    # Issue 18: the same room measured again (new seeded noise, -70 dB) keeps "keep".
+    room, m1, design, irs, _ = designed_room
+    verdicts = [
+        _second(designed_room, _noisy(irs, 100 + k), f"same{k}")["verdict"] for k in range(20)
+    ]
+    assert verdicts.count("keep") >= 19, verdicts
+
+
+def test_no_design_from_the_earlier_run_says_so_and_design_option_chooses(designed_room):
+    from roomcorr.app.compare import compare_measurements
+
+    room, m1, design, irs, base = designed_room
+    from roomcorr import rooms
+
+    later = rooms.list_runs(room, "measurement", include_incomplete=False)
+    if len(later) < 3:
+        _second(designed_room, _noisy(irs, 7), "extra")
+        later = rooms.list_runs(room, "measurement", include_incomplete=False)
+    a, b = later[-2].run_id, later[-1].run_id
+    res = compare_measurements(a, b, room=room)
+    # no design was made from run a: the newest design of other files is not taken
+    assert not res["filter_fit"]["available"]
+    assert f"no design made from measurement {a}" in res["filter_fit"]["reason"]
+    assert "--design RUN" in res["filter_fit"]["reason"]
+    chosen = compare_measurements(a, b, room=room, design=design.name)["filter_fit"]
+    assert chosen["available"] and chosen["design"] == design.name
+    assert chosen["made_from"] == m1.name

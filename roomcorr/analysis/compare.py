@@ -1010,7 +1010,7 @@ def system_fit(
         if not ok_t:
             align_ok = False
             reasons.append(
-                f"arrival of {name} off by {dj:+.3f} ms against the old alignment "
+                f"delay of {name} off by {dj:+.3f} ms against the old alignment "
                 f"({ph:+.0f} degrees at {at_hz:.0f} Hz)"
             )
         if abs(g[j]) > TRIM_TOLERANCE_DB:

@@ -127,7 +127,7 @@ def fit_lines(fit: dict[str, Any]) -> list[str]:
     system = fit.get("system") or {}
     for c in system.get("channels", []):
         lines.append(
-            f"  {c['name']}: arrival {c['delay_change_ms']:+.3f} ms against the old alignment "
+            f"  {c['name']}: delay {c['delay_change_ms']:+.3f} ms against the old alignment "
             f"({c['phase_error_deg']:+.0f} degrees at {c['phase_at_hz']:.0f} Hz), level "
             f"{c['trim_change_db']:+.2f} dB against the old trims"
             + (", polarity inverted" if c["polarity_flipped"] else "")
