@@ -10,13 +10,15 @@ channel names and the timing basis (``unknown`` unless stated).
 
 from __future__ import annotations
 
+import base64
+import binascii
 import os
 import re
 from pathlib import Path
 from typing import Any
 
 from roomcorr.audio_io import expand_ir_paths, read_ir_set
-from roomcorr.deliver.atomic import is_link_or_outside
+from roomcorr.deliver.atomic import atomic_write_bytes, is_link_or_outside
 from roomcorr.errors import InputFileError, SettingsError
 from roomcorr.measure.session import RECORD_VERSION
 from roomcorr.measure.timing import timing_basis
@@ -163,3 +165,90 @@ def import_measurement(
         "timing_basis": timing_basis(record),
         "files": [str(f) for f in files],
     }
+
+
+# --------------------------------------------------------------------------- the browser app
+#: Largest import request the app accepts (bytes of JSON, base64 files included).
+MAX_IMPORT_BYTES = 64 * 1024 * 1024
+#: Most files one import may carry, and how many candidates the app lists.
+MAX_IMPORT_FILES = 64
+_UPLOAD_NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._-]{0,63}\.[wW][aA][vV]$")
+_SKIP = {"measurements", "designs", "targets"}
+
+
+def import_candidates(room: Room) -> list[str]:
+    """WAV files inside the room folder (outside its runs) the app offers to import.
+
+    Paths relative to the room, at most two folders deep, no links, sorted;
+    at most :data:`MAX_IMPORT_FILES`.
+    """
+    out: list[str] = []
+    for depth in ("*.wav", "*/*.wav", "*/*/*.wav"):
+        for p in sorted(room.root.glob(depth)):
+            rel = p.relative_to(room.root)
+            if rel.parts[0] in _SKIP or any(x.startswith(".") for x in rel.parts):
+                continue
+            if is_link_or_outside(p, room.root) or not p.is_file():
+                continue
+            out.append(rel.as_posix())
+    return sorted(out)[:MAX_IMPORT_FILES]
+
+
+def _room_file(room: Room, rel: Any) -> Path:
+    """A file chosen in the app: relative to the room, inside it, no links on the way."""
+    if not isinstance(rel, str) or not rel or len(rel) > 300:
+        raise InputFileError("import: each chosen file is a path inside the room folder")
+    p = Path(rel)
+    if p.is_absolute() or ".." in p.parts or p.parts[0] in _SKIP:
+        raise InputFileError(f"{rel}: not a file of the room folder outside its runs")
+    full = room.root / p
+    if is_link_or_outside(full, room.root) or any(
+        q.is_symlink() for q in [full, *full.parents] if room.root in q.parents
+    ):
+        raise InputFileError(f"{rel}: a link; links leading out of the room folder are refused")
+    if not full.is_file():
+        raise InputFileError(f"{rel}: no such file in the room folder")
+    return full
+
+
+def import_from_app(room: Room, request: dict[str, Any], workdir: Path) -> dict[str, Any]:
+    """The app's import: chosen room files (``paths``) or uploaded ones (``files``:
+    ``{name, data}`` with base64 data), plus ``names``, ``timing_basis`` and ``note``.
+
+    Uploads are written (atomically) into ``workdir``, a fresh folder outside the
+    room, then imported like files named on the command line.
+    """
+    paths = request.get("paths")
+    uploads = request.get("files")
+    if bool(paths) == bool(uploads):
+        raise InputFileError("import: choose files of the room folder or upload files (one of)")
+    items = paths if paths else uploads
+    if not isinstance(items, list) or len(items) > MAX_IMPORT_FILES:
+        raise InputFileError(f"import: give a list of at most {MAX_IMPORT_FILES} files")
+    files: list[Path] = []
+    if paths:
+        files = [_room_file(room, rel) for rel in items]
+    else:
+        for up in items:
+            name = up.get("name") if isinstance(up, dict) else None
+            data = up.get("data") if isinstance(up, dict) else None
+            if not isinstance(name, str) or not _UPLOAD_NAME.match(name):
+                raise InputFileError(
+                    f"import: {str(name)[:64]!r} is not a WAV file name (letters, digits, . _ -)"
+                )
+            if not isinstance(data, str):
+                raise InputFileError(f"{name}: no file content")
+            try:
+                raw = base64.b64decode(data, validate=True)
+            except (binascii.Error, ValueError):
+                raise InputFileError(f"{name}: content is not base64") from None
+            dest = workdir / name
+            if dest.exists():
+                raise InputFileError(f"{name}: name clash with another uploaded file")
+            atomic_write_bytes(dest, raw)
+            files.append(dest)
+    text = {k: request.get(k) for k in ("names", "timing_basis", "note")}
+    for k, v in text.items():
+        if v is not None and (not isinstance(v, str) or len(v) > 200):
+            raise InputFileError(f"import: {k} must be a short text")
+    return import_measurement(room, files, text["names"], text["timing_basis"], text["note"])
