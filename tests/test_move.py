@@ -280,3 +280,66 @@ def test_no_design_from_the_earlier_run_says_so_and_design_option_chooses(design
     chosen = compare_measurements(a, b, room=room, design=design.name)["filter_fit"]
     assert chosen["available"] and chosen["design"] == design.name
     assert chosen["made_from"] == m1.name
+
+
+def test_a_room_without_reflections_leaves_it_unsure():
+    # Free field (no images): the reflection evidence is even, so both readings are given.
+    from speaker_rooms import Room, simulate
+
+    def run(left, seed):
+        room = Room(
+            speakers_m=[left, RIGHT_M], kinds=["main"] * 2, gains_db=[0.0, 0.0],
+            mics_m=[SEAT_M], free_field=True,
+        )  # fmt: skip
+        return simulate(room, fs=FS, length_s=0.2, seed=seed)[0][None]
+
+    a, b = run(LEFT_M, 1), run(moved(LEFT_M, SEAT_M, 0.27), 2)
+    # the acoustic reference is the left: its arrival is pinned, so shift each run by it
+    t = [cmp.direct_arrival_s(x[0, 0], FS) for x in (a, b)]
+    b = np.stack([_delayed(b[0], t[0] - t[1])])
+    res = cmp.compare_sets(a, FS, b, FS, 20.0, NAMES, origin="reference", reference_index=0)
+    assert not res["move"]["sure"]
+    assert all(c["distance_change_m"] is None for c in res["channels"])
+    s = res["move"]["sentence"]
+    assert "either" in s and "left moved 0.27 m away" in s and "right moved 0.27 m closer" in s
+
+
+def test_subwoofer_alignment_is_judged_as_phase_at_the_crossover():
+    # 360 f tau (analytic): 1 ms at 80 Hz is 28.8 degrees (> 20: stale), 0.5 ms is 14.4 (fit).
+    old = [
+        {"name": "left", "role": "main", "delay_ms": 0.2, "gain_db": 0.0, "polarity": 1},
+        {"name": "right", "role": "main", "delay_ms": 0.0, "gain_db": -0.5, "polarity": 1},
+        {"name": "sub", "role": "sub", "delay_ms": 3.0, "gain_db": -2.0, "polarity": 1},
+    ]
+    xo = {"frequency_hz": 80.0}
+    for extra_ms, ok in ((1.0, False), (0.5, True)):
+        new = [dict(o) for o in old]
+        new[2]["delay_ms"] += extra_ms
+        r = cmp.system_fit(old, new, xo, xo, [False] * 3)
+        sub = r["channels"][2]
+        assert sub["phase_error_deg"] == pytest.approx(360 * 80 * extra_ms * 1e-3, abs=0.1)
+        assert sub["phase_at_hz"] == 80.0 and r["alignment_ok"] is ok
+    moved_xo = cmp.system_fit(old, old, xo, {"frequency_hz": 100.0}, [False] * 3)
+    assert not moved_xo["crossover_ok"] and "crossover 80 Hz" in moved_xo["reasons"][0]
+    flipped = [dict(o) for o in old]
+    flipped[2]["polarity"] = -1
+    assert not cmp.system_fit(old, flipped, xo, xo, [False] * 3)["polarity_ok"]
+
+
+def test_a_subwoofer_without_treble_gives_no_reflection_evidence():
+    # Nothing above 500 Hz (4th-order Butterworth low-pass at 120 Hz, scipy): the pattern
+    # window holds only noise in its band, so it is no evidence either way (never "stayed").
+    from scipy.signal import butter, sosfilt
+
+    sos = butter(4, 120.0, "lowpass", fs=FS, output="sos")
+    spk1 = [LEFT_M, moved(RIGHT_M, SEAT_M, 0.3)]
+    a, b = acoustic_reference_runs([LEFT_M, RIGHT_M], spk1, seed=11)
+    a[0, 1], b[0, 1] = sosfilt(sos, a[0, 1]), sosfilt(sos, b[0, 1])
+    res = cmp.compare_sets(
+        a, FS, b, FS, 20.0, ["main", "sub"], origin="reference", reference_index=0
+    )
+    sub = res["channels"][1]["reflections_changed"]
+    assert sub["probability"] is None and sub["snr_db"] < cmp.PATTERN_MIN_SNR_DB
+    # the main's reflections did not change: it is never the one said to have moved
+    move = res["move"]
+    assert "main" not in move["readings"][0]["moved"] or not move["sure"]

@@ -582,7 +582,9 @@ def compare_sets(
         if paired:
             pcs = [pattern_change(a[p, ch], b[p, ch], fs_a) for p in range(a.shape[0])]
             ratio = float(np.median([x["ratio"] for x in pcs]))
-            pattern = {"ratio": round(ratio, 3), "probability": round(moved_probability(ratio), 3)}
+            snr = float(np.median([x["snr_db"] for x in pcs]))
+            prob = round(moved_probability(ratio), 3) if snr >= PATTERN_MIN_SNR_DB else None
+            pattern = {"ratio": round(ratio, 3), "snr_db": round(snr, 1), "probability": prob}
             res = [arrival_change_s(a[p, ch], b[p, ch], fs_a) for p in range(a.shape[0])]
             per_pos = np.array([r[0] for r in res])
             inverted = sum(r[1] for r in res) > len(res) / 2
@@ -643,6 +645,7 @@ def compare_sets(
             [
                 np.nan
                 if chn["reflections_changed"] is None
+                or chn["reflections_changed"]["probability"] is None
                 else chn["reflections_changed"]["probability"]
                 for chn in channels
             ]
@@ -681,6 +684,8 @@ PATTERN_FLOOR = 1e-3
 #: likely as not, and the width of the logistic step (factors of ten) around it.
 PATTERN_MID_RATIO = 10.0
 PATTERN_STEP_DECADES = 0.25
+#: Below this signal-to-noise ratio of the reflection window (dB) the pattern tells nothing.
+PATTERN_MIN_SNR_DB = 20.0
 #: A loudspeaker whose distance changed by less than this did not move (in distance).
 MIN_MOVE_M = 0.01
 #: Attribution is stated as sure at or above this confidence (rule of our own).
@@ -733,7 +738,10 @@ def pattern_change(ir_a: np.ndarray, ir_b: np.ndarray, fs: int) -> dict:
     -------
     dict
         ``decorrelation`` (``1 - rho``), ``noise`` (its expectation without a
-        change, plus :data:`PATTERN_FLOOR`), ``ratio`` (the two divided).
+        change, plus :data:`PATTERN_FLOOR`), ``ratio`` (the two divided) and
+        ``snr_db`` (the window's energy in the band over the noise's, the worse run;
+        below :data:`PATTERN_MIN_SNR_DB` the pattern is no evidence, e.g. a subwoofer
+        with nothing above 500 Hz).
 
     References
     ----------
@@ -764,7 +772,8 @@ def pattern_change(ir_a: np.ndarray, ir_b: np.ndarray, fs: int) -> dict:
         )
     expect = 0.5 * (noise[0] + noise[1]) + PATTERN_FLOOR
     d = max(1.0 - rho, 0.0)
-    return {"decorrelation": d, "noise": expect, "ratio": d / expect}
+    snr = float(-10.0 * np.log10(max(noise[0], noise[1], 1e-30)))
+    return {"decorrelation": d, "noise": expect, "ratio": d / expect, "snr_db": snr}
 
 
 def moved_probability(ratio: float) -> float:

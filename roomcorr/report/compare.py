@@ -55,7 +55,11 @@ def format_comparison(res: dict[str, Any]) -> list[str]:
             )
         )
         pattern = ch.get("reflections_changed")
-        if pattern is not None and relative:
+        if pattern is not None and relative and pattern["probability"] is None:
+            lines.append(
+                f"  early reflections too weak to compare ({pattern['snr_db']:.0f} dB above noise)"
+            )
+        elif pattern is not None and relative:
             lines.append(
                 f"  early reflections {'changed' if pattern['probability'] >= 0.5 else 'unchanged'}"
                 f" relative to its own direct sound (change {pattern['ratio']:.3g} x noise)"
