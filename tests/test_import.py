@@ -71,6 +71,9 @@ def test_import_makes_a_run_that_history_design_and_compare_use(room: rooms.Room
     design = rooms.list_runs(room, "design", include_incomplete=False)[0].path
     man = json.loads((design / "manifest.json").read_text())
     assert [o["name"] for o in man["outputs"]] == ["west", "east"]  # names from the import
+    # the manifest records what the measurement's arrivals (and so its delays) rest on
+    assert man["timing_basis"]["kind"] == "unknown"
+    assert man["timing_basis"] == fig["timing_basis"]
     # a second import stated as on the same loudspeaker reference; compare works on both
     r2 = cli(
         "import",
