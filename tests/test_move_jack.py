@@ -79,6 +79,8 @@ def test_compare_names_the_loudspeaker_that_moved(make_room, tmp_path, who, dist
     doc = json.loads(cmp.stdout)
     assert doc["timing"]["origin"] == "reference"
     move = doc["move"]
+    print(f"JACK move case {who}: truth {truth:+.4f} m; {move['sentence']}; distances "
+          f"{[c['distance_change_m'] for c in doc['channels']]}")  # fmt: skip
     names = ["left", "right"]
     if move["sure"]:
         assert move["readings"][0]["moved"] == [names[who]], move["sentence"]
