@@ -121,3 +121,34 @@ def test_token_host_and_size_are_checked(room):
     assert r.status_code == 413
     assert _runs(room) == []
     assert json.loads(r.text)["error"].startswith("request: larger than")
+
+
+def test_browser_uploads_impulse_responses_and_shows_the_timing_basis(room, tmp_path):
+    """A real browser: the Room tab's import form uploads WAVs, the new run appears with its
+    timing basis (headless Chromium through Selenium, as tests/test_ui_server.py)."""
+    from test_ui_server import _chrome, _no_console_errors
+
+    from roomcorr.ui.server import background_server
+
+    driver = _chrome(tmp_path)
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.support import expected_conditions as ec
+    from selenium.webdriver.support.ui import Select, WebDriverWait
+
+    try:
+        with background_server(room, TOKEN) as base:
+            driver.get(f"{base}/?token={TOKEN}")
+            wait = WebDriverWait(driver, 60)
+            wait.until(ec.text_to_be_present_in_element((By.ID, "status"), "runs in"))
+            upload = driver.find_element(By.ID, "i-upload")
+            upload.send_keys("\n".join(str(p) for p in DEMO))
+            driver.find_element(By.ID, "i-names").send_keys("west,east")
+            Select(driver.find_element(By.ID, "i-basis")).select_by_value("reference:1")
+            driver.find_element(By.ID, "i-go").click()
+            wait.until(ec.text_to_be_present_in_element((By.ID, "status"), "imported 4 position"))
+            row = wait.until(lambda d: d.find_elements(By.CSS_SELECTOR, "#runs tbody tr.pick"))[0]
+            assert "timing: acoustic reference: west (output 1)" in row.text
+            _no_console_errors(driver)
+    finally:
+        driver.quit()
+    assert len(rooms.list_runs(room, "measurement", include_incomplete=False)) == 1
