@@ -74,6 +74,10 @@ def test_import_makes_a_run_that_history_design_and_compare_use(room: rooms.Room
     # the manifest records what the measurement's arrivals (and so its delays) rest on
     assert man["timing_basis"]["kind"] == "unknown"
     assert man["timing_basis"] == fig["timing_basis"]
+    rep = cli("report", str(design), cwd=room.root)
+    assert rep.returncode == 0, rep.stderr
+    page = (design / "report.html").read_text(encoding="utf-8")
+    assert "Timing basis of the measurement behind this design: unknown" in page
     # a second import stated as on the same loudspeaker reference; compare works on both
     r2 = cli(
         "import",

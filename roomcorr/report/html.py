@@ -1392,6 +1392,11 @@ def write_report(
     report = build_report(
         curves, settings, quality, iir=iir, dpi=dpi, comparison=comparison, through=through
     )
+    basis = manifest.get("timing_basis") if is_design else None
+    if isinstance(basis, dict) and isinstance(basis.get("label"), str):
+        report.sections[0].paragraphs.append(  # the manifest's words (measure/timing.py)
+            f"Timing basis of the measurement behind this design: {basis['label']}."
+        )
     # A finished room run is sealed by its complete.json (SHA-256 of every file,
     # manifest included): the report is added beside it, never into its manifest.
     same = dest.resolve() == d.resolve()
