@@ -755,8 +755,9 @@ def pattern_change(ir_a: np.ndarray, ir_b: np.ndarray, fs: int) -> dict:
     t_b = direct_arrival_s(b, fs)
     b = _frac_shift(b, (t_a - t_b) * fs)
     i0 = int(round(t_a * fs + PATTERN_START_S * fs))
-    n = int(round((PATTERN_END_S - PATTERN_START_S) * fs))
-    n = max(16, min(n, a.size - i0))
+    n = min(int(round((PATTERN_END_S - PATTERN_START_S) * fs)), a.size - i0, b.size - i0)
+    if n < 16:  # the direct sound sits at the very end: no window to compare
+        return {"decorrelation": 0.0, "noise": 1.0, "ratio": 0.0, "snr_db": -300.0}
     win = _tukey(n, 0.2)
     n_fft = 1 << int(np.ceil(np.log2(2 * n)))
     spec_a = _band_spectrum(a[i0 : i0 + n] * win, fs, n_fft)
