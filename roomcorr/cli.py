@@ -355,6 +355,11 @@ def _run_design(args: argparse.Namespace) -> int:
         on_source=lambda meas: print(f"Using the latest measurement: {meas}"),
     )
     _print_design_summary(result, out, entries)
+    from roomcorr.deliver.export import read_manifest
+
+    basis = read_manifest(out).get("timing_basis")  # the manifest's words, as the report's
+    if isinstance(basis, dict) and basis.get("label"):
+        print(f"Timing basis of the measurement: {basis['label']}")
     return 0
 
 

@@ -68,6 +68,7 @@ def test_import_makes_a_run_that_history_design_and_compare_use(room: rooms.Room
     assert fig["timing_basis"]["kind"] == "unknown" and fig["channels"] == 2
     d = cli("design", "--rates", "48000", cwd=room.root)
     assert d.returncode == 0, d.stderr
+    assert "Timing basis of the measurement: unknown" in d.stdout  # summary = manifest = report
     design = rooms.list_runs(room, "design", include_incomplete=False)[0].path
     man = json.loads((design / "manifest.json").read_text())
     assert [o["name"] for o in man["outputs"]] == ["west", "east"]  # names from the import
