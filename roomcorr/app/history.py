@@ -17,6 +17,7 @@ from roomcorr.deliver.atomic import atomic_write_text
 from roomcorr.deliver.export import read_manifest
 from roomcorr.deliver.figures import figures_of_manifest, fmt_db
 from roomcorr.errors import InputFileError, OutputError, RoomcorrError
+from roomcorr.measure.timing import timing_basis
 from roomcorr.rooms import (
     Room,
     check_run,
@@ -55,6 +56,7 @@ def _measurement_figures(run_dir: Path) -> dict[str, Any]:
     ]
     figs["peak_dbfs"] = round(float(20 * np.log10(np.max(np.abs(irs)) + 1e-30)), 1)
     record = run_dir / "measurement.json"
+    figs["timing_basis"] = timing_basis(None)
     if record.is_file():
         try:
             data = json.loads(record.read_text(encoding="utf-8"))
@@ -63,6 +65,7 @@ def _measurement_figures(run_dir: Path) -> dict[str, Any]:
         if not isinstance(data, dict):
             raise InputFileError(f"{record}: damaged (expected a JSON object)")
         figs.update(_record_figures(data))
+        figs["timing_basis"] = timing_basis(data)
     return figs
 
 
@@ -137,7 +140,8 @@ def history(room: Room) -> list[dict[str, Any]]:
         ``kind, run_id, path, status ("complete", "incomplete" or "running"),
         started_utc, finished_utc, source`` (designs: the measurement used)
         and ``figures`` (measurements: positions, channels, sample_rate,
-        length_ms, arrival_ms per channel, peak_dbfs; designs: the manifest's
+        length_ms, arrival_ms per channel, peak_dbfs, timing_basis (from
+        :func:`roomcorr.measure.timing.timing_basis`); designs: the manifest's
         figures block (pre_gain_db, largest_boost_db, peak_gain_db,
         worst_case_gain_db, latency_ms when not 0), rates, band, target).
     """
@@ -237,8 +241,8 @@ def format_history(entries: list[dict[str, Any]], name: str = "") -> list[str]:
                 extra.append("WARNING: " + ", ".join(f["gates_warned"]))
             if "min_snr_db" in f:
                 extra.append(f"lowest SNR {f['min_snr_db']} dB")
-            if f.get("loopback") is False:
-                extra.append("no loopback (arrival includes system latency)")
+            if f.get("timing_basis"):
+                extra.append(f"timing: {f['timing_basis']['label']}")
             if extra:
                 lines.append("      " + "; ".join(extra))
         elif e["kind"] == "design" and f:

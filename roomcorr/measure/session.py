@@ -77,6 +77,25 @@ def sweep_layout(ms: MeasureSettings) -> dict:
     }
 
 
+def run_timing_basis(ms: MeasureSettings, devices: dict) -> dict:
+    """What this session's arrival times are measured from (stored as ``timing_basis``).
+
+    The same decision :func:`analyse_recording` makes per capture: a loopback channel
+    gives an absolute origin; otherwise the timing markers put the reference
+    loudspeaker's arrival ``lead_s`` after the origin; without both, the origin is
+    the sweep start as sent to one full-duplex device. Read back with
+    :func:`roomcorr.measure.timing.timing_basis`.
+    """
+    if ms.loopback is not None:
+        return {"kind": "loopback"}
+    if ms.markers:
+        return {"kind": "acoustic reference", "reference_output": ms.reference_output}
+    return {
+        "kind": "single device",
+        "device": f"{devices.get('input')}|{devices.get('output')}",
+    }
+
+
 def make_sweep(ms: MeasureSettings) -> Sweep:
     """Build the synchronised sweep described by the settings."""
     return synchronized_sweep(
@@ -566,6 +585,7 @@ def run_measurement(
             "positions": [],
         }
     record["devices"] = devices.to_dict()
+    record["timing_basis"] = run_timing_basis(ms, record["devices"])
     record["timing_reference"] = (
         None
         if not ms.markers

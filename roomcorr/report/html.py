@@ -437,8 +437,10 @@ def comparison_section(res: dict[str, Any]) -> Section:
     rows = [["channel", "arrival change (ms)", "distance change (m)", "level change (dB)",
              "what changed"]]
     for ch, text in zip(chans, per_channel, strict=True):
+        dist = ch["distance_change_m"]
         rows.append([str(ch["name"]), f"{ch['arrival_change_ms']:+.3f}",
-                     f"{ch['distance_change_m']:+.3f}", f"{ch['level_change_db']:+.2f}", text])
+                     "unsure" if dist is None else f"{dist:+.3f}",
+                     f"{ch['level_change_db']:+.2f}", text])
     sec.table = rows
     sec.figures.append(
         Figure("compare", "Before and after, both responses overlaid per channel",
@@ -449,12 +451,17 @@ def comparison_section(res: dict[str, Any]) -> Section:
 
 def _comparison_sentence(res: dict[str, Any]) -> str:
     parts = [
-        f"{ch['name']} {ch['distance_change_m']:+.3f} m, {ch['level_change_db']:+.1f} dB"
+        f"{ch['name']} "
+        + ("distance unsure" if ch["distance_change_m"] is None
+           else f"{ch['distance_change_m']:+.3f} m")
+        + f", {ch['level_change_db']:+.1f} dB"
         for ch in res["channels"]
     ]
+    move = res.get("move")
     return (
         f"Since the earlier measurement ({res['before']}): " + "; ".join(parts)
         + " (distance and level changes; see the comparison section)."
+        + (f" Who moved: {move['sentence']}." if move else "")
     )
 
 
@@ -1524,6 +1531,11 @@ def write_report(
         facts=facts,
         figures=figures,
     )
+    basis = manifest.get("timing_basis") if is_design else None
+    if isinstance(basis, dict) and isinstance(basis.get("label"), str):
+        report.sections[0].paragraphs.append(  # the manifest's words (measure/timing.py)
+            f"Timing basis of the measurement behind this design: {basis['label']}."
+        )
     # A finished room run is sealed by its complete.json (SHA-256 of every file,
     # manifest included): the report is added beside it, never into its manifest.
     same = dest.resolve() == d.resolve()

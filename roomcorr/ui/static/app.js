@@ -59,6 +59,7 @@ function describe(run) {
     if (f.channels) parts.push(`${f.channels} loudspeakers`);
     if (f.sample_rate) parts.push(`${f.sample_rate} Hz`);
     if (f.gates_warned && f.gates_warned.length) parts.push(`WARNING: ${f.gates_warned.join(", ")}`);
+    if (f.timing_basis) parts.push(`timing: ${f.timing_basis.label}`);
     return parts.join(", ");
   }
   const parts = [];
@@ -686,6 +687,42 @@ function heatMap(parent, label, map, modes, readout, count) {
   return { draw, canvas };
 }
 
+// Bring impulse responses into the room: uploaded files (base64 in JSON, the server caps
+// the request size) or WAVs already inside the room folder; the same checks as the CLI.
+async function loadImportCandidates() {
+  const sel = el("i-choose");
+  if (!sel) return;
+  const files = await api("/api/import/candidates");
+  sel.innerHTML = "";
+  files.forEach(f => { const o = document.createElement("option"); o.value = o.textContent = f; sel.appendChild(o); });
+}
+
+function fileBase64(file) {
+  return new Promise((resolve, reject) => {
+    const r = new FileReader();
+    r.onload = () => resolve(String(r.result).split(",", 2)[1] || "");
+    r.onerror = () => reject(r.error);
+    r.readAsDataURL(file);
+  });
+}
+
+async function importFiles() {
+  const body = { names: el("i-names").value.trim() || null, timing_basis: el("i-basis").value };
+  const uploads = [...el("i-upload").files];
+  const chosen = [...el("i-choose").selectedOptions].map(o => o.value);
+  try {
+    if (uploads.length) body.files = await Promise.all(uploads.map(async f => ({ name: f.name, data: await fileBase64(f) })));
+    else body.paths = chosen;
+    status("importing ...");
+    const res = await api("/api/import", body);
+    status(`imported ${res.positions} position(s) x ${res.channels} channel(s) as measurement ${res.run_id} (timing: ${res.timing_basis.label})`);
+    el("i-upload").value = "";
+    await loadRoom(true);
+  } catch (err) {
+    status(String(err.message || err), true);
+  }
+}
+
 async function openCompare() {
   const a = el("c-before").value, b = el("c-after").value;
   if (!a || !b) { status("compare needs two finished measurements", true); return; }
@@ -1247,6 +1284,8 @@ async function setupDesign() {
   el("d-clear-points").addEventListener("click", () => { targetPoints = []; renderPoints(); shaped = true; schedule(); });
   el("d-save").addEventListener("click", saveDesign);
   el("c-go").addEventListener("click", openCompare);
+  el("i-go").addEventListener("click", importFiles);
+  loadImportCandidates().catch(() => {});
   el("report-write").addEventListener("click", writeReport);
   el("d-undo").addEventListener("click", () => restore(-1));
   el("d-redo").addEventListener("click", () => restore(1));
@@ -1287,7 +1326,7 @@ function connectLive() {
   const ws = new WebSocket(`${proto}://${location.host}/api/live?token=${encodeURIComponent(TOKEN)}`);
   ws.onmessage = msg => {
     const ev = JSON.parse(msg.data);
-    if (ev.type === "design" && ev.state === "finished") loadRoom(true).catch(() => {});
+    if ((ev.type === "design" || ev.type === "import") && ev.state === "finished") loadRoom(true).catch(() => {});
   };
 }
 
