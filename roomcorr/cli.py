@@ -255,6 +255,7 @@ def _print_design_summary(result: Any, out: Path, entries: list[dict]) -> None:
     from roomcorr.design.safety import PEAK_BAND
 
     print(f"Design written to {out}  ({len(entries) + 1} files, manifest.json lists them)")
+    _print_files_written(out)
     print(f"Common pre-gain: {result.pre_gain_db:+.2f} dB (same for every channel)")
     print(f"Peak gain below is the largest gain from {PEAK_BAND}, pre-gain included")
     for ch in result.channels:
@@ -297,6 +298,22 @@ def _print_design_summary(result: Any, out: Path, entries: list[dict]) -> None:
             "lower the player's volume to avoid clipping.",
             file=sys.stderr,
         )
+    _print_next_steps(out)
+
+
+def _print_files_written(out: Path) -> None:
+    """The filter files per rate and format, relative to ``out`` (deliver/loading.py)."""
+    from roomcorr.app.playback import design_files
+
+    for line in design_files(str(out))["lines"]:
+        print(line)
+
+
+def _print_next_steps(out: Path) -> None:
+    from roomcorr.deliver.loading import next_steps
+
+    for line in next_steps(str(out)):
+        print(line)
 
 
 def _print_system_summary(result: Any) -> None:
@@ -850,6 +867,115 @@ def _run_ui(args: argparse.Namespace) -> int:
     return 0
 
 
+# --------------------------------------------------------------------------- playback
+
+
+def _add_apply(sub: Any) -> argparse.ArgumentParser:
+    from roomcorr.playback.render import LOWERED_PEAK_DBFS, SUBTYPES
+
+    p = sub.add_parser(
+        "apply",
+        help="render an audio file through a design's filters (offline, streamed)",
+        description="Convolve INPUT through the design's routes (every input into every "
+        "output it feeds, with the design's delays and gains) at the file's sample rate, "
+        "block by block. The output has one channel per loudspeaker output and keeps the "
+        "filters' tail. Nothing is clipped: if the result would exceed full scale it is "
+        f"lowered to {LOWERED_PEAK_DBFS:g} dBFS peak and the amount printed (--no-lower "
+        "refuses instead).",
+    )
+    p.add_argument("input", metavar="INPUT", help="audio file (WAV, FLAC, ...)")
+    p.add_argument("--design", required=True, metavar="DIR", help="design folder")
+    p.add_argument("--out", required=True, metavar="OUTPUT.wav", help="file to write")
+    p.add_argument(
+        "--subtype", default="FLOAT", choices=SUBTYPES, help="output sample format (FLOAT)"
+    )
+    p.add_argument(
+        "--no-lower",
+        action="store_true",
+        help="refuse (write nothing) rather than lower a result that would clip",
+    )
+    return p
+
+
+def _run_apply(args: argparse.Namespace) -> int:
+    from rich.console import Console
+    from rich.progress import BarColumn, Progress, TextColumn, TimeRemainingColumn
+
+    from roomcorr.app.playback import apply_command
+
+    console = Console(stderr=True)
+    with Progress(
+        TextColumn("rendering"),
+        BarColumn(),
+        TextColumn("{task.percentage:>3.0f} %"),
+        TimeRemainingColumn(),
+        console=console,
+        transient=True,
+    ) as bar:
+        task = bar.add_task("apply", total=1)
+        res = apply_command(
+            args.input,
+            args.design,
+            args.out,
+            subtype=args.subtype,
+            lower=not args.no_lower,
+            on_progress=lambda done, total: bar.update(task, completed=done, total=total),
+        )
+    print(
+        f"Wrote {res['out']}: {res['seconds']:.1f} s at {res['sample_rate']} Hz, "
+        f"{res['inputs']} input(s) -> {res['outputs']} output(s), {res['subtype']}"
+    )
+    peak = "silent" if res["peak_dbfs"] is None else f"{res['peak_dbfs']:+.2f} dBFS"
+    print(f"Output peak (sample): {peak}")
+    if res["lowered_db"] > 0:
+        print(
+            f"LOWERED by {res['lowered_db']:.2f} dB: the result would have exceeded full "
+            f"scale; its peak is now {res['lowered_to_dbfs']:g} dBFS (nothing clipped)"
+        )
+    if res["latency_ms"] > 0:
+        print(f"Mixed-phase latency: the output is {res['latency_ms']:.2f} ms late")
+    _print_cautions()
+    return 0
+
+
+def _add_commands(sub: Any) -> argparse.ArgumentParser:
+    p = sub.add_parser(
+        "commands",
+        help="print where a design's files are and ffmpeg/sox command lines that apply it",
+        description="Print the design's filter files and, per sample rate, an ffmpeg "
+        "command (afir) and sox commands (fir) that render a file through the design's "
+        "routes, delays and gains exactly as 'roomcorr apply' does.",
+    )
+    p.add_argument("design", metavar="DIR", help="design folder")
+    p.add_argument("--rate", type=_whole, metavar="HZ", help="only this sample rate")
+    p.add_argument("--input", default="music.wav", metavar="FILE", help="input file name")
+    p.add_argument("--output", default="corrected.wav", metavar="FILE", help="output file name")
+    return p
+
+
+def _run_commands(args: argparse.Namespace) -> int:
+    from roomcorr.app.playback import design_commands, design_files
+
+    files = design_files(args.design)
+    print(f"Filters in {files['folder']}:")
+    for line in files["lines"]:
+        print(line)
+    doc = design_commands(args.design, args.rate, args.input, args.output)
+    ver = doc["ffmpeg_version"]
+    for r in doc["rates"]:
+        print(f"\n# {r['sample_rate']} Hz input: ffmpeg"
+              + (f" {ver[0]}.{ver[1]}" if ver else " 6.1 or later"))
+        print(r["ffmpeg"])
+        if r["sox"] is None:
+            print(f"# sox: {r['sox_note']}")
+        else:
+            print(f"# {r['sample_rate']} Hz input: sox (one command per output, then join)")
+            for line in r["sox"]:
+                print(line)
+    print("\n# sox clips samples beyond full scale; check the peak with 'roomcorr apply' first.")
+    return 0
+
+
 _COMMANDS: list[tuple[str, Callable[[Any], argparse.ArgumentParser], Callable[..., int]]] = [
     ("demo", _add_demo, _run_demo),
     ("design", _add_design, _run_design),
@@ -862,6 +988,8 @@ _COMMANDS: list[tuple[str, Callable[[Any], argparse.ArgumentParser], Callable[..
     ("history", _add_history, _run_history),
     ("compare", _add_compare, _run_compare),
     ("ui", _add_ui, _run_ui),
+    ("apply", _add_apply, _run_apply),
+    ("commands", _add_commands, _run_commands),
 ]
 
 

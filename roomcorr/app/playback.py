@@ -1,0 +1,104 @@
+"""Sound through a design: render a file, print commands for other tools, list the files.
+
+Plain functions returning JSON-ready data; the command line and the browser
+app call them (no printing here).
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Callable
+from pathlib import Path
+from typing import Any
+
+from roomcorr.deliver.commands import (
+    command_text,
+    ffmpeg_command,
+    ffmpeg_version,
+    sox_commands,
+)
+from roomcorr.deliver.export import read_manifest
+from roomcorr.deliver.loading import file_groups, files_lines, next_steps
+from roomcorr.deliver.plan import design_rates, load_route_plan
+from roomcorr.errors import SettingsError
+from roomcorr.playback.render import LOWERED_PEAK_DBFS, apply_file
+
+
+def apply_command(
+    in_path: str,
+    design_dir: str,
+    out_path: str,
+    subtype: str = "FLOAT",
+    lower: bool = True,
+    on_progress: Callable[[int, int], None] | None = None,
+) -> dict[str, Any]:
+    """Render ``in_path`` through the design into ``out_path`` (see
+    :func:`roomcorr.playback.render.apply_file`); returns what was done."""
+    r = apply_file(in_path, design_dir, out_path, subtype, lower, on_progress)
+    return {
+        "out": str(r.out_path),
+        "sample_rate": r.fs,
+        "seconds": r.n_frames / r.fs,
+        "inputs": r.n_inputs,
+        "outputs": r.n_outputs,
+        "peak_dbfs": None if math.isinf(r.peak_dbfs) else round(r.peak_dbfs, 2),
+        "lowered_db": round(r.lowered_db, 2),
+        "lowered_to_dbfs": LOWERED_PEAK_DBFS if r.lowered_db > 0 else None,
+        "subtype": r.subtype,
+        "latency_ms": round(1000.0 * r.latency_samples / r.fs, 3),
+        "pre_gain_db": r.pre_gain_db,
+    }
+
+
+def design_commands(
+    design_dir: str,
+    rate: int | None = None,
+    in_path: str = "music.wav",
+    out_path: str = "corrected.wav",
+) -> dict[str, Any]:
+    """ffmpeg and sox command lines rendering a file through the design, per rate.
+
+    Returns
+    -------
+    dict
+        ``{"ffmpeg_version": [major, minor] or None, "rates": [{"sample_rate",
+        "ffmpeg": line, "sox": [lines] or None, "sox_note": str or None}]}``.
+    """
+    manifest = read_manifest(design_dir)
+    rates = design_rates(manifest)
+    if rate is not None:
+        if rate not in rates:
+            raise SettingsError(
+                f"--rate {rate}: the design has filters for {', '.join(map(str, rates))} Hz"
+            )
+        rates = [rate]
+    version = ffmpeg_version()
+    out = []
+    for fs in rates:
+        plan = load_route_plan(design_dir, fs)
+        sox = sox_commands(plan, design_dir, in_path, out_path)
+        ffmpeg = ffmpeg_command(plan, design_dir, in_path, out_path, version)
+        out.append(
+            {
+                "sample_rate": fs,
+                "ffmpeg": command_text(ffmpeg),
+                "sox": None if sox is None else [command_text(c) for c in sox],
+                "sox_note": None
+                if sox is not None
+                else "sox reads coefficients as text: design again with --formats wav,txt",
+            }
+        )
+    return {"ffmpeg_version": list(version) if version else None, "rates": out}
+
+
+def design_files(design_dir: str) -> dict[str, Any]:
+    """Where a design's files are and how to load them (the Files page and ``commands``)."""
+    folder = Path(design_dir).resolve()
+    manifest = read_manifest(folder)
+    return {
+        "folder": str(folder),
+        "pre_gain_db": manifest.get("pre_gain_db"),
+        "groups": file_groups(manifest),
+        "lines": files_lines(manifest),
+        "next": next_steps(str(design_dir)),
+    }
