@@ -50,6 +50,8 @@ class BlockConvolver:
     mix : ndarray, shape (n_outputs, n_inputs)
     block : int
         Block (and partition) length; the FFT is twice as long.
+    workers : int
+        Threads for scipy.fft (one per output channel at most helps).
 
     References
     ----------
@@ -59,7 +61,7 @@ class BlockConvolver:
            input spectra (uniformly partitioned convolution).
     """
 
-    def __init__(self, h: np.ndarray, mix: np.ndarray, block: int) -> None:
+    def __init__(self, h: np.ndarray, mix: np.ndarray, block: int, workers: int = 1) -> None:
         self.block = int(block)
         self.mix = np.asarray(mix, dtype=np.float64)
         n_out, n_taps = h.shape
@@ -67,6 +69,7 @@ class BlockConvolver:
         padded = np.zeros((n_out, self.n_parts * self.block))
         padded[:, :n_taps] = h
         parts = padded.reshape(n_out, self.n_parts, self.block)
+        self.workers = workers
         self.spectra = scipy.fft.rfft(parts, n=2 * self.block, axis=-1)
         self.fdl = np.zeros_like(self.spectra)  # newest input spectrum at index 0
         self.prev = np.zeros((n_out, self.block))
@@ -78,9 +81,10 @@ class BlockConvolver:
         self.prev = m
         if self.n_parts > 1:
             self.fdl[:, 1:] = self.fdl[:, :-1]
-        self.fdl[:, 0] = scipy.fft.rfft(buf, axis=-1)
+        self.fdl[:, 0] = scipy.fft.rfft(buf, axis=-1, workers=self.workers)
         acc = np.einsum("opk,opk->ok", self.fdl, self.spectra)
-        return scipy.fft.irfft(acc, n=2 * self.block, axis=-1)[:, self.block :]
+        y = scipy.fft.irfft(acc, n=2 * self.block, axis=-1, workers=self.workers)
+        return y[:, self.block :]
 
 
 def offline_block(n_taps: int) -> int:
@@ -118,7 +122,7 @@ def _render_pass(
     """
     h = plan.combined_filters()
     block = offline_block(h.shape[1])
-    conv = BlockConvolver(h, plan.mix, block)
+    conv = BlockConvolver(h, plan.mix, block, workers=min(2, plan.n_outputs))
     src.seek(0)
     peak = 0.0
     done = 0
@@ -155,8 +159,9 @@ def apply_file(
     the whole convolution: ``n_frames + n_taps - 1`` (plus any trim delay)
     samples. Rendering streams in blocks; memory does not depend on the file's
     length. Nothing is ever clipped: if the sample peak exceeds full scale the
-    whole file is lowered to :data:`LOWERED_PEAK_DBFS` and the amount returned
-    (``lower``), or the call is refused (``lower=False``), and nothing is written.
+    whole file is rendered again, lowered to :data:`LOWERED_PEAK_DBFS`, and the
+    amount returned (``lower``), or the call is refused (``lower=False``) and
+    nothing is written (the file appears only when complete).
 
     Raises
     ------
@@ -196,25 +201,33 @@ def apply_file(
             )
         n_frames = int(src.frames)
         total = n_frames + plan.combined_filters().shape[1] - 1
-        # peak first (nothing written), then the file at the gain that keeps it below full scale
-        peak = _render_pass(src, plan, total, 1.0, None, _half(on_progress, 0, total))
-        gain, lowered_db = 1.0, 0.0
-        if peak > 1.0:
+        size = total * plan.n_outputs * {"FLOAT": 4, "DOUBLE": 8, "PCM_24": 3}[subtype]
+        container = "RF64" if size > _WAV_LIMIT_BYTES else "WAV"
+        state = {"peak": 0.0, "gain": 1.0}
+
+        def _pass(tmp: Path, gain: float, offset: int, of: int) -> float:
+            with sf.SoundFile(str(tmp), "w", fs, plan.n_outputs, subtype, format=container) as f:
+                progress = _scaled(on_progress, offset, total, of)
+                return _render_pass(src, plan, total, gain, f.write, progress)
+
+        def _write(tmp: Path) -> None:
+            # one pass at unit gain; only a result above full scale is rendered again,
+            # lowered (what the first pass wrote, clipped or not, is overwritten)
+            peak = _pass(tmp, 1.0, 0, total)
+            state["peak"] = peak
+            if peak <= 1.0:
+                return
             if not lower:
                 raise SafetyError(
                     f"--out {dst}: the output would peak at {20 * math.log10(peak):+.2f} dBFS "
                     "and clip; leave out --no-lower to lower it, or lower the input"
                 )
-            gain = 10.0 ** (LOWERED_PEAK_DBFS / 20.0) / peak
-            lowered_db = -20.0 * math.log10(gain)
-        size = total * plan.n_outputs * {"FLOAT": 4, "DOUBLE": 8, "PCM_24": 3}[subtype]
-        container = "RF64" if size > _WAV_LIMIT_BYTES else "WAV"
-
-        def _write(tmp: Path) -> None:
-            with sf.SoundFile(str(tmp), "w", fs, plan.n_outputs, subtype, format=container) as f:
-                _render_pass(src, plan, total, gain, f.write, _half(on_progress, total, total))
+            state["gain"] = 10.0 ** (LOWERED_PEAK_DBFS / 20.0) / peak
+            _pass(tmp, state["gain"], total, 2 * total)
 
         atomic_write_with(dst, _write)
+    peak, gain = state["peak"], state["gain"]
+    lowered_db = -20.0 * math.log10(gain)
     out_peak = peak * gain
     return ApplyResult(
         out_path=dst,
@@ -230,10 +243,10 @@ def apply_file(
     )
 
 
-def _half(
-    cb: Callable[[int, int], None] | None, offset: int, total: int
+def _scaled(
+    cb: Callable[[int, int], None] | None, offset: int, total: int, of: int
 ) -> Callable[[int, int], None] | None:
-    """Progress of one of two passes, reported on one scale of ``2 * total``."""
+    """Progress of one pass, reported on a scale of ``of`` samples starting at ``offset``."""
     if cb is None:
         return None
-    return lambda done, _t: cb(offset + done, 2 * total)
+    return lambda done, _t: cb(offset + done, max(of, offset + total))
