@@ -950,6 +950,12 @@ def _add_commands(sub: Any) -> argparse.ArgumentParser:
     p.add_argument("--rate", type=_whole, metavar="HZ", help="only this sample rate")
     p.add_argument("--input", default="music.wav", metavar="FILE", help="input file name")
     p.add_argument("--output", default="corrected.wav", metavar="FILE", help="output file name")
+    p.add_argument(
+        "--pipewire",
+        metavar="FILE.conf",
+        help="also write a PipeWire filter-chain configuration (a sink that plays through "
+        "the design; filters at --rate, default 48000 Hz)",
+    )
     return p
 
 
@@ -973,6 +979,17 @@ def _run_commands(args: argparse.Namespace) -> int:
             for line in r["sox"]:
                 print(line)
     print("\n# sox clips samples beyond full scale; check the peak with 'roomcorr apply' first.")
+    if args.pipewire:
+        from roomcorr.app.playback import pipewire_config
+
+        pw = pipewire_config(args.design, args.pipewire, args.rate)
+        print(
+            f"\nPipeWire configuration ({pw['sample_rate']} Hz filters): {pw['path']}\n"
+            f"  put it in {pw['where']};\n"
+            f"  a sink called '{pw['sink']}' appears: play music to it and connect its output "
+            "to the loudspeakers' device."
+        )
+        _print_cautions()
     return 0
 
 

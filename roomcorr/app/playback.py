@@ -19,6 +19,11 @@ from roomcorr.deliver.commands import (
 )
 from roomcorr.deliver.export import read_manifest
 from roomcorr.deliver.loading import file_groups, files_lines, next_steps
+from roomcorr.deliver.pipewire import (
+    SINK_NAME,
+    filter_chain_config,
+    write_filter_chain_config,
+)
 from roomcorr.deliver.plan import design_rates, load_route_plan
 from roomcorr.errors import SettingsError
 from roomcorr.playback.render import LOWERED_PEAK_DBFS, apply_file
@@ -89,6 +94,31 @@ def design_commands(
             }
         )
     return {"ffmpeg_version": list(version) if version else None, "rates": out}
+
+
+def pipewire_config(design_dir: str, path: str, rate: int | None = None) -> dict[str, Any]:
+    """Write a PipeWire filter-chain drop-in for the design (:mod:`roomcorr.deliver.pipewire`).
+
+    ``rate`` defaults to 48000 Hz when the design has it (PipeWire's usual
+    rate), else the design's highest rate.
+    """
+    manifest = read_manifest(design_dir)
+    rates = design_rates(manifest)
+    if rate is None:
+        rate = 48000 if 48000 in rates else max(rates)
+    elif rate not in rates:
+        raise SettingsError(
+            f"--rate {rate}: the design has filters for {', '.join(map(str, rates))} Hz"
+        )
+    plan = load_route_plan(design_dir, rate)
+    subs = {int(o["output"]) for o in manifest.get("outputs") or [] if o.get("role") == "sub"}
+    written = write_filter_chain_config(path, filter_chain_config(plan, design_dir, subs))
+    return {
+        "path": str(written.resolve()),
+        "sample_rate": rate,
+        "sink": SINK_NAME,
+        "where": "~/.config/pipewire/pipewire.conf.d/ (then: systemctl --user restart pipewire)",
+    }
 
 
 def design_files(design_dir: str) -> dict[str, Any]:
