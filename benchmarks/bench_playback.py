@@ -9,11 +9,13 @@ Printed:
 
 * speed: seconds of computing per second of audio for ``apply`` on one hour
   (goal below 1/20 of real time on a 2-core laptop) and on a shorter file;
+* CPU time (user + system) of that process, which other load on the machine does
+  not inflate as it does the wall time;
 * memory: peak resident set size (``ru_maxrss``) of a fresh process running
   ``apply`` on the short and on the long file: it must not grow with the length;
 * ratios against ``scipy.signal.oaconvolve`` and ``scipy.signal.fftconvolve``
-  through the same routes on 60 s held in memory (one pass, no file writing:
-  ``apply`` makes two passes, one for the peak and one to write).
+  through the same routes on 60 s held in memory (no file reading or writing;
+  ``apply`` renders once, and again only when the result must be lowered).
 
 Run: ``python benchmarks/bench_playback.py [--minutes 60]`` from the repository root.
 Needs about 1.4 GB of free disk per hour of input, twice (input and output).
@@ -83,8 +85,9 @@ from roomcorr.playback.render import apply_file
 t0 = time.perf_counter()
 r = apply_file({src!r}, {design!r}, {dst!r})
 dt = time.perf_counter() - t0
-rss = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
-print(json.dumps({{"seconds": dt, "rss": rss, "peak": r.peak_dbfs, "lowered": r.lowered_db}}))
+ru = resource.getrusage(resource.RUSAGE_SELF)
+cpu = ru.ru_utime + ru.ru_stime
+print(json.dumps({{"seconds": dt, "cpu": cpu, "rss": ru.ru_maxrss * 1024, "peak": r.peak_dbfs}}))
 """
 
 
@@ -124,6 +127,7 @@ def main(minutes: float = 60.0) -> None:
             per_s = res["seconds"] / (m * 60)
             rows.append([
                 f"{m:g} min", f"{res['seconds']:.1f}", f"1/{1 / per_s:.0f}",
+                f"{res['cpu']:.1f}",
                 f"{res['rss'] / 2**20:.0f}", f"{per_s / ref['oaconvolve']:.2f}",
                 f"{per_s / ref['fftconvolve']:.2f}", f"{res['peak']:+.1f}",
             ])  # fmt: skip
@@ -132,13 +136,15 @@ def main(minutes: float = 60.0) -> None:
         print_table(
             f"apply, stereo {FS} Hz through {TAPS} taps (goal: below 1/20 of real time; "
             "memory not growing with length)",
-            ["length", "time (s)", "of real time", "peak RSS (MiB)", "x oaconvolve",
+            ["length", "time (s)", "of real time", "CPU (s)", "peak RSS (MiB)", "x oaconvolve",
              "x fftconvolve", "peak (dBFS)"],
             rows,
         )  # fmt: skip
         print(
-            "x oaconvolve / x fftconvolve: apply's time per second of audio (two passes, "
-            "file reading and writing) over scipy's (one pass, 60 s in memory), same run"
+            "x oaconvolve / x fftconvolve: apply's wall time per second of audio (reading, "
+            "rendering, writing) over scipy's (60 s in memory), same run. CPU (s): user + "
+            "system time of the apply process (two FFT threads); on a shared machine the wall "
+            "time also holds waiting for the CPU."
         )
 
 

@@ -993,6 +993,112 @@ def _run_commands(args: argparse.Namespace) -> int:
     return 0
 
 
+def _add_listen(sub: Any) -> argparse.ArgumentParser:
+    p = sub.add_parser(
+        "listen",
+        help="play music through a design, switching corrected/uncorrected at equal loudness",
+        description="Play MUSIC through the design in real time (the same routes as 'apply') "
+        "and switch between corrected and uncorrected with a short cross-fade. The "
+        "uncorrected path is lowered to the corrected one's integrated loudness (ITU-R "
+        "BS.1770), so neither wins just by being louder. Keys: space or Enter switches, "
+        "+ and - change the level by 3 dB (never above the file's own level), q stops. "
+        "Starts quietly.",
+    )
+    p.add_argument("music", metavar="MUSIC", help="audio file at one of the design's rates")
+    p.add_argument("--design", required=True, metavar="DIR", help="design folder")
+    p.add_argument("--output-device", "--device", dest="device", metavar="DEV",
+                   help="output device (name part or number from 'roomcorr devices')")
+    p.add_argument("--level", type=_finite, default=-20.0, metavar="DB",
+                   help="starting level in dB below the file's own level (default -20; "
+                   "at most 0)")
+    p.add_argument("--block", type=_whole, default=256, metavar="N",
+                   help="samples per audio block (default 256)")
+    return p
+
+
+def _run_listen(args: argparse.Namespace) -> int:
+    import threading
+
+    from roomcorr.app.playback import prepare_listening
+    from roomcorr.playback.device import play
+
+    if args.block < 32 or args.block > 16384:
+        raise SettingsError(f"--block {args.block}: choose 32 to 16384 samples")
+    _print_cautions()
+    paths, music, fig = prepare_listening(args.music, args.design, args.level, args.block)
+    print(
+        f"Playing {args.music}: {fig['seconds']:.0f} s at {fig['sample_rate']} Hz, "
+        f"{', '.join(fig['inputs'])} -> {', '.join(fig['outputs'])}, block "
+        f"{fig['block']} ({fig['block_ms']:.1f} ms)"
+    )
+    print(
+        f"Equal loudness: the uncorrected path is set {fig['uncorrected_gain_db']:+.2f} dB "
+        f"(design pre-gain {fig['pre_gain_db']:+.2f} dB; BS.1770 integrated loudness of the "
+        f"first {fig['loudness_seconds']:.0f} s: corrected {fig['loudness_corrected_lufs']:.1f} "
+        f"LUFS, uncorrected {fig['loudness_uncorrected_lufs']:.1f} LUFS before matching)"
+    )
+    if fig["latency_ms"] > 0:
+        print(f"Latency of this mixed-phase design: {fig['latency_ms']:.2f} ms (both paths wait "
+              "as long, so the switch does not jump in time)")
+    print(f"Level {fig['level_db']:+.0f} dB. Keys: space/Enter switch, + louder, - quieter, "
+          "q stop.")
+    stop = threading.Event()
+    level = [fig["level_db"]]
+
+    def on_key(key: str) -> None:
+        if key in (" ", "\n", "\r"):
+            now = paths.toggle()
+            print("corrected" if now else "uncorrected (loudness-matched)", flush=True)
+        elif key in ("+", "="):
+            level[0] = min(0.0, level[0] + 3.0)
+            paths.set_level_db(level[0])
+            print(f"level {level[0]:+.0f} dB" + (" (the file's own level: the cap)"
+                  if level[0] == 0.0 else ""), flush=True)
+        elif key == "-":
+            level[0] -= 3.0
+            paths.set_level_db(level[0])
+            print(f"level {level[0]:+.0f} dB", flush=True)
+        elif key in ("q", "Q"):
+            stop.set()
+
+    reader = threading.Thread(target=_read_keys, args=(on_key, stop), daemon=True)
+    reader.start()
+    status = play(paths, music, args.device, stop)
+    print(f"Stopped after {status.blocks} blocks; buffers lost: {status.underflows}")
+    return 0
+
+
+def _read_keys(on_key: Callable[[str], None], stop: Any) -> None:
+    """Single keys from a terminal (cbreak mode), else whole lines; until ``stop`` is set."""
+    import os
+    import select
+
+    fd = sys.stdin.fileno() if sys.stdin is not None else -1
+    if fd < 0:
+        return
+    tty_state = None
+    if os.isatty(fd):
+        import termios
+        import tty
+
+        tty_state = termios.tcgetattr(fd)
+        tty.setcbreak(fd)
+    try:
+        while not stop.is_set():
+            ready, _, _ = select.select([fd], [], [], 0.1)
+            if not ready:
+                continue
+            ch = os.read(fd, 1).decode(errors="ignore")
+            if not ch:
+                return
+            on_key(ch)
+    finally:
+        if tty_state is not None:
+            import termios
+
+            termios.tcsetattr(fd, termios.TCSADRAIN, tty_state)
+
+
 _COMMANDS: list[tuple[str, Callable[[Any], argparse.ArgumentParser], Callable[..., int]]] = [
     ("demo", _add_demo, _run_demo),
     ("design", _add_design, _run_design),
@@ -1007,6 +1113,7 @@ _COMMANDS: list[tuple[str, Callable[[Any], argparse.ArgumentParser], Callable[..
     ("ui", _add_ui, _run_ui),
     ("apply", _add_apply, _run_apply),
     ("commands", _add_commands, _run_commands),
+    ("listen", _add_listen, _run_listen),
 ]
 
 

@@ -11,6 +11,9 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
+import numpy as np
+
+from roomcorr.audio_io import read_wav
 from roomcorr.deliver.commands import (
     command_text,
     ffmpeg_command,
@@ -25,8 +28,15 @@ from roomcorr.deliver.pipewire import (
     write_filter_chain_config,
 )
 from roomcorr.deliver.plan import design_rates, load_route_plan
-from roomcorr.errors import SettingsError
-from roomcorr.playback.render import LOWERED_PEAK_DBFS, apply_file
+from roomcorr.errors import InputFileError, SettingsError
+from roomcorr.playback.loudness import MIN_SECONDS, integrated_lufs
+from roomcorr.playback.realtime import LISTEN_BLOCK, ListeningPaths
+from roomcorr.playback.render import LOWERED_PEAK_DBFS, BlockConvolver, apply_file
+
+#: Seconds of the music rendered both ways to match their loudness.
+LOUDNESS_SECONDS = 60.0
+#: Level listening starts at (dB below the file's own level): start quietly.
+START_LEVEL_DB = -20.0
 
 
 def apply_command(
@@ -132,3 +142,70 @@ def design_files(design_dir: str) -> dict[str, Any]:
         "lines": files_lines(manifest),
         "next": next_steps(str(design_dir)),
     }
+
+
+def prepare_listening(
+    music_path: str,
+    design_dir: str,
+    level_db: float = START_LEVEL_DB,
+    block: int = LISTEN_BLOCK,
+) -> tuple[ListeningPaths, Any, dict[str, Any]]:
+    """Read the music, the design at its rate, and match the two paths' loudness.
+
+    The first :data:`LOUDNESS_SECONDS` of the music are rendered through the
+    design and through the routes alone; the uncorrected path is lowered by
+    the difference of their integrated loudness (ITU-R BS.1770, pyloudnorm),
+    which holds the design's pre-gain and the correction's own effect.
+
+    Returns
+    -------
+    paths : ListeningPaths
+    music : ndarray, shape (n_inputs, n_samples)
+    figures : dict
+        ``sample_rate``, ``seconds``, ``pre_gain_db``, ``uncorrected_gain_db``
+        (total), ``loudness_corrected_lufs``, ``loudness_uncorrected_lufs``
+        (before matching), ``latency_ms``, ``block``, ``block_ms``, ``level_db``.
+    """
+    x, fs = read_wav(music_path)
+    plan = load_route_plan(design_dir, fs)
+    if x.shape[0] != plan.n_inputs:
+        raise InputFileError(
+            f"{music_path}: {x.shape[0]} channel(s), but the design has {plan.n_inputs} "
+            f"input(s) ({', '.join(plan.input_names)})"
+        )
+    if not np.all(np.isfinite(x)):
+        raise InputFileError(f"{music_path}: holds NaN or infinite samples")
+    if x.shape[1] < MIN_SECONDS * fs:
+        raise InputFileError(f"{music_path}: shorter than {MIN_SECONDS} s; choose some music")
+    part = x[:, : int(LOUDNESS_SECONDS * fs)]
+    h = plan.combined_filters()
+    conv = BlockConvolver(h, plan.mix, 8192)
+    nb = -(-part.shape[1] // 8192)
+    padded = np.zeros((part.shape[0], nb * 8192))
+    padded[:, : part.shape[1]] = part
+    corr = np.concatenate(
+        [conv.process(padded[:, k * 8192 : (k + 1) * 8192]) for k in range(nb)], axis=1
+    )
+    lat = plan.latency_samples
+    corr = corr[:, lat : lat + part.shape[1]]
+    unc = (plan.mix * plan.trim[:, None]) @ part
+    l_corr = integrated_lufs(corr, fs)
+    l_unc = integrated_lufs(unc, fs)
+    gain_db = l_corr - l_unc if np.isfinite(l_corr) and np.isfinite(l_unc) else 0.0
+    paths = ListeningPaths(plan, gain_db, block=block, level_db=level_db)
+    figures = {
+        "sample_rate": fs,
+        "seconds": x.shape[1] / fs,
+        "inputs": plan.input_names,
+        "outputs": plan.output_names,
+        "pre_gain_db": plan.pre_gain_db,
+        "uncorrected_gain_db": round(gain_db, 2),
+        "loudness_corrected_lufs": round(l_corr, 2),
+        "loudness_uncorrected_lufs": round(l_unc, 2),
+        "loudness_seconds": part.shape[1] / fs,
+        "latency_ms": round(1000.0 * lat / fs, 3),
+        "block": block,
+        "block_ms": round(1000.0 * block / fs, 2),
+        "level_db": min(level_db, 0.0),
+    }
+    return paths, x, figures
