@@ -22,6 +22,7 @@ from typing import Any
 import numpy as np
 
 from roomcorr.analysis.decay import mean_band_decay as _mean_band_decay
+from roomcorr.report.files import files_parts
 from roomcorr.report.summary import fmt_hz, summary_sentences, withheld_regions
 
 REPORT_HTML = "report.html"
@@ -42,6 +43,7 @@ SECTION_TITLES = {
     "quality": "How good the measurement was",
     "through": "Measured through the design's filters",
     "safety": "Safety and levels",
+    "files": "The files and how to load them",
 }
 
 
@@ -819,6 +821,7 @@ def build_report(
     dpi: int = 90,
     comparison: dict[str, Any] | None = None,
     through: dict[str, Any] | None = None,
+    files: tuple[list[dict[str, Any]], str] | None = None,
 ) -> Report:
     """Compute every section and figure of the report.
 
@@ -851,6 +854,9 @@ def build_report(
         ``through.check`` of a ``measurement.json`` made with ``measure
         --through``: the responses measured through a design's filters
         against that design's prediction (see :func:`through_section`).
+    files : (list of dict, str), optional
+        The design's file groups (:func:`roomcorr.deliver.loading.file_groups`)
+        and folder name: adds the section on the files and how to load them.
 
     Returns
     -------
@@ -895,6 +901,9 @@ def build_report(
         overview.paragraphs.append(_through_sentence(through))
     if designed:
         sections.append(_safety_section(chans, curves, ctx))
+    if designed and files is not None:
+        table, paragraphs = files_parts(*files)
+        sections.append(Section("files", SECTION_TITLES["files"], paragraphs, table=table))
     return Report(title=title, subtitle=f"measured at {ctx.fs} Hz", sections=sections)
 
 
@@ -1382,8 +1391,14 @@ def write_report(
         through = _read_through(d)
     iir = _read_iir(d) if is_design else None
     comparison = report_comparison(d, compare_with)
+    files = None
+    if is_design:
+        from roomcorr.deliver.loading import file_groups
+
+        files = (file_groups(manifest), d.name)
     report = build_report(
-        curves, settings, quality, iir=iir, dpi=dpi, comparison=comparison, through=through
+        curves, settings, quality, iir=iir, dpi=dpi, comparison=comparison, through=through,
+        files=files,
     )
     # A finished room run is sealed by its complete.json (SHA-256 of every file,
     # manifest included): the report is added beside it, never into its manifest.
