@@ -54,6 +54,7 @@ def test_printed_commands_render_like_apply(system_design, tmp_path, fs, tool): 
     assert np.abs(y[ref.shape[0] :]).max(initial=0.0) < 1e-6
     for o in range(3):
         err = _error_db(y[: ref.shape[0], o], ref[:, o])
+        print(f"{tool} {fs} output {o}: {err:.1f} dB")
         assert err < -100, f"{tool} output {o} at {fs} Hz: {err:.1f} dB"  # the figure
 
 
