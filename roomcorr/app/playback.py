@@ -6,21 +6,26 @@ app call them (no printing here).
 
 from __future__ import annotations
 
+import io
 import math
+import zipfile
 from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
+from roomcorr import rooms
+from roomcorr.app.explore import run_folder
 from roomcorr.audio_io import read_wav
+from roomcorr.deliver.atomic import is_link_or_outside
 from roomcorr.deliver.commands import (
     command_text,
     ffmpeg_command,
     ffmpeg_version,
     sox_commands,
 )
-from roomcorr.deliver.export import read_manifest
+from roomcorr.deliver.export import MANIFEST, read_manifest
 from roomcorr.deliver.loading import file_groups, files_lines, next_steps
 from roomcorr.deliver.pipewire import (
     SINK_NAME,
@@ -28,7 +33,7 @@ from roomcorr.deliver.pipewire import (
     write_filter_chain_config,
 )
 from roomcorr.deliver.plan import design_rates, load_route_plan
-from roomcorr.errors import InputFileError, SettingsError
+from roomcorr.errors import InputFileError, OutputError, SettingsError
 from roomcorr.playback.loudness import MIN_SECONDS, integrated_lufs
 from roomcorr.playback.realtime import LISTEN_BLOCK, ListeningPaths
 from roomcorr.playback.render import LOWERED_PEAK_DBFS, BlockConvolver, apply_file
@@ -209,3 +214,70 @@ def prepare_listening(
         "level_db": min(level_db, 0.0),
     }
     return paths, x, figures
+
+
+def design_loading(room: rooms.Room, run_id: str) -> dict[str, Any]:
+    """The app's Files page: where a design run is on disk, its files, how to load them.
+
+    Returns :func:`design_files` plus ``files`` (path, kind, format, rate, taps
+    and pre-gain per file) and ``commands`` (:func:`design_commands`).
+    """
+    folder = run_folder(room, "design", run_id)
+    rooms.verified(room, folder, use=[folder / MANIFEST])
+    doc = design_files(str(folder))
+    manifest = read_manifest(folder)
+    pre = manifest.get("pre_gain_db")
+    rows = []
+    for e in manifest.get("files", []):
+        if e.get("kind") not in ("fir", "iir"):
+            continue
+        rows.append(
+            {
+                "path": e["path"],
+                "kind": e["kind"],
+                "format": e.get("format", "wav"),
+                "sample_rate": e.get("sample_rate"),
+                "taps": e.get("taps"),
+                # the biquads carry their own pre-gain; every FIR file the design's
+                "pre_gain_db": e.get("pre_gain_db", pre if e["kind"] == "fir" else None),
+            }
+        )
+    doc["files"] = rows
+    doc["commands"] = design_commands(str(folder))
+    doc["zip"] = f"{run_id}.zip"
+    return doc
+
+
+#: Largest design folder zipped for download (bytes of its files).
+MAX_ZIP_BYTES = 1 << 30
+
+
+def design_zip(room: rooms.Room, run_id: str) -> tuple[str, bytes]:
+    """One zip of a whole design run: its manifest and every file the manifest lists.
+
+    Every file is checked first (the run's SHA-256 record); a file that is a
+    link or leads out of the run folder is refused, as for single files.
+
+    Returns
+    -------
+    name : str
+        ``<run_id>.zip``
+    data : bytes
+    """
+
+    folder = run_folder(room, "design", run_id)
+    manifest = read_manifest(folder)
+    paths = [folder / MANIFEST] + [folder / e["path"] for e in manifest["files"]]
+    rooms.verified(room, folder, use=paths)
+    total = 0
+    for p in paths:
+        if is_link_or_outside(p, folder) or not p.is_file():
+            raise InputFileError(f"{p.name}: not a file of run {run_id}")
+        total += p.stat().st_size
+    if total > MAX_ZIP_BYTES:
+        raise OutputError(f"design {run_id}: {total} bytes, too large for one download")
+    buf = io.BytesIO()
+    with zipfile.ZipFile(buf, "w", zipfile.ZIP_DEFLATED) as z:
+        for p in paths:
+            z.write(p, f"{run_id}/{p.relative_to(folder).as_posix()}")
+    return f"{run_id}.zip", buf.getvalue()

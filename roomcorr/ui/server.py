@@ -42,6 +42,7 @@ from starlette.websockets import WebSocket, WebSocketDisconnect
 from roomcorr import app as service
 from roomcorr import rooms
 from roomcorr.app import measure as measuring
+from roomcorr.app import playback as playback_app
 from roomcorr.app.design import DesignPreview
 from roomcorr.app.report import report_in_room
 from roomcorr.errors import RoomBusyError, RoomcorrError
@@ -277,6 +278,18 @@ def create_app(room: rooms.Room, token: str, port: int) -> ASGIApp:
             return _error(exc, 404)
         return FileResponse(path, filename=path.name)
 
+    async def design_zip(request: Request) -> Response:
+        try:
+            name, data = await run_in_threadpool(
+                playback_app.design_zip, room, request.path_params["run_id"]
+            )
+        except RoomcorrError as exc:
+            return _error(exc, 404)
+        disposition = f'attachment; filename="{name}"'
+        return Response(
+            data, media_type="application/zip", headers={"content-disposition": disposition}
+        )
+
     async def report(request: Request) -> Response:
         if measurer.busy():
             return _error(RoomcorrError("a measurement is running; write the report later"), 409)
@@ -328,6 +341,11 @@ def create_app(room: rooms.Room, token: str, port: int) -> ASGIApp:
             api(lambda before, after: service.compare_view(room, before, after)),
         ),
         Route("/api/file/{kind}/{run_id}/{path:path}", run_file),
+        Route(
+            "/api/loading/{run_id}",
+            api(lambda run_id: playback_app.design_loading(room, run_id)),
+        ),
+        Route("/api/zip/{run_id}", design_zip),
         Route("/api/presets", api(target_presets)),
         Route("/api/preview", preview, methods=["POST"]),
         Route("/api/save", save, methods=["POST"]),

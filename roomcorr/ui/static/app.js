@@ -591,7 +591,40 @@ async function writeReport() {
   }
 }
 
+// Where the design is on disk, taps and pre-gain per filter file, the loading help and
+// ffmpeg/sox lines (roomcorr.app.playback.design_loading), and one zip of the whole design.
+async function loadLoading(runId) {
+  const zip = document.getElementById("loading-zip");
+  zip.hidden = true;
+  const doc = await api(`/api/loading/${encodeURIComponent(runId)}`);
+  document.getElementById("loading-folder").textContent = doc.folder;
+  zip.href = `/api/zip/${encodeURIComponent(runId)}`;
+  zip.download = doc.zip;
+  zip.hidden = false;
+  const body = document.querySelector("#loading-files tbody");
+  body.innerHTML = "";
+  for (const f of doc.files) {
+    const tr = document.createElement("tr");
+    const pre = f.pre_gain_db === null || f.pre_gain_db === undefined ? "" : Number(f.pre_gain_db).toFixed(2);
+    for (const c of [f.path, f.format, f.sample_rate || "", f.taps || "", pre]) {
+      const td = document.createElement("td");
+      td.textContent = c;
+      tr.appendChild(td);
+    }
+    body.appendChild(tr);
+  }
+  const lines = [...doc.lines, ""];
+  for (const r of doc.commands.rates) {
+    lines.push(`# ${r.sample_rate} Hz input, ffmpeg:`, r.ffmpeg);
+    if (r.sox) lines.push(`# sox:`, ...r.sox); else lines.push(`# sox: ${r.sox_note}`);
+    lines.push("");
+  }
+  lines.push(...doc.next);
+  document.getElementById("loading-help").textContent = lines.join("\n");
+}
+
 async function loadFiles(runId, prefetched = null) {
+  loadLoading(runId).catch((err) => status(String(err.message || err), true));
   const files = await (prefetched || api(`/api/files/${encodeURIComponent(runId)}`));
   filesRun = runId;
   document.getElementById("report-link").hidden = true;
