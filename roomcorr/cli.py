@@ -1005,7 +1005,9 @@ def _add_listen(sub: Any) -> argparse.ArgumentParser:
         "Starts quietly.",
     )
     p.add_argument("music", metavar="MUSIC", help="audio file at one of the design's rates")
-    p.add_argument("--design", required=True, metavar="DIR", help="design folder")
+    p.add_argument(
+        "--design", metavar="DIR", help="design folder (in a room folder: its latest design)"
+    )
     p.add_argument("--output-device", "--device", dest="device", metavar="DEV",
                    help="output device (name part or number from 'roomcorr devices')")
     p.add_argument("--level", type=_finite, default=-20.0, metavar="DB",
@@ -1019,15 +1021,17 @@ def _add_listen(sub: Any) -> argparse.ArgumentParser:
 def _run_listen(args: argparse.Namespace) -> int:
     import threading
 
-    from roomcorr.app.playback import prepare_listening
+    from roomcorr.app.playback import default_design, prepare_listening
     from roomcorr.playback.device import play
 
+    args.design = default_design(args.design)
     if args.block < 32 or args.block > 16384:
         raise SettingsError(f"--block {args.block}: choose 32 to 16384 samples")
     _print_cautions()
     paths, music, fig = prepare_listening(args.music, args.design, args.level, args.block)
     print(
-        f"Playing {args.music}: {fig['seconds']:.0f} s at {fig['sample_rate']} Hz, "
+        f"Playing {args.music} through {args.design}: {fig['seconds']:.0f} s at "
+        f"{fig['sample_rate']} Hz, "
         f"{', '.join(fig['inputs'])} -> {', '.join(fig['outputs'])}, block "
         f"{fig['block']} ({fig['block_ms']:.1f} ms)"
     )

@@ -111,3 +111,22 @@ def test_listening_paths_line_up_for_a_latency(tmp_path):
     x[0, 5] = 0.5
     y = _blocks(p, x)
     assert np.flatnonzero(y[0])[0] == 305  # delayed by exactly the latency
+
+
+@pytest.mark.parametrize("case", ["no design", "rate", "channels"])
+def test_listen_refusals_are_one_line_exit_2(system_design, tmp_path, case):  # noqa: F811
+    import subprocess
+    import sys
+
+    music = tmp_path / "m.wav"
+    fs = 96000 if case == "rate" else 48000
+    x = synth_music(fs, 1.0)
+    sf.write(music, x[0] if case == "channels" else x.T, fs, subtype="FLOAT")
+    design = [] if case == "no design" else ["--design", str(system_design)]
+    args = ["listen", str(music), *design]
+    r = subprocess.run([sys.executable, "-m", "roomcorr", *args], capture_output=True, text=True,
+                       cwd=tmp_path, stdin=subprocess.DEVNULL)  # fmt: skip
+    assert r.returncode == 2
+    errors = [ln for ln in r.stderr.splitlines() if ln.startswith("roomcorr: error")]
+    words = {"no design": "--design", "rate": "no filters for 96000 Hz", "channels": "1 channel"}
+    assert len(errors) == 1 and words[case] in errors[0] and "Traceback" not in r.stderr

@@ -281,3 +281,22 @@ def design_zip(room: rooms.Room, run_id: str) -> tuple[str, bytes]:
         for p in paths:
             z.write(p, f"{run_id}/{p.relative_to(folder).as_posix()}")
     return f"{run_id}.zip", buf.getvalue()
+
+
+def default_design(design_dir: str | None) -> str:
+    """``design_dir``, or in a room folder its latest complete design run.
+
+    Raises
+    ------
+    SettingsError
+        Without ``--design`` outside a room folder, or in a room with no design yet.
+    """
+    if design_dir:
+        return design_dir
+    room = rooms.find_room()
+    if room is None:
+        raise SettingsError("--design: give the design folder (or run this inside a room folder)")
+    runs = rooms.list_runs(room, "design", include_incomplete=False)
+    if not runs:
+        raise SettingsError(f"{room.root}: no design yet; run 'roomcorr design' first")
+    return str(runs[-1].path)
