@@ -17,8 +17,15 @@ Printed:
   through the same routes on 60 s held in memory (no file reading or writing;
   ``apply`` renders once, and again only when the result must be lowered).
 
-Run: ``python benchmarks/bench_playback.py [--minutes 60]`` from the repository root.
-Needs about 1.4 GB of free disk per hour of input, twice (input and output).
+Then ``listen`` for 60 s through a JACK server (dummy driver, 48 kHz, 256-sample
+periods, started here under its own name) at a 256-sample block, with
+tests/jack_recorder.py as the output device: the buffers PortAudio reports lost
+(goal: none on an idle machine) and the recording against the offline rendering
+(a lost buffer shows as a large error). Skipped without jackd or JACK-Client.
+
+Run: ``python benchmarks/bench_playback.py [--minutes 60] [--listen-only]`` from the
+repository root. Needs about 1.4 GB of free disk per hour of input, twice (input
+and output).
 """
 
 from __future__ import annotations
@@ -148,7 +155,95 @@ def main(minutes: float = 60.0) -> None:
         )
 
 
+_PLAYER = """
+import json, sys
+sys.path.insert(0, {root!r})
+from roomcorr.app.playback import prepare_listening
+from roomcorr.playback.device import play
+paths, music, fig = prepare_listening({music!r}, {design!r}, level_db=-6.0, block=256)
+status = play(paths, music, "rc_bench_rec")
+print(json.dumps({{"underflows": status.underflows, "blocks": status.blocks}}))
+"""
+
+
+def listen_dropouts(folder: Path, seconds: float = 60.0) -> None:
+    """``listen``'s real-time path for ``seconds`` through a dummy-driver JACK server."""
+    import os
+    import shutil
+
+    import soundfile as sf
+
+    if shutil.which("jackd") is None:
+        print("listen: skipped (jackd not installed)")
+        return
+    from speaker_rooms import Room, seats, simulate
+
+    from roomcorr.deliver.export import write_design
+    from roomcorr.pipeline import run_design
+    from roomcorr.playback.render import apply_file
+    from roomcorr.settings import Settings, design_from_dict
+
+    room = Room(speakers_m=[(0.5, 1.2, 1.0), (0.5, 2.9, 1.0)], kinds=["main", "main"],
+                gains_db=[0.0, -1.0], mics_m=seats((3.1, 2.05, 1.1), 3))  # fmt: skip
+    settings = Settings(design=design_from_dict(
+        {"channel_names": ["left", "right"], "sample_rates": [FS], "taps": TAPS}
+    ))  # fmt: skip
+    design = folder / "listen-design"
+    write_design(run_design(simulate(room, length_s=0.6), FS, settings), design)
+    music = folder / "listen.wav"
+    write_music(music, seconds)
+    name = f"rc_bench_{os.getpid()}"
+    env = dict(os.environ, JACK_DEFAULT_SERVER=name)
+    jackd = subprocess.Popen(
+        ["jackd", "-n", name, "--no-realtime", "-d", "dummy", "-r", str(FS), "-p", "256"],
+        stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, env=env,
+    )  # fmt: skip
+    try:
+        time.sleep(2.0)
+        rec = subprocess.Popen(
+            [sys.executable, str(ROOT / "tests" / "jack_recorder.py"), "rc_bench_rec", "2",
+             str(folder / "rec.npy")],
+            stdin=subprocess.PIPE, stdout=subprocess.PIPE, text=True, env=env,
+        )  # fmt: skip
+        if rec.stdout.readline().strip() != "READY":
+            print("listen: skipped (the JACK recorder did not start)")
+            return
+        code = _PLAYER.format(root=str(ROOT), music=str(music), design=str(design))
+        r = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                           env=env, timeout=seconds * 4 + 60)  # fmt: skip
+        rec.stdin.close()
+        rec.wait(60)
+    finally:
+        jackd.terminate()
+        jackd.wait(10)
+    if r.returncode != 0:
+        print(f"listen: failed ({r.stderr.strip().splitlines()[-1:]})")
+        return
+    res = json.loads(r.stdout.strip().splitlines()[-1])
+    y = np.load(folder / "rec.npy").astype(np.float64)
+    apply_file(music, design, folder / "ref.wav", subtype="DOUBLE")
+    ref = 10 ** (-6 / 20) * sf.read(folder / "ref.wav", always_2d=True)[0].T
+    ref = ref[:, : int(seconds * FS)]
+    c = np.abs(np.fft.irfft(np.fft.rfft(y[0], 2 * y.shape[1]) * np.conj(
+        np.fft.rfft(ref[0], 2 * y.shape[1]))))  # fmt: skip
+    lag = int(np.argmax(c[: y.shape[1]]))
+    seg = y[:, lag : lag + ref.shape[1]]
+    n = seg.shape[1]
+    err = 20 * np.log10(np.linalg.norm(seg - ref[:, :n]) / np.linalg.norm(ref[:, :n]))
+    print_table(
+        f"listen, {seconds:g} s through JACK (dummy driver, 256-sample periods), block 256 "
+        "(goal: no buffer lost on an idle machine)",
+        ["blocks", "buffers lost", "recorded (s)", "error vs offline (dB)"],
+        [[str(res["blocks"]), str(res["underflows"]), f"{n / FS:.1f}", f"{err:.1f}"]],
+    )
+
+
 if __name__ == "__main__":
     ap = argparse.ArgumentParser()
     ap.add_argument("--minutes", type=float, default=60.0)
-    main(ap.parse_args().minutes)
+    ap.add_argument("--listen-only", action="store_true")
+    a = ap.parse_args()
+    if not a.listen_only:
+        main(a.minutes)
+    with tempfile.TemporaryDirectory(prefix="bench-listen-") as tmp:
+        listen_dropouts(Path(tmp))

@@ -70,8 +70,12 @@ class BlockConvolver:
         padded[:, :n_taps] = h
         parts = padded.reshape(n_out, self.n_parts, self.block)
         self.workers = workers
-        self.spectra = scipy.fft.rfft(parts, n=2 * self.block, axis=-1)
-        self.fdl = np.zeros_like(self.spectra)  # newest input spectrum at index 0
+        spectra = scipy.fft.rfft(parts, n=2 * self.block, axis=-1)
+        # partitions in reverse order: with the input spectra in a ring buffer, the sum
+        # over partitions is then two contiguous products, and nothing is shifted per block
+        self.spectra_rev = np.ascontiguousarray(spectra[:, ::-1])
+        self.fdl = np.zeros_like(spectra)  # ring of past input spectra
+        self.pos = -1  # slot of the newest input spectrum
         self.prev = np.zeros((n_out, self.block))
 
     def process(self, x: np.ndarray) -> np.ndarray:
@@ -79,10 +83,16 @@ class BlockConvolver:
         m = self.mix @ x
         buf = np.concatenate((self.prev, m), axis=1)
         self.prev = m
-        if self.n_parts > 1:
-            self.fdl[:, 1:] = self.fdl[:, :-1]
-        self.fdl[:, 0] = scipy.fft.rfft(buf, axis=-1, workers=self.workers)
-        acc = np.einsum("opk,opk->ok", self.fdl, self.spectra)
+        P = self.n_parts
+        pos = self.pos = (self.pos + 1) % P
+        self.fdl[:, pos] = scipy.fft.rfft(buf, axis=-1, workers=self.workers)
+        # slot j holds the input of (pos - j) mod P blocks ago: it meets partition
+        # (pos - j) mod P, stored at P - 1 - pos + j (j <= pos) or j - pos - 1 (j > pos)
+        acc = np.einsum("opk,opk->ok", self.fdl[:, : pos + 1], self.spectra_rev[:, P - 1 - pos :])
+        if pos + 1 < P:
+            acc += np.einsum(
+                "opk,opk->ok", self.fdl[:, pos + 1 :], self.spectra_rev[:, : P - 1 - pos]
+            )
         y = scipy.fft.irfft(acc, n=2 * self.block, axis=-1, workers=self.workers)
         return y[:, self.block :]
 
