@@ -884,7 +884,9 @@ def _add_apply(sub: Any) -> argparse.ArgumentParser:
         "refuses instead).",
     )
     p.add_argument("input", metavar="INPUT", help="audio file (WAV, FLAC, ...)")
-    p.add_argument("--design", required=True, metavar="DIR", help="design folder")
+    p.add_argument(
+        "--design", metavar="DIR", help="design folder (in a room folder: its latest design)"
+    )
     p.add_argument("--out", required=True, metavar="OUTPUT.wav", help="file to write")
     p.add_argument(
         "--subtype", default="FLOAT", choices=SUBTYPES, help="output sample format (FLOAT)"
@@ -901,8 +903,9 @@ def _run_apply(args: argparse.Namespace) -> int:
     from rich.console import Console
     from rich.progress import BarColumn, Progress, TextColumn, TimeRemainingColumn
 
-    from roomcorr.app.playback import apply_command
+    from roomcorr.app.playback import apply_command, default_design
 
+    args.design = default_design(args.design)
     console = Console(stderr=True)
     with Progress(
         TextColumn("rendering"),
