@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import io
 import math
+import threading
 import zipfile
 from collections.abc import Callable
 from pathlib import Path
@@ -17,6 +18,7 @@ import numpy as np
 
 from roomcorr import rooms
 from roomcorr.app.explore import run_folder
+from roomcorr.app.measure import require_acknowledged
 from roomcorr.audio_io import read_wav
 from roomcorr.deliver.atomic import is_link_or_outside
 from roomcorr.deliver.commands import (
@@ -33,7 +35,8 @@ from roomcorr.deliver.pipewire import (
     write_filter_chain_config,
 )
 from roomcorr.deliver.plan import design_rates, load_route_plan
-from roomcorr.errors import InputFileError, OutputError, SettingsError
+from roomcorr.errors import InputFileError, OutputError, RoomBusyError, SettingsError
+from roomcorr.playback.device import play
 from roomcorr.playback.loudness import MIN_SECONDS, integrated_lufs
 from roomcorr.playback.realtime import LISTEN_BLOCK, ListeningPaths
 from roomcorr.playback.render import LOWERED_PEAK_DBFS, BlockConvolver, apply_file
@@ -300,3 +303,103 @@ def default_design(design_dir: str | None) -> str:
     if not runs:
         raise SettingsError(f"{room.root}: no design yet; run 'roomcorr design' first")
     return str(runs[-1].path)
+
+
+#: The room's folder of music for listening from the app (WAV or FLAC files).
+MUSIC_DIR = "music"
+_MUSIC_SUFFIXES = (".wav", ".flac")
+
+
+def listen_music(room: rooms.Room) -> list[str]:
+    """Names of the music files in the room's ``music/`` folder (links and folders left out)."""
+    folder = room.root / MUSIC_DIR
+    if folder.is_symlink() or not folder.is_dir():
+        return []
+    return sorted(
+        p.name
+        for p in folder.iterdir()
+        if p.suffix.lower() in _MUSIC_SUFFIXES and p.is_file() and not p.is_symlink()
+    )
+
+
+class ListenSession:
+    """Listening from the app: one piece of music through one design at a time.
+
+    Sound starts only after the room's cautions were acknowledged (as for
+    measuring), at :data:`START_LEVEL_DB`; the music must be a file of the
+    room's ``music/`` folder (a name, never a path).
+    """
+
+    def __init__(self, room: rooms.Room) -> None:
+        self.room = room
+        self.lock = threading.Lock()
+        self.thread: threading.Thread | None = None
+        self.paths: ListeningPaths | None = None
+        self.stop_event = threading.Event()
+        self.figures: dict[str, Any] = {}
+        self.error: str | None = None
+        self.level_db = START_LEVEL_DB
+
+    def running(self) -> bool:
+        return self.thread is not None and self.thread.is_alive()
+
+    def start(self, run_id: str, music: str, device: str | int | None = None) -> dict[str, Any]:
+        """Start playing ``music`` through design ``run_id`` (corrected first)."""
+        require_acknowledged(self.room)
+        with self.lock:
+            if self.running():
+                raise RoomBusyError("listen: already playing; stop first")
+            folder = run_folder(self.room, "design", run_id)
+            rooms.verified(self.room, folder, use=[folder / MANIFEST])
+            if music not in listen_music(self.room):
+                raise InputFileError(
+                    f"{music!r}: not a music file of the room (put WAV or FLAC files in "
+                    f"{self.room.root / MUSIC_DIR})"
+                )
+            paths, x, fig = prepare_listening(
+                str(self.room.root / MUSIC_DIR / music), str(folder), START_LEVEL_DB
+            )
+            self.paths, self.figures, self.error = paths, fig, None
+            self.level_db = START_LEVEL_DB
+            self.stop_event = threading.Event()
+
+            def run() -> None:
+                try:
+                    play(paths, x, device, self.stop_event)
+                except Exception as exc:  # noqa: BLE001 - reported in the state, not raised
+                    self.error = " ".join(str(exc).split())
+
+            self.thread = threading.Thread(target=run, name="roomcorr-listen", daemon=True)
+            self.thread.start()
+        return self.state()
+
+    def switch(self) -> dict[str, Any]:
+        if self.paths is not None and self.running():
+            self.paths.toggle()
+        return self.state()
+
+    def level(self, delta_db: float) -> dict[str, Any]:
+        """Change the level by ``delta_db`` (finite, at most 12 dB a step; capped at 0 dB)."""
+        if not isinstance(delta_db, int | float) or not math.isfinite(delta_db):
+            raise SettingsError("level: delta_db must be a finite number")
+        if abs(delta_db) > 12:
+            raise SettingsError("level: change by at most 12 dB at a time")
+        self.level_db = min(0.0, self.level_db + float(delta_db))
+        if self.paths is not None:
+            self.paths.set_level_db(self.level_db)
+        return self.state()
+
+    def stop(self) -> dict[str, Any]:
+        self.stop_event.set()
+        if self.thread is not None:
+            self.thread.join(5)
+        return self.state()
+
+    def state(self) -> dict[str, Any]:
+        return {
+            "playing": self.running(),
+            "corrected": bool(self.paths.state.target) if self.paths is not None else None,
+            "level_db": self.level_db,
+            "figures": self.figures,
+            "error": self.error,
+        }
