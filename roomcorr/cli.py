@@ -257,7 +257,8 @@ def _print_design_summary(result: Any, out: Path, entries: list[dict]) -> None:
     from roomcorr.design.safety import PEAK_BAND
 
     # every figure from the manifest's figures block (one place per figure)
-    figs = figures_of_manifest(read_manifest(out))
+    manifest = read_manifest(out)
+    figs = figures_of_manifest(manifest)
     per_channel = {c["name"]: c for c in figs["channels"]}
     print(f"Design written to {out}  ({len(entries) + 1} files, manifest.json lists them)")
     _print_files_written(out)
@@ -305,6 +306,9 @@ def _print_design_summary(result: Any, out: Path, entries: list[dict]) -> None:
             "lower the player's volume to avoid clipping.",
             file=sys.stderr,
         )
+    basis = manifest.get("timing_basis")  # the manifest's words, as the report's
+    if isinstance(basis, dict) and basis.get("label"):
+        print(f"Timing basis of the measurement: {basis['label']}")
     _print_next_steps(out)
 
 
@@ -379,11 +383,6 @@ def _run_design(args: argparse.Namespace) -> int:
         on_source=lambda meas: print(f"Using the latest measurement: {meas}"),
     )
     _print_design_summary(result, out, entries)
-    from roomcorr.deliver.export import read_manifest
-
-    basis = read_manifest(out).get("timing_basis")  # the manifest's words, as the report's
-    if isinstance(basis, dict) and basis.get("label"):
-        print(f"Timing basis of the measurement: {basis['label']}")
     return 0
 
 
