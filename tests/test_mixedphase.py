@@ -487,10 +487,17 @@ def test_design_folder_round_trip_and_report_section(tmp_path, designs):
     figs = sec[0].all_figures()
     assert len(figs) == 1
     text = " ".join(sec[0].paragraphs + sec[0].columns[0].paragraphs)
-    assert "960 samples at 48000 Hz" in text and "lip-sync" in text
+    assert "excess phase" in text
     assert figs[0].png[:8] == b"\x89PNG\r\n\x1a\n"
     overview = " ".join(report.sections[0].paragraphs)
     assert "20 ms" in overview
+    # the latency, exactly per rate, and its caution are stated once, in the overview
+    assert "960 samples at 48000 Hz" in overview and "lip-sync" in overview
+    every = " ".join(
+        p for s in report.sections for p in s.paragraphs + [q for c in s.columns
+                                                            for q in c.paragraphs]
+    )
+    assert every.count("lip-sync") == 1
     report_min = build_report(load_design_curves(tmp_path / "min"), dpi=40)
     assert not [s for s in report_min.sections if s.id == "phase"]
     # the views: the mixed design's direct-sound group delay is the flattest of the three

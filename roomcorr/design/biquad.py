@@ -87,13 +87,20 @@ def tidy_sections(
     gain_range_db: tuple[float, float] = (-np.inf, np.inf),
     merge_oct: float = MERGE_OCT,
     min_gain_db: float = MIN_GAIN_DB,
+    fs_max: float | None = None,
+    sens_limit_db: float | None = None,
 ) -> list[Section]:
     """Merge sections of one kind on (nearly) the same frequency and drop near-zero ones.
 
     Two sections of the same kind whose frequencies are within ``merge_oct``
     become one: gains add (in dB, as the cascade multiplies them; exact at the
-    common frequency when the frequencies agree), the frequency is the
-    |gain|-weighted mean in octaves, and the Q is the stronger section's.
+    common frequency when the frequencies agree), and the frequency and the Q
+    are the |gain|-weighted means of theirs in octaves (log2). With ``fs_max``
+    and ``sens_limit_db``, a merge is made only when the merged section stays
+    robust to float32 rounding at ``fs_max``
+    (:func:`float32_sensitivity_db` at most ``sens_limit_db``): a deep, narrow
+    cut low in frequency that one float32 section cannot hold is split over two
+    on purpose, and stays split.
     The merged gain is clipped to ``gain_range_db``. Then every section with
     ``|gain_db| < min_gain_db`` is dropped. Frequency order is kept.
 
@@ -122,17 +129,26 @@ def tidy_sections(
                 if w > 0 else np.log2(prev.f0_hz)
             )
             gain = float(np.clip(prev.gain_db + s.gain_db, *gain_range_db))
-            q = prev.q if wa >= wb else s.q
-            out[-1] = Section(s.kind, float(2.0**lf), gain, q)
+            lq = (
+                (wa * np.log2(prev.q) + wb * np.log2(s.q)) / w if w > 0 else np.log2(prev.q)
+            )
+            q = float(np.clip(2.0**lq, min(prev.q, s.q), max(prev.q, s.q)))  # no rounding out
+            merged = Section(s.kind, float(2.0**lf), gain, q)
+            if fs_max is not None and sens_limit_db is not None and float32_sensitivity_db(
+                np.array([0]), np.array([merged.f0_hz]), np.array([gain]), np.array([q]), fs_max
+            )[0] > sens_limit_db:
+                out.append(s)  # a deliberate split (float32), not a redundant section
+                continue
+            out[-1] = merged
         else:
             out.append(s)
     return sorted((s for s in out if abs(s.gain_db) >= min_gain_db), key=lambda t: t.f0_hz)
 
 
-def is_tidy(sections: Sequence[Section], merge_oct: float = MERGE_OCT,
-            min_gain_db: float = MIN_GAIN_DB) -> bool:
-    """True when no two sections of a kind share a frequency and none is near zero."""
-    return len(tidy_sections(sections, merge_oct=merge_oct, min_gain_db=min_gain_db)) == len(
+def is_tidy(sections: Sequence[Section], fs_max: float | None = None,
+            sens_limit_db: float | None = None) -> bool:
+    """True when :func:`tidy_sections` (same arguments) has nothing to merge or drop."""
+    return len(tidy_sections(sections, fs_max=fs_max, sens_limit_db=sens_limit_db)) == len(
         sections
     )
 

@@ -333,22 +333,38 @@ def fit_sections(
     kinds, x, cost = _greedy(kinds, x, cost, prob, band_hz, lim)
     if len(kinds) == 0:
         return []
-    x, _ = _solve(kinds, x, prob, 0.0, 0.0, max_nfev)
+    x, cost = _solve(kinds, x, prob, 0.0, 0.0, max_nfev)
     # Tidy: sections on the same frequency are merged and near-zero ones dropped
-    # (bq.tidy_sections); the freed sections are placed again elsewhere and the
-    # whole set refitted, a few rounds at most.
-    for _ in range(TIDY_ROUNDS):
+    # (bq.tidy_sections), the set is refitted, the freed sections are placed again
+    # elsewhere and the set refitted once more, a few rounds at most; of the tidy
+    # sets met on the way the one with the lowest cost is kept.
+    best: tuple[float, np.ndarray, np.ndarray] | None = None
+    for _ in range(TIDY_ROUNDS + 1):
         secs = _sections(kinds, x)
-        tidy = bq.tidy_sections(secs, lim.gain_range_db)
+        tidy = bq.tidy_sections(secs, lim.gain_range_db, fs_max=lim.fs_max,
+                                sens_limit_db=SENS_LIMIT_DB)
         if len(tidy) == len(secs):
+            if best is None or cost < best[0]:
+                best = (cost, kinds, x)
             break
         if not tidy:
-            return []
+            break
         kinds, x = _pack(tidy)
         x, cost = _solve(kinds, x, prob, 0.0, 0.0, max_nfev)
-        kinds, x, cost = _greedy(kinds, x, cost, prob, band_hz, lim)
-        x, _ = _solve(kinds, x, prob, 0.0, 0.0, max_nfev)
-    secs = bq.tidy_sections(_sections(kinds, x), lim.gain_range_db)
+        if bq.is_tidy(_sections(kinds, x), lim.fs_max, SENS_LIMIT_DB) and (
+            best is None or cost < best[0]
+        ):
+            best = (cost, kinds, x)
+        more_kinds, more_x, _ = _greedy(kinds, x, cost, prob, band_hz, lim)
+        if len(more_kinds) == len(kinds):
+            break
+        kinds = more_kinds
+        x, cost = _solve(kinds, more_x, prob, 0.0, 0.0, max_nfev)
+    if best is not None:
+        secs = _sections(best[1], best[2])
+    else:  # never tidy after refitting: the last set, tidied without a refit
+        secs = bq.tidy_sections(_sections(kinds, x), lim.gain_range_db, fs_max=lim.fs_max,
+                                sens_limit_db=SENS_LIMIT_DB)
     return limit_boost(secs, lambda s: bq.analog_response_db(s, prob.check_hz), lim.max_boost_db)
 
 
