@@ -519,8 +519,84 @@ def _edit_hash(p: Path) -> None:
     p.write_text(json.dumps(m))
 
 
+def _deep(p: Path) -> None:
+    # 100,000 levels of nesting: Python's json module fails with RecursionError near 1000
+    p.write_text("[" * 100_000 + "]" * 100_000)
+
+
+def _big_int(p: Path) -> None:
+    # 5000 digits: beyond sys.get_int_max_str_digits (4300), json.loads raises ValueError
+    doc = json.loads(p.read_text())
+    doc["big"] = 0
+    p.write_text(json.dumps(doc).replace('"big": 0', '"big": ' + "9" * 5000))
+
+
+def _edit_json(**changes):
+    def edit(p: Path) -> None:
+        doc = json.loads(p.read_text())
+        doc.update(changes)
+        p.write_text(json.dumps(doc))
+
+    return edit
+
+
+def _npz_one_point(p: Path) -> None:
+    """design.npz with a one-point frequency grid, and the manifest's SHA-256 updated to it."""
+    with np.load(p) as z:
+        data = {k: z[k] for k in z.files}
+    data["freq_hz"] = np.array([1000.0])
+    with open(p, "wb") as fh:
+        np.savez(fh, **data)
+    man = p.parent / "manifest.json"
+    doc = json.loads(man.read_text())
+    for e in doc["files"]:
+        if e["path"] == p.name:
+            e["sha256"] = _sha(p)
+    man.write_text(json.dumps(doc))
+
+
+def _extra_wav(p: Path) -> None:
+    """A sixth position copied into a finished measurement (issue 22: used silently)."""
+    shutil.copy(p.parent / "pos1.wav", p.parent / "pos9.wav")
+
+
+def _swap_wavs(p: Path) -> None:
+    a, b = p.parent / "pos1.wav", p.parent / "pos2.wav"
+    da, db = a.read_bytes(), b.read_bytes()
+    a.write_bytes(db)
+    b.write_bytes(da)
+
+
+def _weakened_marker_then_swap(p: Path) -> None:
+    """complete.json replaced by a bare ``{"complete": true}``, then two positions swapped."""
+    p.write_text('{"complete": true}')
+    _swap_wavs(p)
+
+
 DAMAGE = {
     # (kind of run, file, how it is damaged)
+    "manifest-deep": ("design", "manifest.json", _deep),
+    "manifest-big-int": ("design", "manifest.json", _big_int),
+    "manifest-design-settings-number": (
+        "design",
+        "manifest.json",
+        _edit_json(settings={"design": 5}),
+    ),
+    "manifest-measurements-number": ("design", "manifest.json", _edit_json(measurements=5)),
+    "npz-one-point": ("design", "design.npz", _npz_one_point),
+    "marker-deep": ("measurement", "complete.json", _deep),
+    "marker-big-int": ("measurement", "complete.json", _big_int),
+    "marker-weakened": ("measurement", "complete.json", _weakened_marker_then_swap),
+    "record-deep": ("measurement", "measurement.json", _deep),
+    "record-big-int": ("measurement", "measurement.json", _big_int),
+    "record-positions-number": ("measurement", "measurement.json", _edit_json(positions=5)),
+    "extra-wav": ("measurement", "pos1.wav", _extra_wav),
+    "wav-deleted": ("design", "fir/48000/left.wav", lambda p: p.unlink()),
+    "wav-byte-changed": (
+        "design",
+        "fir/48000/left.wav",
+        lambda p: p.write_bytes(p.read_bytes()[:-1] + bytes([p.read_bytes()[-1] ^ 1])),
+    ),
     "manifest-list": ("design", "manifest.json", lambda p: p.write_text("[]")),
     "manifest-empty-object": ("design", "manifest.json", lambda p: p.write_text("{}")),
     "manifest-files-number": ("design", "manifest.json", lambda p: p.write_text('{"files": 3}')),
@@ -593,15 +669,14 @@ def test_damaged_design_folder_outside_a_room(work, capsys, name):
     damage(d / rel)
     before = snapshot(work, skip=(work / "cwd",))
     code, _, err = cli(capsys, "report", d)
-    if name == "wav-inf-filter":
-        # The report reads design.npz, not the WAVs; replacing the design notices.
-        assert code == 0, err
+    # Every file is checked against the manifest first (issue 22: a deleted or changed
+    # FIR was reported from design.npz and the manifest rewritten with the stale hash).
+    assert_one_line_error(code, err)
+    assert snapshot(work, skip=(work / "cwd",)) == before
+    if name.startswith("wav-"):  # replacing the design still works and makes it whole
         code, _, err = cli(capsys, "design", work / "irs", "--out", d, "--replace")
         assert code == 0, err
         assert design_is_whole(d)
-        return
-    assert_one_line_error(code, err)
-    assert snapshot(work, skip=(work / "cwd",)) == before
 
 
 # --------------------------------------------------------------------------- disk errors

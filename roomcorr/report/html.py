@@ -1352,7 +1352,7 @@ def write_report(
     half-written; a new destination folder appears only when it is complete.
     """
     from roomcorr import rooms
-    from roomcorr.errors import InputFileError
+    from roomcorr.errors import InputFileError, OutputError
 
     d = Path(folder)
     if not d.is_dir():
@@ -1363,8 +1363,18 @@ def write_report(
     settings = None
     through = None
     if is_design:
-        from roomcorr.deliver.export import load_design_curves, read_manifest
+        from roomcorr.deliver.export import design_differences, load_design_curves, read_manifest
 
+        if not (d / "complete.json").is_file():  # a run of a room is checked by its record
+            # every file the manifest lists, with its SHA-256, and nothing else: a deleted
+            # or changed filter is named, never redrawn from design.npz
+            changed = design_differences(d)
+            if changed:
+                more = f" (and {len(changed) - 1} more)" if len(changed) > 1 else ""
+                raise OutputError(
+                    f"{d}: the design folder changed since it was written: {changed[0]}{more}; "
+                    "design again (--replace) to make it whole"
+                )
         curves = load_design_curves(d)
         manifest = read_manifest(d)
         settings = manifest.get("settings")

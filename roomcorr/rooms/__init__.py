@@ -7,7 +7,9 @@ Public functions (the signatures other commands rely on)::
     open_room(path) -> Room                      # raises SettingsError if not a room
     init_room(path, name=None) -> Room           # creates the folder and settings file
     load_room_settings(room) -> Settings         # reads (and upgrades) roomcorr-room.toml
-    room_lock(room, purpose="") -> context manager (re-entrant in one process)
+    room_folder(room, name, create=False) -> Path  # measurements/, designs/, targets/:
+        # a plain folder inside the room, or OutputError (the one containment rule)
+    room_lock(room, purpose="") -> context manager (excludes other processes and threads)
     new_run(room, kind, info=None) -> context manager yielding the run folder (Path)
         kind is "measurement" or "design". Takes the room lock, creates a new
         time-stamped folder, and writes its "complete" marker only when the
@@ -31,11 +33,14 @@ from roomcorr.rooms.folder import (
     COMPLETE_MARKER,
     KINDS,
     LOCK_FILE,
+    ROOM_FOLDERS,
     SETTINGS_FILE,
     SETTINGS_SNAPSHOT,
+    TARGETS,
     Room,
     find_room,
     open_room,
+    room_folder,
 )
 from roomcorr.rooms.lock import is_locked, room_lock
 from roomcorr.rooms.runs import (
@@ -67,8 +72,10 @@ __all__ = [
     "KINDS",
     "LOCK_FILE",
     "MIGRATIONS",
+    "ROOM_FOLDERS",
     "SETTINGS_FILE",
     "SETTINGS_SNAPSHOT",
+    "TARGETS",
     "Room",
     "RunInfo",
     "add_measurement",
@@ -86,6 +93,7 @@ __all__ = [
     "open_room",
     "refuse_finished_run",
     "resolve_run",
+    "room_folder",
     "room_lock",
     "room_name",
     "run_sort_key",
