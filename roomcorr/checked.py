@@ -211,12 +211,19 @@ def _json_int(text: str) -> int:
     return int(text)
 
 
-def loads_json(text: str | bytes, what: str, error: type[RoomcorrError] = InputFileError) -> Any:
+def loads_json(
+    text: str | bytes,
+    what: str,
+    error: type[RoomcorrError] = InputFileError,
+    constants: bool = False,
+) -> Any:
     """Parse a JSON document from a file or a request, turning every failure into ``error``.
 
     Refused with one line: invalid JSON, not UTF-8, nesting deeper than
     :data:`MAX_NESTING`, integers longer than :data:`MAX_INT_DIGITS` digits,
-    ``NaN``/``Infinity`` (not JSON, RFC 8259 section 6).
+    ``NaN``/``Infinity`` (not JSON, RFC 8259 section 6) unless ``constants``
+    (then they are read as floats, for a caller that checks every number with
+    :func:`checked_number` and names the key in its message).
 
     Parameters
     ----------
@@ -237,6 +244,8 @@ def loads_json(text: str | bytes, what: str, error: type[RoomcorrError] = InputF
         raise ValueError(f"{name} is not a JSON number")
 
     try:
+        if constants:
+            return json.loads(text, parse_int=_json_int)
         return json.loads(text, parse_int=_json_int, parse_constant=no_constant)
     except (ValueError, RecursionError) as exc:  # JSONDecodeError is a ValueError
         raise error(f"{what}: not valid JSON ({exc})") from None

@@ -828,13 +828,33 @@ def test_working_folder_is_never_swapped_away(work, capsys, monkeypatch):
     code, _, err = cli(capsys, "design", work / "irs", "--out", ".", "--replace")
     assert_one_line_error(code, err, "working folder")
     assert snapshot(work) == before
-    # 'report .' inside a design folder writes there, and the folder stays the
-    # one the shell is in (not a deleted copy).
-    inode = os.stat(".").st_ino
+    # 'report .' inside a design folder replaces the folder as a whole, like --replace
+    # (issue 22: all or nothing under a kill); the command then stands in the new
+    # folder and says how a shell finds it.
     code, out, err = cli(capsys, "report", ".")
     assert code == 0, err
-    assert os.stat(".").st_ino == inode == os.stat(work / "d").st_ino
+    assert "cd ." in out
+    assert os.stat(".").st_ino == os.stat(work / "d").st_ino
     assert Path("report.html").is_file() and design_is_whole(work / "d")
+    assert not leftovers(work)
+
+
+def test_killed_report_dot_leaves_old_or_new_whole(work):
+    # issue 22: 'report .' killed right after report/ appeared left report.html and
+    # figures the manifest did not list, and 'design --replace' then refused the folder
+    d = work / "d"
+    rng = random.Random(22)
+    for i in range(6):
+        proc = popen("report", ".", cwd=d, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+        try:
+            proc.wait(timeout=rng.uniform(1.0, 6.0))
+        except subprocess.TimeoutExpired:
+            proc.send_signal(signal.SIGKILL if i % 2 else signal.SIGINT)
+        proc.wait()
+        assert design_is_whole(d), i
+    r = run("design", work / "irs", "--out", d, "--replace", "--rates", "48000", cwd=work)
+    assert r.returncode == 0, r.stderr
+    assert design_is_whole(d) and not leftovers(work)
 
 
 @pytest.mark.parametrize("kind", ["design", "measurement"])

@@ -4,7 +4,6 @@ filters designed from the earlier one still fit the later one."""
 from __future__ import annotations
 
 import contextlib
-import json
 import os
 from pathlib import Path
 from typing import Any
@@ -27,6 +26,7 @@ from roomcorr.rooms import (
     list_runs,
     load_room_settings,
     measurement_files,
+    measurement_record,
     open_room,
     resolve_run,
     run_sort_key,
@@ -57,10 +57,10 @@ def fir_response_db(fir: np.ndarray, fs: int, freq_hz: np.ndarray) -> np.ndarray
 def _channel_names(folder: Path, n: int) -> list[str]:
     record = folder / "measurement.json"
     if folder.is_dir() and record.is_file():
-        with contextlib.suppress(OSError, json.JSONDecodeError, AttributeError):
-            names = json.loads(record.read_text(encoding="utf-8")).get("channel_names")
-            if isinstance(names, list) and len(names) == n:
-                return [str(x) for x in names]
+        data = measurement_record(folder)  # a damaged record is one line
+        names = data.get("channel_names") if data is not None else None
+        if isinstance(names, list) and len(names) == n:
+            return [str(x) for x in names]
     return default_channel_names(n)
 
 

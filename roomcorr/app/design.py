@@ -10,7 +10,6 @@ design uses (:func:`roomcorr.pipeline.design_curves`).
 from __future__ import annotations
 
 import copy
-import json
 import re
 from collections.abc import Callable
 from pathlib import Path
@@ -48,11 +47,8 @@ def names_from_measurement(files: list[Path], settings: Settings) -> None:
     if settings.design.channel_names is not None:
         return
     for folder in dict.fromkeys(Path(f).parent for f in files):
-        p = folder / "measurement.json"
-        try:
-            names = json.loads(p.read_text(encoding="utf-8")).get("settings", {}).get("names")
-        except (OSError, ValueError, AttributeError):
-            continue
+        record = rooms.measurement_record(folder)  # a damaged record is one line
+        names = (record.get("settings") or {}).get("names") if record is not None else None
         if names:
             settings.design = design_from_dict({"channel_names": names}, base=settings.design)
             return

@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import json
 import math
 import os
 from pathlib import Path
@@ -13,7 +12,7 @@ import numpy as np
 from roomcorr.analysis.compare import direct_arrival_s
 from roomcorr.audio_io import read_ir_set
 from roomcorr.deliver.export import read_manifest
-from roomcorr.errors import InputFileError, OutputError, RoomcorrError
+from roomcorr.errors import OutputError, RoomcorrError
 from roomcorr.rooms import (
     Room,
     check_run,
@@ -21,6 +20,7 @@ from roomcorr.rooms import (
     is_locked,
     list_runs,
     measurement_files,
+    measurement_record,
     open_room,
     room_name,
 )
@@ -42,14 +42,8 @@ def _measurement_figures(run_dir: Path) -> dict[str, Any]:
         for c in range(irs.shape[1])
     ]
     figs["peak_dbfs"] = round(float(20 * np.log10(np.max(np.abs(irs)) + 1e-30)), 1)
-    record = run_dir / "measurement.json"
-    if record.is_file():
-        try:
-            data = json.loads(record.read_text(encoding="utf-8"))
-        except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
-            raise InputFileError(f"{record}: damaged ({exc})") from None
-        if not isinstance(data, dict):
-            raise InputFileError(f"{record}: damaged (expected a JSON object)")
+    data = measurement_record(run_dir)  # checked: a damaged record makes the run damaged
+    if data is not None:
         figs.update(_record_figures(data))
     return figs
 

@@ -20,6 +20,7 @@ Public functions (the signatures other commands rely on)::
     list_runs(room, kind=None) -> list[RunInfo]  # oldest first, incomplete ones included
     add_measurement(room, paths) -> Path         # copy IR WAVs from elsewhere into a new run
     measurement_files(folder) -> list[Path]      # the IR WAVs of a measurement folder
+    measurement_record(folder) -> dict | None    # its measurement.json, checked
     check_run(run, use=None) -> str | None       # what changed since the run finished
     verified(room, folder, use=None)             # InputFileError for a damaged run
 
@@ -52,6 +53,7 @@ from roomcorr.rooms.runs import (
     latest_measurement,
     list_runs,
     measurement_files,
+    measurement_record,
     new_run,
     refuse_finished_run,
     resolve_run,
@@ -89,6 +91,7 @@ __all__ = [
     "list_runs",
     "load_room_settings",
     "measurement_files",
+    "measurement_record",
     "new_run",
     "open_room",
     "refuse_finished_run",

@@ -404,6 +404,7 @@ def latest_measurement(room: Room) -> Path:
     InputFileError
         If the room has no complete measurement yet.
     """
+    check_kind_folder(room, "measurement")  # a link leading out is refused, not skipped
     runs = list_runs(room, "measurement", include_incomplete=False)
     if not runs:
         raise InputFileError(
@@ -501,4 +502,61 @@ def design_source(run: RunInfo) -> str | None:
         parents = {Path(str(f)).parent.name for f in files}
         if len(parents) == 1:
             return parents.pop()
+    return None
+
+
+#: The record ``roomcorr measure`` writes beside the impulse responses.
+RECORD_NAME = "measurement.json"
+
+
+def measurement_record(folder: str | os.PathLike[str]) -> dict[str, Any] | None:
+    """The ``measurement.json`` record of a measurement folder, checked, or None if absent.
+
+    Every reader of the record (design: channel names; report and history: quality
+    figures; app) goes through here, so a damaged record is one line everywhere.
+    Only the shapes readers rely on are checked (a table; ``positions`` a list of
+    tables, each with ``channels`` a list of tables; ``settings``, ``through``,
+    ``sweep_settings`` and ``devices`` tables; ``channel_names`` a list of text);
+    other keys (a timing basis, an import's source...) pass as they are.
+
+    Raises
+    ------
+    InputFileError
+        For a record that is not valid JSON (or too deep, too large) or wrongly shaped.
+    """
+    p = Path(folder) / RECORD_NAME
+    if not p.exists() and not p.is_symlink():
+        return None
+    data = read_json(p, RECORD_NAME)
+    problem = _record_problem(data)
+    if problem:
+        raise InputFileError(f"{p}: damaged record: {problem}; measure again")
+    return data
+
+
+def _record_problem(data: Any) -> str | None:
+    if not isinstance(data, dict):
+        return "expected a JSON object"
+    for key in ("settings", "through", "sweep_settings", "devices"):
+        if data.get(key) is not None and not isinstance(data[key], dict):
+            return f"'{key}' is not a table"
+    names = data.get("channel_names")
+    if names is not None and not (
+        isinstance(names, list) and all(isinstance(n, str) for n in names)
+    ):
+        return "'channel_names' is not a list of names"
+    positions = data.get("positions", [])
+    if not isinstance(positions, list) or not all(isinstance(p, dict) for p in positions):
+        return "'positions' is not a list of tables"
+    for pos in positions:
+        chans = pos.get("channels", [])
+        if not isinstance(chans, list) or not all(isinstance(c, dict) for c in chans):
+            return "a position's 'channels' is not a list of tables"
+        for ch in chans:
+            if not isinstance(ch.get("figures", {}) or {}, dict):
+                return "a channel's 'figures' is not a table"
+            if not isinstance(ch.get("gates", []) or [], list):
+                return "a channel's 'gates' is not a list"
+        if pos.get("file") is not None and not isinstance(pos["file"], str):
+            return "a position's 'file' is not a file name"
     return None
