@@ -906,3 +906,18 @@ def test_design_differences_names_what_changed(work):
         "fir/48000/left.wav: SHA-256 differs",
     ]
     assert not design_is_whole(d)  # the test's own check (hashlib) agrees
+
+
+@pytest.mark.parametrize("kind", ["design", "measurement"])
+def test_a_report_beside_a_finished_run_keeps_it_sound(work, capsys, kind):
+    # a run is sealed by its record; the report added beside it is the one thing
+    # allowed in it unlisted (any other unlisted file makes the run damaged)
+    run_dir = _run_dir(work, kind)
+    code, _, err = cli(capsys, "report", run_dir)
+    assert code == 0, err
+    assert (run_dir / "report.html").is_file()
+    for run in R.list_runs(_room(work)):
+        assert R.check_run(run) is None, run.run_id
+    (run_dir / "notes.txt").write_text("added by hand\n")
+    run = next(r for r in R.list_runs(_room(work)) if r.path == run_dir)
+    assert "notes.txt" in R.check_run(run)

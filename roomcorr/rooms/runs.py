@@ -80,7 +80,7 @@ class RunInfo:
 
 #: Files a report adds beside a finished run (``roomcorr report RUN``): the run's record
 #: does not list them (the run is sealed), and no command reads them as an input.
-REPORT_FILES = re.compile(r"^(report\.html|report/[A-Za-z0-9_.-]+\.png)$")
+REPORT_FILES = re.compile(r"^(report\.html|report/[^/]+\.png)$")
 
 
 def _staging(rel: Path) -> bool:
