@@ -6,8 +6,9 @@ robustness run, not a speed figure). Everything happens in a temporary folder:
 
 * a room (one measurement, one design), a plain design folder ``d`` outside it and an
   ``outside`` folder with a file roomcorr must never touch;
-* each round starts one writer, or two at once, and kills it (SIGKILL or SIGINT) after
-  a random, seeded delay: ``design`` in the room, ``design --replace`` and ``report``
+* each writer is run once to the end to time it; then each round starts one writer, or
+  two at once, and kills it (SIGKILL or SIGINT) after a random, seeded delay of 0.2 to
+  1.05 times that duration (so that kills land while files are written): ``design`` in the room, ``design --replace`` and ``report``
   of ``d``, ``report .`` inside ``d``, the app's Save and full-report button (the app
   server is the killed process), and the app's Save together with a ``design`` from
   the command line;
@@ -127,11 +128,11 @@ def _latest_design(room: Path) -> str:
     return runs[-1]
 
 
-def _kill_round(rng: random.Random, action: str, root: Path) -> tuple[str, list[str]]:
-    """Start ``action``, kill it at a random moment; return (how it ended, stderr texts)."""
+def _kill_round(rng: random.Random, action: str, root: Path, delay: float) -> tuple[str, list[str]]:
+    """Start ``action``, kill it after ``delay`` seconds unless it ended; return (how it
+    ended, stderr texts)."""
     room, d = root / "room", root / "d"
     errs: list[str] = []
-    delay = rng.uniform(0.3, 6.0)
     sig = signal.SIGKILL if rng.random() < 0.5 else signal.SIGINT
     if action.startswith("app") or action == "both":
         server = Server(room)
@@ -403,10 +404,19 @@ def main(kills: int = 100, seed: int = 22) -> None:
         ]
         counts = {a: 0 for a in actions}
         tracebacks = mixed = escaped = cut = 0
+        # How long each writer takes here (one run to the end); kills are then spread
+        # over that time, the last part (where the files are written) included.
+        took = {}
+        for action in actions:
+            t0 = time.time()
+            _, errs = _kill_round(rng, action, root, 600.0)
+            took[action] = time.time() - t0
+            tracebacks += sum("Traceback" in e or "HTTP 500" in e for e in errs)
+        print("duration to the end: " + ", ".join(f"{a} {t:.1f} s" for a, t in took.items()))
         for i in range(kills):
             action = actions[i % len(actions)] if i < len(actions) else rng.choice(actions)
             counts[action] += 1
-            ended, errs = _kill_round(rng, action, root)
+            ended, errs = _kill_round(rng, action, root, rng.uniform(0.2, 1.05) * took[action])
             cut += ended == "cut"
             tb = sum("Traceback" in e or "HTTP 500" in e for e in errs)
             bad = _mixed(root)
