@@ -2,6 +2,10 @@
 
 import sys
 
-from roomcorr.cli import main
+try:
+    from roomcorr.cli import main
+except KeyboardInterrupt:  # Ctrl-C while Python starts: one line, exit 130 (128 + SIGINT)
+    sys.stderr.write("roomcorr: interrupted\n")
+    sys.exit(130)
 
 sys.exit(main())

@@ -15,9 +15,11 @@ caller, with a one-line message that names the option, key or file.
 
 from __future__ import annotations
 
+import json
 import math
 import os
 import stat
+import tomllib
 from pathlib import Path
 from typing import Any
 
@@ -150,3 +152,156 @@ def read_regular_bytes(
             return fh.read(max_bytes + 1)
     except OSError as exc:
         raise error(f"{p}: cannot read {what} ({exc.strerror})") from None
+
+
+# --------------------------------------------------------------------------- structured files
+
+#: Deepest nesting of objects and arrays accepted in a JSON document or TOML file roomcorr
+#: reads. Its own files nest less than ten levels; Python's parsers recurse per level and
+#: fail with RecursionError near 1000 (``sys.getrecursionlimit``), so the limit is checked
+#: first, by counting brackets, and the parser never gets near its own.
+MAX_NESTING = 64
+#: Most digits an integer in a JSON document may have. Python refuses to convert
+#: integers longer than 4300 digits (``sys.get_int_max_str_digits``, CVE-2020-10735) with
+#: a ValueError; no number roomcorr stores needs more than 20.
+MAX_INT_DIGITS = 40
+#: Largest JSON or TOML file read (records and manifests are a few kilobytes).
+MAX_DOCUMENT_BYTES = 16 << 20
+
+
+def nesting_depth(text: str) -> int:
+    """Deepest nesting of ``[``/``{`` in a JSON or TOML text, brackets inside strings
+    excepted (``"`` and ``'`` strings, backslash escapes in ``"`` strings, ``#`` comments).
+
+    Linear in the text and stops counting at :data:`MAX_NESTING` + 1 (enough to refuse).
+    """
+    depth = deepest = 0
+    quote = ""
+    escaped = comment = False
+    for ch in text:
+        if comment:  # a TOML comment runs to the end of the line
+            comment = ch != "\n"
+            continue
+        if quote:
+            if escaped:
+                escaped = False
+            elif ch == "\\" and quote == '"':
+                escaped = True
+            elif ch == quote or ch == "\n":
+                quote = ""
+            continue
+        if ch in "\"'":
+            quote = ch
+        elif ch == "#":
+            comment = True
+        elif ch in "[{":
+            depth += 1
+            if depth > deepest:
+                deepest = depth
+                if deepest > MAX_NESTING:
+                    return deepest
+        elif ch in "]}":
+            depth -= 1
+    return deepest
+
+
+def _json_int(text: str) -> int:
+    if len(text.lstrip("-")) > MAX_INT_DIGITS:
+        raise ValueError(f"an integer of {len(text)} digits")
+    return int(text)
+
+
+def loads_json(
+    text: str | bytes,
+    what: str,
+    error: type[RoomcorrError] = InputFileError,
+    constants: bool = False,
+) -> Any:
+    """Parse a JSON document from a file or a request, turning every failure into ``error``.
+
+    Refused with one line: invalid JSON, not UTF-8, nesting deeper than
+    :data:`MAX_NESTING`, integers longer than :data:`MAX_INT_DIGITS` digits,
+    ``NaN``/``Infinity`` (not JSON, RFC 8259 section 6) unless ``constants``
+    (then they are read as floats, for a caller that checks every number with
+    :func:`checked_number` and names the key in its message).
+
+    Parameters
+    ----------
+    text : str or bytes
+    what : str
+        Names the document in the message (a path, ``request``).
+    error : RoomcorrError subclass
+    """
+    if isinstance(text, bytes | bytearray):
+        try:
+            text = bytes(text).decode("utf-8")
+        except UnicodeDecodeError:
+            raise error(f"{what}: not valid JSON (not UTF-8 text)") from None
+    if nesting_depth(text) > MAX_NESTING:
+        raise error(f"{what}: not valid JSON (nested deeper than {MAX_NESTING} levels)")
+
+    def no_constant(name: str) -> Any:
+        raise ValueError(f"{name} is not a JSON number")
+
+    try:
+        if constants:
+            return json.loads(text, parse_int=_json_int)
+        return json.loads(text, parse_int=_json_int, parse_constant=no_constant)
+    except (ValueError, RecursionError) as exc:  # JSONDecodeError is a ValueError
+        raise error(f"{what}: not valid JSON ({exc})") from None
+
+
+def read_json(
+    path: str | Path,
+    what: str = "JSON file",
+    error: type[RoomcorrError] = InputFileError,
+    max_bytes: int = MAX_DOCUMENT_BYTES,
+) -> Any:
+    """Read and parse a JSON file (a regular file of at most ``max_bytes``).
+
+    See :func:`loads_json` for what is refused.
+    """
+    raw = read_regular_bytes(path, what, error, max_bytes)
+    return loads_json(raw, str(path), error)
+
+
+def loads_toml(text: str, what: str, error: type[RoomcorrError] = SettingsError) -> dict[str, Any]:
+    """Parse TOML text, turning every failure (deep nesting included) into ``error``."""
+    if nesting_depth(text) > MAX_NESTING:
+        raise error(f"{what}: not valid TOML (nested deeper than {MAX_NESTING} levels)")
+    try:
+        return tomllib.loads(text)
+    except (tomllib.TOMLDecodeError, RecursionError, ValueError) as exc:
+        raise error(f"{what}: not valid TOML ({exc})") from None
+
+
+def expect(
+    value: Any,
+    kind: type | tuple[type, ...],
+    what: str,
+    error: type[RoomcorrError] = InputFileError,
+) -> Any:
+    """``value`` if it is of ``kind`` (booleans are not numbers), else ``error`` naming ``what``.
+
+    For the shapes of records read from files: ``expect(doc.get("settings", {}), dict,
+    "manifest.json: settings")``.
+    """
+    kinds = kind if isinstance(kind, tuple) else (kind,)
+    bad_bool = isinstance(value, bool) and bool not in kinds
+    if bad_bool or not isinstance(value, kinds):
+        names = " or ".join(_KIND_NAMES.get(k, k.__name__) for k in kinds)
+        raise error(
+            f"{what}: expected {names}, found {_KIND_NAMES.get(type(value), type(value).__name__)}"
+        )
+    return value
+
+
+_KIND_NAMES = {
+    dict: "a table (JSON object)",
+    list: "a list",
+    str: "text",
+    int: "a whole number",
+    float: "a number",
+    bool: "true or false",
+    type(None): "nothing (null)",
+}

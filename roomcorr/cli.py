@@ -449,11 +449,15 @@ def _add_report(sub: Any) -> argparse.ArgumentParser:
 
 def _run_report(args: argparse.Namespace) -> int:
     from roomcorr.app.report import report_folder
+    from roomcorr.deliver.atomic import holds_working_folder
 
+    swapped = Path(args.dir).is_dir() and holds_working_folder(Path(args.dir)) and not args.out
     path, lines = report_folder(args.dir, compare_with=args.compare_with, out_dir=args.out)
     for line in lines:
         print(line)
     print(f"report: {path}")
+    if swapped:  # the folder was replaced as a whole (all or nothing): the shell's is the old
+        print("the folder was replaced as a whole; in a shell standing in it, 'cd .' shows it")
     return 0
 
 
@@ -1215,12 +1219,31 @@ def _quiet_broken_pipe() -> int:
     return 141  # 128 + SIGPIPE, as a shell reports a command ended by a closed pipe
 
 
+def _take_over_interrupts() -> None:
+    """Restore Python's Ctrl-C handler, raising now for a Ctrl-C noted while starting."""
+    import signal
+
+    import roomcorr
+
+    if signal.getsignal(signal.SIGINT) is roomcorr._note_early_interrupt:
+        signal.signal(signal.SIGINT, signal.default_int_handler)
+    if roomcorr._EARLY_INTERRUPTS:
+        roomcorr._EARLY_INTERRUPTS.clear()
+        raise KeyboardInterrupt
+
+
 def main(argv: list[str] | None = None) -> int:
-    """Entry point of the ``roomcorr`` command; returns the exit status."""
-    parser = build_parser()
-    args = parser.parse_args(argv)
-    runners = {name: run for name, _add, run in _COMMANDS}
+    """Entry point of the ``roomcorr`` command; returns the exit status.
+
+    Every way a command can fail that a user can cause ends in one line on standard
+    error: exit 2 for an error, 130 for Ctrl-C (128 + SIGINT, the POSIX shell
+    convention), at any moment from the first line on.
+    """
     try:
+        _take_over_interrupts()
+        parser = build_parser()
+        args = parser.parse_args(argv)
+        runners = {name: run for name, _add, run in _COMMANDS}
         status = runners[args.command](args)
         sys.stdout.flush()  # a closed pipe shows here, inside the handlers below
         return status
@@ -1239,8 +1262,12 @@ def main(argv: list[str] | None = None) -> int:
         msg = " ".join(str(exc).split())
         print(f"{PROG}: error: cannot read or write a sound file ({msg})", file=sys.stderr)
         return 2
+    except RecursionError:  # a reader without a depth limit met a deeply nested file
+        print(f"{PROG}: error: an input file is nested too deeply to read", file=sys.stderr)
+        return 2
     except KeyboardInterrupt:
-        print(f"{PROG}: interrupted; files already complete were kept", file=sys.stderr)
+        with contextlib.suppress(KeyboardInterrupt, OSError):
+            print(f"{PROG}: interrupted; files already complete were kept", file=sys.stderr)
         return 130
 
 

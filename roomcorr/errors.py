@@ -15,6 +15,11 @@ class InputFileError(RoomcorrError):
     """An input file is missing, unreadable or unsuitable (the message names it)."""
 
 
+class BadNameError(InputFileError):
+    """A run id or file name given from outside is malformed (NUL byte, far too long, a
+    separator): the request is wrong, not a missing file (the app answers 400)."""
+
+
 class SettingsError(RoomcorrError):
     """An option or settings-file value is invalid (the message names the key)."""
 

@@ -20,12 +20,11 @@ from __future__ import annotations
 
 import dataclasses
 import re
-import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from roomcorr.checked import checked_number, read_regular_bytes, regular_file
+from roomcorr.checked import checked_number, loads_toml, read_regular_bytes, regular_file
 from roomcorr.errors import SettingsError
 
 #: Version of the settings-file layout written and understood by this release.
@@ -202,11 +201,10 @@ def read_toml(path: str | Path) -> dict[str, Any]:
     p = Path(path)
     raw = read_regular_bytes(p, "settings file", SettingsError)
     try:
-        return tomllib.loads(raw.decode("utf-8-sig"))
+        text = raw.decode("utf-8-sig")
     except UnicodeDecodeError:
         raise SettingsError(f"{p}: not valid TOML (not UTF-8 text)") from None
-    except tomllib.TOMLDecodeError as exc:
-        raise SettingsError(f"{p}: not valid TOML ({exc})") from None
+    return loads_toml(text, str(p), SettingsError)  # deep nesting refused in one line
 
 
 _DESIGN_FIELDS = {f.name: f for f in dataclasses.fields(DesignSettings)}

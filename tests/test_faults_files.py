@@ -519,8 +519,84 @@ def _edit_hash(p: Path) -> None:
     p.write_text(json.dumps(m))
 
 
+def _deep(p: Path) -> None:
+    # 100,000 levels of nesting: Python's json module fails with RecursionError near 1000
+    p.write_text("[" * 100_000 + "]" * 100_000)
+
+
+def _big_int(p: Path) -> None:
+    # 5000 digits: beyond sys.get_int_max_str_digits (4300), json.loads raises ValueError
+    doc = json.loads(p.read_text())
+    doc["big"] = 0
+    p.write_text(json.dumps(doc).replace('"big": 0', '"big": ' + "9" * 5000))
+
+
+def _edit_json(**changes):
+    def edit(p: Path) -> None:
+        doc = json.loads(p.read_text())
+        doc.update(changes)
+        p.write_text(json.dumps(doc))
+
+    return edit
+
+
+def _npz_one_point(p: Path) -> None:
+    """design.npz with a one-point frequency grid, and the manifest's SHA-256 updated to it."""
+    with np.load(p) as z:
+        data = {k: z[k] for k in z.files}
+    data["freq_hz"] = np.array([1000.0])
+    with open(p, "wb") as fh:
+        np.savez(fh, **data)
+    man = p.parent / "manifest.json"
+    doc = json.loads(man.read_text())
+    for e in doc["files"]:
+        if e["path"] == p.name:
+            e["sha256"] = _sha(p)
+    man.write_text(json.dumps(doc))
+
+
+def _extra_wav(p: Path) -> None:
+    """A sixth position copied into a finished measurement (issue 22: used silently)."""
+    shutil.copy(p.parent / "pos1.wav", p.parent / "pos9.wav")
+
+
+def _swap_wavs(p: Path) -> None:
+    a, b = p.parent / "pos1.wav", p.parent / "pos2.wav"
+    da, db = a.read_bytes(), b.read_bytes()
+    a.write_bytes(db)
+    b.write_bytes(da)
+
+
+def _weakened_marker_then_swap(p: Path) -> None:
+    """complete.json replaced by a bare ``{"complete": true}``, then two positions swapped."""
+    p.write_text('{"complete": true}')
+    _swap_wavs(p)
+
+
 DAMAGE = {
     # (kind of run, file, how it is damaged)
+    "manifest-deep": ("design", "manifest.json", _deep),
+    "manifest-big-int": ("design", "manifest.json", _big_int),
+    "manifest-design-settings-number": (
+        "design",
+        "manifest.json",
+        _edit_json(settings={"design": 5}),
+    ),
+    "manifest-measurements-number": ("design", "manifest.json", _edit_json(measurements=5)),
+    "npz-one-point": ("design", "design.npz", _npz_one_point),
+    "marker-deep": ("measurement", "complete.json", _deep),
+    "marker-big-int": ("measurement", "complete.json", _big_int),
+    "marker-weakened": ("measurement", "complete.json", _weakened_marker_then_swap),
+    "record-deep": ("measurement", "measurement.json", _deep),
+    "record-big-int": ("measurement", "measurement.json", _big_int),
+    "record-positions-number": ("measurement", "measurement.json", _edit_json(positions=5)),
+    "extra-wav": ("measurement", "pos1.wav", _extra_wav),
+    "wav-deleted": ("design", "fir/48000/left.wav", lambda p: p.unlink()),
+    "wav-byte-changed": (
+        "design",
+        "fir/48000/left.wav",
+        lambda p: p.write_bytes(p.read_bytes()[:-1] + bytes([p.read_bytes()[-1] ^ 1])),
+    ),
     "manifest-list": ("design", "manifest.json", lambda p: p.write_text("[]")),
     "manifest-empty-object": ("design", "manifest.json", lambda p: p.write_text("{}")),
     "manifest-files-number": ("design", "manifest.json", lambda p: p.write_text('{"files": 3}')),
@@ -593,15 +669,14 @@ def test_damaged_design_folder_outside_a_room(work, capsys, name):
     damage(d / rel)
     before = snapshot(work, skip=(work / "cwd",))
     code, _, err = cli(capsys, "report", d)
-    if name == "wav-inf-filter":
-        # The report reads design.npz, not the WAVs; replacing the design notices.
-        assert code == 0, err
+    # Every file is checked against the manifest first (issue 22: a deleted or changed
+    # FIR was reported from design.npz and the manifest rewritten with the stale hash).
+    assert_one_line_error(code, err)
+    assert snapshot(work, skip=(work / "cwd",)) == before
+    if name.startswith("wav-"):  # replacing the design still works and makes it whole
         code, _, err = cli(capsys, "design", work / "irs", "--out", d, "--replace")
         assert code == 0, err
         assert design_is_whole(d)
-        return
-    assert_one_line_error(code, err)
-    assert snapshot(work, skip=(work / "cwd",)) == before
 
 
 # --------------------------------------------------------------------------- disk errors
@@ -753,13 +828,33 @@ def test_working_folder_is_never_swapped_away(work, capsys, monkeypatch):
     code, _, err = cli(capsys, "design", work / "irs", "--out", ".", "--replace")
     assert_one_line_error(code, err, "working folder")
     assert snapshot(work) == before
-    # 'report .' inside a design folder writes there, and the folder stays the
-    # one the shell is in (not a deleted copy).
-    inode = os.stat(".").st_ino
+    # 'report .' inside a design folder replaces the folder as a whole, like --replace
+    # (issue 22: all or nothing under a kill); the command then stands in the new
+    # folder and says how a shell finds it.
     code, out, err = cli(capsys, "report", ".")
     assert code == 0, err
-    assert os.stat(".").st_ino == inode == os.stat(work / "d").st_ino
+    assert "cd ." in out
+    assert os.stat(".").st_ino == os.stat(work / "d").st_ino
     assert Path("report.html").is_file() and design_is_whole(work / "d")
+    assert not leftovers(work)
+
+
+def test_killed_report_dot_leaves_old_or_new_whole(work):
+    # issue 22: 'report .' killed right after report/ appeared left report.html and
+    # figures the manifest did not list, and 'design --replace' then refused the folder
+    d = work / "d"
+    rng = random.Random(22)
+    for i in range(6):
+        proc = popen("report", ".", cwd=d, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+        try:
+            proc.wait(timeout=rng.uniform(1.0, 6.0))
+        except subprocess.TimeoutExpired:
+            proc.send_signal(signal.SIGKILL if i % 2 else signal.SIGINT)
+        proc.wait()
+        assert design_is_whole(d), i
+    r = run("design", work / "irs", "--out", d, "--replace", "--rates", "48000", cwd=work)
+    assert r.returncode == 0, r.stderr
+    assert design_is_whole(d) and not leftovers(work)
 
 
 @pytest.mark.parametrize("kind", ["design", "measurement"])
@@ -811,3 +906,18 @@ def test_design_differences_names_what_changed(work):
         "fir/48000/left.wav: SHA-256 differs",
     ]
     assert not design_is_whole(d)  # the test's own check (hashlib) agrees
+
+
+@pytest.mark.parametrize("kind", ["design", "measurement"])
+def test_a_report_beside_a_finished_run_keeps_it_sound(work, capsys, kind):
+    # a run is sealed by its record; the report added beside it is the one thing
+    # allowed in it unlisted (any other unlisted file makes the run damaged)
+    run_dir = _run_dir(work, kind)
+    code, _, err = cli(capsys, "report", run_dir)
+    assert code == 0, err
+    assert (run_dir / "report.html").is_file()
+    for run in R.list_runs(_room(work)):
+        assert R.check_run(run) is None, run.run_id
+    (run_dir / "notes.txt").write_text("added by hand\n")
+    run = next(r for r in R.list_runs(_room(work)) if r.path == run_dir)
+    assert "notes.txt" in R.check_run(run)

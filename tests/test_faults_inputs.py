@@ -414,3 +414,107 @@ def test_clean_impulse_over_noise_is_accepted(peak_to_noise_db):
         h = 0.5 * 10 ** (-peak_to_noise_db / 20) * rng.standard_normal(24000)
         h[480 + seed] += 0.5
         assert impulse_response_problems(h, FS) == [], seed
+
+
+# ----------------------------------------------------------------- malformed files (issue 22)
+
+ROOM_SETTINGS = {
+    # 5000 levels of nesting: tomllib recurses per level (RecursionError near 1000)
+    "toml-deep": ("settings_version = 1\nx = " + "[" * 5000 + "]" * 5000 + "\n", "nested deeper"),
+    "measure-level-text": ('settings_version = 1\n[measure]\nlevel_dbfs = "x"\n', "level_dbfs"),
+    "measure-sweep-text": ('settings_version = 1\n[measure]\nsweep_s = "5"\n', "sweep_s"),
+    "measure-positions-text": ('settings_version = 1\n[measure]\npositions = "3"\n', "positions"),
+}
+
+
+@pytest.mark.parametrize("case", sorted(ROOM_SETTINGS))
+@pytest.mark.parametrize("command", ["design", "measure"])
+def test_malformed_room_settings_are_one_line(tmp_path, case, command):
+    # every command that reads the room's settings refuses them in one line, exit 2
+    body, msg = ROOM_SETTINGS[case]
+    if command != "measure" and case.startswith("measure-"):
+        pytest.skip("only 'measure' reads the [measure] table's values")
+    room = tmp_path / "room"
+    assert run("init", str(room)).returncode == 0
+    (room / "roomcorr-room.toml").write_text(body)
+    args = {
+        "design": ["design", "--room", str(room), _good(tmp_path)[0]],
+        "measure": ["measure", "--room", str(room), "--yes"],
+    }[command]
+    r = run(*args, cwd=tmp_path)
+    _assert_refused(r, msg, room / "designs")
+
+
+def _record(d: Path, text: str) -> list[str]:
+    files = _good(d)
+    Path(files[0]).parent.joinpath("measurement.json").write_text(text)
+    return files
+
+
+RECORDS = {
+    "deep": "[" * 100_000 + "]" * 100_000,
+    "big-int": '{"positions": [], "x": ' + "9" * 5000 + "}",
+    "positions-number": '{"positions": 5}',
+    "positions-of-numbers": '{"positions": [1, 2]}',
+    "settings-number": '{"settings": 5}',
+}
+
+
+@pytest.mark.parametrize("case", sorted(RECORDS))
+@pytest.mark.parametrize("command", ["report", "design"])
+def test_malformed_measurement_record_is_one_line(tmp_path, case, command):
+    # a measurement folder outside a room: its measurement.json is read for channel
+    # names (design) and quality figures (report); a malformed one is named in one line
+    files = _record(tmp_path, RECORDS[case])
+    out = tmp_path / "out"
+    folder = str(Path(files[0]).parent)
+    args = (
+        ["report", folder, "--out", str(out)]
+        if command == "report"
+        else ["design", folder, "--out", str(out)]
+    )
+    r = run(*args, cwd=tmp_path)
+    _assert_refused(r, "measurement.json", out)
+
+
+def test_ctrl_c_at_start_is_one_line(tmp_path):
+    # SIGINT within the first tens of ms (while Python imports): exit 130 and one line
+    # (POSIX shells: 128 + SIGINT = 130), never a traceback through roomcorr's code.
+    # Before roomcorr's first line runs (CPython's own start-up: site, the import
+    # system), the interpreter answers for itself; that is outside any program.
+    import signal
+    import sys
+    import time
+
+    env = dict(os.environ, PYTHONPATH=str(REPO))
+    ours = 0
+    for delay_s in (0.0, 0.01, 0.02, 0.03, 0.04, 0.05, 0.06, 0.08, 0.1, 0.15, 0.2, 0.3):
+        proc = subprocess.Popen(
+            [sys.executable, "-m", "roomcorr", "history", str(tmp_path)],
+            env=env,
+            stdout=subprocess.PIPE,
+            stderr=subprocess.PIPE,
+            text=True,
+        )
+        time.sleep(delay_s)
+        proc.send_signal(signal.SIGINT)
+        out, err = proc.communicate(timeout=60)
+        frames = [ln for ln in err.splitlines() if ln.strip().startswith("File ")]
+        assert not any(str(REPO) in f for f in frames), (delay_s, "\n".join(frames))
+        if frames or proc.returncode == -signal.SIGINT:
+            continue  # CPython's start-up, before roomcorr's first line
+        lines = [ln for ln in err.splitlines() if ln.strip()]
+        ours += 1
+        assert proc.returncode in (130, 2) and len(lines) == 1, (delay_s, proc.returncode, err)
+    assert ours >= 3  # the later signals all reached roomcorr
+
+
+def test_ctrl_c_noted_while_starting_is_answered_by_main(capsys, monkeypatch):
+    # the handler roomcorr/__init__ installs for the command notes a Ctrl-C; main answers
+    import roomcorr
+    from roomcorr.cli import main
+
+    monkeypatch.setattr(roomcorr, "_EARLY_INTERRUPTS", [2])
+    assert main(["--help"]) == 130
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "interrupted" in err

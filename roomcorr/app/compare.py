@@ -4,7 +4,6 @@ filters designed from the earlier one still fit the later one."""
 from __future__ import annotations
 
 import contextlib
-import json
 import os
 from pathlib import Path
 from typing import Any
@@ -29,6 +28,7 @@ from roomcorr.rooms import (
     list_runs,
     load_room_settings,
     measurement_files,
+    measurement_record,
     open_room,
     resolve_run,
     verified,
@@ -56,12 +56,10 @@ def fir_response_db(fir: np.ndarray, fs: int, freq_hz: np.ndarray) -> np.ndarray
 
 
 def _record(folder: Path) -> dict[str, Any] | None:
-    """The ``measurement.json`` of a measurement folder, or None (tolerant reader)."""
+    """The checked ``measurement.json`` of a measurement folder, or None if it has none."""
     record = folder / "measurement.json"
-    if folder.is_dir() and record.is_file() and not record.is_symlink():
-        with contextlib.suppress(OSError, UnicodeDecodeError, json.JSONDecodeError):
-            data = json.loads(record.read_text(encoding="utf-8"))
-            return data if isinstance(data, dict) else None
+    if folder.is_dir() and record.is_file():
+        return measurement_record(folder)  # a damaged record is one line
     return None
 
 

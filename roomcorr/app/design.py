@@ -10,7 +10,6 @@ design uses (:func:`roomcorr.pipeline.design_curves`).
 from __future__ import annotations
 
 import copy
-import json
 import re
 from collections.abc import Callable
 from pathlib import Path
@@ -21,13 +20,13 @@ import numpy as np
 from roomcorr import rooms
 from roomcorr.app.explore import run_folder
 from roomcorr.audio_io import read_ir_set
-from roomcorr.deliver.atomic import atomic_write_text
+from roomcorr.deliver.atomic import atomic_write_bytes
 from roomcorr.deliver.export import check_out_dir, input_digests, write_design
 from roomcorr.design.align import apply_plan, plan_system
 from roomcorr.design.fir import synthesize_fir
 from roomcorr.design.safety import PEAK_BAND, common_pre_gain_db, full_band_peak_gain_db
 from roomcorr.design.target import target_from_table
-from roomcorr.errors import SettingsError
+from roomcorr.errors import OutputError, RoomcorrError, SettingsError
 from roomcorr.grid import log_grid
 from roomcorr.measure.timing import timing_basis
 from roomcorr.pipeline import (
@@ -43,7 +42,7 @@ from roomcorr.pipeline import (
 from roomcorr.settings import Settings, design_from_dict
 
 #: Folder of a room where targets shaped in the browser app are kept (one TOML file each).
-TARGETS_DIR = "targets"
+TARGETS_DIR = rooms.TARGETS
 _TARGET_NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_-]{0,47}$")
 
 
@@ -52,11 +51,8 @@ def names_from_measurement(files: list[Path], settings: Settings) -> None:
     if settings.design.channel_names is not None:
         return
     for folder in dict.fromkeys(Path(f).parent for f in files):
-        p = folder / "measurement.json"
-        try:
-            names = json.loads(p.read_text(encoding="utf-8")).get("settings", {}).get("names")
-        except (OSError, ValueError, AttributeError):
-            continue
+        record = rooms.measurement_record(folder)  # a damaged record is one line
+        names = (record.get("settings") or {}).get("names") if record is not None else None
         if names:
             settings.design = design_from_dict({"channel_names": names}, base=settings.design)
             return
@@ -69,10 +65,10 @@ def basis_of_files(files: list[Path]) -> dict[str, Any]:
     record = None
     if len(folders) == 1 and not (folders[0] / "measurement.json").is_symlink():
         try:
-            record = json.loads((folders[0] / "measurement.json").read_text(encoding="utf-8"))
-        except (OSError, UnicodeDecodeError, ValueError):
+            record = rooms.measurement_record(folders[0])  # checked, bounded
+        except RoomcorrError:
             record = None
-    return timing_basis(record if isinstance(record, dict) else None)
+    return timing_basis(record)
 
 
 def design_from_files(
@@ -406,20 +402,51 @@ class DesignPreview:
             The new design run and its manifest's file entries.
         """
         settings, table = target_settings(self.base, edit)
+        label = name or "shaped"
         if table:
-            label = name or "shaped"
             if not _TARGET_NAME.match(label):
                 raise SettingsError(
-                    f"target name {label!r}: use letters, digits, - and _ (at most 48)"
+                    f"target name {label[:60]!r}: use letters, digits, - and _ (at most 48)"
                 )
             target_from_table(self.analysis.freq_hz, table, "target")  # checked before writing
-            path = self.room.root / TARGETS_DIR / f"{label}.toml"
-            path.parent.mkdir(exist_ok=True)
-            atomic_write_text(path, target_toml(table))
-            settings.design = design_from_dict({"target": str(path)}, base=settings.design)
-        files = [str(p) for p in self.files]
-        run_dir, _, entries = design_in_room(self.room, settings, ir_paths=files)
+        # The lock is held from the first file written to the last: a save refused
+        # because the room is busy writes nothing, and no other thread or command
+        # writes the room in between.
+        with rooms.room_lock(self.room, "saving a design from the app"):
+            rooms.check_kind_folder(self.room, "design")  # refused before the target is kept
+            if table:
+                path = keep_target(self.room, label, target_toml(table))
+                settings.design = design_from_dict({"target": str(path)}, base=settings.design)
+            files = [str(p) for p in self.files]
+            run_dir, _, entries = design_in_room(self.room, settings, ir_paths=files)
         return run_dir, entries
+
+
+def keep_target(room: rooms.Room, label: str, text: str) -> Path:
+    """Keep a target shaped in the app as ``targets/LABEL.toml`` and return its path.
+
+    A target file is never replaced: an earlier design records the SHA-256 of the
+    target it used, and must stay repeatable. When ``LABEL.toml`` exists with other
+    content, the target is kept as ``LABEL-2.toml``, ``LABEL-3.toml``...; a file
+    with the same content is used as it is. Call with the room lock held.
+
+    Raises
+    ------
+    OutputError
+        If ``targets/`` is a link or leads outside the room, or all names are taken.
+    """
+    folder = rooms.room_folder(room, rooms.TARGETS, create=True)
+    data = text.encode("utf-8")
+    for n in range(1, 1000):
+        path = folder / (f"{label}.toml" if n == 1 else f"{label}-{n}.toml")
+        if path.is_symlink():
+            continue  # never written through, never taken for the target
+        if not path.exists():
+            atomic_write_bytes(path, data)
+            return path
+        if path.is_file() and path.read_bytes() == data:
+            return path
+    raise OutputError(f"{folder}: no free name for target {label!r}; remove old targets")
 
 
 def target_toml(table: dict[str, Any]) -> str:

@@ -17,11 +17,12 @@ from roomcorr.app.compare import compare_measurements
 from roomcorr.app.history import history
 from roomcorr.audio_io import read_ir_set
 from roomcorr.deliver.export import load_design_curves, read_manifest
-from roomcorr.errors import InputFileError
+from roomcorr.errors import BadNameError, InputFileError
 from roomcorr.grid import log_grid
 from roomcorr.pipeline import analyse_positions, default_channel_names
 from roomcorr.report.compare import format_comparison
 from roomcorr.report.figures import DECAY_MAP_FLOOR_DB, DECAY_MAP_STOPS
+from roomcorr.rooms.runs import RUN_NAME
 
 #: Plot curves are thinned to this many points per octave (the design grid has 96).
 PLOT_POINTS_PER_OCTAVE = 48
@@ -54,9 +55,10 @@ def run_folder(room: rooms.Room, kind: str, run_id: str) -> Path:
     if kind not in rooms.KINDS:
         raise InputFileError(f"{kind}: not a kind of run (measurement or design)")
     name = str(run_id)
-    if not name or name in {".", ".."} or "/" in name or "\\" in name or name.startswith("."):
-        raise InputFileError(f"{run_id!r}: not a run id")
-    base = (room.root / rooms.KINDS[kind]).resolve()
+    if not RUN_NAME.match(name):
+        shown = name if len(name) <= 40 else name[:40] + "..."
+        raise BadNameError(f"{shown!r}: not a run id")
+    base = rooms.room_folder(room, rooms.KINDS[kind]).resolve()  # a link out is refused
     path = (base / name).resolve()
     if path.parent != base or not path.is_dir():
         raise InputFileError(f"{run_id}: no such {kind} run in {room.root}")
@@ -443,6 +445,8 @@ def run_file(room: rooms.Room, kind: str, run_id: str, rel_path: str) -> Path:
         leading out), a folder, or a missing file.
     """
     folder = run_folder(room, kind, run_id)
+    if "\x00" in rel_path or len(rel_path) > 1024:
+        raise BadNameError(f"{rel_path[:40]!r}: not a file name")
     rel = Path(rel_path)
     if rel.is_absolute() or ".." in rel.parts:
         raise InputFileError(f"{rel_path}: not a file of run {run_id}")

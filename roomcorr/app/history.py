@@ -13,6 +13,7 @@ import numpy as np
 
 from roomcorr.analysis.compare import direct_arrival_s
 from roomcorr.audio_io import read_ir_set
+from roomcorr.checked import read_json
 from roomcorr.deliver.atomic import atomic_write_text
 from roomcorr.deliver.export import read_manifest
 from roomcorr.deliver.figures import figures_of_manifest, fmt_db
@@ -25,6 +26,7 @@ from roomcorr.rooms import (
     is_locked,
     list_runs,
     measurement_files,
+    measurement_record,
     open_room,
     room_lock,
     room_name,
@@ -55,15 +57,9 @@ def _measurement_figures(run_dir: Path) -> dict[str, Any]:
         for c in range(irs.shape[1])
     ]
     figs["peak_dbfs"] = round(float(20 * np.log10(np.max(np.abs(irs)) + 1e-30)), 1)
-    record = run_dir / "measurement.json"
     figs["timing_basis"] = timing_basis(None)
-    if record.is_file():
-        try:
-            data = json.loads(record.read_text(encoding="utf-8"))
-        except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
-            raise InputFileError(f"{record}: damaged ({exc})") from None
-        if not isinstance(data, dict):
-            raise InputFileError(f"{record}: damaged (expected a JSON object)")
+    data = measurement_record(run_dir)  # checked: a damaged record makes the run damaged
+    if data is not None:
         figs.update(_record_figures(data))
         figs["timing_basis"] = timing_basis(data)
     return figs
@@ -275,10 +271,7 @@ def run_labels(room: Room) -> dict[str, dict[str, str]]:
     path = room.root / LABELS_FILE
     if not path.is_file():
         return {}
-    try:
-        data = json.loads(path.read_text(encoding="utf-8"))
-    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
-        raise InputFileError(f"{path}: damaged ({exc}); fix or remove it") from None
+    data = read_json(path, LABELS_FILE)  # bounded size and depth; damaged is one line
     runs = data.get("runs") if isinstance(data, dict) else None
     if not isinstance(runs, dict):
         raise InputFileError(f"{path}: damaged (expected {{'runs': {{...}}}}); fix or remove it")

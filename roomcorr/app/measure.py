@@ -41,6 +41,7 @@ import numpy as np
 
 from roomcorr import rooms
 from roomcorr.app.through import load_through, through_summary
+from roomcorr.checked import read_json
 from roomcorr.deliver.atomic import atomic_write_text
 from roomcorr.errors import (
     DeviceError,
@@ -112,10 +113,11 @@ def last_devices(room: rooms.Room | None) -> dict[str, Any] | None:
         for run in reversed(rooms.list_runs(room, "measurement")):
             path = Path(run.path) / RECORD_NAME
             if path.is_file():
-                devs = json.loads(path.read_text(encoding="utf-8")).get("devices")
+                record = read_json(path, RECORD_NAME)  # size and depth limits
+                devs = record.get("devices") if isinstance(record, dict) else None
                 if isinstance(devs, dict):
                     return devs
-    except (RoomcorrError, OSError, ValueError, AttributeError):
+    except (RoomcorrError, OSError):
         return None
     return None
 
@@ -189,10 +191,10 @@ def cautions_view(room: rooms.Room) -> dict[str, Any]:
     path = room.root / CAUTIONS_FILE
     ack = None
     try:
-        data = json.loads(path.read_text(encoding="utf-8"))
+        data = read_json(path, CAUTIONS_FILE) if path.is_file() else None
         if isinstance(data, dict) and data.get("text") == CAUTIONS:
             ack = data.get("acknowledged_utc")
-    except (OSError, ValueError):
+    except RoomcorrError:
         ack = None
     return {
         "text": CAUTIONS,

@@ -28,6 +28,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from roomcorr.audio_io import write_wav
+from roomcorr.checked import read_json
 from roomcorr.deliver.atomic import (
     TMP_PREFIX,
     PathEscapeError,
@@ -90,6 +91,17 @@ def _manifest_problem(doc: Any, out: Path) -> str | None:
     for key in ("settings", "channels"):
         if key in doc and not isinstance(doc[key], dict if key == "settings" else list):
             return f"'{key}' has the wrong type"
+    # the shapes the report, history and app read (each reader indexes them as such)
+    for key in ("design", "measure"):
+        if not isinstance((doc.get("settings") or {}).get(key, {}), dict):
+            return f"'settings.{key}' is not a table"
+    for key in ("measurements", "inputs"):
+        if key in doc and not isinstance(doc[key], list):
+            return f"'{key}' is not a list"
+    if not all(isinstance(m, str) for m in doc.get("measurements") or []):
+        return "'measurements' is not a list of file names"
+    if not all(isinstance(e, dict) for e in [*(doc.get("inputs") or []), *doc.get("channels", [])]):
+        return "'inputs' or 'channels' holds something other than tables"
     return None
 
 
@@ -130,14 +142,12 @@ def read_manifest(out_dir: str | Path) -> dict[str, Any]:
     """
     out = Path(out_dir)
     p = out / MANIFEST
-    try:
-        doc = json.loads(p.read_text(encoding="utf-8"))
-    except FileNotFoundError:
-        raise OutputError(f"{p}: no manifest; is {out_dir} a design folder?") from None
-    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
-        raise OutputError(f"{p}: damaged manifest ({exc})") from None
-    except OSError as exc:
-        raise OutputError(f"{p}: cannot read the manifest ({disk_error_text(exc)})") from None
+    if not p.exists() and not p.is_symlink():
+        raise OutputError(f"{p}: no manifest; is {out_dir} a design folder?")
+    try:  # size, nesting and number limits: a damaged file is one line, never a traceback
+        doc = read_json(p, "manifest", OutputError)
+    except OutputError as exc:
+        raise OutputError(f"damaged manifest: {exc}") from None
     problem = _manifest_problem(doc, out)
     if problem:
         raise OutputError(f"{p}: damaged manifest: {problem}")
@@ -377,7 +387,30 @@ def load_design_curves(out_dir: str | Path, verify: bool = True) -> dict[str, An
     bad = [rate for rate, h in firs.items() if h.ndim != 2 or not np.all(np.isfinite(h))]
     if bad or not np.isfinite(curves["pre_gain_db"]):
         raise OutputError(f"{p}: damaged (filter values not finite); design again")
+    problem = _curves_problem(curves)
+    if problem:
+        raise OutputError(f"{p}: damaged ({problem}); design again")
     return curves
+
+
+#: Curves of a channel that share the frequency grid (the last axis) in ``design.npz``.
+_GRID_CURVES = ("average_db", "target_db", "correction_db", "measured_db")
+
+
+def _curves_problem(curves: dict[str, Any]) -> str | None:
+    """Why loaded design curves cannot be drawn or compared (None when they can)."""
+    f = np.asarray(curves["freq_hz"])
+    if f.ndim != 1 or f.size < 2 or not np.all(np.isfinite(f)) or not np.all(np.diff(f) > 0):
+        return "freq_hz is not a rising grid of at least two frequencies"
+    if np.asarray(curves["irs"]).ndim != 3 or curves["fs_in"] <= 0:
+        return "the impulse responses are not shaped (positions, channels, samples)"
+    if any(np.asarray(h).shape[0] != len(curves["channels"]) for h in curves["firs"].values()):
+        return "a filter set does not have one filter per channel"
+    for ch in curves["channels"]:
+        for key in _GRID_CURVES:
+            if key in ch and np.shape(ch[key])[-1:] != (f.size,):
+                return f"{ch['name']} {key} does not match freq_hz"
+    return None
 
 
 def write_design(

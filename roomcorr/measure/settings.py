@@ -27,6 +27,36 @@ DEFAULT_MAX_SPL_DB = 85.0
 _LOUDSPEAKER_NAME = re.compile(r"[A-Za-z0-9_-]{1,32}")
 
 
+#: The value types a ``[measure]`` key may hold, by its field's annotation: a string
+#: ``"5"`` where a number belongs is refused, not compared with numbers later.
+_FIELD_TYPES: dict[str, set[str]] = {
+    "int": {"int"},
+    "float": {"float"},
+    "bool": {"bool"},
+    "str": {"str"},
+    "str | int | None": {"str", "int", "None"},
+    "bool | None": {"bool", "None"},
+    "int | None": {"int", "None"},
+    "float | None": {"float", "None"},
+    "tuple[int, ...]": {"tuple"},
+    "tuple[int, int] | None": {"tuple", "None"},
+    "tuple[str, ...] | None": {"tuple", "None"},
+}
+_TYPE_WORDS = {
+    "int": "a whole number",
+    "float": "a number",
+    "bool": "true or false",
+    "str": "text",
+    "str | int | None": "a device name or number",
+    "bool | None": "true or false",
+    "int | None": "a whole number",
+    "float | None": "a number",
+    "tuple[int, ...]": "a list of whole numbers",
+    "tuple[int, int] | None": "two whole numbers",
+    "tuple[str, ...] | None": "a list of names",
+}
+
+
 @dataclass
 class MeasureSettings:
     """Everything a measurement run needs besides the output folder.
@@ -170,18 +200,38 @@ class MeasureSettings:
         d = dict(data)
         from roomcorr.checked import checked_number
 
-        for f in fields(cls):  # every number finite (NaN passes every '>' test)
-            v = d.get(f.name)
-            if isinstance(v, float | int) and not isinstance(v, bool):
-                d[f.name] = checked_number(
-                    v, f"{source}: measure.{f.name}", integer=isinstance(v, int)
-                )
-        if "outputs" in d:
-            d["outputs"] = tuple(int(c) for c in d["outputs"])
-        if d.get("loopback") is not None:
-            d["loopback"] = tuple(int(c) for c in d["loopback"])
-        if d.get("names") is not None:
-            d["names"] = tuple(str(n) for n in d["names"])
+        for f in fields(cls):  # each value of its field's type, every number finite
+            if f.name not in d:
+                continue
+            v = d[f.name]
+            allowed = _FIELD_TYPES.get(str(f.type))
+            if allowed is None:  # pragma: no cover - a field added without its type here
+                raise TypeError(f"MeasureSettings.{f.name}: no type check for {f.type}")
+            name = f"{source}: measure.{f.name}"
+            if v is None and "None" in allowed:
+                continue
+            if "tuple" in allowed:
+                kind = str if str(f.type).startswith("tuple[str") else int
+                if not isinstance(v, list | tuple) or not all(
+                    isinstance(x, kind) and not isinstance(x, bool) for x in v
+                ):
+                    what = "names" if kind is str else "whole numbers"
+                    raise SettingsError(f"{name} = {v!r}: expected a list of {what}")
+                continue
+            if isinstance(v, bool):
+                if "bool" not in allowed:
+                    raise SettingsError(f"{name} = {v!r}: expected a number, not true/false")
+                continue
+            if isinstance(v, int | float):
+                if "float" in allowed or "int" in allowed:
+                    d[f.name] = checked_number(v, name, integer="float" not in allowed)
+                    continue
+            elif isinstance(v, str) and "str" in allowed:
+                continue
+            raise SettingsError(f"{name} = {v!r}: expected {_TYPE_WORDS[str(f.type)]}")
+        for key in ("outputs", "loopback", "names"):  # lists in TOML and JSON, tuples here
+            if d.get(key) is not None:
+                d[key] = tuple(d[key])
         s = cls(**d)
         s.validate()
         return s

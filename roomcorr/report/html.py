@@ -13,7 +13,6 @@ from __future__ import annotations
 
 import base64
 import html
-import json
 import re
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -23,8 +22,11 @@ import numpy as np
 
 from roomcorr.analysis.decay import decay_method as _decay_method
 from roomcorr.analysis.decay import mean_band_decay as _mean_band_decay
+from roomcorr.checked import read_json
+from roomcorr.deliver.atomic import PathEscapeError, contained
 from roomcorr.deliver.figures import fmt_db
 from roomcorr.deliver.loading import file_groups
+from roomcorr.errors import RoomcorrError
 from roomcorr.report import glance
 from roomcorr.report.files import files_parts
 from roomcorr.report.summary import fmt_hz, summary_sentences, withheld_regions
@@ -1173,24 +1175,18 @@ def render_html(report: Report) -> str:
 
 def _read_through(folder: Path) -> dict[str, Any] | None:
     """``through.check`` of a measurement made with ``measure --through`` (None otherwise)."""
-    p = folder / "measurement.json"
-    try:
-        data = json.loads(p.read_text(encoding="utf-8"))
-    except (OSError, ValueError):
-        return None
-    check = (data.get("through") or {}).get("check") if isinstance(data, dict) else None
+    from roomcorr.rooms import measurement_record
+
+    data = measurement_record(folder)  # a damaged record is one line, never a traceback
+    check = (data.get("through") or {}).get("check") if data is not None else None
     return check if isinstance(check, dict) and "measured_db" in check else None
 
 
 def _read_quality(folder: Path) -> list[dict[str, Any]] | None:
-    p = folder / "measurement.json"
-    if not p.is_file():
-        return None
-    try:
-        data = json.loads(p.read_text(encoding="utf-8"))
-    except (OSError, json.JSONDecodeError):
-        return None
-    return quality_from_record(data) if isinstance(data, dict) else None
+    from roomcorr.rooms import measurement_record
+
+    data = measurement_record(folder)  # a damaged record is one line, never a traceback
+    return quality_from_record(data) if data is not None else None
 
 
 def _read_iir(folder: Path) -> dict[str, list[dict[str, Any]]] | None:
@@ -1198,8 +1194,8 @@ def _read_iir(folder: Path) -> dict[str, list[dict[str, Any]]] | None:
     out: dict[str, list[dict[str, Any]]] = {}
     for p in sorted(folder.glob("iir/*/*.json")):
         try:
-            doc = json.loads(p.read_text(encoding="utf-8"))
-        except (OSError, json.JSONDecodeError):
+            doc = read_json(p, "biquad file")
+        except RoomcorrError:
             continue
         if isinstance(doc, dict) and doc.get("format") == "roomcorr-iir":
             out.setdefault(str(doc.get("channel_name", p.stem)), []).append(doc)
@@ -1213,15 +1209,16 @@ def _session_curves(folder: Path) -> dict[str, Any]:
     from roomcorr.errors import InputFileError
     from roomcorr.grid import log_grid
     from roomcorr.pipeline import analyse_positions, default_channel_names
+    from roomcorr.rooms import measurement_record
 
     wavs: list[Path] = []
-    record = folder / "measurement.json"
-    if record.is_file():  # the session's own list of impulse responses, in order
+    data = measurement_record(folder)  # the session's own list of impulse responses, in order
+    if data is not None:
         try:
-            data = json.loads(record.read_text(encoding="utf-8"))
-            wavs = [folder / p["file"] for p in data.get("positions", []) if p.get("file")]
-        except (OSError, json.JSONDecodeError, AttributeError, TypeError):
-            wavs = []
+            positions = data.get("positions", [])
+            wavs = [contained(folder, p["file"]) for p in positions if p.get("file")]
+        except PathEscapeError as exc:
+            raise InputFileError(f"{folder / 'measurement.json'}: damaged record: {exc}") from None
     if not wavs:
         wavs = sorted(p for p in folder.glob("*.wav"))
     if not wavs:
@@ -1244,14 +1241,14 @@ def _session_curves(folder: Path) -> dict[str, Any]:
 def _how_measured(folder: Path) -> str:
     """The sweep of a measurement folder's record, or that its responses came as WAV files."""
     try:
-        record = json.loads((folder / "measurement.json").read_text(encoding="utf-8"))
+        record = read_json(folder / "measurement.json", "measurement.json")
         ms = record["settings"]
         return (
             f"sweeps {float(ms['f_start_hz']):g} Hz to {float(ms['f_end_hz']):g} Hz, "
             f"{float(ms['sweep_s']):g} s, peak {float(ms['level_dbfs']):g} dBFS, "
             f"{int(ms['repeats'])} per loudspeaker"
         )
-    except (OSError, ValueError, KeyError, TypeError):
+    except (RoomcorrError, OSError, ValueError, KeyError, TypeError):
         return "impulse responses read from WAV files"
 
 
@@ -1276,8 +1273,8 @@ def _complete(run_dir: Path) -> bool:
     from roomcorr.rooms import COMPLETE_MARKER
 
     try:
-        data = json.loads((run_dir / COMPLETE_MARKER).read_text(encoding="utf-8"))
-    except (OSError, json.JSONDecodeError):
+        data = read_json(run_dir / COMPLETE_MARKER, COMPLETE_MARKER)
+    except RoomcorrError:
         return False
     return isinstance(data, dict) and data.get("complete") is True
 
@@ -1294,8 +1291,10 @@ def _source_measurement(d: Path, room: Any) -> tuple[Any, Any]:
     if not ((d / "manifest.json").is_file() and (d / "design.npz").is_file()):
         return room, d
     try:
-        manifest = json.loads((d / "manifest.json").read_text(encoding="utf-8"))
-    except (OSError, json.JSONDecodeError):
+        manifest = read_json(d / "manifest.json", "manifest")
+    except RoomcorrError:
+        manifest = {}
+    if not isinstance(manifest, dict):
         manifest = {}
     if room is not None and d.parent == room.designs_dir.resolve():
         run = next((r for r in rooms.list_runs(room, "design") if r.path.resolve() == d), None)
@@ -1422,8 +1421,8 @@ def _ours(d: Path) -> bool:
         except OutputError:
             return False
     try:
-        record = json.loads((d / "measurement.json").read_text(encoding="utf-8"))
-    except (OSError, UnicodeDecodeError, json.JSONDecodeError):
+        record = read_json(d / "measurement.json", "measurement.json")
+    except RoomcorrError:
         return False
     return isinstance(record, dict)
 
@@ -1502,7 +1501,7 @@ def write_report(
     half-written; a new destination folder appears only when it is complete.
     """
     from roomcorr import rooms
-    from roomcorr.errors import InputFileError
+    from roomcorr.errors import InputFileError, OutputError
 
     d = Path(folder)
     if not d.is_dir():
@@ -1513,9 +1512,19 @@ def write_report(
     settings = None
     through = None
     if is_design:
-        from roomcorr.deliver.export import load_design_curves, read_manifest
+        from roomcorr.deliver.export import design_differences, load_design_curves, read_manifest
         from roomcorr.deliver.figures import figures_of_manifest
 
+        if not (d / "complete.json").is_file():  # a run of a room is checked by its record
+            # every file the manifest lists, with its SHA-256, and nothing else: a deleted
+            # or changed filter is named, never redrawn from design.npz
+            changed = design_differences(d)
+            if changed:
+                more = f" (and {len(changed) - 1} more)" if len(changed) > 1 else ""
+                raise OutputError(
+                    f"{d}: the design folder changed since it was written: {changed[0]}{more}; "
+                    "design again (--replace) to make it whole"
+                )
         curves = load_design_curves(d)
         manifest = read_manifest(d)
         settings = manifest.get("settings")
@@ -1586,6 +1595,7 @@ def _list_report_in_manifest(d: Path, written: list[str]) -> None:
 def _write_report_files(dest: Path, report: Report, list_in_manifest: bool) -> list[str]:
     """Write the figures and the page (and their manifest entries) into ``dest``, all or
     nothing: the folder is built beside ``dest`` and swapped in when complete."""
+    import os
     import shutil
 
     from roomcorr.deliver.atomic import (
@@ -1601,19 +1611,13 @@ def _write_report_files(dest: Path, report: Report, list_in_manifest: bool) -> l
     figures = [f for s in report.sections for f in s.all_figures()]
     written = [f"{FIG_DIR}/{f.key}.png" for f in figures]
     page = render_html(report)
+    # ``roomcorr report .``: the folder is replaced as a whole like any other (all or
+    # nothing under a kill); this process then stands in the new folder, and a shell
+    # standing in the old one finds the new one with ``cd .`` (the command says so).
+    here = dest.exists() and holds_working_folder(dest)
+    absolute = dest.resolve()
     try:
-        if dest.exists() and holds_working_folder(dest):
-            # ``roomcorr report .``: the folder itself cannot be swapped under the
-            # shell that runs us, so only report/ is swapped in; then the page and
-            # the manifest are replaced, each atomically.
-            with staged_folder(dest / FIG_DIR) as stage:
-                for f in figures:
-                    atomic_write_bytes(stage / f"{f.key}.png", f.png)
-                atomic_write_text(dest / REPORT_HTML, page)
-            if list_in_manifest:
-                _list_report_in_manifest(dest, written)
-            return written
-        with staged_copy(dest) if dest.exists() else staged_folder(dest) as stage:
+        with staged_copy(absolute) if dest.exists() else staged_folder(absolute) as stage:
             if (stage / FIG_DIR).is_dir():
                 shutil.rmtree(stage / FIG_DIR)  # links to the old figures; they stay intact
             (stage / FIG_DIR).mkdir()
@@ -1622,6 +1626,8 @@ def _write_report_files(dest: Path, report: Report, list_in_manifest: bool) -> l
             atomic_write_text(stage / REPORT_HTML, page)
             if list_in_manifest:
                 _list_report_in_manifest(stage, written)
+        if here:
+            os.chdir(absolute)
     except OSError as exc:
         raise OutputError(f"{dest}: cannot write the report ({disk_error_text(exc)})") from None
     return written

@@ -7,7 +7,9 @@ Public functions (the signatures other commands rely on)::
     open_room(path) -> Room                      # raises SettingsError if not a room
     init_room(path, name=None) -> Room           # creates the folder and settings file
     load_room_settings(room) -> Settings         # reads (and upgrades) roomcorr-room.toml
-    room_lock(room, purpose="") -> context manager (re-entrant in one process)
+    room_folder(room, name, create=False) -> Path  # measurements/, designs/, targets/:
+        # a plain folder inside the room, or OutputError (the one containment rule)
+    room_lock(room, purpose="") -> context manager (excludes other processes and threads)
     new_run(room, kind, info=None) -> context manager yielding the run folder (Path)
         kind is "measurement" or "design". Takes the room lock, creates a new
         time-stamped folder, and writes its "complete" marker only when the
@@ -18,6 +20,7 @@ Public functions (the signatures other commands rely on)::
     list_runs(room, kind=None) -> list[RunInfo]  # oldest first, incomplete ones included
     add_measurement(room, paths) -> Path         # copy IR WAVs from elsewhere into a new run
     measurement_files(folder) -> list[Path]      # the IR WAVs of a measurement folder
+    measurement_record(folder) -> dict | None    # its measurement.json, checked
     check_run(run, use=None) -> str | None       # what changed since the run finished
     verified(room, folder, use=None)             # InputFileError for a damaged run
 
@@ -31,11 +34,14 @@ from roomcorr.rooms.folder import (
     COMPLETE_MARKER,
     KINDS,
     LOCK_FILE,
+    ROOM_FOLDERS,
     SETTINGS_FILE,
     SETTINGS_SNAPSHOT,
+    TARGETS,
     Room,
     find_room,
     open_room,
+    room_folder,
 )
 from roomcorr.rooms.lock import is_locked, room_lock
 from roomcorr.rooms.runs import (
@@ -47,6 +53,7 @@ from roomcorr.rooms.runs import (
     latest_measurement,
     list_runs,
     measurement_files,
+    measurement_record,
     new_run,
     refuse_finished_run,
     resolve_run,
@@ -67,8 +74,10 @@ __all__ = [
     "KINDS",
     "LOCK_FILE",
     "MIGRATIONS",
+    "ROOM_FOLDERS",
     "SETTINGS_FILE",
     "SETTINGS_SNAPSHOT",
+    "TARGETS",
     "Room",
     "RunInfo",
     "add_measurement",
@@ -82,10 +91,12 @@ __all__ = [
     "list_runs",
     "load_room_settings",
     "measurement_files",
+    "measurement_record",
     "new_run",
     "open_room",
     "refuse_finished_run",
     "resolve_run",
+    "room_folder",
     "room_lock",
     "room_name",
     "run_sort_key",

@@ -15,13 +15,18 @@ import os
 from dataclasses import dataclass
 from pathlib import Path
 
-from roomcorr.errors import SettingsError
+from roomcorr.deliver.atomic import is_link_or_outside
+from roomcorr.errors import OutputError, SettingsError
 
 SETTINGS_FILE = "roomcorr-room.toml"
 LOCK_FILE = ".roomcorr-lock"
 COMPLETE_MARKER = "complete.json"
 SETTINGS_SNAPSHOT = "room-settings.toml"
 KINDS = {"measurement": "measurements", "design": "designs"}
+#: Folders of a room that roomcorr reads and writes: runs of both kinds, and targets
+#: shaped in the app. Each must be a plain folder inside the room (:func:`room_folder`).
+TARGETS = "targets"
+ROOM_FOLDERS = (*KINDS.values(), TARGETS)
 
 
 @dataclass(frozen=True)
@@ -41,6 +46,47 @@ class Room:
     @property
     def designs_dir(self) -> Path:
         return self.root / KINDS["design"]
+
+
+def room_folder(room: Room, name: str, create: bool = False) -> Path:
+    """``room.root / name`` (one of :data:`ROOM_FOLDERS`), refused unless it is a plain
+    folder inside the room.
+
+    The one containment rule for the folders the command line and the app read and
+    write: a symbolic link, or anything resolving outside the room folder, is refused
+    before any file in it is opened, so nothing is read from or written to another place.
+
+    Parameters
+    ----------
+    room : Room
+    name : str
+        ``measurements``, ``designs`` or ``targets``.
+    create : bool
+        Create the folder when it does not exist yet (checked again afterwards).
+
+    Raises
+    ------
+    OutputError
+        If it is a link, not a folder, or leads outside the room.
+    """
+    if name not in ROOM_FOLDERS:
+        raise ValueError(f"{name!r} is not a folder of a room")
+    path = room.root / name
+
+    def check() -> None:
+        if (path.exists() or path.is_symlink()) and (
+            is_link_or_outside(path, room.root) or not path.is_dir()
+        ):
+            raise OutputError(
+                f"{path}: is a symbolic link or not a folder; files of a room must stay inside "
+                "the room folder (make it a plain folder)"
+            )
+
+    check()
+    if create and not path.exists():
+        path.mkdir(exist_ok=True)
+        check()  # created (or replaced by a link) by someone else in between: check again
+    return path
 
 
 def find_room(path: str | os.PathLike[str] | None = None) -> Room | None:

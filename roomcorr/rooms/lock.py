@@ -1,7 +1,8 @@
 """The room lock: one command writes a room folder at a time.
 
 The lock is an advisory ``flock`` on ``.roomcorr-lock``; the operating system
-releases it when the process ends in any way. The lock file is the one file not
+releases it when the process ends in any way. A thread lock beside it keeps the
+app's request threads apart as well. The lock file is the one file not
 written through :mod:`roomcorr.deliver.atomic`: it must keep its identity for
 ``flock`` and holds only a note of who holds it.
 """
@@ -9,10 +10,13 @@ written through :mod:`roomcorr.deliver.atomic`: it must keep its identity for
 from __future__ import annotations
 
 import contextlib
+import errno
 import json
 import os
 import socket
+import stat
 import sys
+import threading
 from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
@@ -20,15 +24,51 @@ from typing import Any
 from roomcorr.errors import OutputError, RoomBusyError
 from roomcorr.rooms.folder import LOCK_FILE, Room, iso_utc, utc_now
 
+#: Locks this process holds: room folder -> [lock file descriptor, depth, owning thread id].
 _HELD: dict[Path, list[Any]] = {}
+#: Guards ``_HELD``: the app's request threads take and release room locks concurrently.
+_HELD_GUARD = threading.Lock()
+
+#: ``open`` flags of the lock file: never follow a symbolic link (a link named
+#: ``.roomcorr-lock`` would make the note land in a file outside the room), never block.
+_NOFOLLOW = getattr(os, "O_NOFOLLOW", 0) | getattr(os, "O_NONBLOCK", 0)
+_OPEN_FLAGS = os.O_RDWR | os.O_CREAT | _NOFOLLOW
+
+
+def _open_lock_file(path: Path) -> int:
+    """Open (or create) the lock file without following links; refuse anything but a plain
+    file of its own (a link, a hard link to another file, a pipe)."""
+    if path.is_symlink():  # O_NOFOLLOW refuses it too (ELOOP); this names the cause
+        raise OutputError(
+            f"{path}: is a symbolic link; the lock file must be a plain file inside the room "
+            "folder (remove the link)"
+        )
+    try:
+        fd = os.open(path, _OPEN_FLAGS, 0o644)
+    except OSError as exc:
+        if exc.errno == errno.ELOOP:
+            raise OutputError(
+                f"{path}: is a symbolic link; the lock file must be a plain file inside the "
+                "room folder (remove the link)"
+            ) from None
+        raise OutputError(f"{path}: cannot create the lock file ({exc.strerror})") from None
+    st = os.fstat(fd)
+    if not stat.S_ISREG(st.st_mode) or st.st_nlink != 1:
+        os.close(fd)
+        raise OutputError(
+            f"{path}: not a plain file of its own (a pipe, a folder or a hard link to another "
+            "file); remove it and try again"
+        )
+    return fd
 
 
 def _holder_note(path: Path) -> str:
-    try:
-        info = json.loads(path.read_text(encoding="utf-8") or "{}")
-    except (OSError, json.JSONDecodeError):
-        info = {}
-    if not info:
+    info: Any = {}
+    with contextlib.suppress(OSError, ValueError, RecursionError):
+        fd = os.open(path, os.O_RDONLY | _NOFOLLOW)
+        with os.fdopen(fd, "rb") as fh:
+            info = json.loads(fh.read(4096).decode("utf-8") or "{}")
+    if not isinstance(info, dict) or not info:
         return "another roomcorr command"
     what = f", {info['purpose']}" if info.get("purpose") else ""
     return (
@@ -51,28 +91,65 @@ def room_lock(room: Room, purpose: str = "") -> Iterator[None]:
 
     The lock is an advisory ``flock`` on ``.roomcorr-lock``; the operating
     system releases it when the process ends in any way (even killed), so a
-    crash never leaves a stale lock. Re-entrant within one process.
+    crash never leaves a stale lock. It excludes other processes and other
+    threads of this process alike (the app's request threads); only the thread
+    holding it may take it again inside the block (a report written under the
+    lock that starts a run). The lock file is opened without following links.
     ``purpose`` (e.g. "writing a measurement") appears in the message another
     command gets while the lock is held.
 
     Raises
     ------
+    RoomBusyError
+        If another process, or another thread of this one, holds the lock.
     OutputError
-        If another process holds the lock (the message says which).
+        If the lock file is a link or cannot be created.
     """
     key = room.root.resolve()
-    if key in _HELD:
-        _HELD[key][1] += 1
+    me = threading.get_ident()
+    with _HELD_GUARD:
+        held = _HELD.get(key)
+        if held is not None and held[2] == me:
+            held[1] += 1
+            nested = True
+        elif held is not None:
+            raise RoomBusyError(
+                f"{room.root}: in use by this program ({_holder_note(key / LOCK_FILE)}); wait "
+                "for it to finish and try again (one write to a room folder at a time)"
+            )
+        else:
+            nested = False
+            _HELD[key] = [None, 1, me]  # reserved while the file lock is taken
+    if nested:
         try:
             yield
         finally:
-            _HELD[key][1] -= 1
+            with _HELD_GUARD:
+                _HELD[key][1] -= 1
         return
-    path = key / LOCK_FILE
     try:
-        fd = os.open(path, os.O_RDWR | os.O_CREAT, 0o644)
-    except OSError as exc:
-        raise OutputError(f"{path}: cannot create the lock file ({exc.strerror})") from None
+        fd = _take(room, key, purpose)
+    except BaseException:
+        with _HELD_GUARD:
+            del _HELD[key]
+        raise
+    with _HELD_GUARD:
+        _HELD[key][0] = fd
+    try:
+        yield
+    finally:
+        with contextlib.suppress(OSError):
+            os.ftruncate(fd, 0)
+        _unlock(fd)
+        os.close(fd)
+        with _HELD_GUARD:
+            del _HELD[key]
+
+
+def _take(room: Room, key: Path, purpose: str) -> int:
+    """Open the lock file, take the ``flock`` and write the note; return the descriptor."""
+    path = key / LOCK_FILE
+    fd = _open_lock_file(path)
     try:
         _try_lock(fd)
     except BlockingIOError:
@@ -88,18 +165,15 @@ def room_lock(room: Room, purpose: str = "") -> Iterator[None]:
         "purpose": purpose,
         "since": iso_utc(utc_now()),
     }
-    os.ftruncate(fd, 0)
-    os.lseek(fd, 0, os.SEEK_SET)
-    os.write(fd, json.dumps(note).encode())
-    _HELD[key] = [fd, 1]
     try:
-        yield
-    finally:
-        del _HELD[key]
-        with contextlib.suppress(OSError):
-            os.ftruncate(fd, 0)
+        os.ftruncate(fd, 0)
+        os.lseek(fd, 0, os.SEEK_SET)
+        os.write(fd, json.dumps(note).encode())
+    except BaseException:
         _unlock(fd)
         os.close(fd)
+        raise
+    return fd
 
 
 def _try_lock(fd: int) -> None:
@@ -134,9 +208,12 @@ def is_locked(room: Room) -> bool:
     if room.root.resolve() in _HELD:
         return True
     path = room.root / LOCK_FILE
-    if not path.exists():
+    if not path.exists() or path.is_symlink():
         return False
-    fd = os.open(path, os.O_RDONLY)
+    try:
+        fd = os.open(path, os.O_RDONLY | _NOFOLLOW)
+    except OSError:
+        return False
     try:
         try:
             import fcntl

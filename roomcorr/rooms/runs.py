@@ -4,8 +4,10 @@ verifying on read, and finding the files of a measurement.
 Runs are never overwritten or deleted, and finished runs are read-only to
 roomcorr. A run folder without ``complete.json`` was interrupted (or is still
 being written) and is never taken as a measurement or design by later
-commands. A finished run is verified on read against its ``complete.json``
-(sizes of every file always, SHA-256 of the files a command uses); a damaged
+commands. A finished run's ``complete.json`` lists every file with its size and
+SHA-256; on read, a file missing, changed or not listed (a report's files
+excepted), or a record without those lists, makes the run damaged (sizes of
+every file always, SHA-256 of the files a command uses); a damaged
 run is shown as damaged by ``history`` and refused with one line elsewhere.
 ``measurements/`` and ``designs/`` must be plain folders inside the room. Every
 file goes through :mod:`roomcorr.deliver.atomic`.
@@ -23,7 +25,9 @@ from pathlib import Path
 from typing import Any
 
 from roomcorr.audio_io import natural_key, read_ir_set
+from roomcorr.checked import read_json
 from roomcorr.deliver.atomic import (
+    OLD_PREFIX,
     TMP_PREFIX,
     PathEscapeError,
     atomic_write_bytes,
@@ -34,12 +38,23 @@ from roomcorr.deliver.atomic import (
     is_link_or_outside,
     sha256_of,
 )
-from roomcorr.errors import InputFileError, OutputError
-from roomcorr.rooms.folder import COMPLETE_MARKER, KINDS, SETTINGS_SNAPSHOT, Room, iso_utc, utc_now
+from roomcorr.errors import InputFileError, OutputError, RoomcorrError
+from roomcorr.rooms.folder import (
+    COMPLETE_MARKER,
+    KINDS,
+    SETTINGS_SNAPSHOT,
+    Room,
+    iso_utc,
+    room_folder,
+    utc_now,
+)
 from roomcorr.rooms.lock import command_line, room_lock
 
 #: A run folder's name: its UTC time stamp, then ``_2``, ``_3``... for runs of the same second.
 RUN_ID = re.compile(r"^(\d{4}-\d{2}-\d{2}_\d{6}Z)(?:_(\d+))?$")
+#: What a run folder's name may be when it is named from outside (a request, a
+#: command line): a plain folder name, short, without NUL, separators or a leading dot.
+RUN_NAME = re.compile(r"^[A-Za-z0-9_][A-Za-z0-9_.-]{0,99}$")
 
 
 def _version() -> str:
@@ -63,22 +78,41 @@ class RunInfo:
     problem: str | None = None  # why the run is damaged (then ``complete`` is False)
 
 
+#: Files a report adds beside a finished run (``roomcorr report RUN``): the run's record
+#: does not list them (the run is sealed), and no command reads them as an input.
+REPORT_FILES = re.compile(r"^(report\.html|report/[^/]+\.png)$")
+
+
+def _staging(rel: Path) -> bool:
+    return any(part.startswith((TMP_PREFIX, OLD_PREFIX)) for part in rel.parts)
+
+
 def _run_files(run_dir: Path) -> list[Path]:
+    """Every file and link of a run folder but its marker and staging leftovers."""
     return sorted(
         p
         for p in run_dir.rglob("*")
-        if p.is_file() and p.name != COMPLETE_MARKER and not p.name.startswith(TMP_PREFIX)
+        if (p.is_file() or p.is_symlink())
+        and p.name != COMPLETE_MARKER
+        and not _staging(p.relative_to(run_dir))
     )
+
+
+def _unlisted_files(run_dir: Path, marker: dict[str, Any]) -> list[str]:
+    """Files in a finished run that its record does not list (a report's files excepted)."""
+    listed = marker.get("files", {})
+    return [
+        rel
+        for rel in (p.relative_to(run_dir).as_posix() for p in _run_files(run_dir))
+        if rel not in listed and not REPORT_FILES.match(rel)
+    ]
 
 
 def _make_run_dir(room: Room, kind: str) -> Path:
     """A new run folder; the name is unique across both kinds so that runs started in the
     same second keep their order (``..._2``, ``..._3``)."""
     stamp = utc_now().strftime("%Y-%m-%d_%H%M%SZ")
-    parent = room.root / KINDS[kind]
-    check_kind_folder(room, kind)
-    parent.mkdir(parents=True, exist_ok=True)
-    check_kind_folder(room, kind)  # created by someone else in between: check again
+    parent = room_folder(room, KINDS[kind], create=True)
     clean_stale(parent)
     for n in range(1, 1000):
         name = stamp if n == 1 else f"{stamp}_{n}"
@@ -106,15 +140,9 @@ def refuse_finished_run(path: str | os.PathLike[str], label: str = "--out") -> N
 
 
 def check_kind_folder(room: Room, kind: str) -> None:
-    """Refuse a ``measurements/`` or ``designs/`` folder that is a link or leads outside."""
-    parent = room.root / KINDS[kind]
-    if (parent.exists() or parent.is_symlink()) and (
-        is_link_or_outside(parent, room.root) or not parent.is_dir()
-    ):
-        raise OutputError(
-            f"{parent}: is a symbolic link or not a folder; runs must stay inside the room "
-            "folder (make it a plain folder)"
-        )
+    """Refuse a ``measurements/`` or ``designs/`` folder that is a link or leads outside
+    (:func:`roomcorr.rooms.folder.room_folder`)."""
+    room_folder(room, KINDS[kind])
 
 
 @contextlib.contextmanager
@@ -193,6 +221,13 @@ def _marker_problem(data: Any, run_dir: Path) -> str | None:
     """Why a parsed ``complete.json`` is unusable (None when it is fine)."""
     if not isinstance(data, dict):
         return f"{COMPLETE_MARKER}: expected a JSON object"
+    if data.get("complete") is not True:
+        return None  # not a finished run (yet): nothing is promised about it
+    # A finished run's record lists every file with its size and SHA-256; a record
+    # missing either table (``{"complete": true}``) would switch every check off.
+    for key in ("files", "sizes"):
+        if key not in data:
+            return f"{COMPLETE_MARKER}: '{key}' is missing (every file must be listed)"
     files = data.get("files", {})
     sizes = data.get("sizes", {})
     if not isinstance(files, dict) or not all(
@@ -203,8 +238,15 @@ def _marker_problem(data: Any, run_dir: Path) -> str | None:
         isinstance(v, int) and not isinstance(v, bool) and v >= 0 for v in sizes.values()
     ):
         return f"{COMPLETE_MARKER}: 'sizes' is not a table of file sizes"
+    if set(files) != set(sizes):
+        return f"{COMPLETE_MARKER}: 'files' and 'sizes' list different files"
     if not isinstance(data.get("info", {}), dict):
         return f"{COMPLETE_MARKER}: 'info' is not a table"
+    kind = {v: k for k, v in KINDS.items()}.get(run_dir.parent.name)
+    if kind is not None and data.get("kind") != kind:
+        return f"{COMPLETE_MARKER}: 'kind' is not {kind!r}"
+    if data.get("run_id") != run_dir.name:
+        return f"{COMPLETE_MARKER}: 'run_id' is not the folder's name {run_dir.name!r}"
     for rel in [*files, *sizes]:
         try:
             contained(run_dir, rel)
@@ -222,9 +264,9 @@ def _load_marker(run_dir: Path) -> tuple[dict[str, Any] | None, str | None]:
     if p.is_symlink() or not p.is_file():
         return None, f"{COMPLETE_MARKER}: not a plain file"
     try:
-        data = json.loads(p.read_text(encoding="utf-8"))
-    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
-        return None, f"{COMPLETE_MARKER}: unreadable ({exc})"
+        data = read_json(p, COMPLETE_MARKER)  # size, depth and number limits
+    except RoomcorrError as exc:
+        return None, f"{COMPLETE_MARKER}: unreadable ({' '.join(str(exc).split())})"
     problem = _marker_problem(data, run_dir)
     if problem:
         return None, problem
@@ -291,7 +333,7 @@ def _changed_files(
     """(relative path, what changed) for the recorded files of a run: sizes always,
     SHA-256 for ``hash_files`` (all files when None)."""
     sizes = marker.get("sizes", {})
-    out = []
+    out = [(rel, "not listed in the run's record") for rel in _unlisted_files(d, marker)]
     for rel, digest in marker.get("files", {}).items():
         p = d / rel
         if p.is_symlink() or not p.is_file():
@@ -362,6 +404,7 @@ def latest_measurement(room: Room) -> Path:
     InputFileError
         If the room has no complete measurement yet.
     """
+    check_kind_folder(room, "measurement")  # a link leading out is refused, not skipped
     runs = list_runs(room, "measurement", include_incomplete=False)
     if not runs:
         raise InputFileError(
@@ -458,12 +501,69 @@ def design_source(run: RunInfo) -> str | None:
     if ref:
         return Path(str(ref)).name
     try:
-        man = json.loads((run.path / "manifest.json").read_text(encoding="utf-8"))
-    except (OSError, json.JSONDecodeError):
+        man = read_json(run.path / "manifest.json", "manifest")
+    except RoomcorrError:
         return None
     files = man.get("measurements") if isinstance(man, dict) else None
     if isinstance(files, list) and files:
         parents = {Path(str(f)).parent.name for f in files}
         if len(parents) == 1:
             return parents.pop()
+    return None
+
+
+#: The record ``roomcorr measure`` writes beside the impulse responses.
+RECORD_NAME = "measurement.json"
+
+
+def measurement_record(folder: str | os.PathLike[str]) -> dict[str, Any] | None:
+    """The ``measurement.json`` record of a measurement folder, checked, or None if absent.
+
+    Every reader of the record (design: channel names; report and history: quality
+    figures; app) goes through here, so a damaged record is one line everywhere.
+    Only the shapes readers rely on are checked (a table; ``positions`` a list of
+    tables, each with ``channels`` a list of tables; ``settings``, ``through``,
+    ``sweep_settings`` and ``devices`` tables; ``channel_names`` a list of text);
+    other keys (a timing basis, an import's source...) pass as they are.
+
+    Raises
+    ------
+    InputFileError
+        For a record that is not valid JSON (or too deep, too large) or wrongly shaped.
+    """
+    p = Path(folder) / RECORD_NAME
+    if not p.exists() and not p.is_symlink():
+        return None
+    data = read_json(p, RECORD_NAME)
+    problem = _record_problem(data)
+    if problem:
+        raise InputFileError(f"{p}: damaged record: {problem}; measure again")
+    return data
+
+
+def _record_problem(data: Any) -> str | None:
+    if not isinstance(data, dict):
+        return "expected a JSON object"
+    for key in ("settings", "through", "sweep_settings", "devices"):
+        if data.get(key) is not None and not isinstance(data[key], dict):
+            return f"'{key}' is not a table"
+    names = data.get("channel_names")
+    if names is not None and not (
+        isinstance(names, list) and all(isinstance(n, str) for n in names)
+    ):
+        return "'channel_names' is not a list of names"
+    positions = data.get("positions", [])
+    if not isinstance(positions, list) or not all(isinstance(p, dict) for p in positions):
+        return "'positions' is not a list of tables"
+    for pos in positions:
+        chans = pos.get("channels", [])
+        if not isinstance(chans, list) or not all(isinstance(c, dict) for c in chans):
+            return "a position's 'channels' is not a list of tables"
+        for ch in chans:
+            if not isinstance(ch.get("figures", {}) or {}, dict):
+                return "a channel's 'figures' is not a table"
+            if not isinstance(ch.get("gates", []) or [], list):
+                return "a channel's 'gates' is not a list"
+        if pos.get("file") is not None and not isinstance(pos["file"], str):
+            return "a position's 'file' is not a file name"
     return None

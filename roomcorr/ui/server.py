@@ -11,7 +11,12 @@ Security model (every rule has a test in ``tests/test_ui_server.py``):
   and an ``Origin`` header, when present, must be that same origin: a page on
   another site that resolves its name to 127.0.0.1 (DNS rebinding) is refused.
 * Only files inside the room folder can be read, by run id and a path
-  relative to the run (see :mod:`roomcorr.app.explore`).
+  relative to the run (see :mod:`roomcorr.app.explore`); ``measurements/``,
+  ``designs/`` and ``targets/`` must be plain folders inside the room
+  (:func:`roomcorr.rooms.room_folder`, the rule the command line keeps).
+* Request bodies are limited to :data:`MAX_BODY_BYTES` (413 before they are read)
+  and parsed with the depth and number limits of :func:`roomcorr.checked.loads_json`;
+  a malformed name or body is a 400, never a 500.
 """
 
 from __future__ import annotations
@@ -48,7 +53,8 @@ from roomcorr.app.design import DesignPreview
 from roomcorr.app.history import set_run_label
 from roomcorr.app.imports import MAX_IMPORT_BYTES, import_candidates, import_from_app
 from roomcorr.app.report import report_in_room
-from roomcorr.errors import RoomBusyError, RoomcorrError
+from roomcorr.checked import loads_json
+from roomcorr.errors import BadNameError, RoomBusyError, RoomcorrError
 from roomcorr.settings import find_preset, preset_names, read_toml
 
 TOKEN_HEADER = "x-roomcorr-token"
@@ -132,6 +138,84 @@ def _error(exc: Exception, status: int = 400) -> JSONResponse:
     return JSONResponse({"error": " ".join(str(exc).split())}, status_code=status)
 
 
+def _status(exc: RoomcorrError, missing: int = 404) -> int:
+    """The HTTP status of a refusal: 409 for a busy room, 400 for a malformed name or
+    request, ``missing`` (404) for a run or file that is not there, else 400."""
+    if isinstance(exc, RoomBusyError):
+        return 409
+    if isinstance(exc, BadNameError):
+        return 400
+    text = str(exc)
+    return missing if "no such" in text or "not a" in text else 400
+
+
+#: Largest request body the app reads (its requests are small JSON edits, a few kB). A
+#: larger body is answered 413 before it is read: by its Content-Length when it has one,
+#: else as soon as the bytes received pass the limit (RFC 9110, section 15.5.14).
+MAX_BODY_BYTES = 1 << 20
+
+
+class BodyLimit:
+    """ASGI middleware: read a request's body up to :data:`MAX_BODY_BYTES`, answer 413
+    beyond it, and hand the body to the app only when it is complete and small.
+
+    The server's memory then stays bounded whatever a client sends: an oversized body
+    is never collected (uvicorn stops reading the socket while nobody reads the body).
+    """
+
+    def __init__(self, app: ASGIApp, limit: int = MAX_BODY_BYTES) -> None:
+        self.app = app
+        self.limit = limit
+
+    async def _refuse(self, scope: Scope, receive: Any, send: Any, status: int, text: str) -> None:
+        response = JSONResponse(
+            {"error": text}, status_code=status, headers={"connection": "close"}
+        )
+        await response(scope, receive, send)
+
+    async def __call__(self, scope: Scope, receive: Any, send: Any) -> None:
+        if scope["type"] != "http":
+            await self.app(scope, receive, send)
+            return
+        length = dict(scope["headers"]).get(b"content-length")
+        if length is not None:
+            if not length.isdigit() or len(length) > 15:
+                await self._refuse(scope, receive, send, 400, "request: bad Content-Length")
+                return
+            if int(length) > self.limit:
+                await self._refuse(
+                    scope, receive, send, 413, f"request: larger than {self.limit} bytes"
+                )
+                return
+        chunks: list[bytes] = []
+        size = 0
+        while True:
+            message = await receive()
+            if message["type"] == "http.disconnect":
+                return
+            body = message.get("body", b"")
+            size += len(body)
+            if size > self.limit:
+                await self._refuse(
+                    scope, receive, send, 413, f"request: larger than {self.limit} bytes"
+                )
+                return
+            chunks.append(body)
+            if not message.get("more_body", False):
+                break
+        whole = b"".join(chunks)
+        replayed = False
+
+        async def replay() -> Message:
+            nonlocal replayed
+            if not replayed:
+                replayed = True
+                return {"type": "http.request", "body": whole, "more_body": False}
+            return await receive()  # a disconnect, for responses that listen for one
+
+        await self.app(scope, replay, send)
+
+
 class Live:
     """The live channel: every connected page gets each event (design started, done...)."""
 
@@ -210,7 +294,7 @@ def create_app(room: rooms.Room, token: str, port: int) -> ASGIApp:
             try:
                 data = await run_in_threadpool(func, **request.path_params)
             except RoomcorrError as exc:
-                return _error(exc, 404 if "no such" in str(exc) or "not a" in str(exc) else 400)
+                return _error(exc, _status(exc))
             return Response(json.dumps(data, allow_nan=False), media_type="application/json")
 
         return endpoint
@@ -234,7 +318,9 @@ def create_app(room: rooms.Room, token: str, port: int) -> ASGIApp:
     live = Live()
     previews: dict[str, DesignPreview] = {}
 
-    def preview_for(measurement: str | None) -> DesignPreview:
+    def preview_for(measurement: Any) -> DesignPreview:
+        if measurement is not None and not isinstance(measurement, str):
+            raise BadNameError("measurement: expected a run id")
         key = measurement or ""
         if key not in previews:
             previews.clear()  # one measurement at a time: the analysis is large
@@ -242,10 +328,9 @@ def create_app(room: rooms.Room, token: str, port: int) -> ASGIApp:
         return previews[key]
 
     async def body(request: Request) -> dict[str, Any]:
-        try:
-            data = await request.json()
-        except ValueError:
-            raise RoomcorrError("request: expected a JSON object") from None
+        # size-limited by BodyLimit; depth, integer and NaN limits as for files
+        # NaN and Infinity are read, then refused by the check of their key (named)
+        data = loads_json(await request.body(), "request", BadNameError, constants=True)
         if not isinstance(data, dict):
             raise RoomcorrError("request: expected a JSON object")
         return data
@@ -282,7 +367,7 @@ def create_app(room: rooms.Room, token: str, port: int) -> ASGIApp:
                 service.run_file, room, p["kind"], p["run_id"], p["path"]
             )
         except RoomcorrError as exc:
-            return _error(exc, 404)
+            return _error(exc, _status(exc))
         return FileResponse(path, filename=path.name)
 
     async def design_zip(request: Request) -> Response:
@@ -340,8 +425,7 @@ def create_app(room: rooms.Room, token: str, port: int) -> ASGIApp:
         try:
             data = await run_in_threadpool(report_in_room, room, p["kind"], p["run_id"])
         except RoomcorrError as exc:
-            busy, missing = isinstance(exc, RoomBusyError), "not a" in str(exc)
-            return _error(exc, 409 if busy else 404 if missing else 400)
+            return _error(exc, _status(exc))
         return JSONResponse(data)
 
     async def label(request: Request) -> Response:
@@ -377,7 +461,7 @@ def create_app(room: rooms.Room, token: str, port: int) -> ASGIApp:
                 numbers["channel"],
             )
         except RoomcorrError as exc:
-            return _error(exc, 404 if "no such" in str(exc) or "not a" in str(exc) else 400)
+            return _error(exc, _status(exc))
         return Response(json.dumps(data, allow_nan=False), media_type="application/json")
 
     async def bounded_body(request: Request, limit: int) -> dict[str, Any]:
@@ -447,7 +531,7 @@ def create_app(room: rooms.Room, token: str, port: int) -> ASGIApp:
         WebSocketRoute("/api/live", live.endpoint),
         *measurer.routes(),
     ]
-    return Guard(Starlette(routes=routes), token, port)
+    return Guard(BodyLimit(Starlette(routes=routes)), token, port)
 
 
 class MeasureRoutes:
