@@ -72,7 +72,7 @@ def draw_setup(path: Path) -> None:
     ax.annotate("USB microphone on a stand,\nat the seat, ear height", (sx, sy),
                 xytext=(sx + 0.35, sy - 0.9), fontsize=9, color=_MIC_COLOUR,
                 arrowprops={"arrowstyle": "-", "color": _MIC_COLOUR})
-    for name, (x, y) in SPEAKERS_M.items():
+    for x, y in SPEAKERS_M.values():
         ax.plot([x, sx], [y, sy], ls=":", color="0.5", lw=1)
     lx, ly = ROOM_W_M - 0.55, sy + 0.1
     ax.add_patch(Polygon([(lx - 0.22, ly - 0.15), (lx + 0.22, ly - 0.15), (lx + 0.22, ly + 0.15),
