@@ -52,6 +52,7 @@ def test_docs_build_without_warnings(built_site: tuple[Path, str]) -> None:
     # -W already fails the build on a warning; this also catches output that -W lets pass.
     assert not re.search(r"WARNING|ERROR|CRITICAL", log), log
     for page in ("index", "tutorials/measure-your-room", "reference/cli", "reference/api",
+                 "reference/api/roomcorr.design", "reference/api/roomcorr.app",
                  "reference/settings", "explanation/the-report"):
         assert (out / f"{page}.html").is_file(), page
     # The pictures were drawn and copied into the site.

@@ -1,9 +1,9 @@
 """Sphinx extension: the Python API reference, one section per public module.
 
-A Markdown page holding the line ``<!-- roomcorr-api-reference -->`` gets, in its
-place, an ``automodule`` block for every module of the ``roomcorr`` package whose
-name does not start with an underscore, grouped by subpackage. New modules join
-the reference without an edit here.
+At build time one page per subpackage is written into ``reference/api/`` (not in
+git), with an ``automodule`` block for every module whose name does not start with an
+underscore; the page holding ``<!-- roomcorr-api-reference -->`` gets a toctree of
+them. New modules and subpackages join the reference without an edit here.
 """
 
 from __future__ import annotations
@@ -12,6 +12,7 @@ import hashlib
 import importlib
 import pkgutil
 import re
+from pathlib import Path
 from typing import Any
 
 from numpydoc.numpydoc import HASH_LEN
@@ -35,22 +36,60 @@ def public_modules() -> list[str]:
     return sorted(names)
 
 
-def api_markdown() -> str:
-    """MyST Markdown with one ``automodule`` directive per public module."""
-    lines: list[str] = []
-    current = None
+def _groups() -> dict[str, list[str]]:
+    """Public modules by page: one page per subpackage, one for the top-level modules."""
+    groups: dict[str, list[str]] = {}
     for name in public_modules():
         parts = name.split(".")
-        group = ".".join(parts[:2])
         module = importlib.import_module(name)
-        is_package = hasattr(module, "__path__")
-        if group != current and (is_package or len(parts) == 2):
-            current = group
-            lines += ["", f"## `{group}`", ""]
-        if name != group:
-            lines += ["", f"### `{name}`", ""]
-        lines += ["```{eval-rst}", f".. automodule:: {name}", "```", ""]
-    return "\n".join(lines) + "\n"
+        if len(parts) == 1 or (len(parts) == 2 and not hasattr(module, "__path__")):
+            groups.setdefault("roomcorr", []).append(name)
+        else:
+            groups.setdefault(".".join(parts[:2]), []).append(name)
+    return groups
+
+
+def _first_line(name: str) -> str:
+    doc = (importlib.import_module(name).__doc__ or "").strip()
+    return doc.splitlines()[0].strip() if doc else ""
+
+
+def api_pages() -> dict[str, str]:
+    """MyST Markdown of every API page, by file name (``roomcorr.design.md``, ...)."""
+    pages = {}
+    for group, names in _groups().items():
+        title = "Top-level modules" if group == "roomcorr" else f"`{group}`"
+        lines = [f"# {title}", ""]
+        if group != "roomcorr":
+            lines += [_first_line(group), ""]
+        for name in names:
+            if name != group:
+                lines += [f"## `{name}`", ""]
+            lines += ["```{eval-rst}", f".. automodule:: {name}", "```", ""]
+        pages[f"{group}.md"] = "\n".join(lines)
+    return pages
+
+
+def api_markdown() -> str:
+    """The API index: one line per page, in a toctree."""
+    lines = ["", "```{toctree}", ":maxdepth: 1", ""]
+    lines += [f"api/{name[:-3]}" for name in sorted(api_pages())]
+    lines += ["```", ""]
+    return "\n".join(lines)
+
+
+def _write_pages(app: Any) -> None:
+    """Write the API pages into ``reference/api/`` (not in git) before the sources are read."""
+    folder = Path(app.srcdir) / "reference" / "api"
+    folder.mkdir(parents=True, exist_ok=True)
+    pages = api_pages()
+    for old in folder.glob("*.md"):
+        if old.name not in pages:
+            old.unlink()
+    for name, text in pages.items():
+        path = folder / name
+        if not path.is_file() or path.read_text(encoding="utf-8") != text:
+            path.write_text(text, encoding="utf-8")
 
 
 _UNDERLINE = re.compile(r"^\s*([-=~^])\1{2,}\s*$")
@@ -121,6 +160,7 @@ def _source_read(app: Any, docname: str, source: list[str]) -> None:
 
 
 def setup(app: Any) -> dict[str, Any]:
+    app.connect("builder-inited", _write_pages)
     app.connect("source-read", _source_read)
     # before numpydoc (priority 500), which renames the citations it finds
     app.connect("autodoc-process-docstring", _process_docstring, priority=400)

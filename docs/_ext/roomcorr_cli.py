@@ -10,7 +10,9 @@ built page against the parser.
 from __future__ import annotations
 
 import argparse
+import os
 import re
+import textwrap
 from typing import Any
 
 MARKER = "<!-- roomcorr-cli-reference -->"
@@ -76,7 +78,8 @@ def _actions_markdown(parser: argparse.ArgumentParser) -> list[str]:
         ]
         if not actions:
             continue
-        lines += ["", f"**{_text(group.title or 'options')}**", ""]
+        title = group.title or 'options'
+        lines += ["", f"**{_text(title[:1].upper() + title[1:])}**", ""]
         if group.description:
             lines += [_text(group.description), ""]
         for action in actions:
@@ -99,6 +102,18 @@ def cli_markdown(parser: argparse.ArgumentParser) -> str:
     str
         One ``##`` section per subcommand (usage, description, options).
     """
+    saved = os.environ.get("COLUMNS")
+    os.environ["COLUMNS"] = "88"  # argparse wraps usage lines to this width
+    try:
+        return _cli_markdown(parser)
+    finally:
+        if saved is None:
+            del os.environ["COLUMNS"]
+        else:
+            os.environ["COLUMNS"] = saved
+
+
+def _cli_markdown(parser: argparse.ArgumentParser) -> str:
     prog = parser.prog
     lines = ["", "## Commands at a glance", ""]
     subs = _subcommands(parser)
@@ -107,9 +122,10 @@ def cli_markdown(parser: argparse.ArgumentParser) -> str:
     lines += ["", "Options for every command:", ""]
     lines += _actions_markdown(parser)
     for name, short, sub in subs:
-        usage = " ".join(sub.format_usage().split())
+        usage = sub.format_usage().strip()
         if usage.lower().startswith("usage:"):
-            usage = usage[len("usage:") :].strip()
+            usage = usage[len("usage:") :].lstrip(" ")
+            usage = textwrap.dedent("       " + usage)
         lines += ["", f"({'cmd-' + name})=", f"## `{prog} {name}`", ""]
         lines += ["```text", usage, "```", ""]
         lines.append(_text(sub.description or short))
