@@ -49,19 +49,12 @@ def _groups() -> dict[str, list[str]]:
     return groups
 
 
-def _first_line(name: str) -> str:
-    doc = (importlib.import_module(name).__doc__ or "").strip()
-    return doc.splitlines()[0].strip() if doc else ""
-
-
 def api_pages() -> dict[str, str]:
     """MyST Markdown of every API page, by file name (``roomcorr.design.md``, ...)."""
     pages = {}
     for group, names in _groups().items():
         title = "Top-level modules" if group == "roomcorr" else f"`{group}`"
         lines = [f"# {title}", ""]
-        if group != "roomcorr":
-            lines += [_first_line(group), ""]
         for name in names:
             if name != group:
                 lines += [f"## `{name}`", ""]
@@ -73,7 +66,13 @@ def api_pages() -> dict[str, str]:
 def api_markdown() -> str:
     """The API index: one line per page, in a toctree."""
     lines = ["", "```{toctree}", ":maxdepth: 1", ""]
-    lines += [f"api/{name[:-3]}" for name in sorted(api_pages())]
+    # the top-level modules first, then the subpackages in the order data flows through them
+    order = ["roomcorr", "roomcorr.measure", "roomcorr.analysis", "roomcorr.design",
+             "roomcorr.deliver", "roomcorr.report", "roomcorr.rooms", "roomcorr.app",
+             "roomcorr.ui", "roomcorr.evaluation"]
+    names = sorted((name[:-3] for name in api_pages()),
+                   key=lambda n: (order.index(n) if n in order else len(order), n))
+    lines += [f"api/{name}" for name in names]
     lines += ["```", ""]
     return "\n".join(lines)
 
