@@ -237,7 +237,15 @@ def _setup_settings(app: Any) -> None:
     app.connect("source-read", _settings_source_read)
 
 
+def _always_outdated(app: Any, env: Any, added: set, changed: set, removed: set) -> list[str]:
+    """Pages with a generated part are read again on every build, also incremental ones:
+    their Markdown does not change when the parser or the settings do."""
+    return [name for name in ("reference/cli", "reference/settings", "reference/api")
+            if name in env.found_docs]
+
+
 def setup(app: Any) -> dict[str, Any]:
     app.connect("source-read", _source_read)
+    app.connect("env-get-outdated", _always_outdated)
     _setup_settings(app)
     return {"version": "1", "parallel_read_safe": True, "parallel_write_safe": True}
