@@ -159,6 +159,23 @@ def test_reference_lists_options_of_a_parser_it_has_never_seen() -> None:
     assert "`--mode {a,b}`" in text
 
 
+def test_every_page_has_one_title() -> None:
+    """One ``# Title`` per page, first: the glob toctrees list pages by it."""
+    pages = [p for p in DOCS.rglob("*.md")
+             if not {"_build", "_generated", "api"} & set(p.relative_to(DOCS).parts[:-1])]
+    assert len(pages) >= 20
+    for page in pages:
+        lines = page.read_text(encoding="utf-8").splitlines()
+        fence = False
+        titles = []
+        for line in lines:
+            if line.startswith(("```", "~~~")):
+                fence = not fence
+            elif not fence and line.startswith("# "):
+                titles.append(line)
+        assert lines[0].startswith("# ") and len(titles) == 1, page.relative_to(ROOT)
+
+
 def _words_before(text: str, marker: str) -> int:
     head = text[: text.index(marker)]
     head = re.sub(r"\]\([^)]*\)", "]", head)  # a link's address is not read
