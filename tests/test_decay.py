@@ -88,20 +88,22 @@ def _piecewise_edc(breaks_db, t60s):
 def test_iso_3382_evaluation_ranges():
     # ISO 3382-1: T20 uses -5..-25 dB and T30 -5..-35 dB. The curve below falls fast
     # (T = 0.15 s) to -5 dB, steadily (T = 0.6 s) to -35 dB,
-    # then slowly (T = 3 s). Only the stated ranges give 0.6 s.
+    # then slowly (T = 3 s). Only the stated ranges give 0.6 s. (decay_time now takes the
+    # range by name, as pyrato's regression does; -5..-45 dB is pyrato's T40.)
     t, edc = _piecewise_edc([-5.0, -35.0], [0.15, 0.6, 3.0])
-    assert decay.decay_time(t, edc, -5.0, -25.0) == pytest.approx(0.6, rel=0.01)
-    assert decay.decay_time(t, edc, -5.0, -35.0) == pytest.approx(0.6, rel=0.01)
-    # a range reaching into the slow tail (-5..-45) or the fast start (0..-20) would not
-    assert decay.decay_time(t, edc, -5.0, -45.0) > 0.7
-    assert decay.decay_time(t, edc, 0.0, -20.0) < 0.585  # about 0.571 s
-    # EDT: 0..-10 dB. Fast first 10 dB (T = 0.3 s), then T = 0.9 s
+    assert decay.decay_time(t, edc, "t20") == pytest.approx(0.6, rel=0.01)
+    assert decay.decay_time(t, edc, "t30") == pytest.approx(0.6, rel=0.01)
+    # a range reaching into the slow tail (-5..-45) or starting in the fast part (EDT) would not
+    assert decay.decay_time(t, edc, "t40") > 0.7
+    assert decay.decay_time(t, edc, "edt") < 0.5
+    # EDT: 0..-10 dB. Fast first 10 dB (T = 0.3 s), then T = 0.9 s; pyrato's -0.1..-10.1 dB
+    # range takes 0.1 dB of the slow part, about 0.3 % longer here
     t, edc = _piecewise_edc([-10.0], [0.3, 0.9])
-    assert decay.decay_time(t, edc, 0.0, -10.0) == pytest.approx(0.3, rel=0.01)
-    assert decay.decay_time(t, edc, -5.0, -25.0) > 0.5
-    # the range must be reached, otherwise NaN
+    assert decay.decay_time(t, edc, "edt") == pytest.approx(0.3, rel=0.01)
+    assert decay.decay_time(t, edc, "t20") > 0.5
+    # the range must be reached, otherwise NaN (pyrato alone would fit to the nearest point)
     t, edc = _piecewise_edc([], [0.6])
-    assert np.isnan(decay.decay_time(t[: FS // 4], edc[: FS // 4], -5.0, -35.0))
+    assert np.isnan(decay.decay_time(t[: FS // 4], edc[: FS // 4], "t30"))
 
 
 def test_octave_band_centres_follow_iec_61260():
@@ -209,3 +211,117 @@ def test_band_width_and_filter_limit():
     assert decay.filter_limited(63.0, 3, 0.3)  # B T = 4.4
     assert not decay.filter_limited(1000.0, 1, 0.3)  # B T = 211
     assert not decay.filter_limited(63.0, 3, float("nan"))
+
+
+# --- ISO 3382-1 analytic cases -------------------------------------------------------------
+# An energy impulse response e(t) = sum_i A_i exp(-t / tau_i) has the Schroeder curve
+# S(t) = sum_i A_i tau_i exp(-t / tau_i) (Schroeder 1965: backward integral of e), so the
+# ISO 3382-1 regressions (EDT 0..-10 dB, T20 -5..-25 dB, T30 -5..-35 dB, extrapolated to
+# -60 dB) have an exact answer: the least-squares line through S in dB over the range.
+# The response is sqrt(e) with random signs (its square is e exactly) plus white noise.
+
+
+def _analytic_decay(t60s, levels_db, noise_db, seed=1, dur_s=2.5):
+    t = np.arange(int(dur_s * FS)) / FS
+    taus = [t60 / (6.0 * np.log(10.0)) for t60 in t60s]  # 60 dB of energy per T60
+    amps = [10.0 ** (lv / 10.0) for lv in levels_db]
+    e = sum(a * np.exp(-t / tau) for a, tau in zip(amps, taus, strict=True))
+    s = sum(a * tau * np.exp(-t / tau) for a, tau in zip(amps, taus, strict=True))
+    s_db = 10.0 * np.log10(s / s[0])
+    exact = {}
+    for name, (hi, lo) in decay.RANGES_DB.items():
+        sel = (s_db <= hi) & (s_db >= lo)
+        exact[name] = -60.0 / np.polyfit(t[sel], s_db[sel], 1)[0]
+    rng = np.random.default_rng(seed)
+    h = np.sqrt(e) * np.where(rng.random(t.size) < 0.5, -1.0, 1.0)
+    h = h + rng.standard_normal(t.size) * 10.0 ** (noise_db / 20.0)
+    return h, exact
+
+
+@pytest.mark.parametrize("t60", [0.3, 0.6, 1.2])
+def test_single_slope_analytic_case(t60):
+    # single slope: every range gives T60 itself (ISO 3382-1 definitions)
+    h, exact = _analytic_decay([t60], [0.0], noise_db=-80.0)
+    values, valid = decay.decay_parameters(decay.schroeder_decay(h, FS))
+    for name in ("edt", "t20", "t30"):
+        assert exact[name] == pytest.approx(t60, rel=1e-3)
+        assert values[name] == pytest.approx(exact[name], rel=0.01 if name != "edt" else 0.05)
+        assert valid[name]
+
+
+# (T60 early, T60 late, late level dB, noise dB): knees at different depths; the noise
+# floor 50 to 80 dB down, always at least 10 dB below the end of the T30 range
+DOUBLE_SLOPES = [
+    (0.3, 1.0, -15.0, -80.0),
+    (0.2, 0.8, -10.0, -70.0),
+    (0.2, 1.0, -20.0, -50.0),
+    (0.3, 1.5, -25.0, -55.0),
+    (0.2, 1.0, -15.0, -50.0),
+]
+
+
+@pytest.mark.parametrize(("t_early", "t_late", "late_db", "noise_db"), DOUBLE_SLOPES)
+def test_double_slope_analytic_case(t_early, t_late, late_db, noise_db):
+    # The issue's figure: T20 and T30 within 1 %, EDT within 5 % of the exact regression.
+    # Measured (pyrato Chu-Lundeby curve): T20 within 0.3 %, T30 within 0.8 %, EDT within
+    # 1.1 % (pyrato's EDT range is -0.1..-10.1 dB). roomcorr's earlier own curve read T20
+    # 2.2 % and T30 7.8 % short on the third case (see docs/explanation/decay-times.md).
+    h, exact = _analytic_decay([t_early, t_late], [0.0, late_db], noise_db)
+    values, valid = decay.decay_parameters(decay.schroeder_decay(h, FS))
+    assert values["t20"] == pytest.approx(exact["t20"], rel=0.01)
+    assert values["t30"] == pytest.approx(exact["t30"], rel=0.01)
+    assert values["edt"] == pytest.approx(exact["edt"], rel=0.05)
+    assert all(valid.values())
+    # the double slope really shows: T30 and EDT differ from T20 by more than the tolerance
+    assert abs(exact["t30"] / exact["t20"] - 1) > 0.02 or abs(exact["edt"] / exact["t20"] - 1) > 0.1
+
+
+def test_late_knee_close_to_the_noise_is_the_known_limit():
+    # Late decay starting 25 dB down with the noise 50 dB down (48 dB below the envelope peak):
+    # the late slope is seen over barely 15 dB before the noise. T20 stays within 2.5 %; T30 is
+    # about 7 % short (the late slope is estimated from a short stretch; measured). The old
+    # roomcorr curve read T20 8 % and T30 21 % short on this case.
+    h, exact = _analytic_decay([0.2, 1.2], [0.0, -25.0], -50.0)
+    values, _ = decay.decay_parameters(decay.schroeder_decay(h, FS))
+    assert values["t20"] == pytest.approx(exact["t20"], rel=0.025)
+    assert values["t30"] == pytest.approx(exact["t30"], rel=0.10)
+
+
+def test_pyrato_computes_the_curve():
+    # the compensated curve is pyrato's Chu-Lundeby curve, sample for sample, after our start
+    pf = pytest.importorskip("pyfar")
+    ra = pytest.importorskip("pyrato")
+    h, _ = _analytic_decay([0.3, 1.0], [0.0, -15.0], -60.0)
+    curve = decay.schroeder_decay(h, FS)
+    ref = ra.edc.energy_decay_curve_chu_lundeby(
+        pf.Signal(h[curve.start_index :], FS), time_shift=False
+    ).time[0]
+    finite = np.isfinite(curve.edc_db)
+    np.testing.assert_allclose(curve.edc_db[finite], 10 * np.log10(ref[finite]), atol=1e-9)
+    assert "pyrato" in decay.decay_method()
+
+
+@pytest.mark.parametrize("fc", [250.0, 500.0, 1000.0, 2000.0])
+def test_agrees_with_pyroomacoustics_on_an_image_source_room(fc):
+    # Independent code: pyroomacoustics' image-source room (an invented 6 x 4.5 x 2.8 m room,
+    # absorption 0.25) and its measure_rt60 (Schroeder integral, straight line from -5 dB over
+    # 20 or 30 dB). The noise 70 dB down is far below both ranges, so the two must agree:
+    # measured within 0.5 % (T20) and 2 % (T30) in these octaves.
+    pra = pytest.importorskip("pyroomacoustics")
+    from scipy.signal import sosfilt
+
+    fs = 16000
+    room = pra.ShoeBox([6.0, 4.5, 2.8], fs=fs, materials=pra.Material(0.25), max_order=40,
+                       air_absorption=False)
+    room.add_source([1.5, 1.2, 1.4])
+    room.add_microphone([4.1, 3.0, 1.2])
+    room.compute_rir()
+    h = np.asarray(room.rir[0][0], dtype=float)
+    rng = np.random.default_rng(1)
+    h = h / np.abs(h).max() + 10 ** (-70 / 20) * rng.standard_normal(h.size)
+    centre = decay.octave_band_centres(fc / 1.4, fc * 1.4)[0]
+    band = sosfilt(decay.band_sos(centre, fs), h)
+    values, valid = decay.decay_parameters(decay.schroeder_decay(band, fs, centre_hz=centre))
+    assert values["t20"] == pytest.approx(pra.experimental.measure_rt60(band, fs, 20), rel=0.02)
+    assert values["t30"] == pytest.approx(pra.experimental.measure_rt60(band, fs, 30), rel=0.03)
+    assert valid["t20"] and valid["t30"]

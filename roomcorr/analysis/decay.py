@@ -2,28 +2,30 @@
 
 Everything here is a pure function on numpy arrays. The main entry point is
 :func:`octave_band_decay`, which filters an impulse response into octave bands
-(63 Hz to 8 kHz), integrates each band backwards with a noise-floor
-compensation and evaluates EDT, T20 and T30 by linear regression over the
-ISO 3382-1 ranges. :func:`low_frequency_decay_map` gives a time-frequency view
-of the first few hundred milliseconds below 300 Hz, where room modes ring.
+(63 Hz to 8 kHz), computes each band's noise-compensated energy decay curve and
+evaluates EDT, T20 and T30 by linear regression over the ISO 3382-1 ranges.
+:func:`low_frequency_decay_map` gives a time-frequency view of the first few
+hundred milliseconds below 300 Hz, where room modes ring.
 
-Noise-floor compensation (what :func:`schroeder_decay` does)
--------------------------------------------------------------
-A measured impulse response ends in background noise. Integrating the noise
-along with the decay bends the Schroeder curve up and lengthens T30. We follow
-the iterative idea of Lundeby et al. (1995), simplified:
+Which library computes what
+---------------------------
+The decay curve and the regression come from ``pyrato`` (the room-acoustics
+package of the pyfar family): :func:`pyrato.edc.energy_decay_curve_chu_lundeby`
+subtracts the estimated noise power, truncates the backward integration where
+the late decay meets the noise (Lundeby et al.'s iteration, which fits the
+*late* slope) and adds back the energy the late decay would still have had;
+:func:`pyrato.parameters.reverberation_time_linear_regression` fits the
+ISO 3382-1 ranges. An earlier roomcorr implementation fitted one straight line
+from the peak to the noise to place the truncation point; on a double-slope
+decay that line is steeper than the late decay, so it truncated early, added
+back too little energy and read T20 up to 8 % and T30 up to 21 % short on
+analytic double-slope decays 48 dB above the noise (tests/test_decay.py).
+What stays ours: the decay start (first sample within 20 dB of the maximum),
+the octave-band filters, the noise-margin validity rule and the decay map.
 
-1. Estimate the noise power from the last 10 % of the response.
-2. Average the squared response in 10 ms blocks and fit a straight line (in dB)
-   from the peak down to 10 dB above the noise.
-3. The *truncation point* is where that line meets the noise level. The noise
-   is re-estimated from the part of the response that lies a further 10 dB of
-   decay beyond the truncation point (or the last 10 %, whichever is longer),
-   and steps 2 and 3 are repeated until the truncation point settles.
-4. The decay curve is ``EDC(t) = sum_{t}^{t_c} (h^2 - noise) + C``: the
-   estimated noise power is subtracted, integration stops at the truncation
-   point ``t_c``, and ``C`` adds back the energy the fitted exponential would
-   still have had after ``t_c``. Beyond ``t_c`` the curve is NaN.
+Known difference of the regression: pyrato evaluates EDT over -0.1 to -10.1 dB
+rather than 0 to -10 dB; on the analytic double-slope cases of
+tests/test_decay.py this changes EDT by at most about 1 %.
 
 References
 ----------
@@ -31,19 +33,28 @@ References
    J. Acoust. Soc. Am. 37, 409-412, 1965.
 .. [2] A. Lundeby, T. E. Vigran, H. Bietz, M. Vorlaender, "Uncertainties of
    measurements in room acoustics", Acustica 81, 344-355, 1995.
-.. [3] ISO 3382-1:2009, Acoustics - Measurement of room acoustic parameters -
+.. [3] W. T. Chu, "Comparison of reverberation measurements using Schroeder's
+   impulse method and decay-curve averaging method", J. Acoust. Soc. Am. 63,
+   1444-1450, 1978.
+.. [4] ISO 3382-1:2009, Acoustics - Measurement of room acoustic parameters -
    Part 1: Performance spaces (EDT 0 to -10 dB, T20 -5 to -25 dB,
    T30 -5 to -35 dB, each extrapolated to 60 dB).
-.. [4] IEC 61260-1:2014, Electroacoustics - Octave-band and fractional-octave-band
+.. [5] IEC 61260-1:2014, Electroacoustics - Octave-band and fractional-octave-band
    filters - Part 1: Specifications (base-10 mid-band frequencies).
 """
 
 from __future__ import annotations
 
 import functools
+import warnings
 from dataclasses import dataclass, field
 
 import numpy as np
+import pyfar as pf
+import pyrato as ra
+from scipy.signal import butter, find_peaks, resample_poly, sosfilt
+
+from roomcorr.analysis import bands
 
 #: ISO 3382-1 evaluation ranges in dB below the start of the decay curve.
 RANGES_DB: dict[str, tuple[float, float]] = {
@@ -69,46 +80,15 @@ MIN_BANDWIDTH_TIME = 16.0
 def octave_band_centres(f_lo_hz: float = 63.0, f_hi_hz: float = 8000.0) -> np.ndarray:
     """Exact octave mid-band frequencies between two nominal frequencies.
 
-    Parameters
-    ----------
-    f_lo_hz, f_hi_hz : float
-        Nominal first and last band (e.g. 63 and 8000); bands whose exact
-        mid-band frequency lies within a third of an octave of the span are kept.
-
-    Returns
-    -------
-    centres_hz : ndarray, shape (n_bands,)
-        ``1000 * G ** x`` with ``G = 10 ** (3 / 10)`` (IEC 61260-1, odd bandwidth
-        designator b = 1).
+    :func:`roomcorr.analysis.bands.octave_centres_hz` (IEC 61260-1, base 10,
+    ``1000 * G ** x`` with ``G = 10 ** (3 / 10)``), the project's one band table.
     """
-    try:  # a shared bands module, when the project has one, is the single source
-        from roomcorr.analysis import bands  # type: ignore[attr-defined]
-
-        fn = getattr(bands, "octave_centres_hz", None)
-        if callable(fn):
-            return np.asarray(fn(f_lo_hz, f_hi_hz), dtype=float)
-    except ImportError:
-        pass
-    x = np.arange(-6, 5)
-    fm = 1000.0 * _G**x
-    tol = 2.0 ** (1.0 / 3.0)
-    keep = (fm >= f_lo_hz / tol) & (fm <= f_hi_hz * tol)
-    return fm[keep]
+    return np.asarray(bands.octave_centres_hz(f_lo_hz, f_hi_hz), dtype=float)
 
 
 def nominal_label(centre_hz: float) -> str:
-    """Short nominal label of an octave band, e.g. ``"63"``, ``"1k"``, ``"8k"``."""
-    try:  # the shared bands module, when present, is the single source
-        from roomcorr.analysis import bands  # type: ignore[attr-defined]
-
-        return str(bands.nominal_label(centre_hz))
-    except (ImportError, AttributeError, ValueError):
-        pass
-    nominal = [31.5, 63, 125, 250, 500, 1000, 2000, 4000, 8000, 16000]
-    n = min(nominal, key=lambda v: abs(np.log2(v / centre_hz)))
-    if n >= 1000:
-        return f"{n / 1000:g}k"
-    return f"{n:g}"
+    """Short nominal label of a band, e.g. ``"63"``, ``"1k"``, ``"8k"`` (the bands module's)."""
+    return str(bands.nominal_label(centre_hz))
 
 
 def octave_band_sos(centre_hz: float, fs: float, order: int = 3) -> np.ndarray:
@@ -168,9 +148,13 @@ def _decay_start(e: np.ndarray) -> int:
 
 
 def schroeder_decay(
-    ir: np.ndarray, fs: float, compensate: bool = True, block_s: float = 0.01
+    ir: np.ndarray,
+    fs: float,
+    compensate: bool = True,
+    block_s: float = 0.01,
+    centre_hz: float | None = None,
 ) -> SchroederCurve:
-    """Schroeder backward integration, optionally with noise-floor compensation.
+    """Energy decay curve by backward integration, optionally noise-compensated (pyrato).
 
     Parameters
     ----------
@@ -179,18 +163,26 @@ def schroeder_decay(
     fs : float
         Sample rate in Hz.
     compensate : bool
-        If True, subtract the estimated noise and truncate as described in the
-        module docstring; if False, integrate the whole response as it is.
+        If True, :func:`pyrato.edc.energy_decay_curve_chu_lundeby` (noise
+        subtracted, integration truncated where the late decay meets the noise,
+        the missing late energy added back); if False, the plain Schroeder
+        integral of the whole response (:func:`pyrato.edc.schroeder_integration`).
     block_s : float
-        Block length of the energy envelope used for the noise and slope estimates.
+        Block length of the energy envelope whose peak is the reference of
+        ``noise_db``.
+    centre_hz : float, optional
+        Band centre: pyrato then smooths with ``800 / f + 10`` ms windows (Lundeby's
+        band-dependent window); broadband 30 ms otherwise.
 
     Returns
     -------
     SchroederCurve
+        ``edc_db`` is NaN after the truncation point, or everywhere if pyrato could
+        not find where the decay meets the noise (too little dynamic range).
 
     References
     ----------
-    Schroeder (1965); Lundeby et al. (1995); see the module docstring.
+    Schroeder (1965); Lundeby et al. (1995); Chu (1978); see the module docstring.
     """
     ir = np.asarray(ir, dtype=float)
     e_full = ir**2
@@ -200,45 +192,25 @@ def schroeder_decay(
     e = e_full[start:]
     n = len(e)
     block = max(1, int(round(block_s * fs)))
-    centres, levels = _block_envelope(e, block)
+    _, levels = _block_envelope(e, block)
     peak_power = float(levels.max())
-    tail = max(block, n // 10)
-    noise = float(e[-tail:].mean())
-
-    t_c = n
-    tail_energy = 0.0
-    if compensate:
-        lv_db = 10.0 * np.log10(np.maximum(levels, 1e-300) / peak_power)
-        i_peak = int(np.argmax(levels))
-        t_prev = -1.0
-        for _ in range(8):
-            noise_db = 10.0 * np.log10(max(noise, 1e-300) / peak_power)
-            below = np.nonzero(lv_db[i_peak:] < noise_db + 10.0)[0]
-            i_end = i_peak + (int(below[0]) if below.size else len(lv_db) - i_peak)
-            if i_end - i_peak < 2:
-                i_end = min(len(lv_db), i_peak + 2)
-            slope, icpt = np.polyfit(centres[i_peak:i_end], lv_db[i_peak:i_end], 1)
-            if slope >= 0:  # no decay visible: integrate everything
-                t_c, tail_energy = n, 0.0
-                break
-            t_c = int(np.clip((noise_db - icpt) / slope, block, n))
-            # energy of the fitted exponential after t_c: p(t_c) * 10 / (|slope| ln 10)
-            p_tc = peak_power * 10.0 ** ((icpt + slope * t_c) / 10.0)
-            tail_energy = p_tc * 10.0 / (-slope * np.log(10.0))
-            # re-estimate the noise 10 dB of decay beyond t_c, at least the last 10 %
-            i_noise = min(int(t_c + 10.0 / -slope), n - tail)
-            noise = float(e[i_noise:].mean())
-            if abs(t_c - t_prev) < 1e-3 * fs:
-                break
-            t_prev = t_c
-        seg = e[:t_c] - noise
-        edc = np.cumsum(seg[::-1])[::-1] + tail_energy
-        edc = np.maximum(edc, edc[0] * 1e-30) if edc[0] > 0 else np.abs(edc) + 1e-300
-        edc_full = np.full(n, np.nan)
-        edc_full[:t_c] = edc
-    else:
-        edc_full = np.cumsum(e[::-1])[::-1]
-    edc_db = 10.0 * np.log10(edc_full / edc_full[0])
+    # noise power per sample: mean of the last 10 % (pyrato's estimate, Lundeby's start value)
+    noise = float(ra.dsp.estimate_noise_energy(pf.Signal(e, fs), is_energy=True)[0])
+    sig = pf.Signal(ir[start:], fs)
+    with warnings.catch_warnings():  # a failed intersection gives NaN, judged below
+        warnings.simplefilter("ignore")
+        if compensate:
+            smoothing = "broadband" if centre_hz is None else float(centre_hz)
+            edc = ra.edc.energy_decay_curve_chu_lundeby(
+                sig, smoothing_parameter=smoothing, time_shift=False, normalize=True
+            ).time[0]
+        else:
+            edc = ra.edc.schroeder_integration(sig).time[0]
+            edc = edc / edc[0]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            edc_db = 10.0 * np.log10(np.where(edc > 0, edc, np.nan))
+    finite = np.isfinite(edc_db)
+    t_c = int(np.flatnonzero(finite)[-1]) + 1 if finite.any() else 0
     noise_db = 10.0 * np.log10(max(noise, 1e-300) / peak_power)
     return SchroederCurve(
         time_s=np.arange(n) / fs,
@@ -249,37 +221,49 @@ def schroeder_decay(
     )
 
 
-def decay_time(
-    time_s: np.ndarray, edc_db: np.ndarray, start_db: float, end_db: float
-) -> float:
-    """Decay time from a straight-line fit over one evaluation range, extrapolated to 60 dB.
+def decay_method() -> str:
+    """One line naming the library and method behind EDT, T20 and T30 (shown by report and app)."""
+    return (
+        f"EDT, T20 and T30 computed with pyrato {ra.__version__} (pyfar {pf.__version__}): "
+        "noise-compensated energy decay curve (Chu and Lundeby), linear regression over the "
+        "ISO 3382-1 ranges"
+    )
+
+
+#: The names pyrato's regression knows for each of our parameters.
+_PYRATO_NAMES = {"edt": "EDT", "t20": "T20", "t30": "T30", "t40": "T40"}
+
+
+def decay_time(time_s: np.ndarray, edc_db: np.ndarray, name: str) -> float:
+    """Decay time from a straight-line fit over one ISO 3382-1 range (pyrato), to 60 dB.
 
     Parameters
     ----------
     time_s, edc_db : ndarray, shape (n,)
         A decay curve (0 dB at its start; NaN where undefined).
-    start_db, end_db : float
-        Range, e.g. -5 and -25 for T20 (ISO 3382-1).
+    name : {"edt", "t20", "t30", "t40"}
+        The range: 0 to -10 dB (pyrato: -0.1 to -10.1), -5 to -25, -5 to -35,
+        -5 to -45 dB.
 
     Returns
     -------
     float
-        ``-60 / slope`` in seconds; NaN if the curve never reaches ``end_db``.
+        ``-60 / slope`` in seconds from
+        :func:`pyrato.parameters.reverberation_time_linear_regression`; NaN if the
+        curve never reaches the end of the range (pyrato would fit up to the
+        nearest point instead) or does not fall.
     """
+    end_db = {"edt": -10.0, "t20": -25.0, "t30": -35.0, "t40": -45.0}[name]
+    edc_db = np.asarray(edc_db, dtype=float)
     valid = np.isfinite(edc_db)
-    below_start = np.nonzero(valid & (edc_db <= start_db))[0]
-    below_end = np.nonzero(valid & (edc_db <= end_db))[0]
-    if below_start.size == 0 or below_end.size == 0:
+    if not valid.any() or float(np.min(edc_db[valid])) > end_db:
         return float("nan")
-    i0 = int(below_start[0]) if start_db < 0 else 0
-    i1 = int(below_end[0])
-    if i1 - i0 < 2:
-        return float("nan")
-    sel = slice(i0, i1 + 1)
-    slope = np.polyfit(time_s[sel], edc_db[sel], 1)[0]
-    if slope >= 0:
-        return float("nan")
-    return float(-60.0 / slope)
+    curve = pf.TimeData(10.0 ** (edc_db / 10.0), np.asarray(time_s, dtype=float))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        fitted = ra.parameters.reverberation_time_linear_regression(curve, _PYRATO_NAMES[name])
+    value = float(np.squeeze(fitted))
+    return value if np.isfinite(value) and value > 0 else float("nan")
 
 
 @dataclass
@@ -324,8 +308,8 @@ def decay_parameters(curve: SchroederCurve) -> tuple[dict[str, float], dict[str,
     """
     values = {}
     valid = {}
-    for name, (a, b) in RANGES_DB.items():
-        values[name] = decay_time(curve.time_s, curve.edc_db, a, b)
+    for name, (_, b) in RANGES_DB.items():
+        values[name] = decay_time(curve.time_s, curve.edc_db, name)
         valid[name] = bool(
             np.isfinite(values[name]) and curve.dynamic_range_db >= -b + NOISE_MARGIN_DB
         )
@@ -357,8 +341,6 @@ def band_sos(centre_hz: float, fs: float, fraction: int = 1, order: int = 3) -> 
 @functools.lru_cache(maxsize=256)
 def _band_sos(centre_hz: float, fs: float, fraction: int, order: int) -> np.ndarray:
     """:func:`band_sos`, designed once per band and rate (every position uses the same)."""
-    from scipy.signal import butter
-
     lo = centre_hz * _G ** (-0.5 / fraction)
     hi = centre_hz * _G ** (0.5 / fraction)
     if hi >= 0.49 * fs:
@@ -398,24 +380,20 @@ def band_decay(
     ISO 3382-1 (ranges; octave or one-third-octave bands); IEC 61260-1 (band
     centres and edges); Schroeder (1965); Lundeby et al. (1995).
     """
-    from scipy.signal import sosfilt
-
-    from roomcorr.analysis.bands import band_centres_hz
-
     if fraction not in (1, 3):
         raise ValueError(f"fraction must be 1 (octave) or 3 (third-octave), not {fraction!r}")
     ir = np.asarray(ir, dtype=float)
     centres = (
         octave_band_centres(f_lo_hz, f_hi_hz)
         if fraction == 1
-        else band_centres_hz(3, f_lo_hz, f_hi_hz)
+        else bands.band_centres_hz(3, f_lo_hz, f_hi_hz)
     )
     out = []
     for fc in centres:
         if fc * _G ** (0.5 / fraction) >= 0.49 * fs:
             continue
         band = sosfilt(band_sos(fc, fs, fraction), ir)
-        curve = schroeder_decay(band, fs, compensate=compensate)
+        curve = schroeder_decay(band, fs, compensate=compensate, centre_hz=float(fc))
         values, valid = decay_parameters(curve)
         out.append(
             BandDecay(
@@ -563,8 +541,6 @@ def low_frequency_decay_map(
     -------
     DecayMap
     """
-    from scipy.signal import resample_poly
-
     ir = np.asarray(ir, dtype=float)
     dec = max(1, int(fs // 1000))
     x = resample_poly(ir, 1, dec) if dec > 1 else ir
@@ -609,8 +585,6 @@ def ringing_modes(
         At most ``n_modes``, most audible ringing first. A peak that never falls
         ``drop_db`` is fitted over the whole map.
     """
-    from scipy.signal import find_peaks
-
     lv = decay_map.level_db
     t = decay_map.time_s
     peaks, _ = find_peaks(lv[0], prominence=3.0)

@@ -23,7 +23,9 @@ from roomcorr.app.explore import run_folder
 from roomcorr.audio_io import read_ir_set
 from roomcorr.deliver.atomic import atomic_write_text
 from roomcorr.deliver.export import check_out_dir, input_digests, write_design
-from roomcorr.design.safety import PEAK_BAND
+from roomcorr.design.align import apply_plan, plan_system
+from roomcorr.design.fir import synthesize_fir
+from roomcorr.design.safety import PEAK_BAND, common_pre_gain_db, full_band_peak_gain_db
 from roomcorr.design.target import target_from_table
 from roomcorr.errors import SettingsError
 from roomcorr.grid import log_grid
@@ -32,6 +34,7 @@ from roomcorr.pipeline import (
     DesignResult,
     analyse,
     design_curves,
+    fir_taps_for,
     resolve_calibration,
     resolve_target,
     run_design,
@@ -252,6 +255,53 @@ def target_settings(base: Settings, edit: dict[str, Any]) -> tuple[Settings, dic
     return settings, table
 
 
+def filter_levels(
+    irs: np.ndarray,
+    analysis: Analysis,
+    channels: list[Any],
+    target_shape: np.ndarray,
+    settings: Settings,
+) -> dict[str, Any]:
+    """Boost and pre-gain of the filters an edit would give: the saved design's own chain.
+
+    The same steps and functions as :func:`roomcorr.pipeline.run_design`, which writes the
+    manifest: per design rate each channel's FIR from its correction
+    (:func:`roomcorr.design.fir.synthesize_fir`, the design's tap count), the system plan's
+    alignment and level trims (:func:`roomcorr.design.align.plan_system`,
+    :func:`~roomcorr.design.align.apply_plan`), then each filter's peak gain from DC to
+    Nyquist (:func:`roomcorr.design.safety.full_band_peak_gain_db`) and the common pre-gain
+    (:func:`~roomcorr.design.safety.common_pre_gain_db`), as
+    :func:`~roomcorr.design.safety.apply_safety` computes them. A mixed-phase design's
+    excess-phase part is left out (it changes the peak gain by a few tenths of a dB).
+
+    Returns
+    -------
+    dict
+        ``peak_gain_before_pre_gain_db`` (per channel, the largest over the rates: the
+        boost) and ``pre_gain_db`` (dB, never positive), rounded to 0.01 dB.
+    """
+    d = settings.design
+    freq, fs = analysis.freq_hz, analysis.fs
+    lowest = min(float(ch.band_hz[0]) for ch in channels)
+    firs: dict[int, np.ndarray] = {}
+    for rate in d.sample_rates:
+        n_taps = fir_taps_for(rate, d.taps, lowest)
+        firs[rate] = np.stack(
+            [synthesize_fir(freq, ch.correction_db, rate, n_taps) for ch in channels]
+        )
+    system = plan_system(irs, fs, freq, channels, target_shape, firs, d, analysis.weights)
+    if system is not None:
+        firs = apply_plan(firs, system)
+    peaks = np.array(
+        [[full_band_peak_gain_db(h[c], rate) for c in range(h.shape[0])]
+         for rate, h in firs.items()]
+    )
+    return {
+        "peak_gain_before_pre_gain_db": [round(float(p), 2) for p in peaks.max(axis=0)],
+        "pre_gain_db": round(float(common_pre_gain_db(list(peaks.ravel()), d.ceiling_db)), 2),
+    }
+
+
 class DesignPreview:
     """Correction curves of a measurement for any target, recomputed in milliseconds.
 
@@ -278,6 +328,7 @@ class DesignPreview:
         self.base = settings
         self.measurement = folder.name
         self.files = files
+        self.irs = irs
         self.analysis: Analysis = analyse(irs, fs, settings)
         f = self.analysis.freq_hz
         self.keep = np.arange(0, f.size, 2)  # 1/48 octave is plenty on screen
@@ -312,12 +363,19 @@ class DesignPreview:
                     "unmeasured_seats": round(float(pred.predicted_db), 2),
                 }
             out.append(item)
-        return {
+        view: dict[str, Any] = {
             "measurement": self.measurement,
             "freq_hz": _rounded(freq, keep),
             "positions": [p.stem for p in self.files],
             "channels": out,
         }
+        if edit.get("levels"):  # the filters' figures: a few hundred ms, asked when idle
+            levels = filter_levels(self.irs, self.analysis, channels, shape, settings)
+            for item, peak in zip(out, levels["peak_gain_before_pre_gain_db"], strict=True):
+                item["max_boost_db"] = round(max(peak, 0.0), 2)
+            view["pre_gain_db"] = levels["pre_gain_db"]
+            view["sample_rates"] = [int(r) for r in settings.design.sample_rates]
+        return view
 
     def save(self, edit: dict[str, Any], name: str = "") -> tuple[Path, list[dict[str, Any]]]:
         """Design with this edit into a new run of the room, as ``roomcorr design`` would.

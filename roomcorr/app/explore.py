@@ -21,6 +21,7 @@ from roomcorr.errors import InputFileError
 from roomcorr.grid import log_grid
 from roomcorr.pipeline import analyse_positions, default_channel_names
 from roomcorr.report.compare import format_comparison
+from roomcorr.report.figures import DECAY_MAP_FLOOR_DB, DECAY_MAP_STOPS
 
 #: Plot curves are thinned to this many points per octave (the design grid has 96).
 PLOT_POINTS_PER_OCTAVE = 48
@@ -298,6 +299,7 @@ def decay_view(
         NOISE_MARGIN_DB,
         RANGES_DB,
         band_decay,
+        decay_method,
         low_frequency_decay_map,
         mean_band_decay,
         ringing_modes,
@@ -369,6 +371,11 @@ def decay_view(
         "ranges_db": {k: list(v) for k, v in RANGES_DB.items()},
         "noise_margin_db": NOISE_MARGIN_DB,
         "min_bandwidth_time": MIN_BANDWIDTH_TIME,
+        "method": decay_method(),
+        "colour_scale": {
+            "floor_db": DECAY_MAP_FLOOR_DB,
+            "stops": [[db, list(rgb)] for db, rgb in DECAY_MAP_STOPS],
+        },
         "channels": channels,
     }
 
@@ -397,14 +404,21 @@ def compare_view(room: rooms.Room, before: str, after: str) -> dict[str, Any]:
     -------
     dict
         The result of :func:`roomcorr.app.compare.compare_measurements` (with the
-        response curves of both, per channel) and ``text``: the lines
-        ``roomcorr compare`` prints.
+        response curves of both, per channel, and ``difference_db``: after minus
+        before) and ``text``: the lines ``roomcorr compare`` prints.
     """
     a = run_folder(room, "measurement", before)
     b = run_folder(room, "measurement", after)
     res = compare_measurements(a, b, room=room, with_curves=True)
     out = _plain(res)
     out["text"] = format_comparison(res)
+    for ch, ch_res in zip(out.get("channels", []), res.get("channels", []), strict=True):
+        curves = ch_res.get("curves")
+        if curves is not None:  # what changed, per frequency: after minus before (dB)
+            diff = np.asarray(curves["after_db"], dtype=float) - np.asarray(
+                curves["before_db"], dtype=float
+            )
+            ch["curves"]["difference_db"] = _finite_list(diff)
     return out
 
 

@@ -5,6 +5,7 @@ from __future__ import annotations
 import json
 import math
 import os
+import unicodedata
 from pathlib import Path
 from typing import Any
 
@@ -12,6 +13,7 @@ import numpy as np
 
 from roomcorr.analysis.compare import direct_arrival_s
 from roomcorr.audio_io import read_ir_set
+from roomcorr.deliver.atomic import atomic_write_text
 from roomcorr.deliver.export import read_manifest
 from roomcorr.errors import InputFileError, OutputError, RoomcorrError
 from roomcorr.rooms import (
@@ -22,8 +24,17 @@ from roomcorr.rooms import (
     list_runs,
     measurement_files,
     open_room,
+    room_lock,
     room_name,
 )
+
+#: The room's names and notes of its runs: one file at the room's top, never inside a run
+#: (run folders are sealed; an unlisted file in one would mark it damaged).
+LABELS_FILE = "run-labels.json"
+LABELS_VERSION = 1
+#: Longest name and note (characters).
+NAME_MAX = 60
+NOTE_MAX = 500
 
 
 def _measurement_figures(run_dir: Path) -> dict[str, Any]:
@@ -121,6 +132,7 @@ def history(room: Room) -> list[dict[str, Any]]:
         peak/worst-case gain, boost, rates, band, target).
     """
     runs = list_runs(room)
+    labels = run_labels(room)
     busy = is_locked(room)
     newest_incomplete = next((r for r in reversed(runs) if not r.complete), None)
     out = []
@@ -141,6 +153,9 @@ def history(room: Room) -> list[dict[str, Any]]:
             entry["source"] = design_source(r) if r.complete else info.get("measurement")
         if info.get("note"):
             entry["note"] = info["note"]
+        label = labels.get(f"{r.kind}/{r.run_id}")
+        if label:
+            entry["label"] = label
         problem = r.problem
         if r.complete:
             # Sizes of every file; SHA-256 of all but the raw recordings (large, and
@@ -190,7 +205,12 @@ def format_history(entries: list[dict[str, Any]], name: str = "") -> list[str]:
             head += f"  from measurement {Path(str(e['source'])).name}"
         if e.get("note"):
             head += f"  ({e['note']})"
+        label = e.get("label") or {}
+        if label.get("name"):
+            head += f"  \"{label['name']}\""
         lines.append(head)
+        if label.get("note"):
+            lines.append("      note: " + " / ".join(label["note"].splitlines()))
         f = e.get("figures") or {}
         if f.get("problem"):
             lines.append(f"      problem: {f['problem']}")
@@ -229,3 +249,90 @@ def format_history(entries: list[dict[str, Any]], name: str = "") -> list[str]:
         elif e["status"] == "incomplete":
             lines.append("      interrupted before it finished; ignored by other commands")
     return lines
+
+
+def run_labels(room: Room) -> dict[str, dict[str, str]]:
+    """The names and notes given to runs: ``{"kind/run_id": {"name": ..., "note": ...}}``.
+
+    A missing file is no labels; a damaged one is refused (:class:`InputFileError`) rather
+    than silently emptied, so the next save cannot drop what it held.
+    """
+    path = room.root / LABELS_FILE
+    if not path.is_file():
+        return {}
+    try:
+        data = json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
+        raise InputFileError(f"{path}: damaged ({exc}); fix or remove it") from None
+    runs = data.get("runs") if isinstance(data, dict) else None
+    if not isinstance(runs, dict):
+        raise InputFileError(f"{path}: damaged (expected {{'runs': {{...}}}}); fix or remove it")
+    out: dict[str, dict[str, str]] = {}
+    for key, value in runs.items():
+        if isinstance(value, dict):
+            out[str(key)] = {k: str(value[k]) for k in ("name", "note") if value.get(k)}
+    return out
+
+
+def _clean_text(value: Any, what: str, limit: int, one_line: bool) -> str:
+    if value is None:
+        return ""
+    if not isinstance(value, str):
+        raise InputFileError(f"{what}: expected text")
+    text = value.strip()
+    if len(text) > limit:
+        raise InputFileError(f"{what}: at most {limit} characters, not {len(text)}")
+    allowed = {"\n"} if not one_line else set()
+    if any(unicodedata.category(c) == "Cc" and c not in allowed for c in text):
+        raise InputFileError(f"{what}: control characters are not allowed")
+    return text
+
+
+def set_run_label(
+    room: Room, kind: str, run_id: str, name: Any = None, note: Any = None
+) -> dict[str, str]:
+    """Give a run a name and a note (both empty: remove them), under the room's lock.
+
+    The room's one labels file (:data:`LABELS_FILE`) is read, changed and written back
+    atomically while the room lock is held, so two writers never lose each other's labels.
+
+    Parameters
+    ----------
+    room : Room
+    kind : {"measurement", "design"}
+    run_id : str
+        A run of the room.
+    name : str, optional
+        At most :data:`NAME_MAX` characters, one line.
+    note : str, optional
+        At most :data:`NOTE_MAX` characters.
+
+    Returns
+    -------
+    dict
+        The run's label as stored (``name``, ``note``; empty ones left out).
+
+    Raises
+    ------
+    InputFileError
+        For an unknown run or text that is too long or holds control characters.
+    RoomBusyError
+        When another process holds the room.
+    """
+    clean_name = _clean_text(name, "name", NAME_MAX, one_line=True)
+    clean_note = _clean_text(note, "note", NOTE_MAX, one_line=False)
+    if not any(r.kind == kind and r.run_id == run_id for r in list_runs(room)):
+        raise InputFileError(f"{kind} {run_id}: not a run of the room {room.root}")
+    key = f"{kind}/{run_id}"
+    label = {k: v for k, v in (("name", clean_name), ("note", clean_note)) if v}
+    with room_lock(room, "storing a run's name and note"):
+        labels = run_labels(room)
+        if label:
+            labels[key] = label
+        else:
+            labels.pop(key, None)
+        doc = {"format": LABELS_VERSION, "runs": dict(sorted(labels.items()))}
+        atomic_write_text(
+            room.root / LABELS_FILE, json.dumps(doc, indent=2, ensure_ascii=False) + "\n"
+        )
+    return label

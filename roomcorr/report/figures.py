@@ -381,11 +381,35 @@ def plot_decay(bands: list[Any], title: str) -> Any:
     return fig
 
 
+#: The decay maps' colour scale, shared by the report and the browser app (which gets it with
+#: the decay view): level in dB re the first slice's loudest bin -> RGB, linear between stops.
+DECAY_MAP_FLOOR_DB = -45.0
+DECAY_MAP_STOPS: list[tuple[float, tuple[int, int, int]]] = [
+    (-45.0, (24, 33, 45)),
+    (-32.0, (35, 72, 104)),
+    (-20.0, (31, 122, 116)),
+    (-10.0, (196, 168, 92)),
+    (0.0, (252, 246, 226)),
+]
+
+
+def decay_map_colormap() -> Any:
+    """:data:`DECAY_MAP_STOPS` as a matplotlib colormap over ``DECAY_MAP_FLOOR_DB .. 0`` dB."""
+    from matplotlib.colors import LinearSegmentedColormap
+
+    lo = DECAY_MAP_FLOOR_DB
+    return LinearSegmentedColormap.from_list(
+        "roomcorr-decay",
+        [((db - lo) / -lo, tuple(c / 255 for c in rgb)) for db, rgb in DECAY_MAP_STOPS],
+        N=int(round(-lo * 10)) + 1,  # one entry per 0.1 dB, as the app's look-up table
+    )
+
+
 def plot_decay_map(
     maps: list[tuple[str, Any]],
     modes: list[tuple[float, float]],
     title: str,
-    floor_db: float = -45.0,
+    floor_db: float = DECAY_MAP_FLOOR_DB,
 ) -> Any:
     """Low-frequency decay maps side by side (e.g. as measured and corrected).
 
@@ -404,7 +428,7 @@ def plot_decay_map(
     im = None
     for ax, (label, m) in zip(axs, maps, strict=True):
         im = ax.pcolormesh(m.freq_hz, m.time_s * 1000, np.clip(m.level_db, floor_db, 0),
-                           shading="nearest", cmap="magma", vmin=floor_db, vmax=0,
+                           shading="nearest", cmap=decay_map_colormap(), vmin=floor_db, vmax=0,
                            rasterized=True)
         ax.set_xscale("log")
         ticks = [t for t in (20, 30, 50, 100, 200, 300)
@@ -461,7 +485,7 @@ def plot_quality(recordings: list[dict[str, Any]], title: str) -> Any:
     ax1.set_title("signal to noise per octave", loc="left", fontsize=10)
     ax1.legend(fontsize=LEGEND_PT, frameon=False)
     _freq_axis(ax2, 20, 20000, sparse=True)
-    ax2.set_ylabel("harmonic level (dB re fundamental)")
+    ax2.set_ylabel("harmonic level\n(dB re fundamental)")
     ax2.set_title("harmonic distortion", loc="left", fontsize=10)
     if ax2.lines:
         ax2.legend(fontsize=LEGEND_PT, frameon=False)
@@ -469,7 +493,7 @@ def plot_quality(recordings: list[dict[str, Any]], title: str) -> Any:
     reps = [np.nan if r.get("repeat_db") is None else float(r["repeat_db"]) for r in recordings]
     ax3.barh(range(len(reps)), np.nan_to_num(reps, nan=0.0), color=MEAN)
     ax3.set_yticks(range(len(reps)), labels, fontsize=LEGEND_PT)
-    ax3.set_xlabel("difference (dB re response)")
+    ax3.set_xlabel("difference\n(dB re response)")
     ax3.set_title("repeat agreement", loc="left", fontsize=10)
     if all(np.isnan(reps)):
         ax3.text(0.5, 0.5, "single sweep:\nno repeats", ha="center", va="center",

@@ -21,7 +21,9 @@ from typing import Any
 
 import numpy as np
 
+from roomcorr.analysis.decay import decay_method as _decay_method
 from roomcorr.analysis.decay import mean_band_decay as _mean_band_decay
+from roomcorr.report import glance
 from roomcorr.report.summary import fmt_hz, summary_sentences, withheld_regions
 
 REPORT_HTML = "report.html"
@@ -30,6 +32,7 @@ FIG_DIR = "report"
 #: Section ids, in page order (per channel sections get a ``-<channel>`` suffix).
 SECTION_TITLES = {
     "overview": "At a glance",
+    "changes": "What the correction did, channel by channel",
     "compare": "What changed since the earlier measurement",
     "room": "The room as measured",
     "result": "Predicted result at every position",
@@ -86,6 +89,8 @@ class Report:
     title: str
     subtitle: str
     sections: list[Section]
+    #: Lines under the title: date, run ids, positions, what was measured.
+    facts: list[str] = field(default_factory=list)
 
 
 def _fir_for(curves: dict[str, Any], index: int) -> tuple[np.ndarray | None, int | None]:
@@ -200,7 +205,9 @@ def _decay_table(bands: list[Any]) -> list[list[str]]:
     def cell(v: float, ok: bool) -> str:
         if not np.isfinite(v):
             return "n/a"
-        return f"{v:.2f}" + ("" if ok else " *")
+        # rounded first to the 4 decimals the app's decay view stores, so both print the
+        # same two decimals (no double-rounding difference at x.xx5)
+        return f"{float(np.round(v, 4)):.2f}" + ("" if ok else " *")
 
     rows = [["band (Hz)", "EDT (s)", "T20 (s)", "T30 (s)", "peak-to-noise (dB)"]]
     for b in bands:
@@ -465,6 +472,8 @@ class _Context:
     iir: dict[str, list[dict[str, Any]]] | None
     ringing_notes: list[str] = field(default_factory=list)
     mixed: dict[str, Any] | None = None  # ``mixed_phase`` of load_design_curves, if any
+    target_spec: str | None = None  # the design's --target (preset name or file)
+    target_shape: np.ndarray | None = None  # its shape on ``freq``, when it can be read
 
 
 @dataclass
@@ -509,10 +518,17 @@ def _channel(curves: dict[str, Any], ch: dict[str, Any], ctx: _Context) -> _Chan
     return x
 
 
+def _target_note(x: _Channel, ctx: _Context) -> str:
+    """What the dashed target line is, beside each figure that draws it."""
+    return glance.target_note(ctx.freq, x.ch["target_db"], ctx.target_shape, ctx.target_spec)
+
+
 def _room_column(x: _Channel, ctx: _Context) -> Column | None:
     from roomcorr.report import figures as fg
 
     col = Column(x.name)
+    if x.ch.get("target_db") is not None:
+        col.paragraphs.append(_target_note(x, ctx))
     col.figures.append(
         Figure(
             f"{x.name}-room",
@@ -535,6 +551,7 @@ def _result_column(x: _Channel, ctx: _Context) -> Column | None:
         return None
     col = Column(x.name)
     col.paragraphs.append(f"Predicted from {x.how}.")
+    col.paragraphs.append(_target_note(x, ctx))
     col.figures.append(
         Figure(
             f"{x.name}-result",
@@ -727,11 +744,12 @@ CHANNEL_SECTIONS: list[tuple[str, str, Any]] = [
      "Anything left of 0 ms is pre-ringing; a minimum-phase filter has none.", _time_column),
     ("phase", "", _phase_column),
     ("iir", "", _iir_column),
-    ("decay", "Schroeder backward integration per octave band with the noise floor "
-     "subtracted and the tail truncated where the decay meets the noise. EDT from 0 to -10 "
-     "dB, T20 from -5 to -25 dB, T30 from -5 to -35 dB, each extrapolated to 60 dB (ISO "
-     "3382-1), averaged over positions; curves show the first position. * marks a value whose "
-     "range comes within 10 dB of the noise floor.", _decay_column),
+    ("decay", _decay_method() + ". Per octave band: the noise floor is subtracted, the "
+     "backward integration stops where the late decay meets the noise and the energy it "
+     "would still have had is added back. EDT from 0 to -10 dB, T20 from -5 to -25 dB, T30 "
+     "from -5 to -35 dB, each extrapolated to 60 dB (ISO 3382-1), averaged over positions; "
+     "curves show the first position. * marks a value whose range comes within 10 dB of the "
+     "noise floor.", _decay_column),
     ("ringing", "Sliding-window spectra of the first position from 20 to 300 Hz: each row "
      "starts 10 ms later than the one below. A bright ridge reaching high up is a room mode "
      "that keeps ringing after the sound stops.", _ringing_column),
@@ -798,8 +816,12 @@ def report_context(
     Each channel's own data is then ``_channel(curves, ch, ctx)``.
     """
     designed = bool(curves.get("firs")) and all("correction_db" in ch for ch in curves["channels"])
+    freq = np.asarray(curves["freq_hz"], dtype=float)
+    design = (settings or {}).get("design", {}) if isinstance(settings, dict) else {}
+    spec = design.get("target") if isinstance(design, dict) else None
+    spec = str(spec) if spec else None
     return _Context(
-        freq=np.asarray(curves["freq_hz"], dtype=float),
+        freq=freq,
         fs=int(curves["fs_in"]),
         caps=_design_caps(settings),
         pre_gain=float(curves.get("pre_gain_db", 0.0)),
@@ -807,6 +829,8 @@ def report_context(
         png=png,
         iir=iir,
         mixed=curves.get("mixed_phase"),
+        target_spec=spec,
+        target_shape=glance.target_shape_db(freq, spec),
     )
 
 
@@ -819,6 +843,7 @@ def build_report(
     dpi: int = 90,
     comparison: dict[str, Any] | None = None,
     through: dict[str, Any] | None = None,
+    facts: list[str] | None = None,
 ) -> Report:
     """Compute every section and figure of the report.
 
@@ -851,6 +876,8 @@ def build_report(
         ``through.check`` of a ``measurement.json`` made with ``measure
         --through``: the responses measured through a design's filters
         against that design's prediction (see :func:`through_section`).
+    facts : list of str, optional
+        Lines under the title (:func:`roomcorr.report.glance.header_lines`).
 
     Returns
     -------
@@ -865,7 +892,7 @@ def build_report(
     designed = ctx.designed
     overview = Section("overview", SECTION_TITLES["overview"])
     if designed:
-        overview.paragraphs.extend(summary_sentences(curves, ctx.caps["max_boost_db"]))
+        overview.paragraphs.extend(glance.glance_sentences(curves, ctx.caps["max_boost_db"]))
     else:
         overview.paragraphs.append(
             "This folder holds measurements only; run the design step to see a correction."
@@ -874,6 +901,10 @@ def build_report(
     if comparison is not None:
         sections.append(comparison_section(comparison))
         overview.paragraphs.append(_comparison_sentence(comparison))
+    if designed:  # every sentence, channel by channel, below the short overview
+        changes = Section("changes", SECTION_TITLES["changes"])
+        changes.paragraphs.extend(summary_sentences(curves, ctx.caps["max_boost_db"]))
+        sections.append(changes)
     if designed:
         from roomcorr.report.system import system_sections
 
@@ -895,7 +926,8 @@ def build_report(
         overview.paragraphs.append(_through_sentence(through))
     if designed:
         sections.append(_safety_section(chans, curves, ctx))
-    return Report(title=title, subtitle=f"measured at {ctx.fs} Hz", sections=sections)
+    return Report(title=title, subtitle=f"measured at {ctx.fs} Hz", sections=sections,
+                  facts=list(facts or []))
 
 
 def _through_ranges(ranges: list[list[float]]) -> str:
@@ -966,6 +998,7 @@ body{margin:0;font-family:system-ui,-apple-system,'Segoe UI',sans-serif;color:#2
 background:#f6f7f9;line-height:1.45}
 header{background:#155e6b;color:#fff;padding:18px 28px}
 header h1{margin:0;font-size:1.5em}header p{margin:4px 0 0;opacity:.85}
+header p.fact{font-size:.92em;opacity:.95}
 nav{background:#e3eaef;padding:8px 28px;font-size:.9em}
 nav a{color:#155e6b;margin-right:14px;text-decoration:none}
 main{max-width:1760px;margin:0 auto;padding:10px 20px 40px}
@@ -1023,7 +1056,9 @@ def render_html(report: Report) -> str:
         '<html lang="en"><head><meta charset="utf-8">',
         '<meta name="viewport" content="width=device-width, initial-scale=1">',
         f"<title>{esc(report.title)}</title><style>{_CSS}</style></head><body>",
-        f"<header><h1>{esc(report.title)}</h1><p>{esc(report.subtitle)}</p></header>",
+        f"<header><h1>{esc(report.title)}</h1><p>{esc(report.subtitle)}</p>"
+        + "".join(f'<p class="fact">{esc(line)}</p>' for line in report.facts)
+        + "</header>",
         f"<nav>{nav}</nav><main>",
     ]
     for s in report.sections:
@@ -1120,6 +1155,37 @@ def _session_curves(folder: Path) -> dict[str, Any]:
                          "average_db": avg, "spread_db": spread})
     return {"freq_hz": freq, "fs_in": fs, "pre_gain_db": 0.0, "irs": irs, "firs": {},
             "channels": channels}
+
+
+def _how_measured(folder: Path) -> str:
+    """The sweep of a measurement folder's record, or that its responses came as WAV files."""
+    try:
+        record = json.loads((folder / "measurement.json").read_text(encoding="utf-8"))
+        ms = record["settings"]
+        return (
+            f"sweeps {float(ms['f_start_hz']):g} Hz to {float(ms['f_end_hz']):g} Hz, "
+            f"{float(ms['sweep_s']):g} s, peak {float(ms['level_dbfs']):g} dBFS, "
+            f"{int(ms['repeats'])} per loudspeaker"
+        )
+    except (OSError, ValueError, KeyError, TypeError):
+        return "impulse responses read from WAV files"
+
+
+def _facts(d: Path, manifest: dict[str, Any] | None, curves: dict[str, Any]) -> list[str]:
+    """The header's lines for a design (``manifest`` given) or measurement folder."""
+    names = [str(ch["name"]) for ch in curves["channels"]]
+    if manifest is not None:
+        sources = [Path(str(m)) for m in manifest.get("measurements") or []]
+        positions = [p.stem for p in sources]
+        measured_in = sources[0].parent if sources else None
+        m_id = manifest.get("measurement")
+        m_id = str(m_id) if m_id else (measured_in.name if measured_in is not None else None)
+    else:
+        positions = [p.stem for p in sorted(d.glob("*.wav"))]
+        measured_in, m_id = d, None
+    what = _how_measured(measured_in) if measured_in is not None else None
+    return glance.header_lines(d.name, manifest is not None, m_id, positions, names,
+                               int(curves["fs_in"]), what)
 
 
 def _complete(run_dir: Path) -> bool:
@@ -1382,8 +1448,10 @@ def write_report(
         through = _read_through(d)
     iir = _read_iir(d) if is_design else None
     comparison = report_comparison(d, compare_with)
+    facts = _facts(d, manifest if is_design else None, curves)
     report = build_report(
-        curves, settings, quality, iir=iir, dpi=dpi, comparison=comparison, through=through
+        curves, settings, quality, iir=iir, dpi=dpi, comparison=comparison, through=through,
+        facts=facts,
     )
     # A finished room run is sealed by its complete.json (SHA-256 of every file,
     # manifest included): the report is added beside it, never into its manifest.

@@ -43,6 +43,7 @@ from roomcorr import app as service
 from roomcorr import rooms
 from roomcorr.app import measure as measuring
 from roomcorr.app.design import DesignPreview
+from roomcorr.app.history import set_run_label
 from roomcorr.app.report import report_in_room
 from roomcorr.errors import RoomBusyError, RoomcorrError
 from roomcorr.settings import find_preset, preset_names, read_toml
@@ -288,6 +289,18 @@ def create_app(room: rooms.Room, token: str, port: int) -> ASGIApp:
             return _error(exc, 409 if busy else 404 if missing else 400)
         return JSONResponse(data)
 
+    async def label(request: Request) -> Response:
+        p = request.path_params
+        try:
+            data = await body(request)
+            stored = await run_in_threadpool(
+                set_run_label, room, p["kind"], p["run_id"], data.get("name"), data.get("note")
+            )
+        except RoomcorrError as exc:
+            busy, missing = isinstance(exc, RoomBusyError), "not a run" in str(exc)
+            return _error(exc, 409 if busy else 404 if missing else 400)
+        return JSONResponse({"kind": p["kind"], "run_id": p["run_id"], "label": stored})
+
     async def decay(request: Request) -> Response:
         p, q = request.path_params, request.query_params
         try:
@@ -332,6 +345,7 @@ def create_app(room: rooms.Room, token: str, port: int) -> ASGIApp:
         Route("/api/preview", preview, methods=["POST"]),
         Route("/api/save", save, methods=["POST"]),
         Route("/api/report/{kind}/{run_id}", report, methods=["POST"]),
+        Route("/api/label/{kind}/{run_id}", label, methods=["POST"]),
         WebSocketRoute("/api/live", live.endpoint),
         *measurer.routes(),
     ]

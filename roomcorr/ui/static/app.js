@@ -55,17 +55,50 @@ function describe(run) {
   const parts = [];
   if (run.source) parts.push(`from ${run.source}`);
   if (f.target) parts.push(`target ${f.target}`);
-  if (f.pre_gain_db !== undefined && f.pre_gain_db !== null) parts.push(`pre-gain ${Number(f.pre_gain_db).toFixed(1)} dB`);
+  if (f.pre_gain_db !== undefined && f.pre_gain_db !== null) parts.push(`pre-gain ${Number(f.pre_gain_db).toFixed(2)} dB`);
   return parts.join(", ");
+}
+
+// The runs of the room, as the server last listed them (with their names and notes)
+let lastRuns = [];
+
+function runTitle(run) {
+  const name = run.label && run.label.name;
+  return name ? `${name} (${run.run_id})` : run.run_id;
+}
+
+function labelEditor(run, td) {
+  // name and note of a run: stored in the room's one labels file, under the room lock
+  td.innerHTML = "";
+  const name = document.createElement("input");
+  name.className = "l-name"; name.maxLength = 60; name.placeholder = "name"; name.value = (run.label && run.label.name) || "";
+  const note = document.createElement("textarea");
+  note.className = "l-note"; note.maxLength = 500; note.rows = 2; note.placeholder = "note"; note.value = (run.label && run.label.note) || "";
+  const save = document.createElement("button");
+  save.type = "button"; save.className = "quiet l-save"; save.textContent = "save";
+  const cancel = document.createElement("button");
+  cancel.type = "button"; cancel.className = "quiet"; cancel.textContent = "cancel";
+  [name, note, save, cancel].forEach(x => { x.addEventListener("click", ev => ev.stopPropagation()); td.appendChild(x); });
+  save.addEventListener("click", async () => {
+    try {
+      await api(`/api/label/${run.kind}/${encodeURIComponent(run.run_id)}`, { name: name.value, note: note.value });
+      status(`named ${run.kind} ${run.run_id}`);
+      await loadRoom(true);
+    } catch (err) { status(String(err.message || err), true); }
+  });
+  cancel.addEventListener("click", () => loadRoom(true));
+  name.focus();
 }
 
 async function loadRoom(quiet = false) {
   const room = await api("/api/room");
+  lastRuns = room.runs;
   document.getElementById("room-name").textContent = room.name;
   const body = document.querySelector("#runs tbody");
   body.innerHTML = "";
   for (const run of room.runs) {
     const tr = document.createElement("tr");
+    tr.dataset.run = `${run.kind}/${run.run_id}`;
     const cells = [run.kind, run.run_id, run.status, describe(run)];
     cells.forEach((text, i) => {
       const td = document.createElement("td");
@@ -73,10 +106,30 @@ async function loadRoom(quiet = false) {
       if (i === 2) td.className = "status-" + run.status;
       tr.appendChild(td);
     });
+    const lab = document.createElement("td");
+    lab.className = "label";
+    const nm = document.createElement("strong");
+    nm.textContent = (run.label && run.label.name) || "";
+    const nt = document.createElement("span");
+    nt.className = "note";
+    nt.textContent = (run.label && run.label.note) || "";
+    const edit = document.createElement("button");
+    edit.type = "button"; edit.className = "quiet l-edit";
+    edit.textContent = run.label ? "edit" : "name it";
+    edit.addEventListener("click", ev => { ev.stopPropagation(); labelEditor(run, lab); });
+    lab.append(nm, nt, edit);
+    tr.appendChild(lab);
+    const open = document.createElement("td");
+    open.className = "open";
     if (run.status === "complete") {
       tr.className = "pick";
+      tr.tabIndex = 0;
+      tr.title = `Open ${run.kind} ${run.run_id}`;
+      open.textContent = "open ›";
       tr.addEventListener("click", () => openRun(run));
+      tr.addEventListener("keydown", ev => { if (ev.key === "Enter" && ev.target === tr) openRun(run); });
     }
+    tr.appendChild(open);
     body.appendChild(tr);
   }
   if (!quiet) status(`${room.runs.length} runs in ${room.root}`);
@@ -98,6 +151,53 @@ function hzLabel(v) {
   return v >= 1000 ? `${v / 1000}k` : `${v}`;
 }
 
+// The y-axis spans the curves inside the band that matters (the correction band, or 20 Hz to
+// 20 kHz) with at most Y_PAD_DB plus one Y_STEP_DB step of empty margin on each side, so the
+// curves fill the plot instead of sharing it with a roll-off nobody corrects. "whole range"
+// zooms out to every point; a drag zooms in; a double-click goes back.
+const Y_PAD_DB = 1.5, Y_STEP_DB = 2;
+const FULL_BAND = [20, 20000];
+
+function bandExtent(u, band) {
+  const x = u.data[0];
+  let lo = Infinity, hi = -Infinity;
+  for (let s = 1; s < u.data.length; s++) {
+    if (u.series[s] && u.series[s].show === false) continue;
+    const y = u.data[s];
+    for (let i = 0; i < x.length; i++) {
+      if (band && (x[i] < band[0] || x[i] > band[1])) continue;
+      const v = y[i];
+      if (v == null || !Number.isFinite(v)) continue;
+      if (v < lo) lo = v;
+      if (v > hi) hi = v;
+    }
+  }
+  return Number.isFinite(lo) ? [lo, hi] : null;
+}
+
+function yRange(ext, db) {
+  if (!ext) return [-1, 1];
+  let [lo, hi] = ext;
+  if (db) return [Y_STEP_DB * Math.floor((lo - Y_PAD_DB) / Y_STEP_DB), Y_STEP_DB * Math.ceil((hi + Y_PAD_DB) / Y_STEP_DB)];
+  const pad = Math.max(1e-6, 0.05 * (hi - lo));
+  return [lo - pad, hi + pad];
+}
+
+function addZoomOut(box, u) {
+  const b = document.createElement("button");
+  b.type = "button";
+  b.className = "quiet zoom-out";
+  b.textContent = "whole range";
+  b.title = "Show every point of every curve; press again to go back to the band that matters.";
+  b.addEventListener("click", () => {
+    u.rcFull = !u.rcFull;
+    b.textContent = u.rcFull ? "back to the band" : "whole range";
+    u.setData(u.data, true);
+    if (u.rcFit) u.rcFit(u);
+  });
+  box.querySelector("h3").appendChild(b);
+}
+
 function addPlot(title, note, x, series, yLabel, logX = true, where = "plots", extra = {}) {
   const box = document.createElement("div");
   box.className = "plot";
@@ -105,9 +205,12 @@ function addPlot(title, note, x, series, yLabel, logX = true, where = "plots", e
   box.querySelector("h3").textContent = title;
   box.querySelector("p").textContent = note;
   document.getElementById(where).appendChild(box);
+  const band = extra.yBand || (logX ? FULL_BAND : null);
+  const db = extra.yDb !== undefined ? extra.yDb : /dB/.test(yLabel);
   const opts = {
     ...plotSize(),
-    scales: { x: logX ? { time: false, distr: 3, log: 10, range: (u, lo, hi) => [lo, hi] } : { time: false }, y: {} },
+    scales: { x: logX ? { time: false, distr: 3, log: 10, range: (u, lo, hi) => [lo, hi] } : { time: false },
+      y: { range: u => yRange(bandExtent(u, u.rcFull ? null : (u.rcBand || band)), db) } },
     axes: [
       { label: "frequency (Hz)", stroke: "#5d6b76", grid: { stroke: "#eceff1" }, values: (u, ticks) => ticks.map(hzLabel) },
       { label: yLabel, stroke: "#5d6b76", grid: { stroke: "#eceff1" } },
@@ -119,6 +222,8 @@ function addPlot(title, note, x, series, yLabel, logX = true, where = "plots", e
         value: (u, v) => (v == null ? "-" : v.toFixed(1)) }))],
   };
   const plot = new uPlot(opts, [x, ...series.map(s => s.data)], box);
+  plot.rcBand = band;
+  addZoomOut(box, plot);
   plots.push(plot);
   return plot;
 }
@@ -140,6 +245,9 @@ function controls(items, where = "explore-controls", keep = false) {
   }
 }
 
+// another design drawn over the one shown (Explore): its target and predicted average
+let overlay = null;
+
 function drawDesign(view, chIndex, rate) {
   clearPlots();
   const ch = view.channels[chIndex];
@@ -149,10 +257,17 @@ function drawDesign(view, chIndex, rate) {
   series.push({ label: "average", data: ch.average_db, color: COLORS[1], width: 2 });
   series.push({ label: "target", data: ch.target_db, color: "#23303b", width: 1.5, dash: [6, 4] });
   series.push({ label: "predicted average", data: avgPred, color: COLORS[0], width: 2 });
-  addPlot("Measured and predicted", `Band ${ch.band_hz[0].toFixed(0)}–${ch.band_hz[1].toFixed(0)} Hz. Click a legend entry to hide or show it; drag to zoom, double-click to reset.`,
-    x, series, "level (dB)");
+  if (overlay && overlay.view.channels[chIndex] && overlay.view.freq_hz.length === x.length) {
+    const o = overlay.view.channels[chIndex];
+    series.push({ label: `target, ${overlay.runId}`, data: o.target_db, color: COLORS[4], width: 1.5, dash: [2, 3] });
+    series.push({ label: `predicted average, ${overlay.runId}`, data: o.average_db.map((v, i) => (v == null || o.correction_db[i] == null ? null : v + o.correction_db[i])), color: COLORS[4], width: 2 });
+  }
+  const band = { yBand: ch.band_hz };
+  addPlot("Measured and predicted", `Band ${ch.band_hz[0].toFixed(0)}–${ch.band_hz[1].toFixed(0)} Hz (the y-axis spans the curves inside it). Click a legend entry to hide or show it; drag to zoom, double-click to reset.` +
+    (overlay ? ` Purple: design ${overlay.runId}, for comparison.` : ""),
+    x, series, "level (dB)", true, "plots", band);
   addPlot("Predicted result at every position", "The correction applied to each measured position.", x,
-    ch.predicted_db.map((m, p) => ({ label: `position ${p + 1}`, data: m, color: COLORS[p % COLORS.length], width: 1.2 })), "level (dB)");
+    ch.predicted_db.map((m, p) => ({ label: `position ${p + 1}`, data: m, color: COLORS[p % COLORS.length], width: 1.2 })), "level (dB)", true, "plots", band);
   addPlot("Correction and where boost was withheld", "Boost is withheld in deep, narrow dips and where positions disagree.", x, [
     { label: "correction", data: ch.correction_db, color: COLORS[0], width: 2 },
     { label: "boost withheld", data: ch.boost_withheld_db, color: COLORS[1] },
@@ -176,7 +291,7 @@ async function openRun(run) {
   clearPlots();
   clearDecay();
   document.getElementById("explore-text").textContent = "";
-  document.getElementById("explore-title").textContent = `${run.kind} ${run.run_id}`;
+  document.getElementById("explore-title").textContent = `${run.kind} ${runTitle(run)}`;
   status(`loading ${run.kind} ${run.run_id} ...`);
   const t0 = performance.now();
   const decay = decayUrl(run, 1, 0, 0);
@@ -189,9 +304,17 @@ async function openRun(run) {
       const view = await api(`/api/design/${encodeURIComponent(run.run_id)}`);
       const rates = Object.keys(view.filters);
       let ch = 0, rate = rates.includes("48000") ? "48000" : rates[0];
+      overlay = null;
+      const others = (lastRuns || []).filter(r => r.kind === "design" && r.status === "complete" && r.run_id !== run.run_id);
       controls([
         ["loudspeaker", view.channels.map((c, i) => [i, c.name]), v => { ch = Number(v); drawDesign(view, ch, rate); }],
         ["sample rate", rates.map(r => [r, `${r} Hz`]), v => { rate = v; drawDesign(view, ch, rate); }],
+        ["overlay design", [["", "none"], ...others.map(r => [r.run_id, runTitle(r)])], async v => {
+          try {
+            overlay = v ? { runId: v, view: await api(`/api/design/${encodeURIComponent(v)}`) } : null;
+            drawDesign(view, ch, rate);
+          } catch (err) { status(String(err.message || err), true); }
+        }],
       ]);
       const sel = document.querySelectorAll("#explore-controls select");
       if (sel[1]) sel[1].value = rate;
@@ -266,6 +389,7 @@ async function openDecay(run, fraction = 1, position = "combined", prefetched = 
   const view = await (prefetched || api(decayUrl(run, fraction, pos, ch)));
   if (seq !== decaySeq) return;  // a later choice was made meanwhile: that one is drawn
   decayState = { run, view, ch, fraction, position, fetchMs: performance.now() - t0 };
+  setHeatScale(view.colour_scale);
   el("decay-title").hidden = false;
   el("decay-controls").innerHTML = "";
   controls([
@@ -309,6 +433,7 @@ function drawDecay() {
   const box = plotBox("decay-plots", `Decay times, ${ch.name}`,
     `${view.fraction === 1 ? "Octave" : "Third-octave"} bands, ${position === "combined" ? "mean of all positions" : shown}. ` +
     "EDT from 0 to -10 dB, T20 from -5 to -25 dB, T30 from -5 to -35 dB, each extrapolated to 60 dB (ISO 3382-1). " +
+    `${view.method}. ` +
     `Hollow markers (*) are values whose range comes within ${view.noise_margin_db} dB of the noise floor. Click a legend entry to hide it; drag to zoom.`);
   box.id = "decay-times";
   const byCentre = new Map(centres.map((c, i) => [c, labels[i]]));
@@ -408,12 +533,19 @@ function decayTable(rows, labels) {
   return t;
 }
 
-// Colour ramp of the ringing map (level in dB relative to the loudest bin of the first slice)
-const HEAT_FLOOR_DB = -45;
-const HEAT_STOPS = [[-45, [24, 33, 45]], [-32, [35, 72, 104]], [-20, [31, 122, 116]], [-10, [196, 168, 92]], [0, [252, 246, 226]]];
+// Colour ramp of the ringing map (level in dB relative to the loudest bin of the first slice):
+// the report's own scale (roomcorr.report.figures.DECAY_MAP_STOPS), sent with every decay view
+let HEAT_FLOOR_DB = -45;
+let HEAT_STOPS = [[-45, [24, 33, 45]], [0, [252, 246, 226]]];
+let HEAT_LUT = [];
 
-// one colour per 0.1 dB from the floor to 0 dB, so a map of many pixels is a table look-up
-const HEAT_LUT = Array.from({ length: -HEAT_FLOOR_DB * 10 + 1 }, (_, k) => heatColor(HEAT_FLOOR_DB + k / 10));
+function setHeatScale(scale) {
+  HEAT_FLOOR_DB = scale.floor_db;
+  HEAT_STOPS = scale.stops;
+  // one colour per 0.1 dB from the floor to 0 dB, so a map of many pixels is a table look-up
+  HEAT_LUT = Array.from({ length: Math.round(-HEAT_FLOOR_DB * 10) + 1 }, (_, k) => heatColor(HEAT_FLOOR_DB + k / 10));
+}
+window.roomcorrHeat = db => heatColor(db);
 
 function heatIndex(db) {
   if (db == null || !(db > HEAT_FLOOR_DB)) return 0;
@@ -563,6 +695,10 @@ async function openCompare() {
           { label: "before", data: ch.curves.before_db, color: COLORS[2], width: 1.5 },
           { label: "after", data: ch.curves.after_db, color: COLORS[1], width: 1.5 },
         ], "level (dB)");
+      addPlot(`${ch.name}: difference (after − before)`, "Above 0 dB the later measurement is louder at that frequency, below 0 dB quieter.",
+        ch.curves.freq_hz, [
+          { label: "after − before", data: ch.curves.difference_db, color: COLORS[0], width: 1.8 },
+        ], "difference (dB)");
     });
     status(`compared ${a} with ${b}`);
   } catch (err) {
@@ -643,7 +779,7 @@ function fillMeasurements(runs) {
     const s = el(id);
     const keep = s.value;
     s.innerHTML = "";
-    done.forEach(r => { const o = document.createElement("option"); o.value = r.run_id; o.textContent = r.run_id; s.appendChild(o); });
+    done.forEach(r => { const o = document.createElement("option"); o.value = r.run_id; o.textContent = runTitle(r); s.appendChild(o); });
     s.value = keep || (done[Math.max(0, pick)] || {}).run_id || "";
   }
   const sel = el("d-measurement");
@@ -651,7 +787,7 @@ function fillMeasurements(runs) {
   sel.innerHTML = "";
   runs.filter(r => r.kind === "measurement" && r.status === "complete").reverse().forEach(r => {
     const o = document.createElement("option");
-    o.value = r.run_id; o.textContent = r.run_id; sel.appendChild(o);
+    o.value = r.run_id; o.textContent = runTitle(r); sel.appendChild(o);
   });
   if (keep) sel.value = keep;
 }
@@ -738,7 +874,52 @@ function renderPoints() {
     body.appendChild(tr);
   });
   el("d-point-count").textContent = targetPoints.length ? `${targetPoints.length} point${targetPoints.length > 1 ? "s" : ""}` : "none yet: click the target line to add one";
+  // one point holds its value at every frequency (ends held): it only moves the whole target up
+  // or down, and the design places the target at the room's own midrange level anyway
+  el("d-point-note").hidden = targetPoints.length !== 1;
   designPlots.forEach(u => u.redraw(false, false));
+}
+
+// ---- undo and redo: every settled edit of the target and the limits is a step
+let undoHistory = [], historyAt = -1, restoring = false;
+
+function snapshot() {
+  return JSON.stringify({ preset: el("d-preset").value, shaped, tilt: el("d-tilt").value, shelf: el("d-shelf").value,
+    shelfHz: el("d-shelf-hz").value, boost: el("d-boost").value, lo: el("d-lo").value, hi: el("d-hi").value,
+    points: targetPoints });
+}
+
+function remember() {
+  if (restoring) return;
+  const now = snapshot();
+  if (undoHistory[historyAt] === now) return;
+  undoHistory = undoHistory.slice(0, historyAt + 1);
+  undoHistory.push(now);
+  historyAt = undoHistory.length - 1;
+  undoButtons();
+}
+
+function undoButtons() {
+  el("d-undo").disabled = historyAt <= 0;
+  el("d-redo").disabled = historyAt >= undoHistory.length - 1;
+}
+
+function restore(step) {
+  const to = historyAt + step;
+  if (to < 0 || to >= undoHistory.length) return;
+  historyAt = to;
+  const snap = JSON.parse(undoHistory[to]);
+  restoring = true;
+  el("d-preset").value = snap.preset;
+  el("d-tilt").value = snap.tilt; el("d-shelf").value = snap.shelf; el("d-shelf-hz").value = snap.shelfHz;
+  el("d-boost").value = snap.boost; el("d-lo").value = snap.lo; el("d-hi").value = snap.hi;
+  shaped = snap.shaped;
+  targetPoints = snap.points.map(p => p.slice());
+  renderPoints();
+  restoring = false;
+  undoButtons();
+  schedule(false);
+  status(step < 0 ? "undone" : "redone");
 }
 
 function showValues() {
@@ -762,10 +943,10 @@ function currentEdit() {
   return edit;
 }
 
-function schedule() {
+function schedule(record = true) {
   showValues();
   if (pending) clearTimeout(pending);
-  pending = setTimeout(() => { pending = null; requestPreview(); }, 60);
+  pending = setTimeout(() => { pending = null; if (record) remember(); requestPreview(); }, 60);
 }
 
 function requestPreview() {
@@ -787,7 +968,43 @@ async function runPreview() {
     status(String(err.message || err), true);
   } finally {
     inFlight = false;
-    if (queued) { queued = false; runPreview(); }
+    if (queued) { queued = false; runPreview(); } else if (!dragging) refreshLevels();
+  }
+}
+
+// Boost and pre-gain of the filters this target gives: the server computes them with the
+// functions a saved design writes into its manifest (a few hundred ms: asked when idle).
+let levelsSeq = 0, levelsFor = null;
+
+async function refreshLevels() {
+  const edit = currentEdit();
+  const key = JSON.stringify(edit);
+  if (key === levelsFor) return;
+  const seq = ++levelsSeq;
+  el("d-levels").classList.add("stale");
+  try {
+    const view = await api("/api/preview", { ...edit, levels: true });
+    if (seq !== levelsSeq) return;
+    levelsFor = key;
+    const boosts = view.channels.map(c => `${c.name} ${c.max_boost_db.toFixed(2)} dB`).join(", ");
+    el("d-levels").innerHTML = "";
+    const lines = [
+      ["pre-gain", `${view.pre_gain_db.toFixed(2)} dB`, "common to every channel and rate, so no filter rises above 0 dB"],
+      ["largest boost", boosts, `cap ${Number(edit.max_boost_db).toFixed(1)} dB`],
+      ["at", view.sample_rates.map(r => `${r} Hz`).join(", "), "as Save would design them"],
+    ];
+    for (const [k, v, why] of lines) {
+      const row = document.createElement("div");
+      const b = document.createElement("b"); b.textContent = `${k}: `;
+      const val = document.createElement("span"); val.className = "value"; val.textContent = v;
+      const w = document.createElement("small"); w.textContent = ` (${why})`;
+      row.append(b, val, w);
+      el("d-levels").appendChild(row);
+    }
+    el("d-levels").dataset.preGainDb = String(view.pre_gain_db);
+    el("d-levels").classList.remove("stale");
+  } catch (err) {
+    if (seq === levelsSeq) status(String(err.message || err), true);
   }
 }
 
@@ -914,8 +1131,19 @@ window.addEventListener("mouseup", () => {
     }
   }
   designPlots.forEach(p => p.redraw(false, false));
-  if (d.moved || d.i < 0) requestPreview();
+  if (d.moved || d.i < 0) { remember(); requestPreview(); }
 });
+
+// At least this many screen pixels per dB on the target plot at its default zoom, so that a
+// finger's 10 px moves a point by at most 1 dB: the plot grows taller for a wide level range.
+const TARGET_PX_PER_DB = 10.5;
+
+function fitTarget(u) {
+  const span = u.scales.y.max - u.scales.y.min;
+  const plotH = u.bbox.height / (devicePixelRatio || 1);
+  if (!(span > 0) || plotH >= span * TARGET_PX_PER_DB || u.rcFull) return;
+  u.setSize({ width: u.width, height: Math.ceil(u.height + span * TARGET_PX_PER_DB - plotH) });
+}
 
 function previewSeries(ch) {
   const pred = ch.average_db.map((v, i) => (v == null || ch.correction_db[i] == null ? null : v + ch.correction_db[i]));
@@ -931,6 +1159,8 @@ function drawPreview(view) {
     view.channels.forEach((ch, c) => {
       designPlots[2 * c].setData([view.freq_hz, ...previewSeries(ch)], !dragging);
       designPlots[2 * c + 1].setData([view.freq_hz, ...ch.predicted_db], !dragging);
+      designPlots[2 * c].rcBand = ch.band_hz;
+      if (!dragging) fitTarget(designPlots[2 * c]);
     });
   } else {
     while (designPlots.length) designPlots.pop().destroy();
@@ -946,12 +1176,14 @@ function drawPreview(view) {
           { label: "predicted average", data: pred, color: COLORS[0], width: 2 },
           { label: "correction", data: corr, color: COLORS[2], width: 1.5, show: false },
           { label: "boost withheld", data: withheld, color: COLORS[3], show: false },
-        ], "level (dB)", true, "design-plots", { drag: false, hooks: { draw: [drawHandles] } });
+        ], "level (dB)", true, "design-plots", { drag: false, hooks: { draw: [drawHandles] }, yBand: ch.band_hz });
       u.root.classList.add("target-plot");
+      u.rcFit = fitTarget;
+      fitTarget(u);
       attachTargetEditing(u);
       addPlot(`${ch.name}: predicted at every position`, "", view.freq_hz,
         ch.predicted_db.map((m, p) => ({ label: view.positions[p], data: m, color: COLORS[p % COLORS.length], width: 1.1 })),
-        "level (dB)", true, "design-plots");
+        "level (dB)", true, "design-plots", { yBand: ch.band_hz });
       designPlots.push(...plots.splice(before));
     });
   }
@@ -972,6 +1204,18 @@ async function saveDesign() {
     const res = await api("/api/save", { ...edit, name: el("d-name").value });
     await loadRoom(true);
     status(`saved as design ${res.run_id} (${res.files} files)`);
+    const box = el("d-saved");
+    box.innerHTML = "";
+    box.append(`Saved as design ${res.run_id} (${res.files} files): `);
+    const open = document.createElement("a");
+    open.href = "#"; open.id = "d-saved-link"; open.textContent = "open it";
+    open.addEventListener("click", ev => {
+      ev.preventDefault();
+      const run = lastRuns.find(r => r.kind === "design" && r.run_id === res.run_id) || { kind: "design", run_id: res.run_id, status: "complete" };
+      openRun(run);
+    });
+    box.append(open);
+    box.hidden = false;
   } catch (err) {
     status(String(err.message || err), true);
   }
@@ -991,8 +1235,18 @@ async function setupDesign() {
   el("d-save").addEventListener("click", saveDesign);
   el("c-go").addEventListener("click", openCompare);
   el("report-write").addEventListener("click", writeReport);
+  el("d-undo").addEventListener("click", () => restore(-1));
+  el("d-redo").addEventListener("click", () => restore(1));
+  document.addEventListener("keydown", ev => {
+    if (!el("tab-design").classList.contains("active") || !(ev.ctrlKey || ev.metaKey)) return;
+    if (ev.target.matches && ev.target.matches("input, textarea")) return;
+    const k = ev.key.toLowerCase();
+    if (k === "z" && !ev.shiftKey) { ev.preventDefault(); restore(-1); }
+    if ((k === "z" && ev.shiftKey) || k === "y") { ev.preventDefault(); restore(1); }
+  });
   const p = presets.find(q => q.name === sel.value);
   setControls(p ? p.table : {});
+  remember();
 }
 
 // for the browser tests: what the page last sent and drew
@@ -1005,8 +1259,15 @@ window.roomcorrDesign = () => {
     // (CSS pixels from the plot area's top left corner)
     handles: u ? targetPoints.map((_, i) => handleXY(u, i)) : [],
     targetPixel: f => (u ? [u.valToPos(f, "x"), u.valToPos(targetAt(u, f), "y")] : null),
+    pxPerDb: u ? u.bbox.height / (devicePixelRatio || 1) / (u.scales.y.max - u.scales.y.min) : null,
   };
 };
+
+// for the browser tests: every plot's y-range and its curves' extent inside its band
+window.roomcorrPlots = where => [...plots, ...designPlots].filter(u => !where || el(where).contains(u.root)).map(u => ({
+  title: u.root.parentElement.querySelector("h3") ? u.root.parentElement.querySelector("h3").firstChild.textContent : "",
+  y: [u.scales.y.min, u.scales.y.max], band: u.rcBand || null, extent: bandExtent(u, u.rcBand || null),
+}));
 
 function connectLive() {
   const proto = location.protocol === "https:" ? "wss" : "ws";
@@ -1022,7 +1283,7 @@ document.querySelectorAll("nav button").forEach(b => b.addEventListener("click",
   if (b.dataset.tab === "design" && !designPlots.length) schedule();
 }));
 window.addEventListener("resize", () => {
-  [...plots, ...designPlots].forEach(p => p.setSize(plotSize()));
+  [...plots, ...designPlots].forEach(p => { p.setSize(plotSize()); if (p.rcFit) p.rcFit(p); });
   heatMaps.forEach(h => h.draw());
 });
 loadRoom().then(setupDesign).then(connectLive).catch(err => status(String(err.message || err), true));

@@ -111,7 +111,9 @@ function setAcknowledged(ack, when) {
 
 function updateButtons() {
   el("m-start").disabled = !measure.acknowledged || measure.running;
+  // Stop always works (it silences whatever plays), but it is red only while sound may play
   el("m-stop").disabled = false;
+  el("m-stop").classList.toggle("idle", !measure.running);
   document.querySelectorAll("#m-speakers .m-tone").forEach(b => { b.disabled = !measure.acknowledged || measure.running; });
   document.querySelectorAll("#m-setup input, #m-setup select, #m-setup .m-remove, #m-add-speaker")
     .forEach(i => { i.disabled = measure.running; });
@@ -338,9 +340,12 @@ function drawMeter() {
   ctx.fillStyle = "#5d6b76";
   ctx.font = "10px system-ui, sans-serif";
   [-60, -48, -36, -24, -12, -6, 0].forEach(db => ctx.fillText(String(db), Math.min(meterX(db, w), w - 12), h - 2));
-  let txt = `input peak ${peak.toFixed(1)} dBFS, rms ${rms.toFixed(1)} dBFS`;
-  if (peak <= -119) txt = "input: no signal yet (the meter runs while sound plays)";
-  else if (peak < -60) txt = `input peak ${peak.toFixed(1)} dBFS: quiet`;
+  // the words describe what the marks show: the held peak (purple mark) and the level now
+  const held = measure.peakHold;
+  let txt = `input peak ${held.toFixed(1)} dBFS (purple mark, held 1.5 s); now ` +
+    (peak <= -119 ? "silent" : `peak ${peak.toFixed(1)} dBFS, rms ${rms.toFixed(1)} dBFS`);
+  if (held <= -119) txt = "input: no signal yet (the meter runs while sound plays)";
+  else if (held < -60) txt += ": quiet";
   el("m-meter-text").textContent = txt;
   // the level sinks when no blocks arrive (between sweeps)
   measure.level = { peak: Math.max(-120, peak - 1.5), rms: Math.max(-120, rms - 1.5) };
