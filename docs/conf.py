@@ -44,10 +44,19 @@ myst_enable_extensions = ["colon_fence", "deflist", "dollarmath", "attrs_inline"
 myst_heading_anchors = 3
 
 # The Python API: autodoc reads the docstrings, numpydoc their sections.
-autodoc_default_options = {"members": True, "member-order": "bysource"}
+# Every object once, in the module that defines it (a package's __all__ re-exports are
+# not documented again).
+autodoc_default_options = {
+    "members": True,
+    "member-order": "bysource",
+    "ignore-module-all": True,
+}
 autodoc_typehints = "none"  # the numpydoc sections carry the types
 autodoc_mock_imports = ["sounddevice", "jack", "uvicorn"]
 numpydoc_show_class_members = False
+# numpydoc loads autosummary; we do not use it, and its scan of the pages at start-up would
+# read the API pages before docs/_ext/roomcorr_api.py has written them afresh.
+autosummary_generate = False
 numpydoc_class_members_toctree = False
 numpydoc_xref_param_type = False
 

@@ -12,6 +12,7 @@ import hashlib
 import importlib
 import pkgutil
 import re
+import sys
 from pathlib import Path
 from typing import Any
 
@@ -105,18 +106,19 @@ def _label(module: str, number: str) -> str:
     return f"R{digest}-{number}"
 
 
-def _module_of(what: str, name: str) -> str:
+def _module_of(what: str, name: str, obj: Any) -> str:
+    """The module whose docstring holds the citations an object's ``[1]_`` points at."""
     if what == "module":
         return name
+    defined_in = getattr(obj, "__module__", None)
+    if isinstance(defined_in, str) and defined_in.startswith("roomcorr"):
+        return defined_in
     parts = name.split(".")
-    for k in range(len(parts), 0, -1):
+    for k in range(len(parts) - 1, 0, -1):
         candidate = ".".join(parts[:k])
-        if candidate in _MODULES:
+        if candidate in sys.modules:
             return candidate
     return name
-
-
-_MODULES: set[str] = set()
 
 
 def _process_docstring(
@@ -130,9 +132,8 @@ def _process_docstring(
     ``[1]_`` that point at them (also from the module's functions and classes) get
     a label of their module, so ``[1]`` of two modules stay apart.
     """
-    module = _module_of(what, name)
+    module = _module_of(what, name, obj)
     if what == "module":
-        _MODULES.add(name)
         out: list[str] = []
         for line in lines:
             if out and _UNDERLINE.match(line) and out[-1].strip() and not _UNDERLINE.match(out[-1]):
