@@ -252,23 +252,29 @@ def _print_area_lines(ch: Any) -> None:
 def _print_design_summary(result: Any, out: Path, entries: list[dict]) -> None:
     import numpy as np
 
+    from roomcorr.deliver.export import read_manifest
+    from roomcorr.deliver.figures import figures_of_manifest, fmt_db
     from roomcorr.design.safety import PEAK_BAND
 
+    # every figure from the manifest's figures block (one place per figure)
+    figs = figures_of_manifest(read_manifest(out))
+    per_channel = {c["name"]: c for c in figs["channels"]}
     print(f"Design written to {out}  ({len(entries) + 1} files, manifest.json lists them)")
-    print(f"Common pre-gain: {result.pre_gain_db:+.2f} dB (same for every channel)")
-    print(f"Peak gain below is the largest gain from {PEAK_BAND}, pre-gain included")
+    print(f"Common pre-gain: {fmt_db(figs['pre_gain_db'], 2, True)} (same for every channel)")
+    print(f"Largest boost and peak gain below are the filters' largest gain from {PEAK_BAND}, "
+          "boost before and peak gain after the pre-gain")
     for ch in result.channels:
         lo, hi = ch.band_hz
         inband = (result.freq_hz >= lo) & (result.freq_hz <= hi)
         corr = ch.correction_db[inband]
         withheld = ch.boost_withheld_db[inband]
-        stats = [s for s in result.stats if s.channel == ch.index]
-        peak = max(s.peak_gain_db for s in stats)
-        worst = max(s.worst_case_gain_db for s in stats)
-        boost, cut = max(float(corr.max()), 0.0), min(float(corr.min()), 0.0)
+        f = per_channel[ch.name]
+        cut = min(float(corr.min()), 0.0)
         print(
-            f"  {ch.name:>6}: band {lo:6.0f} Hz - {hi:6.0f} Hz | largest boost {boost:4.1f} dB, "
-            f"largest cut {cut:5.1f} dB | peak gain {peak:+.2f} dB, worst-case gain {worst:+.2f} dB"
+            f"  {ch.name:>6}: band {lo:6.0f} Hz - {hi:6.0f} Hz | largest boost "
+            f"{fmt_db(f['largest_boost_db'])}, largest cut {fmt_db(cut)} | peak gain "
+            f"{fmt_db(f['peak_gain_db'], 2, True)}, worst-case gain "
+            f"{fmt_db(f['worst_case_gain_db'], 2, True)}"
         )
         _print_area_lines(ch)
         if withheld.size and withheld.max() > 1.0:
@@ -283,7 +289,8 @@ def _print_design_summary(result: Any, out: Path, entries: list[dict]) -> None:
             print(
                 f"  {e['channel_name']:>6}: {e['sections']} biquads at {e['sample_rate']} Hz, "
                 f"fit error {e['fit_rms_error_db']:.1f} dB RMS ({e['fit_max_error_db']:.1f} dB "
-                f"max), pre-gain {e['pre_gain_db']:+.2f} dB, peak gain {e['peak_gain_db']:+.2f} dB"
+                f"max), pre-gain {fmt_db(e['pre_gain_db'], 2, True)}, peak gain "
+                f"{fmt_db(e['peak_gain_db'], 2, True)}"
             )
     _print_system_summary(result)
     if result.mixed_phase is not None:
@@ -355,6 +362,11 @@ def _run_design(args: argparse.Namespace) -> int:
         on_source=lambda meas: print(f"Using the latest measurement: {meas}"),
     )
     _print_design_summary(result, out, entries)
+    from roomcorr.deliver.export import read_manifest
+
+    basis = read_manifest(out).get("timing_basis")  # the manifest's words, as the report's
+    if isinstance(basis, dict) and basis.get("label"):
+        print(f"Timing basis of the measurement: {basis['label']}")
     return 0
 
 
@@ -783,6 +795,10 @@ def _add_compare(sub: Any) -> argparse.ArgumentParser:
     p.add_argument(
         "--no-filter-check", action="store_true", help="skip the check of the existing filters"
     )
+    p.add_argument(
+        "--design", metavar="RUN",
+        help="design run to check (default: the one made from measurement A)",
+    )
     p.add_argument("--json", action="store_true", help="machine-readable output")
     p.add_argument("--plot", metavar="FILE.png", help="also draw both responses overlaid")
     return p
@@ -800,7 +816,7 @@ def _run_compare(args: argparse.Namespace) -> int:
         raise SettingsError(f"--temperature {args.temperature:g}: expected -30 to 60 °C")
     res = compare_command(
         args.a, args.b, room_dir=args.room, temperature_c=args.temperature,
-        fit_check=not args.no_filter_check, plot=args.plot,
+        fit_check=not args.no_filter_check, plot=args.plot, design=args.design,
     )
     if args.json:
         print(json.dumps(res, indent=2))
@@ -808,6 +824,44 @@ def _run_compare(args: argparse.Namespace) -> int:
         print("\n".join(format_comparison(res)))
     if args.plot:
         print(f"plot written to {args.plot}", file=sys.stderr if args.json else sys.stdout)
+    return 0
+
+
+def _add_import(sub: Any) -> argparse.ArgumentParser:
+    p = sub.add_parser(
+        "import",
+        help="make a measurement run of the room from existing impulse-response WAVs",
+        description="Inside a room folder: check impulse-response WAVs (one per microphone "
+        "position, one channel per loudspeaker) as design checks them, copy and hash them "
+        "into a new measurement run, so history, design, compare and the app work on them. "
+        "Nothing is written when a file is refused.",
+    )
+    p.add_argument("files", nargs="+", metavar="FILE", help="WAV files (or folders of them)")
+    p.add_argument("--names", metavar="A,B,...", help="channel names, one per channel")
+    p.add_argument(
+        "--timing-basis", metavar="BASIS", default="unknown",
+        help="what the responses' time origin is: unknown (default), loopback, single-device, "
+        "or reference:CHANNEL (one loudspeaker's arrival, as with the acoustic reference)",
+    )
+    p.add_argument("--note", metavar="TEXT", help="a note shown by history")
+    p.add_argument("--room", metavar="ROOM_DIR", help="room folder (default: the one you are in)")
+    return p
+
+
+def _run_import(args: argparse.Namespace) -> int:
+    from roomcorr import rooms
+    from roomcorr.app.imports import import_measurement
+
+    room = rooms.open_room(args.room) if args.room else rooms.find_room()
+    if room is None:
+        room = rooms.open_room(".")  # raises with the message on how to make a room folder
+    res = import_measurement(room, args.files, args.names, args.timing_basis, args.note)
+    print(
+        f"imported {res['positions']} position(s) x {res['channels']} channel(s) "
+        f"({', '.join(res['names'])}), {res['sample_rate']} Hz, as measurement {res['run_id']}"
+    )
+    print(f"  timing basis: {res['timing_basis']['label']}")
+    print("  next: 'roomcorr design' or 'roomcorr compare' in the room folder")
     return 0
 
 
@@ -861,6 +915,7 @@ _COMMANDS: list[tuple[str, Callable[[Any], argparse.ArgumentParser], Callable[..
     ("init", _add_init, _run_init),
     ("history", _add_history, _run_history),
     ("compare", _add_compare, _run_compare),
+    ("import", _add_import, _run_import),
     ("ui", _add_ui, _run_ui),
 ]
 

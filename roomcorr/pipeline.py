@@ -24,9 +24,9 @@ from roomcorr.checked import regular_file
 from roomcorr.design.align import SystemPlan, apply_plan, plan_system, subwoofer_band_hz
 from roomcorr.design.area import Prediction, design_channel
 from roomcorr.design.correction import align_target, correction_curve
-from roomcorr.design.fir import default_n_taps, synthesize_fir
-from roomcorr.design.mixedphase import MixedPhaseDesign, apply_mixed_phase
-from roomcorr.design.safety import FilterStats, apply_safety
+from roomcorr.design.fir import default_n_taps, synthesize_fir, taps_for_latency
+from roomcorr.design.mixedphase import MixedPhaseDesign, apply_mixed_phase, latency_samples
+from roomcorr.design.safety import FilterStats, apply_safety, fit_under_cap
 from roomcorr.design.target import AUTO_LIMITS_HZ, target_from_points, target_from_table
 from roomcorr.errors import InputFileError, SettingsError
 from roomcorr.grid import interp_log, log_grid, points_per_octave_of
@@ -354,18 +354,37 @@ def run_design(
     channels = design_curves(analysis, settings, target_shape)
     freq, arrival, weights = analysis.freq_hz, analysis.arrival_s, analysis.weights
     lowest = min(ch.band_hz[0] for ch in channels)
-    firs: dict[int, np.ndarray] = {}
-    for rate in d.sample_rates:
-        n_taps = fir_taps_for(rate, d.taps, lowest)
-        firs[rate] = np.stack(
-            [synthesize_fir(freq, ch.correction_db, rate, n_taps) for ch in channels]
-        )
-    mixed = None
-    if d.phase == "mixed":  # same magnitudes, the loudspeaker's excess phase undone
-        firs, mixed = apply_mixed_phase(irs, fs, arrival, freq, firs, d.latency_ms, weights)
-    system = plan_system(irs, fs, freq, channels, target_shape, firs, d, weights)
-    if system is not None:
-        firs = apply_plan(firs, system)
+    n_taps = {rate: fir_taps_for(rate, d.taps, lowest) for rate in d.sample_rates}
+    if d.phase == "mixed" and d.taps is None:  # automatic taps follow the latency
+        n_taps = {
+            r: taps_for_latency(n, latency_samples(d.latency_ms, r)) for r, n in n_taps.items()
+        }
+    built: dict[str, object] = {"mixed": None, "system": None, "planned": False}
+
+    def build(curves: list[np.ndarray]) -> dict[int, np.ndarray]:
+        firs = {
+            rate: np.stack([synthesize_fir(freq, c, rate, n) for c in curves])
+            for rate, n in n_taps.items()
+        }
+        if d.phase == "mixed":  # same magnitudes, the loudspeaker's excess phase undone
+            firs, built["mixed"] = apply_mixed_phase(
+                irs, fs, arrival, freq, firs, d.latency_ms, weights
+            )
+        if not built["planned"]:  # planned once, on the filters as first built
+            built["system"] = plan_system(irs, fs, freq, channels, target_shape, firs, d, weights)
+            built["planned"] = True
+        if built["system"] is not None:
+            firs = apply_plan(firs, built["system"])
+        return firs
+
+    # the realised filters are fitted under the boost cap; apply_safety stays the final proof
+    firs, fitted, _ = fit_under_cap(
+        build, [ch.correction_db for ch in channels], freq, d.max_boost_db
+    )
+    for ch, curve in zip(channels, fitted, strict=True):
+        ch.correction_db = curve
+    mixed = built["mixed"]
+    system = built["system"]
     firs, pre_gain, stats = apply_safety(firs, d.ceiling_db, d.max_boost_db)
     return DesignResult(
         freq_hz=freq,

@@ -37,7 +37,9 @@ def room_runs(tmp_path_factory):
 
     base = tmp_path_factory.mktemp("cmp")
     room = rooms.init_room(base / "room", name="test room")
-    m1 = rooms.add_measurement(room, [DEMO])
+    # the demo room was synthesised on one absolute time origin: stated as a loopback basis
+    absolute = {"timing_basis": {"kind": "loopback"}}
+    m1 = rooms.add_measurement(room, [DEMO], record=absolute)
     irs, fs, _ = read_ir_set(rooms.measurement_files(m1))
     assert fs == FS
     moved = irs.copy()
@@ -47,7 +49,7 @@ def room_runs(tmp_path_factory):
     src.mkdir()
     for p in range(moved.shape[0]):
         write_wav(src / f"pos{p + 1}.wav", moved[p], fs)
-    m2 = rooms.add_measurement(room, [src])
+    m2 = rooms.add_measurement(room, [src], record=absolute)
     settings = rooms.load_room_settings(room)
     settings.design.sample_rates = (48000,)
     with rooms.new_run(room, "design", info={"measurement": m2.name}) as design:

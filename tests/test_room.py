@@ -335,18 +335,26 @@ def test_compare_default_last_two_with_filter_fit(room: R.Room):
     m1 = _measure(room, room_set(SPK_L, SPK_R, C20))
     _design(room, m1)
     # Gain-only change of the right loudspeaker (-3 dB): the level change is
-    # recovered and the old filters still fit (the level is arbitrary).
+    # recovered; each channel's correction still fits its shape (the level is
+    # arbitrary), but the old level trims no longer balance the pair: re-design.
     m2 = _measure(room, room_set(SPK_L, SPK_R, C20, gain_r=10 ** (-3 / 20)))
     res = compare_measurements(room=room)
-    assert (res["before"], res["after"]) == (str(m1), str(m2))
+    # runs are named by their place in the room, not by absolute paths
+    assert (res["before"], res["after"]) == (f"measurements/{m1.name}", f"measurements/{m2.name}")
     right = res["channels"][1]
     assert right["name"] == "right"
     assert right["level_change_db"] == pytest.approx(-3.0, abs=0.5)
     assert abs(right["distance_change_m"]) < 0.02
     fit = res["filter_fit"]
-    assert fit["available"] and fit["still_fit"]
+    assert fit["available"] and fit["made_from"] == m1.name
     for ch in fit["channels"]:
         assert ch["old_rms_db"] == pytest.approx(ch["fresh_rms_db"], abs=0.2)
+        assert ch["still_fit"]
+    assert fit["verdict"] == "re-design" and not fit["still_fit"]
+    assert any("level of" in r and "trims" in r for r in fit["reasons"])
+    trims = {c["name"]: c["trim_change_db"] for c in fit["system"]["channels"]}
+    # the right is 3 dB quieter now: a fresh design trims the left 3 dB more
+    assert trims["left"] - trims["right"] == pytest.approx(-3.0, abs=0.3)
 
 
 def test_compare_moved_speaker_with_run_ids_and_temperature(room: R.Room):
@@ -484,7 +492,7 @@ def test_design_source_from_the_manifest_file_list(room: R.Room):
         )
     assert history(room)[-1]["source"] == m1.name
     res = compare_measurements(m1, m2, room=room)
-    assert res["filter_fit"]["design"] == str(d)
+    assert res["filter_fit"]["design"] == d.name  # by run id, not by absolute path
 
 
 def test_compare_accepts_lists_of_files(tmp_path: Path):

@@ -11,12 +11,14 @@ from typing import Any
 
 import numpy as np
 
-from roomcorr.analysis.compare import compare_sets, filter_fit
+from roomcorr.analysis.compare import compare_sets, filter_fit, fit_verdict, system_fit
 from roomcorr.audio_io import read_ir_set
 from roomcorr.deliver.atomic import is_link_or_outside, sha256_of
 from roomcorr.deliver.export import load_design_curves, read_manifest
+from roomcorr.deliver.system import manifest_fields
 from roomcorr.design.fir import fir_response_db as _fir_db
 from roomcorr.errors import InputFileError, OutputError, RoomcorrError
+from roomcorr.measure.timing import common_origin, timing_basis
 from roomcorr.pipeline import default_channel_names, run_design
 from roomcorr.report.compare import write_comparison_plot
 from roomcorr.rooms import (
@@ -29,7 +31,6 @@ from roomcorr.rooms import (
     measurement_files,
     open_room,
     resolve_run,
-    run_sort_key,
     verified,
 )
 from roomcorr.settings import find_preset, settings_from_dict
@@ -54,14 +55,46 @@ def fir_response_db(fir: np.ndarray, fs: int, freq_hz: np.ndarray) -> np.ndarray
     return out.reshape(np.shape(fir)[:-1] + (f.size,))
 
 
-def _channel_names(folder: Path, n: int) -> list[str]:
+def _record(folder: Path) -> dict[str, Any] | None:
+    """The ``measurement.json`` of a measurement folder, or None (tolerant reader)."""
     record = folder / "measurement.json"
-    if folder.is_dir() and record.is_file():
-        with contextlib.suppress(OSError, json.JSONDecodeError, AttributeError):
-            names = json.loads(record.read_text(encoding="utf-8")).get("channel_names")
-            if isinstance(names, list) and len(names) == n:
-                return [str(x) for x in names]
+    if folder.is_dir() and record.is_file() and not record.is_symlink():
+        with contextlib.suppress(OSError, UnicodeDecodeError, json.JSONDecodeError):
+            data = json.loads(record.read_text(encoding="utf-8"))
+            return data if isinstance(data, dict) else None
+    return None
+
+
+def _channel_names(folder: Path, n: int) -> list[str]:
+    rec = _record(folder) or {}
+    names = rec.get("channel_names")
+    if not isinstance(names, list):
+        settings = rec.get("settings")
+        names = settings.get("names") if isinstance(settings, dict) else None
+    if isinstance(names, list) and len(names) == n:
+        return [str(x) for x in names]
     return default_channel_names(n)
+
+
+def _gates_failed(folder: Path) -> list[str]:
+    """Names of the quality gates a measurement run's record says it failed."""
+    failed: set[str] = set()
+    for pos in (_record(folder) or {}).get("positions", []) or []:
+        if not isinstance(pos, dict) or not pos.get("file"):
+            continue
+        for ch in pos.get("channels", []) or []:
+            for g in (ch or {}).get("gates", []) or []:
+                if isinstance(g, dict) and g.get("passed") is False:
+                    failed.add(str(g.get("name")))
+    return sorted(failed)
+
+
+def run_label(path: Path, room: Room | None) -> str:
+    """A run named by its id and folder inside the room (``measurements/ID``), else the path."""
+    if room is not None:
+        with contextlib.suppress(ValueError):
+            return path.resolve().relative_to(room.root.resolve()).as_posix()
+    return str(path)
 
 
 def _run_id_of(path: Path, room: Room | None) -> str | None:
@@ -73,17 +106,16 @@ def _run_id_of(path: Path, room: Room | None) -> str | None:
     return None
 
 
-def _design_for(room: Room, meas_id: str | None, before: Path) -> Path | None:
-    """The newest complete design made from measurement ``meas_id`` (else the newest
-    design finished before run folder ``before`` was started)."""
-    designs = list_runs(room, "design", include_incomplete=False)
-    if meas_id is not None:
-        own = [d for d in designs if design_source(d) == meas_id]
-        if own:
-            return own[-1].path
-    key = run_sort_key(before)
-    older = [d for d in designs if run_sort_key(d.path) < key]
-    return older[-1].path if older else None
+def _design_for(room: Room, meas_id: str | None) -> Path | None:
+    """The newest complete design made from measurement run ``meas_id`` (None: none)."""
+    if meas_id is None:
+        return None
+    own = [
+        d
+        for d in list_runs(room, "design", include_incomplete=False)
+        if design_source(d) == meas_id
+    ]
+    return own[-1].path if own else None
 
 
 def _contain_design_inputs(design_dir: Path, manifest: dict[str, Any], settings: Any) -> None:
@@ -108,25 +140,40 @@ def _contain_design_inputs(design_dir: Path, manifest: dict[str, Any], settings:
             raise OutputError(f"{where}: missing or changed since the design (SHA-256)")
 
 
-def _fit_check(design_dir: Path, irs_b, fs_b: int) -> dict[str, Any]:
-    """Old filters (from ``design_dir``) vs a fresh design on the new measurement."""
-    room = find_room(design_dir)
-    verified(room, design_dir, [design_dir / "manifest.json", design_dir / "design.npz"])
+def _fit_check(
+    design_dir: Path,
+    irs_b: np.ndarray,
+    fs_b: int,
+    cmp: dict[str, Any],
+    gates_failed: list[str],
+    room: Room | None,
+) -> dict[str, Any]:
+    """Old filters (from ``design_dir``) against a fresh design on the new measurement:
+    magnitude per channel, alignment, trims, polarity and crossover, and the verdict."""
+    room_of = find_room(design_dir)
+    verified(room_of, design_dir, [design_dir / "manifest.json", design_dir / "design.npz"])
     old = load_design_curves(design_dir)
     manifest = read_manifest(design_dir)
     settings = settings_from_dict(manifest.get("settings", {}), source=str(design_dir))
     _contain_design_inputs(design_dir, manifest, settings)
+    label = run_label(design_dir, room)
     rates = sorted(old["firs"])
     if not rates:
-        return {"available": False, "reason": f"{design_dir}: holds no FIR filters"}
+        return {"available": False, "reason": f"{label}: holds no FIR filters"}
     rate = fs_b if fs_b in old["firs"] else min(rates, key=lambda r: abs(r - fs_b))
     settings.design.sample_rates = (rate,)
-    fresh = run_design(irs_b, fs_b, settings)
+    names = None
+    if settings.design.channel_names is None:
+        names = [str(ch["name"]) for ch in cmp["channels"]]
+        man_ch = manifest.get("channels")
+        if isinstance(man_ch, list) and len(man_ch) == len(names):
+            names = [str(c.get("name", n)) for c, n in zip(man_ch, names, strict=True)]
+    fresh = run_design(irs_b, fs_b, settings, channel_names=names)
     old_firs = old["firs"][rate]
     if old_firs.shape[0] != len(fresh.channels):
         return {
             "available": False,
-            "reason": f"{design_dir}: {old_firs.shape[0]} channels, new measurement has "
+            "reason": f"{label}: {old_firs.shape[0]} channels, new measurement has "
             f"{len(fresh.channels)}",
         }
     freq = fresh.freq_hz
@@ -137,13 +184,53 @@ def _fit_check(design_dir: Path, irs_b, fs_b: int) -> dict[str, Any]:
         fit = filter_fit(freq, ch.average_db, old_db, new_db, ch.target_db, ch.band_hz)
         fit.update(index=ch.index, name=ch.name, band_hz=[round(x, 1) for x in ch.band_hz])
         per_channel.append(fit)
+    system = None
+    new_fields = manifest_fields(fresh)
+    old_outputs = manifest.get("outputs")
+    if isinstance(old_outputs, list) and new_fields.get("outputs"):
+        if len(old_outputs) != len(new_fields["outputs"]):
+            return {"available": False, "reason": f"{label}: outputs differ in number"}
+        old_xo = (manifest.get("system") or {}).get("crossover")
+        new_xo = (new_fields.get("system") or {}).get("crossover")
+        system = system_fit(
+            old_outputs,
+            new_fields["outputs"],
+            old_xo if isinstance(old_xo, dict) else None,
+            new_xo if isinstance(new_xo, dict) else None,
+            [bool(c["polarity_inverted"]) for c in cmp["channels"]],
+        )
+    elif any(c["polarity_inverted"] for c in cmp["channels"]):
+        system = {
+            "channels": [],
+            "reasons": [
+                f"polarity of {c['name']} inverted since the design's measurement"
+                for c in cmp["channels"]
+                if c["polarity_inverted"]
+            ],
+        }
+    verdict = fit_verdict(
+        per_channel, system, [c["level_change_db"] for c in cmp["channels"]], gates_failed
+    )
     return {
         "available": True,
-        "design": str(design_dir),
+        "design": design_dir.name,
+        "design_folder": label,
+        "made_from": design_source_of(room_of, design_dir),
         "sample_rate": rate,
-        "still_fit": bool(np.all([c["still_fit"] for c in per_channel])),
+        **verdict,
         "channels": per_channel,
+        "system": system,
     }
+
+
+def design_source_of(room: Room | None, design_dir: Path) -> str | None:
+    """Run id of the measurement a design run was made from, if it records one."""
+    if room is None:
+        return None
+    run = next(
+        (r for r in list_runs(room, "design") if r.path.resolve() == design_dir.resolve()), None
+    )
+    return design_source(run) if run is not None else None
 
 
 def _resolve_set(room: Room | None, ref: Any) -> tuple[Path, list[Path]]:
@@ -164,6 +251,12 @@ def _resolve_set(room: Room | None, ref: Any) -> tuple[Path, list[Path]]:
     return p, files
 
 
+def _basis_of(path: Path) -> dict[str, Any]:
+    """Timing basis of a measurement folder (or the folder of a WAV file)."""
+    folder = path if path.is_dir() else path.parent
+    return timing_basis(_record(folder))
+
+
 def compare_measurements(
     a: str | os.PathLike[str] | list | None = None,
     b: str | os.PathLike[str] | list | None = None,
@@ -171,6 +264,7 @@ def compare_measurements(
     temperature_c: float | None = None,
     fit_check: bool = True,
     with_curves: bool = False,
+    design: str | os.PathLike[str] | None = None,
 ) -> dict[str, Any]:
     """Compare two measurements (folders, WAV files or run ids of ``room``).
 
@@ -186,12 +280,17 @@ def compare_measurements(
         Overrides the settings' ``design.temperature_c`` (default 20 °C).
     fit_check : bool
         Also judge whether the design made from ``a`` still fits ``b``.
+    design : str or path, optional
+        The design to judge instead (a design run id of the room, or its folder).
 
     Returns
     -------
     dict
         The result of :func:`roomcorr.analysis.compare.compare_sets` plus
-        ``before``, ``after``, ``speed_of_sound_formula`` and ``filter_fit``.
+        ``before``, ``after`` (run ids inside the room, else paths), ``timing``
+        (each run's basis from :func:`roomcorr.measure.timing.timing_basis` and
+        :func:`roomcorr.measure.timing.common_origin`), ``speed_of_sound_formula``
+        and ``filter_fit``.
     """
     if a is None or b is None:
         if room is None:
@@ -222,9 +321,22 @@ def compare_measurements(
             "compare measurements of the same loudspeakers"
         )
     names = _channel_names(pb if pb.is_dir() else pb.parent, irs_b.shape[1])
-    res = compare_sets(irs_a, fs_a, irs_b, fs_b, temperature_c, names, with_curves=with_curves)
-    res["before"] = str(pa)
-    res["after"] = str(pb)
+    basis_a, basis_b = _basis_of(pa), _basis_of(pb)
+    origin = common_origin(basis_a, basis_b)
+    res = compare_sets(
+        irs_a,
+        fs_a,
+        irs_b,
+        fs_b,
+        temperature_c,
+        names,
+        with_curves=with_curves,
+        origin=origin["origin"],
+        reference_index=origin["reference_channel"],
+    )
+    res["before"] = run_label(pa, room)
+    res["after"] = run_label(pb, room)
+    res["timing"] = {"before": basis_a, "after": basis_b, **origin}
     res["before_files"] = [str(f) for f in files_a]
     res["after_files"] = [str(f) for f in files_b]
     res["speed_of_sound_formula"] = (
@@ -232,12 +344,24 @@ def compare_measurements(
     )
     fit: dict[str, Any] = {"available": False, "reason": "not asked for"}
     if fit_check:
-        design = _design_for(room, _run_id_of(pa, room), pb) if room is not None else None
-        if design is None:
-            fit = {"available": False, "reason": "no earlier design found in the room folder"}
+        if design is not None:
+            chosen: Path | None = resolve_run(room, design, kind="design")
+            where = None
+        else:
+            meas_id = _run_id_of(pa, room)
+            chosen = _design_for(room, meas_id) if room is not None else None
+            where = (
+                f"no design made from measurement {meas_id} in the room folder; choose one "
+                "with --design RUN"
+                if meas_id
+                else "the earlier measurement is not a run of a room; choose a design with "
+                "--design RUN"
+            )
+        if chosen is None:
+            fit = {"available": False, "reason": where}
         else:
             try:
-                fit = _fit_check(design, irs_b, fs_b)
+                fit = _fit_check(chosen, irs_b, fs_b, res, _gates_failed(pb), room)
             except RoomcorrError as exc:
                 fit = {"available": False, "reason": " ".join(str(exc).split())}
     res["filter_fit"] = fit
@@ -251,6 +375,7 @@ def compare_command(
     temperature_c: float | None = None,
     fit_check: bool = True,
     plot: str | None = None,
+    design: str | None = None,
 ) -> dict[str, Any]:
     """What ``roomcorr compare`` does: compare two measurements, optionally drawing them.
 
@@ -266,6 +391,8 @@ def compare_command(
     plot : str, optional
         PNG file to draw both responses into
         (:func:`roomcorr.report.compare.write_comparison_plot`).
+    design : str, optional
+        Design run (id or folder) to judge instead of the one made from ``a``.
 
     Returns
     -------
@@ -282,6 +409,7 @@ def compare_command(
         temperature_c=temperature_c,
         fit_check=fit_check,
         with_curves=bool(plot),
+        design=design,
     )
     if plot:
         write_comparison_plot(res, plot)

@@ -29,6 +29,7 @@ from roomcorr.design.safety import PEAK_BAND, common_pre_gain_db, full_band_peak
 from roomcorr.design.target import target_from_table
 from roomcorr.errors import SettingsError
 from roomcorr.grid import log_grid
+from roomcorr.measure.timing import timing_basis
 from roomcorr.pipeline import (
     Analysis,
     DesignResult,
@@ -59,6 +60,19 @@ def names_from_measurement(files: list[Path], settings: Settings) -> None:
         if names:
             settings.design = design_from_dict({"channel_names": names}, base=settings.design)
             return
+
+
+def basis_of_files(files: list[Path]) -> dict[str, Any]:
+    """Timing basis of the measurement the files come from
+    (:func:`roomcorr.measure.timing.timing_basis`; unknown unless one folder records it)."""
+    folders = list(dict.fromkeys(Path(f).parent for f in files))
+    record = None
+    if len(folders) == 1 and not (folders[0] / "measurement.json").is_symlink():
+        try:
+            record = json.loads((folders[0] / "measurement.json").read_text(encoding="utf-8"))
+        except (OSError, UnicodeDecodeError, ValueError):
+            record = None
+    return timing_basis(record if isinstance(record, dict) else None)
 
 
 def design_from_files(
@@ -112,6 +126,8 @@ def design_from_files(
         "peak_gain_band": PEAK_BAND,
         # SHA-256 of every input, so the design can be reproduced and checked
         "inputs": input_digests(files, settings.design.calibration, settings.design.target),
+        # what the measurement's arrivals (and so the delays) are measured from
+        "timing_basis": basis_of_files(files),
     }
     if extra:
         info.update(extra)

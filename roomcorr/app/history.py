@@ -15,7 +15,9 @@ from roomcorr.analysis.compare import direct_arrival_s
 from roomcorr.audio_io import read_ir_set
 from roomcorr.deliver.atomic import atomic_write_text
 from roomcorr.deliver.export import read_manifest
+from roomcorr.deliver.figures import figures_of_manifest, fmt_db
 from roomcorr.errors import InputFileError, OutputError, RoomcorrError
+from roomcorr.measure.timing import timing_basis
 from roomcorr.rooms import (
     Room,
     check_run,
@@ -54,6 +56,7 @@ def _measurement_figures(run_dir: Path) -> dict[str, Any]:
     ]
     figs["peak_dbfs"] = round(float(20 * np.log10(np.max(np.abs(irs)) + 1e-30)), 1)
     record = run_dir / "measurement.json"
+    figs["timing_basis"] = timing_basis(None)
     if record.is_file():
         try:
             data = json.loads(record.read_text(encoding="utf-8"))
@@ -62,6 +65,7 @@ def _measurement_figures(run_dir: Path) -> dict[str, Any]:
         if not isinstance(data, dict):
             raise InputFileError(f"{record}: damaged (expected a JSON object)")
         figs.update(_record_figures(data))
+        figs["timing_basis"] = timing_basis(data)
     return figs
 
 
@@ -79,7 +83,12 @@ def _record_figures(data: dict[str, Any]) -> dict[str, Any]:
             if isinstance(v, int | float):
                 snr.append(float(v))
     if gates:
-        failed = sorted({str(g.get("name")) for g in gates if g.get("passed") is False})
+        failed = sorted({str(g.get("name")) for g in gates
+                         if g.get("passed") is False and g.get("severity") != "warning"})
+        warned = sorted({str(g.get("name")) for g in gates
+                         if g.get("passed") is False and g.get("severity") == "warning"})
+        if warned:
+            out["gates_warned"] = warned
         out["gates_passed"] = f"{len(gates) - sum(g.get('passed') is False for g in gates)}"
         out["gates_passed"] += f"/{len(gates)}"
         if failed:
@@ -93,15 +102,18 @@ def _design_figures(run_dir: Path) -> dict[str, Any]:
     man = read_manifest(run_dir)  # OutputError for a damaged manifest
     files = man["files"]
     firs = [e for e in files if e.get("kind") == "fir"]
-    figs: dict[str, Any] = {"pre_gain_db": _number(man.get("pre_gain_db")), "files": len(files)}
+    try:  # every figure from the manifest's figures block (roomcorr/deliver/figures.py)
+        stored = figures_of_manifest(man)
+    except ValueError as exc:
+        raise OutputError(f"{run_dir / 'manifest.json'}: {exc}") from None
+    figs: dict[str, Any] = {"pre_gain_db": stored["pre_gain_db"], "files": len(files)}
     if firs:
         figs["sample_rates"] = sorted({int(e["sample_rate"]) for e in firs if "sample_rate" in e})
-        for key in ("peak_gain_db", "worst_case_gain_db", "max_boost_db"):
-            vals = [_number(e[key]) for e in firs if key in e]
-            if None in vals:
-                raise OutputError(f"{run_dir / 'manifest.json'}: {key} is not a finite number")
-            if vals:
-                figs[key] = max(vals)
+        for key in ("largest_boost_db", "peak_gain_db", "worst_case_gain_db"):
+            if stored.get(key) is not None:
+                figs[key] = stored[key]
+    if stored.get("latency_ms"):
+        figs["latency_ms"] = stored["latency_ms"]
     bands = [c.get("band_hz") for c in man.get("channels", []) if isinstance(c, dict)]
     if bands and all(isinstance(b, list) and len(b) == 2 for b in bands):
         figs["band_hz"] = [min(float(b[0]) for b in bands), max(float(b[1]) for b in bands)]
@@ -128,8 +140,10 @@ def history(room: Room) -> list[dict[str, Any]]:
         ``kind, run_id, path, status ("complete", "incomplete" or "running"),
         started_utc, finished_utc, source`` (designs: the measurement used)
         and ``figures`` (measurements: positions, channels, sample_rate,
-        length_ms, arrival_ms per channel, peak_dbfs; designs: pre_gain_db,
-        peak/worst-case gain, boost, rates, band, target).
+        length_ms, arrival_ms per channel, peak_dbfs, timing_basis (from
+        :func:`roomcorr.measure.timing.timing_basis`); designs: the manifest's
+        figures block (pre_gain_db, largest_boost_db, peak_gain_db,
+        worst_case_gain_db, latency_ms when not 0), rates, band, target).
     """
     runs = list_runs(room)
     labels = run_labels(room)
@@ -190,10 +204,6 @@ def room_history(room_dir: str | os.PathLike[str]) -> dict[str, Any]:
     return {"room": str(room.root), "name": room_name(room), "runs": history(room)}
 
 
-def _fmt(v: Any, spec: str = "+.2f", unit: str = "") -> str:
-    return "-" if v is None else f"{v:{spec}}{unit}"
-
-
 def format_history(entries: list[dict[str, Any]], name: str = "") -> list[str]:
     """Lines for ``roomcorr history`` (one block per run, oldest first)."""
     lines = [f"Room {name}: {len(entries)} run(s)" if name else f"{len(entries)} run(s)"]
@@ -227,10 +237,12 @@ def format_history(entries: list[dict[str, Any]], name: str = "") -> list[str]:
                 extra.append(f"quality gates passed {f['gates_passed']}")
             if f.get("gates_failed"):
                 extra.append("failed: " + ", ".join(f["gates_failed"]))
+            if f.get("gates_warned"):
+                extra.append("WARNING: " + ", ".join(f["gates_warned"]))
             if "min_snr_db" in f:
                 extra.append(f"lowest SNR {f['min_snr_db']} dB")
-            if f.get("loopback") is False:
-                extra.append("no loopback (arrival includes system latency)")
+            if f.get("timing_basis"):
+                extra.append(f"timing: {f['timing_basis']['label']}")
             if extra:
                 lines.append("      " + "; ".join(extra))
         elif e["kind"] == "design" and f:
@@ -240,12 +252,15 @@ def format_history(entries: list[dict[str, Any]], name: str = "") -> list[str]:
                 f"      target {f.get('target', '-')}, band {band_txt}, rates "
                 + ",".join(str(r) for r in f.get("sample_rates", []))
             )
-            lines.append(
-                f"      pre-gain {_fmt(f.get('pre_gain_db'), unit=' dB')}, peak gain "
-                f"{_fmt(f.get('peak_gain_db'), unit=' dB')}, worst case "
-                f"{_fmt(f.get('worst_case_gain_db'), unit=' dB')}, boost up to "
-                f"{_fmt(f.get('max_boost_db'), '.1f', ' dB')}"
+            text = (
+                f"      pre-gain {fmt_db(f.get('pre_gain_db'), 2, True)}, largest boost "
+                f"{fmt_db(f.get('largest_boost_db'))}, peak gain "
+                f"{fmt_db(f.get('peak_gain_db'), 2, True)}, worst-case gain "
+                f"{fmt_db(f.get('worst_case_gain_db'), 2, True)}"
             )
+            if f.get("latency_ms"):
+                text += f", latency {f['latency_ms']:g} ms"
+            lines.append(text)
         elif e["status"] == "incomplete":
             lines.append("      interrupted before it finished; ignored by other commands")
     return lines

@@ -8,6 +8,7 @@ from typing import Any
 from roomcorr import rooms
 from roomcorr.app.explore import run_folder
 from roomcorr.deliver.export import load_design_curves, read_manifest
+from roomcorr.deliver.figures import figures_of_manifest
 from roomcorr.deliver.system import system_sentences
 from roomcorr.report.html import write_report
 from roomcorr.report.summary import summary_sentences
@@ -43,9 +44,10 @@ def report_folder(
     path = write_report(folder, compare_with=compare_with, out_dir=out_dir)
     lines: list[str] = []
     if (folder / "manifest.json").is_file() and (folder / "design.npz").is_file():
-        caps = (read_manifest(folder).get("settings") or {}).get("design", {})
+        manifest = read_manifest(folder)
+        caps = (manifest.get("settings") or {}).get("design", {})
         curves = load_design_curves(folder)
-        lines += summary_sentences(curves, caps.get("max_boost_db"))
+        lines += summary_sentences(curves, caps.get("max_boost_db"), figures_of_manifest(manifest))
         lines += system_sentences(system_fields(curves))
     return path, lines
 

@@ -40,6 +40,7 @@ from roomcorr.deliver.atomic import (
     sha256_of,
     staged_folder,
 )
+from roomcorr.deliver.figures import design_figures, figures_of_manifest
 from roomcorr.deliver.system import manifest_fields, system_curves, write_extra_formats
 from roomcorr.design.area import area_arrays_of, area_fields_of
 from roomcorr.design.mixedphase import from_arrays as mixed_phase_from_arrays
@@ -81,6 +82,11 @@ def _manifest_problem(doc: Any, out: Path) -> str | None:
             return f"{e['path']}: 'sha256' is not a SHA-256 digest"
     if "pre_gain_db" in doc and _finite(doc["pre_gain_db"]) is None:
         return "'pre_gain_db' is not a finite number"
+    if "figures" in doc:
+        try:
+            figures_of_manifest(doc)
+        except (ValueError, TypeError) as exc:
+            return str(exc)
     for key in ("settings", "channels"):
         if key in doc and not isinstance(doc[key], dict if key == "settings" else list):
             return f"'{key}' has the wrong type"
@@ -478,6 +484,8 @@ def _write_design_files(
         "files": entries,
         "settings": settings_to_dict(result.settings),
         "latency": latency,
+        # the figures every reader shows, computed once (roomcorr/deliver/figures.py)
+        "figures": design_figures(entries, result.pre_gain_db, latency),
     }
     manifest.update(manifest_fields(result))
     if extra:

@@ -32,6 +32,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from roomcorr.deliver.atomic import atomic_write_text
+from roomcorr.deliver.figures import fmt_db
 from roomcorr.design import biquad as bq
 from roomcorr.design.iir_fit import IirDesign, IirStats
 from roomcorr.errors import OutputError
@@ -56,12 +57,12 @@ def pre_gain_note(pre_gain_db: float, fir_pre_gain_db: float | None) -> str:
     """Why the biquads' pre-gain is not the FIR's (one paragraph, both values stated)."""
     if fir_pre_gain_db is None:
         return (
-            f"Pre-gain {pre_gain_db:.2f} dB belongs to these biquads: it brings their highest "
+            f"Pre-gain {fmt_db(pre_gain_db, 2)} belongs to these biquads: it brings their highest "
             "peak (all channels and rates) to the ceiling."
         )
     return (
-        f"Pre-gain {pre_gain_db:.2f} dB for these biquads; the FIR files use "
-        f"{fir_pre_gain_db:.2f} dB. Each filter set gets the pre-gain that brings its own "
+        f"Pre-gain {fmt_db(pre_gain_db, 2)} for these biquads; the FIR files use "
+        f"{fmt_db(fir_pre_gain_db, 2)}. Each filter set gets the pre-gain that brings its own "
         "highest peak (all channels and rates) to the ceiling, and the few biquads follow the "
         "correction only approximately, so their peak, and with it the pre-gain, differs a "
         "little from the FIR's. Use each pre-gain with its own filters only."
@@ -114,7 +115,7 @@ def section_notes(
         if inside.any():
             cascade = bq.cascade_response_db(coeffs, f[inside], fs)
             excess = float(np.max(cascade - np.asarray(correction_db)[inside]))
-        where = f"the dip at {r['lo_hz']:.0f}-{r['hi_hz']:.0f} Hz"
+        where = f"the dip at {hz_range(r['lo_hz'], r['hi_hz'])}"
         head = (
             f"Section {i} ({s.f0_hz:.0f} Hz, {s.gain_db:+.1f} dB, Q {s.q:.1f}) sits beside "
             f"{where}, where {r['withheld_db']:.1f} dB of boost was refused"
@@ -139,6 +140,12 @@ def section_notes(
             )
         notes.append(f"{head}: {why}. {tail}")
     return notes
+
+
+def hz_range(lo_hz: float, hi_hz: float) -> str:
+    """``102-123 Hz``, or ``193 Hz`` when both ends round to the same whole hertz."""
+    lo, hi = f"{lo_hz:.0f}", f"{hi_hz:.0f}"
+    return f"{lo} Hz" if lo == hi else f"{lo}-{hi} Hz"
 
 
 def _channel_regions(fir: DesignResult | None, index: int) -> tuple[list, Any]:
@@ -266,11 +273,11 @@ def _table(
 ) -> str:
     lines = [
         f"roomcorr biquad correction: channel {name}, {fs} Hz, {len(secs)} sections",
-        f"Pre-gain: {pre:.2f} dB (one plain gain stage, anywhere in the chain)",
+        f"Pre-gain: {fmt_db(pre, 2)} (one plain gain stage, anywhere in the chain)",
         *_wrap(pre_gain_note(pre, fir_pre)),
-        f"Peak gain {st.peak_gain_db:.2f} dB (DC to Nyquist), worst-case gain (sum |h|) "
-        f"{st.worst_case_gain_db:.2f} dB, pre-gain included; largest boost "
-        f"{st.max_boost_db:.2f} dB",
+        f"Peak gain {fmt_db(st.peak_gain_db, 2)} (DC to Nyquist), worst-case gain (sum |h|) "
+        f"{fmt_db(st.worst_case_gain_db, 2)}, pre-gain included; largest boost "
+        f"{fmt_db(st.max_boost_db, 2)}",
         f"Fit in band {band_hz[0]:.0f}-{band_hz[1]:.0f} Hz: RMS {st.rms_error_db:.2f} dB, "
         f"max {st.max_error_db:.2f} dB vs the correction curve",
     ]

@@ -13,6 +13,7 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
+from roomcorr.deliver.figures import fmt_db
 from roomcorr.deliver.formats import MULTI_NAME, filter_files
 from roomcorr.deliver.routes import build_routes, output_trims
 from roomcorr.errors import OutputError
@@ -161,7 +162,7 @@ def system_sentences(fields: dict[str, Any]) -> list[str]:
         pol = "" if o["polarity"] > 0 else ", polarity inverted"
         lines.append(
             f"  {o['name']:>6}: delay {o['delay_ms']:6.3f} ms ({_samples_text(o['delay_samples'])})"
-            f" = {o['distance_m']:.3f} m, level trim {o['gain_db']:+.2f} dB{pol}"
+            f" = {o['distance_m']:.3f} m, level trim {fmt_db(o['gain_db'], 2, True)}{pol}"
         )
     xo = system.get("crossover")
     if xo:
@@ -195,7 +196,7 @@ def system_sentences(fields: dict[str, Any]) -> list[str]:
             )
         lines.append(
             "Each main input also feeds the subwoofer output at "
-            f"{system.get('sub_route_gain_db', 0):+.2f} dB (routes in manifest.json). "
+            f"{fmt_db(system.get('sub_route_gain_db', 0), 2, True)} (routes in manifest.json). "
             "Respect the subwoofer's excursion limits and start quietly."
         )
     return lines

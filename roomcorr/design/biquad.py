@@ -74,6 +74,69 @@ class Section:
             raise ValueError(f"unknown section kind {self.kind!r}; use one of {KINDS}")
 
 
+#: Sections of one kind whose frequencies lie closer than this (octaves) do one job:
+#: :func:`tidy_sections` merges them (a 1/24 octave is finer than the fit grid's
+#: resolution of a Q-12 section, whose bandwidth is about 1/8 octave).
+MERGE_OCT = 1.0 / 24.0
+#: Sections weaker than this (dB) are dropped by :func:`tidy_sections`.
+MIN_GAIN_DB = 0.1
+
+
+def tidy_sections(
+    sections: Sequence[Section],
+    gain_range_db: tuple[float, float] = (-np.inf, np.inf),
+    merge_oct: float = MERGE_OCT,
+    min_gain_db: float = MIN_GAIN_DB,
+) -> list[Section]:
+    """Merge sections of one kind on (nearly) the same frequency and drop near-zero ones.
+
+    Two sections of the same kind whose frequencies are within ``merge_oct``
+    become one: gains add (in dB, as the cascade multiplies them; exact at the
+    common frequency when the frequencies agree), the frequency is the
+    |gain|-weighted mean in octaves, and the Q is the stronger section's.
+    The merged gain is clipped to ``gain_range_db``. Then every section with
+    ``|gain_db| < min_gain_db`` is dropped. Frequency order is kept.
+
+    Parameters
+    ----------
+    sections : sequence of Section
+    gain_range_db : (float, float)
+    merge_oct, min_gain_db : float
+
+    Returns
+    -------
+    list of Section
+    """
+    out: list[Section] = []
+    for s in sorted(sections, key=lambda t: (t.kind, t.f0_hz)):
+        prev = out[-1] if out else None
+        if (
+            prev is not None
+            and prev.kind == s.kind
+            and abs(np.log2(s.f0_hz / prev.f0_hz)) < merge_oct
+        ):
+            wa, wb = abs(prev.gain_db), abs(s.gain_db)
+            w = wa + wb
+            lf = (
+                (wa * np.log2(prev.f0_hz) + wb * np.log2(s.f0_hz)) / w
+                if w > 0 else np.log2(prev.f0_hz)
+            )
+            gain = float(np.clip(prev.gain_db + s.gain_db, *gain_range_db))
+            q = prev.q if wa >= wb else s.q
+            out[-1] = Section(s.kind, float(2.0**lf), gain, q)
+        else:
+            out.append(s)
+    return sorted((s for s in out if abs(s.gain_db) >= min_gain_db), key=lambda t: t.f0_hz)
+
+
+def is_tidy(sections: Sequence[Section], merge_oct: float = MERGE_OCT,
+            min_gain_db: float = MIN_GAIN_DB) -> bool:
+    """True when no two sections of a kind share a frequency and none is near zero."""
+    return len(tidy_sections(sections, merge_oct=merge_oct, min_gain_db=min_gain_db)) == len(
+        sections
+    )
+
+
 def _arrays(sections: Sequence[Section]) -> tuple[np.ndarray, ...]:
     kind = np.array([KINDS.index(s.kind) for s in sections], dtype=int)
     f0 = np.array([s.f0_hz for s in sections], dtype=float)

@@ -265,3 +265,82 @@ def worst_case_gain_db(h: np.ndarray) -> float:
     total = float(np.sum(np.abs(np.asarray(h, dtype=np.float64))))
     with np.errstate(divide="ignore"):
         return float(20.0 * np.log10(total))
+
+
+def taps_for_latency(n_taps: int, latency_samples: int) -> int:
+    """Length (``n_taps`` doubled as needed) that holds ``latency_samples`` with room after.
+
+    A mixed-phase filter has its main peak ``latency_samples`` into the filter
+    and needs as many taps after it as before (the pre-ringing half and the
+    decaying half), so the length must exceed ``2 * latency_samples``.
+
+    Parameters
+    ----------
+    n_taps : int
+        The length the resolution rule asks for (:func:`default_n_taps`).
+    latency_samples : int
+        Latency in samples at the filter's rate, ``>= 0``.
+
+    Returns
+    -------
+    n_taps : int
+    """
+    need = 2 * int(latency_samples) + 1
+    n = int(n_taps)
+    while n < need:
+        n *= 2
+    return n
+
+
+def cap_excess_db(
+    h: np.ndarray, fs: float, grid_hz: np.ndarray, limit_db: float, width_hz: float
+) -> np.ndarray:
+    """How far the realised response of FIR ``h`` rises above ``limit_db``, per grid frequency.
+
+    The magnitude is evaluated from DC to Nyquist on every bin of a zero-padded
+    FFT (at least eight times the filter length, as :func:`peak_gain_db`).
+    Each grid frequency gets the largest excess found within ``width_hz`` of it
+    or halfway to its neighbours, whichever reaches further (so an excess
+    between two grid points is given to both); the first grid point also takes
+    every bin below it (down to DC) and the last every bin above it (up to
+    Nyquist), because :func:`synthesize_fir` holds the end values there.
+
+    Parameters
+    ----------
+    h : ndarray, shape (n_taps,)
+    fs : float
+        Sample rate in Hz.
+    grid_hz : ndarray, shape (n_freqs,)
+        Increasing frequencies of the correction curve.
+    limit_db : float
+        The gain the filter must not exceed.
+    width_hz : float
+        Half-width of the neighbourhood each grid point answers for (about
+        two bins of the filter length, ``2 fs / n_taps``, the width of a
+        truncation ripple).
+
+    Returns
+    -------
+    excess_db : ndarray, shape (n_freqs,)
+        ``>= 0``; zero where the response stays at or below ``limit_db``.
+    """
+    h = np.asarray(h, dtype=np.float64)
+    grid_hz = np.asarray(grid_hz, dtype=np.float64)
+    n_fft = max(fft_length(h.shape[-1], 8), 1 << 14)
+    with np.errstate(divide="ignore"):
+        mag_db = 20.0 * np.log10(np.abs(np.fft.rfft(h, n_fft)))
+    bins_hz = np.fft.rfftfreq(n_fft, 1.0 / fs)
+    over = np.maximum(mag_db - limit_db, 0.0)
+    out = np.zeros(grid_hz.size)
+    hot = np.flatnonzero(over > 0)
+    if hot.size == 0:
+        return out
+    mid = np.sqrt(grid_hz[1:] * grid_hz[:-1])  # halfway (in log frequency) between grid points
+    lo_hz = np.minimum(np.r_[-np.inf, mid], grid_hz - width_hz)
+    hi_hz = np.maximum(np.r_[mid, np.inf], grid_hz + width_hz)
+    lo = np.searchsorted(bins_hz, lo_hz, side="left")
+    hi = np.searchsorted(bins_hz, hi_hz, side="right")
+    n_hot = np.searchsorted(hot, hi) - np.searchsorted(hot, lo)
+    for i in np.flatnonzero(n_hot > 0):
+        out[i] = float(np.max(over[lo[i] : hi[i]]))
+    return out

@@ -71,6 +71,8 @@ OUT_OF_BAND_BOOST_DB = 0.5
 #: Peak-search resolution allowance included in the pre-gain.
 PEAK_MARGIN_DB = 1e-3
 FIT_POINTS_PER_OCTAVE = 32
+#: Rounds of merging, dropping and placing again in :func:`fit_sections`.
+TIDY_ROUNDS = 3
 
 
 @dataclass
@@ -327,20 +329,57 @@ def fit_sections(
     prob = _make_problem(freq_hz, target_db, weight, band_hz, lim)
     kinds = np.zeros(0, dtype=int)
     x = np.zeros(0)
-    zero_c = np.zeros(len(prob.check_hz))
     cost = 0.5 * float(np.sum((prob.sqrt_w * prob.target_db) ** 2))
+    kinds, x, cost = _greedy(kinds, x, cost, prob, band_hz, lim)
+    if len(kinds) == 0:
+        return []
+    x, _ = _solve(kinds, x, prob, 0.0, 0.0, max_nfev)
+    # Tidy: sections on the same frequency are merged and near-zero ones dropped
+    # (bq.tidy_sections); the freed sections are placed again elsewhere and the
+    # whole set refitted, a few rounds at most.
+    for _ in range(TIDY_ROUNDS):
+        secs = _sections(kinds, x)
+        tidy = bq.tidy_sections(secs, lim.gain_range_db)
+        if len(tidy) == len(secs):
+            break
+        if not tidy:
+            return []
+        kinds, x = _pack(tidy)
+        x, cost = _solve(kinds, x, prob, 0.0, 0.0, max_nfev)
+        kinds, x, cost = _greedy(kinds, x, cost, prob, band_hz, lim)
+        x, _ = _solve(kinds, x, prob, 0.0, 0.0, max_nfev)
+    secs = bq.tidy_sections(_sections(kinds, x), lim.gain_range_db)
+    return limit_boost(secs, lambda s: bq.analog_response_db(s, prob.check_hz), lim.max_boost_db)
+
+
+def _greedy(kinds, x, cost, prob: _Problem, band_hz, lim: FitLimits):
+    """Add sections one at a time until ``lim.n_sections`` or no candidate lowers the cost.
+
+    Each step tries a peaking section at the largest weighted residual (never
+    within :data:`roomcorr.design.biquad.MERGE_OCT` of a peaking section already
+    placed: that one is refitted jointly instead) and, once each, a low and a
+    high shelf; each candidate is fitted alone with the others held fixed.
+    """
+    zero_c = np.zeros(len(prob.check_hz))
     f_lo_b = max(band_hz[0], lim.freq_range_hz[0])
     f_hi_b = min(band_hz[1], lim.freq_range_hz[1])
     g_lo, g_hi = lim.gain_range_db
-    for _ in range(lim.n_sections):
+    allowed = (prob.freq_hz >= lim.freq_range_hz[0]) & (prob.freq_hz <= lim.freq_range_hz[1])
+    while len(kinds) < lim.n_sections:
         cur = _analog_db(kinds, x, prob.freq_hz)
         cur_c = _analog_db(kinds, x, prob.check_hz) if len(kinds) else zero_c
         resid = prob.target_db - cur
-        allowed = (prob.freq_hz >= lim.freq_range_hz[0]) & (prob.freq_hz <= lim.freq_range_hz[1])
-        score = np.where(allowed, prob.sqrt_w**2 * np.abs(resid), -1.0)
+        free = allowed.copy()
+        if len(kinds):
+            f0 = _unpack(x)[0][kinds == 0]
+            for f in f0:
+                free &= np.abs(np.log2(prob.freq_hz / f)) >= bq.MERGE_OCT
+        score = np.where(free, prob.sqrt_w**2 * np.abs(resid), -1.0)
         i = int(np.argmax(score))
-        cands = [(0, [np.log2(prob.freq_hz[i]), float(np.clip(resid[i], g_lo, g_hi)),
-                      np.log2(_q_from_lobe(prob.freq_hz, resid, i, lim))])]
+        cands = []
+        if score[i] > 0:
+            cands.append((0, [np.log2(prob.freq_hz[i]), float(np.clip(resid[i], g_lo, g_hi)),
+                              np.log2(_q_from_lobe(prob.freq_hz, resid, i, lim))]))
         for k, f_c in ((1, f_lo_b), (2, f_hi_b)):
             if k in kinds:
                 continue
@@ -352,16 +391,12 @@ def fit_sections(
             xk, ck = _solve(np.array([k]), np.array(xs), prob, cur, cur_c, 30)
             if best is None or ck < best[2]:
                 best = (k, xk, ck)
-        if best[2] >= cost * (1 - 1e-4):
+        if best is None or best[2] >= cost * (1 - 1e-4):
             break
         kinds = np.append(kinds, best[0])
         x = np.concatenate([x, best[1]])
         cost = best[2]
-    if len(kinds) == 0:
-        return []
-    x, _ = _solve(kinds, x, prob, 0.0, 0.0, max_nfev)
-    secs = _sections(kinds, x)
-    return limit_boost(secs, lambda s: bq.analog_response_db(s, prob.check_hz), lim.max_boost_db)
+    return kinds, x, cost
 
 
 def limit_boost(sections: list[Section], response_db, max_boost_db: float) -> list[Section]:

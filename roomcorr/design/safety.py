@@ -9,6 +9,11 @@
   already sits below the ceiling, no make-up gain is added.
 * Worst-case gain, ``20 log10 sum |h|``, is reported for every filter: the
   largest output a full-scale input of any waveform could produce.
+* Short filters are fitted under the boost cap before the check
+  (:func:`fit_under_cap`): the realised response of every synthesised filter
+  is measured from DC to Nyquist, the correction curve is lowered wherever it
+  rises above the cap, and the filters are synthesised again. The check
+  below stays the final proof.
 * A filter whose boost (gain above the pre-gain, anywhere from DC to
   Nyquist) exceeds the boost cap by more than ``BOOST_TOLERANCE_DB`` is
   refused.
@@ -16,17 +21,24 @@
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
 
-from roomcorr.design.fir import peak_gain_db, worst_case_gain_db
+from roomcorr.design.fir import cap_excess_db, peak_gain_db, worst_case_gain_db
 from roomcorr.errors import SafetyError
 
 #: Allowed excess of a synthesised filter over the boost cap (FIR ripple), dB.
 BOOST_TOLERANCE_DB = 0.3
 #: Allowed excess over the ceiling after the pre-gain (rounding), dB.
 CEILING_TOLERANCE_DB = 0.01
+
+#: :func:`fit_under_cap` aims this far under the boost cap, dB (room for the
+#: refined peak search, which finds maxima between FFT bins).
+CAP_MARGIN_DB = 0.05
+#: At most this many re-syntheses in :func:`fit_under_cap`.
+CAP_FIT_ROUNDS = 10
 
 #: Where peak gain and boost are evaluated (stated in the manifest and the report).
 PEAK_BAND = "DC to Nyquist"
@@ -58,6 +70,75 @@ def full_band_peak_gain_db(h: np.ndarray, fs: float) -> float:
     refined around the highest maxima by a chirp-z zoom.
     """
     return peak_gain_db(h, fs, 0.0, fs / 2.0)
+
+
+def fit_under_cap(
+    build: Callable[[list[np.ndarray]], dict[int, np.ndarray]],
+    curves_db: list[np.ndarray],
+    grid_hz: np.ndarray,
+    max_boost_db: float,
+    rounds: int = CAP_FIT_ROUNDS,
+) -> tuple[dict[int, np.ndarray], list[np.ndarray], int]:
+    """Filters whose realised gain stays at or under the boost cap, from DC to Nyquist.
+
+    A correction curve that never exceeds the cap can still give a filter
+    that does: truncating and fading a short minimum-phase filter smooths
+    the curve's corners into ripple, and a mixed-phase or aligned filter adds
+    its own. So the filters are built, their realised response is measured
+    (:func:`roomcorr.design.fir.cap_excess_db`, every bin from DC to Nyquist,
+    aiming :data:`CAP_MARGIN_DB` under the cap), every channel's curve is
+    lowered by its excess (over about two bins of the filter length either
+    side, the width of a truncation ripple, at every rate at once) and the
+    filters are built again, until no filter rises above the cap or
+    ``rounds`` re-syntheses are spent (then :func:`apply_safety` refuses, as
+    before). Where the filters already stay under the cap nothing changes.
+
+    Parameters
+    ----------
+    build : callable
+        Maps one correction curve per channel (dB on ``grid_hz``) to the
+        filters per rate, ``{fs: ndarray (n_channels, n_taps)}``, before the
+        common pre-gain.
+    curves_db : list of ndarray, shape (n_freqs,)
+        The correction curves, one per channel, in filter-row order.
+    grid_hz : ndarray, shape (n_freqs,)
+    max_boost_db : float
+        The boost cap.
+    rounds : int
+
+    Returns
+    -------
+    firs : dict of int to ndarray
+        The last filters built.
+    curves_db : list of ndarray
+        The curves they were built from (lowered where needed).
+    n_rounds : int
+        How many re-syntheses were needed (0: the first filters were under the cap).
+
+    References
+    ----------
+    .. [1] A. V. Oppenheim and R. W. Schafer, Discrete-Time Signal Processing,
+           3rd ed., ch. 7 (ripple of a truncated, windowed impulse response).
+    """
+    curves = [np.array(c, dtype=np.float64) for c in curves_db]
+    limit = max_boost_db - CAP_MARGIN_DB
+    for n_round in range(rounds + 1):
+        firs = build(curves)
+        lower = [np.zeros_like(c) for c in curves]
+        over = False
+        for fs, h in firs.items():
+            width_hz = 2.0 * fs / h.shape[-1]
+            for ch in range(h.shape[0]):
+                if full_band_peak_gain_db(h[ch], fs) <= max_boost_db:
+                    continue
+                over = True
+                lower[ch] = np.maximum(
+                    lower[ch], cap_excess_db(h[ch], fs, grid_hz, limit, width_hz)
+                )
+        if not over or n_round == rounds:
+            return firs, curves, n_round
+        curves = [c - d for c, d in zip(curves, lower, strict=True)]
+    raise AssertionError("unreachable")  # the loop returns on its last round
 
 
 def common_pre_gain_db(peaks_db: list[float], ceiling_db: float) -> float:

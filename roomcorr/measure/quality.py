@@ -18,6 +18,13 @@ class QualityGateError(RoomcorrError):
     """A recording failed a quality gate (the message names the gate and the fix)."""
 
 
+#: The headroom gate warns when the recording's peak is above this, dBFS. Common
+#: practice: leave at least 3 dB between the loudest input sample and full scale, since
+#: a louder moment (a closer position, another loudspeaker) would then clip; the
+#: clipping gate itself stops at -0.1 dBFS.
+HEADROOM_PEAK_DBFS = -3.0
+
+
 def octave_centres_hz(f_lo_hz: float = 63.0, f_hi_hz: float = 8000.0) -> np.ndarray:
     """Octave mid-bands of IEC 61260-1:2014 (base 10) from nominal 63 Hz to 8 kHz by default.
 
@@ -143,6 +150,9 @@ class Gate:
     limit: float
     unit: str
     message: str
+    #: ``"error"`` stops the run when not passed; ``"warning"`` is shown (summary,
+    #: report, app) but lets the run carry on.
+    severity: str = "error"
 
     def to_dict(self) -> dict:
         return asdict(self)
@@ -186,6 +196,20 @@ def evaluate_gates(figures: dict, limits: dict) -> list[Gate]:
             "dBFS",
             f"input too low: peak {f['peak_dbfs']:.1f} dBFS below "
             f"{lim['min_peak_dbfs']} dBFS; raise the microphone gain",
+        )
+    )
+    peak_limit = float(lim.get("max_peak_dbfs", HEADROOM_PEAK_DBFS))
+    g.append(
+        Gate(
+            "headroom",
+            f["peak_dbfs"] <= peak_limit,  # NaN fails
+            f["peak_dbfs"],
+            peak_limit,
+            "dBFS",
+            f"input peak {f['peak_dbfs']:.1f} dBFS leaves less than {-peak_limit:g} dB of "
+            "headroom; a louder position would clip: lower the microphone gain or the output "
+            "level and measure again",
+            severity="warning",
         )
     )
     g.append(
@@ -276,9 +300,27 @@ def evaluate_gates(figures: dict, limits: dict) -> list[Gate]:
     return g
 
 
+def blocking(gates: list[Gate]) -> list[Gate]:
+    """The gates that failed and stop a run (warnings never do)."""
+    return [gt for gt in gates if not gt.passed and gt.severity != "warning"]
+
+
+def warnings_of(gates: list[Gate] | list[dict]) -> list[str]:
+    """Messages of the warning gates that did not pass (gates or their stored dicts)."""
+    out = []
+    for gt in gates:
+        d = gt if isinstance(gt, dict) else gt.to_dict()
+        if d.get("severity") == "warning" and d.get("passed") is False:
+            out.append(str(d.get("message", d.get("name"))))
+    return out
+
+
 def raise_on_failure(gates: list[Gate], where: str) -> None:
-    """Raise :class:`QualityGateError` naming every failed gate (suggest ``--force``)."""
-    bad = [gt for gt in gates if not gt.passed]
+    """Raise :class:`QualityGateError` naming every failed gate (suggest ``--force``).
+
+    Warning gates never stop a run; :func:`gate_lines` and the report show them.
+    """
+    bad = blocking(gates)
     if bad:
         text = "; ".join(gt.message for gt in bad)
         raise QualityGateError(f"{where}: {text} (use --force to keep it anyway)")

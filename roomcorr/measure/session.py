@@ -77,6 +77,25 @@ def sweep_layout(ms: MeasureSettings) -> dict:
     }
 
 
+def run_timing_basis(ms: MeasureSettings, devices: dict) -> dict:
+    """What this session's arrival times are measured from (stored as ``timing_basis``).
+
+    The same decision :func:`analyse_recording` makes per capture: a loopback channel
+    gives an absolute origin; otherwise the timing markers put the reference
+    loudspeaker's arrival ``lead_s`` after the origin; without both, the origin is
+    the sweep start as sent to one full-duplex device. Read back with
+    :func:`roomcorr.measure.timing.timing_basis`.
+    """
+    if ms.loopback is not None:
+        return {"kind": "loopback"}
+    if ms.markers:
+        return {"kind": "acoustic reference", "reference_output": ms.reference_output}
+    return {
+        "kind": "single device",
+        "device": f"{devices.get('input')}|{devices.get('output')}",
+    }
+
+
 def make_sweep(ms: MeasureSettings) -> Sweep:
     """Build the synchronised sweep described by the settings."""
     return synchronized_sweep(
@@ -320,7 +339,8 @@ def gate_lines(gates: list[q.Gate]) -> list[str]:
     lines = []
     for g in gates:
         value = "single sweep" if g.value == -999.0 else f"{g.value:.4g} {g.unit}"
-        lines.append(f"  {'ok  ' if g.passed else 'FAIL'} {g.name}: {value} (limit {g.limit:g})")
+        word = "ok  " if g.passed else ("WARN" if g.severity == "warning" else "FAIL")
+        lines.append(f"  {word} {g.name}: {value} (limit {g.limit:g})")
     return lines
 
 
@@ -565,6 +585,7 @@ def run_measurement(
             "positions": [],
         }
     record["devices"] = devices.to_dict()
+    record["timing_basis"] = run_timing_basis(ms, record["devices"])
     record["timing_reference"] = (
         None
         if not ms.markers
@@ -695,7 +716,7 @@ def run_measurement(
                         "gates": [g.to_dict() for g in gates],
                     }
                 )
-                if force or all(g.passed for g in gates):
+                if force or not q.blocking(gates):
                     break
                 where = f"position {pos}, output {spk}"
                 try:

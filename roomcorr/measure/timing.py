@@ -395,3 +395,143 @@ def shift_to_origin(x: np.ndarray, start: int) -> tuple[np.ndarray, int]:
         return x[..., start:], 0
     pad = np.zeros(x.shape[:-1] + (-start,))
     return np.concatenate([pad, x], axis=-1), -start
+
+
+# --------------------------------------------------------------------------- timing basis
+#: What the arrival times of a measurement run are measured from.
+BASIS_KINDS = ("loopback", "single device", "acoustic reference", "unknown")
+
+
+def timing_basis(record: dict | None) -> dict:
+    """The timing basis of a measurement run, from its ``measurement.json`` record.
+
+    ``kind`` is ``"loopback"`` (the sound leaving the output, from a loopback
+    cable: an absolute origin), ``"single device"`` (one full-duplex stream
+    without markers: the sweep start as sent, which holds the device's own fixed
+    latency), ``"acoustic reference"`` (the reference loudspeaker's arrival is put
+    ``lead_s`` after the origin: arrivals are relative to that loudspeaker) or
+    ``"unknown"`` (impulse responses from elsewhere, or a record that says
+    nothing). Records written before the basis was stored are read from their
+    ``loopback``, ``timing_reference`` and per-position ``time_origin`` keys.
+
+    Returns
+    -------
+    dict
+        ``kind``, ``reference_output`` (1-based output of the reference loudspeaker,
+        or None), ``reference_channel`` (its 0-based channel in the impulse
+        responses, None when it was not measured or is unknown), ``device``
+        (``input|output`` names for a single device, else None) and ``label``
+        (a few plain words for people).
+    """
+    rec = record if isinstance(record, dict) else {}
+    stored = rec.get("timing_basis")
+    if isinstance(stored, dict) and stored.get("kind") in BASIS_KINDS:
+        kind = str(stored["kind"])
+        ref = stored.get("reference_output")
+        ref = int(ref) if isinstance(ref, int) and not isinstance(ref, bool) and ref > 0 else None
+        device = stored.get("device") if isinstance(stored.get("device"), str) else None
+    else:
+        origins = {
+            p.get("time_origin")
+            for p in rec.get("positions", []) or []
+            if isinstance(p, dict) and p.get("file")
+        }
+        tref = rec.get("timing_reference")
+        ref = None
+        if rec.get("loopback") is True or origins == {"loopback"}:
+            kind = "loopback"
+        elif origins == {"reference"} or (origins <= {"reference"} and isinstance(tref, dict)):
+            kind = "acoustic reference"
+            out = tref.get("output") if isinstance(tref, dict) else None
+            ref = out if isinstance(out, int) and not isinstance(out, bool) else None
+        elif origins == {"stream"}:
+            kind = "single device"
+        else:
+            kind = "unknown"
+        device = None
+        if kind == "single device":
+            dev = rec.get("devices") if isinstance(rec.get("devices"), dict) else {}
+            device = f"{dev.get('input')}|{dev.get('output')}"
+    outputs = (
+        (rec.get("settings") or {}).get("outputs")
+        if isinstance(rec.get("settings"), dict)
+        else None
+    )
+    channel = None
+    if kind == "acoustic reference" and ref is not None and isinstance(outputs, list):
+        channel = outputs.index(ref) if ref in outputs else None
+    return {
+        "kind": kind,
+        "reference_output": ref if kind == "acoustic reference" else None,
+        "reference_channel": channel,
+        "device": device if kind == "single device" else None,
+        "label": basis_label(kind, ref, channel, _names(rec)),
+    }
+
+
+def _names(rec: dict) -> list[str] | None:
+    names = (
+        (rec.get("settings") or {}).get("names") if isinstance(rec.get("settings"), dict) else None
+    )
+    return [str(n) for n in names] if isinstance(names, list) else None
+
+
+def basis_label(
+    kind: str, reference_output: int | None, channel: int | None, names: list[str] | None
+) -> str:
+    """Plain words for a timing basis (``history``, ``compare``, the report, the app)."""
+    if kind == "acoustic reference":
+        who = f"output {reference_output}" if reference_output else "a loudspeaker"
+        if names and channel is not None and channel < len(names):
+            who = f"{names[channel]} (output {reference_output})"
+        return f"acoustic reference: {who}"
+    if kind == "loopback":
+        return "loopback cable (absolute)"
+    if kind == "single device":
+        return "single device (its fixed latency)"
+    return "unknown (impulse responses from elsewhere)"
+
+
+def common_origin(basis_a: dict, basis_b: dict) -> dict:
+    """Whether the arrivals of two runs share an origin, and which.
+
+    Returns
+    -------
+    dict
+        ``origin``: ``"absolute"`` (both loopback, or both the same single device:
+        distance changes are true), ``"reference"`` (both on the acoustic reference
+        of the same loudspeaker, ``reference_channel`` set: distances are relative
+        to it) or ``"unknown"`` (anything else: one unknown offset per run);
+        ``reason`` in plain words.
+    """
+    ka, kb = basis_a.get("kind"), basis_b.get("kind")
+    if ka == kb == "loopback":
+        return {
+            "origin": "absolute",
+            "reference_channel": None,
+            "reason": "both runs timed by a loopback cable",
+        }
+    if ka == kb == "single device" and basis_a.get("device") == basis_b.get("device"):
+        return {
+            "origin": "absolute",
+            "reference_channel": None,
+            "reason": "both runs on the same single device (same fixed latency)",
+        }
+    if (
+        ka == kb == "acoustic reference"
+        and basis_a.get("reference_output") == basis_b.get("reference_output")
+        and basis_a.get("reference_channel") == basis_b.get("reference_channel")
+        and basis_a.get("reference_channel") is not None
+    ):
+        return {
+            "origin": "reference",
+            "reference_channel": basis_a["reference_channel"],
+            "reason": f"both runs timed by the {basis_b.get('label', 'acoustic reference')}: "
+            "arrivals are relative to that loudspeaker, whose own move they cannot show",
+        }
+    return {
+        "origin": "unknown",
+        "reference_channel": None,
+        "reason": f"the runs' timing bases differ or are unknown ({basis_a.get('label')}; "
+        f"{basis_b.get('label')}): arrivals share no known origin",
+    }

@@ -24,14 +24,28 @@ def format_comparison(res: dict[str, Any]) -> list[str]:
         f"speed of sound {res['speed_of_sound_m_s']:.1f} m/s at {res['temperature_c']:g} °C "
         f"({res['speed_of_sound_formula']})",
     ]
+    timing = res.get("timing")
+    if timing:
+        lines.append(
+            f"timing: before {timing['before']['label']}; after {timing['after']['label']}"
+        )
+        lines.append(f"  {timing['reason']}")
+    move = res.get("move")
+    if move:
+        lines.append(f"who moved: {move['sentence']}")
     if not res["paired_positions"]:
         lines.append("positions differ in number or sample rate: mean arrivals compared")
+    relative = bool(move)
     for ch in res["channels"]:
         lines.append("")
         lines.append(f"{ch['name']}:")
+        dist = ch["distance_change_m"]
+        dist_text = "distance unsure" if dist is None else f"distance {dist:+.3f} m"
+        if relative:
+            dist_text += f" (measured {ch['relative_distance_change_m']:+.3f} m relative)"
         lines.append(
             f"  arrival {ch['arrival_before_ms']:.3f} ms -> {ch['arrival_after_ms']:.3f} ms: "
-            f"{ch['arrival_change_ms']:+.3f} ms, distance {ch['distance_change_m']:+.3f} m"
+            f"{ch['arrival_change_ms']:+.3f} ms, {dist_text}"
             + (
                 " (per position "
                 + ", ".join(f"{d:+.3f}" for d in ch["position_distance_change_m"])
@@ -40,6 +54,16 @@ def format_comparison(res: dict[str, Any]) -> list[str]:
                 else ""
             )
         )
+        pattern = ch.get("reflections_changed")
+        if pattern is not None and relative and pattern["probability"] is None:
+            lines.append(
+                f"  early reflections too weak to compare ({pattern['snr_db']:.0f} dB above noise)"
+            )
+        elif pattern is not None and relative:
+            lines.append(
+                f"  early reflections {'changed' if pattern['probability'] >= 0.5 else 'unchanged'}"
+                f" relative to its own direct sound (change {pattern['ratio']:.3g} x noise)"
+            )
         lines.append(
             f"  level {ch['level_change_db']:+.2f} dB (100 Hz-10 kHz), direct sound "
             f"{ch['direct_level_change_db']:+.2f} dB"
@@ -79,17 +103,45 @@ def format_comparison(res: dict[str, Any]) -> list[str]:
     if not fit.get("available"):
         lines.append(f"filter check: not done ({fit.get('reason', 'no design')})")
         return lines
-    verdict = (
-        "the existing filters are still fit for use"
-        if fit["still_fit"]
-        else "design new filters: the existing ones no longer fit"
-    )
-    lines.append(f"filter check against {fit['design']} ({fit['sample_rate']} Hz): {verdict}")
+    lines.extend(fit_lines(fit))
+    return lines
+
+
+VERDICT_TEXT = {
+    "keep": "keep the existing filters: they still fit",
+    "re-design": "design new filters: the existing ones no longer fit",
+    "re-measure first": "measure again first: the new measurement is not one to design from",
+}
+
+
+def fit_lines(fit: dict[str, Any]) -> list[str]:
+    """Lines of the filter check (``roomcorr compare``, the report and the app)."""
+    made = f", made from measurement {fit['made_from']}" if fit.get("made_from") else ""
+    lines = [
+        f"filter check against design {fit['design']}{made} ({fit['sample_rate']} Hz): "
+        f"{fit['verdict']}: {VERDICT_TEXT[fit['verdict']]}"
+    ]
+    lines += [f"  because {r}" for r in fit.get("reasons", [])]
     for c in fit["channels"]:
         lines.append(
             f"  {c['name']}: deviation from target with the old filters {c['old_rms_db']:.2f} dB "
             f"RMS (max {c['old_max_db']:.1f}), with a fresh design {c['fresh_rms_db']:.2f} dB "
             f"RMS (max {c['fresh_max_db']:.1f}) -> {'fit' if c['still_fit'] else 'refit'}"
+        )
+    system = fit.get("system") or {}
+    for c in system.get("channels", []):
+        lines.append(
+            f"  {c['name']}: delay {c['delay_change_ms']:+.3f} ms against the old alignment "
+            f"({c['phase_error_deg']:+.0f} degrees at {c['phase_at_hz']:.0f} Hz), level "
+            f"{c['trim_change_db']:+.2f} dB against the old trims"
+            + (", polarity inverted" if c["polarity_flipped"] else "")
+        )
+    if "align_tolerance_ms" in system:
+        lines.append(
+            f"  tolerances: arrival {system['align_tolerance_ms']:g} ms "
+            f"({system['align_tolerance_deg']:g} degrees at {system['align_phase_hz']:.0f} Hz; "
+            f"a subwoofer {system['crossover_phase_tolerance_deg']:g} degrees at the "
+            f"crossover), level {system['trim_tolerance_db']:g} dB"
         )
     return lines
 
@@ -142,9 +194,11 @@ def comparison_png(res: dict[str, Any]) -> bytes:
                 ax.set_title(f"{ch['name']}: below 500 Hz", fontsize=9)
             else:
                 ax.legend(fontsize=7, loc="lower left")
+                dist = ch["distance_change_m"]
                 ax.set_title(
-                    f"{ch['name']}: distance {ch['distance_change_m']:+.3f} m, "
-                    f"level {ch['level_change_db']:+.1f} dB",
+                    f"{ch['name']}: distance "
+                    + ("unsure" if dist is None else f"{dist:+.3f} m")
+                    + f", level {ch['level_change_db']:+.1f} dB",
                     fontsize=9,
                 )
     return png_bytes(fig)

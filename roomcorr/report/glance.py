@@ -14,6 +14,7 @@ from typing import Any
 
 import numpy as np
 
+from roomcorr.deliver.figures import fmt_db
 from roomcorr.design.area import LEVEL_BLEND_HZ
 from roomcorr.design.target import REFERENCE_BAND_HZ
 from roomcorr.errors import RoomcorrError
@@ -43,7 +44,11 @@ def _largest(f: np.ndarray, corr: np.ndarray, inside: np.ndarray, sign: float) -
     return f"{v[i]:.1f} dB at {fmt_hz(float(f[i]))}"
 
 
-def glance_sentences(curves: dict[str, Any], max_boost_db: float | None = None) -> list[str]:
+def glance_sentences(
+    curves: dict[str, Any],
+    max_boost_db: float | None = None,
+    figures: dict[str, Any] | None = None,
+) -> list[str]:
     """At most about six lines about a design, every channel on the same line.
 
     Parameters
@@ -52,6 +57,10 @@ def glance_sentences(curves: dict[str, Any], max_boost_db: float | None = None) 
         Layout of :func:`roomcorr.deliver.export.load_design_curves`.
     max_boost_db : float, optional
         The boost cap in force (tells a capped boost from a refused one).
+    figures : dict, optional
+        The manifest's figures block (:func:`roomcorr.deliver.figures.figures_of_manifest`):
+        the pre-gain, the filters' largest boost, peak and worst-case gain are stated as
+        stored there, never computed again.
 
     Returns
     -------
@@ -80,7 +89,7 @@ def glance_sentences(curves: dict[str, Any], max_boost_db: float | None = None) 
                                 f"{float(np.asarray(ch['cv_uncorrected_db'])):.1f} dB"))
     out = [f"Correction band {_per_channel(band)}; nothing changed outside it."]
     out.append(f"Largest cut (a room peak): {_per_channel(cuts)}.")
-    out.append(f"Largest boost (a shallow dip filled): {_per_channel(boosts)}.")
+    out.append(f"Dips filled, the largest: {_per_channel(boosts)}.")
     if refused:
         out.append(
             f"Boost refused where it could not help safely, deepest: {_per_channel(refused)} "
@@ -97,16 +106,24 @@ def glance_sentences(curves: dict[str, Any], max_boost_db: float | None = None) 
             f"At seats not measured the bass{where} should vary by about "
             f"{_per_channel(seats)} (each position left out in turn)."
         )
-    pg = float(curves.get("pre_gain_db", 0.0))
-    out.append(
-        f"Pre-gain {pg:.2f} dB on every filter, so no frequency leaves a filter louder than it "
-        "went in." if pg < -0.05 else "No pre-gain needed: no filter rises above the ceiling."
+    pg = float((figures or {}).get("pre_gain_db", curves.get("pre_gain_db", 0.0)))
+    level = (
+        f"Pre-gain {fmt_db(pg, 2, True)} on every filter, so no frequency leaves a filter "
+        "louder than it went in" if fmt_db(pg, 2) != fmt_db(0.0, 2)
+        else "No pre-gain needed: no filter rises above the ceiling"
     )
+    if figures is not None and figures.get("largest_boost_db") is not None:
+        level += (
+            f"; largest boost {fmt_db(figures['largest_boost_db'])} before the pre-gain, "
+            f"peak gain {fmt_db(figures['peak_gain_db'], 2, True)}"
+        )
+    out.append(level + ".")
     mp = curves.get("mixed_phase")
-    if mp:
-        from roomcorr.design.mixedphase import latency_sentence
-
-        out.append(latency_sentence(mp["latency_ms"], mp["latency_samples"]))
+    if mp:  # the full sentence with its caution stands once, in the section below
+        out.append(
+            f"Mixed phase: every FIR filter delays the sound by {mp['latency_ms']:g} ms "
+            "(per rate and the caution below)."
+        )
     return out
 
 

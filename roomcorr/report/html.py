@@ -23,6 +23,7 @@ import numpy as np
 
 from roomcorr.analysis.decay import decay_method as _decay_method
 from roomcorr.analysis.decay import mean_band_decay as _mean_band_decay
+from roomcorr.deliver.figures import fmt_db
 from roomcorr.report import glance
 from roomcorr.report.summary import fmt_hz, summary_sentences, withheld_regions
 
@@ -264,11 +265,19 @@ def _quality_section(recordings: list[dict[str, Any]], png: Any) -> Section:
         f"{r['label']}: {g.get('name')} ({g.get('message', '')})"
         for r in recordings
         for g in r["gates"]
-        if not g.get("passed", True)
+        if not g.get("passed", True) and g.get("severity") != "warning"
     ]
+    warned = [
+        f"{r['label']}: {g.get('message', g.get('name'))}"
+        for r in recordings
+        for g in r["gates"]
+        if not g.get("passed", True) and g.get("severity") == "warning"
+    ]
+    if warned:
+        sec.paragraphs.append("Warning: " + "; ".join(warned) + ".")
     if failed:
         sec.paragraphs.append("Checks that failed (kept on request): " + "; ".join(failed) + ".")
-    else:
+    elif not warned:
         sec.paragraphs.append("Every recording passed every quality check.")
     rows = [["recording", "lowest SNR (dB)", "repeat difference (dB)", "checks passed"]]
     for r in recordings:
@@ -333,9 +342,9 @@ def _iir_column(x: _Channel, ctx: _Context) -> Column | None:
         "the same correction, for players that take parametric filters instead of an FIR; "
         "the table lists the sections at "
         f"{doc['sample_rate']} Hz by frequency (# is the stage in the .csv). Peak gain "
-        f"{figs.get('peak_gain_db', float('nan')):.2f} dB, "
-        f"worst-case gain {figs.get('worst_case_gain_db', float('nan')):.2f} dB, fit error "
-        f"{figs.get('fit_rms_error_db', float('nan')):.2f} dB rms."
+        f"{fmt_db(figs.get('peak_gain_db'), 2)}, "
+        f"worst-case gain {fmt_db(figs.get('worst_case_gain_db'), 2)}, fit error "
+        f"{fmt_db(figs.get('fit_rms_error_db'), 2)} rms."
     )
     from roomcorr.deliver.export_iir import pre_gain_note
 
@@ -428,8 +437,10 @@ def comparison_section(res: dict[str, Any]) -> Section:
     rows = [["channel", "arrival change (ms)", "distance change (m)", "level change (dB)",
              "what changed"]]
     for ch, text in zip(chans, per_channel, strict=True):
+        dist = ch["distance_change_m"]
         rows.append([str(ch["name"]), f"{ch['arrival_change_ms']:+.3f}",
-                     f"{ch['distance_change_m']:+.3f}", f"{ch['level_change_db']:+.2f}", text])
+                     "unsure" if dist is None else f"{dist:+.3f}",
+                     f"{ch['level_change_db']:+.2f}", text])
     sec.table = rows
     sec.figures.append(
         Figure("compare", "Before and after, both responses overlaid per channel",
@@ -440,12 +451,17 @@ def comparison_section(res: dict[str, Any]) -> Section:
 
 def _comparison_sentence(res: dict[str, Any]) -> str:
     parts = [
-        f"{ch['name']} {ch['distance_change_m']:+.3f} m, {ch['level_change_db']:+.1f} dB"
+        f"{ch['name']} "
+        + ("distance unsure" if ch["distance_change_m"] is None
+           else f"{ch['distance_change_m']:+.3f} m")
+        + f", {ch['level_change_db']:+.1f} dB"
         for ch in res["channels"]
     ]
+    move = res.get("move")
     return (
         f"Since the earlier measurement ({res['before']}): " + "; ".join(parts)
         + " (distance and level changes; see the comparison section)."
+        + (f" Who moved: {move['sentence']}." if move else "")
     )
 
 
@@ -474,6 +490,8 @@ class _Context:
     mixed: dict[str, Any] | None = None  # ``mixed_phase`` of load_design_curves, if any
     target_spec: str | None = None  # the design's --target (preset name or file)
     target_shape: np.ndarray | None = None  # its shape on ``freq``, when it can be read
+    #: The manifest's figures block (roomcorr/deliver/figures.py), when there is a manifest.
+    figures: dict[str, Any] | None = None
 
 
 @dataclass
@@ -579,10 +597,7 @@ def _filter_column(x: _Channel, ctx: _Context) -> Column | None:
         return None
     gain, phase, gd = filter_response(x.fir, x.rate, ctx.freq)
     col = Column(x.name)
-    col.paragraphs.append(
-        f"Minimum-phase FIR at {x.rate} Hz, {len(x.fir)} taps, pre-gain {ctx.pre_gain:.1f} dB "
-        "included."
-    )
+    col.paragraphs.append(_filter_description(x, ctx))
     regions = withheld_regions(ctx.freq, x.ch, ctx.caps["max_boost_db"])
     for r in regions[:4]:
         col.paragraphs.append(
@@ -604,17 +619,53 @@ def _filter_column(x: _Channel, ctx: _Context) -> Column | None:
     return col
 
 
+def _filter_description(x: _Channel, ctx: _Context) -> str:
+    """What the filter is: minimum phase, or mixed phase with latency and measured pre-ringing."""
+    pre = fmt_db((ctx.figures or {}).get("pre_gain_db", ctx.pre_gain), 2, True)
+    if not ctx.mixed:
+        return (
+            f"Minimum-phase FIR at {x.rate} Hz, {len(x.fir)} taps, pre-gain {pre} included; "
+            "a minimum-phase filter adds no latency and has no pre-ringing."
+        )
+    n = ctx.mixed["latency_samples"].get(x.rate)
+    lat = f"{ctx.mixed['latency_ms']:g} ms" + ("" if n is None else f" ({n} samples)")
+    ring = (ctx.figures or {}).get("pre_ringing_db")
+    ring_txt = (
+        "" if ring is None
+        else f"; its pre-ringing, measured, is at most {fmt_db(ring)} re its main peak"
+    )
+    return (
+        f"Mixed-phase FIR at {x.rate} Hz, {len(x.fir)} taps, latency {lat}, pre-gain {pre} "
+        f"included: minimum phase in the bass, and above it the loudspeaker's excess phase "
+        f"undone as well{ring_txt} (see the time and mixed-phase sections)."
+    )
+
+
+def _latency_samples_at(ctx: _Context, fs: int) -> int:
+    """Design latency in samples at ``fs`` (0 for minimum phase)."""
+    if not ctx.mixed:
+        return 0
+    n = ctx.mixed["latency_samples"].get(fs)
+    if n is None:
+        return int(round(float(ctx.mixed["latency_ms"]) * fs / 1000.0))
+    return int(n)
+
+
 def _time_column(x: _Channel, ctx: _Context) -> Column | None:
     from roomcorr.report import figures as fg
 
     if x.corrected is None or x.fir is None or x.pos_irs is None:
         return None
     col = Column(x.name)
+    after = np.asarray(x.corrected[0])
+    lat = _latency_samples_at(ctx, ctx.fs)
+    if lat:  # drawn aligned: the design latency is taken out, so only pre-ringing leads
+        after = np.concatenate([after[lat:], np.zeros(min(lat, after.size))])
     col.figures.append(
         Figure(
             f"{x.name}-time",
             f"Impulse and step response, {x.name}",
-            ctx.png(fg.plot_time(ctx.fs, x.fir, x.pos_irs[0], x.corrected[0],
+            ctx.png(fg.plot_time(ctx.fs, x.fir, x.pos_irs[0], after,
                                  f"Time response: {x.name}")),
         )
     )
@@ -623,12 +674,7 @@ def _time_column(x: _Channel, ctx: _Context) -> Column | None:
 
 def _phase_column(x: _Channel, ctx: _Context) -> Column | None:
     """The mixed-phase part of one channel (``None`` for a minimum-phase design)."""
-    from roomcorr.design.mixedphase import (
-        LATENCY_CAUTION,
-        PRE_RING_LIMIT_DB,
-        PRE_RING_S,
-        latency_sentence,
-    )
+    from roomcorr.design.mixedphase import PRE_RING_LIMIT_DB, PRE_RING_S
     from roomcorr.report import figures as fg
 
     mixed = ctx.mixed
@@ -636,7 +682,6 @@ def _phase_column(x: _Channel, ctx: _Context) -> Column | None:
         return None
     ch = mixed["channels"][x.index]
     col = Column(x.name)
-    col.paragraphs.append(latency_sentence(mixed["latency_ms"], mixed["latency_samples"]))
     lo, hi = (float(v) for v in ch["band_hz"])
     col.paragraphs.append(
         f"The loudspeaker's excess phase (the measured phase minus that of the minimum-phase "
@@ -671,8 +716,7 @@ def _phase_column(x: _Channel, ctx: _Context) -> Column | None:
             "No filter was designed at the measurement's sample rate, so the direct sound "
             "could not be shown before and after."
         )
-    col.paragraphs.append(LATENCY_CAUTION)
-    return col
+    return col  # the latency and its caution are stated once, in the overview
 
 
 def _position_decay(x: _Channel, ctx: _Context) -> list[Any]:
@@ -730,6 +774,14 @@ def _ringing_column(x: _Channel, ctx: _Context) -> Column | None:
     return col
 
 
+#: Intro of the time section for a mixed-phase design (instead of the minimum-phase one).
+TIME_INTRO_MIXED = (
+    "Top: the filter alone. Bottom: the first position before and after correction, the "
+    "corrected response drawn with the design latency taken out so that both main peaks sit "
+    "at 0 ms. Anything left of 0 ms is pre-ringing: a mixed-phase filter has some (measured "
+    "in the mixed-phase section)."
+)
+
 #: Sections with one column per channel: (id, text above the columns, column builder).
 #: Add a per-channel section by writing a ``_xxx_column(x, ctx)`` and listing it here.
 CHANNEL_SECTIONS: list[tuple[str, str, Any]] = [
@@ -774,26 +826,38 @@ def _safety_section(chans: list[_Channel], curves: dict[str, Any], ctx: _Context
     from roomcorr.design.safety import CAUTIONS, PEAK_BAND, full_band_peak_gain_db
 
     caps = ctx.caps
-    rows = [["channel", "rate (Hz)", "taps", "peak gain (dB)", "worst-case gain (dB)"]]
-    for x in chans:
-        if x.fir is None:
-            continue
-        for r in sorted(curves["firs"]):
-            h = np.asarray(curves["firs"][r][x.index], dtype=float)
-            rows.append([x.name, str(r), str(h.size), f"{full_band_peak_gain_db(h, r):.2f}",
-                         f"{worst_case_gain_db(h):.2f}"])
+    if ctx.figures is not None:  # the manifest's figures, never recomputed here
+        rows = [["channel", "rate (Hz)", "taps", "largest boost (dB)", "peak gain (dB)",
+                 "worst-case gain (dB)"]]
+        for c in ctx.figures.get("filters", []):
+            rows.append([str(c["name"]), str(c["sample_rate"]), str(c["taps"]),
+                         fmt_db(c["largest_boost_db"], 2, unit=False),
+                         fmt_db(c["peak_gain_db"], 2, True, unit=False),
+                         fmt_db(c["worst_case_gain_db"], 2, True, unit=False)])
+    else:  # curves without a manifest (a design in memory): the filters' own figures
+        rows = [["channel", "rate (Hz)", "taps", "peak gain (dB)", "worst-case gain (dB)"]]
+        for x in chans:
+            if x.fir is None:
+                continue
+            for r in sorted(curves["firs"]):
+                h = np.asarray(curves["firs"][r][x.index], dtype=float)
+                rows.append([x.name, str(r), str(h.size),
+                             fmt_db(full_band_peak_gain_db(h, r), 2, True, unit=False),
+                             fmt_db(worst_case_gain_db(h), 2, True, unit=False)])
     saf = Section("safety", SECTION_TITLES["safety"])
     mb = "n/a" if caps["max_boost_db"] is None else f"{caps['max_boost_db']:g} dB"
     mc = "n/a" if caps["max_cut_db"] is None else f"{caps['max_cut_db']:g} dB"
     saf.paragraphs.append(
-        f"Pre-gain {ctx.pre_gain:.2f} dB (common to all channels and rates). Caps in force: "
+        f"Pre-gain {fmt_db((ctx.figures or {}).get('pre_gain_db', ctx.pre_gain), 2, True)} "
+        "(common to all channels and rates). Caps in force: "
         f"boost at most {mb}, cut at most {mc}, peak gain ceiling "
         f"{caps['ceiling_db']:g} dB" + (" (gain allowed)." if caps["allow_gain"] else ".")
     )
     saf.paragraphs.append(
-        f"Peak gain is the filter's largest gain anywhere from {PEAK_BAND} (not only between "
-        "20 Hz and 20 kHz); worst-case gain (20 log10 of the sum of |taps|) is the most any "
-        "input waveform could grow."
+        f"Largest boost is a filter's largest gain before the pre-gain and peak gain its "
+        f"largest gain with it, both anywhere from {PEAK_BAND} (not only between "
+        "20 Hz and 20 kHz), largest over the sample rates; worst-case gain (20 log10 of the "
+        "sum of |taps|) is the most any input waveform could grow."
     )
     if ctx.iir:
         saf.paragraphs.append(
@@ -810,6 +874,7 @@ def report_context(
     settings: dict[str, Any] | None = None,
     png: Any = None,
     iir: dict[str, list[dict[str, Any]]] | None = None,
+    figures: dict[str, Any] | None = None,
 ) -> _Context:
     """What every section of a report of ``curves`` shares (arguments as :func:`build_report`).
 
@@ -831,6 +896,7 @@ def report_context(
         mixed=curves.get("mixed_phase"),
         target_spec=spec,
         target_shape=glance.target_shape_db(freq, spec),
+        figures=figures,
     )
 
 
@@ -844,6 +910,7 @@ def build_report(
     comparison: dict[str, Any] | None = None,
     through: dict[str, Any] | None = None,
     facts: list[str] | None = None,
+    figures: dict[str, Any] | None = None,
 ) -> Report:
     """Compute every section and figure of the report.
 
@@ -878,6 +945,9 @@ def build_report(
         against that design's prediction (see :func:`through_section`).
     facts : list of str, optional
         Lines under the title (:func:`roomcorr.report.glance.header_lines`).
+    figures : dict, optional
+        The manifest's figures block (:func:`roomcorr.deliver.figures.figures_of_manifest`):
+        the overview and the safety section state these numbers, never their own.
 
     Returns
     -------
@@ -888,11 +958,13 @@ def build_report(
     def png(fig: Any) -> bytes:
         return fg.png_bytes(fig, dpi=dpi)
 
-    ctx = report_context(curves, settings, png, iir)
+    ctx = report_context(curves, settings, png, iir, figures)
     designed = ctx.designed
     overview = Section("overview", SECTION_TITLES["overview"])
     if designed:
-        overview.paragraphs.extend(glance.glance_sentences(curves, ctx.caps["max_boost_db"]))
+        overview.paragraphs.extend(
+            glance.glance_sentences(curves, ctx.caps["max_boost_db"], ctx.figures)
+        )
     else:
         overview.paragraphs.append(
             "This folder holds measurements only; run the design step to see a correction."
@@ -903,7 +975,7 @@ def build_report(
         overview.paragraphs.append(_comparison_sentence(comparison))
     if designed:  # every sentence, channel by channel, below the short overview
         changes = Section("changes", SECTION_TITLES["changes"])
-        changes.paragraphs.extend(summary_sentences(curves, ctx.caps["max_boost_db"]))
+        changes.paragraphs.extend(summary_sentences(curves, ctx.caps["max_boost_db"], ctx.figures))
         sections.append(changes)
     if designed:
         from roomcorr.report.system import system_sections
@@ -911,6 +983,8 @@ def build_report(
         sections.extend(system_sections(curves, png))
     chans = [_channel(curves, ch, ctx) for ch in curves["channels"]]
     for sec_id, intro, build in CHANNEL_SECTIONS:
+        if sec_id == "time" and ctx.mixed:
+            intro = TIME_INTRO_MIXED
         sec = channel_section(sec_id, intro, chans, ctx, build)
         if sec is not None:
             sections.append(sec)
@@ -1430,10 +1504,12 @@ def write_report(
     through = None
     if is_design:
         from roomcorr.deliver.export import load_design_curves, read_manifest
+        from roomcorr.deliver.figures import figures_of_manifest
 
         curves = load_design_curves(d)
         manifest = read_manifest(d)
         settings = manifest.get("settings")
+        figures = figures_of_manifest(manifest)
         quality = None
         for src in manifest.get("measurements") or []:  # the folder the IRs came from
             parent = Path(str(src)).parent
@@ -1443,6 +1519,7 @@ def write_report(
                 quality = _read_quality(parent)
                 break
     else:
+        figures = None
         curves = _session_curves(d)
         quality = _read_quality(d)
         through = _read_through(d)
@@ -1452,7 +1529,13 @@ def write_report(
     report = build_report(
         curves, settings, quality, iir=iir, dpi=dpi, comparison=comparison, through=through,
         facts=facts,
+        figures=figures,
     )
+    basis = manifest.get("timing_basis") if is_design else None
+    if isinstance(basis, dict) and isinstance(basis.get("label"), str):
+        report.sections[0].paragraphs.append(  # the manifest's words (measure/timing.py)
+            f"Timing basis of the measurement behind this design: {basis['label']}."
+        )
     # A finished room run is sealed by its complete.json (SHA-256 of every file,
     # manifest included): the report is added beside it, never into its manifest.
     same = dest.resolve() == d.resolve()

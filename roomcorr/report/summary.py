@@ -12,6 +12,7 @@ from typing import Any
 
 import numpy as np
 
+from roomcorr.deliver.figures import fmt_db
 from roomcorr.design.area import area_fields_of
 
 #: Smallest change worth a sentence, dB.
@@ -301,7 +302,11 @@ def area_sentences(ch: dict[str, Any], name: str) -> list[str]:
     return out
 
 
-def summary_sentences(curves: dict[str, Any], max_boost_db: float | None = None) -> list[str]:
+def summary_sentences(
+    curves: dict[str, Any],
+    max_boost_db: float | None = None,
+    figures: dict[str, Any] | None = None,
+) -> list[str]:
     """All sentences of a design, channel by channel, then the level.
 
     Parameters
@@ -310,6 +315,9 @@ def summary_sentences(curves: dict[str, Any], max_boost_db: float | None = None)
         Layout of :func:`roomcorr.deliver.export.load_design_curves`.
     max_boost_db : float, optional
         The boost cap in force (from the design settings).
+    figures : dict, optional
+        The manifest's figures block (:func:`roomcorr.deliver.figures.figures_of_manifest`);
+        its pre-gain, largest boost, peak gain and worst-case gain are stated as stored.
 
     Returns
     -------
@@ -319,14 +327,20 @@ def summary_sentences(curves: dict[str, Any], max_boost_db: float | None = None)
     out: list[str] = []
     for ch in curves["channels"]:
         out.extend(channel_sentences(f, ch, max_boost_db))
-    pg = float(curves.get("pre_gain_db", 0.0))
-    if pg < -0.05:
+    pg = float((figures or {}).get("pre_gain_db", curves.get("pre_gain_db", 0.0)))
+    if fmt_db(pg) != fmt_db(0.0):
         out.append(
-            f"All filters are lowered by {-pg:.1f} dB (pre-gain) so that no frequency "
+            f"All filters are lowered by {fmt_db(-pg)} (pre-gain) so that no frequency "
             "leaves a filter louder than it went in."
         )
     else:
         out.append("No pre-gain was needed: no filter rises above the gain ceiling.")
+    if figures is not None and figures.get("largest_boost_db") is not None:
+        out.append(
+            f"Largest boost {fmt_db(figures['largest_boost_db'])} (the filters' largest gain "
+            f"before the pre-gain), peak gain {fmt_db(figures['peak_gain_db'], 2, True)}, "
+            f"worst-case gain {fmt_db(figures['worst_case_gain_db'], 2, True)}."
+        )
     mp = curves.get("mixed_phase")
     if mp:
         from roomcorr.design.mixedphase import latency_sentence

@@ -14,6 +14,7 @@ from typing import Any
 
 import numpy as np
 
+from roomcorr.deliver.figures import fmt_db
 from roomcorr.deliver.system import system_sentences
 from roomcorr.report.figures import AFTER, INK, MEAN, SEAT, new_figure
 
@@ -50,7 +51,7 @@ def trims_table(fields: dict[str, Any]) -> list[list[str]]:
                 f"{o['delay_ms']:.3f}",
                 samples,
                 f"{o['distance_m']:.3f}",
-                f"{o['gain_db']:+.2f}",
+                fmt_db(o["gain_db"], 2, True, unit=False),
                 "normal" if o["polarity"] > 0 else "inverted",
                 "yes" if o["in_filters"] else "no: set on the device",
             ]

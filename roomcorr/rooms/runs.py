@@ -420,13 +420,18 @@ def measurement_files(folder: str | os.PathLike[str]) -> list[Path]:
 
 
 def add_measurement(
-    room: Room, paths: list[str | os.PathLike[str]], note: str | None = None
+    room: Room,
+    paths: list[str | os.PathLike[str]],
+    note: str | None = None,
+    record: dict[str, Any] | None = None,
 ) -> Path:
     """Copy impulse-response WAVs measured elsewhere into a new measurement run.
 
     The files are checked (:func:`roomcorr.audio_io.read_ir_set`) before
     anything is written; they are renamed ``pos1.wav``, ``pos2.wav``, ... in
-    the given order and the original names are kept in the marker.
+    the given order and the original names are kept in the marker. ``record``,
+    when given, is written as the run's ``measurement.json`` (channel names and
+    timing basis of imported responses).
     """
     files: list[Path] = []
     for item in paths:
@@ -438,6 +443,8 @@ def add_measurement(
     with new_run(room, "measurement", info) as run_dir:
         for i, f in enumerate(files, start=1):
             atomic_write_bytes(run_dir / f"pos{i}.wav", Path(f).read_bytes())
+        if record is not None:
+            atomic_write_text(run_dir / "measurement.json", json.dumps(record, indent=2) + "\n")
     return run_dir
 
 

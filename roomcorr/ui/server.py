@@ -21,6 +21,7 @@ import contextlib
 import json
 import secrets
 import socket
+import tempfile
 import threading
 import time
 import webbrowser
@@ -44,6 +45,7 @@ from roomcorr import rooms
 from roomcorr.app import measure as measuring
 from roomcorr.app.design import DesignPreview
 from roomcorr.app.history import set_run_label
+from roomcorr.app.imports import MAX_IMPORT_BYTES, import_candidates, import_from_app
 from roomcorr.app.report import report_in_room
 from roomcorr.errors import RoomBusyError, RoomcorrError
 from roomcorr.settings import find_preset, preset_names, read_toml
@@ -187,6 +189,10 @@ def target_presets() -> list[dict[str, Any]]:
     return out
 
 
+class _TooLarge(RoomcorrError):
+    """A request body above its limit (answered 413)."""
+
+
 def create_app(room: rooms.Room, token: str, port: int) -> ASGIApp:
     """The app for one room folder, guarded by :class:`Guard`.
 
@@ -325,8 +331,45 @@ def create_app(room: rooms.Room, token: str, port: int) -> ASGIApp:
             return _error(exc, 404 if "no such" in str(exc) or "not a" in str(exc) else 400)
         return Response(json.dumps(data, allow_nan=False), media_type="application/json")
 
+    async def bounded_body(request: Request, limit: int) -> dict[str, Any]:
+        """The JSON body, read at most ``limit`` bytes (413 beyond)."""
+        declared = request.headers.get("content-length", "")
+        if declared.isdigit() and int(declared) > limit:
+            raise _TooLarge(f"request: larger than {limit // (1024 * 1024)} MB; import fewer files")
+        chunks, size = [], 0
+        async for chunk in request.stream():
+            size += len(chunk)
+            if size > limit:
+                raise _TooLarge(f"request: larger than {limit // (1024 * 1024)} MB")
+            chunks.append(chunk)
+        try:
+            data = json.loads(b"".join(chunks))
+        except (ValueError, UnicodeDecodeError):
+            raise RoomcorrError("request: expected a JSON object") from None
+        if not isinstance(data, dict):
+            raise RoomcorrError("request: expected a JSON object")
+        return data
+
+    async def import_files(request: Request) -> Response:
+        if measurer.busy():
+            return _error(
+                RoomcorrError("a measurement is running; import when it has finished"), 409
+            )
+        try:
+            data = await bounded_body(request, MAX_IMPORT_BYTES)
+            with tempfile.TemporaryDirectory(prefix="roomcorr-import-") as work:
+                res = await run_in_threadpool(import_from_app, room, data, Path(work))
+        except _TooLarge as exc:
+            return _error(exc, 413)
+        except RoomcorrError as exc:
+            return _error(exc, 409 if isinstance(exc, RoomBusyError) else 400)
+        await live.publish({"type": "import", "state": "finished", "run_id": res["run_id"]})
+        return JSONResponse(res)
+
     routes = [
         Route("/", index),
+        Route("/api/import", import_files, methods=["POST"]),
+        Route("/api/import/candidates", api(lambda: import_candidates(room))),
         Route("/api/decay/{kind}/{run_id}", decay),
         Route("/static/{name}", static),
         Route("/api/room", api(lambda: service.room_overview(room))),

@@ -43,6 +43,14 @@ function plotSize() {
   return { width: w, height: Math.round(Math.min(380, w * 0.42)) };
 }
 
+function fmtDb(value, digits, signed) {
+  // one way to write a dB figure (as fmt_db in roomcorr/deliver/figures.py): never "-0.0"
+  let v = Number(Number(value).toFixed(digits));
+  if (Object.is(v, -0) || v === 0) v = 0;
+  const text = v.toFixed(digits);
+  return (signed && v > 0 ? "+" : "") + text + " dB";
+}
+
 function describe(run) {
   const f = run.figures || {};
   if (run.kind === "measurement") {
@@ -50,12 +58,18 @@ function describe(run) {
     if (f.positions) parts.push(`${f.positions} positions`);
     if (f.channels) parts.push(`${f.channels} loudspeakers`);
     if (f.sample_rate) parts.push(`${f.sample_rate} Hz`);
+    if (f.gates_warned && f.gates_warned.length) parts.push(`WARNING: ${f.gates_warned.join(", ")}`);
+    if (f.timing_basis) parts.push(`timing: ${f.timing_basis.label}`);
     return parts.join(", ");
   }
   const parts = [];
   if (run.source) parts.push(`from ${run.source}`);
   if (f.target) parts.push(`target ${f.target}`);
-  if (f.pre_gain_db !== undefined && f.pre_gain_db !== null) parts.push(`pre-gain ${Number(f.pre_gain_db).toFixed(2)} dB`);
+  // the manifest's figures (history's JSON), written as roomcorr/deliver/figures.py fmt_db does
+  if (f.pre_gain_db !== undefined && f.pre_gain_db !== null) parts.push(`pre-gain ${fmtDb(f.pre_gain_db, 2, true)}`);
+  if (f.largest_boost_db !== undefined && f.largest_boost_db !== null) parts.push(`largest boost ${fmtDb(f.largest_boost_db, 1)}`);
+  if (f.peak_gain_db !== undefined && f.peak_gain_db !== null) parts.push(`peak gain ${fmtDb(f.peak_gain_db, 2, true)}`);
+  if (f.latency_ms) parts.push(`latency ${f.latency_ms} ms`);
   return parts.join(", ");
 }
 
@@ -673,6 +687,42 @@ function heatMap(parent, label, map, modes, readout, count) {
   return { draw, canvas };
 }
 
+// Bring impulse responses into the room: uploaded files (base64 in JSON, the server caps
+// the request size) or WAVs already inside the room folder; the same checks as the CLI.
+async function loadImportCandidates() {
+  const sel = el("i-choose");
+  if (!sel) return;
+  const files = await api("/api/import/candidates");
+  sel.innerHTML = "";
+  files.forEach(f => { const o = document.createElement("option"); o.value = o.textContent = f; sel.appendChild(o); });
+}
+
+function fileBase64(file) {
+  return new Promise((resolve, reject) => {
+    const r = new FileReader();
+    r.onload = () => resolve(String(r.result).split(",", 2)[1] || "");
+    r.onerror = () => reject(r.error);
+    r.readAsDataURL(file);
+  });
+}
+
+async function importFiles() {
+  const body = { names: el("i-names").value.trim() || null, timing_basis: el("i-basis").value };
+  const uploads = [...el("i-upload").files];
+  const chosen = [...el("i-choose").selectedOptions].map(o => o.value);
+  try {
+    if (uploads.length) body.files = await Promise.all(uploads.map(async f => ({ name: f.name, data: await fileBase64(f) })));
+    else body.paths = chosen;
+    status("importing ...");
+    const res = await api("/api/import", body);
+    status(`imported ${res.positions} position(s) x ${res.channels} channel(s) as measurement ${res.run_id} (timing: ${res.timing_basis.label})`);
+    el("i-upload").value = "";
+    await loadRoom(true);
+  } catch (err) {
+    status(String(err.message || err), true);
+  }
+}
+
 async function openCompare() {
   const a = el("c-before").value, b = el("c-after").value;
   if (!a || !b) { status("compare needs two finished measurements", true); return; }
@@ -1234,6 +1284,8 @@ async function setupDesign() {
   el("d-clear-points").addEventListener("click", () => { targetPoints = []; renderPoints(); shaped = true; schedule(); });
   el("d-save").addEventListener("click", saveDesign);
   el("c-go").addEventListener("click", openCompare);
+  el("i-go").addEventListener("click", importFiles);
+  loadImportCandidates().catch(() => {});
   el("report-write").addEventListener("click", writeReport);
   el("d-undo").addEventListener("click", () => restore(-1));
   el("d-redo").addEventListener("click", () => restore(1));
@@ -1274,7 +1326,7 @@ function connectLive() {
   const ws = new WebSocket(`${proto}://${location.host}/api/live?token=${encodeURIComponent(TOKEN)}`);
   ws.onmessage = msg => {
     const ev = JSON.parse(msg.data);
-    if (ev.type === "design" && ev.state === "finished") loadRoom(true).catch(() => {});
+    if ((ev.type === "design" || ev.type === "import") && ev.state === "finished") loadRoom(true).catch(() => {});
   };
 }
 

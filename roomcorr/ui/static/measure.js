@@ -260,9 +260,19 @@ function onEvent(ev) {
       measure.speaker = ev.output;
       drawArea();
       break;
-    case "gates":
-      if (ev.gates.every(g => g.passed)) measure.captures += 1;
+    case "gates": {
+      if (ev.gates.every(g => g.passed || g.severity === "warning")) measure.captures += 1;
+      // a warning gate lets the run carry on, but is shown where it is seen, not only in the log
+      const warned = ev.gates.filter(g => !g.passed && g.severity === "warning");
+      if (warned.length) {
+        const text = "Warning: " + warned.map(g => g.message).join("; ");
+        const box = el("m-warning");
+        if (box) { box.textContent = text; box.hidden = false; }
+        status(text, true);
+        mLog(text);
+      }
       break;
+    }
     case "saved":
       measure.done[ev.position] = "saved";
       measure.current = null;
