@@ -92,6 +92,38 @@ def _write_pages(app: Any) -> None:
             path.write_text(text, encoding="utf-8")
 
 
+_BACKTICKS = re.compile(r"(``.*?``|`[^`]*`)")
+
+
+def _escape_bars(lines: list[str]) -> list[str]:
+    """Escape ``|`` in prose, where docstrings mean an absolute value (``|h|``).
+
+    reStructuredText would read ``|h|`` as a substitution and fail the build. Literal
+    text (between backticks, in ``::`` blocks) and table or line-block lines (starting
+    with ``| ``, ``+-`` or ``+=``) are left alone.
+    """
+    out: list[str] = []
+    literal_indent: int | None = None
+    for line in lines:
+        stripped = line.strip()
+        indent = len(line) - len(line.lstrip())
+        if literal_indent is not None:
+            if stripped and indent <= literal_indent:
+                literal_indent = None
+            else:
+                out.append(line)
+                continue
+        if "|" in line and not (stripped == "|" or stripped.startswith(("| ", "+-", "+="))):
+            parts = _BACKTICKS.split(line)
+            for k in range(0, len(parts), 2):
+                parts[k] = re.sub(r"(?<!\\)\|", r"\\|", parts[k])
+            line = "".join(parts)
+        out.append(line)
+        if stripped.endswith("::"):
+            literal_indent = indent
+    return out
+
+
 _UNDERLINE = re.compile(r"^\s*([-=~^])\1{2,}\s*$")
 _CITATION = re.compile(r"^(\s*\.\. )\[(\d+)\]")
 _CITE_REF = re.compile(r"\[(\d+)\]_")
@@ -152,6 +184,7 @@ def _process_docstring(
         return m.group(0) if m.group(1) in own else f"[{_label(module, m.group(1))}]_"
 
     lines[:] = [_CITE_REF.sub(relabel, x) for x in lines]
+    lines[:] = _escape_bars(lines)
 
 
 def _source_read(app: Any, docname: str, source: list[str]) -> None:

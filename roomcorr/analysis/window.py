@@ -75,7 +75,7 @@ def fdw_power(
     Returns
     -------
     power : ndarray, shape (n_freqs,)
-        ``|H(f)|^2`` with the window applied (no smoothing yet).
+        |H(f)|^2 with the window applied (no smoothing yet).
 
     References
     ----------

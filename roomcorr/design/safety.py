@@ -7,7 +7,7 @@
   only over the audible band: gain at 15 Hz costs driver excursion and gain
   at 22 kHz can clip a DAC as surely as gain at 1 kHz. If every filter
   already sits below the ceiling, no make-up gain is added.
-* Worst-case gain, ``20 log10 sum |h|``, is reported for every filter: the
+* Worst-case gain, 20 log10 sum |h|, is reported for every filter: the
   largest output a full-scale input of any waveform could produce.
 * Short filters are fitted under the boost cap before the check
   (:func:`fit_under_cap`): the realised response of every synthesised filter
