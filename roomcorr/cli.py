@@ -260,6 +260,7 @@ def _print_design_summary(result: Any, out: Path, entries: list[dict]) -> None:
     figs = figures_of_manifest(read_manifest(out))
     per_channel = {c["name"]: c for c in figs["channels"]}
     print(f"Design written to {out}  ({len(entries) + 1} files, manifest.json lists them)")
+    _print_files_written(out)
     print(f"Common pre-gain: {fmt_db(figs['pre_gain_db'], 2, True)} (same for every channel)")
     print(f"Largest boost and peak gain below are the filters' largest gain from {PEAK_BAND}, "
           "boost before and peak gain after the pre-gain")
@@ -304,6 +305,22 @@ def _print_design_summary(result: Any, out: Path, entries: list[dict]) -> None:
             "lower the player's volume to avoid clipping.",
             file=sys.stderr,
         )
+    _print_next_steps(out)
+
+
+def _print_files_written(out: Path) -> None:
+    """The filter files per rate and format, relative to ``out`` (deliver/loading.py)."""
+    from roomcorr.app.playback import design_files
+
+    for line in design_files(str(out))["lines"]:
+        print(line)
+
+
+def _print_next_steps(out: Path) -> None:
+    from roomcorr.deliver.loading import next_steps
+
+    for line in next_steps(str(out)):
+        print(line)
 
 
 def _print_system_summary(result: Any) -> None:
@@ -904,6 +921,245 @@ def _run_ui(args: argparse.Namespace) -> int:
     return 0
 
 
+# --------------------------------------------------------------------------- playback
+
+
+def _add_apply(sub: Any) -> argparse.ArgumentParser:
+    from roomcorr.playback.render import LOWERED_PEAK_DBFS, SUBTYPES
+
+    p = sub.add_parser(
+        "apply",
+        help="render an audio file through a design's filters (offline, streamed)",
+        description="Convolve INPUT through the design's routes (every input into every "
+        "output it feeds, with the design's delays and gains) at the file's sample rate, "
+        "block by block. The output has one channel per loudspeaker output and keeps the "
+        "filters' tail. Nothing is clipped: if the result would exceed full scale it is "
+        f"lowered to {LOWERED_PEAK_DBFS:g} dBFS peak and the amount printed (--no-lower "
+        "refuses instead).",
+    )
+    p.add_argument("input", metavar="INPUT", help="audio file (WAV, FLAC, ...)")
+    p.add_argument(
+        "--design", metavar="DIR", help="design folder (in a room folder: its latest design)"
+    )
+    p.add_argument("--out", required=True, metavar="OUTPUT.wav", help="file to write")
+    p.add_argument(
+        "--subtype", default="FLOAT", choices=SUBTYPES, help="output sample format (FLOAT)"
+    )
+    p.add_argument(
+        "--no-lower",
+        action="store_true",
+        help="refuse (write nothing) rather than lower a result that would clip",
+    )
+    return p
+
+
+def _run_apply(args: argparse.Namespace) -> int:
+    from rich.console import Console
+    from rich.progress import BarColumn, Progress, TextColumn, TimeRemainingColumn
+
+    from roomcorr.app.playback import apply_command, default_design
+
+    args.design = default_design(args.design)
+    console = Console(stderr=True)
+    with Progress(
+        TextColumn("rendering"),
+        BarColumn(),
+        TextColumn("{task.percentage:>3.0f} %"),
+        TimeRemainingColumn(),
+        console=console,
+        transient=True,
+    ) as bar:
+        task = bar.add_task("apply", total=1)
+        res = apply_command(
+            args.input,
+            args.design,
+            args.out,
+            subtype=args.subtype,
+            lower=not args.no_lower,
+            on_progress=lambda done, total: bar.update(task, completed=done, total=total),
+        )
+    print(
+        f"Wrote {res['out']}: {res['seconds']:.1f} s at {res['sample_rate']} Hz, "
+        f"{res['inputs']} input(s) -> {res['outputs']} output(s), {res['subtype']}"
+    )
+    peak = "silent" if res["peak_dbfs"] is None else f"{res['peak_dbfs']:+.2f} dBFS"
+    print(f"Output peak (sample): {peak}")
+    if res["lowered_db"] > 0:
+        print(
+            f"LOWERED by {res['lowered_db']:.2f} dB: the result would have exceeded full "
+            f"scale; its peak is now {res['lowered_to_dbfs']:g} dBFS (nothing clipped)"
+        )
+    if res["latency_ms"] > 0:
+        print(f"Mixed-phase latency: the output is {res['latency_ms']:.2f} ms late")
+    _print_cautions()
+    return 0
+
+
+def _add_commands(sub: Any) -> argparse.ArgumentParser:
+    p = sub.add_parser(
+        "commands",
+        help="print where a design's files are and ffmpeg/sox command lines that apply it",
+        description="Print the design's filter files and, per sample rate, an ffmpeg "
+        "command (afir) and sox commands (fir) that render a file through the design's "
+        "routes, delays and gains exactly as 'roomcorr apply' does.",
+    )
+    p.add_argument("design", metavar="DIR", help="design folder")
+    p.add_argument("--rate", type=_whole, metavar="HZ", help="only this sample rate")
+    p.add_argument("--input", default="music.wav", metavar="FILE", help="input file name")
+    p.add_argument("--output", default="corrected.wav", metavar="FILE", help="output file name")
+    p.add_argument(
+        "--pipewire",
+        metavar="FILE.conf",
+        help="also write a PipeWire filter-chain configuration (a sink that plays through "
+        "the design; filters at --rate, default 48000 Hz)",
+    )
+    return p
+
+
+def _run_commands(args: argparse.Namespace) -> int:
+    from roomcorr.app.playback import design_commands, design_files
+
+    files = design_files(args.design)
+    print(f"Filters in {files['folder']}:")
+    for line in files["lines"]:
+        print(line)
+    doc = design_commands(args.design, args.rate, args.input, args.output)
+    ver = doc["ffmpeg_version"]
+    for r in doc["rates"]:
+        print(f"\n# {r['sample_rate']} Hz input: ffmpeg"
+              + (f" {ver[0]}.{ver[1]}" if ver else " 6.1 or later"))
+        print(r["ffmpeg"])
+        if r["sox"] is None:
+            print(f"# sox: {r['sox_note']}")
+        else:
+            print(f"# {r['sample_rate']} Hz input: sox (one command per output, then join)")
+            for line in r["sox"]:
+                print(line)
+    print("\n# sox clips samples beyond full scale; check the peak with 'roomcorr apply' first.")
+    if args.pipewire:
+        from roomcorr.app.playback import pipewire_config
+
+        pw = pipewire_config(args.design, args.pipewire, args.rate)
+        print(
+            f"\nPipeWire configuration ({pw['sample_rate']} Hz filters): {pw['path']}\n"
+            f"  put it in {pw['where']};\n"
+            f"  a sink called '{pw['sink']}' appears: play music to it and connect its output "
+            "to the loudspeakers' device."
+        )
+        _print_cautions()
+    return 0
+
+
+def _add_listen(sub: Any) -> argparse.ArgumentParser:
+    p = sub.add_parser(
+        "listen",
+        help="play music through a design, switching corrected/uncorrected at equal loudness",
+        description="Play MUSIC through the design in real time (the same routes as 'apply') "
+        "and switch between corrected and uncorrected with a short cross-fade. The "
+        "uncorrected path is lowered to the corrected one's integrated loudness (ITU-R "
+        "BS.1770), so neither wins just by being louder. Keys: space or Enter switches, "
+        "+ and - change the level by 3 dB (never above the file's own level), q stops. "
+        "Starts quietly.",
+    )
+    p.add_argument("music", metavar="MUSIC", help="audio file at one of the design's rates")
+    p.add_argument(
+        "--design", metavar="DIR", help="design folder (in a room folder: its latest design)"
+    )
+    p.add_argument("--output-device", "--device", dest="device", metavar="DEV",
+                   help="output device (name part or number from 'roomcorr devices')")
+    p.add_argument("--level", type=_finite, default=-20.0, metavar="DB",
+                   help="starting level in dB below the file's own level (default -20; "
+                   "at most 0)")
+    p.add_argument("--block", type=_whole, default=256, metavar="N",
+                   help="samples per audio block (default 256)")
+    return p
+
+
+def _run_listen(args: argparse.Namespace) -> int:
+    import threading
+
+    from roomcorr.app.playback import default_design, prepare_listening
+    from roomcorr.playback.device import play
+
+    args.design = default_design(args.design)
+    if args.block < 32 or args.block > 16384:
+        raise SettingsError(f"--block {args.block}: choose 32 to 16384 samples")
+    _print_cautions()
+    paths, music, fig = prepare_listening(args.music, args.design, args.level, args.block)
+    print(
+        f"Playing {args.music} through {args.design}: {fig['seconds']:.0f} s at "
+        f"{fig['sample_rate']} Hz, "
+        f"{', '.join(fig['inputs'])} -> {', '.join(fig['outputs'])}, block "
+        f"{fig['block']} ({fig['block_ms']:.1f} ms)"
+    )
+    print(
+        f"Equal loudness: the uncorrected path is set {fig['uncorrected_gain_db']:+.2f} dB "
+        f"(design pre-gain {fig['pre_gain_db']:+.2f} dB; BS.1770 integrated loudness of the "
+        f"first {fig['loudness_seconds']:.0f} s: corrected {fig['loudness_corrected_lufs']:.1f} "
+        f"LUFS, uncorrected {fig['loudness_uncorrected_lufs']:.1f} LUFS before matching)"
+    )
+    if fig["latency_ms"] > 0:
+        print(f"Latency of this mixed-phase design: {fig['latency_ms']:.2f} ms (both paths wait "
+              "as long, so the switch does not jump in time)")
+    print(f"Level {fig['level_db']:+.0f} dB. Keys: space/Enter switch, + louder, - quieter, "
+          "q stop.")
+    stop = threading.Event()
+    level = [fig["level_db"]]
+
+    def on_key(key: str) -> None:
+        if key in (" ", "\n", "\r"):
+            now = paths.toggle()
+            print("corrected" if now else "uncorrected (loudness-matched)", flush=True)
+        elif key in ("+", "="):
+            level[0] = min(0.0, level[0] + 3.0)
+            paths.set_level_db(level[0])
+            print(f"level {level[0]:+.0f} dB" + (" (the file's own level: the cap)"
+                  if level[0] == 0.0 else ""), flush=True)
+        elif key == "-":
+            level[0] -= 3.0
+            paths.set_level_db(level[0])
+            print(f"level {level[0]:+.0f} dB", flush=True)
+        elif key in ("q", "Q"):
+            stop.set()
+
+    reader = threading.Thread(target=_read_keys, args=(on_key, stop), daemon=True)
+    reader.start()
+    status = play(paths, music, args.device, stop)
+    print(f"Stopped after {status.blocks} blocks; buffers lost: {status.underflows}")
+    return 0
+
+
+def _read_keys(on_key: Callable[[str], None], stop: Any) -> None:
+    """Single keys from a terminal (cbreak mode), else whole lines; until ``stop`` is set."""
+    import os
+    import select
+
+    fd = sys.stdin.fileno() if sys.stdin is not None else -1
+    if fd < 0:
+        return
+    tty_state = None
+    if os.isatty(fd):
+        import termios
+        import tty
+
+        tty_state = termios.tcgetattr(fd)
+        tty.setcbreak(fd)
+    try:
+        while not stop.is_set():
+            ready, _, _ = select.select([fd], [], [], 0.1)
+            if not ready:
+                continue
+            ch = os.read(fd, 1).decode(errors="ignore")
+            if not ch:
+                return
+            on_key(ch)
+    finally:
+        if tty_state is not None:
+            import termios
+
+            termios.tcsetattr(fd, termios.TCSADRAIN, tty_state)
+
+
 _COMMANDS: list[tuple[str, Callable[[Any], argparse.ArgumentParser], Callable[..., int]]] = [
     ("demo", _add_demo, _run_demo),
     ("design", _add_design, _run_design),
@@ -917,6 +1173,9 @@ _COMMANDS: list[tuple[str, Callable[[Any], argparse.ArgumentParser], Callable[..
     ("compare", _add_compare, _run_compare),
     ("import", _add_import, _run_import),
     ("ui", _add_ui, _run_ui),
+    ("apply", _add_apply, _run_apply),
+    ("commands", _add_commands, _run_commands),
+    ("listen", _add_listen, _run_listen),
 ]
 
 

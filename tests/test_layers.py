@@ -31,7 +31,7 @@ STAGES: list[tuple[str, tuple[str, ...]]] = [
     ("measure", ("roomcorr.measure", "roomcorr.rooms", "roomcorr.demo")),
     ("analysis", ("roomcorr.analysis",)),
     ("design", ("roomcorr.design", "roomcorr.pipeline")),
-    ("deliver/report", ("roomcorr.deliver", "roomcorr.report")),
+    ("deliver/report", ("roomcorr.deliver", "roomcorr.report", "roomcorr.playback")),
     ("app", ("roomcorr.app", "roomcorr.evaluation")),
     ("cli/ui", ("roomcorr.cli", "roomcorr.ui", "roomcorr.__main__")),
 ]

@@ -24,7 +24,9 @@ import numpy as np
 from roomcorr.analysis.decay import decay_method as _decay_method
 from roomcorr.analysis.decay import mean_band_decay as _mean_band_decay
 from roomcorr.deliver.figures import fmt_db
+from roomcorr.deliver.loading import file_groups
 from roomcorr.report import glance
+from roomcorr.report.files import files_parts
 from roomcorr.report.summary import fmt_hz, summary_sentences, withheld_regions
 
 REPORT_HTML = "report.html"
@@ -46,6 +48,7 @@ SECTION_TITLES = {
     "quality": "How good the measurement was",
     "through": "Measured through the design's filters",
     "safety": "Safety and levels",
+    "files": "The files and how to load them",
 }
 
 
@@ -911,6 +914,7 @@ def build_report(
     through: dict[str, Any] | None = None,
     facts: list[str] | None = None,
     figures: dict[str, Any] | None = None,
+    files: tuple[list[dict[str, Any]], str] | None = None,
 ) -> Report:
     """Compute every section and figure of the report.
 
@@ -948,6 +952,9 @@ def build_report(
     figures : dict, optional
         The manifest's figures block (:func:`roomcorr.deliver.figures.figures_of_manifest`):
         the overview and the safety section state these numbers, never their own.
+    files : (list of dict, str), optional
+        The design's file groups (:func:`roomcorr.deliver.loading.file_groups`)
+        and folder name: adds the section on the files and how to load them.
 
     Returns
     -------
@@ -1000,6 +1007,9 @@ def build_report(
         overview.paragraphs.append(_through_sentence(through))
     if designed:
         sections.append(_safety_section(chans, curves, ctx))
+    if designed and files is not None:
+        table, paragraphs = files_parts(*files)
+        sections.append(Section("files", SECTION_TITLES["files"], paragraphs, table=table))
     return Report(title=title, subtitle=f"measured at {ctx.fs} Hz", sections=sections,
                   facts=list(facts or []))
 
@@ -1530,6 +1540,7 @@ def write_report(
         curves, settings, quality, iir=iir, dpi=dpi, comparison=comparison, through=through,
         facts=facts,
         figures=figures,
+        files=(file_groups(manifest), d.name) if is_design else None,
     )
     basis = manifest.get("timing_basis") if is_design else None
     if isinstance(basis, dict) and isinstance(basis.get("label"), str):

@@ -43,6 +43,7 @@ from starlette.websockets import WebSocket, WebSocketDisconnect
 from roomcorr import app as service
 from roomcorr import rooms
 from roomcorr.app import measure as measuring
+from roomcorr.app import playback as playback_app
 from roomcorr.app.design import DesignPreview
 from roomcorr.app.history import set_run_label
 from roomcorr.app.imports import MAX_IMPORT_BYTES, import_candidates, import_from_app
@@ -284,6 +285,54 @@ def create_app(room: rooms.Room, token: str, port: int) -> ASGIApp:
             return _error(exc, 404)
         return FileResponse(path, filename=path.name)
 
+    async def design_zip(request: Request) -> Response:
+        try:
+            name, data = await run_in_threadpool(
+                playback_app.design_zip, room, request.path_params["run_id"]
+            )
+        except RoomcorrError as exc:
+            return _error(exc, 404)
+        disposition = f'attachment; filename="{name}"'
+        return Response(
+            data, media_type="application/zip", headers={"content-disposition": disposition}
+        )
+
+    listener = playback_app.ListenSession(room)
+
+    async def listen(request: Request) -> Response:
+        action = request.path_params["action"]
+        try:
+            if action == "music":
+                data: Any = await run_in_threadpool(playback_app.listen_music, room)
+            elif action == "state":
+                data = listener.state()
+            elif request.method != "POST":
+                return _error(RoomcorrError(f"listen/{action}: use POST"), 405)
+            elif action == "start":
+                if measurer.busy():
+                    raise RoomBusyError("a measurement is running; listen when it has finished")
+                req = await body(request)
+                run_id, music = req.get("run_id"), req.get("music")
+                if not isinstance(run_id, str) or not isinstance(music, str):
+                    raise RoomcorrError('listen: send {"run_id": ..., "music": ...} as text')
+                device = req.get("device")
+                if device is not None and not isinstance(device, str | int):
+                    raise RoomcorrError("listen: device must be a name or a number")
+                data = await run_in_threadpool(listener.start, run_id, music, device)
+            elif action == "switch":
+                data = listener.switch()
+            elif action == "level":
+                data = listener.level((await body(request)).get("delta_db"))
+            elif action == "stop":
+                data = await run_in_threadpool(listener.stop)
+            else:
+                return _error(RoomcorrError(f"listen/{action}: no such action"), 404)
+        except RoomcorrError as exc:
+            busy = isinstance(exc, RoomBusyError)
+            missing = "no such" in str(exc) or "not a" in str(exc)
+            return _error(exc, 409 if busy else 404 if missing else 400)
+        return Response(json.dumps(data, allow_nan=False), media_type="application/json")
+
     async def report(request: Request) -> Response:
         if measurer.busy():
             return _error(RoomcorrError("a measurement is running; write the report later"), 409)
@@ -384,6 +433,12 @@ def create_app(room: rooms.Room, token: str, port: int) -> ASGIApp:
             api(lambda before, after: service.compare_view(room, before, after)),
         ),
         Route("/api/file/{kind}/{run_id}/{path:path}", run_file),
+        Route(
+            "/api/loading/{run_id}",
+            api(lambda run_id: playback_app.design_loading(room, run_id)),
+        ),
+        Route("/api/zip/{run_id}", design_zip),
+        Route("/api/listen/{action}", listen, methods=["GET", "POST"]),
         Route("/api/presets", api(target_presets)),
         Route("/api/preview", preview, methods=["POST"]),
         Route("/api/save", save, methods=["POST"]),

@@ -777,7 +777,83 @@ async function writeReport() {
   }
 }
 
+// Where the design is on disk, taps and pre-gain per filter file, the loading help and
+// ffmpeg/sox lines (roomcorr.app.playback.design_loading), and one zip of the whole design.
+async function loadLoading(runId) {
+  const zip = document.getElementById("loading-zip");
+  zip.hidden = true;
+  const doc = await api(`/api/loading/${encodeURIComponent(runId)}`);
+  document.getElementById("loading-folder").textContent = doc.folder;
+  zip.href = `/api/zip/${encodeURIComponent(runId)}`;
+  zip.download = doc.zip;
+  zip.hidden = false;
+  const body = document.querySelector("#loading-files tbody");
+  body.innerHTML = "";
+  for (const f of doc.files) {
+    const tr = document.createElement("tr");
+    const pre = f.pre_gain_db === null || f.pre_gain_db === undefined ? "" : Number(f.pre_gain_db).toFixed(2);
+    for (const c of [f.path, f.format, f.sample_rate || "", f.taps || "", pre]) {
+      const td = document.createElement("td");
+      td.textContent = c;
+      tr.appendChild(td);
+    }
+    body.appendChild(tr);
+  }
+  const lines = [...doc.lines, ""];
+  for (const r of doc.commands.rates) {
+    lines.push(`# ${r.sample_rate} Hz input, ffmpeg:`, r.ffmpeg);
+    if (r.sox) lines.push(`# sox:`, ...r.sox); else lines.push(`# sox: ${r.sox_note}`);
+    lines.push("");
+  }
+  lines.push(...doc.next);
+  document.getElementById("loading-help").textContent = lines.join("\n");
+}
+
+// Listening from the Files page (roomcorr.app.playback.ListenSession on the server).
+function showListen(st) {
+  const f = st.figures || {};
+  const parts = [st.playing ? (st.corrected ? "playing: corrected" : "playing: uncorrected (loudness-matched)") : "stopped"];
+  if (st.playing) parts.push(`level ${Number(st.level_db).toFixed(0)} dB`);
+  if (f.uncorrected_gain_db !== undefined) parts.push(`uncorrected path ${Number(f.uncorrected_gain_db).toFixed(2)} dB`);
+  if (f.latency_ms) parts.push(`latency ${Number(f.latency_ms).toFixed(2)} ms`);
+  if (st.error) parts.push(st.error);
+  document.getElementById("listen-state").textContent = parts.join(", ");
+}
+
+async function listenCall(action, payload = null) {
+  try {
+    const st = payload === null ? await api(`/api/listen/${action}`, {}) : await api(`/api/listen/${action}`, payload);
+    showListen(st);
+  } catch (err) {
+    status(String(err.message || err), true);
+  }
+}
+
+async function loadListen() {
+  const sel = document.getElementById("listen-music");
+  const names = await api("/api/listen/music");
+  sel.innerHTML = "";
+  for (const n of names) {
+    const o = document.createElement("option");
+    o.value = n; o.textContent = n; sel.appendChild(o);
+  }
+  document.getElementById("listen-start").disabled = names.length === 0;
+  if (!names.length) document.getElementById("listen-state").textContent = "no music: put WAV files in the room's music/ folder";
+}
+
+function wireListen() {
+  document.getElementById("listen-start").addEventListener("click", () =>
+    listenCall("start", { run_id: filesRun, music: document.getElementById("listen-music").value }));
+  document.getElementById("listen-switch").addEventListener("click", () => listenCall("switch"));
+  document.getElementById("listen-up").addEventListener("click", () => listenCall("level", { delta_db: 3 }));
+  document.getElementById("listen-down").addEventListener("click", () => listenCall("level", { delta_db: -3 }));
+  document.getElementById("listen-stop").addEventListener("click", () => listenCall("stop"));
+}
+wireListen();
+
 async function loadFiles(runId, prefetched = null) {
+  loadLoading(runId).catch((err) => status(String(err.message || err), true));
+  loadListen().catch((err) => status(String(err.message || err), true));
   const files = await (prefetched || api(`/api/files/${encodeURIComponent(runId)}`));
   filesRun = runId;
   document.getElementById("report-link").hidden = true;
