@@ -11,7 +11,8 @@ closed box (2nd-order high-pass at 25 Hz, 4th-order Butterworth low-pass at
 120 Hz, its amplifier's own processing delay). Seeded white noise 96 dB below
 the peak. pyroomacoustics' own 10 Hz high-pass (run forwards and backwards,
 so not causal) is switched off during the call: the loudspeakers' causal
-high-passes remove the image method's DC offset instead. Every room, loudspeaker and seat here is made up.
+high-passes remove the image method's DC offset instead. Every room,
+loudspeaker and seat here is made up.
 """
 
 from __future__ import annotations
