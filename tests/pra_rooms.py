@@ -113,19 +113,23 @@ def mains_m(dims_m) -> list:
     return [(0.5, ly / 2 - 0.9, 1.0), (0.5, ly / 2 + 0.9, 1.0)]
 
 
-def sofa_positions(dims_m, width_m: float = 1.6) -> list:
-    """Five measured positions along a sofa 60 % back, ``width_m`` wide, ear height 1.1 m."""
+def sofa_positions(dims_m, width_m: float = 1.6, depth_m: float = 0.6) -> list:
+    """Five measured positions over a listening area ``width_m`` wide and ``depth_m`` deep,
+    60 % back in the room, ear height about 1.1 m: its four corners and its centre."""
     x = dims_m[0] * 0.6
     yc = dims_m[1] / 2
-    ys = yc + np.linspace(-width_m / 2, width_m / 2, 5)
-    return [(x, float(y), 1.1 + 0.02 * i) for i, y in enumerate(ys)]
+    hw, hd = width_m / 2, depth_m / 2
+    pts = [(x, yc), (x - hd, yc - hw), (x - hd, yc + hw), (x + hd, yc - hw), (x + hd, yc + hw)]
+    return [(float(a), float(b), 1.1 + 0.02 * i) for i, (a, b) in enumerate(pts)]
 
 
-def held_out_seats(dims_m, width_m: float = 1.6) -> list:
-    """Seats the design never sees: between the measured ones, and 0.4 m in front and behind."""
+def held_out_seats(dims_m, width_m: float = 1.6, depth_m: float = 0.6) -> list:
+    """Seats the design never sees: four between the measured ones (half-way from the
+    centre to each corner) and six 0.4 m in front of and behind the centre row (at the
+    left edge, the middle and the right edge; 0.1 m beyond the measured rows)."""
     x = dims_m[0] * 0.6
     yc = dims_m[1] / 2
-    ys = yc + np.linspace(-width_m / 2, width_m / 2, 5)
-    between = [(x, float((a + b) / 2), 1.12) for a, b in zip(ys[:-1], ys[1:], strict=True)]
-    rows = [(x + dx, float(y), 1.08) for dx in (-0.4, 0.4) for y in ys[::2]]
-    return between + rows
+    hw, hd = width_m / 2, depth_m / 2
+    between = [(x + sx * hd / 2, yc + sy * hw / 2, 1.12) for sx in (-1, 1) for sy in (-1, 1)]
+    rows = [(x + dx, yc + dy, 1.08) for dx in (-0.4, 0.4) for dy in (-hw, 0.0, hw)]
+    return [(float(a), float(b), float(c)) for a, b, c in between + rows]
