@@ -143,9 +143,14 @@ def subwoofer_sentences(sw: dict[str, Any], route_gain_db: float) -> list[str]:
             f"{e['spread_alone_db']:.1f} dB"
         )
         if e["turned_down"]:
+            how = (
+                "switched off"
+                if e["level_db"] <= -59
+                else f"turned down by {-e['level_db']:.0f} dB"
+            )
             lines.append(
-                f"  {e['name']} makes the seats differ more where it stands: turned down by "
-                f"{-e['level_db']:.0f} dB (try another place for it)."
+                f"  {e['name']} makes the seats differ more where it stands: {how} "
+                "(try another place for it)."
             )
     lines.append(
         "Bass management: each main input feeds every subwoofer output at "

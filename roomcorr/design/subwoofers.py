@@ -56,9 +56,10 @@ SMOOTHING_OCT = 1.0 / 6.0
 #: 100 Hz; 20 ms is 6.9 m at 343 m/s, more than the path differences of a domestic room).
 DELAYS_S = np.arange(0.0, 0.02 + 1e-9, 0.0005)
 #: Levels offered to each subwoofer, dB (cuts only).
-GAINS_DB = np.array([0.0, -1.5, -3.0, -4.5, -6.0, -9.0, -12.0, -20.0])
-#: Level of a subwoofer switched off in a start of the search, dB.
-OFF_DB = -20.0
+GAINS_DB = np.array([0.0, -1.5, -3.0, -4.5, -6.0, -9.0, -12.0, -20.0, -60.0])
+#: Level of a subwoofer switched off, dB (0.1 % of its amplitude: off in effect, and a
+#: finite figure for the manifest).
+OFF_DB = -60.0
 #: A subwoofer cut this much or more is reported as making things worse where it stands.
 WELL_DOWN_DB = 12.0
 #: Loss of summed level tolerated before it is charged, dB ...
