@@ -205,3 +205,12 @@ def test_unknown_subwoofer_names_are_refused():
         design_from_dict({"channel_names": "left,right,front_sub", "subwoofer": "front_sub,rear"})
     with pytest.raises(SettingsError, match="once"):
         design_from_dict({"channel_names": "left,right,a", "subwoofer": "a,a"})
+
+
+def test_positions_advice_asks_for_a_wide_spread_with_several_subwoofers():
+    from roomcorr.measure.guidance import positions_advice
+
+    assert positions_advice(1, 3) is None
+    text = positions_advice(2, 3)
+    assert "whole listening area" in text and "at least 5" in text
+    assert "at least" not in positions_advice(3, 6)

@@ -222,8 +222,10 @@ def _search(resp, freq_hz, weights) -> tuple[np.ndarray, np.ndarray, list[int], 
             best = out
     assert best is not None
     _, delay, gain, pol, _ = best
-    gain = np.minimum(gain - gain.max(), 0.0)
     on = gain > OFF_DB + 1e-9
+    if not on.any():  # all at one level: the same as all at 0 dB
+        gain, on = np.zeros(n_sub), np.ones(n_sub, dtype=bool)
+    gain = np.where(on, np.minimum(gain - gain[on].max(), 0.0), OFF_DB)
     delay = delay - (delay[on].min() if on.any() else delay.min())
     return np.maximum(delay, 0.0), gain, [int(p) for p in pol], evals
 
