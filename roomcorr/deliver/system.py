@@ -275,6 +275,7 @@ def system_sentences(fields: dict[str, Any]) -> list[str]:
             lines.extend(
                 subwoofer_sentences(system["subwoofers"], system.get("sub_route_gain_db", 0))
             )
+            return lines
         lines.append(
             "Each main input also feeds the subwoofer output at "
             f"{system.get('sub_route_gain_db', 0):+.2f} dB (routes in manifest.json). "
