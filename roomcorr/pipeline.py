@@ -28,7 +28,7 @@ from roomcorr.design.correction import align_target, correction_curve
 from roomcorr.design.fir import default_n_taps, synthesize_fir
 from roomcorr.design.mixedphase import MixedPhaseDesign, apply_mixed_phase
 from roomcorr.design.safety import FilterStats, apply_safety
-from roomcorr.design.subwoofers import plan_subwoofers, spread_grid_hz
+from roomcorr.design.subwoofers import plan_subwoofers, spread_grid_hz, with_mains
 from roomcorr.design.target import AUTO_LIMITS_HZ, target_from_points, target_from_table
 from roomcorr.errors import InputFileError, SettingsError
 from roomcorr.grid import interp_log, log_grid, points_per_octave_of
@@ -405,7 +405,9 @@ def _run_several_subwoofers(
 
     1. Each subwoofer's delay, level (cut only) and polarity come from
        :func:`roomcorr.design.subwoofers.plan_subwoofers` on the measured
-       responses (20 Hz to twice the middle of the crossover range).
+       responses (20 Hz to twice the middle of the crossover range), judged
+       with both mains driven through a crossover at the range's middle
+       (:func:`roomcorr.design.subwoofers.with_mains`).
     2. The subwoofers, so fed, are summed into one virtual channel at every
        position, and the single-subwoofer design runs on the mains and that
        channel: common correction, crossover, alignment, safety.
@@ -444,7 +446,12 @@ def _run_several_subwoofers(
     resp = np.array(
         [[freqz(irs[p, k], worN=grid, fs=fs)[1] for k in sub_idx] for p in range(n_pos)]
     )
-    arr = plan_subwoofers(resp, grid, subs, sub_idx, weights)
+    mains_resp = np.array(
+        [[freqz(irs[p, k], worN=grid, fs=fs)[1] for k in mains] for p in range(n_pos)]
+    )
+    # judged as the seats hear it: both mains driven, crossed over at the range's middle
+    sub_heard, mains_heard = with_mains(resp, mains_resp, grid, float(np.sqrt(lo * hi)), fs)
+    arr = plan_subwoofers(sub_heard, grid, subs, sub_idx, weights, base=mains_heard)
     # one virtual subwoofer: every subwoofer with its own delay, level and polarity
     shifts = [int(round(t * fs)) for t in arr.delay_s]
     n_v = n_samp + max(shifts)

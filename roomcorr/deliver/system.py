@@ -124,7 +124,8 @@ def subwoofer_sentences(sw: dict[str, Any], route_gain_db: float) -> list[str]:
     lo, hi = sw["band_hz"]
     lines = [
         f"Subwoofers chosen together for even bass over the listening area ({lo:.0f} to "
-        f"{hi:.0f} Hz, 1/6 octave): the measured positions differ by "
+        f"{hi:.0f} Hz, 1/6 octave, both mains and the subwoofers playing): the measured "
+        "positions differ by "
         f"{sw['spread_after_db']:.1f} dB (standard deviation, averaged over frequency) "
         f"against {sw['spread_equal_db']:.1f} dB with all subwoofers fed equally, no delay."
     ]
