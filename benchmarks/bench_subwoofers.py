@@ -92,9 +92,9 @@ def _figures(irs_held: np.ndarray, r, n_mains: int = 2) -> dict[str, tuple[float
     return out
 
 
-def _equal_feed(resp, freq_hz, names, channels, weights=None, predict=True):
+def _equal_feed(resp, freq_hz, names, channels, weights=None, predict=True, base=None):
     """plan_subwoofers with every subwoofer fed equally, no delay (the baseline)."""
-    p = plan_subwoofers(resp, freq_hz, names, channels, weights, predict=False)
+    p = plan_subwoofers(resp, freq_hz, names, channels, weights, predict=False, base=base)
     n = len(names)
     p.delay_s, p.gain_db, p.polarity = np.zeros(n), np.zeros(n), [1] * n
     p.turned_down = [False] * n
