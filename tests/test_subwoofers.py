@@ -214,3 +214,17 @@ def test_positions_advice_asks_for_a_wide_spread_with_several_subwoofers():
     text = positions_advice(2, 3)
     assert "whole listening area" in text and "at least 5" in text
     assert "at least" not in positions_advice(3, 6)
+
+
+def test_mains_and_subwoofers_judged_together_sum_like_a_linkwitz_riley_pair():
+    # Linkwitz, JAES 24(1), 1976: LR4 low-pass + high-pass is an all-pass. A subwoofer that
+    # hears exactly what both mains together hear is matched to them at 0 dB, and the sum the
+    # search judges has the mains' magnitude at every frequency and seat.
+    from roomcorr.design.subwoofers import with_mains
+
+    rng = np.random.default_rng(2)
+    f = spread_grid_hz(174.0)
+    mains = rng.standard_normal((4, 2, f.size)) + 1j * rng.standard_normal((4, 2, f.size))
+    sub = mains.sum(axis=1, keepdims=True)
+    heard, base = with_mains(sub, mains, f, 87.0, FS)
+    np.testing.assert_allclose(np.abs(heard[:, 0] + base), np.abs(sub[:, 0]), rtol=1e-9)
