@@ -465,11 +465,8 @@ def _run_devices(args: argparse.Namespace) -> int:
     view = devices_view(_room_quietly(getattr(args, "room", None)))
     last = view["last"]
     for d in view["devices"]:
-        can = [
-            w
-            for w, n in (("play", d["max_output_channels"]), ("record", d["max_input_channels"]))
-            if n > 0
-        ]
+        can = [w for w, n in (("play", d["max_output_channels"]),
+                              ("record", d["max_input_channels"])) if n > 0]
         marks = []
         if d.get("default_input"):
             marks.append("default input")
@@ -480,15 +477,11 @@ def _run_devices(args: argparse.Namespace) -> int:
         if last.get("output") == d["name"]:
             marks.append("last used output here")
         note = f"  <- {', '.join(marks)}" if marks else ""
-        print(
-            f"{d['index']:3d}  {d['name']}  [{d['hostapi']}]  {'+'.join(can) or '-':11s} "
-            f"in {d['max_input_channels']}, out {d['max_output_channels']}, "
-            f"default {d['default_samplerate']:g} Hz{note}"
-        )
-    print(
-        "use the number or part of the name: --input-device for the microphone, "
-        "--output-device for the loudspeakers (--device for both)"
-    )
+        print(f"{d['index']:3d}  {d['name']}  [{d['hostapi']}]  {'+'.join(can) or '-':11s} "
+              f"in {d['max_input_channels']}, out {d['max_output_channels']}, "
+              f"default {d['default_samplerate']:g} Hz{note}")
+    print("use the number or part of the name: --input-device for the microphone, "
+          "--output-device for the loudspeakers (--device for both)")
     return 0
 
 
@@ -517,120 +510,61 @@ def _add_measure(sub: Any) -> argparse.ArgumentParser:
     )
     p.add_argument("--room", metavar="ROOM_DIR", help="room folder (default: the one you are in)")
     p.add_argument("--settings", metavar="FILE", help="settings TOML; its [measure] table")
-    p.add_argument(
-        "--device",
-        help="device for both playing and recording: name part or number from 'roomcorr devices'",
-    )
-    p.add_argument(
-        "--input-device",
-        metavar="DEVICE",
-        help="the microphone's device (e.g. a USB microphone), if not --device",
-    )
-    p.add_argument(
-        "--output-device",
-        metavar="DEVICE",
-        help="the loudspeakers' device (headphone/HDMI output, USB DAC), if not --device",
-    )
-    p.add_argument(
-        "--two-streams",
-        action="store_true",
-        default=None,
-        help="play and record with separate streams even on one device",
-    )
-    p.add_argument(
-        "--outputs",
-        type=_int_list,
-        metavar="1,2",
-        help="output channel of each loudspeaker (default 1,2)",
-    )
-    p.add_argument(
-        "--names",
-        type=_name_list,
-        metavar="A,B",
-        help="loudspeaker names, one per --outputs channel (e.g. left,right,sub)",
-    )
+    p.add_argument("--device", help="device for both playing and recording: name part or "
+                   "number from 'roomcorr devices'")
+    p.add_argument("--input-device", metavar="DEVICE",
+                   help="the microphone's device (e.g. a USB microphone), if not --device")
+    p.add_argument("--output-device", metavar="DEVICE",
+                   help="the loudspeakers' device (headphone/HDMI output, USB DAC), if not "
+                   "--device")
+    p.add_argument("--two-streams", action="store_true", default=None,
+                   help="play and record with separate streams even on one device")
+    p.add_argument("--outputs", type=_int_list, metavar="1,2",
+                   help="output channel of each loudspeaker (default 1,2)")
+    p.add_argument("--names", type=_name_list, metavar="A,B",
+                   help="loudspeaker names, one per --outputs channel (e.g. left,right,sub)")
     p.add_argument("--input", type=_whole, metavar="N", help="microphone input channel (default 1)")
-    p.add_argument(
-        "--loopback",
-        type=_pair,
-        metavar="OUT,IN",
-        help="spare output cabled back to an input: timing reference that removes "
-        "the system latency",
-    )
+    p.add_argument("--loopback", type=_pair, metavar="OUT,IN",
+                   help="spare output cabled back to an input: timing reference that removes "
+                   "the system latency")
     p.add_argument("--positions", type=_whole, metavar="N", help="microphone positions (default 1)")
     p.add_argument("--repeats", type=_whole, metavar="N", help="sweeps averaged per loudspeaker")
     p.add_argument("--sweep-seconds", type=_finite, metavar="S", help="sweep length (default 5)")
     p.add_argument("--band", type=_float_list, metavar="LO,HI", help="sweep band in Hz")
     p.add_argument("--rate", type=_whole, metavar="HZ", help="sample rate (default 48000)")
-    p.add_argument(
-        "--level",
-        type=_finite,
-        metavar="DBFS",
-        help=f"sweep peak level (default {DEFAULT_LEVEL_DBFS:g} dBFS)",
-    )
-    p.add_argument(
-        "--allow-loud",
-        action="store_true",
-        help=f"allow a sweep level above {LEVEL_CAP_DBFS:g} dBFS (prints a warning)",
-    )
+    p.add_argument("--level", type=_finite, metavar="DBFS",
+                   help=f"sweep peak level (default {DEFAULT_LEVEL_DBFS:g} dBFS)")
+    p.add_argument("--allow-loud", action="store_true",
+                   help=f"allow a sweep level above {LEVEL_CAP_DBFS:g} dBFS (prints a warning)")
     p.add_argument("--ir-seconds", type=_finite, metavar="S", help="impulse response length")
-    p.add_argument(
-        "--reference",
-        type=_whole,
-        metavar="N",
-        help="output of the timing-reference loudspeaker: its short markers before "
-        "and after every sweep fix the timing and the clock drift (default: the "
-        "first of --outputs)",
-    )
-    p.add_argument(
-        "--no-markers",
-        action="store_true",
-        help="no timing markers (arrival times then include the system latency)",
-    )
-    p.add_argument(
-        "--mic-sensitivity",
-        type=_finite,
-        metavar="DBFS",
-        help="microphone sensitivity: dBFS read for 94 dB SPL (from 'roomcorr "
-        "calibrate-mic'); levels are then shown in dB SPL",
-    )
-    p.add_argument(
-        "--mic-calibration",
-        metavar="FILE",
-        help="microphone calibration file whose header holds '# sensitivity_dbfs = X'",
-    )
-    p.add_argument(
-        "--blocksize",
-        type=_whole,
-        metavar="FRAMES",
-        help="frames per audio buffer (default: the audio system's choice); "
-        "raise it (e.g. 2048) when buffers are dropped",
-    )
-    p.add_argument(
-        "--yes",
-        action="store_true",
-        help="do not wait for Enter between positions; a position failing a check is skipped",
-    )
-    p.add_argument(
-        "--force",
-        action="store_true",
-        help="keep recordings that fail a gate (also a clock drift above the limit)",
-    )
+    p.add_argument("--reference", type=_whole, metavar="N",
+                   help="output of the timing-reference loudspeaker: its short markers before "
+                   "and after every sweep fix the timing and the clock drift (default: the "
+                   "first of --outputs)")
+    p.add_argument("--no-markers", action="store_true",
+                   help="no timing markers (arrival times then include the system latency)")
+    p.add_argument("--mic-sensitivity", type=_finite, metavar="DBFS",
+                   help="microphone sensitivity: dBFS read for 94 dB SPL (from 'roomcorr "
+                   "calibrate-mic'); levels are then shown in dB SPL")
+    p.add_argument("--mic-calibration", metavar="FILE",
+                   help="microphone calibration file whose header holds "
+                   "'# sensitivity_dbfs = X'")
+    p.add_argument("--blocksize", type=_whole, metavar="FRAMES",
+                   help="frames per audio buffer (default: the audio system's choice); "
+                   "raise it (e.g. 2048) when buffers are dropped")
+    p.add_argument("--yes", action="store_true",
+                   help="do not wait for Enter between positions; a position failing a check "
+                   "is skipped")
+    p.add_argument("--force", action="store_true",
+                   help="keep recordings that fail a gate (also a clock drift above the limit)")
     p.add_argument("--replace", action="store_true", help="allow a non-empty --out folder")
-    p.add_argument(
-        "--resume",
-        action="store_true",
-        help="continue an unfinished measurement (in --out, or the room's latest)",
-    )
-    p.add_argument(
-        "--plain", action="store_true", help="plain progress lines instead of the live meter"
-    )
-    p.add_argument(
-        "--through",
-        metavar="DESIGN_DIR",
-        help="play the sweeps through this design's filters (pre-gain included) "
-        "to check the correction before loading it anywhere",
-    )
+    p.add_argument("--resume", action="store_true",
+                   help="continue an unfinished measurement (in --out, or the room's latest)")
+    p.add_argument("--plain", action="store_true",
+                   help="plain progress lines instead of the live meter")
+    p.add_argument("--through", metavar="DESIGN_DIR",
+                   help="play the sweeps through this design's filters (pre-gain included) "
+                   "to check the correction before loading it anywhere")
     return p
 
 
@@ -646,23 +580,14 @@ def measure_settings_from_args(
 
         base = dict(load_settings(args.settings).measure)
     over = {
-        "device": args.device,
-        "input_device": args.input_device,
-        "output_device": args.output_device,
-        "two_streams": args.two_streams,
-        "reference": args.reference,
-        "blocksize": args.blocksize,
+        "device": args.device, "input_device": args.input_device,
+        "output_device": args.output_device, "two_streams": args.two_streams,
+        "reference": args.reference, "blocksize": args.blocksize,
         "mic_sensitivity_dbfs": args.mic_sensitivity,
-        "outputs": args.outputs,
-        "input": args.input,
-        "loopback": args.loopback,
-        "positions": args.positions,
-        "repeats": args.repeats,
-        "sweep_s": args.sweep_seconds,
-        "sample_rate": args.rate,
-        "level_dbfs": args.level,
-        "ir_s": args.ir_seconds,
-        "names": args.names,
+        "outputs": args.outputs, "input": args.input,
+        "loopback": args.loopback, "positions": args.positions, "repeats": args.repeats,
+        "sweep_s": args.sweep_seconds, "sample_rate": args.rate, "level_dbfs": args.level,
+        "ir_s": args.ir_seconds, "names": args.names,
     }
     base.update({k: v for k, v in over.items() if v is not None})
     if args.allow_loud:
@@ -706,18 +631,14 @@ def _run_measure(args: argparse.Namespace) -> int:
     if room is None and not args.out:
         room = rooms.find_room()
     view = make_view(plain=args.plain)
-    kw = {
-        "yes": args.yes,
-        "force": args.force,
-        "say": view.say,
-        "view": view,
-        "through": args.through,
-    }
+    kw = {"yes": args.yes, "force": args.force, "say": view.say, "view": view,
+          "through": args.through}
     _print_positions_advice(args, room)
     if args.out:
         ms = measure_settings_from_args(args)
         with view:
-            record = measure_into(ms, args.out, replace=args.replace, resume=args.resume, **kw)
+            record = measure_into(ms, args.out, replace=args.replace, resume=args.resume,
+                                  **kw)
         n = sum(1 for p in record["positions"] if p["file"])
         print(f"measured {n} position(s) into {args.out}; next: roomcorr design {args.out}")
         return 0
@@ -747,16 +668,10 @@ def _add_calibrate_mic(sub: Any) -> argparse.ArgumentParser:
     p.add_argument("--device", help="the microphone's device (name part or number)")
     p.add_argument("--input", type=_whole, default=1, metavar="N", help="input channel (1)")
     p.add_argument("--rate", type=_whole, default=48000, metavar="HZ", help="sample rate")
-    p.add_argument(
-        "--seconds", type=_finite, default=4.0, metavar="S", help="recording length (default 4)"
-    )
-    p.add_argument(
-        "--calibrator-level",
-        type=_finite,
-        default=94.0,
-        metavar="DB",
-        help="the calibrator's level in dB SPL (94 or 114)",
-    )
+    p.add_argument("--seconds", type=_finite, default=4.0, metavar="S",
+                   help="recording length (default 4)")
+    p.add_argument("--calibrator-level", type=_finite, default=94.0, metavar="DB",
+                   help="the calibrator's level in dB SPL (94 or 114)")
     p.add_argument("--plain", action="store_true", help="no live meter")
     return p
 
@@ -767,18 +682,13 @@ def _run_calibrate_mic(args: argparse.Namespace) -> int:
 
     view = make_view(plain=args.plain)
     with view:
-        res = calibrate_microphone(
-            args.rate, args.input, args.seconds, args.device, args.calibrator_level, view=view
-        )
+        res = calibrate_microphone(args.rate, args.input, args.seconds, args.device,
+                                   args.calibrator_level, view=view)
     sens, frac = res["sensitivity_dbfs"], res["fraction_at_1k"]
-    print(
-        f"microphone sensitivity: {sens:.2f} dBFS for 94 dB SPL "
-        f"({args.calibrator_level:g} dB SPL calibrator, {frac:.1%} of the level at 1 kHz)"
-    )
-    print(
-        f"use it: roomcorr measure --mic-sensitivity {sens:.2f} (same input gain), or "
-        f"mic_sensitivity_dbfs = {sens:.2f} in [measure] of the room settings"
-    )
+    print(f"microphone sensitivity: {sens:.2f} dBFS for 94 dB SPL "
+          f"({args.calibrator_level:g} dB SPL calibrator, {frac:.1%} of the level at 1 kHz)")
+    print(f"use it: roomcorr measure --mic-sensitivity {sens:.2f} (same input gain), or "
+          f"mic_sensitivity_dbfs = {sens:.2f} in [measure] of the room settings")
     return 0
 
 
@@ -793,18 +703,11 @@ def _add_deconvolve(sub: Any) -> argparse.ArgumentParser:
     p.add_argument("recording", metavar="RECORDING.wav")
     p.add_argument("--sweep-settings", required=True, metavar="FILE.json")
     p.add_argument("--out", metavar="IR.wav", help="default: RECORDING_ir.wav")
-    p.add_argument(
-        "--loopback-channel",
-        type=_whole,
-        metavar="N",
-        help="channel of the loopback reference (default from the sweep settings)",
-    )
-    p.add_argument(
-        "--align",
-        action="store_true",
-        help="the recording did not start together with the playback (another "
-        "program recorded it): find the first sweep",
-    )
+    p.add_argument("--loopback-channel", type=_whole, metavar="N",
+                   help="channel of the loopback reference (default from the sweep settings)")
+    p.add_argument("--align", action="store_true",
+                   help="the recording did not start together with the playback (another "
+                   "program recorded it): find the first sweep")
     p.add_argument("--force", action="store_true", help="write even if a gate fails")
     p.add_argument("--replace", action="store_true", help="overwrite --out")
     return p
@@ -814,13 +717,8 @@ def _run_deconvolve(args: argparse.Namespace) -> int:
     from roomcorr.measure.session import deconvolve_file, gate_lines
 
     dest, figures, gates = deconvolve_file(
-        args.recording,
-        args.sweep_settings,
-        args.out,
-        force=args.force,
-        replace=args.replace,
-        loopback_channel=args.loopback_channel,
-        align=args.align,
+        args.recording, args.sweep_settings, args.out, force=args.force, replace=args.replace,
+        loopback_channel=args.loopback_channel, align=args.align,
     )
     for line in gate_lines(gates):
         print(line)
@@ -865,10 +763,7 @@ def _add_history(sub: Any) -> argparse.ArgumentParser:
         "key figures. Interrupted runs are shown as incomplete.",
     )
     p.add_argument(
-        "room_dir",
-        nargs="?",
-        default=".",
-        metavar="ROOM_DIR",
+        "room_dir", nargs="?", default=".", metavar="ROOM_DIR",
         help="room folder (default: the one you are in)",
     )
     p.add_argument("--json", action="store_true", help="machine-readable output")
@@ -897,18 +792,14 @@ def _add_compare(sub: Any) -> argparse.ArgumentParser:
         "whether the existing filters still fit. Default: the room's last two measurements.",
     )
     p.add_argument(
-        "a",
-        nargs="?",
-        metavar="A",
+        "a", nargs="?", metavar="A",
         help="earlier measurement: run id, measurement folder, or IR WAV file(s) "
         "separated by commas (one per position)",
     )
     p.add_argument("b", nargs="?", metavar="B", help="later measurement (same forms as A)")
     p.add_argument("--room", metavar="ROOM_DIR", help="room folder (default: the one you are in)")
     p.add_argument(
-        "--temperature",
-        type=_finite,
-        metavar="C",
+        "--temperature", type=_finite, metavar="C",
         help="air temperature in °C for the speed of sound (default: design.temperature_c "
         "of the room settings, else 20)",
     )
@@ -931,12 +822,8 @@ def _run_compare(args: argparse.Namespace) -> int:
     if args.temperature is not None and not -30.0 <= args.temperature <= 60.0:
         raise SettingsError(f"--temperature {args.temperature:g}: expected -30 to 60 °C")
     res = compare_command(
-        args.a,
-        args.b,
-        room_dir=args.room,
-        temperature_c=args.temperature,
-        fit_check=not args.no_filter_check,
-        plot=args.plot,
+        args.a, args.b, room_dir=args.room, temperature_c=args.temperature,
+        fit_check=not args.no_filter_check, plot=args.plot,
     )
     if args.json:
         print(json.dumps(res, indent=2))
@@ -977,7 +864,7 @@ def _run_ui(args: argparse.Namespace) -> int:
     except ImportError as exc:
         raise RoomcorrError(
             f"the browser app needs its server packages ({exc.name} is missing); install them "
-            'with pip install ".[ui]" from the roomcorr folder'
+            "with pip install \".[ui]\" from the roomcorr folder"
         ) from None
     try:
         serve(room, port=args.port, open_browser=not args.no_browser)

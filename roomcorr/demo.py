@@ -140,24 +140,10 @@ _WALL_ALPHA = (0.22, 0.30, 0.18, 0.20, 0.32, 0.20)
 #: bump (f, gain dB, Q), treble roll-off corner, tilt (total drop in dB spread
 #: over the two corner frequencies), sensitivity in dB.
 _SPEAKERS = (
-    {
-        "hp_hz": 50.0,
-        "hp_q": (0.54, 1.31),
-        "bump": (2300.0, 1.5, 1.4),
-        "lp_hz": 17000.0,
-        "tilt_hz": (200.0, 6000.0),
-        "tilt_db": -1.5,
-        "gain_db": 0.0,
-    },
-    {
-        "hp_hz": 52.0,
-        "hp_q": (0.56, 1.25),
-        "bump": (2400.0, 1.0, 1.2),
-        "lp_hz": 16500.0,
-        "tilt_hz": (220.0, 6500.0),
-        "tilt_db": -1.8,
-        "gain_db": -0.4,
-    },
+    {"hp_hz": 50.0, "hp_q": (0.54, 1.31), "bump": (2300.0, 1.5, 1.4), "lp_hz": 17000.0,
+     "tilt_hz": (200.0, 6000.0), "tilt_db": -1.5, "gain_db": 0.0},
+    {"hp_hz": 52.0, "hp_q": (0.56, 1.25), "bump": (2400.0, 1.0, 1.2), "lp_hz": 16500.0,
+     "tilt_hz": (220.0, 6500.0), "tilt_db": -1.8, "gain_db": -0.4},
 )
 
 _NOISE_FLOOR_DB = -80.0
@@ -214,7 +200,8 @@ def room_mode_frequencies(
         raise ValueError("dims_m must be three positive lengths in metres")
     labels, freq_hz = _mode_grid(dims_m, c, f_max)
     return [
-        ((int(a), int(b), int(d)), float(f)) for (a, b, d), f in zip(labels, freq_hz, strict=True)
+        ((int(a), int(b), int(d)), float(f))
+        for (a, b, d), f in zip(labels, freq_hz, strict=True)
     ]
 
 

@@ -249,7 +249,9 @@ def schroeder_decay(
     )
 
 
-def decay_time(time_s: np.ndarray, edc_db: np.ndarray, start_db: float, end_db: float) -> float:
+def decay_time(
+    time_s: np.ndarray, edc_db: np.ndarray, start_db: float, end_db: float
+) -> float:
     """Decay time from a straight-line fit over one evaluation range, extrapolated to 60 dB.
 
     Parameters

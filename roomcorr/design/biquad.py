@@ -215,12 +215,10 @@ def analog_responses_from_arrays(
     s = 1j * np.asarray(freq_hz, dtype=float)[None, :] / np.asarray(f0_hz, dtype=float)[:, None]
     s2 = s * s
     sq = np.sqrt(a) / q * s
-    num = np.where(
-        kind == 0, s2 + s * a / q + 1, np.where(kind == 1, a * (s2 + sq + a), a * (a * s2 + sq + 1))
-    )
-    den = np.where(
-        kind == 0, s2 + s / (a * q) + 1, np.where(kind == 1, a * s2 + sq + 1, s2 + sq + a)
-    )
+    num = np.where(kind == 0, s2 + s * a / q + 1, np.where(kind == 1, a * (s2 + sq + a),
+                                                           a * (a * s2 + sq + 1)))
+    den = np.where(kind == 0, s2 + s / (a * q) + 1, np.where(kind == 1, a * s2 + sq + 1,
+                                                             s2 + sq + a))
     return 20.0 * np.log10(np.abs(num / den))
 
 
@@ -249,15 +247,13 @@ def analog_db_and_jacobian(
     pk, ls = kind == 0, kind == 1
     # numerator n (without the leading A of the shelves) and denominator d
     n = np.where(pk, s2 + s * a / q + 1, np.where(ls, s2 + ra / q * s + a, a * s2 + ra / q * s + 1))
-    d = np.where(
-        pk, s2 + s / (a * q) + 1, np.where(ls, a * s2 + ra / q * s + 1, s2 + ra / q * s + a)
-    )
+    d = np.where(pk, s2 + s / (a * q) + 1, np.where(ls, a * s2 + ra / q * s + 1,
+                                                    s2 + ra / q * s + a))
     dn_ds = np.where(pk, 2 * s + a / q, np.where(ls, 2 * s + ra / q, 2 * a * s + ra / q))
     dd_ds = np.where(pk, 2 * s + 1 / (a * q), np.where(ls, 2 * a * s + ra / q, 2 * s + ra / q))
     dn_da = np.where(pk, s / q, np.where(ls, s / (2 * ra * q) + 1, s2 + s / (2 * ra * q)))
-    dd_da = np.where(
-        pk, -s / (a * a * q), np.where(ls, s2 + s / (2 * ra * q), s / (2 * ra * q) + 1)
-    )
+    dd_da = np.where(pk, -s / (a * a * q), np.where(ls, s2 + s / (2 * ra * q),
+                                                    s / (2 * ra * q) + 1))
     lead = np.where(pk, 0.0, 1.0 / a)  # d ln(A) / dA for the shelves' leading factor
     dn_dlq = np.where(pk, -s * a / q, -s * ra / q) * ln2
     dd_dlq = np.where(pk, -s / (a * q), -s * ra / q) * ln2
@@ -323,10 +319,7 @@ def float32_sensitivity_db(
     """
     del kind
     return (
-        np.abs(gain_db)
-        * np.maximum(q, SHELF_MAX_Q)
-        * 1.2e-7
-        * fs**2
+        np.abs(gain_db) * np.maximum(q, SHELF_MAX_Q) * 1.2e-7 * fs**2
         / (8 * np.pi**2 * np.asarray(f0_hz, dtype=float) ** 2)
     )
 

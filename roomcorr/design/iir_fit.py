@@ -107,26 +107,21 @@ class FitLimits:
         q_lo, q_hi = self.q_range
         if not 0 < f_lo < f_hi:
             raise SettingsError(
-                f"design.iir_freq_range_hz = {self.freq_range_hz}: need 0 < low < high"
-            )
+                f"design.iir_freq_range_hz = {self.freq_range_hz}: need 0 < low < high")
         if self.max_boost_db < 0:
             raise SettingsError(f"design.max_boost_db = {self.max_boost_db}: must be >= 0")
         if not g_lo < min(g_hi, self.max_boost_db):
             raise SettingsError(
                 f"design.iir_gain_range_db = {self.gain_range_db}: need low < high "
-                f"(high is clipped to design.max_boost_db = {self.max_boost_db})"
-            )
+                f"(high is clipped to design.max_boost_db = {self.max_boost_db})")
         if not 0 < q_lo < q_hi:
             raise SettingsError(f"design.iir_q_range = {self.q_range}: need 0 < low < high")
         if not 1 <= self.n_sections <= 64:
-            raise SettingsError(f"design.iir_sections = {self.n_sections}: use 1 to 64 sections")
+            raise SettingsError(
+                f"design.iir_sections = {self.n_sections}: use 1 to 64 sections")
         return FitLimits(
-            self.n_sections,
-            (f_lo, f_hi),
-            (g_lo, min(g_hi, self.max_boost_db)),
-            (q_lo, q_hi),
-            self.max_boost_db,
-            self.fs_max,
+            self.n_sections, (f_lo, f_hi), (g_lo, min(g_hi, self.max_boost_db)),
+            (q_lo, q_hi), self.max_boost_db, self.fs_max,
         )
 
 
@@ -178,12 +173,12 @@ def _clip(x: np.ndarray, lo: np.ndarray, hi: np.ndarray) -> np.ndarray:
 
 @dataclass
 class _Problem:
-    freq_hz: np.ndarray  # fit grid
+    freq_hz: np.ndarray      # fit grid
     target_db: np.ndarray
     sqrt_w: np.ndarray
-    check_hz: np.ndarray  # boost-penalty grid
+    check_hz: np.ndarray     # boost-penalty grid
     lim: FitLimits
-    allowed_db: np.ndarray  # boost allowed on check_hz: the cap in band, OUT_OF_BAND_BOOST_DB out
+    allowed_db: np.ndarray   # boost allowed on check_hz: the cap in band, OUT_OF_BAND_BOOST_DB out
 
 
 def _analog_db(kinds, x, freq_hz):
@@ -218,8 +213,7 @@ class _Objective:
         sens = bq.float32_sensitivity_db(self.kinds, f0, g, q, p.lim.fs_max)
         sens_over = sens - SENS_LIMIT_DB
         self.r = np.concatenate(
-            [fit, PENALTY * np.maximum(0.0, over), PENALTY * np.maximum(0.0, sens_over)]
-        )
+            [fit, PENALTY * np.maximum(0.0, over), PENALTY * np.maximum(0.0, sens_over)])
         m = len(self.kinds)
         jm = jac.reshape(m * 3, -1).T  # (n_freqs_total, 3m)
         j_fit = p.sqrt_w[:, None] * jm[:n]
@@ -250,16 +244,8 @@ def _solve(kinds, x0, prob, fixed_db, fixed_check_db, max_nfev):
     x0 = _clip(x0, lo, hi)
     obj = _Objective(kinds, prob, fixed_db, fixed_check_db)
     res = least_squares(
-        obj.residual,
-        x0,
-        jac=obj.jacobian,
-        bounds=(lo, hi),
-        method="trf",
-        tr_solver="lsmr",
-        x_scale=np.tile([0.5, 3.0, 1.0], len(kinds)),
-        max_nfev=max_nfev,
-        xtol=1e-6,
-        ftol=1e-6,
+        obj.residual, x0, jac=obj.jacobian, bounds=(lo, hi), method="trf", tr_solver="lsmr",
+        x_scale=np.tile([0.5, 3.0, 1.0], len(kinds)), max_nfev=max_nfev, xtol=1e-6, ftol=1e-6,
     )
     return res.x, float(res.cost)
 
@@ -353,16 +339,8 @@ def fit_sections(
         allowed = (prob.freq_hz >= lim.freq_range_hz[0]) & (prob.freq_hz <= lim.freq_range_hz[1])
         score = np.where(allowed, prob.sqrt_w**2 * np.abs(resid), -1.0)
         i = int(np.argmax(score))
-        cands = [
-            (
-                0,
-                [
-                    np.log2(prob.freq_hz[i]),
-                    float(np.clip(resid[i], g_lo, g_hi)),
-                    np.log2(_q_from_lobe(prob.freq_hz, resid, i, lim)),
-                ],
-            )
-        ]
+        cands = [(0, [np.log2(prob.freq_hz[i]), float(np.clip(resid[i], g_lo, g_hi)),
+                      np.log2(_q_from_lobe(prob.freq_hz, resid, i, lim))])]
         for k, f_c in ((1, f_lo_b), (2, f_hi_b)):
             if k in kinds:
                 continue
@@ -470,22 +448,13 @@ def realise(
             f0, g, q = _unpack(xx)
             c = bq.coefficients_from_arrays(kinds, f0, g, q, fs)
             h = bq.cascade_response_db(c, both, fs)
-            return np.concatenate(
-                [
-                    sqrt_w * (h[:n] - goal),
-                    PENALTY * np.maximum(0.0, h[n:] - lim.max_boost_db),
-                ]
-            )
+            return np.concatenate([
+                sqrt_w * (h[:n] - goal),
+                PENALTY * np.maximum(0.0, h[n:] - lim.max_boost_db),
+            ])
 
-        res = least_squares(
-            resid,
-            x[free],
-            bounds=(lo[free], hi[free]),
-            method="trf",
-            max_nfev=200,
-            xtol=1e-6,
-            ftol=1e-6,
-        )
+        res = least_squares(resid, x[free], bounds=(lo[free], hi[free]), method="trf",
+                            max_nfev=200, xtol=1e-6, ftol=1e-6)
         x[free] = res.x
     secs = _sections(kinds, x)
 
@@ -524,13 +493,13 @@ class IirStats:
     channel: int
     fs: int
     n_sections: int
-    peak_gain_db: float  # magnitude peak including pre-gain (<= ceiling)
-    worst_case_gain_db: float  # 20 log10 sum |h| of the impulse response, pre-gain included
-    max_boost_db: float  # largest section gain or cascade peak, without pre-gain (>= 0)
-    cascade_peak_db: float  # magnitude peak without pre-gain
-    rms_error_db: float  # vs target correction curve, in band
+    peak_gain_db: float          # magnitude peak including pre-gain (<= ceiling)
+    worst_case_gain_db: float    # 20 log10 sum |h| of the impulse response, pre-gain included
+    max_boost_db: float          # largest section gain or cascade peak, without pre-gain (>= 0)
+    cascade_peak_db: float       # magnitude peak without pre-gain
+    rms_error_db: float          # vs target correction curve, in band
     max_error_db: float
-    rms_error_fir_db: float | None  # vs the FIR design at this rate, in band
+    rms_error_fir_db: float | None   # vs the FIR design at this rate, in band
     max_error_fir_db: float | None
     float32_deviation_db: float
     max_pole_radius: float
@@ -545,7 +514,7 @@ class IirChannel:
     band_hz: tuple[float, float]
     sections_analog: list[Section]
     sections: dict[int, list[Section]] = field(default_factory=dict)  # fs -> sections
-    coeffs: dict[int, np.ndarray] = field(default_factory=dict)  # fs -> (n_sections, 5)
+    coeffs: dict[int, np.ndarray] = field(default_factory=dict)       # fs -> (n_sections, 5)
 
 
 @dataclass
@@ -598,14 +567,8 @@ def design_iir(result: DesignResult) -> IirDesign:
         result.freq_hz,
         [(c.index, c.name, c.correction_db, c.spread_db, c.band_hz) for c in result.channels],
         rates,
-        FitLimits(
-            int(d.iir_sections),
-            tuple(d.iir_freq_range_hz),
-            tuple(d.iir_gain_range_db),
-            tuple(d.iir_q_range),
-            float(d.max_boost_db),
-            float(max(rates)),
-        ),
+        FitLimits(int(d.iir_sections), tuple(d.iir_freq_range_hz), tuple(d.iir_gain_range_db),
+                  tuple(d.iir_q_range), float(d.max_boost_db), float(max(rates))),
         ceiling_db=float(d.ceiling_db),
         allow_gain=bool(d.allow_gain),
         firs=result.firs,
@@ -641,8 +604,7 @@ def design_iir_curves(
     if ceiling_db > 0 and not allow_gain:
         raise SafetyError(
             f"design.ceiling_db = {ceiling_db} dB is above 0 dB; set design.allow_gain = true "
-            "only if the playback chain has headroom"
-        )
+            "only if the playback chain has headroom")
     lim = limits.validated()
     freq_hz = np.asarray(freq_hz, dtype=float)
     out_ch: list[IirChannel] = []
@@ -670,22 +632,8 @@ def design_iir_curves(
             radius = float(np.max(bq.pole_radii(c_fs), initial=0.0))
             max_sec = max([s.gain_db for s in s_fs], default=0.0)
             l1 = bq.worst_case_gain_db(c_fs)
-            pending.append(
-                (
-                    ch.index,
-                    int(fs),
-                    len(s_fs),
-                    peak,
-                    l1,
-                    max(peak, max_sec, 0.0),
-                    rms,
-                    mx,
-                    rms_f,
-                    mx_f,
-                    dev,
-                    radius,
-                )
-            )
+            pending.append((ch.index, int(fs), len(s_fs), peak, l1, max(peak, max_sec, 0.0),
+                            rms, mx, rms_f, mx_f, dev, radius))
         out_ch.append(ch)
     top = max(peaks.values(), default=0.0)
     top += PEAK_MARGIN_DB
@@ -694,15 +642,8 @@ def design_iir_curves(
         IirStats(c, fs, n, pk + pre_gain_db, l1 + pre_gain_db, mb, pk, r, m, rf, mf, dv, rad)
         for (c, fs, n, pk, l1, mb, r, m, rf, mf, dv, rad) in pending
     ]
-    design = IirDesign(
-        freq_hz,
-        out_ch,
-        tuple(int(r) for r in sample_rates),
-        pre_gain_db,
-        ceiling_db,
-        lim.max_boost_db,
-        stats,
-    )
+    design = IirDesign(freq_hz, out_ch, tuple(int(r) for r in sample_rates), pre_gain_db,
+                       ceiling_db, lim.max_boost_db, stats)
     check_iir_safety(design)
     return design
 
@@ -726,10 +667,8 @@ def check_iir_safety(design: IirDesign) -> None:
             if max(gains, default=0.0) > cap or peak > cap:
                 raise SafetyError(
                     f"{what}: boost {max(peak, *gains, 0.0):.2f} dB exceeds "
-                    f"design.max_boost_db = {design.max_boost_db} dB"
-                )
+                    f"design.max_boost_db = {design.max_boost_db} dB")
             if peak + design.pre_gain_db > design.ceiling_db + 1e-6:
                 raise SafetyError(
                     f"{what}: peak gain {peak + design.pre_gain_db:.2f} dB exceeds "
-                    f"design.ceiling_db = {design.ceiling_db} dB"
-                )
+                    f"design.ceiling_db = {design.ceiling_db} dB")

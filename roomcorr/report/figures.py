@@ -43,7 +43,9 @@ FREQ_TICKS = [20, 50, 100, 200, 500, 1000, 2000, 5000, 10000, 20000]
 FREQ_LABELS = ["20", "50", "100", "200", "500", "1k", "2k", "5k", "10k", "20k"]
 
 
-def new_figure(width_in: float = COLUMN_WIDTH_IN, height_in: float = 4.4, **margins: float) -> Any:
+def new_figure(
+    width_in: float = COLUMN_WIDTH_IN, height_in: float = 4.4, **margins: float
+) -> Any:
     """An empty figure on an Agg canvas (no pyplot, no GUI).
 
     Margins are fixed (``subplots_adjust`` keywords, in figure fractions)
@@ -55,14 +57,8 @@ def new_figure(width_in: float = COLUMN_WIDTH_IN, height_in: float = 4.4, **marg
 
     fig = Figure(figsize=(width_in, height_in))
     FigureCanvasAgg(fig)
-    pad = {
-        "left": 0.5 / width_in + 0.04,
-        "right": 0.98,
-        "bottom": 0.5 / height_in + 0.04,
-        "top": 1 - 0.35 / height_in,
-        "hspace": 0.25,
-        "wspace": 0.25,
-    }
+    pad = {"left": 0.5 / width_in + 0.04, "right": 0.98, "bottom": 0.5 / height_in + 0.04,
+           "top": 1 - 0.35 / height_in, "hspace": 0.25, "wspace": 0.25}
     pad.update(margins)
     fig.subplots_adjust(**pad)
     return fig
@@ -109,9 +105,8 @@ def _level_limits(ax: Any, *curves: np.ndarray, freq_hz: np.ndarray) -> None:
 
 def _legend_below(ax: Any) -> None:
     """Legend in two columns under the axes, clear of the curves."""
-    ax.legend(
-        loc="upper center", bbox_to_anchor=(0.5, -0.16), ncols=2, fontsize=LEGEND_PT, frameon=False
-    )
+    ax.legend(loc="upper center", bbox_to_anchor=(0.5, -0.16), ncols=2, fontsize=LEGEND_PT,
+              frameon=False)
 
 
 def data_limits(
@@ -210,14 +205,8 @@ def plot_predicted(
     _shade_outside(ax, band_hz)
     ax.plot(freq_hz, before_db, color="#b9c2cc", lw=1.6, label="average before")
     for k, row in enumerate(predicted_db):
-        ax.plot(
-            freq_hz,
-            row,
-            color=AFTER,
-            lw=0.8,
-            alpha=0.8,
-            label="each position, corrected" if k == 0 else None,
-        )
+        ax.plot(freq_hz, row, color=AFTER, lw=0.8, alpha=0.8,
+                label="each position, corrected" if k == 0 else None)
     from roomcorr.analysis.average import power_average
 
     after = power_average(np.asarray(predicted_db))[0]
@@ -262,39 +251,18 @@ def plot_filter(
     d = np.diff(m)
     for k, (a, b) in enumerate(zip(np.nonzero(d == 1)[0], np.nonzero(d == -1)[0], strict=True)):
         for ax in (ax1, ax2, ax3):
-            ax.axvspan(
-                freq_hz[a],
-                freq_hz[b - 1],
-                color=REFUSED,
-                zorder=0.5,
-                lw=0,
-                label="boost refused" if (k == 0 and ax is ax1) else None,
-            )
-    ax1.plot(
-        freq_hz,
-        correction_db + pre_gain_db,
-        color=AIM,
-        lw=1.4,
-        ls="--",
-        label="designed curve + pre-gain",
-    )
-    ax1.plot(
-        freq_hz,
-        correction_db + withheld_db + pre_gain_db,
-        color=CAP,
-        lw=1.0,
-        ls=":",
-        label="what full correction would need",
-    )
+            ax.axvspan(freq_hz[a], freq_hz[b - 1], color=REFUSED, zorder=0.5, lw=0,
+                       label="boost refused" if (k == 0 and ax is ax1) else None)
+    ax1.plot(freq_hz, correction_db + pre_gain_db, color=AIM, lw=1.4, ls="--",
+             label="designed curve + pre-gain")
+    ax1.plot(freq_hz, correction_db + withheld_db + pre_gain_db, color=CAP, lw=1.0, ls=":",
+             label="what full correction would need")
     ax1.plot(freq_hz, gain_db, color=MEAN, lw=2.0, label=f"filter at {fs} Hz")
     ax1.axhline(0.0, color=INK, lw=0.8)
     ax1.set_ylabel("gain (dB)")
     audible = (freq_hz >= 20) & (freq_hz <= 20000)
-    shown = np.r_[
-        gain_db[audible],
-        (correction_db + pre_gain_db)[audible],
-        (correction_db + withheld_db + pre_gain_db)[audible],
-    ]
+    shown = np.r_[gain_db[audible], (correction_db + pre_gain_db)[audible],
+                  (correction_db + withheld_db + pre_gain_db)[audible]]
     ax1.set_ylim(*data_limits(shown, GAIN_AXIS_DB, 2.0, (-3.0, 3.0)))
     ax1.legend(loc="lower left", fontsize=LEGEND_PT, frameon=False, ncols=2)
     ax1.set_title(title, loc="left", color=INK)
@@ -332,7 +300,8 @@ def plot_time(
         Shown time span relative to each response's main peak; negative time
         shows any pre-ringing.
     """
-    fig = new_figure(COLUMN_WIDTH_IN, 5.8, top=0.9, hspace=0.5, wspace=0.3, bottom=0.1, left=0.11)
+    fig = new_figure(COLUMN_WIDTH_IN, 5.8, top=0.9, hspace=0.5, wspace=0.3, bottom=0.1,
+                     left=0.11)
     axs = fig.subplots(2, 2)
 
     def _span(x: np.ndarray, ref: int) -> tuple[np.ndarray, np.ndarray]:
@@ -341,10 +310,8 @@ def plot_time(
         return t_ms[sel], x[sel]
 
     ref_f = int(np.argmax(np.abs(fir)))
-    t, x = _span(
-        np.concatenate([np.zeros(int(-span_ms[0] * fs / 1000) + 1), fir]),
-        ref_f + int(-span_ms[0] * fs / 1000) + 1,
-    )
+    t, x = _span(np.concatenate([np.zeros(int(-span_ms[0] * fs / 1000) + 1), fir]),
+                 ref_f + int(-span_ms[0] * fs / 1000) + 1)
     axs[0, 0].plot(t, x, color=MEAN, lw=1.1)
     axs[0, 1].plot(t, np.cumsum(x), color=MEAN, lw=1.1)  # step: running sum of the taps
     ref = int(np.argmax(np.abs(before)))
@@ -388,29 +355,20 @@ def plot_decay(bands: list[Any], title: str) -> Any:
         c = b.curve
         sel = np.isfinite(c.edc_db) & (c.edc_db > -70)
         step = max(1, int(sel.sum() // 2000))
-        ax1.plot(
-            c.time_s[sel][::step],
-            c.edc_db[sel][::step],
-            color=cmap(k / max(1, len(bands) - 1)),
-            lw=1.2,
-            label=b.label,
-        )
+        ax1.plot(c.time_s[sel][::step], c.edc_db[sel][::step],
+                 color=cmap(k / max(1, len(bands) - 1)), lw=1.2, label=b.label)
     for lvl in (-5, -25, -35):
         ax1.axhline(lvl, color="#c9d1da", lw=0.8, ls="--")
     ax1.set_ylim(-70, 2)
     ax1.set_xlabel("time (s)")
     ax1.set_ylabel("decay (dB)")
-    ax1.legend(
-        title="band (Hz)", fontsize=LEGEND_PT, title_fontsize=LEGEND_PT, ncols=2, frameon=False
-    )
+    ax1.legend(title="band (Hz)", fontsize=LEGEND_PT, title_fontsize=LEGEND_PT, ncols=2,
+               frameon=False)
     ax1.grid(True, color="#eef1f4")
     x = np.arange(len(bands))
     w = 0.27
-    for off, key, col, lab in (
-        (-w, "edt_s", SEAT, "EDT"),
-        (0, "t20_s", MEAN, "T20"),
-        (w, "t30_s", AIM, "T30"),
-    ):
+    for off, key, col, lab in ((-w, "edt_s", SEAT, "EDT"), (0, "t20_s", MEAN, "T20"),
+                               (w, "t30_s", AIM, "T30")):
         vals = np.array([getattr(b, key) for b in bands], dtype=float)
         ax2.bar(x + off, np.nan_to_num(vals), width=w, color=col, label=lab)
     ax2.set_xticks(x, [b.label for b in bands])
@@ -445,32 +403,20 @@ def plot_decay_map(
     axs = fig.subplots(1, len(maps), sharey=True, squeeze=False)[0]
     im = None
     for ax, (label, m) in zip(axs, maps, strict=True):
-        im = ax.pcolormesh(
-            m.freq_hz,
-            m.time_s * 1000,
-            np.clip(m.level_db, floor_db, 0),
-            shading="nearest",
-            cmap="magma",
-            vmin=floor_db,
-            vmax=0,
-            rasterized=True,
-        )
+        im = ax.pcolormesh(m.freq_hz, m.time_s * 1000, np.clip(m.level_db, floor_db, 0),
+                           shading="nearest", cmap="magma", vmin=floor_db, vmax=0,
+                           rasterized=True)
         ax.set_xscale("log")
-        ticks = [t for t in (20, 30, 50, 100, 200, 300) if m.freq_hz[0] <= t <= m.freq_hz[-1]]
+        ticks = [t for t in (20, 30, 50, 100, 200, 300)
+                 if m.freq_hz[0] <= t <= m.freq_hz[-1]]
         ax.set_xticks(ticks, [str(t) for t in ticks])
         ax.minorticks_off()
         ax.set_xlabel("frequency (Hz)")
         ax.set_title(label, loc="left", fontsize=10, color=INK)
     for k, (f0, t0) in enumerate(modes):
-        axs[0].annotate(
-            f"{f0:.0f} Hz\n{t0:.2f} s",
-            xy=(f0, 15),
-            xytext=(f0, 330 + 90 * k),
-            color="white",
-            fontsize=LEGEND_PT,
-            ha="center",
-            arrowprops={"arrowstyle": "-", "color": "white", "lw": 0.8},
-        )
+        axs[0].annotate(f"{f0:.0f} Hz\n{t0:.2f} s", xy=(f0, 15), xytext=(f0, 330 + 90 * k),
+                        color="white", fontsize=LEGEND_PT, ha="center",
+                        arrowprops={"arrowstyle": "-", "color": "white", "lw": 0.8})
     axs[0].set_ylabel("time after direct sound (ms)")
     if im is not None:
         fig.colorbar(im, ax=list(axs), label="level (dB re first slice peak)", shrink=0.9)
@@ -506,16 +452,9 @@ def plot_quality(recordings: list[dict[str, Any]], title: str) -> Any:
         for order, vals in (r.get("hd_db") or {}).items():
             v = np.array([np.nan if x is None else float(x) for x in vals])
             if hf.size and v.size == hf.size:
-                ax2.plot(
-                    hf,
-                    v,
-                    lw=1,
-                    marker=".",
-                    ms=3,
-                    color=col,
-                    ls="-" if order == "2" else "--",
-                    label=f"H{order}" if k == 0 else None,
-                )
+                ax2.plot(hf, v, lw=1, marker=".", ms=3, color=col,
+                         ls="-" if order == "2" else "--",
+                         label=f"H{order}" if k == 0 else None)
     ax1.axhline(40, color=AIM, lw=1, ls=":")
     _freq_axis(ax1, 20, 20000, sparse=True)
     ax1.set_ylabel("signal-to-noise (dB)")
@@ -533,9 +472,8 @@ def plot_quality(recordings: list[dict[str, Any]], title: str) -> Any:
     ax3.set_xlabel("difference (dB re response)")
     ax3.set_title("repeat agreement", loc="left", fontsize=10)
     if all(np.isnan(reps)):
-        ax3.text(
-            0.5, 0.5, "single sweep:\nno repeats", ha="center", va="center", transform=ax3.transAxes
-        )
+        ax3.text(0.5, 0.5, "single sweep:\nno repeats", ha="center", va="center",
+                 transform=ax3.transAxes)
     fig.suptitle(title, x=0.01, ha="left", color=INK)
     return fig
 
@@ -569,13 +507,8 @@ def plot_iir(
     ax.plot(freq_hz, designed_db, color=AIM, lw=1.0, ls="--", label="designed curve + pre-gain")
     cmap = colormaps["viridis"]
     for k, (rate, db) in enumerate(sorted(cascades_db.items())):
-        ax.plot(
-            freq_hz,
-            db,
-            color=cmap(0.15 + 0.7 * k / max(1, len(cascades_db) - 1)),
-            lw=1.2,
-            label=f"biquads at {rate} Hz",
-        )
+        ax.plot(freq_hz, db, color=cmap(0.15 + 0.7 * k / max(1, len(cascades_db) - 1)), lw=1.2,
+                label=f"biquads at {rate} Hz")
     ax.axhline(0.0, color=INK, lw=0.8)
     _freq_axis(ax)
     ax.set_ylabel("gain (dB)")
@@ -680,7 +613,6 @@ def plot_through(
     _freq_axis(ax, float(freq_hz[0]), float(freq_hz[-1]))
     ax.set_ylabel("level (dB)")
     ax.set_title(title, loc="left", fontsize=11, color=INK)
-    ax.legend(
-        fontsize=LEGEND_PT, frameon=False, ncol=2, loc="upper center", bbox_to_anchor=(0.5, -0.16)
-    )
+    ax.legend(fontsize=LEGEND_PT, frameon=False, ncol=2, loc="upper center",
+              bbox_to_anchor=(0.5, -0.16))
     return fig

@@ -297,10 +297,8 @@ def iir_response_db(doc: dict[str, Any], freq_hz: np.ndarray) -> np.ndarray:
     gain = float(doc.get("pre_gain_linear", 10 ** (float(doc.get("pre_gain_db", 0)) / 20)))
     secs = doc.get("sections") or []
     if secs:
-        sos = np.array(
-            [[c[0], c[1], c[2], 1.0, c[3], c[4]] for c in (s["coefficients"] for s in secs)],
-            dtype=float,
-        )
+        sos = np.array([[c[0], c[1], c[2], 1.0, c[3], c[4]]
+                        for c in (s["coefficients"] for s in secs)], dtype=float)
         _, h = sosfreqz(sos, worN=f[ok], fs=fs)
     else:
         h = np.ones(int(ok.sum()))
@@ -341,31 +339,14 @@ def _iir_column(x: _Channel, ctx: _Context) -> Column | None:
     rows = [["#", "type", "frequency (Hz)", "gain (dB)", "Q"]]
     secs = list(enumerate(doc.get("sections") or [], start=1))
     for i, sct in sorted(secs, key=lambda t: (float(t[1].get("freq_hz", 0)), t[0])):
-        rows.append(
-            [
-                str(i),
-                str(sct.get("type")),
-                f"{float(sct.get('freq_hz', 0)):.1f}",
-                f"{float(sct.get('gain_db', 0)):.2f}",
-                f"{float(sct.get('q', 0)):.2f}",
-            ]
-        )
+        rows.append([str(i), str(sct.get("type")), f"{float(sct.get('freq_hz', 0)):.1f}",
+                     f"{float(sct.get('gain_db', 0)):.2f}", f"{float(sct.get('q', 0)):.2f}"])
     col.table = rows
     col.figures.append(
-        Figure(
-            f"{x.name}-iir",
-            f"Biquad cascade against the FIR, {x.name}",
-            ctx.png(
-                fg.plot_iir(
-                    freq,
-                    cascades,
-                    fir_db,
-                    np.asarray(x.ch["correction_db"]) + ctx.pre_gain,
-                    x.band,
-                    f"Biquads: {x.name}",
-                )
-            ),
-        )
+        Figure(f"{x.name}-iir", f"Biquad cascade against the FIR, {x.name}",
+               ctx.png(fg.plot_iir(freq, cascades, fir_db,
+                                   np.asarray(x.ch["correction_db"]) + ctx.pre_gain, x.band,
+                                   f"Biquads: {x.name}")))
     )
     return col
 
@@ -437,30 +418,15 @@ def comparison_section(res: dict[str, Any]) -> Section:
     else:  # layout not as expected: keep every line, nothing lost
         sec.paragraphs.extend(_sentence(ln) for ln in lines[2:] if ln.strip())
         per_channel = ["" for _ in chans]
-    rows = [
-        [
-            "channel",
-            "arrival change (ms)",
-            "distance change (m)",
-            "level change (dB)",
-            "what changed",
-        ]
-    ]
+    rows = [["channel", "arrival change (ms)", "distance change (m)", "level change (dB)",
+             "what changed"]]
     for ch, text in zip(chans, per_channel, strict=True):
-        rows.append(
-            [
-                str(ch["name"]),
-                f"{ch['arrival_change_ms']:+.3f}",
-                f"{ch['distance_change_m']:+.3f}",
-                f"{ch['level_change_db']:+.2f}",
-                text,
-            ]
-        )
+        rows.append([str(ch["name"]), f"{ch['arrival_change_ms']:+.3f}",
+                     f"{ch['distance_change_m']:+.3f}", f"{ch['level_change_db']:+.2f}", text])
     sec.table = rows
     sec.figures.append(
-        Figure(
-            "compare", "Before and after, both responses overlaid per channel", comparison_png(res)
-        )
+        Figure("compare", "Before and after, both responses overlaid per channel",
+               comparison_png(res))
     )
     return sec
 
@@ -471,8 +437,7 @@ def _comparison_sentence(res: dict[str, Any]) -> str:
         for ch in res["channels"]
     ]
     return (
-        f"Since the earlier measurement ({res['before']}): "
-        + "; ".join(parts)
+        f"Since the earlier measurement ({res['before']}): " + "; ".join(parts)
         + " (distance and level changes; see the comparison section)."
     )
 
@@ -523,9 +488,7 @@ def _channel(curves: dict[str, Any], ch: dict[str, Any], ctx: _Context) -> _Chan
     c = int(ch["index"])
     irs = curves.get("irs")
     x = _Channel(
-        ch=ch,
-        index=c,
-        name=str(ch["name"]),
+        ch=ch, index=c, name=str(ch["name"]),
         tag=f"{ch['name']} ({len(ch['measured_db'])} positions)",
         band=tuple(ch["band_hz"]) if "band_hz" in ch else None,
         pos_irs=None if irs is None else np.asarray(irs)[:, c],
@@ -556,13 +519,8 @@ def _room_column(x: _Channel, ctx: _Context) -> Column | None:
             f"Measured response, {x.name}",
             ctx.png(
                 fg.plot_responses(
-                    ctx.freq,
-                    x.ch["measured_db"],
-                    x.ch["average_db"],
-                    x.ch.get("target_db"),
-                    x.band,
-                    ctx.caps["max_boost_db"],
-                    f"Measured: {x.tag}",
+                    ctx.freq, x.ch["measured_db"], x.ch["average_db"], x.ch.get("target_db"),
+                    x.band, ctx.caps["max_boost_db"], f"Measured: {x.tag}",
                 )
             ),
         )
@@ -581,17 +539,9 @@ def _result_column(x: _Channel, ctx: _Context) -> Column | None:
         Figure(
             f"{x.name}-result",
             f"Predicted result, {x.name}",
-            ctx.png(
-                fg.plot_predicted(
-                    ctx.freq,
-                    x.predicted,
-                    x.ch["average_db"],
-                    np.asarray(x.ch["target_db"]) + ctx.pre_gain,
-                    x.band,
-                    f"Corrected: {x.tag}",
-                    ctx.pre_gain,
-                )
-            ),
+            ctx.png(fg.plot_predicted(ctx.freq, x.predicted, x.ch["average_db"],
+                                      np.asarray(x.ch["target_db"]) + ctx.pre_gain, x.band,
+                                      f"Corrected: {x.tag}", ctx.pre_gain)),
         )
     )
     return col
@@ -629,20 +579,9 @@ def _filter_column(x: _Channel, ctx: _Context) -> Column | None:
         Figure(
             f"{x.name}-filter",
             f"Filter magnitude, phase and group delay, {x.name}",
-            ctx.png(
-                fg.plot_filter(
-                    ctx.freq,
-                    gain,
-                    phase,
-                    gd,
-                    x.ch["correction_db"],
-                    x.ch["boost_withheld_db"],
-                    x.band,
-                    ctx.pre_gain,
-                    x.rate,
-                    f"Filter: {x.name}",
-                )
-            ),
+            ctx.png(fg.plot_filter(ctx.freq, gain, phase, gd, x.ch["correction_db"],
+                                   x.ch["boost_withheld_db"], x.band, ctx.pre_gain, x.rate,
+                                   f"Filter: {x.name}")),
         )
     )
     return col
@@ -658,11 +597,8 @@ def _time_column(x: _Channel, ctx: _Context) -> Column | None:
         Figure(
             f"{x.name}-time",
             f"Impulse and step response, {x.name}",
-            ctx.png(
-                fg.plot_time(
-                    ctx.fs, x.fir, x.pos_irs[0], x.corrected[0], f"Time response: {x.name}"
-                )
-            ),
+            ctx.png(fg.plot_time(ctx.fs, x.fir, x.pos_irs[0], x.corrected[0],
+                                 f"Time response: {x.name}")),
         )
     )
     return col
@@ -744,11 +680,8 @@ def _decay_column(x: _Channel, ctx: _Context) -> Column | None:
     col = Column(x.name)
     col.table = _decay_table(bands)
     col.figures.append(
-        Figure(
-            f"{x.name}-decay",
-            f"Decay curves and times, {x.name}",
-            ctx.png(fg.plot_decay(bands, f"Decay: {x.name}")),
-        )
+        Figure(f"{x.name}-decay", f"Decay curves and times, {x.name}",
+               ctx.png(fg.plot_decay(bands, f"Decay: {x.name}")))
     )
     return col
 
@@ -774,11 +707,8 @@ def _ringing_column(x: _Channel, ctx: _Context) -> Column | None:
             f"{x.name} around {fmt_hz(modes[0][0])} ({modes[0][1]:.2f} s to decay 60 dB)"
         )
     col.figures.append(
-        Figure(
-            f"{x.name}-ringing",
-            f"Low-frequency decay map, {x.name}",
-            ctx.png(fg.plot_decay_map(maps, modes, f"Low-frequency decay: {x.name}")),
-        )
+        Figure(f"{x.name}-ringing", f"Low-frequency decay map, {x.name}",
+               ctx.png(fg.plot_decay_map(maps, modes, f"Low-frequency decay: {x.name}")))
     )
     return col
 
@@ -786,44 +716,25 @@ def _ringing_column(x: _Channel, ctx: _Context) -> Column | None:
 #: Sections with one column per channel: (id, text above the columns, column builder).
 #: Add a per-channel section by writing a ``_xxx_column(x, ctx)`` and listing it here.
 CHANNEL_SECTIONS: list[tuple[str, str, Any]] = [
-    (
-        "room",
-        "Thin lines are the individual microphone positions, the thick line is their "
-        "power average. Grey areas lie outside the correction band.",
-        _room_column,
-    ),
-    (
-        "result",
-        "Analysed with the same window and smoothing as the measurement. The filters "
-        "include the pre-gain, so the target is drawn lowered by it. Lines close to the target at "
-        "every position mean the correction holds across the listening area.",
-        _result_column,
-    ),
-    ("filter", "Pink areas mark frequencies where boost was wanted but refused.", _filter_column),
-    (
-        "time",
-        "Top: the filter alone. Bottom: the first position before and after correction. "
-        "Anything left of 0 ms is pre-ringing; a minimum-phase filter has none.",
-        _time_column,
-    ),
+    ("room", "Thin lines are the individual microphone positions, the thick line is their "
+     "power average. Grey areas lie outside the correction band.", _room_column),
+    ("result", "Analysed with the same window and smoothing as the measurement. The filters "
+     "include the pre-gain, so the target is drawn lowered by it. Lines close to the target at "
+     "every position mean the correction holds across the listening area.", _result_column),
+    ("filter", "Pink areas mark frequencies where boost was wanted but refused.",
+     _filter_column),
+    ("time", "Top: the filter alone. Bottom: the first position before and after correction. "
+     "Anything left of 0 ms is pre-ringing; a minimum-phase filter has none.", _time_column),
     ("phase", "", _phase_column),
     ("iir", "", _iir_column),
-    (
-        "decay",
-        "Schroeder backward integration per octave band with the noise floor "
-        "subtracted and the tail truncated where the decay meets the noise. EDT from 0 to -10 "
-        "dB, T20 from -5 to -25 dB, T30 from -5 to -35 dB, each extrapolated to 60 dB (ISO "
-        "3382-1), averaged over positions; curves show the first position. * marks a value whose "
-        "range comes within 10 dB of the noise floor.",
-        _decay_column,
-    ),
-    (
-        "ringing",
-        "Sliding-window spectra of the first position from 20 to 300 Hz: each row "
-        "starts 10 ms later than the one below. A bright ridge reaching high up is a room mode "
-        "that keeps ringing after the sound stops.",
-        _ringing_column,
-    ),
+    ("decay", "Schroeder backward integration per octave band with the noise floor "
+     "subtracted and the tail truncated where the decay meets the noise. EDT from 0 to -10 "
+     "dB, T20 from -5 to -25 dB, T30 from -5 to -35 dB, each extrapolated to 60 dB (ISO "
+     "3382-1), averaged over positions; curves show the first position. * marks a value whose "
+     "range comes within 10 dB of the noise floor.", _decay_column),
+    ("ringing", "Sliding-window spectra of the first position from 20 to 300 Hz: each row "
+     "starts 10 ms later than the one below. A bright ridge reaching high up is a room mode "
+     "that keeps ringing after the sound stops.", _ringing_column),
 ]
 
 
@@ -851,15 +762,8 @@ def _safety_section(chans: list[_Channel], curves: dict[str, Any], ctx: _Context
             continue
         for r in sorted(curves["firs"]):
             h = np.asarray(curves["firs"][r][x.index], dtype=float)
-            rows.append(
-                [
-                    x.name,
-                    str(r),
-                    str(h.size),
-                    f"{full_band_peak_gain_db(h, r):.2f}",
-                    f"{worst_case_gain_db(h):.2f}",
-                ]
-            )
+            rows.append([x.name, str(r), str(h.size), f"{full_band_peak_gain_db(h, r):.2f}",
+                         f"{worst_case_gain_db(h):.2f}"])
     saf = Section("safety", SECTION_TITLES["safety"])
     mb = "n/a" if caps["max_boost_db"] is None else f"{caps['max_boost_db']:g} dB"
     mc = "n/a" if caps["max_cut_db"] is None else f"{caps['max_cut_db']:g} dB"
@@ -981,8 +885,7 @@ def build_report(
             sections.append(sec)
     if ctx.ringing_notes and designed:
         overview.paragraphs.append(
-            "Loudest ringing after the sound stops: "
-            + "; ".join(ctx.ringing_notes)
+            "Loudest ringing after the sound stops: " + "; ".join(ctx.ringing_notes)
             + " (see the low-frequency decay maps)."
         )
     if quality:
@@ -1085,9 +988,8 @@ details{margin:6px 0}summary{cursor:pointer;color:#155e6b}
 """
 
 
-def _render_block(
-    paragraphs: list[str], table: list[list[str]] | None, figures: list[Figure]
-) -> list[str]:
+def _render_block(paragraphs: list[str], table: list[list[str]] | None,
+                  figures: list[Figure]) -> list[str]:
     """Paragraphs, table and figures of a section or a column, as HTML pieces."""
     esc = html.escape
     parts = [f"<p>{esc(p)}</p>" for p in paragraphs]
@@ -1096,10 +998,8 @@ def _render_block(
         body = "".join(
             "<tr>" + "".join(f"<td>{esc(v)}</td>" for v in row) + "</tr>" for row in table[1:]
         )
-        parts.append(
-            f'<div class="scroll"><table><thead><tr>{head}</tr></thead>'
-            f"<tbody>{body}</tbody></table></div>"
-        )
+        parts.append(f'<div class="scroll"><table><thead><tr>{head}</tr></thead>'
+                     f"<tbody>{body}</tbody></table></div>")
     for f in figures:
         b64 = base64.b64encode(f.png).decode("ascii")
         parts.append(
@@ -1136,10 +1036,8 @@ def render_html(report: Report) -> str:
         if s.columns:
             parts.append('<div class="channels">')
             for c in s.columns:
-                parts.append(
-                    f'<div class="channel" id="{esc(s.id)}-{esc(c.channel)}" '
-                    f'data-channel="{esc(c.channel)}"><h3>{esc(c.channel)}</h3>'
-                )
+                parts.append(f'<div class="channel" id="{esc(s.id)}-{esc(c.channel)}" '
+                             f'data-channel="{esc(c.channel)}"><h3>{esc(c.channel)}</h3>')
                 parts.extend(_render_block(c.paragraphs, [], []))
                 if c.details:
                     summary, paras = c.details
@@ -1218,23 +1116,10 @@ def _session_curves(folder: Path) -> dict[str, Any]:
     channels = []
     for c, name in enumerate(default_channel_names(irs.shape[1])):
         avg, spread = power_average(measured[:, c])
-        channels.append(
-            {
-                "index": c,
-                "name": name,
-                "measured_db": measured[:, c],
-                "average_db": avg,
-                "spread_db": spread,
-            }
-        )
-    return {
-        "freq_hz": freq,
-        "fs_in": fs,
-        "pre_gain_db": 0.0,
-        "irs": irs,
-        "firs": {},
-        "channels": channels,
-    }
+        channels.append({"index": c, "name": name, "measured_db": measured[:, c],
+                         "average_db": avg, "spread_db": spread})
+    return {"freq_hz": freq, "fs_in": fs, "pre_gain_db": 0.0, "irs": irs, "firs": {},
+            "channels": channels}
 
 
 def _complete(run_dir: Path) -> bool:
@@ -1275,7 +1160,8 @@ def _source_measurement(d: Path, room: Any) -> tuple[Any, Any]:
                 return room, cand
     files = manifest.get("measurements")
     if isinstance(files, list) and files:
-        paths = [Path(str(f)) if Path(str(f)).is_absolute() else Path.cwd() / str(f) for f in files]
+        paths = [Path(str(f)) if Path(str(f)).is_absolute() else Path.cwd() / str(f)
+                 for f in files]
         parents = {q.parent.resolve() for q in paths}
         if len(parents) == 1:  # all from one measurement run of a room: use that room
             parent = parents.pop()

@@ -107,12 +107,9 @@ def withheld_regions(
     w = np.asarray(ch["boost_withheld_db"])
     avg = np.asarray(ch["average_db"], dtype=float)
     # the correction rule's own dip measure: depth below the wide power envelope
-    envelope = 10 * np.log10(
-        np.maximum(
-            smooth_log_grid(10 ** (avg / 10), points_per_octave_of(freq_hz), rule.ENVELOPE_OCT),
-            1e-30,
-        )
-    )
+    envelope = 10 * np.log10(np.maximum(
+        smooth_log_grid(10 ** (avg / 10), points_per_octave_of(freq_hz), rule.ENVELOPE_OCT),
+        1e-30))
     dip = np.maximum(envelope - avg, 0.0)
 
     def _allow(x: float, free: float, refuse: float) -> float:
@@ -231,7 +228,9 @@ def channel_sentences(
 
     spread = np.asarray(ch["spread_db"])
     wide = [
-        (a, b) for a, b in _runs(inside & (spread > 3.0)) if np.log2(f[b - 1] / f[a]) >= 1.0 / 3.0
+        (a, b)
+        for a, b in _runs(inside & (spread > 3.0))
+        if np.log2(f[b - 1] / f[a]) >= 1.0 / 3.0
     ]
     if wide:
         a, b = max(wide, key=lambda r: r[1] - r[0])
