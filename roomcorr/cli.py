@@ -127,7 +127,12 @@ def _add_system_options(p: argparse.ArgumentParser) -> None:
         help="channel names in file order (e.g. left,right,sub); default left,right for two "
         "channels",
     )
-    g.add_argument("--subwoofer", metavar="NAME", help="the channel that is a subwoofer")
+    g.add_argument(
+        "--subwoofer",
+        metavar="NAME[,NAME...]",
+        help="the channel (or comma-separated channels) that are subwoofers; several are "
+        "given their own delay, level and polarity for even bass over the listening area",
+    )
     g.add_argument(
         "--align",
         action=argparse.BooleanOptionalAction,
@@ -632,6 +637,23 @@ def measure_settings_from_args(
     return MeasureSettings.from_dict(base, args.settings or "options")
 
 
+def _print_positions_advice(args: argparse.Namespace, room: Any) -> None:
+    """With several subwoofers named in the design settings, advise a wide spread of positions."""
+    from roomcorr import rooms
+    from roomcorr.measure.guidance import positions_advice
+    from roomcorr.settings import load_settings, subwoofer_names
+
+    if args.settings:
+        design = load_settings(args.settings).design
+    elif room is not None:
+        design = rooms.load_room_settings(room).design
+    else:
+        return
+    advice = positions_advice(len(subwoofer_names(design.subwoofer)), args.positions or 1)
+    if advice:
+        print(advice)
+
+
 def _run_measure(args: argparse.Namespace) -> int:
     from roomcorr import rooms
     from roomcorr.app.measure import measure_in_room, measure_into
@@ -643,6 +665,7 @@ def _run_measure(args: argparse.Namespace) -> int:
     view = make_view(plain=args.plain)
     kw = {"yes": args.yes, "force": args.force, "say": view.say, "view": view,
           "through": args.through}
+    _print_positions_advice(args, room)
     if args.out:
         ms = measure_settings_from_args(args)
         with view:

@@ -9,10 +9,11 @@ target/calibration text files named in the settings (resolved up front by
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 
 import numpy as np
+from scipy.signal import freqz
 
 from roomcorr.analysis.average import power_average
 from roomcorr.analysis.balance import steady_balance_set
@@ -27,10 +28,18 @@ from roomcorr.design.correction import align_target, correction_curve
 from roomcorr.design.fir import default_n_taps, synthesize_fir, taps_for_latency
 from roomcorr.design.mixedphase import MixedPhaseDesign, apply_mixed_phase, latency_samples
 from roomcorr.design.safety import FilterStats, apply_safety, fit_under_cap
+from roomcorr.design.subwoofers import plan_subwoofers, spread_grid_hz, with_mains
 from roomcorr.design.target import AUTO_LIMITS_HZ, target_from_points, target_from_table
 from roomcorr.errors import InputFileError, SettingsError
 from roomcorr.grid import interp_log, log_grid, points_per_octave_of
-from roomcorr.settings import DesignSettings, Settings, find_preset, is_preset_name, read_toml
+from roomcorr.settings import (
+    DesignSettings,
+    Settings,
+    find_preset,
+    is_preset_name,
+    read_toml,
+    subwoofer_names,
+)
 
 __all__ = [
     "ChannelDesign",
@@ -349,6 +358,8 @@ def run_design(
     DesignResult
     """
     d = settings.design
+    if len(subwoofer_names(d.subwoofer)) > 1:
+        return _run_several_subwoofers(irs, fs, settings, channel_names)
     analysis = analyse(irs, fs, settings, channel_names)
     target_shape = resolve_target(analysis.freq_hz, d.target)
     channels = design_curves(analysis, settings, target_shape)
@@ -397,4 +408,138 @@ def run_design(
         settings=settings,
         system=system,
         mixed_phase=mixed,
+    )
+
+
+def _shifted(h: np.ndarray, n: int, n_out: int) -> np.ndarray:
+    out = np.zeros(n_out)
+    out[n : n + h.size] = h[: max(0, n_out - n)]
+    return out
+
+
+def _run_several_subwoofers(
+    irs: np.ndarray, fs: int, settings: Settings, channel_names: list[str] | None
+) -> DesignResult:
+    """Several subwoofers: chosen together, then designed as one source (design/subwoofers.py).
+
+    1. Each subwoofer's delay, level (cut only) and polarity come from
+       :func:`roomcorr.design.subwoofers.plan_subwoofers` on the measured
+       responses (20 Hz to twice the middle of the crossover range), judged
+       with both mains driven through a crossover at the range's middle
+       (:func:`roomcorr.design.subwoofers.with_mains`).
+    2. The subwoofers, so fed, are summed into one virtual channel at every
+       position, and the single-subwoofer design runs on the mains and that
+       channel: common correction, crossover, alignment, safety.
+    3. The virtual channel's filter is handed to every subwoofer with its own
+       delay (whole samples at each rate), level and polarity, always inside
+       the filters. Each output's peak gain stays at or below the virtual
+       channel's (a cut and a shift change no peak), and the safety check
+       runs again on the outputs as delivered.
+    """
+    d = settings.design
+    n_pos, n_ch, n_samp = irs.shape
+    names = channel_names or channel_names_for(n_ch, d.channel_names)
+    subs = subwoofer_names(d.subwoofer)
+    for name in subs:
+        if name not in names:
+            raise SettingsError(
+                f"--subwoofer {name}: not one of the channel names {', '.join(names)}; "
+                "name the channels with --names"
+            )
+    if d.phase == "mixed":
+        raise SettingsError(
+            "--phase mixed: not offered with several subwoofers yet; use --phase minimum"
+        )
+    sub_idx = [names.index(n) for n in subs]
+    mains = [c for c in range(n_ch) if c not in sub_idx]
+    if not mains:
+        raise SettingsError("--subwoofer: subwoofers need at least one main loudspeaker")
+    weights = None if d.position_weights is None else np.asarray(d.position_weights)
+    if weights is not None and weights.size != n_pos:
+        raise SettingsError(
+            f"design.position_weights has {weights.size} values for {n_pos} positions; "
+            "give one weight per position"
+        )
+    lo, hi = d.crossover_range_hz
+    grid = spread_grid_hz(2.0 * float(np.sqrt(lo * hi)))
+    resp = np.array(
+        [[freqz(irs[p, k], worN=grid, fs=fs)[1] for k in sub_idx] for p in range(n_pos)]
+    )
+    mains_resp = np.array(
+        [[freqz(irs[p, k], worN=grid, fs=fs)[1] for k in mains] for p in range(n_pos)]
+    )
+    # judged as the seats hear it: both mains driven, crossed over at the range's middle
+    sub_heard, mains_heard = with_mains(resp, mains_resp, grid, float(np.sqrt(lo * hi)), fs)
+    arr = plan_subwoofers(sub_heard, grid, subs, sub_idx, weights, base=mains_heard)
+    # one virtual subwoofer: every subwoofer with its own delay, level and polarity
+    shifts = [int(round(t * fs)) for t in arr.delay_s]
+    n_v = n_samp + max(shifts)
+    virtual = np.zeros((n_pos, n_v))
+    for k, c in enumerate(sub_idx):
+        g = 10.0 ** (arr.gain_db[k] / 20.0) * arr.polarity[k]
+        for p in range(n_pos):
+            virtual[p] += g * _shifted(irs[p, c], shifts[k], n_v)
+    vname = "+".join(subs)
+    inner_irs = np.zeros((n_pos, len(mains) + 1, n_v))
+    inner_irs[:, : len(mains), :n_samp] = irs[:, mains]
+    inner_irs[:, -1] = virtual
+    inner_names = [names[c] for c in mains] + [vname]
+    inner = replace(settings, design=replace(d, subwoofer=vname, channel_names=tuple(inner_names)))
+    r = run_design(inner_irs, fs, inner, inner_names)
+    plan = r.system
+    assert plan is not None
+    v = len(mains)
+    # every physical channel from the inner design's channels
+    firs: dict[int, np.ndarray] = {}
+    for rate, h in r.firs.items():
+        sh = [int(round(t * rate)) for t in arr.delay_s]
+        n_out = h.shape[1] + max(sh)
+        rows = np.zeros((n_ch, n_out))
+        for i, c in enumerate(mains):
+            rows[c, : h.shape[1]] = h[i]
+        for k, c in enumerate(sub_idx):
+            g = 10.0 ** (arr.gain_db[k] / 20.0) * arr.polarity[k]
+            rows[c] = g * _shifted(h[v], sh[k], n_out)
+        firs[rate] = rows
+    firs, pre2, stats = apply_safety(firs, d.ceiling_db, d.max_boost_db)
+    inner_of = {c: i for i, c in enumerate(mains)} | {c: v for c in sub_idx}
+    channels = [replace(r.channels[inner_of[c]], index=c, name=names[c]) for c in range(n_ch)]
+    roles = [plan.roles[inner_of[c]] for c in range(n_ch)]
+    own_delay = np.zeros(n_ch)
+    own_gain = np.zeros(n_ch)
+    own_pol = np.ones(n_ch, dtype=int)
+    for k, c in enumerate(sub_idx):
+        own_delay[c], own_gain[c], own_pol[c] = arr.delay_s[k], arr.gain_db[k], arr.polarity[k]
+    pick = [inner_of[c] for c in range(n_ch)]
+    # outputs: totals where the array's part is inside the filters (always) and the
+    # system's delay and trim are too (align on); otherwise the trims to set by hand
+    delay = plan.delay_s[pick] + (own_delay if plan.baked else 0.0)
+    trim = plan.trim_db[pick] + (own_gain if plan.baked else 0.0)
+    system = replace(
+        plan,
+        names=list(names),
+        roles=roles,
+        arrival_s=plan.arrival_s[pick],
+        delay_s=delay,
+        delay_samples={
+            int(rate): [int(round(t * rate)) for t in delay] for rate in plan.delay_samples
+        },
+        distance_m=delay * plan.c_m_s,
+        trim_db=trim,
+        level_db=plan.level_db[pick],
+        level_band_hz=[plan.level_band_hz[i] for i in pick],
+        polarity=[int(plan.polarity[i] * own_pol[c]) for c, i in enumerate(pick)],
+        subwoofers=arr,
+    )
+    return DesignResult(
+        freq_hz=r.freq_hz,
+        fs_in=fs,
+        irs=irs,
+        channels=channels,
+        firs=firs,
+        pre_gain_db=r.pre_gain_db + pre2,
+        stats=stats,
+        settings=settings,
+        system=system,
+        mixed_phase=None,
     )

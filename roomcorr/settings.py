@@ -252,6 +252,11 @@ def _num(key: str, value: Any) -> float:
     )
 
 
+def subwoofer_names(subwoofer: str | None) -> list[str]:
+    """The subwoofers named by ``design.subwoofer`` (comma-separated; empty for none)."""
+    return [] if not subwoofer else subwoofer.split(",")
+
+
 def _coerce_system(key: str, value: Any) -> Any:
     """Coerce the several-loudspeaker keys (align, names, subwoofer, crossover, formats)."""
     if key == "align":
@@ -273,9 +278,19 @@ def _coerce_system(key: str, value: Any) -> Any:
     if key == "subwoofer":
         if value in (None, ""):
             return None
+        if isinstance(value, list | tuple) and value and all(isinstance(v, str) for v in value):
+            value = ",".join(value)
         if not isinstance(value, str):
-            raise SettingsError(f"design.subwoofer: expected a channel name, got {value!r}")
-        return value
+            raise SettingsError(
+                f"design.subwoofer: expected a channel name or a list of names, got {value!r}"
+            )
+        names = [v.strip() for v in value.split(",")]
+        if not all(names) or len(set(names)) != len(names):
+            raise SettingsError(
+                f"design.subwoofer: {value!r}: give each subwoofer's channel name once, "
+                "separated by commas"
+            )
+        return ",".join(names)
     if key == "crossover_slope_db_oct":
         if isinstance(value, bool) or not isinstance(value, int | float) or value != int(value):
             raise SettingsError(
@@ -428,11 +443,12 @@ def validate_system(d: DesignSettings) -> None:
                 )
         if len(set(names)) != len(names):
             raise SettingsError("design.channel_names: every channel needs its own name")
-        if d.subwoofer is not None and d.subwoofer not in names:
-            raise SettingsError(
-                f"design.subwoofer = {d.subwoofer!r}: not one of the channel names "
-                + ", ".join(names)
-            )
+        for sub in subwoofer_names(d.subwoofer):
+            if sub not in names:
+                raise SettingsError(
+                    f"design.subwoofer = {d.subwoofer!r}: {sub!r} is not one of the channel "
+                    "names " + ", ".join(names)
+                )
     lo, hi = d.crossover_range_hz
     if not (20.0 <= lo <= hi <= 300.0):
         raise SettingsError(

@@ -16,12 +16,35 @@ channel:
    peak; a peak at the very end leaves no room response to correct.
 3. **Energy that decays after it and does not build up before it.** The last
    fifth of the span after the arrival holds at least :data:`MIN_DECAY_DB`
-   less energy than the first fifth; and the :data:`BUILDUP_WINDOW_S` before
-   the main peak hold no more than :data:`BUILDUP_RATIO` times the energy of
-   the same time after it, both counted above the noise (the peak itself,
-   :data:`PEAK_GUARD_S` either side, left out): reflections and
-   reverberation follow the direct sound in a room, while reversed in time
-   they come first and nothing follows.
+   less energy than the first fifth; and the energy before the main peak,
+   from the onset of the direct sound (:func:`roomcorr.analysis.onset.find_onset`,
+   at least :data:`BUILDUP_WINDOW_S` before the peak), holds no more than
+   :data:`BUILDUP_RATIO` times the energy of everything after the peak, both
+   counted above the noise (the peak itself, :data:`PEAK_GUARD_S` either
+   side, left out). Reflections and reverberation follow the direct sound in
+   a room, while reversed in time they come first and nothing follows.
+
+   The build-up is counted from the direct sound's onset and weighed against
+   the whole decay, not against a window of the same length, because a
+   low-frequency source builds up: a subwoofer in a corner or against a wall
+   arrives with its direct sound, and the room's modes, each growing over
+   a few of its periods, reach their largest sum 20 to 50 ms later (a mode of
+   Q = pi f T60 / (3 ln 10) rises with time constant T60 / (3 ln 10) = 65 ms for
+   T60 = 0.45 s; Kuttruff, Room Acoustics, ch. 3). What follows that peak still
+   lasts the reverberation time, so the whole decay outweighs the short
+   build-up; reversed, the decay comes before the peak and only the short
+   build-up follows, and the file is refused, a subwoofer's as well as a
+   full-range loudspeaker's (tests/test_plausibility_sub.py, on rooms simulated
+   with pyroomacoustics).
+4. **A quick rise and a slow fall.** From the first moment within 20 dB of
+   the main peak (the onset of :func:`roomcorr.analysis.onset.find_onset`)
+   to the peak takes at most :data:`RISE_OVER_FALL` times as long as from the
+   peak to the last moment within 20 dB of it (the same function on the file
+   reversed), or less than :data:`MIN_RISE_S`. A room's energy rises within the
+   build-up of its modes and falls over its reverberation time; a reversed
+   low-frequency response whose decay is short beside its build-up (a
+   subwoofer whose modes peak late and die fast in a damped room) can pass
+   check 3, never this one.
 
 All functions are pure (arrays in, text out).
 """
@@ -43,14 +66,21 @@ MIN_AFTER_PEAK_S = 0.05
 #: in a room with a 2 s decay still drops more than this (about 5 dB from its
 #: decay alone, plus the direct sound).
 MIN_DECAY_DB = 3.0
-#: Window before and after the main peak compared for build-up, s ...
+#: Shortest span before the main peak counted as build-up, s (the direct sound's
+#: onset may lie closer to the peak) ...
 BUILDUP_WINDOW_S = 0.03
 #: ... leaving out this much on either side of the peak itself, s. Refused when the
-#: energy before (above the noise) exceeds the energy after by this factor (3 dB) ...
+#: energy before (above the noise) exceeds all the energy after by this factor (3 dB) ...
 PEAK_GUARD_S = 0.001
 BUILDUP_RATIO = 2.0
 #: ... and stands this many times (10 dB) above the noise energy of the same window.
 BUILDUP_OVER_NOISE = 10.0
+#: Rise to the main peak (from 20 dB below it) may last at most this many times the
+#: fall from it (to 20 dB below it) ...
+RISE_OVER_FALL = 2.0
+#: ... unless it is shorter than this, s (a full-range response rises within a sample
+#: or two; this leaves a subwoofer's direct sound and first reflections alone).
+MIN_RISE_S = 0.01
 
 
 def _energy(x: np.ndarray) -> float:
@@ -117,21 +147,34 @@ def impulse_response_problems(ir: np.ndarray, fs: int) -> list[str]:
             f"the energy does not decay after the arrival (last fifth only {drop:.1f} dB "
             f"below the first; {MIN_DECAY_DB:g} dB needed): a steady signal?"
         )
-    # 3b. and does not build up before the peak (the peak itself left out); energies are
-    # counted above the noise, so a clean impulse over plain noise (a loopback) passes
+    # 3b. and does not build up before the peak more than it decays after it (the peak
+    # itself left out): the build-up from the direct sound's onset against everything
+    # after the peak; energies are counted above the noise, so a clean impulse over plain
+    # noise (a loopback) passes, and a subwoofer whose modes peak well after its direct
+    # sound passes too (module docstring)
     w = max(2, int(BUILDUP_WINDOW_S * fs))
     g = max(1, int(PEAK_GUARD_S * fs))
-    seg_before = h[max(0, peak - w) : max(0, peak - g)]
-    seg_after = h[peak + g : peak + w]
+    start = max(0, min(onset - g, peak - w))
+    seg_before = h[start : max(start, peak - g)]
+    seg_after = h[peak + g :]
     noise_before = seg_before.size * noise_rms**2
     before = _energy(seg_before) - noise_before
     after = max(_energy(seg_after) - seg_after.size * noise_rms**2, 0.0)
     if before > BUILDUP_RATIO * after and before > BUILDUP_OVER_NOISE * noise_before:
         problems.append(
             f"the energy builds up towards the main peak "
-            f"({_db_ratio(_energy(seg_before), _energy(seg_after)):+.1f} dB in the "
-            f"{BUILDUP_WINDOW_S * 1000:.0f} ms before it against the same time after): "
-            "a time-reversed response?"
+            f"({_db_ratio(before, after):+.1f} dB in the "
+            f"{seg_before.size / fs * 1000:.0f} ms from the arrival to the peak against "
+            "all that follows it): a time-reversed response?"
+        )
+    # 4. a quick rise and a slow fall, both within 20 dB of the peak
+    rise_s = (peak - onset) / fs
+    fall_s = (n - 1 - find_onset(h[::-1], fs) - peak) / fs
+    if rise_s >= MIN_RISE_S and rise_s > RISE_OVER_FALL * fall_s:
+        problems.append(
+            f"the response rises for {rise_s * 1000:.0f} ms to its main peak and falls "
+            f"from it within {fall_s * 1000:.0f} ms (to 20 dB below it): a time-reversed "
+            "response?"
         )
     return problems
 

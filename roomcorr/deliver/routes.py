@@ -16,7 +16,9 @@
     when the playback device must apply them as trims (``--no-align``).
 
 Without a subwoofer every input feeds its own output. With one, each main
-input also feeds the subwoofer output with gain ``1 / n_mains``.
+input also feeds the subwoofer output with gain ``1 / n_mains``; with several,
+each main input feeds every subwoofer output with that gain (each subwoofer's
+own level, delay and polarity are inside its filter).
 """
 
 from __future__ import annotations
@@ -32,12 +34,12 @@ def build_routes(
     """The ``routes`` list of the manifest (see the module docstring)."""
     roles = plan.roles if plan is not None else ["main"] * len(names)
     mains = [c for c, r in enumerate(roles) if r != SUB]
-    sub = plan.sub_index if plan is not None else None
+    subs = plan.sub_indices if plan is not None else []
     route_gain = round(plan.sub_route_gain_db, 3) if plan is not None else 0.0
     routes: list[dict[str, Any]] = []
     for fs in rates:
         for i, c in enumerate(mains):
-            pairs = [(c, 0.0)] + ([(sub, route_gain)] if sub is not None else [])
+            pairs = [(c, 0.0)] + [(sub, route_gain) for sub in subs]
             for out, gain in pairs:
                 routes.append(
                     {
@@ -98,7 +100,10 @@ def route_diagram(names: list[str], plan: SystemPlan | None) -> str:
             join = "┐" if k == 0 else "┤"
             lines.append(f"{'':<{w}}   └─ {gain} ─{join}")
     if sub is not None:
-        gain = f"{plan.sub_route_gain_db:+.2f} dB" if plan is not None else ""
-        path = f"fir/RATE/{names[sub]}.wav"
-        lines.append(f"{'':<{w + 8 + len(gain)}}└─ sum ─► {path} ────►  {sub} {names[sub]}")
+        assert plan is not None
+        gain = f"{plan.sub_route_gain_db:+.2f} dB"
+        for k, s in enumerate(plan.sub_indices):
+            path = f"fir/RATE/{names[s]}.wav"
+            lead = "└─ sum ─►" if k == 0 else "   sum ─►"
+            lines.append(f"{'':<{w + 8 + len(gain)}}{lead} {path} ────►  {s} {names[s]}")
     return "\n".join(lines) + "\n"

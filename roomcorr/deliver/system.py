@@ -82,7 +82,86 @@ def system_summary(result: DesignResult) -> dict[str, Any]:
             "candidates_searched": integ.n_candidates,
             "shared_cut_deepest_db": round(_deepest_cut_db(integ), 2),
         }
+    arr = plan.subwoofers
+    if arr is not None:
+        doc["subwoofers"] = subwoofer_fields(arr)
     return doc
+
+
+def subwoofer_fields(arr: Any) -> dict[str, Any]:
+    """Manifest figures of several subwoofers (``system.subwoofers``): per subwoofer its
+    delay, level, polarity and filter inside the array, the seat-to-seat spread (dB,
+    1/6 octave, averaged over the band) at the measured positions fed equally with no
+    delay, alone and as chosen, and the leave-one-position-out prediction."""
+
+    def r2(x: Any) -> float | None:
+        return None if x is None else round(float(x), 2)
+
+    return {
+        "band_hz": [round(arr.band_hz[0], 1), round(arr.band_hz[1], 1)],
+        "spread_equal_db": r2(arr.spread_equal_db),
+        "spread_after_db": r2(arr.spread_after_db),
+        "predicted_spread_equal_db": r2(arr.loo_equal_db),
+        "predicted_spread_after_db": r2(arr.loo_after_db),
+        "candidates_searched": int(arr.n_evaluations),
+        "each": [
+            {
+                "name": name,
+                "output": int(arr.channels[k]),
+                "delay_ms": round(float(arr.delay_s[k]) * 1000.0, 3),
+                "level_db": round(float(arr.gain_db[k]), 2),
+                "polarity": int(arr.polarity[k]),
+                "filter": arr.filter[k],
+                "spread_alone_db": r2(arr.spread_single_db[k]),
+                "turned_down": bool(arr.turned_down[k]),
+            }
+            for k, name in enumerate(arr.names)
+        ],
+    }
+
+
+def subwoofer_sentences(sw: dict[str, Any], route_gain_db: float) -> list[str]:
+    """Plain-language lines on several subwoofers (the manifest's ``system.subwoofers``)."""
+    lo, hi = sw["band_hz"]
+    lines = [
+        f"Subwoofers chosen together for even bass over the listening area ({lo:.0f} to "
+        f"{hi:.0f} Hz, 1/6 octave, both mains and the subwoofers playing): the measured "
+        "positions differ by "
+        f"{sw['spread_after_db']:.1f} dB (standard deviation, averaged over frequency) "
+        f"against {sw['spread_equal_db']:.1f} dB with all subwoofers fed equally, no delay."
+    ]
+    if sw.get("predicted_spread_after_db") is not None:
+        lines.append(
+            "At seats you did not measure, expect the bass to vary by about "
+            f"{sw['predicted_spread_after_db']:.1f} dB instead of "
+            f"{sw['predicted_spread_equal_db']:.1f} dB (leave-one-position-out: each "
+            "position predicted from a choice made without it)."
+        )
+    for e in sw["each"]:
+        pol = "normal" if e["polarity"] > 0 else "inverted"
+        lines.append(
+            f"  {e['name']:>10}: delay {e['delay_ms']:6.2f} ms, level {e['level_db']:+.1f} dB, "
+            f"polarity {pol}, own filter {e['filter']}; alone it would leave "
+            f"{e['spread_alone_db']:.1f} dB"
+        )
+        if e["turned_down"]:
+            how = (
+                "switched off"
+                if e["level_db"] <= -59
+                else f"turned down by {-e['level_db']:.0f} dB"
+            )
+            lines.append(
+                f"  {e['name']} makes the seats differ more where it stands: {how} "
+                "(try another place for it)."
+            )
+    lines.append(
+        "Bass management: each main input feeds every subwoofer output at "
+        f"{route_gain_db:+.2f} dB (1 / number of mains), so the same bass on every main "
+        "(mono bass) reaches the subwoofers at the level of one main alone and cannot "
+        "overload them; bass that differs between the mains adds up to at most that level "
+        "too. No subwoofer is ever raised: levels are cuts from the loudest one."
+    )
+    return lines
 
 
 def _deepest_cut_db(integ: Any) -> float:
@@ -194,6 +273,11 @@ def system_sentences(fields: dict[str, Any]) -> list[str]:
                 f"cut by up to {depth:.1f} dB, the same in every output (so the sum keeps the "
                 "phase relation chosen above; only a cut, never a boost)."
             )
+        if system.get("subwoofers"):
+            lines.extend(
+                subwoofer_sentences(system["subwoofers"], system.get("sub_route_gain_db", 0))
+            )
+            return lines
         lines.append(
             "Each main input also feeds the subwoofer output at "
             f"{fmt_db(system.get('sub_route_gain_db', 0), 2, True)} (routes in manifest.json). "

@@ -64,6 +64,7 @@ from roomcorr.design.crossover import (
     smoothed_db,
 )
 from roomcorr.design.fir import synthesize_fir
+from roomcorr.design.subwoofers import SubArrayPlan
 from roomcorr.design.target import AUTO_LIMITS_HZ, ROLLOFF_DB
 from roomcorr.errors import SettingsError
 
@@ -101,6 +102,10 @@ class SystemPlan:
     integration : Integration or None
     summed_measured_db : ndarray or None, shape (n_mains, n_positions, n_freqs)
         Mains plus subwoofer as measured (no filters), on the search grid.
+    subwoofers : SubArrayPlan or None
+        With several subwoofers: each one's delay, level and polarity inside
+        the array (``roomcorr.design.subwoofers``); ``delay_s``, ``trim_db`` and
+        ``polarity`` above then give each subwoofer output's totals.
     """
 
     names: list[str]
@@ -119,11 +124,17 @@ class SystemPlan:
     sub_route_gain_db: float = 0.0
     integration: Integration | None = None
     summed_measured_db: np.ndarray | None = field(default=None, repr=False)
+    subwoofers: SubArrayPlan | None = None
 
     @property
     def sub_index(self) -> int | None:
-        """Index of the subwoofer channel, or ``None``."""
+        """Index of the (first) subwoofer channel, or ``None``."""
         return self.roles.index(SUB) if SUB in self.roles else None
+
+    @property
+    def sub_indices(self) -> list[int]:
+        """Indices of every subwoofer channel (empty without one)."""
+        return [c for c, r in enumerate(self.roles) if r == SUB]
 
 
 def mean_arrival_s(arrival_s: np.ndarray, weights: np.ndarray | None = None) -> np.ndarray:

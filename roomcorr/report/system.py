@@ -15,7 +15,7 @@ from typing import Any
 import numpy as np
 
 from roomcorr.deliver.figures import fmt_db
-from roomcorr.deliver.system import system_sentences
+from roomcorr.deliver.system import subwoofer_sentences, system_sentences
 from roomcorr.report.figures import AFTER, INK, MEAN, SEAT, new_figure
 
 SECTION_ID = "system"
@@ -127,6 +127,10 @@ def system_sections(curves: dict[str, Any], png: Any) -> list[Any]:
     sec = Section(SECTION_ID, SECTION_TITLE)
     # the per-output lines of the summary are the table here
     sec.paragraphs.extend(line for line in system_sentences(fields) if not line.startswith("  "))
+    sw = (fields.get("system") or {}).get("subwoofers")
+    if sw:  # several subwoofers: each one's own delay, level, polarity and figures
+        sub_lines = subwoofer_sentences(sw, fields["system"].get("sub_route_gain_db", 0))
+        sec.paragraphs.extend(line.strip() for line in sub_lines if line.startswith("  "))
     sec.table = trims_table(fields)
     sys_curves = curves.get("system") or {}
     if "summed_after_db" in sys_curves:

@@ -300,6 +300,23 @@ function drawDesign(view, chIndex, rate) {
   }
 }
 
+// several subwoofers: each one's delay, level, polarity and the seat-to-seat figures, read
+// from the manifest (system.subwoofers), as the summary and report state them
+function subwoofersText(manifest) {
+  const sw = manifest && manifest.system && manifest.system.subwoofers;
+  if (!sw) return "";
+  const each = sw.each.map(e => `${e.name}: delay ${e.delay_ms.toFixed(2)} ms, level ${e.level_db.toFixed(1)} dB, ` +
+    `polarity ${e.polarity > 0 ? "normal" : "inverted"}, own filter ${e.filter}` +
+    (e.turned_down ? " (makes the seats differ more where it stands: turned down)" : ""));
+  let txt = `Subwoofers: the measured positions differ by ${sw.spread_after_db.toFixed(1)} dB instead of ` +
+    `${sw.spread_equal_db.toFixed(1)} dB fed equally. `;
+  if (sw.predicted_spread_after_db !== null) {
+    txt += `At seats you did not measure, expect the bass to vary by about ${sw.predicted_spread_after_db.toFixed(1)} dB ` +
+      `instead of ${sw.predicted_spread_equal_db.toFixed(1)} dB. `;
+  }
+  return txt + each.join("; ") + ".";
+}
+
 async function openRun(run) {
   showTab("explore");
   clearPlots();
@@ -333,6 +350,7 @@ async function openRun(run) {
       const sel = document.querySelectorAll("#explore-controls select");
       if (sel[1]) sel[1].value = rate;
       drawDesign(view, ch, rate);
+      document.getElementById("explore-text").textContent = subwoofersText(view.manifest);
       await loadFiles(run.run_id, filesData);
     } else {
       const view = await api(`/api/measurement/${encodeURIComponent(run.run_id)}`);

@@ -394,7 +394,10 @@ function drawArea() {
   });
   svg.appendChild(svgNode("rect", { x: 120, y: 150, width: 180, height: 110, rx: 18, class: "seat" }));
   svg.appendChild(svgNode("text", { x: 210, y: 280, class: "label" }, "listening area"));
-  const spots = positionSpots(n, 210, 205, 70);
+  // several subwoofers (speakers named like "front_sub" or "sub2"): their delays and levels
+  // are chosen to make the seats agree, so the positions should cover the whole area
+  const nSubs = names.filter(nm => /(^sub|sub$|sub\d*$|^sub\d)/i.test(nm) || /_sub/i.test(nm)).length;
+  const spots = positionSpots(n, 210, 205, nSubs > 1 ? 88 : 70);
   const pending = [];
   for (let p = 1; p <= n; p++) if (!measure.done[p]) pending.push(p);
   const next = measure.current !== null ? measure.current : pending[0];
@@ -408,9 +411,14 @@ function drawArea() {
     svg.appendChild(svgNode("text", { x: s.x, y: s.y + 4, class: "num" }, String(p)));
   });
   const saved = Object.values(measure.done).filter(v => v === "saved").length;
-  el("m-area-text").textContent = next
+  let txt = next
     ? `${saved} of ${n} positions measured; next: position ${next} (the ringed circle)`
     : `${saved} of ${n} positions measured`;
+  if (nSubs > 1) {
+    txt += `. ${nSubs} subwoofers: spread the positions over the whole listening area (both ends ` +
+      "of the sofa, its middle, a second row if people sit there)" + (n < 5 ? "; measure at least 5" : "");
+  }
+  el("m-area-text").textContent = txt;
 }
 
 // ---------------------------------------------------------------- start-up

@@ -1,0 +1,230 @@
+"""Several subwoofers chosen together (roomcorr.design.subwoofers and the pipeline's use of it)."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from pra_rooms import MULTI_SUB_ROOMS, mains_m, simulate_pra, sofa_positions
+from scipy.signal import freqz
+
+from roomcorr.deliver.routes import build_routes
+from roomcorr.deliver.system import manifest_fields, system_sentences
+from roomcorr.design.crossover import linkwitz_riley_response
+from roomcorr.design.subwoofers import (
+    OFF_DB,
+    array_response,
+    plan_subwoofers,
+    seat_levels_db,
+    seat_spread_db,
+    spread_grid_hz,
+)
+from roomcorr.errors import SettingsError
+from roomcorr.pipeline import run_design
+from roomcorr.settings import Settings, design_from_dict
+
+FS = 48000
+C_M_S = 343.2  # ISO 9613-1 at 20 °C
+
+
+def duct_response(x_src_m, x_mic_m, freq_hz, length_m=6.0, q=20.0, n_modes=60):
+    """Closed rigid duct: modal expansion with mode shapes cos(n pi x / L) (analytic).
+
+    p(x, w) = sum_n psi_n(x_s) psi_n(x) / (Lambda_n (k_n^2 - k^2 + j k k_n / Q)),
+    Lambda_n = L (n = 0) or L / 2 (n > 0); k = w / c. Returns shape (n_mics, n_freqs).
+    """
+    k = 2 * np.pi * np.asarray(freq_hz) / C_M_S
+    x_mic = np.asarray(x_mic_m, dtype=float)
+    out = np.zeros((x_mic.size, k.size), dtype=complex)
+    for n in range(n_modes):
+        kn = n * np.pi / length_m
+        norm = length_m if n == 0 else length_m / 2
+        shape = np.cos(kn * x_src_m) * np.cos(kn * x_mic)[:, None]
+        out += shape / (norm * (kn**2 - k**2 + 1j * k * max(kn, k[0]) / q))
+    return out
+
+
+def test_two_equal_sources_at_the_ends_of_a_duct_excite_no_odd_mode():
+    # Closed duct, mode shapes cos(n pi x / L): psi_n(0) + psi_n(L) = 1 + (-1)^n, zero for
+    # every odd n (analytic standing-wave solution). The pair summed by array_response
+    # (equal level, no delay, same polarity) must leave the field symmetric about L/2,
+    # and its projection on every odd mode shape must vanish.
+    length = 6.0
+    x = np.linspace(0, length, 241)
+    f = spread_grid_hz(200.0)
+    resp = np.stack([duct_response(0.0, x, f, length), duct_response(length, x, f, length)], 1)
+    both = array_response(resp, f, [0.0, 0.0], [0.0, 0.0], [1, 1])
+    np.testing.assert_allclose(both, both[::-1], rtol=1e-9, atol=1e-12)
+    one = resp[:, 0]
+    for n in (1, 3, 5):
+        psi = np.cos(n * np.pi * x / length)
+        # at the odd mode's own frequency: absent from the pair, dominant for one source
+        fn = n * C_M_S / (2 * length)
+        rn = np.stack(
+            [
+                duct_response(0.0, x, [fn], length)[:, 0],
+                duct_response(length, x, [fn], length)[:, 0],
+            ],
+            1,
+        )[:, :, None]
+        pair = array_response(rn, np.array([fn]), [0.0, 0.0], [0.0, 0.0], [1, 1])[:, 0]
+        proj_pair = abs(np.trapezoid(pair * psi, x))
+        proj_one = abs(np.trapezoid(rn[:, 0, 0] * psi, x))
+        assert proj_pair < 1e-9 * proj_one, n
+    # below the second mode (c / L = 57 Hz) the pair leaves only the uniform mode 0 (and the
+    # tails of the even modes): the middle half of the duct hears it far more evenly than
+    # it hears one source, whose first mode tilts it from end to end
+    low = f < 50.0
+    mid = (x > length / 4) & (x < 3 * length / 4)
+    pair_spread = seat_spread_db(seat_levels_db(both[mid][:, low]))
+    one_spread = seat_spread_db(seat_levels_db(one[mid][:, low]))
+    assert pair_spread < 0.3 * one_spread, (pair_spread, one_spread)
+
+
+def test_search_finds_a_known_optimum():
+    # Synthetic case with an exact optimum: subwoofer A hears (1 + m_p), B hears
+    # -2 (1 - m_p) e^{+jw 3 ms} relative to A's timing (seat-dependent parts m_p). A at
+    # 0 ms, 0 dB, normal and B 3 ms later, -6.02 dB, inverted sum to 2 e^{-jw 3 ms}
+    # at every seat: no spread at all. Any other choice leaves some (algebra above).
+    rng = np.random.default_rng(5)
+    f = spread_grid_hz(180.0)
+    n_pos = 6
+    smooth = np.exp(-((np.log2(f)[None, :] - rng.uniform(4.5, 7.3, (n_pos, 1))) ** 2) / 0.3)
+    m = 0.45 * smooth * np.exp(1j * rng.uniform(0, 2 * np.pi, (n_pos, 1)))
+    t1 = 0.003
+    a = np.exp(-2j * np.pi * f * t1) * (1 + m)
+    b = -2 * np.exp(-2j * np.pi * f * t1) * (1 - m) * np.exp(2j * np.pi * f * t1)
+    resp = np.stack([a, b], 1)
+    plan = plan_subwoofers(resp, f, ["a", "b"], [0, 1], predict=False)
+    assert plan.spread_after_db < 0.05
+    assert plan.spread_equal_db > 1.0
+    assert plan.delay_s[1] - plan.delay_s[0] == pytest.approx(t1, abs=1e-9)
+    assert plan.gain_db[1] - plan.gain_db[0] == pytest.approx(-6.0)
+    assert plan.polarity[0] * plan.polarity[1] == -1
+
+
+@settings(max_examples=8, deadline=None)
+@given(
+    n_sub=st.integers(2, 3),
+    seed=st.integers(0, 10_000),
+    spread=st.floats(0.0, 20.0),
+)
+def test_no_subwoofer_is_raised(n_sub, seed, spread):
+    # safety (issue 20): every level a cut, the loudest at exactly 0 dB, for any input
+    rng = np.random.default_rng(seed)
+    f = spread_grid_hz(60.0)
+    level = 10 ** (rng.uniform(-spread, spread, (4, n_sub, 1)) / 20)
+    resp = level * np.exp(1j * rng.uniform(0, 2 * np.pi, (4, n_sub, f.size)))
+    plan = plan_subwoofers(
+        resp, f, [f"s{i}" for i in range(n_sub)], list(range(n_sub)), predict=False
+    )
+    assert np.all(plan.gain_db <= 0.0) and plan.gain_db.max() == 0.0
+    assert np.all(plan.gain_db >= OFF_DB)
+    assert np.all(plan.delay_s >= 0.0)
+    # never worse than equal feed nor than the best single subwoofer, at the measured seats
+    assert plan.spread_after_db <= plan.spread_equal_db + 1e-9
+    # (a subwoofer 'off' is at OFF_DB = -60 dB, 0.1 % of its amplitude: within 0.02 dB)
+    assert plan.spread_after_db <= plan.spread_single_db.min() + 0.02
+
+
+@pytest.fixture(scope="module")
+def two_sub_design():
+    dims, t60, subs, lat = MULTI_SUB_ROOMS["two-front-back"]
+    irs = simulate_pra(
+        dims,
+        mains_m(dims) + subs,
+        ["main"] * 2 + ["sub"] * 2,
+        sofa_positions(dims),
+        t60,
+        [0, 0, *lat],
+        length_s=0.6,
+    )
+    d = design_from_dict(
+        {
+            "channel_names": "left,right,front_sub,back_sub",
+            "subwoofer": "front_sub,back_sub",
+            "sample_rates": [FS, 96000],
+        }
+    )
+    return irs, run_design(irs, FS, Settings(design=d))
+
+
+def test_each_subwoofer_gets_the_array_filter_with_its_own_delay_level_and_polarity(
+    two_sub_design,
+):
+    _, r = two_sub_design
+    arr = r.system.subwoofers
+    assert arr is not None and arr.names == ["front_sub", "back_sub"]
+    assert r.system.roles == ["main", "main", "sub", "sub"]
+    for rate, h in r.firs.items():
+        assert h.shape[0] == 4
+        rows = []
+        shifts = [int(round(t * rate)) for t in arr.delay_s]
+        m = h.shape[1] - max(shifts)
+        for k, c in enumerate((2, 3)):
+            g = 10 ** (arr.gain_db[k] / 20) * arr.polarity[k]
+            rows.append(h[c, shifts[k] : shifts[k] + m] / g)
+        np.testing.assert_allclose(rows[0], rows[1], atol=1e-9)
+    # the safety ceiling holds for every output as delivered (peak gain <= 0 dB)
+    assert all(s.peak_gain_db <= r.settings.design.ceiling_db + 1e-6 for s in r.stats)
+
+
+def test_each_subwoofer_output_carries_the_crossover_low_pass(two_sub_design):
+    # Linkwitz, JAES 24(1), 1976: the 4th-order low-pass falls 24 dB/octave beyond fc, so
+    # two octaves above the crossover every subwoofer output lies well below its level at
+    # fc / 2 (the correction in front of it moves that by a few dB at most)
+    _, r = two_sub_design
+    fc = r.system.integration.crossover_hz
+    lp, hp = linkwitz_riley_response(np.array([fc / 2, 4 * fc]), fc, FS, 24)
+    assert 20 * np.log10(abs(lp[1] / lp[0])) < -45
+    for c in (2, 3):
+        h = freqz(r.firs[FS][c], worN=[fc / 2, 4 * fc], fs=FS)[1]
+        assert 20 * np.log10(abs(h[1]) / abs(h[0])) < -30
+
+
+def test_routes_manifest_and_summary_name_every_subwoofer(two_sub_design):
+    _, r = two_sub_design
+    fields = manifest_fields(r)
+    routes = [x for x in fields["routes"] if x["sample_rate"] == FS]
+    # two mains, each to its own output and to both subwoofers at -6.02 dB (1 / 2 mains)
+    assert len(routes) == 6
+    assert {x["output_name"] for x in routes if x["gain_db"] != 0} == {"front_sub", "back_sub"}
+    assert all(x["gain_db"] == pytest.approx(-6.021, abs=1e-3) for x in routes if x["gain_db"])
+    sw = fields["system"]["subwoofers"]
+    assert [e["name"] for e in sw["each"]] == ["front_sub", "back_sub"]
+    assert sw["predicted_spread_after_db"] is not None
+    text = "\n".join(system_sentences(fields))
+    assert "At seats you did not measure, expect the bass to vary by about" in text
+    assert "Bass management" in text
+    assert build_routes(["left", "right", "front_sub", "back_sub"], [FS], r.system) == routes
+
+
+def test_unknown_subwoofer_names_are_refused():
+    with pytest.raises(SettingsError, match="rear"):
+        design_from_dict({"channel_names": "left,right,front_sub", "subwoofer": "front_sub,rear"})
+    with pytest.raises(SettingsError, match="once"):
+        design_from_dict({"channel_names": "left,right,a", "subwoofer": "a,a"})
+
+
+def test_positions_advice_asks_for_a_wide_spread_with_several_subwoofers():
+    from roomcorr.measure.guidance import positions_advice
+
+    assert positions_advice(1, 3) is None
+    text = positions_advice(2, 3)
+    assert "whole listening area" in text and "at least 5" in text
+    assert "at least" not in positions_advice(3, 6)
+
+
+def test_mains_and_subwoofers_judged_together_sum_like_a_linkwitz_riley_pair():
+    # Linkwitz, JAES 24(1), 1976: LR4 low-pass + high-pass is an all-pass. A subwoofer that
+    # hears exactly what both mains together hear is matched to them at 0 dB, and the sum the
+    # search judges has the mains' magnitude at every frequency and seat.
+    from roomcorr.design.subwoofers import with_mains
+
+    rng = np.random.default_rng(2)
+    f = spread_grid_hz(174.0)
+    mains = rng.standard_normal((4, 2, f.size)) + 1j * rng.standard_normal((4, 2, f.size))
+    sub = mains.sum(axis=1, keepdims=True)
+    heard, base = with_mains(sub, mains, f, 87.0, FS)
+    np.testing.assert_allclose(np.abs(heard[:, 0] + base), np.abs(sub[:, 0]), rtol=1e-9)
