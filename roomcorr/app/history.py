@@ -271,7 +271,10 @@ def run_labels(room: Room) -> dict[str, dict[str, str]]:
     path = room.root / LABELS_FILE
     if not path.is_file():
         return {}
-    data = read_json(path, LABELS_FILE)  # bounded size and depth; damaged is one line
+    try:
+        data = read_json(path, LABELS_FILE)  # bounded size and depth
+    except InputFileError as exc:
+        raise InputFileError(f"{exc}: damaged; fix or remove it") from None
     runs = data.get("runs") if isinstance(data, dict) else None
     if not isinstance(runs, dict):
         raise InputFileError(f"{path}: damaged (expected {{'runs': {{...}}}}); fix or remove it")
