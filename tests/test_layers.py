@@ -26,6 +26,8 @@ STAGES: list[tuple[str, tuple[str, ...]]] = [
             "roomcorr.settings",
             "roomcorr.audio_io",
             "roomcorr.deliver.atomic",
+            # the room and loudspeaker model: pure numpy, used by demo, evaluation, placement
+            "roomcorr.physics",
         ),
     ),
     ("measure", ("roomcorr.measure", "roomcorr.rooms", "roomcorr.demo")),
