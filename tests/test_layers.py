@@ -34,7 +34,7 @@ STAGES: list[tuple[str, tuple[str, ...]]] = [
     ("analysis", ("roomcorr.analysis",)),
     ("design", ("roomcorr.design", "roomcorr.pipeline")),
     ("deliver/report", ("roomcorr.deliver", "roomcorr.report")),
-    ("app", ("roomcorr.app", "roomcorr.evaluation")),
+    ("app", ("roomcorr.app", "roomcorr.evaluation", "roomcorr.placement")),
     ("cli/ui", ("roomcorr.cli", "roomcorr.ui", "roomcorr.__main__")),
 ]
 

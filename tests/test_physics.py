@@ -134,3 +134,22 @@ def test_highpass_matches_scipy_butterworth():
     _, theirs = signal.freqs(b, a, 2 * np.pi * freq)
     q = 1 / (2 * np.cos(np.pi / 8)), 1 / (2 * np.cos(3 * np.pi / 8))
     np.testing.assert_allclose(highpass_response(freq, 50.0, q), theirs, rtol=1e-9)
+
+
+def test_fit_model_sum_equals_physics_modal_response():
+    # The fit's cached modal sum must be the public modal_response (Kuttruff ch. 3) exactly.
+    from roomcorr.placement import model as m
+
+    geom = m.Geometry(np.array([4.1, 5.3, 2.5]), np.array([[1.0, 0.6, 0.9]]),
+                      np.array([[2.0, 3.1, 1.1], [2.3, 3.0, 1.2]]))
+    damping = np.array([2.0, 3.0, 4.0])
+    grid = m.fit_grid()
+    ours = m._room_db(geom, geom.speakers_m, damping, 343.0, grid, cache={})
+    lin = m._lin_freqs()
+    labels, mode_hz = m._modes((4.1, 5.3, 2.5), 343.0)
+    h = modal_response(lin, geom.speakers_m[0], geom.mics_m, geom.size_m, labels, mode_hz,
+                       m.mode_damping(labels, damping), 343.0)
+    from roomcorr.analysis.smoothing import smooth_bins_to_grid
+
+    ref = 10 * np.log10(smooth_bins_to_grid(np.abs(h) ** 2, lin, grid, m.FIT_SMOOTH_OCT))
+    np.testing.assert_allclose(ours[0], ref, atol=1e-9)
