@@ -285,6 +285,7 @@ def _print_design_summary(result: Any, out: Path, entries: list[dict]) -> None:
                 f"fit error {e['fit_rms_error_db']:.1f} dB RMS ({e['fit_max_error_db']:.1f} dB "
                 f"max), pre-gain {e['pre_gain_db']:+.2f} dB, peak gain {e['peak_gain_db']:+.2f} dB"
             )
+    _print_causes(out)
     _print_system_summary(result)
     if result.mixed_phase is not None:
         from roomcorr.design.mixedphase import latency_sentence
@@ -297,6 +298,17 @@ def _print_design_summary(result: Any, out: Path, entries: list[dict]) -> None:
             "lower the player's volume to avoid clipping.",
             file=sys.stderr,
         )
+
+
+def _print_causes(out: Path) -> None:
+    """The causes of peaks and withheld dips, as stored in the manifest."""
+    from roomcorr.app.placement import format_causes
+    from roomcorr.deliver.export import read_manifest
+
+    lines = format_causes(read_manifest(out).get("causes") or [])
+    if lines:
+        print("Causes (peaks and dips in the correction band):")
+        print("\n".join(lines))
 
 
 def _print_system_summary(result: Any) -> None:
@@ -331,6 +343,10 @@ def _add_design(sub: Any) -> argparse.ArgumentParser:
     )
     p.add_argument("--room", metavar="ROOM_DIR", help="room folder (default: the one you are in)")
     p.add_argument(
+        "--layout", metavar="FILE.toml",
+        help="room layout, to name the cause of each peak and dip (default: the room's)",
+    )
+    p.add_argument(
         "--force",
         action="store_true",
         help="design even from files that do not look like impulse responses (no clear "
@@ -353,6 +369,7 @@ def _run_design(args: argparse.Namespace) -> int:
         force=args.force,
         on_start=_print_cautions,
         on_source=lambda meas: print(f"Using the latest measurement: {meas}"),
+        layout_file=args.layout,
     )
     _print_design_summary(result, out, entries)
     return 0

@@ -214,3 +214,31 @@ def test_predict_refuses_too_few_positions(pra_room, tmp_path, capsys):
                  "--out", str(tmp_path / "x.wav")])
     assert code == 2
     assert "one position per file" in capsys.readouterr().err
+
+
+def test_design_stores_causes_in_the_manifest(pra_room, tmp_path, capsys):
+    # The loudspeakers stand 0.68-0.72 m from the front wall: c / (4d) = 119-126 Hz (common
+    # practice). Every withheld dip and peak gets a cause; a boundary one names its surface.
+    import json
+
+    folder, _, _ = pra_room
+    out = tmp_path / "design"
+    code = main(["design", *sorted(str(p) for p in folder.glob("pos*.wav")), "--layout",
+                 str(folder / "layout.toml"), "--out", str(out)])
+    assert code == 0
+    manifest = json.loads((out / "manifest.json").read_text())
+    entries = manifest["causes"]
+    assert [e["channel"] for e in entries] == ["left", "right"]
+    found = [c for e in entries for c in e["causes"]]
+    assert found and all(c["cause"] in {"boundary", "mode", "positions", "unknown"}
+                         for c in found)
+    for c in found:
+        if c["cause"] == "boundary":
+            assert c["surface"] in causes.SURFACES
+            assert c["distance_m"] <= causes.NEAR_SURFACE_M
+    assert "Causes (peaks and dips" in capsys.readouterr().out
+    # the report reads them from the manifest
+    assert main(["report", str(out)]) == 0
+    html = next(out.rglob("*.html")).read_text()
+    assert "Why the peaks and dips are there" in html
+    assert found[0]["text"].split(":")[0] in html

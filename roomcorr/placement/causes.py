@@ -46,6 +46,16 @@ BOUNDARY_TOL = 0.12
 MODE_TOL_OCT = 1.0 / 12.0
 #: A reflection confirms a boundary notch if found within this of the expected delay, s.
 DELAY_TOL_S = 0.0004
+#: Only surfaces this close to the loudspeaker make a boundary notch of their own (farther
+#: ones are part of the room's modes), m (common practice).
+NEAR_SURFACE_M = 1.5
+#: Highest odd multiple of c/(4d) looked at.
+MAX_ODD_MULTIPLE = 3
+#: Modes named as a cause: at most this many half-waves in all (low-order modes stand alone;
+#: above them the modes overlap).
+MAX_MODE_ORDER = 4
+#: At most this many peaks and this many dips per channel (the largest).
+MAX_PER_KIND = 4
 #: Spread between positions (dB) above which a dip counts as a local cancellation.
 SPREAD_DB = 6.0
 #: Highest frequency of a cause, Hz (the modal range).
@@ -73,16 +83,17 @@ def features(
     idx = np.flatnonzero(band)
     level = np.asarray(average_db, float)[idx]
     rel = level - np.median(level)
-    out = []
+    peaks, dips = [], []
     for p in find_peaks(rel, prominence=PEAK_MIN_DB / 2)[0]:
         if rel[p] >= PEAK_MIN_DB:
-            out.append({"kind": "peak", "freq_hz": float(f[idx[p]]), "size_db": float(rel[p])})
+            peaks.append({"kind": "peak", "freq_hz": float(f[idx[p]]), "size_db": float(rel[p])})
     w = np.asarray(withheld_db, float)[idx]
     for p in find_peaks(np.concatenate([[0.0], w, [0.0]]), prominence=1.0)[0]:
         if w[p - 1] >= DIP_MIN_DB:
-            out.append({"kind": "dip", "freq_hz": float(f[idx[p - 1]]),
-                        "size_db": float(w[p - 1])})
-    return sorted(out, key=lambda x: x["freq_hz"])
+            dips.append({"kind": "dip", "freq_hz": float(f[idx[p - 1]]),
+                         "size_db": float(w[p - 1])})
+    keep = [sorted(x, key=lambda x: -x["size_db"])[:MAX_PER_KIND] for x in (peaks, dips)]
+    return sorted(keep[0] + keep[1], key=lambda x: x["freq_hz"])
 
 
 def reflection_delays_s(ir: np.ndarray, fs: int, max_delay_s: float = 0.015) -> list[float]:
@@ -155,8 +166,10 @@ def explain(
         for r in first_order_reflections(np.asarray(speaker_m), np.asarray(seat_m),
                                          np.asarray(size_m), c):
             d = r["distance_m"]
+            if d > NEAR_SURFACE_M:
+                continue
             delta_path = c * r["delay_after_direct_s"]  # image path minus direct path
-            for k in range(3):
+            for k in range((MAX_ODD_MULTIPLE + 1) // 2):
                 f_seat = (2 * k + 1) * c / (2.0 * delta_path) if delta_path > 0 else np.inf
                 err = abs(f0 / f_seat - 1.0)
                 if err <= BOUNDARY_TOL and (best is None or err < best[0]):
@@ -194,7 +207,8 @@ def explain(
     if have_layout and f0 <= TOP_HZ:
         dims = np.asarray(size_m, float)
         labels, mode_hz = mode_grid(dims, c, f0 * 2 ** MODE_TOL_OCT)
-        near = np.abs(np.log2(mode_hz / f0)) <= MODE_TOL_OCT
+        near = (np.abs(np.log2(mode_hz / f0)) <= MODE_TOL_OCT) & (
+            labels.sum(axis=1) <= MAX_MODE_ORDER)
         if near.any():
             lab, fm = labels[near], mode_hz[near]
             src = _mode_shape(lab, dims, np.asarray(speaker_m, float))
@@ -244,7 +258,9 @@ def explain(
     if feature["kind"] == "dip" and not have_layout and refl:
         # Without a layout: a strong early reflection of delay t puts a notch at 1/(2t).
         for t in refl:
-            for k in range(3):
+            if c * t / 2.0 > NEAR_SURFACE_M:
+                continue
+            for k in range((MAX_ODD_MULTIPLE + 1) // 2):
                 f_n = (2 * k + 1) / (2.0 * t)
                 if abs(f0 / f_n - 1.0) <= BOUNDARY_TOL:
                     d = c * t / 2.0

@@ -41,6 +41,7 @@ SECTION_TITLES = {
     "iir": "The biquad version",
     "quality": "How good the measurement was",
     "through": "Measured through the design's filters",
+    "causes": "Why the peaks and dips are there",
     "safety": "Safety and levels",
 }
 
@@ -819,6 +820,7 @@ def build_report(
     dpi: int = 90,
     comparison: dict[str, Any] | None = None,
     through: dict[str, Any] | None = None,
+    causes: list[dict[str, Any]] | None = None,
 ) -> Report:
     """Compute every section and figure of the report.
 
@@ -851,6 +853,9 @@ def build_report(
         ``through.check`` of a ``measurement.json`` made with ``measure
         --through``: the responses measured through a design's filters
         against that design's prediction (see :func:`through_section`).
+    causes : list of dict, optional
+        ``causes`` of the design's manifest (one entry per channel, each with its
+        list of causes, :func:`roomcorr.app.placement.causes_for_design`).
 
     Returns
     -------
@@ -888,6 +893,8 @@ def build_report(
             "Loudest ringing after the sound stops: " + "; ".join(ctx.ringing_notes)
             + " (see the low-frequency decay maps)."
         )
+    if causes and any(e.get("causes") for e in causes):
+        sections.append(causes_section(causes))
     if quality:
         sections.append(_quality_section(quality, png))
     if through and "measured_db" in through:
@@ -896,6 +903,24 @@ def build_report(
     if designed:
         sections.append(_safety_section(chans, curves, ctx))
     return Report(title=title, subtitle=f"measured at {ctx.fs} Hz", sections=sections)
+
+
+def causes_section(causes: list[dict[str, Any]]) -> Section:
+    """The cause of each peak and withheld dip, as stored in the manifest."""
+    sec = Section("causes", SECTION_TITLES["causes"])
+    sec.paragraphs.append(
+        "A physical cause for each significant peak and each dip whose boost was withheld: "
+        "a room mode, a nearby surface's reflection cancelling the direct sound, a "
+        "cancellation that differs between positions, or unknown. Filters can lower peaks; "
+        "dips move only when a loudspeaker or the seat moves (roomcorr advise)."
+    )
+    table = [["Channel", "Frequency", "Kind", "Cause"]]
+    for entry in causes:
+        for item in entry.get("causes", []):
+            table.append([str(entry.get("channel", "")), f"{float(item['freq_hz']):.0f} Hz",
+                          str(item.get("kind", "")), str(item.get("text", ""))])
+    sec.table = table
+    return sec
 
 
 def _through_ranges(ranges: list[list[float]]) -> str:
@@ -1383,7 +1408,8 @@ def write_report(
     iir = _read_iir(d) if is_design else None
     comparison = report_comparison(d, compare_with)
     report = build_report(
-        curves, settings, quality, iir=iir, dpi=dpi, comparison=comparison, through=through
+        curves, settings, quality, iir=iir, dpi=dpi, comparison=comparison, through=through,
+        causes=manifest.get("causes") if is_design else None,
     )
     # A finished room run is sealed by its complete.json (SHA-256 of every file,
     # manifest included): the report is added beside it, never into its manifest.
