@@ -59,7 +59,7 @@ WALLS = ["west", "east", "south", "north", "floor", "ceiling"]
 MEASURED = [[0, 0, 0], [-0.25, 0, 0], [0.25, 0, 0], [0, 0.3, 0.05], [0, -0.2, 0]]
 HELD_OUT = [[0, -0.38, 0], [0, 0.40, 0.02], [-0.28, 0.12, 0], [0.33, -0.2, -0.05],
             [0.1, 0.3, 0.1], [-0.22, -0.25, 0.05]]
-UNMEASURED = [[0.0, 0.65, 0.0], [0.55, 0.0, 0.0], [-0.45, -0.5, 0.0]]
+UNMEASURED = [[0.0, 0.65, 0.0], [0.6, 0.0, 0.0], [-0.45, -0.5, 0.0]]
 
 # Invented rooms: size (width, length, height), absorption per wall (left, right, front,
 # back, floor, ceiling), loudspeakers' distance from the front wall and half spacing,
@@ -99,7 +99,8 @@ def simulate(room: dict, speakers: np.ndarray, mics: np.ndarray) -> np.ndarray:
 
 def speakers_of(room: dict) -> np.ndarray:
     cx = room["size"][0] / 2
-    return np.array([[cx - room["half"], room["front"], 1.0], [cx + room["half"], room["front"], 1.0]])
+    return np.array([[cx - room["half"], room["front"], 1.0],
+                     [cx + room["half"], room["front"], 1.0]])
 
 
 def seat_of(room: dict) -> np.ndarray:
@@ -160,7 +161,8 @@ def main(argv: list[str]) -> int:
         spk_tape[:, :2] += tape[:2]
         mic_tape = mics.copy()
         mic_tape[:, :2] += tape[2:]
-        layout = Layout(tuple(room["size"]), {"left": tuple(spk_tape[0]), "right": tuple(spk_tape[1])},
+        layout = Layout(tuple(room["size"]),
+                        {"left": tuple(spk_tape[0]), "right": tuple(spk_tape[1])},
                         tuple(seat), [tuple(m) for m in mic_tape])
         model = calibrate(meas, FS, room["size"], spk_tape, mic_tape, ["left", "right"])
         # ---- prediction after moves
@@ -169,12 +171,16 @@ def main(argv: list[str]) -> int:
         for kind, dx, dy in room["moves"]:
             new = moved(spk, room, kind, dx, dy)
             truth = sixth(simulate(room, new, [seat])[0])
-            lv = model.levels_db(moved(model.speakers_m, room, kind, dx, dy), seat[None, :], GRID)[:, 0]
+            lv = model.levels_db(moved(model.speakers_m, room, kind, dx, dy), seat[None, :],
+                                 GRID)[:, 0]
             anchored = before + lv - lv_before
             nothing = np.mean([err_db(before[c], truth[c]) for c in range(2)])
             for name, pred in (("model", lv), ("anchored", anchored)):
                 ours = np.mean([err_db(pred[c], truth[c]) for c in range(2)])
                 move_ratios[name].append(ours / nothing)
+            print(f"# {room['name']} move {kind} {dx:+.2f} {dy:+.2f}: nothing {nothing:.2f} dB, "
+                  f"model {move_ratios['model'][-1]:.2f}, anchored {move_ratios['anchored'][-1]:.2f}",
+                  flush=True)
         # ---- unmeasured seats
         for off in UNMEASURED:
             p = seat + np.array(off)
@@ -234,10 +240,11 @@ def main(argv: list[str]) -> int:
             gain = (b1 / b0, r1 / r0, 0.5 * (b1 / b0 + r1 / r0) - 1.0, sug["text"])
         rows.append((room["name"], model.fit_error_db, model.loo_error_db, cause_text, cause_ok,
                      gain, t_adv, t_sim))
+        print(f"# {rows[-1]}", flush=True)
     print("Placement on rooms simulated by pyroomacoustics (image sources, order "
           f"{ORDER}); tape errors up to 3 cm")
     print(f"{'room':6} {'fit dB':>6} {'loo dB':>6} {'advise s':>8} {'sim s':>6}  causes")
-    for name, fit, loo, ctext, cok, gain, t_adv, t_sim in rows:
+    for name, fit, loo, ctext, cok, _gain, t_adv, t_sim in rows:
         mark = {None: "", True: " [right]", False: " [wrong]"}[cok]
         print(f"{name:6} {fit:6.2f} {loo:6.2f} {t_adv:8.1f} {t_sim:6.2f}  {ctext}{mark}")
     print("Suggestions (best one, simulated and corrected; ratios to the current placement "
@@ -251,7 +258,8 @@ def main(argv: list[str]) -> int:
         boom, ripple, change, text = gain
         n_good += change <= -0.10
         never_worse &= boom <= 1.05 and ripple <= 1.05
-        print(f"  {name}: boom {boom:.2f}, ripple {ripple:.2f}, mean {100 * change:+.1f} %  ({text})")
+        print(f"  {name}: boom {boom:.2f}, ripple {ripple:.2f}, mean {100 * change:+.1f} %  "
+              f"({text})")
     for name, vals in move_ratios.items():
         print(f"move prediction ({name}): median ratio to 'nothing changed' "
               f"{np.median(vals):.2f} over {len(vals)} moves (each: "

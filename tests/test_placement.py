@@ -242,3 +242,37 @@ def test_design_stores_causes_in_the_manifest(pra_room, tmp_path, capsys):
     html = next(out.rglob("*.html")).read_text()
     assert "Why the peaks and dips are there" in html
     assert found[0]["text"].split(":")[0] in html
+
+
+def test_advise_keeps_to_the_limits(pra_room, capsys):
+    import json
+
+    folder, _, _ = pra_room
+    files = sorted(str(p) for p in folder.glob("pos*.wav"))
+    code = main(["advise", *files, "--layout", str(folder / "layout.toml"), "--max-move", "0.4",
+                 "--seat-range", "0.3", "--wall-min", "0.3", "--json"])
+    assert code == 0
+    res = json.loads(capsys.readouterr().out)
+    lay = read_layout(folder / "layout.toml")
+    size = np.array(lay.size_m)
+    assert res["cautions"] and res["plan"]["size_m"] == list(lay.size_m)
+    assert len(res["plan"]["map"]["ripple_db"]) == len(res["plan"]["map"]["y_m"])
+    for s in res["suggestions"]:
+        old = np.array(list(lay.loudspeakers.values()))
+        new = np.array(list(s["speakers_m"].values()))
+        d = new - old
+        assert np.all(np.linalg.norm(d, axis=1) <= 0.4 + 1e-6)
+        assert np.allclose(d[0, 1], d[1, 1]) and np.isclose(d[0, 0], -d[1, 0])  # mirrored pair
+        moved_any = np.abs(d).sum(axis=1) > 1e-9
+        gap = np.minimum(new[:, :2], size[:2] - new[:, :2])
+        assert np.all(gap[moved_any] >= 0.3 - 1e-6)
+        seat = np.array(s["seat_m"])
+        assert np.isclose(seat[0], lay.seat[0]) and abs(seat[1] - lay.seat[1]) <= 0.3 + 1e-6
+        # never worse than the current placement on either figure (the search's own rule)
+        assert s["boom_db"] <= 1.03 * res["current"]["boom_db"] + 1e-6
+        assert s["ripple_db"] <= 1.03 * res["current"]["ripple_db"] + 1e-6
+
+
+def test_advise_refuses_bad_limits(capsys):
+    assert main(["advise", "--max-move", "7"]) == 2
+    assert "--max-move 7" in capsys.readouterr().err
