@@ -179,7 +179,8 @@ def main(argv: list[str]) -> int:
                 ours = np.mean([err_db(pred[c], truth[c]) for c in range(2)])
                 move_ratios[name].append(ours / nothing)
             print(f"# {room['name']} move {kind} {dx:+.2f} {dy:+.2f}: nothing {nothing:.2f} dB, "
-                  f"model {move_ratios['model'][-1]:.2f}, anchored {move_ratios['anchored'][-1]:.2f}",
+                  f"model {move_ratios['model'][-1]:.2f}, "
+                  f"anchored {move_ratios['anchored'][-1]:.2f}",
                   flush=True)
         # ---- unmeasured seats
         for off in UNMEASURED:
