@@ -949,6 +949,8 @@ def _add_advise(sub: Any) -> argparse.ArgumentParser:
                    help="move each loudspeaker on its own (default: mirror pairs)")
     p.add_argument("--top", type=_whole, default=3, metavar="N",
                    help="how many suggestions to print (default 3)")
+    p.add_argument("--plot", metavar="FILE.png",
+                   help="also draw the plan: current and suggested positions, bass map")
     p.add_argument("--json", action="store_true", help="machine-readable output")
     return p
 
@@ -964,6 +966,11 @@ def _run_advise(args: argparse.Namespace) -> int:
         symmetric=not args.asymmetric, top=args.top,
     )
     print(json.dumps(res, indent=2) if args.json else "\n".join(format_advice(res)))
+    if args.plot:
+        from roomcorr.app.placement import write_plan
+
+        write_plan(res, args.plot)
+        print(f"plan written to {args.plot}", file=sys.stderr if args.json else sys.stdout)
     return 0
 
 

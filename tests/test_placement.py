@@ -244,15 +244,17 @@ def test_design_stores_causes_in_the_manifest(pra_room, tmp_path, capsys):
     assert found[0]["text"].split(":")[0] in html
 
 
-def test_advise_keeps_to_the_limits(pra_room, capsys):
+def test_advise_keeps_to_the_limits(pra_room, tmp_path, capsys):
     import json
 
     folder, _, _ = pra_room
     files = sorted(str(p) for p in folder.glob("pos*.wav"))
     code = main(["advise", *files, "--layout", str(folder / "layout.toml"), "--max-move", "0.4",
-                 "--seat-range", "0.3", "--wall-min", "0.3", "--json"])
+                 "--seat-range", "0.3", "--wall-min", "0.3", "--json",
+                 "--plot", str(tmp_path / "plan.png")])
     assert code == 0
     res = json.loads(capsys.readouterr().out)
+    assert (tmp_path / "plan.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
     lay = read_layout(folder / "layout.toml")
     size = np.array(lay.size_m)
     assert res["cautions"] and res["plan"]["size_m"] == list(lay.size_m)

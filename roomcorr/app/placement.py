@@ -618,3 +618,13 @@ def format_advice(res: dict[str, Any]) -> list[str]:
                      + f"; seat at {', '.join(f'{v:.2f}' for v in s['seat_m'])} (m)")
     lines += res["cautions"]
     return lines
+
+
+def write_plan(res: dict[str, Any], path: str | Path) -> Path:
+    """Draw the plan of an :func:`advise_command` result as a PNG (atomically)."""
+    from roomcorr.deliver.atomic import atomic_write_bytes
+    from roomcorr.report.figures import plan_figure, png_bytes
+
+    if not str(path).lower().endswith(".png"):
+        raise SettingsError(f"--plot {path}: the plan is a PNG; name a file ending in .png")
+    return atomic_write_bytes(path, png_bytes(plan_figure(res["plan"])))
