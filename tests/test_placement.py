@@ -278,3 +278,26 @@ def test_advise_keeps_to_the_limits(pra_room, tmp_path, capsys):
 def test_advise_refuses_bad_limits(capsys):
     assert main(["advise", "--max-move", "7"]) == 2
     assert "--max-move 7" in capsys.readouterr().err
+
+
+def test_predict_inside_a_room_folder(pra_room, tmp_path, capsys):
+    # The room's latest measurement and layout.toml; the WAV lands in the room folder.
+    from roomcorr import rooms
+
+    folder, _, _ = pra_room
+    room = rooms.init_room(tmp_path / "room")
+    rooms.add_measurement(room, sorted(str(p) for p in folder.glob("pos*.wav")))
+    lay = read_layout(folder / "layout.toml")
+    args = ["layout", "set", "--room", str(room.root), "--size", ",".join(map(str, lay.size_m)),
+            "--seat", ",".join(map(str, lay.seat))]
+    for name, p in lay.loudspeakers.items():
+        args += ["--speaker", f"{name}=" + ",".join(map(str, p))]
+    for p in lay.measured:
+        args += ["--measured", ",".join(map(str, p))]
+    assert main(args) == 0
+    assert (room.root / "layout.toml").is_file()
+    assert main(["predict", "--room", str(room.root), "--seat", "2.3,3.0,1.1"]) == 0
+    out = capsys.readouterr().out
+    assert "valid up to 250 Hz" in out and "left out of the fit" in out
+    data, fs = sf.read(room.root / "predicted.wav")
+    assert fs == 48000 and data.shape[1] == 2 and np.all(np.isfinite(data))
