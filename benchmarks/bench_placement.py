@@ -15,8 +15,11 @@ Figures (the issue's):
 * **move**: error of the predicted 1/6-octave response at the seat (30-250 Hz,
   level offset removed, RMS dB) after moving loudspeakers 0.3-1.5 m, divided by
   the error of assuming nothing changed; median over the moves (target <= 0.5).
-  Two predictions: ``model`` (the calibrated model's level) and ``anchored``
-  (the measured level plus the model's predicted change).
+  Three predictions: ``model`` (the calibrated model's level), ``anchored``
+  (the measured level plus the model's predicted change) and ``blend`` (their
+  mean: the model plus half the measured-minus-model difference at the nearest
+  measured position, which is what ``roomcorr predict`` writes,
+  :data:`roomcorr.placement.model.ANCHOR_WEIGHT`).
 * **seat**: the same at unmeasured seats 0.3-1 m from the measured ones, divided
   by the error of using the nearest measured position (target <= 0.7).
 * **advice**: the best suggestion of ``advise`` simulated independently,

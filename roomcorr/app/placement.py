@@ -28,6 +28,7 @@ from roomcorr.placement.model import (
     FIT_BAND_HZ,
     VALID_TO_HZ,
     RoomModel,
+    anchor_db,
     calibrate,
     fit_grid,
     predicted_ir,
@@ -276,11 +277,13 @@ def predict_command(
     """
     layout = need_layout(layout_file, room_dir)
     target = moved_layout(layout, moves or {}, seat)
-    model, _irs, _fs = calibrated_model(ir_paths, layout, room_dir)
+    model, meas, fs = calibrated_model(ir_paths, layout, room_dir)
     offsets = model.offsets_m
     spk = np.asarray(list(target.loudspeakers.values())) + offsets
     seat_m = np.asarray(target.seat)
-    irs = predicted_ir(model, spk, seat_m, PREDICT_FS)
+    # half of what the model misses at the nearest measured position stays in the prediction
+    corr, anchor = anchor_db(model, meas, fs, np.asarray(layout.measured), seat_m)
+    irs = predicted_ir(model, spk, seat_m, PREDICT_FS, correction_db=corr)
     if out is None:
         room = rooms.open_room(room_dir) if room_dir else rooms.find_room()
         if room is None:
@@ -293,6 +296,7 @@ def predict_command(
         "channels": target.names,
         "model": model_summary(model),
         "sensitivity_db": round(sensitivity_db(model, spk, seat_m), 2),
+        "anchor_position": anchor + 1,
         "tape_error_m": TAPE_ERROR_M,
         "layout": target.to_dict(),
     }
