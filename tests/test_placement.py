@@ -301,3 +301,14 @@ def test_predict_inside_a_room_folder(pra_room, tmp_path, capsys):
     assert "valid up to 250 Hz" in out and "left out of the fit" in out
     data, fs = sf.read(room.root / "predicted.wav")
     assert fs == 48000 and data.shape[1] == 2 and np.all(np.isfinite(data))
+
+
+def test_layout_show_without_a_layout_says_how(tmp_path, capsys, monkeypatch):
+    from roomcorr import rooms
+
+    room = rooms.init_room(tmp_path / "room")
+    monkeypatch.chdir(room.root)
+    assert main(["layout", "show"]) == 2
+    assert "roomcorr layout set" in capsys.readouterr().err
+    assert main(["layout", "set", "--seat", "1,1,1"]) == 2
+    assert "needs --size" in capsys.readouterr().err
