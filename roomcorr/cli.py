@@ -299,6 +299,7 @@ def _print_design_summary(result: Any, out: Path, entries: list[dict]) -> None:
                 f"max), pre-gain {fmt_db(e['pre_gain_db'], 2, True)}, peak gain "
                 f"{fmt_db(e['peak_gain_db'], 2, True)}"
             )
+    _print_causes(out)
     _print_system_summary(result)
     if result.mixed_phase is not None:
         from roomcorr.design.mixedphase import latency_sentence
@@ -330,6 +331,17 @@ def _print_next_steps(out: Path) -> None:
 
     for line in next_steps(str(out)):
         print(line)
+
+
+def _print_causes(out: Path) -> None:
+    """The causes of peaks and withheld dips, as stored in the manifest."""
+    from roomcorr.app.placement import format_causes
+    from roomcorr.deliver.export import read_manifest
+
+    lines = format_causes(read_manifest(out).get("causes") or [])
+    if lines:
+        print("Causes (peaks and dips in the correction band):")
+        print("\n".join(lines))
 
 
 def _print_system_summary(result: Any) -> None:
@@ -364,6 +376,10 @@ def _add_design(sub: Any) -> argparse.ArgumentParser:
     )
     p.add_argument("--room", metavar="ROOM_DIR", help="room folder (default: the one you are in)")
     p.add_argument(
+        "--layout", metavar="FILE.toml",
+        help="room layout, to name the cause of each peak and dip (default: the room's)",
+    )
+    p.add_argument(
         "--force",
         action="store_true",
         help="design even from files that do not look like impulse responses (no clear "
@@ -386,6 +402,7 @@ def _run_design(args: argparse.Namespace) -> int:
         force=args.force,
         on_start=_print_cautions,
         on_source=lambda meas: print(f"Using the latest measurement: {meas}"),
+        layout_file=args.layout,
     )
     _print_design_summary(result, out, entries)
     return 0
@@ -908,6 +925,152 @@ def _run_import(args: argparse.Namespace) -> int:
     return 0
 
 
+# --------------------------------------------------------------------------- placement
+
+
+def _triple(text: str) -> tuple[float, float, float]:
+    """Option type: three comma-separated finite numbers (metres)."""
+    vals = _float_list(text)
+    if len(vals) != 3:
+        raise argparse.ArgumentTypeError(f"expected x,y,z in metres, got {text!r}")
+    return (vals[0], vals[1], vals[2])
+
+
+def _named_triple(text: str) -> tuple[str, tuple[float, float, float]]:
+    """Option type: NAME=x,y,z."""
+    name, sep, rest = text.partition("=")
+    if not sep or not name.strip():
+        raise argparse.ArgumentTypeError(f"expected NAME=x,y,z, got {text!r}")
+    return name.strip(), _triple(rest)
+
+
+def _add_layout(sub: Any) -> argparse.ArgumentParser:
+    p = sub.add_parser(
+        "layout",
+        help="enter or show the room's layout (size, loudspeakers, seat, measured positions)",
+        description="The room layout in metres: x across the room from the left wall (as seen "
+        "from the seat facing the loudspeakers), y from the front wall behind the loudspeakers, "
+        "z up from the floor. Kept as layout.toml in the room folder, or in --file.",
+    )
+    p.add_argument("action", choices=("show", "set"), help="show it, or set values in it")
+    p.add_argument("--file", metavar="FILE.toml", help="a layout file outside a room folder")
+    p.add_argument("--room", metavar="ROOM_DIR", help="room folder (default: the one you are in)")
+    p.add_argument("--size", type=_triple, metavar="W,L,H", help="room width, length, height")
+    p.add_argument(
+        "--speaker", type=_named_triple, action="append", metavar="NAME=x,y,z",
+        help="a loudspeaker's acoustic centre (repeat; names as the design's channels)",
+    )
+    p.add_argument("--seat", type=_triple, metavar="x,y,z", help="the listener's head")
+    p.add_argument(
+        "--measured", type=_triple, action="append", metavar="x,y,z",
+        help="a measurement position (repeat, in the order of the measured files)",
+    )
+    p.add_argument("--json", action="store_true", help="machine-readable output")
+    return p
+
+
+def _run_layout(args: argparse.Namespace) -> int:
+    import json
+
+    from roomcorr.app.placement import need_layout, set_layout
+    from roomcorr.placement.layout import layout_text
+
+    if args.action == "set":
+        path, layout = set_layout(
+            args.size, args.speaker, args.seat, args.measured, args.file, args.room
+        )
+        if not args.json:
+            print(f"layout written to {path}")
+    else:
+        layout = need_layout(args.file, args.room)
+    print(json.dumps(layout.to_dict(), indent=2) if args.json else layout_text(layout), end="")
+    if args.json:
+        print()
+    return 0
+
+
+def _add_predict(sub: Any) -> argparse.ArgumentParser:
+    p = sub.add_parser(
+        "predict",
+        help="predict the bass at a seat after moving loudspeakers or the seat",
+        description="Fit a model of the room to the measured positions (the layout gives the "
+        "room's size and where everything stood), then predict the impulse response of every "
+        "loudspeaker at the seat after the moves given. Written at 48 kHz, one channel per "
+        "loudspeaker in the layout's order, valid at low frequencies only (stated).",
+    )
+    p.add_argument("irs", nargs="*", metavar="POS.wav",
+                   help="measured positions (default: the room's latest measurement)")
+    p.add_argument("--layout", metavar="FILE.toml", help="layout (default: the room's)")
+    p.add_argument("--room", metavar="ROOM_DIR", help="room folder (default: the one you are in)")
+    p.add_argument("--move", type=_named_triple, action="append", metavar="NAME=x,y,z",
+                   help="move a loudspeaker there (repeat)")
+    p.add_argument("--seat", type=_triple, metavar="x,y,z", help="predict at this seat")
+    p.add_argument("--out", metavar="FILE.wav",
+                   help="output WAV (default: predicted.wav in the room folder)")
+    p.add_argument("--json", action="store_true", help="machine-readable output")
+    return p
+
+
+def _run_predict(args: argparse.Namespace) -> int:
+    import json
+
+    from roomcorr.app.placement import format_prediction, predict_command
+
+    res = predict_command(
+        args.irs or None, args.out, args.layout, dict(args.move or []), args.seat, args.room
+    )
+    print(json.dumps(res, indent=2) if args.json else "\n".join(format_prediction(res)))
+    return 0
+
+
+def _add_advise(sub: Any) -> argparse.ArgumentParser:
+    p = sub.add_parser(
+        "advise",
+        help="suggest where to put the loudspeakers and the seat for smoother bass",
+        description="Search loudspeaker positions (pairs kept symmetric unless --asymmetric) "
+        "and seat positions along the room's length within the limits given, design the "
+        "correction for each through the same design code, and rank them by the predicted "
+        "bass over the listening area after correction.",
+    )
+    p.add_argument("irs", nargs="*", metavar="POS.wav",
+                   help="measured positions (default: the room's latest measurement)")
+    p.add_argument("--layout", metavar="FILE.toml", help="layout (default: the room's)")
+    p.add_argument("--room", metavar="ROOM_DIR", help="room folder (default: the one you are in)")
+    p.add_argument("--max-move", type=_finite, default=0.5, metavar="M",
+                   help="how far a loudspeaker may move from where it is, m (default 0.5)")
+    p.add_argument("--seat-range", type=_finite, default=0.5, metavar="M",
+                   help="how far the seat may move along the length, m (default 0.5; 0: fixed)")
+    p.add_argument("--wall-min", type=_finite, default=0.2, metavar="M",
+                   help="closest a loudspeaker may come to a wall, m (default 0.2)")
+    p.add_argument("--asymmetric", action="store_true",
+                   help="move each loudspeaker on its own (default: mirror pairs)")
+    p.add_argument("--top", type=_whole, default=3, metavar="N",
+                   help="how many suggestions to print (default 3)")
+    p.add_argument("--plot", metavar="FILE.png",
+                   help="also draw the plan: current and suggested positions, bass map")
+    p.add_argument("--json", action="store_true", help="machine-readable output")
+    return p
+
+
+def _run_advise(args: argparse.Namespace) -> int:
+    import json
+
+    from roomcorr.app.placement import advise_command, format_advice
+
+    res = advise_command(
+        args.irs or None, args.layout, args.room, max_move_m=args.max_move,
+        seat_range_m=args.seat_range, wall_min_m=args.wall_min,
+        symmetric=not args.asymmetric, top=args.top,
+    )
+    print(json.dumps(res, indent=2) if args.json else "\n".join(format_advice(res)))
+    if args.plot:
+        from roomcorr.app.placement import write_plan
+
+        write_plan(res, args.plot)
+        print(f"plan written to {args.plot}", file=sys.stderr if args.json else sys.stdout)
+    return 0
+
+
 # --------------------------------------------------------------------------- main
 
 # --------------------------------------------------------------------------- browser app
@@ -1202,6 +1365,9 @@ _COMMANDS: list[tuple[str, Callable[[Any], argparse.ArgumentParser], Callable[..
     ("apply", _add_apply, _run_apply),
     ("commands", _add_commands, _run_commands),
     ("listen", _add_listen, _run_listen),
+    ("layout", _add_layout, _run_layout),
+    ("predict", _add_predict, _run_predict),
+    ("advise", _add_advise, _run_advise),
 ]
 
 

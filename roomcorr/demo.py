@@ -81,7 +81,6 @@ References
 from __future__ import annotations
 
 import argparse
-import itertools
 import sys
 from collections.abc import Sequence
 from pathlib import Path
@@ -90,9 +89,21 @@ import numpy as np
 
 from roomcorr.deliver.atomic import atomic_write_with
 from roomcorr.errors import OutputError
-
-#: Speed of sound used by the demo room, m/s (air at about 20 °C).
-C_SOUND_M_S = 343.0
+from roomcorr.physics import (
+    axial_mode_frequencies,
+    early_spectrum,
+    image_sources,
+    linkwitz_riley4,
+    modal_response,
+    mode_grid,
+    mode_kind,
+    room_mode_frequencies,
+    sabine_t60_s,
+    schroeder_frequency_hz,
+    speaker_response,
+    wall_shelf,
+)
+from roomcorr.physics.modes import C_SOUND_M_S
 
 #: Seed of the bundled measurements.
 DEFAULT_SEED = 20261202
@@ -146,239 +157,30 @@ _SPEAKERS = (
      "tilt_hz": (220.0, 6500.0), "tilt_db": -1.8, "gain_db": -0.4},
 )
 
+#: Earlier private names of the model's parts, now public in :mod:`roomcorr.physics`
+#: (kept for modules and tests written against them).
+_mode_grid = mode_grid
+_modal_response = modal_response
+_image_sources = image_sources
+_speaker_response = speaker_response
+_linkwitz_riley4 = linkwitz_riley4
+_wall_shelf = wall_shelf
+_mode_kind = mode_kind
+
+__all__ = [
+    "C_SOUND_M_S",
+    "axial_mode_frequencies",
+    "demo_file_names",
+    "early_spectrum",
+    "room_mode_frequencies",
+    "sabine_t60_s",
+    "schroeder_frequency_hz",
+    "synthesize_demo_room",
+    "write_demo_measurements",
+]
+
 _NOISE_FLOOR_DB = -80.0
 _PEAK_DBFS = -6.0
-
-
-# --------------------------------------------------------------------------- room modes
-
-
-def _mode_kind(label: tuple[int, int, int]) -> str:
-    nonzero = sum(1 for n in label if n != 0)
-    return {1: "axial", 2: "tangential", 3: "oblique"}[nonzero]
-
-
-def _mode_grid(dims_m: Sequence[float], c: float, f_max_hz: float) -> tuple[np.ndarray, np.ndarray]:
-    """All mode numbers with 0 < f <= f_max_hz: labels (n_modes, 3) and freq_hz (n_modes,)."""
-    dims = np.asarray(dims_m, dtype=float)
-    n_max = np.floor(2.0 * f_max_hz * dims / c).astype(int)
-    axes = [np.arange(n + 1) for n in n_max]
-    nx, ny, nz = np.meshgrid(*axes, indexing="ij")
-    labels = np.stack([nx.ravel(), ny.ravel(), nz.ravel()], axis=1)
-    freq_hz = 0.5 * c * np.sqrt(np.sum((labels / dims) ** 2, axis=1))
-    keep = (freq_hz > 0.0) & (freq_hz <= f_max_hz)
-    labels, freq_hz = labels[keep], freq_hz[keep]
-    order = np.lexsort((labels[:, 2], labels[:, 1], labels[:, 0], freq_hz))
-    return labels[order], freq_hz[order]
-
-
-def room_mode_frequencies(
-    dims_m: Sequence[float], c: float = C_SOUND_M_S, f_max: float = 300.0
-) -> list[tuple[tuple[int, int, int], float]]:
-    """Return every mode of a rectangular room up to ``f_max`` (Rayleigh's formula).
-
-    Parameters
-    ----------
-    dims_m : sequence of 3 floats
-        Room dimensions (L_x, L_y, L_z) in metres.
-    c : float
-        Speed of sound in m/s.
-    f_max : float
-        Highest mode frequency to return, Hz.
-
-    Returns
-    -------
-    list of ((n_x, n_y, n_z), freq_hz)
-        Sorted by frequency (ties by label); the zero mode (0, 0, 0) is left out.
-        ``freq_hz = c/2 sqrt((n_x/L_x)² + (n_y/L_y)² + (n_z/L_z)²)``.
-
-    References
-    ----------
-    .. [1] H. Kuttruff, *Room Acoustics*, 5th ed., 2009, section 3.3.
-    """
-    if len(dims_m) != 3 or min(dims_m) <= 0:
-        raise ValueError("dims_m must be three positive lengths in metres")
-    labels, freq_hz = _mode_grid(dims_m, c, f_max)
-    return [
-        ((int(a), int(b), int(d)), float(f))
-        for (a, b, d), f in zip(labels, freq_hz, strict=True)
-    ]
-
-
-def axial_mode_frequencies(
-    dims_m: Sequence[float], c: float = C_SOUND_M_S, n_max: int = 3
-) -> list[tuple[tuple[int, int, int], float]]:
-    """Return the axial modes ``n c / (2 L)`` of each dimension for ``n = 1 .. n_max``.
-
-    Parameters
-    ----------
-    dims_m : sequence of 3 floats
-        Room dimensions (L_x, L_y, L_z) in metres.
-    c : float
-        Speed of sound in m/s.
-    n_max : int
-        Highest order per dimension.
-
-    Returns
-    -------
-    list of ((n_x, n_y, n_z), freq_hz)
-        ``3 * n_max`` entries sorted by frequency, labelled like
-        :func:`room_mode_frequencies` (one non-zero index each).
-
-    References
-    ----------
-    .. [1] H. Kuttruff, *Room Acoustics*, 5th ed., 2009, section 3.3.
-    """
-    if len(dims_m) != 3 or min(dims_m) <= 0:
-        raise ValueError("dims_m must be three positive lengths in metres")
-    modes = []
-    for axis, length in enumerate(dims_m):
-        for n in range(1, n_max + 1):
-            label = [0, 0, 0]
-            label[axis] = n
-            modes.append(((label[0], label[1], label[2]), n * c / (2.0 * float(length))))
-    return sorted(modes, key=lambda m: (m[1], m[0]))
-
-
-def schroeder_frequency_hz(t60_s: float, volume_m3: float) -> float:
-    """Return the Schroeder frequency ``2000 sqrt(T60 / V)`` in Hz.
-
-    References
-    ----------
-    .. [1] M. R. Schroeder, "The 'Schroeder frequency' revisited", JASA 99(5), 1996.
-    """
-    return 2000.0 * float(np.sqrt(t60_s / volume_m3))
-
-
-def sabine_t60_s(dims_m: Sequence[float], wall_alpha: Sequence[float]) -> float:
-    """Return Sabine's ``T60 = 0.161 V / A`` for a box with one α per wall.
-
-    ``wall_alpha`` is ordered (front x=0, back x=L, left y=0, right y=L, floor, ceiling).
-    """
-    lx, ly, lz = dims_m
-    areas = (ly * lz, ly * lz, lx * lz, lx * lz, lx * ly, lx * ly)
-    absorption_m2 = sum(a * s for a, s in zip(wall_alpha, areas, strict=True))
-    return 0.161 * lx * ly * lz / absorption_m2
-
-
-# --------------------------------------------------------------------------- synthesis parts
-
-
-def _modal_response(
-    freq_hz: np.ndarray,
-    src: np.ndarray,
-    mics: np.ndarray,
-    dims: np.ndarray,
-    labels: np.ndarray,
-    mode_hz: np.ndarray,
-    delta: float,
-    c: float,
-) -> np.ndarray:
-    """Modal Green's function, shape (n_mics, n_freqs), for one source."""
-    k = np.pi * labels / dims  # (n_modes, 3)
-    psi_src = np.prod(np.cos(k * src), axis=1)  # (n_modes,)
-    psi_mic = np.prod(np.cos(k[None, :, :] * mics[:, None, :]), axis=2)  # (n_mics, n_modes)
-    eps = np.where(labels == 0, 1.0, 0.5).prod(axis=1)
-    norm = np.prod(dims) * eps
-    w = 2.0 * np.pi * freq_hz[:, None]
-    wn = 2.0 * np.pi * mode_hz[None, :]
-    denom = norm[None, :] * (wn**2 - w**2 + 2j * delta * w)  # (n_freqs, n_modes)
-    return c**2 * (psi_mic * psi_src[None, :]) @ (1.0 / denom).T
-
-
-def _image_sources(
-    src: np.ndarray, dims: np.ndarray, max_order: int = 2
-) -> list[tuple[np.ndarray, tuple[int, ...]]]:
-    """Image positions and per-wall reflection counts up to ``max_order`` (Allen & Berkley)."""
-    images = []
-    for p in itertools.product((0, 1), repeat=3):
-        for m in itertools.product((-1, 0, 1), repeat=3):
-            counts = []
-            for axis in range(3):
-                # Reflections on the wall at 0 and the wall at L for this image.
-                mi, pi = m[axis], p[axis]
-                n_low = abs(mi - pi)
-                n_high = abs(mi)
-                counts.extend((n_low, n_high))
-            if sum(counts) > max_order:
-                continue
-            pos = np.array([(1 - 2 * p[a]) * src[a] + 2 * m[a] * dims[a] for a in range(3)])
-            images.append((pos, tuple(counts)))
-    return images
-
-
-def early_spectrum(
-    freq_hz: np.ndarray,
-    images: list[tuple[np.ndarray, tuple[int, ...]]],
-    mic: np.ndarray,
-    beta: np.ndarray,
-    wall: np.ndarray,
-    c: float,
-) -> np.ndarray:
-    """Direct sound and image sources at one microphone, ``sum g e^{-jωr/c} / (4πr)``.
-
-    Parameters
-    ----------
-    freq_hz : ndarray, shape (n_freqs,)
-    images : list of (position, reflection counts per wall), from :func:`_image_sources`
-    mic : ndarray, shape (3,)
-    beta : ndarray, shape (6,)
-        Pressure reflection factor of each wall, ``sqrt(1 - α)``.
-    wall : ndarray, shape (n_freqs,)
-        Treble loss of one reflection (applied once per reflection).
-    c : float
-        Speed of sound, m/s.
-
-    Returns
-    -------
-    ndarray, shape (n_freqs,), complex
-    """
-    early = np.zeros(freq_hz.size, dtype=complex)
-    for img, counts in images:
-        r = float(np.linalg.norm(img - mic))
-        order = sum(counts)
-        gain = float(np.prod(beta ** np.asarray(counts))) / (4.0 * np.pi * r)
-        early += gain * wall**order * np.exp(-2j * np.pi * freq_hz * r / c)
-    return early
-
-
-def _shelf(freq_hz: np.ndarray, f_lo: float, f_hi: float) -> np.ndarray:
-    """First-order shelf (1 + s/w_hi) / (1 + s/w_lo): gain f_lo/f_hi above f_hi (min-phase)."""
-    s = 2j * np.pi * freq_hz
-    return (1.0 + s / (2 * np.pi * f_hi)) / (1.0 + s / (2 * np.pi * f_lo))
-
-
-def _speaker_response(freq_hz: np.ndarray, p: dict) -> np.ndarray:
-    """Analog model of one loudspeaker on the given frequencies (complex, causal)."""
-    s = 2j * np.pi * freq_hz
-    resp = np.full(freq_hz.shape, 10.0 ** (p["gain_db"] / 20.0), dtype=complex)
-    wc = 2.0 * np.pi * p["hp_hz"]
-    for q in p["hp_q"]:  # 4th-order high-pass as two 2nd-order sections
-        resp *= s**2 / (s**2 + s * wc / q + wc**2)
-    f0, gain_db, q = p["bump"]
-    w0, a = 2.0 * np.pi * f0, 10.0 ** (gain_db / 40.0)
-    resp *= (s**2 + s * a * w0 / q + w0**2) / (s**2 + s * w0 / (a * q) + w0**2)
-    wl = 2.0 * np.pi * p["lp_hz"]
-    resp *= wl**2 / (s**2 + s * wl / 0.6 + wl**2)
-    # Tilt: four first-order shelves spaced evenly in log frequency between the
-    # corners, each dropping a quarter of tilt_db.
-    f_lo, f_hi = p["tilt_hz"]
-    step = 10.0 ** (p["tilt_db"] / 4.0 / 20.0)
-    for f_pole in np.geomspace(f_lo, f_hi, 4):
-        resp *= _shelf(freq_hz, f_pole, f_pole / step)
-    return resp
-
-
-def _linkwitz_riley4(freq_hz: np.ndarray, fc_hz: float) -> tuple[np.ndarray, np.ndarray]:
-    """4th-order Linkwitz-Riley low-pass and high-pass (their sum is an all-pass)."""
-    s = 2j * np.pi * freq_hz / (2.0 * np.pi * fc_hz)
-    d = s**2 + np.sqrt(2.0) * s + 1.0
-    return 1.0 / d**2, s**4 / d**2
-
-
-def _wall_shelf(freq_hz: np.ndarray) -> np.ndarray:
-    """Treble loss of one reflection: about −1.5 dB above ~6 kHz (first-order shelf)."""
-    return _shelf(freq_hz, 6000.0, 6000.0 * 10.0 ** (1.5 / 20.0))
 
 
 # --------------------------------------------------------------------------- public API
@@ -434,9 +236,9 @@ def synthesize_demo_room(
     f_low = freq_hz[:n_low]
     taper = np.clip((8.0 * CROSSOVER_HZ - f_low) / (4.0 * CROSSOVER_HZ), 0.0, 1.0)
     taper = np.sin(0.5 * np.pi * taper) ** 2
-    labels, mode_hz = _mode_grid(dims, c, 2.0 * CROSSOVER_HZ)
-    lp, hp = _linkwitz_riley4(freq_hz, CROSSOVER_HZ)
-    wall = _wall_shelf(freq_hz)
+    labels, mode_hz = mode_grid(dims, c, 2.0 * CROSSOVER_HZ)
+    lp, hp = linkwitz_riley4(freq_hz, CROSSOVER_HZ)
+    wall = wall_shelf(freq_hz)
     beta = np.sqrt(1.0 - np.asarray(_WALL_ALPHA))
     pre = np.exp(-2j * np.pi * freq_hz * PRE_DELAY_S)
     # Diffuse-field energy per second for a 1/(4 pi r) source (Kuttruff, ch. 4).
@@ -447,11 +249,11 @@ def synthesize_demo_room(
     for ch, (src_pos, spk) in enumerate(zip(SPEAKER_POSITIONS_M, _SPEAKERS, strict=True)):
         src = np.asarray(src_pos)
         modal = np.zeros((mics.shape[0], freq_hz.size), dtype=complex)
-        modal[:, :n_low] = taper * _modal_response(
+        modal[:, :n_low] = taper * modal_response(
             f_low, src, mics, dims, labels, mode_hz, delta, c
         )
-        images = _image_sources(src, dims)
-        speaker = _speaker_response(freq_hz, spk)
+        images = image_sources(src, dims)
+        speaker = speaker_response(freq_hz, spk)
         for pos, mic in enumerate(mics):
             early = early_spectrum(freq_hz, images, mic, beta, wall, c)
             r_direct = float(np.linalg.norm(src - mic))
@@ -493,7 +295,7 @@ def synthesize_demo_room(
         "noise_floor_db": _NOISE_FLOOR_DB,
         "peak_dbfs": _PEAK_DBFS,
         "modes": [
-            {"n": label, "freq_hz": f, "kind": _mode_kind(label)}
+            {"n": label, "freq_hz": f, "kind": mode_kind(label)}
             for label, f in room_mode_frequencies(ROOM_DIMS_M, c, 300.0)
         ],
         "seed": seed,

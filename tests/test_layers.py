@@ -26,13 +26,15 @@ STAGES: list[tuple[str, tuple[str, ...]]] = [
             "roomcorr.settings",
             "roomcorr.audio_io",
             "roomcorr.deliver.atomic",
+            # the room and loudspeaker model: pure numpy, used by demo, evaluation, placement
+            "roomcorr.physics",
         ),
     ),
     ("measure", ("roomcorr.measure", "roomcorr.rooms", "roomcorr.demo")),
     ("analysis", ("roomcorr.analysis",)),
     ("design", ("roomcorr.design", "roomcorr.pipeline")),
     ("deliver/report", ("roomcorr.deliver", "roomcorr.report", "roomcorr.playback")),
-    ("app", ("roomcorr.app", "roomcorr.evaluation")),
+    ("app", ("roomcorr.app", "roomcorr.evaluation", "roomcorr.placement")),
     ("cli/ui", ("roomcorr.cli", "roomcorr.ui", "roomcorr.__main__")),
 ]
 

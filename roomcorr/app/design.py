@@ -19,6 +19,7 @@ import numpy as np
 
 from roomcorr import rooms
 from roomcorr.app.explore import run_folder
+from roomcorr.app.placement import causes_for_design, find_layout
 from roomcorr.audio_io import read_ir_set
 from roomcorr.deliver.atomic import atomic_write_bytes
 from roomcorr.deliver.export import check_out_dir, input_digests, write_design
@@ -79,6 +80,7 @@ def design_from_files(
     extra: dict[str, Any] | None = None,
     force: bool = False,
     on_start: Callable[[], None] | None = None,
+    layout: Any = None,
 ) -> tuple[DesignResult, list[dict[str, Any]]]:
     """Design from impulse-response files and write the design folder ``out``.
 
@@ -98,6 +100,9 @@ def design_from_files(
     on_start : callable, optional
         Called once every input has been checked, when the work starts (the
         command line prints its cautions there).
+    layout : Layout, optional
+        The room's layout: the causes of peaks and withheld dips stored in the
+        manifest (``causes``) then name modes and surfaces.
 
     Returns
     -------
@@ -127,6 +132,8 @@ def design_from_files(
     }
     if extra:
         info.update(extra)
+    # A plain-words cause for each peak and withheld dip (roomcorr.placement.causes)
+    info["causes"] = causes_for_design(result, layout)
     entries = write_design(result, out, replace=replace, extra=info, iir=iir)
     return result, entries
 
@@ -168,9 +175,11 @@ def design_in_room(
         source = {"measurement": meas.name}
         if on_source is not None:
             on_source(meas)
+    layout = find_layout(room_dir=str(room.root))  # refused before the run, not in it
     with rooms.new_run(room, "design", info=dict(source)) as run_dir:
         result, entries = design_from_files(
-            paths, run_dir, settings, False, extra=source, force=force, on_start=on_start
+            paths, run_dir, settings, False, extra=source, force=force, on_start=on_start,
+            layout=layout,
         )
     return run_dir, result, entries
 
@@ -184,6 +193,7 @@ def design_command(
     force: bool = False,
     on_start: Callable[[], None] | None = None,
     on_source: Callable[[Path], None] | None = None,
+    layout_file: str | None = None,
 ) -> tuple[Path, DesignResult, list[dict[str, Any]]]:
     """What ``roomcorr design`` does: design into ``out``, or into a new run of a room.
 
@@ -205,6 +215,8 @@ def design_command(
     on_source : callable, optional
         Called with the measurement run used (relative to the room folder) when
         none was named.
+    layout_file : str, optional
+        A layout file for the causes (default: the room's ``layout.toml``, if any).
 
     Returns
     -------
@@ -219,7 +231,9 @@ def design_command(
             raise SettingsError("design: name the impulse-response files or folders to use")
         settings = settings_for(rooms.load_room_settings(room) if room else None)
         result, entries = design_from_files(
-            ir_paths, Path(out), settings, replace, force=force, on_start=on_start
+            ir_paths, Path(out), settings, replace, force=force, on_start=on_start,
+            layout=find_layout(layout_file, str(room.root) if room else None)
+            if (layout_file or room) else None,
         )
         return Path(out), result, entries
     if room is None:

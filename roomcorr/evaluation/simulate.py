@@ -3,10 +3,10 @@
 Why this simulator
 ------------------
 The rooms are synthesised with the same physical model as the demo room
-(:mod:`roomcorr.demo`): the modal expansion of a rectangular room's Green's
-function below a crossover, image sources up to second order and a
-diffuse tail above it, and an analytic loudspeaker. It is used here rather
-than a long image-source simulation because
+(:mod:`roomcorr.demo`, built from :mod:`roomcorr.physics`): the modal
+expansion of a rectangular room's Green's function below a crossover, image
+sources up to second order and a diffuse tail above it, and an analytic
+loudspeaker. It is used here rather than a long image-source simulation because
 
 * below a few hundred hertz, where every figure of merit but one lives, the
   modal sum is the room's exact steady-state response (Kuttruff, ch. 3),
@@ -44,14 +44,14 @@ from typing import Any
 
 import numpy as np
 
-from roomcorr.demo import (
-    _image_sources,
-    _modal_response,
-    _mode_grid,
-    _speaker_response,
-    _wall_shelf,
+from roomcorr.physics import (
     early_spectrum,
+    image_sources,
+    modal_response,
+    mode_grid,
     sabine_t60_s,
+    speaker_response,
+    wall_shelf,
 )
 
 #: Speed of sound in the evaluation rooms, m/s (air at about 20 °C).
@@ -168,13 +168,13 @@ def simulate_room(scenario: dict[str, Any], fs: int = EVAL_FS) -> EvaluationRoom
     f_low = freq_hz[:n_low]
     taper = np.clip((8.0 * CROSSOVER_HZ - f_low) / (4.0 * CROSSOVER_HZ), 0.0, 1.0)
     taper = np.sin(0.5 * np.pi * taper) ** 2
-    labels, mode_hz = _mode_grid(dims, c, 2.0 * CROSSOVER_HZ)
+    labels, mode_hz = mode_grid(dims, c, 2.0 * CROSSOVER_HZ)
     if scenario.get("leak_hz"):
         # The pressure-chamber (0, 0, 0) mode, at the leak frequency.
         labels = np.vstack([np.zeros((1, 3), dtype=labels.dtype), labels])
         mode_hz = np.concatenate([[float(scenario["leak_hz"])], mode_hz])
     lp, hp = power_complementary(freq_hz, CROSSOVER_HZ)
-    wall = _wall_shelf(freq_hz)
+    wall = wall_shelf(freq_hz)
     beta = np.sqrt(1.0 - alpha)
     pre = np.exp(-2j * np.pi * freq_hz * PRE_DELAY_S)
     tail_sigma = np.sqrt(c / (4.0 * np.pi * volume * fs)) * np.exp(-delta * t)
@@ -184,11 +184,11 @@ def simulate_room(scenario: dict[str, Any], fs: int = EVAL_FS) -> EvaluationRoom
     for ch, spk in enumerate(speakers):
         src = np.asarray(spk["pos_m"], dtype=float)
         modal = np.zeros((mics.shape[0], freq_hz.size), dtype=complex)
-        modal[:, :n_low] = taper * _modal_response(
+        modal[:, :n_low] = taper * modal_response(
             f_low, src, mics, dims, labels, mode_hz, delta, c
         )
-        images = _image_sources(src, dims)
-        speaker = _speaker_response(freq_hz, spk)
+        images = image_sources(src, dims)
+        speaker = speaker_response(freq_hz, spk)
         for m, mic in enumerate(mics):
             early = early_spectrum(freq_hz, images, mic, beta, wall, c)
             t0 = float(np.linalg.norm(src - mic)) / c

@@ -640,3 +640,42 @@ def plot_through(
     ax.legend(fontsize=LEGEND_PT, frameon=False, ncol=2, loc="upper center",
               bbox_to_anchor=(0.5, -0.16))
     return fig
+
+
+def plan_figure(plan: dict[str, Any]) -> Any:
+    """Plan view of the room: current and suggested positions over a map of the bass.
+
+    ``plan`` is the ``plan`` of :func:`roomcorr.app.placement.advise_command`:
+    ``size_m``, ``current`` and ``suggested`` (``speakers_m`` name -> [x, y, z],
+    ``seat_m``), and ``map`` (``x_m``, ``y_m``, ``ripple_db``: predicted bass
+    unevenness at seat height with the suggested loudspeakers). The front wall is at
+    the top, as a listener facing the loudspeakers sees the room on paper.
+    """
+    w, length = float(plan["size_m"][0]), float(plan["size_m"][1])
+    height_in = min(8.0, 1.0 + 5.0 * length / w)
+    fig = new_figure(6.0, height_in, left=0.12, right=0.86, bottom=0.08, top=0.93)
+    ax = fig.add_subplot(1, 1, 1)
+    m = plan.get("map")
+    if m:
+        img = ax.pcolormesh(m["x_m"], m["y_m"], np.asarray(m["ripple_db"]), shading="nearest",
+                            cmap="Blues_r", alpha=0.8)
+        cb = fig.colorbar(img, ax=ax, fraction=0.05, pad=0.02)
+        cb.set_label("bass unevenness 30-250 Hz, dB (lower is smoother)")
+    ax.plot([0, w, w, 0, 0], [0, 0, length, length, 0], color=INK, lw=1.5)
+    for key, style, label in (("current", {"mfc": "white", "mec": INK}, "now"),
+                              ("suggested", {"mfc": AFTER, "mec": AFTER}, "suggested")):
+        pos = plan.get(key)
+        if not pos:
+            continue
+        spk = np.asarray(list(pos["speakers_m"].values()), dtype=float)
+        ax.plot(spk[:, 0], spk[:, 1], "s", ms=9, label=f"loudspeakers ({label})", **style)
+        ax.plot([pos["seat_m"][0]], [pos["seat_m"][1]], "o", ms=10, label=f"seat ({label})",
+                **style)
+    ax.set_xlim(-0.1, w + 0.1)
+    ax.set_ylim(length + 0.1, -0.1)  # front wall at the top
+    ax.set_aspect("equal")
+    ax.set_xlabel("x, m (from the left wall)")
+    ax.set_ylabel("y, m (from the front wall)")
+    ax.set_title("Plan: where things are and where to move them", fontsize=10)
+    ax.legend(loc="lower right", fontsize=8, framealpha=0.9)
+    return fig

@@ -49,6 +49,7 @@ SECTION_TITLES = {
     "iir": "The biquad version",
     "quality": "How good the measurement was",
     "through": "Measured through the design's filters",
+    "causes": "Why the peaks and dips are there",
     "safety": "Safety and levels",
     "files": "The files and how to load them",
 }
@@ -917,6 +918,7 @@ def build_report(
     facts: list[str] | None = None,
     figures: dict[str, Any] | None = None,
     files: tuple[list[dict[str, Any]], str] | None = None,
+    causes: list[dict[str, Any]] | None = None,
 ) -> Report:
     """Compute every section and figure of the report.
 
@@ -957,6 +959,9 @@ def build_report(
     files : (list of dict, str), optional
         The design's file groups (:func:`roomcorr.deliver.loading.file_groups`)
         and folder name: adds the section on the files and how to load them.
+    causes : list of dict, optional
+        ``causes`` of the design's manifest (one entry per channel, each with its
+        list of causes, :func:`roomcorr.app.placement.causes_for_design`).
 
     Returns
     -------
@@ -1002,6 +1007,8 @@ def build_report(
             "Loudest ringing after the sound stops: " + "; ".join(ctx.ringing_notes)
             + " (see the low-frequency decay maps)."
         )
+    if causes and any(e.get("causes") for e in causes):
+        sections.append(causes_section(causes))
     if quality:
         sections.append(_quality_section(quality, png))
     if through and "measured_db" in through:
@@ -1014,6 +1021,24 @@ def build_report(
         sections.append(Section("files", SECTION_TITLES["files"], paragraphs, table=table))
     return Report(title=title, subtitle=f"measured at {ctx.fs} Hz", sections=sections,
                   facts=list(facts or []))
+
+
+def causes_section(causes: list[dict[str, Any]]) -> Section:
+    """The cause of each peak and withheld dip, as stored in the manifest."""
+    sec = Section("causes", SECTION_TITLES["causes"])
+    sec.paragraphs.append(
+        "A physical cause for each significant peak and each dip whose boost was withheld: "
+        "a room mode, a nearby surface's reflection cancelling the direct sound, a "
+        "cancellation that differs between positions, or unknown. Filters can lower peaks; "
+        "dips move only when a loudspeaker or the seat moves (roomcorr advise)."
+    )
+    table = [["Channel", "Frequency", "Kind", "Cause"]]
+    for entry in causes:
+        for item in entry.get("causes", []):
+            table.append([str(entry.get("channel", "")), f"{float(item['freq_hz']):.0f} Hz",
+                          str(item.get("kind", "")), str(item.get("text", ""))])
+    sec.table = table
+    return sec
 
 
 def _through_ranges(ranges: list[list[float]]) -> str:
@@ -1550,6 +1575,7 @@ def write_report(
         facts=facts,
         figures=figures,
         files=(file_groups(manifest), d.name) if is_design else None,
+        causes=manifest.get("causes") if is_design else None,
     )
     basis = manifest.get("timing_basis") if is_design else None
     if isinstance(basis, dict) and isinstance(basis.get("label"), str):

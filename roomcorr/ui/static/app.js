@@ -265,6 +265,10 @@ let overlay = null;
 function drawDesign(view, chIndex, rate) {
   clearPlots();
   const ch = view.channels[chIndex];
+  // causes of peaks and withheld dips, as stored in the manifest (roomcorr.placement.causes)
+  const causes = ((view.manifest || {}).causes || []).find(e => e.channel === ch.name);
+  document.getElementById("explore-text").textContent = causes && causes.causes.length
+    ? "Why the peaks and dips are there: " + causes.causes.map(c => c.text).join(" ") : "";
   const x = view.freq_hz;
   const avgPred = ch.average_db.map((v, i) => (v == null || ch.correction_db[i] == null ? null : v + ch.correction_db[i]));
   const series = ch.measured_db.map((m, p) => ({ label: `position ${p + 1}`, data: m, color: "#b8c2c9", width: 1 }));

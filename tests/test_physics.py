@@ -1,0 +1,155 @@
+"""Tests for roomcorr.physics: modes, the modal Green's function, image sources, loudspeaker."""
+
+from __future__ import annotations
+
+import itertools
+
+import numpy as np
+import pyroomacoustics as pra
+import pytest
+from scipy import signal
+
+from roomcorr.physics import (
+    early_spectrum,
+    first_order_reflections,
+    highpass_response,
+    image_sources,
+    modal_response,
+    mode_grid,
+    room_mode_frequencies,
+)
+
+C = 343.0
+
+
+def test_rayleigh_mode_frequencies_brute_force():
+    # Rayleigh, The Theory of Sound II §267; Kuttruff, Room Acoustics ch. 3, eq. 3.19:
+    # f = c/2 sqrt((nx/Lx)^2 + (ny/Ly)^2 + (nz/Lz)^2), enumerated by brute force here.
+    dims = (5.2, 6.3, 2.6)
+    expected = []
+    for n in itertools.product(range(12), repeat=3):
+        f = 0.5 * C * np.sqrt(sum((ni / li) ** 2 for ni, li in zip(n, dims, strict=True)))
+        if 0 < f <= 200.0:
+            expected.append((f, n))
+    expected.sort()
+    labels, freq_hz = mode_grid(dims, C, 200.0)
+    assert len(labels) == len(expected)
+    np.testing.assert_allclose(freq_hz, [f for f, _ in expected], rtol=1e-12)
+    # A hand value: the first length mode of a 6.3 m room is c / (2 L) = 27.22 Hz.
+    modes = dict(room_mode_frequencies(dims, C, 60.0))
+    assert modes[(0, 1, 0)] == pytest.approx(343.0 / 12.6)
+    assert modes[(1, 1, 0)] == pytest.approx(171.5 * np.hypot(1 / 5.2, 1 / 6.3))
+
+
+def test_modal_sum_of_plane_modes_is_the_closed_form_duct():
+    # Kuttruff, Room Acoustics ch. 3: the eigenfunction expansion of the rigid-walled
+    # room's Green's function, G = Σ ψψ / (N (k_n² − k²)). Exciting only the modes with
+    # n_y = n_z = 0 (a source spread over the cross-section) leaves a 1-D rigid duct, whose
+    # Green's function is known in closed form (textbook, e.g. Morse and Ingard, Theoretical
+    # Acoustics, ch. 9): G = −cos(k x<) cos(k (L − x>)) / (S k sin kL).
+    dims = np.array([4.0, 3.0, 2.5])
+    length, area = dims[0], dims[1] * dims[2]
+    n = np.arange(0, 40001)
+    labels = np.stack([n, 0 * n, 0 * n], axis=1)
+    mode_hz = n * C / (2.0 * length)
+    freq = np.array([23.0, 61.0, 97.5, 150.3])  # away from the resonances
+    src = np.array([0.7, 1.0, 1.0])
+    mic = np.array([[3.1, 2.0, 0.5], [0.2, 0.3, 2.0]])
+    ours = modal_response(freq, src, mic, dims, labels, mode_hz, 0.0, C)
+    k = 2 * np.pi * freq / C
+    for row, x in zip(ours, mic[:, 0], strict=True):
+        lo, hi = min(x, src[0]), max(x, src[0])
+        closed = -np.cos(k * lo) * np.cos(k * (length - hi)) / (area * k * np.sin(k * length))
+        np.testing.assert_allclose(row.real, closed, rtol=2e-3, atol=1e-7)
+        assert np.max(np.abs(row.imag)) == 0.0
+
+
+def test_modal_response_peaks_at_rayleigh_frequency():
+    # Kuttruff ch. 3: a lightly damped mode peaks at its eigenfrequency with half-power
+    # bandwidth δ/π (δ = 3 ln 10 / T60); one axial mode alone, source and receiver at antinodes.
+    dims = np.array([5.0, 4.0, 3.0])
+    labels = np.array([[1, 0, 0]])
+    mode_hz = np.array([C / 10.0])
+    delta = 3 * np.log(10) / 0.5
+    freq = np.linspace(20, 50, 30001)
+    g = modal_response(freq, np.zeros(3), np.zeros((1, 3)), dims, labels, mode_hz, delta, C)[0]
+    mag = np.abs(g)
+    # the peak of |1/(ω_n² − ω² + 2jδω)| sits at sqrt(ω_n² − 2δ²)
+    f_peak = np.sqrt((2 * np.pi * mode_hz[0]) ** 2 - 2 * delta**2) / (2 * np.pi)
+    assert freq[np.argmax(mag)] == pytest.approx(f_peak, abs=2e-3)
+    above = freq[mag >= mag.max() / np.sqrt(2)]
+    assert above[-1] - above[0] == pytest.approx(delta / np.pi, rel=0.02)
+
+
+def test_image_sources_match_pyroomacoustics():
+    # Allen and Berkley 1979 image method; pyroomacoustics' ShoeBox implements it independently.
+    dims = np.array([5.2, 6.3, 2.6])
+    src = np.array([1.4, 0.95, 1.0])
+    mic = np.array([2.6, 3.6, 1.1])
+    ours = sorted(float(np.linalg.norm(p - mic)) for p, _ in image_sources(src, dims, 2))
+    room = pra.ShoeBox(dims, fs=16000, max_order=2)
+    room.add_source(src)
+    room.add_microphone(mic)
+    room.image_source_model()
+    theirs = sorted(np.linalg.norm(room.sources[0].images - mic[:, None], axis=0))
+    assert len(ours) == 25 == len(theirs)  # 1 + 6 + 18 images of order <= 2
+    np.testing.assert_allclose(ours, theirs, rtol=1e-6)  # pyroomacoustics works in float32
+
+
+def test_first_order_reflection_delays():
+    # Allen and Berkley 1979: the floor's image sits at (x, y, −z); its path is the
+    # distance from there, the delay after the direct sound (path − direct) / c.
+    dims = np.array([5.2, 6.3, 2.6])
+    src = np.array([1.4, 0.95, 1.0])
+    mic = np.array([2.6, 3.6, 1.1])
+    refl = first_order_reflections(src, mic, dims, C)
+    direct = np.linalg.norm(src - mic)
+    floor = np.linalg.norm(np.array([1.4, 0.95, -1.0]) - mic)
+    assert refl[4]["delay_after_direct_s"] == pytest.approx((floor - direct) / C)
+    front = np.linalg.norm(np.array([1.4, -0.95, 1.0]) - mic)
+    assert refl[2]["distance_m"] == pytest.approx(0.95)
+    assert refl[2]["path_m"] == pytest.approx(front)
+    assert refl[3]["distance_m"] == pytest.approx(6.3 - 0.95)
+
+
+def test_quarter_wave_boundary_notch():
+    # Common practice: a source d in front of a rigid wall, heard far away on the wall's
+    # normal, meets its mirror image delayed by 2d / c: the first notch is at c / (4d),
+    # the next ones at odd multiples.
+    d = 0.6
+    src = np.array([d, 50.0, 50.0])
+    mic = np.array([d + 40.0, 50.0, 50.0])
+    images = [(src, (0,) * 6), (np.array([-d, 50.0, 50.0]), (1, 0, 0, 0, 0, 0))]
+    freq = np.linspace(20.0, 800.0, 78001)
+    p = np.abs(early_spectrum(freq, images, mic, np.ones(6), np.ones(freq.size), C))
+    minima = freq[signal.argrelmin(p)[0]]
+    np.testing.assert_allclose(minima[:3], C / (4 * d) * np.array([1, 3, 5]), rtol=2e-3)
+
+
+def test_highpass_matches_scipy_butterworth():
+    # scipy.signal.butter (analog): a 4th-order Butterworth high-pass is two 2nd-order
+    # sections with Q = 0.5412 and 1.3066.
+    freq = np.geomspace(5, 500, 200)
+    b, a = signal.butter(4, 2 * np.pi * 50.0, "high", analog=True)
+    _, theirs = signal.freqs(b, a, 2 * np.pi * freq)
+    q = 1 / (2 * np.cos(np.pi / 8)), 1 / (2 * np.cos(3 * np.pi / 8))
+    np.testing.assert_allclose(highpass_response(freq, 50.0, q), theirs, rtol=1e-9)
+
+
+def test_fit_model_sum_equals_physics_modal_response():
+    # The fit's cached modal sum must be the public modal_response (Kuttruff ch. 3) exactly.
+    from roomcorr.placement import model as m
+
+    geom = m.Geometry(np.array([4.1, 5.3, 2.5]), np.array([[1.0, 0.6, 0.9]]),
+                      np.array([[2.0, 3.1, 1.1], [2.3, 3.0, 1.2]]))
+    damping = np.array([2.0, 3.0, 4.0])
+    grid = m.fit_grid()
+    ours = m._room_db(geom, geom.speakers_m, damping, 343.0, grid, cache={})
+    lin = m._lin_freqs()
+    labels, mode_hz = m._modes((4.1, 5.3, 2.5), 343.0)
+    h = modal_response(lin, geom.speakers_m[0], geom.mics_m, geom.size_m, labels, mode_hz,
+                       m.mode_damping(labels, damping), 343.0)
+    from roomcorr.analysis.smoothing import smooth_bins_to_grid
+
+    ref = 10 * np.log10(smooth_bins_to_grid(np.abs(h) ** 2, lin, grid, m.FIT_SMOOTH_OCT))
+    np.testing.assert_allclose(ours[0], ref, atol=1e-9)
