@@ -163,9 +163,17 @@ class BodyLimit:
     is never collected (uvicorn stops reading the socket while nobody reads the body).
     """
 
-    def __init__(self, app: ASGIApp, limit: int = MAX_BODY_BYTES) -> None:
+    def __init__(
+        self,
+        app: ASGIApp,
+        limit: int = MAX_BODY_BYTES,
+        per_path: dict[str, int] | None = None,
+    ) -> None:
         self.app = app
         self.limit = limit
+        #: Routes that take larger bodies (impulse responses brought in), each with its own
+        #: bound; they read the body themselves, as a stream, within it.
+        self.per_path = dict(per_path or {})
 
     async def _refuse(self, scope: Scope, receive: Any, send: Any, status: int, text: str) -> None:
         response = JSONResponse(
@@ -174,7 +182,7 @@ class BodyLimit:
         await response(scope, receive, send)
 
     async def __call__(self, scope: Scope, receive: Any, send: Any) -> None:
-        if scope["type"] != "http":
+        if scope["type"] != "http" or scope.get("path") in self.per_path:
             await self.app(scope, receive, send)
             return
         length = dict(scope["headers"]).get(b"content-length")
@@ -475,10 +483,8 @@ def create_app(room: rooms.Room, token: str, port: int) -> ASGIApp:
             if size > limit:
                 raise _TooLarge(f"request: larger than {limit // (1024 * 1024)} MB")
             chunks.append(chunk)
-        try:
-            data = json.loads(b"".join(chunks))
-        except (ValueError, UnicodeDecodeError):
-            raise RoomcorrError("request: expected a JSON object") from None
+        # depth, integer and NaN limits as for every other body and file
+        data = loads_json(b"".join(chunks), "request", BadNameError, constants=True)
         if not isinstance(data, dict):
             raise RoomcorrError("request: expected a JSON object")
         return data
@@ -531,7 +537,11 @@ def create_app(room: rooms.Room, token: str, port: int) -> ASGIApp:
         WebSocketRoute("/api/live", live.endpoint),
         *measurer.routes(),
     ]
-    return Guard(BodyLimit(Starlette(routes=routes)), token, port)
+    return Guard(
+        BodyLimit(Starlette(routes=routes), per_path={"/api/import": MAX_IMPORT_BYTES}),
+        token,
+        port,
+    )
 
 
 class MeasureRoutes:
