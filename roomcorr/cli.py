@@ -919,6 +919,19 @@ def _take_over_interrupts() -> None:
         raise KeyboardInterrupt
 
 
+def _interrupt_again(unraisable: Any) -> None:
+    """``sys.unraisablehook`` while a command runs: a Ctrl-C that arrived inside a
+    finaliser or weak-reference callback (where Python prints "Exception ignored" with a
+    traceback and carries on) is delivered again, so that it stops the command in one
+    line; anything else goes to Python's own hook."""
+    import signal
+
+    if isinstance(unraisable.exc_value, KeyboardInterrupt):
+        signal.raise_signal(signal.SIGINT)
+        return
+    sys.__unraisablehook__(unraisable)
+
+
 def main(argv: list[str] | None = None) -> int:
     """Entry point of the ``roomcorr`` command; returns the exit status.
 
@@ -926,6 +939,15 @@ def main(argv: list[str] | None = None) -> int:
     error: exit 2 for an error, 130 for Ctrl-C (128 + SIGINT, the POSIX shell
     convention), at any moment from the first line on.
     """
+    hook = sys.unraisablehook
+    sys.unraisablehook = _interrupt_again
+    try:
+        return _main(argv)
+    finally:
+        sys.unraisablehook = hook
+
+
+def _main(argv: list[str] | None) -> int:
     try:
         _take_over_interrupts()
         parser = build_parser()

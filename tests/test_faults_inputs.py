@@ -518,3 +518,24 @@ def test_ctrl_c_noted_while_starting_is_answered_by_main(capsys, monkeypatch):
     assert main(["--help"]) == 130
     err = capsys.readouterr().err
     assert err.count("\n") == 1 and "interrupted" in err
+
+
+def test_ctrl_c_inside_a_finaliser_is_delivered_again(monkeypatch):
+    # A SIGINT that arrives while Python runs a weak-reference callback is printed as
+    # "Exception ignored ... Traceback" and lost (Python's unraisable hook); while a
+    # command runs, roomcorr's hook delivers it again so that it stops the command.
+    import signal
+    import types
+
+    from roomcorr.cli import _interrupt_again
+
+    seen = []
+    old = signal.signal(signal.SIGINT, lambda *a: seen.append("SIGINT"))
+    try:
+        _interrupt_again(types.SimpleNamespace(exc_value=KeyboardInterrupt()))
+        for _ in range(1000):  # the handler runs between bytecodes, soon after
+            if seen:
+                break
+    finally:
+        signal.signal(signal.SIGINT, old)
+    assert seen == ["SIGINT"]
