@@ -924,10 +924,12 @@ def _interrupt_again(unraisable: Any) -> None:
     finaliser or weak-reference callback (where Python prints "Exception ignored" with a
     traceback and carries on) is delivered again, so that it stops the command in one
     line; anything else goes to Python's own hook."""
-    import signal
+    import _thread
+    import threading
 
     if isinstance(unraisable.exc_value, KeyboardInterrupt):
-        signal.raise_signal(signal.SIGINT)
+        # from another thread, a moment later: raised here, it would be lost again
+        threading.Timer(0.01, _thread.interrupt_main).start()
         return
     sys.__unraisablehook__(unraisable)
 

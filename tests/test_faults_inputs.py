@@ -525,6 +525,7 @@ def test_ctrl_c_inside_a_finaliser_is_delivered_again(monkeypatch):
     # "Exception ignored ... Traceback" and lost (Python's unraisable hook); while a
     # command runs, roomcorr's hook delivers it again so that it stops the command.
     import signal
+    import time
     import types
 
     from roomcorr.cli import _interrupt_again
@@ -533,9 +534,9 @@ def test_ctrl_c_inside_a_finaliser_is_delivered_again(monkeypatch):
     old = signal.signal(signal.SIGINT, lambda *a: seen.append("SIGINT"))
     try:
         _interrupt_again(types.SimpleNamespace(exc_value=KeyboardInterrupt()))
-        for _ in range(1000):  # the handler runs between bytecodes, soon after
-            if seen:
-                break
+        deadline = time.monotonic() + 5
+        while not seen and time.monotonic() < deadline:  # delivered a moment later
+            time.sleep(0.005)
     finally:
         signal.signal(signal.SIGINT, old)
     assert seen == ["SIGINT"]
