@@ -976,6 +976,14 @@ def _main(argv: list[str] | None) -> int:
     except RecursionError:  # a reader without a depth limit met a deeply nested file
         print(f"{PROG}: error: an input file is nested too deeply to read", file=sys.stderr)
         return 2
+    except ImportError as exc:
+        # Ctrl-C while a compiled module initialises: it is turned into an ImportError
+        # ("initialization failed") caused by the KeyboardInterrupt
+        if not isinstance(exc.__cause__ or exc.__context__, KeyboardInterrupt):
+            raise
+        with contextlib.suppress(KeyboardInterrupt, OSError):
+            print(f"{PROG}: interrupted; files already complete were kept", file=sys.stderr)
+        return 130
     except KeyboardInterrupt:
         with contextlib.suppress(KeyboardInterrupt, OSError):
             print(f"{PROG}: interrupted; files already complete were kept", file=sys.stderr)

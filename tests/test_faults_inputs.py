@@ -540,3 +540,21 @@ def test_ctrl_c_inside_a_finaliser_is_delivered_again(monkeypatch):
     finally:
         signal.signal(signal.SIGINT, old)
     assert seen == ["SIGINT"]
+
+
+def test_ctrl_c_while_a_compiled_module_initialises_is_one_line(capsys, monkeypatch):
+    # found by the trust soak: a SIGINT during scipy's extension start-up surfaces as
+    # ImportError("initialization failed") caused by the KeyboardInterrupt
+    from roomcorr import cli
+
+    def interrupted(args):
+        try:
+            raise KeyboardInterrupt
+        except KeyboardInterrupt as exc:
+            raise ImportError("initialization failed") from exc
+
+    commands = [(n, add, interrupted if n == "history" else run) for n, add, run in cli._COMMANDS]
+    monkeypatch.setattr(cli, "_COMMANDS", commands)
+    assert cli.main(["history"]) == 130
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "interrupted" in err and "Traceback" not in err
