@@ -7,11 +7,11 @@ robustness run, not a speed figure). Everything happens in a temporary folder:
 * a room (one measurement, one design), a plain design folder ``d`` outside it and an
   ``outside`` folder with a file roomcorr must never touch;
 * each writer is run once to the end to time it; then each round starts one writer, or
-  two at once, and kills it (SIGKILL or SIGINT) after a random, seeded delay of 0.2 to
-  1.05 times that duration (so that kills land while files are written): ``design`` in the room, ``design --replace`` and ``report``
-  of ``d``, ``report .`` inside ``d``, the app's Save and full-report button (the app
-  server is the killed process), and the app's Save together with a ``design`` from
-  the command line;
+  two at once, and kills it (SIGKILL or SIGINT) after a random, seeded delay of 0.15 to
+  0.95 times that duration (so that kills land while files are written): ``design``
+  in the room, ``design --replace`` and ``report`` of ``d``, ``report .`` inside
+  ``d``, the app's Save and full-report button (the app server is the killed
+  process), and the app's Save together with a ``design`` from the command line;
 * after every round: ``d`` must hold exactly the files its manifest lists with their
   SHA-256 (:func:`roomcorr.deliver.export.design_differences`), every finished run of
   the room must pass its record's check (:func:`roomcorr.rooms.check_run`), and
@@ -416,7 +416,7 @@ def main(kills: int = 100, seed: int = 22) -> None:
         for i in range(kills):
             action = actions[i % len(actions)] if i < len(actions) else rng.choice(actions)
             counts[action] += 1
-            ended, errs = _kill_round(rng, action, root, rng.uniform(0.2, 1.05) * took[action])
+            ended, errs = _kill_round(rng, action, root, rng.uniform(0.15, 0.95) * took[action])
             cut += ended == "cut"
             tb = sum("Traceback" in e or "HTTP 500" in e for e in errs)
             bad = _mixed(root)

@@ -1421,6 +1421,21 @@ def _take_over_interrupts() -> None:
         raise KeyboardInterrupt
 
 
+def _interrupt_again(unraisable: Any) -> None:
+    """``sys.unraisablehook`` while a command runs: a Ctrl-C that arrived inside a
+    finaliser or weak-reference callback (where Python prints "Exception ignored" with a
+    traceback and carries on) is delivered again, so that it stops the command in one
+    line; anything else goes to Python's own hook."""
+    import _thread
+    import threading
+
+    if isinstance(unraisable.exc_value, KeyboardInterrupt):
+        # from another thread, a moment later: raised here, it would be lost again
+        threading.Timer(0.01, _thread.interrupt_main).start()
+        return
+    sys.__unraisablehook__(unraisable)
+
+
 def main(argv: list[str] | None = None) -> int:
     """Entry point of the ``roomcorr`` command; returns the exit status.
 
@@ -1428,6 +1443,15 @@ def main(argv: list[str] | None = None) -> int:
     error: exit 2 for an error, 130 for Ctrl-C (128 + SIGINT, the POSIX shell
     convention), at any moment from the first line on.
     """
+    hook = sys.unraisablehook
+    sys.unraisablehook = _interrupt_again
+    try:
+        return _main(argv)
+    finally:
+        sys.unraisablehook = hook
+
+
+def _main(argv: list[str] | None) -> int:
     try:
         _take_over_interrupts()
         parser = build_parser()
@@ -1454,6 +1478,14 @@ def main(argv: list[str] | None = None) -> int:
     except RecursionError:  # a reader without a depth limit met a deeply nested file
         print(f"{PROG}: error: an input file is nested too deeply to read", file=sys.stderr)
         return 2
+    except ImportError as exc:
+        # Ctrl-C while a compiled module initialises: it is turned into an ImportError
+        # ("initialization failed") caused by the KeyboardInterrupt
+        if not isinstance(exc.__cause__ or exc.__context__, KeyboardInterrupt):
+            raise
+        with contextlib.suppress(KeyboardInterrupt, OSError):
+            print(f"{PROG}: interrupted; files already complete were kept", file=sys.stderr)
+        return 130
     except KeyboardInterrupt:
         with contextlib.suppress(KeyboardInterrupt, OSError):
             print(f"{PROG}: interrupted; files already complete were kept", file=sys.stderr)

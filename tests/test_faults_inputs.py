@@ -518,3 +518,43 @@ def test_ctrl_c_noted_while_starting_is_answered_by_main(capsys, monkeypatch):
     assert main(["--help"]) == 130
     err = capsys.readouterr().err
     assert err.count("\n") == 1 and "interrupted" in err
+
+
+def test_ctrl_c_inside_a_finaliser_is_delivered_again(monkeypatch):
+    # A SIGINT that arrives while Python runs a weak-reference callback is printed as
+    # "Exception ignored ... Traceback" and lost (Python's unraisable hook); while a
+    # command runs, roomcorr's hook delivers it again so that it stops the command.
+    import signal
+    import time
+    import types
+
+    from roomcorr.cli import _interrupt_again
+
+    seen = []
+    old = signal.signal(signal.SIGINT, lambda *a: seen.append("SIGINT"))
+    try:
+        _interrupt_again(types.SimpleNamespace(exc_value=KeyboardInterrupt()))
+        deadline = time.monotonic() + 5
+        while not seen and time.monotonic() < deadline:  # delivered a moment later
+            time.sleep(0.005)
+    finally:
+        signal.signal(signal.SIGINT, old)
+    assert seen == ["SIGINT"]
+
+
+def test_ctrl_c_while_a_compiled_module_initialises_is_one_line(capsys, monkeypatch):
+    # found by the trust soak: a SIGINT during scipy's extension start-up surfaces as
+    # ImportError("initialization failed") caused by the KeyboardInterrupt
+    from roomcorr import cli
+
+    def interrupted(args):
+        try:
+            raise KeyboardInterrupt
+        except KeyboardInterrupt as exc:
+            raise ImportError("initialization failed") from exc
+
+    commands = [(n, add, interrupted if n == "history" else run) for n, add, run in cli._COMMANDS]
+    monkeypatch.setattr(cli, "_COMMANDS", commands)
+    assert cli.main(["history"]) == 130
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "interrupted" in err and "Traceback" not in err
