@@ -269,13 +269,13 @@ def test_report_has_the_system_section(design):
     assert "Loudspeakers together" in render_html(report)
 
 
-def test_readme_route_picture_is_the_codes(design):
-    """The route picture in the README is the one the code draws."""
+def test_documented_route_picture_is_the_codes(design):
+    """The route picture in the manifest reference is the one the code draws."""
     from conftest import REPO
 
     result, _ = design
     picture = route_diagram(["left", "right", "sub"], result.system)
-    assert picture in (REPO / "README.md").read_text(encoding="utf-8")
+    assert picture in (REPO / "docs" / "reference" / "manifest.md").read_text(encoding="utf-8")
 
 
 def test_design_takes_the_names_measure_stored(ir_files, tmp_path):

@@ -16,6 +16,7 @@ import numpy as np
 
 from roomcorr.deliver.figures import fmt_db
 from roomcorr.design.area import LEVEL_BLEND_HZ
+from roomcorr.design.mixedphase import latency_sentence
 from roomcorr.design.target import REFERENCE_BAND_HZ
 from roomcorr.errors import RoomcorrError
 from roomcorr.pipeline import resolve_target
@@ -119,11 +120,8 @@ def glance_sentences(
         )
     out.append(level + ".")
     mp = curves.get("mixed_phase")
-    if mp:  # the full sentence with its caution stands once, in the section below
-        out.append(
-            f"Mixed phase: every FIR filter delays the sound by {mp['latency_ms']:g} ms "
-            "(per rate and the caution below)."
-        )
+    if mp:  # the latency per rate and its caution stand here, once in the whole report
+        out.append(latency_sentence(mp["latency_ms"], mp["latency_samples"]))
     return out
 
 

@@ -989,7 +989,9 @@ def build_report(
         overview.paragraphs.append(_comparison_sentence(comparison))
     if designed:  # every sentence, channel by channel, below the short overview
         changes = Section("changes", SECTION_TITLES["changes"])
-        changes.paragraphs.extend(summary_sentences(curves, ctx.caps["max_boost_db"], ctx.figures))
+        changes.paragraphs.extend(
+            summary_sentences(curves, ctx.caps["max_boost_db"], ctx.figures, latency=False)
+        )
         sections.append(changes)
     if designed:
         from roomcorr.report.system import system_sections

@@ -306,6 +306,7 @@ def summary_sentences(
     curves: dict[str, Any],
     max_boost_db: float | None = None,
     figures: dict[str, Any] | None = None,
+    latency: bool = True,
 ) -> list[str]:
     """All sentences of a design, channel by channel, then the level.
 
@@ -318,6 +319,9 @@ def summary_sentences(
     figures : dict, optional
         The manifest's figures block (:func:`roomcorr.deliver.figures.figures_of_manifest`);
         its pre-gain, largest boost, peak gain and worst-case gain are stated as stored.
+    latency : bool, optional
+        State a mixed-phase design's latency and its caution (the report leaves it to
+        its overview, so that it stands once).
 
     Returns
     -------
@@ -342,7 +346,7 @@ def summary_sentences(
             f"worst-case gain {fmt_db(figures['worst_case_gain_db'], 2, True)}."
         )
     mp = curves.get("mixed_phase")
-    if mp:
+    if mp and latency:
         from roomcorr.design.mixedphase import latency_sentence
 
         out.append(latency_sentence(mp["latency_ms"], mp["latency_samples"]))
