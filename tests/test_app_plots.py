@@ -322,6 +322,13 @@ def test_browser_plots_fit_their_curves_and_a_finger_can_drag(room, tmp_path):
                 got = driver.execute_script(f"return window.roomcorrHeat({db})")
                 assert got == list(rgb)
 
+            # the saved design can be heard from the Design page: its second link opens the
+            # Files page's Listen row on that design
+            driver.find_element(By.CSS_SELECTOR, "nav button[data-tab=design]").click()
+            driver.find_element(By.ID, "d-saved-listen").click()
+            wait.until(ec.text_to_be_present_in_element((By.ID, "files-title"), new_id))
+            assert driver.find_element(By.ID, "listen-start").is_displayed()
+
             # Compare: a difference curve below the two
             driver.find_element(By.CSS_SELECTOR, "nav button[data-tab=room]").click()
             driver.find_element(By.ID, "c-go").click()

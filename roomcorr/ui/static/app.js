@@ -1363,6 +1363,22 @@ async function saveDesign() {
       openRun(run);
     });
     box.append(open);
+    // hear it at once: the Files page's Listen row, on this design (corrected / uncorrected
+    // at equal loudness, the same routes as roomcorr listen)
+    box.append(" or ");
+    const hear = document.createElement("a");
+    hear.href = "#"; hear.id = "d-saved-listen"; hear.textContent = "listen to it";
+    hear.addEventListener("click", async ev => {
+      ev.preventDefault();
+      showTab("files");
+      try {
+        await loadFiles(res.run_id);
+        document.getElementById("listen").scrollIntoView({ block: "center" });
+      } catch (err) {
+        status(String(err.message || err), true);
+      }
+    });
+    box.append(hear);
     box.hidden = false;
   } catch (err) {
     status(String(err.message || err), true);
