@@ -989,6 +989,14 @@ def _run_layout(args: argparse.Namespace) -> int:
     return 0
 
 
+def _add_placement_inputs(p: argparse.ArgumentParser) -> None:
+    """The measured positions, the layout and the room: what predict and advise start from."""
+    p.add_argument("irs", nargs="*", metavar="POS.wav",
+                   help="measured positions (default: the room's latest measurement)")
+    p.add_argument("--layout", metavar="FILE.toml", help="layout (default: the room's)")
+    p.add_argument("--room", metavar="ROOM_DIR", help="room folder (default: the one you are in)")
+
+
 def _add_predict(sub: Any) -> argparse.ArgumentParser:
     p = sub.add_parser(
         "predict",
@@ -998,10 +1006,7 @@ def _add_predict(sub: Any) -> argparse.ArgumentParser:
         "loudspeaker at the seat after the moves given. Written at 48 kHz, one channel per "
         "loudspeaker in the layout's order, valid at low frequencies only (stated).",
     )
-    p.add_argument("irs", nargs="*", metavar="POS.wav",
-                   help="measured positions (default: the room's latest measurement)")
-    p.add_argument("--layout", metavar="FILE.toml", help="layout (default: the room's)")
-    p.add_argument("--room", metavar="ROOM_DIR", help="room folder (default: the one you are in)")
+    _add_placement_inputs(p)
     p.add_argument("--move", type=_named_triple, action="append", metavar="NAME=x,y,z",
                    help="move a loudspeaker there (repeat)")
     p.add_argument("--seat", type=_triple, metavar="x,y,z", help="predict at this seat")
@@ -1032,10 +1037,7 @@ def _add_advise(sub: Any) -> argparse.ArgumentParser:
         "correction for each through the same design code, and rank them by the predicted "
         "bass over the listening area after correction.",
     )
-    p.add_argument("irs", nargs="*", metavar="POS.wav",
-                   help="measured positions (default: the room's latest measurement)")
-    p.add_argument("--layout", metavar="FILE.toml", help="layout (default: the room's)")
-    p.add_argument("--room", metavar="ROOM_DIR", help="room folder (default: the one you are in)")
+    _add_placement_inputs(p)
     p.add_argument("--max-move", type=_finite, default=0.5, metavar="M",
                    help="how far a loudspeaker may move from where it is, m (default 0.5)")
     p.add_argument("--seat-range", type=_finite, default=0.5, metavar="M",
