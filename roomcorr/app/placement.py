@@ -7,6 +7,7 @@ and :mod:`roomcorr.physics`.
 
 from __future__ import annotations
 
+import itertools
 from pathlib import Path
 from typing import Any
 
@@ -14,7 +15,10 @@ import numpy as np
 
 from roomcorr import rooms
 from roomcorr.audio_io import read_ir_set, write_wav
+from roomcorr.deliver.atomic import atomic_write_bytes
 from roomcorr.errors import SettingsError
+from roomcorr.evaluation.metrics import peak_db, ripple_db
+from roomcorr.pipeline import analyse, design_curves, resolve_target
 from roomcorr.placement import causes as causes_mod
 from roomcorr.placement.layout import (
     Layout,
@@ -33,6 +37,8 @@ from roomcorr.placement.model import (
     fit_grid,
     predicted_ir,
 )
+from roomcorr.report.figures import plan_figure, png_bytes
+from roomcorr.settings import Settings
 
 #: Sample rate of the predicted impulse responses, Hz.
 PREDICT_FS = 48000
@@ -359,8 +365,6 @@ def _candidates(
             d[:, 1] = dy
             moves.append(d)
     else:
-        import itertools
-
         for dys in itertools.product(steps, repeat=min(len(spk), 3)):
             d = np.zeros_like(spk)
             d[: len(dys), 1] = dys
@@ -435,10 +439,6 @@ def advise_command(
         ``score`` (mean of the two ratios to the current placement) and ``text``;
         ``model`` (the fit's figures), ``plan`` (for drawing) and ``cautions``.
     """
-    from roomcorr.evaluation.metrics import peak_db, ripple_db
-    from roomcorr.pipeline import analyse, design_curves, resolve_target
-    from roomcorr.settings import Settings
-
     checks = (("--max-move", max_move_m, 0.0, 3.0), ("--seat-range", seat_range_m, 0.0, 3.0),
               ("--wall-min", wall_min_m, 0.0, 2.0))
     for what, val, lo, hi in checks:
@@ -535,8 +535,6 @@ def advise_command(
 
 def _deepest_dip(freq: np.ndarray, analysis: Any, settings: Any, target_shape: np.ndarray
                  ) -> float | None:
-    from roomcorr.pipeline import design_curves
-
     chans = design_curves(analysis, settings, target_shape)
     best, f0 = 0.0, None
     for ch in chans:
@@ -626,9 +624,6 @@ def format_advice(res: dict[str, Any]) -> list[str]:
 
 def write_plan(res: dict[str, Any], path: str | Path) -> Path:
     """Draw the plan of an :func:`advise_command` result as a PNG (atomically)."""
-    from roomcorr.deliver.atomic import atomic_write_bytes
-    from roomcorr.report.figures import plan_figure, png_bytes
-
     if not str(path).lower().endswith(".png"):
         raise SettingsError(f"--plot {path}: the plan is a PNG; name a file ending in .png")
     return atomic_write_bytes(path, png_bytes(plan_figure(res["plan"])))

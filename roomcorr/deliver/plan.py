@@ -20,6 +20,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+import soundfile as sf
 
 from roomcorr.deliver.atomic import PathEscapeError, contained, sha256_of
 from roomcorr.deliver.export import read_manifest
@@ -123,8 +124,6 @@ def load_route_plan(design_dir: str | Path, fs: int) -> RoutePlan:
         If the folder is not a design, a route names a file outside it, or a
         filter file changed since it was written (SHA-256 differs).
     """
-    import soundfile as sf
-
     out = Path(design_dir)
     manifest = read_manifest(out)
     rates = design_rates(manifest)

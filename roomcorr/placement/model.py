@@ -39,6 +39,7 @@ from functools import lru_cache
 
 import numpy as np
 from scipy.optimize import least_squares
+from scipy.signal import butter, sosfiltfilt
 
 from roomcorr.analysis.smoothing import smooth_bins_to_grid
 from roomcorr.errors import SettingsError
@@ -319,8 +320,6 @@ def initial_damping(irs: np.ndarray, fs: int) -> float:
     gives T; δ = 6.91 / T is shared by the three pairs (an oblique mode has 2 δ_pair
     per pair, summed over the three).
     """
-    from scipy.signal import butter, sosfiltfilt
-
     sos = butter(4, 300.0, "low", fs=fs, output="sos")
     x = sosfiltfilt(sos, np.asarray(irs, float).reshape(-1, np.shape(irs)[-1]), axis=-1)
     energy = np.cumsum((x**2).sum(axis=0)[::-1])[::-1]

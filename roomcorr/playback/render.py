@@ -21,6 +21,7 @@ from typing import Any
 
 import numpy as np
 import scipy.fft
+import soundfile as sf
 
 from roomcorr.checked import regular_file
 from roomcorr.deliver.atomic import atomic_write_with
@@ -182,8 +183,6 @@ def apply_file(
     SafetyError
         The output would exceed full scale and ``lower`` is false.
     """
-    import soundfile as sf
-
     src_path = regular_file(in_path, "audio file")
     dst = Path(out_path)
     if subtype not in SUBTYPES:
