@@ -147,6 +147,24 @@ def make_room(jack_server, tmp_path):
         r.close()
 
 
+#: Short sweeps and windows for the command-line measurement tests (a settings file).
+QUICK_TOML = "[measure]\nnoise_s = 0.2\ntail_s = 0.32\ntest_s = 0.2\nir_s = 0.2\n"
+
+
+def roomcorr_cmd(
+    *args: str, cwd=None, stdin: str | None = None, timeout: float = 240.0
+) -> subprocess.CompletedProcess:
+    """``roomcorr ARGS`` as a user runs it (a subprocess of this Python), output captured."""
+    return subprocess.run(
+        [sys.executable, "-m", "roomcorr", *args],
+        capture_output=True,
+        text=True,
+        timeout=timeout,
+        cwd=cwd,
+        input=stdin,
+    )
+
+
 def run_measure(args: list[str], timeout: float = 180.0) -> subprocess.CompletedProcess:
     """``roomcorr measure ARGS`` in a subprocess, retried (at most twice) only when the
     dummy JACK driver dropped buffers on a loaded machine; the buffer gate itself is

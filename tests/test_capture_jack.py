@@ -12,7 +12,14 @@ import sys
 import numpy as np
 import pytest
 import soundfile as sf
-from jack_fixtures import FS, jack_server, make_room, run_measure  # noqa: F401  (pytest fixtures)
+from jack_fixtures import (  # noqa: F401  (pytest fixtures)
+    FS,
+    QUICK_TOML,
+    jack_server,
+    make_room,
+    roomcorr_cmd,
+    run_measure,
+)
 
 from roomcorr.errors import DeviceError
 from roomcorr.measure import capture
@@ -417,20 +424,6 @@ def test_two_streams_with_clock_drift_and_changing_latency(make_room, tmp_path, 
 
 # ----------------------------------------------------------- the command line, two devices
 
-QUICK_TOML = "[measure]\nnoise_s = 0.2\ntail_s = 0.32\ntest_s = 0.2\nir_s = 0.2\n"
-
-
-def roomcorr_cmd(*args, cwd=None, timeout=240, stdin=None):
-    import subprocess
-
-    return subprocess.run(
-        [sys.executable, "-m", "roomcorr", *args],
-        capture_output=True,
-        text=True,
-        timeout=timeout,
-        cwd=cwd,
-        input=stdin,
-    )
 
 
 #: Answers for the prompts of an interactive run: Enter at "place the microphone"

@@ -15,28 +15,19 @@ import os
 os.environ.setdefault("JACK_DEFAULT_SERVER", f"roomcorr-move-{os.getpid()}")
 
 import json  # noqa: E402
-import subprocess  # noqa: E402
-import sys  # noqa: E402
 
 import pytest  # noqa: E402
-from jack_fixtures import jack_server, make_room  # noqa: E402, F401  (pytest fixtures)
+from jack_fixtures import (  # noqa: E402, F401  (pytest fixtures)
+    QUICK_TOML,
+    jack_server,
+    make_room,
+    roomcorr_cmd,
+)
 from move_rooms import LEFT_M, RIGHT_M, SEAT_M, distance_change_m, moved, room_irs  # noqa: E402
 
-QUICK_TOML = "[measure]\nnoise_s = 0.2\ntail_s = 0.32\ntest_s = 0.2\nir_s = 0.2\n"
 #: "r" (repeat that loudspeaker) after a failed check, as a user would when the dummy JACK
 #: driver of a loaded machine drops buffers now and then; Enter at the position prompt.
 REPEAT_ANSWERS = "r\n" * 60
-
-
-def roomcorr_cmd(*args, cwd=None, stdin=None, timeout=300):
-    return subprocess.run(
-        [sys.executable, "-m", "roomcorr", *args],
-        capture_output=True,
-        text=True,
-        timeout=timeout,
-        cwd=cwd,
-        input=stdin,
-    )
 
 
 @pytest.mark.parametrize(
@@ -68,7 +59,7 @@ def test_compare_names_the_loudspeaker_that_moved(make_room, tmp_path, who, dist
             "measure", "--plain", "--sweep-seconds", "0.5", "--repeats", "1",
             "--input-device", name, "--output-device", name, "--two-streams",
             "--outputs", "1,2", "--names", "left,right", "--settings", str(cfg),
-            cwd=room, stdin=REPEAT_ANSWERS,
+            cwd=room, stdin=REPEAT_ANSWERS, timeout=300,
         )  # fmt: skip
         assert res.returncode == 0, res.stderr
         r.close()
