@@ -859,6 +859,13 @@ def _add_compare(sub: Any) -> argparse.ArgumentParser:
         "--design", metavar="RUN",
         help="design run to check (default: the one made from measurement A)",
     )
+    p.add_argument(
+        "--layout-before", metavar="FILE.toml",
+        help="layout A was measured with (default: the copy its run keeps); after a move, "
+        "compare sets the change the room model predicted beside the measured one",
+    )
+    p.add_argument("--layout-after", metavar="FILE.toml",
+                   help="layout B was measured with (default: the copy its run keeps)")
     p.add_argument("--json", action="store_true", help="machine-readable output")
     p.add_argument("--plot", metavar="FILE.png", help="also draw both responses overlaid")
     return p
@@ -877,6 +884,7 @@ def _run_compare(args: argparse.Namespace) -> int:
     res = compare_command(
         args.a, args.b, room_dir=args.room, temperature_c=args.temperature,
         fit_check=not args.no_filter_check, plot=args.plot, design=args.design,
+        layout_before=args.layout_before, layout_after=args.layout_after,
     )
     if args.json:
         print(json.dumps(res, indent=2))

@@ -11,6 +11,7 @@ from typing import Any
 import numpy as np
 
 from roomcorr.analysis.compare import compare_sets, filter_fit, fit_verdict, system_fit
+from roomcorr.app.moved import change_after_move
 from roomcorr.audio_io import read_ir_set
 from roomcorr.deliver.atomic import is_link_or_outside, sha256_of
 from roomcorr.deliver.export import load_design_curves, read_manifest
@@ -263,6 +264,8 @@ def compare_measurements(
     fit_check: bool = True,
     with_curves: bool = False,
     design: str | os.PathLike[str] | None = None,
+    layout_before: str | None = None,
+    layout_after: str | None = None,
 ) -> dict[str, Any]:
     """Compare two measurements (folders, WAV files or run ids of ``room``).
 
@@ -280,6 +283,9 @@ def compare_measurements(
         Also judge whether the design made from ``a`` still fits ``b``.
     design : str or path, optional
         The design to judge instead (a design run id of the room, or its folder).
+    layout_before, layout_after : str, optional
+        Layout files the two measurements were made with, instead of the copies their
+        runs keep (:func:`roomcorr.app.moved.run_layout`).
 
     Returns
     -------
@@ -288,7 +294,9 @@ def compare_measurements(
         ``before``, ``after`` (run ids inside the room, else paths), ``timing``
         (each run's basis from :func:`roomcorr.measure.timing.timing_basis` and
         :func:`roomcorr.measure.timing.common_origin`), ``speed_of_sound_formula``
-        and ``filter_fit``.
+        ``filter_fit`` and ``predicted_change`` (after a move: the change the room
+        model predicted at the seat beside the measured one,
+        :func:`roomcorr.app.moved.change_after_move`).
     """
     if a is None or b is None:
         if room is None:
@@ -363,6 +371,10 @@ def compare_measurements(
             except RoomcorrError as exc:
                 fit = {"available": False, "reason": " ".join(str(exc).split())}
     res["filter_fit"] = fit
+    res["predicted_change"] = change_after_move(
+        room, pa, irs_a, fs_a, pb, irs_b, fs_b, (res["before"], res["after"]),
+        layout_before, layout_after,
+    )
     return res
 
 
@@ -374,6 +386,8 @@ def compare_command(
     fit_check: bool = True,
     plot: str | None = None,
     design: str | None = None,
+    layout_before: str | None = None,
+    layout_after: str | None = None,
 ) -> dict[str, Any]:
     """What ``roomcorr compare`` does: compare two measurements, optionally drawing them.
 
@@ -391,6 +405,8 @@ def compare_command(
         (:func:`roomcorr.report.compare.write_comparison_plot`).
     design : str, optional
         Design run (id or folder) to judge instead of the one made from ``a``.
+    layout_before, layout_after : str, optional
+        Layout files of the two measurements (default: the copies their runs keep).
 
     Returns
     -------
@@ -408,6 +424,8 @@ def compare_command(
         fit_check=fit_check,
         with_curves=bool(plot),
         design=design,
+        layout_before=layout_before,
+        layout_after=layout_after,
     )
     if plot:
         write_comparison_plot(res, plot)

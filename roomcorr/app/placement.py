@@ -8,6 +8,8 @@ and :mod:`roomcorr.physics`.
 from __future__ import annotations
 
 import itertools
+import json
+import math
 from pathlib import Path
 from typing import Any
 
@@ -15,8 +17,14 @@ import numpy as np
 
 from roomcorr import rooms
 from roomcorr.audio_io import read_ir_set, write_wav
-from roomcorr.deliver.atomic import atomic_write_bytes
-from roomcorr.errors import SettingsError
+from roomcorr.checked import read_json
+from roomcorr.deliver.atomic import (
+    atomic_write_bytes,
+    atomic_write_text,
+    is_link_or_outside,
+    sha256_of,
+)
+from roomcorr.errors import RoomcorrError, SettingsError
 from roomcorr.evaluation.metrics import peak_db, ripple_db
 from roomcorr.pipeline import analyse, design_curves, resolve_target
 from roomcorr.placement import causes as causes_mod
@@ -55,6 +63,18 @@ PLACEMENT_CAUTIONS = (
 # --------------------------------------------------------------------------- layout
 
 
+def room_layout_file(room: rooms.Room) -> Path:
+    """The room's ``layout.toml``; refused when it is a link or leads out of the room (the
+    room's containment rule, as for its other files)."""
+    path = room_layout_path(room.root)
+    if path.is_symlink() or (path.exists() and is_link_or_outside(path, room.root)):
+        raise SettingsError(
+            f"{path}: a link or a file outside the room folder; not read (replace it with the "
+            "layout itself, e.g. roomcorr layout set)"
+        )
+    return path
+
+
 def find_layout(layout_file: str | None = None, room_dir: str | None = None) -> Layout | None:
     """The layout named, else the room's (``layout.toml``), else ``None``."""
     if layout_file:
@@ -62,7 +82,7 @@ def find_layout(layout_file: str | None = None, room_dir: str | None = None) -> 
     room = rooms.open_room(room_dir) if room_dir else rooms.find_room()
     if room is None:
         return None
-    path = room_layout_path(room.root)
+    path = room_layout_file(room)
     return read_layout(path) if path.is_file() else None
 
 
@@ -84,26 +104,37 @@ def set_layout(
     measured: list[Position] | None = None,
     layout_file: str | None = None,
     room_dir: str | None = None,
+    room: rooms.Room | None = None,
 ) -> tuple[Path, Layout]:
     """Create or update a layout file (the room's ``layout.toml`` unless a file is named).
 
     Values not given are kept from the existing file; a new file needs the size,
-    at least one loudspeaker and the seat.
+    at least one loudspeaker and the seat. Inside a room the file is read, checked
+    and written under the room lock (the command line and the app's plan view alike).
 
     Returns
     -------
     (Path, Layout)
     """
     if layout_file:
-        path = Path(layout_file)
-        room = None
-    else:
+        return _set_layout_at(Path(layout_file), size_m, speakers, seat, measured)
+    if room is None:
         room = rooms.open_room(room_dir) if room_dir else rooms.find_room()
-        if room is None:
-            raise SettingsError(
-                "layout: give --file FILE, or run it inside a room folder (see roomcorr init)"
-            )
-        path = room_layout_path(room.root)
+    if room is None:
+        raise SettingsError(
+            "layout: give --file FILE, or run it inside a room folder (see roomcorr init)"
+        )
+    with rooms.room_lock(room, "layout"):
+        return _set_layout_at(room_layout_file(room), size_m, speakers, seat, measured)
+
+
+def _set_layout_at(
+    path: Path,
+    size_m: Position | None,
+    speakers: list[tuple[str, Position]] | None,
+    seat: Position | None,
+    measured: list[Position] | None,
+) -> tuple[Path, Layout]:
     data: dict[str, Any] = read_layout(path).to_dict() if path.is_file() else {}
     if size_m is not None:
         data["room"] = {"size_m": list(size_m)}
@@ -117,11 +148,7 @@ def set_layout(
         if key not in data:
             raise SettingsError(f"layout: a new layout needs {opt}")
     layout = layout_from_dict(data, str(path))
-    if room is not None:
-        with rooms.room_lock(room, "layout"):
-            write_layout(path, layout)
-    else:
-        write_layout(path, layout)
+    write_layout(path, layout)
     return path, layout
 
 
@@ -447,6 +474,11 @@ def advise_command(
     if not 1 <= top <= 20:
         raise SettingsError(f"--top {top}: expected 1 to 20")
     layout = need_layout(layout_file, room_dir)
+    # inside a room, on its own measurement and layout: the advice is kept for the plan
+    # view and for compare (which suggestion a later move followed)
+    keep_in = None if ir_paths or layout_file else (
+        rooms.open_room(room_dir) if room_dir else rooms.find_room())
+    layout_sha = sha256_of(room_layout_file(keep_in)) if keep_in is not None else None
     if model is None:
         model, irs, fs = calibrated_model(ir_paths, layout, room_dir)
     else:
@@ -522,7 +554,7 @@ def advise_command(
         "map": bass_map(model, np.asarray(list(suggestions[0]["speakers_m"].values()))
                         + model.offsets_m if suggestions else spk0, layout),
     }
-    return {
+    out = {
         "model": model_summary(model),
         "current": {"boom_db": round(current["boom_db"], 2),
                     "ripple_db": round(current["ripple_db"], 2)},
@@ -531,6 +563,10 @@ def advise_command(
         "plan": plan,
         "cautions": list(PLACEMENT_CAUTIONS),
     }
+    if keep_in is not None and layout_sha is not None:
+        meas = rooms.latest_measurement(keep_in).name
+        out["stored"] = str(store_advice(keep_in, out, layout_sha, meas))
+    return out
 
 
 def _deepest_dip(freq: np.ndarray, analysis: Any, settings: Any, target_shape: np.ndarray
@@ -627,3 +663,98 @@ def write_plan(res: dict[str, Any], path: str | Path) -> Path:
     if not str(path).lower().endswith(".png"):
         raise SettingsError(f"--plot {path}: the plan is a PNG; name a file ending in .png")
     return atomic_write_bytes(path, png_bytes(plan_figure(res["plan"])))
+
+
+# --------------------------------------------------------------------------- stored advice
+
+#: Where ``roomcorr advise`` keeps its last suggestions in a room folder (the app's plan
+#: view draws them; ``compare`` names the suggestion a move followed).
+ADVICE_FILE = "advice.json"
+#: Largest advice file read, bytes (a few suggestions and a 13 x 15 map: a few kB).
+MAX_ADVICE_BYTES = 256 * 1024
+
+
+def store_advice(room: rooms.Room, res: dict[str, Any], layout_sha256: str,
+                 measurement: str) -> Path:
+    """Keep an :func:`advise_command` result in the room folder (atomically, under the lock),
+    with the SHA-256 of the layout file and the measurement run it was made from."""
+    data = {
+        "made_utc": rooms.folder.iso_utc(rooms.folder.utc_now()),
+        "measurement": measurement,
+        "layout_sha256": layout_sha256,
+        "current": res["current"],
+        "suggestions": res["suggestions"],
+        "plan": res["plan"],
+        "model": res["model"],
+    }
+    path = room.root / ADVICE_FILE
+    with rooms.room_lock(room, "advice"):
+        if is_link_or_outside(path, room.root) and (path.exists() or path.is_symlink()):
+            raise SettingsError(f"{path}: a link or outside the room folder; not written")
+        return atomic_write_text(path, json.dumps(data, indent=1, allow_nan=False) + "\n")
+
+
+def _triple_ok(v: Any) -> bool:
+    return (isinstance(v, list) and len(v) == 3
+            and all(isinstance(x, int | float) and not isinstance(x, bool)
+                    and math.isfinite(x) for x in v))
+
+
+def _advice_problem(data: Any) -> str | None:
+    """Why a parsed ``advice.json`` is unusable (None when it is sound)."""
+    if not isinstance(data, dict):
+        return "expected a JSON object"
+    if not isinstance(data.get("layout_sha256"), str) or not isinstance(data.get("made_utc"), str):
+        return "'layout_sha256' or 'made_utc' missing"
+    sugg = data.get("suggestions")
+    if not isinstance(sugg, list) or len(sugg) > 20:
+        return "'suggestions' is not a list of up to 20"
+    for s in sugg:
+        if not isinstance(s, dict) or not isinstance(s.get("text"), str):
+            return "a suggestion without its text"
+        spk = s.get("speakers_m")
+        if not isinstance(spk, dict) or not spk or not all(_triple_ok(v) for v in spk.values()):
+            return "a suggestion's 'speakers_m' is not a table of [x, y, z]"
+        if not _triple_ok(s.get("seat_m")):
+            return "a suggestion's 'seat_m' is not [x, y, z]"
+    plan = data.get("plan")
+    if not isinstance(plan, dict):
+        return "'plan' is not a table"
+    m = plan.get("map")
+    if m is not None:
+        ok = (isinstance(m, dict) and all(isinstance(m.get(k), list) for k in ("x_m", "y_m"))
+              and isinstance(m.get("ripple_db"), list)
+              and len(m["ripple_db"]) == len(m["y_m"]) <= 200 and len(m["x_m"]) <= 200)
+        if not ok:
+            return "'plan.map' is not a grid"
+        cells = [m["x_m"], m["y_m"], *m["ripple_db"]]
+        if not all(isinstance(row, list) and all(
+                isinstance(v, int | float) and not isinstance(v, bool) and math.isfinite(v)
+                for v in row) for row in cells):
+            return "'plan.map' holds something other than finite numbers"
+        if any(len(row) != len(m["x_m"]) for row in m["ripple_db"]):
+            return "'plan.map' rows differ in length"
+    return None
+
+
+def load_advice(room: rooms.Room) -> tuple[dict[str, Any] | None, str | None]:
+    """(advice, problem): the room's stored advice, (None, None) when there is none, and
+    (None, why) when it is damaged, a link or leads out of the room (never read then)."""
+    path = room.root / ADVICE_FILE
+    if not path.exists() and not path.is_symlink():
+        return None, None
+    if is_link_or_outside(path, room.root):
+        return None, f"{path}: a link or outside the room folder; not read"
+    try:
+        data = read_json(path, ADVICE_FILE, SettingsError, MAX_ADVICE_BYTES)
+    except RoomcorrError as exc:
+        return None, " ".join(str(exc).split())
+    problem = _advice_problem(data)
+    if problem:
+        return None, f"{path}: damaged ({problem}); run roomcorr advise again"
+    return data, None
+
+
+def read_advice(room: rooms.Room) -> dict[str, Any] | None:
+    """The room's stored advice, or None (none, or damaged: :func:`load_advice` says why)."""
+    return load_advice(room)[0]

@@ -30,10 +30,9 @@ from typing import Any
 from roomcorr.checked import checked_number
 from roomcorr.deliver.atomic import atomic_write_text
 from roomcorr.errors import SettingsError
+from roomcorr.rooms.folder import LAYOUT_FILE
 from roomcorr.settings import read_toml
 
-#: Name of the layout file in a room folder.
-LAYOUT_FILE = "layout.toml"
 #: Smallest and largest room extent accepted, m.
 ROOM_SIZE_RANGE_M = (1.5, 40.0)
 #: Half the width of the listening area around the seat, m: a loudspeaker closer

@@ -100,11 +100,91 @@ def format_comparison(res: dict[str, Any]) -> list[str]:
         lines.append(f"  {same} peak(s)/dip(s) unchanged" if same else "  no peak or dip unchanged")
     fit = res.get("filter_fit", {})
     lines.append("")
+    if res.get("predicted_change") is not None:
+        lines.extend(prediction_lines(res["predicted_change"]))
     if not fit.get("available"):
         lines.append(f"filter check: not done ({fit.get('reason', 'no design')})")
         return lines
     lines.extend(fit_lines(fit))
     return lines
+
+
+def _move_words(d: list[float]) -> str:
+    """A displacement [dx, dy, dz] in the layout's axes, in plain words."""
+    parts = []
+    for v, pos, neg in ((d[1], "further from the front wall", "closer to the front wall"),
+                        (d[0], "towards the right wall", "towards the left wall"),
+                        (d[2], "up", "down")):
+        if abs(v) >= 0.005:
+            parts.append(f"{abs(v) * 100:.0f} cm {pos if v > 0 else neg}")
+    return ", ".join(parts) or "less than 1 cm"
+
+
+def prediction_lines(pc: dict[str, Any]) -> list[str]:
+    """Lines of the predicted-against-measured change after a move (``roomcorr compare``,
+    the report and the app), from ``predicted_change`` of
+    :func:`roomcorr.app.compare.compare_measurements`."""
+    if not pc.get("available"):
+        return [f"predicted change: none ({pc.get('reason', 'no layout')})"]
+    moves = pc["moves"]
+    moved = [f"{n} {_move_words(d)}" for n, d in moves["loudspeakers"].items()]
+    if moves["seat"]:
+        moved.append(f"the seat {_move_words(moves['seat'])}")
+    lines = [
+        f"after the move ({'; '.join(moved)}), predicted by the room model from the earlier "
+        f"measurement and its layout ({pc['layouts']['before']}):"
+    ]
+    if pc.get("suggestion"):
+        lines.append(f"  {pc['suggestion']['text']}")
+    lo, hi = pc["band_hz"]
+    for ch in pc["channels"]:
+        lines.append(
+            f"  {ch['name']}: {ch['words']['text']}; over {lo:.0f}-{hi:.0f} Hz (1/"
+            f"{pc['band_fraction']} octave) the prediction is off by {ch['held_db']:.1f} dB "
+            f"RMS, assuming nothing changed by {ch['unchanged_db']:.1f} dB"
+        )
+    ratio = pc.get("ratio")
+    lines.append(
+        f"  {pc['verdict_text']} ({pc['held_db']:.1f} dB RMS against {pc['unchanged_db']:.1f} dB"
+        + (f": {ratio:.2f} of the error of assuming nothing changed)" if ratio is not None
+           else ")")
+    )
+    where = (f"position {pc['after_position']} of the later run (nearest its seat)"
+             if not pc["assumed_at_seat"] else
+             "position 1 of the later run, taken as the seat (its layout lists no measured "
+             "positions)")
+    offsets = ", ".join(f"{c['name']} {c['offset_db']:+.1f} dB" for c in pc["channels"])
+    lines.append(
+        f"  compared at {where} against position {pc['before_position']} of the earlier run; "
+        f"level offset between the runs removed ({offsets})"
+    )
+    lines += [f"  {c}" for c in pc.get("cautions", [])]
+    return lines
+
+
+def predicted_change_png(pc: dict[str, Any]) -> bytes:
+    """PNG of the predicted and the measured change per loudspeaker (1/6-octave bands),
+    from an available ``predicted_change`` of
+    :func:`roomcorr.app.compare.compare_measurements`."""
+    chans = pc["channels"]
+    fig = new_figure(10.0, 2.8 * len(chans), hspace=0.5, bottom=0.1, top=0.9)
+    f = np.asarray(pc["bands_hz"], dtype=float)
+    for i, ch in enumerate(chans):
+        ax = fig.add_subplot(len(chans), 1, i + 1)
+        ax.axhline(0.0, color="#7f8c8d", lw=0.8)
+        ax.semilogx(f, ch["predicted_change_db"], "o-", color="#2c6fbb", lw=1.3, ms=3,
+                    label="predicted change")
+        ax.semilogx(f, ch["measured_change_db"], "s-", color="#e67e22", lw=1.3, ms=3,
+                    label="measured change")
+        ticks = [t for t in FREQ_TICKS if f[0] <= t <= f[-1]]
+        ax.set_xticks(ticks, [FREQ_LABELS[FREQ_TICKS.index(t)] for t in ticks])
+        ax.minorticks_off()
+        ax.grid(True, color="#dde3ea", lw=0.7)
+        ax.set_ylabel("dB")
+        ax.legend(fontsize=7, loc="best")
+        ax.set_title(f"{ch['name']}: prediction off by {ch['held_db']:.1f} dB RMS, "
+                     f"nothing-changed by {ch['unchanged_db']:.1f} dB", fontsize=9)
+    return png_bytes(fig)
 
 
 VERDICT_TEXT = {

@@ -414,7 +414,7 @@ def comparison_section(res: dict[str, Any]) -> Section:
         last column holding that channel's sentences of
         :func:`roomcorr.report.compare.format_comparison`.
     """
-    from roomcorr.report.compare import comparison_png, format_comparison
+    from roomcorr.report.compare import comparison_png, format_comparison, predicted_change_png
 
     lines = format_comparison(res)
     blocks: list[list[str]] = [[]]
@@ -452,6 +452,11 @@ def comparison_section(res: dict[str, Any]) -> Section:
         Figure("compare", "Before and after, both responses overlaid per channel",
                comparison_png(res))
     )
+    pc = res.get("predicted_change") or {}
+    if pc.get("available"):
+        sec.figures.append(Figure(
+            "predicted-change", "After the move: the change the room model predicted at the "
+            "seat (blue) beside the measured one (orange), 1/6 octave", predicted_change_png(pc)))
     return sec
 
 

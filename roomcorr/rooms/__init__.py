@@ -33,6 +33,7 @@ and comparison of runs are in :mod:`roomcorr.app`.
 from roomcorr.rooms.folder import (
     COMPLETE_MARKER,
     KINDS,
+    LAYOUT_FILE,
     LOCK_FILE,
     ROOM_FOLDERS,
     SETTINGS_FILE,
@@ -72,6 +73,7 @@ from roomcorr.rooms.settings_file import (
 __all__ = [
     "COMPLETE_MARKER",
     "KINDS",
+    "LAYOUT_FILE",
     "LOCK_FILE",
     "MIGRATIONS",
     "ROOM_FOLDERS",

@@ -22,6 +22,10 @@ SETTINGS_FILE = "roomcorr-room.toml"
 LOCK_FILE = ".roomcorr-lock"
 COMPLETE_MARKER = "complete.json"
 SETTINGS_SNAPSHOT = "room-settings.toml"
+#: The room's layout (size, loudspeakers, seat, measured positions; read and checked by
+#: :mod:`roomcorr.placement.layout`). A measurement run keeps a copy of it under the same
+#: name: the layout it was measured with.
+LAYOUT_FILE = "layout.toml"
 KINDS = {"measurement": "measurements", "design": "designs"}
 #: Folders of a room that roomcorr reads and writes: runs of both kinds, and targets
 #: shaped in the app. Each must be a plain folder inside the room (:func:`room_folder`).
@@ -38,6 +42,10 @@ class Room:
     @property
     def settings_path(self) -> Path:
         return self.root / SETTINGS_FILE
+
+    @property
+    def layout_path(self) -> Path:
+        return self.root / LAYOUT_FILE
 
     @property
     def measurements_dir(self) -> Path:

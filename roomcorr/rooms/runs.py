@@ -42,6 +42,7 @@ from roomcorr.errors import InputFileError, OutputError, RoomcorrError
 from roomcorr.rooms.folder import (
     COMPLETE_MARKER,
     KINDS,
+    LAYOUT_FILE,
     SETTINGS_SNAPSHOT,
     Room,
     iso_utc,
@@ -145,6 +146,20 @@ def check_kind_folder(room: Room, kind: str) -> None:
     room_folder(room, KINDS[kind])
 
 
+#: Largest layout file copied into a run, bytes (a layout is a few hundred bytes).
+MAX_LAYOUT_BYTES = 64 * 1024
+
+
+def _layout_snapshot(room: Room) -> bytes | None:
+    """The room's ``layout.toml`` as it is now, or None: none, a link, a file leading out of
+    the room or one too large is not copied (its readers refuse it with their own message)."""
+    path = room.layout_path
+    if not path.is_file() or is_link_or_outside(path, room.root):
+        return None
+    data = path.read_bytes()
+    return data if len(data) <= MAX_LAYOUT_BYTES else None
+
+
 @contextlib.contextmanager
 def new_run(room: Room, kind: str, info: dict[str, Any] | None = None) -> Iterator[Path]:
     """Create a new time-stamped run folder; mark it complete when the block succeeds.
@@ -162,7 +177,10 @@ def new_run(room: Room, kind: str, info: dict[str, Any] | None = None) -> Iterat
     Path
         The new, empty run folder. When the block succeeds, the room's settings
         file as it was at the start is copied in as ``room-settings.toml`` (so
-        each run records the settings it started with), then ``complete.json``.
+        each run records the settings it started with), a measurement run's
+        room layout as it was at the start as ``layout.toml`` (where the
+        loudspeakers, the seat and the microphone stood: ``roomcorr compare``
+        predicts a move from it), then ``complete.json``.
 
     Notes
     -----
@@ -178,6 +196,7 @@ def new_run(room: Room, kind: str, info: dict[str, Any] | None = None) -> Iterat
         started = utc_now()
         run_dir = _make_run_dir(room, kind)
         snapshot = room.settings_path.read_bytes() if room.settings_path.is_file() else None
+        layout = _layout_snapshot(room) if kind == "measurement" else None
         try:
             yield run_dir
         except BaseException:
@@ -188,6 +207,8 @@ def new_run(room: Room, kind: str, info: dict[str, Any] | None = None) -> Iterat
         if snapshot is not None:  # written at the end: writers may want an empty folder
             atomic_write_bytes(run_dir / SETTINGS_SNAPSHOT, snapshot)
             snapshot_sha = sha256_of(run_dir / SETTINGS_SNAPSHOT)
+        if layout is not None and not (run_dir / LAYOUT_FILE).exists():
+            atomic_write_bytes(run_dir / LAYOUT_FILE, layout)
         found = _run_files(run_dir)
         files = {p.relative_to(run_dir).as_posix(): sha256_of(p) for p in found}
         sizes = {p.relative_to(run_dir).as_posix(): p.stat().st_size for p in found}
