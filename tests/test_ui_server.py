@@ -434,6 +434,10 @@ def test_browser_drags_target_points_and_saves_what_the_cli_designs(demo_room, t
             wait.until(lambda d: d.find_elements(By.CSS_SELECTOR, "#runs tbody tr.pick"))
             driver.find_element(By.CSS_SELECTOR, "nav button[data-tab=design]").click()
             wait.until(lambda d: state()["previews"] >= 1)
+            # the filters' levels above the plot arrive on their own and push it down: wait
+            # for them, or the plot's position read below is stale when the click lands
+            wait.until(lambda d: "stale" not in d.find_element(By.ID, "d-levels").get_attribute(
+                "class"))
             over = driver.find_element(By.CSS_SELECTOR, "#design-plots .target-plot .u-over")
             w, h = over.rect["width"], over.rect["height"]
 

@@ -52,6 +52,7 @@ from roomcorr.app import playback as playback_app
 from roomcorr.app.design import DesignPreview
 from roomcorr.app.history import set_run_label
 from roomcorr.app.imports import MAX_IMPORT_BYTES, import_candidates, import_from_app
+from roomcorr.app.plan import plan_view, save_plan
 from roomcorr.app.report import report_in_room
 from roomcorr.checked import loads_json
 from roomcorr.errors import BadNameError, RoomBusyError, RoomcorrError
@@ -505,8 +506,25 @@ def create_app(room: rooms.Room, token: str, port: int) -> ASGIApp:
         await live.publish({"type": "import", "state": "finished", "run_id": res["run_id"]})
         return JSONResponse(res)
 
+    async def plan(request: Request) -> Response:
+        """The plan view: GET the layout and advice; POST a layout to save (as layout set)."""
+        try:
+            if request.method == "GET":
+                data = await run_in_threadpool(plan_view, room)
+            else:
+                if measurer.busy():
+                    raise RoomBusyError(
+                        "a measurement is running; save the plan when it has finished"
+                    )
+                data = await run_in_threadpool(save_plan, room, await body(request))
+                await live.publish({"type": "layout", "state": "saved"})
+        except RoomcorrError as exc:
+            return _error(exc, 409 if isinstance(exc, RoomBusyError) else 400)
+        return Response(json.dumps(data, allow_nan=False), media_type="application/json")
+
     routes = [
         Route("/", index),
+        Route("/api/plan", plan, methods=["GET", "POST"]),
         Route("/api/import", import_files, methods=["POST"]),
         Route("/api/import/candidates", api(lambda: import_candidates(room))),
         Route("/api/decay/{kind}/{run_id}", decay),

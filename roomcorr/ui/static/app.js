@@ -772,6 +772,16 @@ async function openCompare() {
           { label: "after − before", data: ch.curves.difference_db, color: COLORS[0], width: 1.8 },
         ], "difference (dB)");
     });
+    // after a move: the change the room model predicted at the seat beside the measured one
+    const pc = res.predicted_change;
+    if (pc && pc.available) {
+      pc.channels.forEach(ch => addPlot(`${ch.name}: predicted and measured change after the move`,
+        `1/${pc.band_fraction} octave at the seat, level offset between the runs removed: the prediction is off by ${Number(ch.held_db).toFixed(1)} dB RMS, assuming nothing changed by ${Number(ch.unchanged_db).toFixed(1)} dB.`,
+        pc.bands_hz, [
+          { label: "predicted change", data: ch.predicted_change_db, color: COLORS[2], width: 1.8 },
+          { label: "measured change", data: ch.measured_change_db, color: COLORS[1], width: 1.8 },
+        ], "change (dB)"));
+    }
     status(`compared ${a} with ${b}`);
   } catch (err) {
     status(String(err.message || err), true);
