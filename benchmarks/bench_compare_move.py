@@ -15,7 +15,8 @@ Figures, per move and as the median over all moves (12 moves in 4 rooms):
   seat (1/6 octave, 30-250 Hz, level offset removed) divided by the RMS of the
   measured change (the error of assuming nothing changed). Issue 19's figure to
   reach after a move is <= 0.5.
-* **the largest predicted change**: its band, predicted and measured dB.
+* **the largest predicted change**: its band, predicted and measured dB, and how often
+  the measured change there had the predicted sign.
 * **time**: ``compare`` of the two runs (prediction included) against the time of
   one pyroomacoustics simulation of the same room (ratio, same run).
 
@@ -135,6 +136,12 @@ def main(quick: bool = False) -> None:
                           f"{c['words']['measured_db']:+.1f}" for c in pc["channels"])
         print(f"{r['room']:<12} {r['move_m']:6.2f} {r['seat_m']:5.2f} {pc['held_db']:6.2f} "
               f"{pc['unchanged_db']:6.2f} {pc['ratio']:6.2f}  {words:<50} {r['time_ratio']:6.1f}")
+    signs = [np.sign(c["words"]["predicted_db"]) == np.sign(c["words"]["measured_db"])
+             for r in rows for c in r["pc"]["channels"]]
+    print(f"largest predicted change with the measured sign: {sum(signs)} of {len(signs)} "
+          "loudspeaker moves")
+    verdicts = [r["pc"]["verdict"] for r in rows]
+    print("verdicts: " + ", ".join(f"{v} {verdicts.count(v)}" for v in sorted(set(verdicts))))
     ratios = np.array([r["pc"]["ratio"] for r in rows])
     held = sum(r["pc"]["verdict"] == "held" for r in rows)
     print(f"median ratio over {len(rows)} moves in {len(chosen)} rooms: {np.median(ratios):.2f} "
