@@ -214,10 +214,11 @@ def test_browser_drags_a_loudspeaker_saves_and_refuses_a_position_outside(room, 
             edited = driver.execute_script("return window.roomcorrPlan().plan")
             y_left = edited["loudspeakers"][0][1][1]
             assert abs(y_left - 1.2) <= 0.02, edited
+            assert edited["loudspeakers"][0][1][0] == 1.2  # moved straight back: x kept
             driver.find_element(By.ID, "p-save").click()
             wait.until(ec.text_to_be_present_in_element((By.ID, "status"), "layout saved"))
             saved = read_layout(room.layout_path)
-            assert saved.loudspeakers["left"][1] == pytest.approx(y_left, abs=1e-9)
+            assert saved.loudspeakers["left"] == (1.2, pytest.approx(y_left, abs=1e-9), 1.0)
             assert saved.loudspeakers["right"] == (3.4, 0.7, 1.0)  # untouched
             assert len(saved.measured) == 3
             # the advice was made for the layout before the drag: marked as such
@@ -240,5 +241,46 @@ def test_browser_drags_a_loudspeaker_saves_and_refuses_a_position_outside(room, 
             # the one entry in the console is the refused request (400), nothing else
             severe = [e for e in driver.get_log("browser") if e["level"] == "SEVERE"]
             assert all("/api/plan" in e["message"] and "400" in e["message"] for e in severe)
+    finally:
+        driver.quit()
+
+
+def test_browser_compare_draws_the_predicted_and_the_measured_change(tmp_path):
+    # Two runs of a pyroomacoustics room (Allen and Berkley image sources), the loudspeakers
+    # 0.6 m further from the front wall in the second: the Compare view draws, per
+    # loudspeaker, the change the model predicted beside the measured one, and its text
+    # holds the figures of compare_measurements (one result for CLI, report and app).
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.support import expected_conditions as ec
+    from selenium.webdriver.support.ui import Select, WebDriverWait
+    from test_compare_move import AFTER, BEFORE, _layout, _simulate, _write
+
+    from roomcorr.app.explore import compare_view
+    from roomcorr.placement.layout import write_layout
+
+    room = rooms.init_room(tmp_path / "den")
+    write_layout(room.layout_path, _layout(BEFORE))
+    run_a = rooms.add_measurement(room, _write(tmp_path / "a", _simulate(BEFORE)))
+    write_layout(room.layout_path, _layout(AFTER))
+    run_b = rooms.add_measurement(room, _write(tmp_path / "b", _simulate(AFTER)))
+    expected = compare_view(room, run_a.name, run_b.name)["predicted_change"]
+    driver = _chrome(tmp_path, height=1400)
+    try:
+        with background_server(room, TOKEN) as base:
+            driver.get(f"{base}/?token={TOKEN}")
+            wait = WebDriverWait(driver, 60)
+            wait.until(lambda d: len(d.find_elements(By.CSS_SELECTOR, "#c-before option")) == 2)
+            Select(driver.find_element(By.ID, "c-before")).select_by_value(run_a.name)
+            Select(driver.find_element(By.ID, "c-after")).select_by_value(run_b.name)
+            driver.find_element(By.ID, "c-go").click()
+            wait.until(ec.text_to_be_present_in_element((By.ID, "status"), "compared"))
+            titles = [h.text.splitlines()[0]
+                      for h in driver.find_elements(By.CSS_SELECTOR, "#plots .plot h3")]
+            assert titles.count("left: predicted and measured change after the move") == 1
+            assert titles.count("right: predicted and measured change after the move") == 1
+            text = driver.find_element(By.ID, "explore-text").text
+            for ch in expected["channels"]:
+                assert ch["words"]["text"] in text
+                assert f"off by {ch['held_db']:.1f} dB RMS" in text
     finally:
         driver.quit()

@@ -607,9 +607,14 @@ def _advice_text(cand: dict, res: dict, current: dict, layout: Layout, dip_hz: f
         way = "back" if cand["seat_move_m"] > 0 else "forward"
         parts.append(f"move the seat {abs(cand['seat_move_m']) * 100:.0f} cm {way}")
     what = " and ".join(parts) if parts else "keep everything where it is"
-    tail = (f": the bass over the listening area varies by {res['ripple_db']:.1f} dB instead "
-            f"of {current['ripple_db']:.1f} dB after correction, boom {res['boom_db']:.1f} dB "
-            f"instead of {current['boom_db']:.1f} dB")
+    # the figures as stored (rounded to 0.01 dB first), so the sentence and the numbers
+    # printed beside it never disagree in the last digit
+    fig = {k: round(float(v[k2]), 2) for k, v, k2 in (
+        ("ripple", res, "ripple_db"), ("boom", res, "boom_db"),
+        ("ripple0", current, "ripple_db"), ("boom0", current, "boom_db"))}
+    tail = (f": the bass over the listening area varies by {fig['ripple']:.1f} dB instead "
+            f"of {fig['ripple0']:.1f} dB after correction, boom {fig['boom']:.1f} dB "
+            f"instead of {fig['boom0']:.1f} dB")
     if dip_hz is not None:
         i = int(np.argmin(np.abs(freq - dip_hz)))
         gain = float(np.mean(res["seat_db"][:, i] - current["seat_db"][:, i]))

@@ -119,28 +119,36 @@
   }
 
   function metresAt(ev) {
+    // the pointer's place in the room, m (unrounded)
     const svg = $("p-svg");
     const pt = svg.createSVGPoint();
     pt.x = ev.clientX; pt.y = ev.clientY;
     const q = pt.matrixTransform(svg.getScreenCTM().inverse());
     const sc = scale();
-    const clamp = (v, hi) => Math.min(hi - 0.01, Math.max(0.01, v));
-    return [r2(clamp((q.x - sc.x0) / sc.s, sc.w)), r2(clamp((q.y - sc.y0) / sc.s, sc.l))];
+    return [(q.x - sc.x0) / sc.s, (q.y - sc.y0) / sc.s];
   }
 
   function startDrag(el, kind, index) {
     el.addEventListener("pointerdown", ev => {
       ev.preventDefault();
-      drag = { kind, index };
+      const p = kind === "seat" ? plan.seat : plan.loudspeakers[index][1];
+      const [mx, my] = metresAt(ev);
+      // where on the symbol it was taken: a drag moves it by the pointer's movement only
+      drag = { kind, index, from: [Number(p[0]), Number(p[1])], grab: [mx, my] };
       el.classList.add("dragging");
     });
   }
 
   function onMove(ev) {
     if (!drag) return;
-    const [x, y] = metresAt(ev);
+    const [mx, my] = metresAt(ev);
+    const sc = scale();
+    const clamp = (v, hi) => Math.min(hi - 0.01, Math.max(0.01, v));
     const p = drag.kind === "seat" ? plan.seat : plan.loudspeakers[drag.index][1];
-    p[0] = x; p[1] = y;
+    const dx = mx - drag.grab[0], dy = my - drag.grab[1];
+    // positions snap to 1 cm; an axis the pointer did not move along keeps its value
+    if (Math.abs(dx) >= 0.005) p[0] = r2(clamp(drag.from[0] + dx, sc.w));
+    if (Math.abs(dy) >= 0.005) p[1] = r2(clamp(drag.from[1] + dy, sc.l));
     draw();
     fillTable();
     changed();
