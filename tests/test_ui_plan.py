@@ -60,6 +60,9 @@ def _cli_set(room: rooms.Room, plan: dict) -> int:
 
 
 def test_save_writes_what_the_command_line_writes(client, room, tmp_path):
+    empty = client.get("/api/plan", headers=_auth()).json()
+    assert empty["layout"] is None and empty["problem"] is None and empty["advice"] is None
+    assert empty["limits"]["head_half_width_m"] == 0.3
     r = client.post("/api/plan", headers=_auth(), json=GOOD)
     assert r.status_code == 200, r.text
     assert r.json()["saved"] == "layout.toml"
@@ -207,6 +210,7 @@ def test_browser_drags_a_loudspeaker_saves_and_refuses_a_position_outside(room, 
             assert len(driver.find_elements(By.CSS_SELECTOR, "#p-svg .p-suggested")) == 3
             assert "test advice" in driver.find_element(By.ID, "p-advice").text
             assert len(driver.find_elements(By.CSS_SELECTOR, "#p-svg path.p-measured")) == 3
+            assert not driver.find_element(By.ID, "p-count").is_displayed()  # no measurement
             px_per_m = driver.execute_script("return window.roomcorrPlan().pxPerMetre")
             # drag the left loudspeaker 0.5 m further from the front wall (down the page)
             ActionChains(driver).click_and_hold(left).move_by_offset(0, 10).move_by_offset(
@@ -284,3 +288,10 @@ def test_browser_compare_draws_the_predicted_and_the_measured_change(tmp_path):
                 assert f"off by {ch['held_db']:.1f} dB RMS" in text
     finally:
         driver.quit()
+
+
+def test_the_plan_knows_how_many_positions_the_layout_should_list(client, room):
+    demo = sorted((Path(__file__).resolve().parents[1] / "measurements_demo").glob("pos*.wav"))
+    run = rooms.add_measurement(room, demo)
+    view = client.get("/api/plan", headers=_auth()).json()
+    assert view["latest_measurement"] == run.name and view["latest_positions"] == len(demo)

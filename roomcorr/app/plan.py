@@ -41,8 +41,9 @@ def plan_view(room: rooms.Room) -> dict[str, Any]:
         ``layout`` (the file's keys, or None), ``problem`` (why the file cannot be
         used, or None), ``file``; ``advice`` (advise's stored suggestions, current and
         suggested positions and bass map, or None), ``advice_current`` (made from the
-        layout as it is now), ``advice_problem``; ``limits`` (the checks' ranges) and
-        ``cautions``.
+        layout as it is now), ``advice_problem``; ``latest_measurement`` and
+        ``latest_positions`` (its run id and number of positions, or None); ``limits``
+        (the checks' ranges) and ``cautions``.
     """
     layout, problem, sha = None, None, None
     try:
@@ -53,6 +54,11 @@ def plan_view(room: rooms.Room) -> dict[str, Any]:
     except RoomcorrError as exc:
         problem = " ".join(str(exc).split())
     advice, advice_problem = load_advice(room)
+    try:  # how many positions the layout should list: one per file of the latest measurement
+        latest = rooms.latest_measurement(room)
+        positions: int | None = len(rooms.measurement_files(latest))
+    except RoomcorrError:
+        latest, positions = None, None
     return {
         "file": rooms.LAYOUT_FILE,
         "layout": layout,
@@ -60,6 +66,8 @@ def plan_view(room: rooms.Room) -> dict[str, Any]:
         "advice": advice,
         "advice_current": bool(advice and sha and advice.get("layout_sha256") == sha),
         "advice_problem": advice_problem,
+        "latest_measurement": None if latest is None else latest.name,
+        "latest_positions": positions,
         "limits": {
             "room_size_m": list(ROOM_SIZE_RANGE_M),
             "head_half_width_m": HEAD_HALF_WIDTH_M,

@@ -114,6 +114,9 @@
       node("text", { x: px, y: py + 22, "text-anchor": "middle" }, svg, n);
       startDrag(r, "speaker", i);
     });
+    const want = view && view.latest_positions;
+    $("p-count").hidden = !(want && plan.measured.length !== want);
+    $("p-count").textContent = want ? `The latest measurement (${view.latest_measurement}) has ${want} positions and the layout lists ${plan.measured.length}: predict, advise and compare need one measured position per file, in file order.` : "";
     $("p-legend").textContent = `Grid: 1 m. Squares: loudspeakers; circle: the seat, dashed: the listening area a loudspeaker must stay out of (${limits.head_half_width_m} m); crosses: measured positions.`
       + (view && view.advice && view.advice.plan && view.advice.plan.suggested ? " Green: where advise's best suggestion puts them, over its map of predicted bass unevenness (darker is smoother)." : "");
   }
