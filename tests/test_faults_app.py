@@ -260,7 +260,8 @@ def test_malformed_names_are_400(room, path):
 
 
 @pytest.mark.parametrize(
-    "route", ["/api/preview", "/api/save", "/api/measure/start", "/api/measure/acknowledge"]
+    "route",
+    ["/api/preview", "/api/save", "/api/measure/start", "/api/measure/acknowledge", "/api/plan"],
 )
 @pytest.mark.parametrize(
     "body",
