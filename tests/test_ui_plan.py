@@ -295,3 +295,43 @@ def test_the_plan_knows_how_many_positions_the_layout_should_list(client, room):
     run = rooms.add_measurement(room, demo)
     view = client.get("/api/plan", headers=_auth()).json()
     assert view["latest_measurement"] == run.name and view["latest_positions"] == len(demo)
+
+
+def _coord(extent: float):
+    from hypothesis import strategies as st
+
+    # anywhere in the room, walls and their last millimetre included
+    return st.one_of(st.floats(0.0, extent), st.sampled_from([1e-4, 4e-4, 6e-4, extent - 4e-4]))
+
+
+def test_whatever_the_page_saves_reads_back_or_is_refused_untouched(tmp_path_factory):
+    # Property (hypothesis): a plan the server accepts is a layout.toml that reads back to
+    # the same positions within the file's 0.5 mm rounding; one it refuses leaves the file
+    # as it was. Near a wall, rounding to the file's millimetres must not put a position
+    # on the wall after it was accepted (the file would then stop every later command).
+    from hypothesis import HealthCheck, given, settings
+    from hypothesis import strategies as st
+
+    from roomcorr.app.plan import save_plan
+    from roomcorr.errors import SettingsError
+
+    room = rooms.init_room(tmp_path_factory.mktemp("prop") / "den")
+    size = (4.6, 5.8, 2.5)
+    pos = st.tuples(_coord(size[0]), _coord(size[1]), _coord(size[2]))
+
+    @settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+    @given(left=pos, seat=pos)
+    def check(left, seat):
+        before = room.layout_path.read_bytes() if room.layout_path.exists() else None
+        plan = {"size_m": list(size), "loudspeakers": {"left": list(left)}, "seat": list(seat)}
+        try:
+            save_plan(room, plan)
+        except SettingsError:
+            now = room.layout_path.read_bytes() if room.layout_path.exists() else None
+            assert now == before
+            return
+        back = read_layout(room.layout_path)
+        for got, want in ((back.loudspeakers["left"], left), (back.seat, seat)):
+            assert max(abs(a - b) for a, b in zip(got, want, strict=True)) <= 0.0005 + 1e-12
+
+    check()

@@ -27,7 +27,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from roomcorr.checked import checked_number
+from roomcorr.checked import checked_number, loads_toml
 from roomcorr.deliver.atomic import atomic_write_text
 from roomcorr.errors import SettingsError
 from roomcorr.rooms.folder import LAYOUT_FILE
@@ -213,9 +213,16 @@ def layout_text(layout: Layout) -> str:
 
 
 def write_layout(path: str | Path, layout: Layout) -> Path:
-    """Write ``layout`` as TOML (atomically); the text reads back to the same layout."""
-    layout_from_dict(layout.to_dict(), str(path))  # never write what would not read back
-    return atomic_write_text(path, layout_text(layout))
+    """Write ``layout`` as TOML (atomically); the text reads back to the same layout
+    (to the file's millimetre resolution).
+
+    The text itself is checked before it is written: a position within half a millimetre
+    of a wall is inside the room as a number but on the wall once written to the file's
+    resolution, and a file that does not read back would stop every later command.
+    """
+    text = layout_text(layout)
+    layout_from_dict(loads_toml(text, str(path)), str(path))  # never write what would not read back
+    return atomic_write_text(path, text)
 
 
 def room_layout_path(root: str | Path) -> Path:
