@@ -190,9 +190,15 @@ def test_without_a_layout_or_a_move_it_says_so(tmp_path, capsys):
     out = capsys.readouterr().out
     assert "predicted change: none (measurements/" in out
     assert "no layout recorded with this measurement" in out
-    rooms.add_measurement(room, _write(tmp_path / "c", irs))
+    run_c = rooms.add_measurement(room, _write(tmp_path / "c", irs))
     assert main(["compare", "--room", str(room.root), "--no-filter-check"]) == 0
     assert "the layout is the same in both runs: nothing was moved" in capsys.readouterr().out
+    # a run's copy edited afterwards no longer matches the SHA-256 its record holds
+    copy = run_c / "layout.toml"
+    copy.write_text(copy.read_text().replace("left = [1.2,", "left = [1.3,"))
+    assert main(["compare", "--room", str(room.root), "--no-filter-check"]) == 0
+    out = capsys.readouterr().out
+    assert "predicted change: none (" in out and "damaged run: layout.toml" in out
 
 
 def test_layout_files_for_folders_outside_a_room(moved_room, tmp_path, capsys, monkeypatch):
