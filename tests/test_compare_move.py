@@ -161,6 +161,7 @@ def test_the_move_advise_suggested_is_named(tmp_path, capsys):
     assert main(["advise", "--room", str(room.root), "--max-move", "0.3", "--seat-range", "0",
                  "--json"]) == 0
     res = json.loads(capsys.readouterr().out)
+    assert res["stored"] == str(room.root / "advice.json")
     advice = json.loads((room.root / "advice.json").read_text())
     assert advice["suggestions"] == res["suggestions"]
     assert advice["layout_sha256"] == sha256_of(run_a / "layout.toml")

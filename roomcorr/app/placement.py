@@ -659,6 +659,9 @@ def format_advice(res: dict[str, Any]) -> list[str]:
         lines.append("   " + "; ".join(f"{n} at {', '.join(f'{v:.2f}' for v in p)}"
                                       for n, p in s["speakers_m"].items())
                      + f"; seat at {', '.join(f'{v:.2f}' for v in s['seat_m'])} (m)")
+    if res.get("stored"):
+        lines.append(f"suggestions kept in {res['stored']} (the app's Plan page draws them; "
+                     "after a move, compare names the one you followed)")
     lines += res["cautions"]
     return lines
 

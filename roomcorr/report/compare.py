@@ -181,6 +181,8 @@ def predicted_change_png(pc: dict[str, Any]) -> bytes:
         ax.minorticks_off()
         ax.grid(True, color="#dde3ea", lw=0.7)
         ax.set_ylabel("dB")
+        if i == len(chans) - 1:
+            ax.set_xlabel("frequency (Hz), 1/6-octave bands")
         ax.legend(fontsize=7, loc="best")
         ax.set_title(f"{ch['name']}: prediction off by {ch['held_db']:.1f} dB RMS, "
                      f"nothing-changed by {ch['unchanged_db']:.1f} dB", fontsize=9)
