@@ -45,8 +45,6 @@ KNOWN = {
     # IEC 61260-1 band centres, a table both stages use
     ("roomcorr.measure.deconvolve", "roomcorr.analysis.bands"),
     ("roomcorr.measure.quality", "roomcorr.analysis.bands"),
-    # write_report works out the comparison itself; the orchestration belongs in app/
-    ("roomcorr.report.html", "roomcorr.app.compare"),
 }
 
 

@@ -17,7 +17,7 @@ section (``b0 = 10 ** (pre_gain_db / 20)`` rounded down to float32, all else 0);
 the cascade is complete and safe. Coefficient values are float32-exact and
 written with full float64 precision, so devices running either precision use
 exactly the values that were checked. Each file gets a manifest entry of kind
-``"iir"`` (via :func:`roomcorr.deliver.export.add_manifest_entries`). Every file goes
+``"iir"`` (via :func:`roomcorr.deliver.manifest.add_manifest_entries`). Every file goes
 through :mod:`roomcorr.deliver.atomic`.
 """
 
@@ -33,6 +33,7 @@ import numpy as np
 
 from roomcorr.deliver.atomic import atomic_write_text
 from roomcorr.deliver.figures import fmt_db
+from roomcorr.deliver.manifest import add_manifest_entries
 from roomcorr.design import biquad as bq
 from roomcorr.design.iir_fit import IirDesign, IirStats
 from roomcorr.errors import OutputError
@@ -366,7 +367,5 @@ def write_iir(
         p.parent.mkdir(parents=True, exist_ok=True)
         atomic_write_text(p, text)
     if update_manifest:
-        from roomcorr.deliver import export
-
-        export.add_manifest_entries(out, entries)
+        add_manifest_entries(out, entries)
     return entries

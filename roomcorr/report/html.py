@@ -29,6 +29,7 @@ from roomcorr.deliver.loading import file_groups
 from roomcorr.errors import RoomcorrError
 from roomcorr.report import glance
 from roomcorr.report.files import files_parts
+from roomcorr.report.parts import Column, Figure, Report, Section
 from roomcorr.report.summary import fmt_hz, summary_sentences, withheld_regions
 
 REPORT_HTML = "report.html"
@@ -53,51 +54,6 @@ SECTION_TITLES = {
     "safety": "Safety and levels",
     "files": "The files and how to load them",
 }
-
-
-@dataclass
-class Figure:
-    """One PNG figure of the report."""
-
-    key: str
-    caption: str
-    png: bytes
-
-
-@dataclass
-class Column:
-    """One loudspeaker channel's part of a section (shown side by side with the others)."""
-
-    channel: str
-    paragraphs: list[str] = field(default_factory=list)
-    figures: list[Figure] = field(default_factory=list)
-    table: list[list[str]] | None = None  # first row is the header
-    details: tuple[str, list[str]] | None = None  # (summary, paragraphs): folded away
-
-
-@dataclass
-class Section:
-    """One section of the page: text, table and figures, then one column per channel."""
-
-    id: str
-    title: str
-    paragraphs: list[str] = field(default_factory=list)
-    figures: list[Figure] = field(default_factory=list)
-    table: list[list[str]] | None = None  # first row is the header
-    columns: list[Column] = field(default_factory=list)
-
-    def all_figures(self) -> list[Figure]:
-        """The section's own figures, then every column's, in page order."""
-        return [*self.figures, *(f for c in self.columns for f in c.figures)]
-
-
-@dataclass
-class Report:
-    title: str
-    subtitle: str
-    sections: list[Section]
-    #: Lines under the title: date, run ids, positions, what was measured.
-    facts: list[str] = field(default_factory=list)
 
 
 def _fir_for(curves: dict[str, Any], index: int) -> tuple[np.ndarray | None, int | None]:
@@ -1306,134 +1262,6 @@ def _complete(run_dir: Path) -> bool:
     return isinstance(data, dict) and data.get("complete") is True
 
 
-def _source_measurement(d: Path, room: Any) -> tuple[Any, Any]:
-    """(room, the measurement behind folder ``d``) or (room, None).
-
-    The measurement is a folder (a measurement run, or ``d`` itself when it is
-    a measurement folder) or, for a design outside a room, the list of IR files
-    in its manifest.
-    """
-    from roomcorr import rooms
-
-    if not ((d / "manifest.json").is_file() and (d / "design.npz").is_file()):
-        return room, d
-    try:
-        manifest = read_json(d / "manifest.json", "manifest")
-    except RoomcorrError:
-        manifest = {}
-    if not isinstance(manifest, dict):
-        manifest = {}
-    if room is not None and d.parent == room.designs_dir.resolve():
-        run = next((r for r in rooms.list_runs(room, "design") if r.path.resolve() == d), None)
-        ref = (run.marker.get("info", {}).get("measurement") if run else None) or manifest.get(
-            "measurement"
-        )
-        if not ref and run is not None:
-            ref = rooms.design_source(run)
-        if ref:
-            cand = room.measurements_dir / Path(str(ref)).name
-            if cand.is_dir():
-                return room, cand
-    files = manifest.get("measurements")
-    if isinstance(files, list) and files:
-        paths = [Path(str(f)) if Path(str(f)).is_absolute() else Path.cwd() / str(f)
-                 for f in files]
-        parents = {q.parent.resolve() for q in paths}
-        if len(parents) == 1:  # all from one measurement run of a room: use that room
-            parent = parents.pop()
-            other = rooms.find_room(parent)
-            if other is not None and parent.parent == other.measurements_dir.resolve():
-                return other, parent
-        if all(q.is_file() for q in paths):
-            return room, [str(q) for q in paths]
-    return room, None
-
-
-def _earlier_measurement(room: Any, after: Any) -> Path | None:
-    """The newest complete measurement run of ``room`` older than run folder ``after``."""
-    from roomcorr import rooms
-
-    if room is None or not isinstance(after, Path):
-        return None
-    after = after.resolve()
-    if after.parent != room.measurements_dir.resolve():
-        return None
-    runs = rooms.list_runs(room, "measurement")
-    idx = next((i for i, r in enumerate(runs) if r.path.resolve() == after), None)
-    if idx is None:
-        return None
-    earlier = [r for r in runs[:idx] if r.complete]
-    return earlier[-1].path if earlier else None
-
-
-def _label(ref: Any, room: Any) -> str:
-    if isinstance(ref, list):
-        return ", ".join(Path(x).name for x in ref)
-    p = Path(ref).resolve()
-    if room is not None:
-        try:
-            return p.relative_to(room.root.resolve()).as_posix()
-        except ValueError:
-            pass
-    return str(p)
-
-
-def report_comparison(
-    folder: str | Path, compare_with: str | Path | None = None
-) -> dict[str, Any] | None:
-    """The comparison for the report of ``folder``, or None when none is meaningful.
-
-    Parameters
-    ----------
-    folder : path
-        A run folder of a room (a design whose source measurement is recorded
-        in its ``complete.json`` info or manifest, or a measurement), or any
-        design or measurement folder when ``compare_with`` is given.
-    compare_with : path or str, optional
-        The earlier measurement: a run id of the room, a measurement folder or a
-        WAV file. Default: the newest complete measurement of the room older
-        than the one behind ``folder``.
-
-    Returns
-    -------
-    dict or None
-        :func:`roomcorr.app.compare.compare_measurements` result with curves, with
-        ``before`` and ``after`` shortened to paths inside the room. None
-        without an earlier measurement (or when the automatic comparison is not
-        possible, e.g. a different number of loudspeakers).
-
-    Raises
-    ------
-    InputFileError
-        Only when ``compare_with`` is given and cannot be used.
-    """
-    from roomcorr import rooms
-    from roomcorr.app.compare import compare_measurements
-    from roomcorr.errors import InputFileError, RoomcorrError
-
-    d = Path(folder).resolve()
-    room, after = _source_measurement(d, rooms.find_room(d))
-    if compare_with is None:
-        before: Any = _earlier_measurement(room, after)
-        if before is None:
-            return None
-        try:
-            res = compare_measurements(before, after, room=room, with_curves=True)
-        except RoomcorrError:
-            return None
-    else:
-        if after is None:
-            raise InputFileError(
-                f"--compare-with: {d} records no measurement it was made from; "
-                "report a measurement folder, or a design that names its measurement"
-            )
-        before = rooms.resolve_run(room or rooms.find_room(), compare_with)
-        res = compare_measurements(before, after, room=room, with_curves=True)
-    res["before"] = _label(before, room)
-    res["after"] = _label(after, room)
-    return res
-
-
 def _ours(d: Path) -> bool:
     """Whether folder ``d`` was written by roomcorr (a design, a measurement or a room run),
     so its report may go into it; someone else's folder of WAVs is never written to."""
@@ -1494,10 +1322,22 @@ def report_destination(folder: str | Path, out_dir: str | Path | None = None) ->
     return dest
 
 
+def check_report_folder(folder: str | Path) -> None:
+    """Raise :class:`~roomcorr.errors.InputFileError` unless ``folder`` can be reported:
+    it must exist, and must not be a damaged run of a room (named, not reported)."""
+    from roomcorr import rooms
+    from roomcorr.errors import InputFileError
+
+    d = Path(folder)
+    if not d.is_dir():
+        raise InputFileError(f"{d}: no such folder; give a design or measurement folder")
+    rooms.verified(rooms.find_room(d), d)
+
+
 def write_report(
     folder: str | Path,
     dpi: int = 90,
-    compare_with: str | Path | None = None,
+    comparison: dict[str, Any] | None = None,
     out_dir: str | Path | None = None,
 ) -> Path:
     """Write ``report.html`` and ``report/*.png`` about a design or measurement folder.
@@ -1509,10 +1349,10 @@ def write_report(
         measurement session folder (impulse-response WAVs, optional
         ``measurement.json``).
     dpi : int
-    compare_with : path or str, optional
-        Earlier measurement for the comparison section (see
-        :func:`report_comparison`); by default a run folder of a room is
-        compared with the room's previous complete measurement, if any.
+    comparison : dict, optional
+        The comparison section's data
+        (:func:`roomcorr.app.report.report_comparison` works it out); without
+        it the report has no comparison section.
     out_dir : path, optional
         Where to write (see :func:`report_destination` for the default).
 
@@ -1527,13 +1367,10 @@ def write_report(
     an interrupted or failed report leaves the earlier one whole and nothing
     half-written; a new destination folder appears only when it is complete.
     """
-    from roomcorr import rooms
-    from roomcorr.errors import InputFileError, OutputError
+    from roomcorr.errors import OutputError
 
     d = Path(folder)
-    if not d.is_dir():
-        raise InputFileError(f"{d}: no such folder; give a design or measurement folder")
-    rooms.verified(rooms.find_room(d), d)  # a damaged run of a room is named, not reported
+    check_report_folder(d)
     dest = report_destination(d, out_dir)
     is_design = (d / "manifest.json").is_file() and (d / "design.npz").is_file()
     settings = None
@@ -1570,7 +1407,6 @@ def write_report(
         quality = _read_quality(d)
         through = _read_through(d)
     iir = _read_iir(d) if is_design else None
-    comparison = report_comparison(d, compare_with)
     facts = _facts(d, manifest if is_design else None, curves)
     report = build_report(
         curves, settings, quality, iir=iir, dpi=dpi, comparison=comparison, through=through,
@@ -1594,12 +1430,8 @@ def write_report(
 
 
 def _list_report_in_manifest(d: Path, written: list[str]) -> None:
-    from roomcorr.deliver.export import (
-        add_manifest_entries,
-        read_manifest,
-        sha256_of,
-        write_manifest,
-    )
+    from roomcorr.deliver.atomic import sha256_of
+    from roomcorr.deliver.manifest import add_manifest_entries, read_manifest, write_manifest
 
     manifest = read_manifest(d)
     known = {e.get("path") for e in manifest.get("files", [])}
