@@ -220,7 +220,7 @@ _ENV = {**os.environ, "PYTHONPATH": str(Path(__file__).resolve().parent.parent)}
 def design_folder(tmp_path_factory):
     from roomcorr.deliver.export import write_design
     from roomcorr.deliver.export_iir import write_iir
-    from roomcorr.design.iir_fit import design_iir
+    from roomcorr.design.realise.iir_fit import design_iir
     from roomcorr.pipeline import run_design
     from roomcorr.settings import DesignSettings, Settings
 
@@ -373,7 +373,7 @@ def _stereo_room(n_pos=2, dur_s=0.6):
 def stereo_folder(tmp_path_factory):
     from roomcorr.deliver.export import write_design
     from roomcorr.deliver.export_iir import write_iir
-    from roomcorr.design.iir_fit import design_iir
+    from roomcorr.design.realise.iir_fit import design_iir
     from roomcorr.pipeline import run_design
     from roomcorr.settings import DesignSettings, Settings
 

@@ -49,7 +49,7 @@ def checked_figures(tmp_path_factory):
     """Every figure the report draws for a stereo mixed-phase biquad design with quality data."""
     from roomcorr.deliver.export import load_design_curves, write_design
     from roomcorr.deliver.export_iir import write_iir
-    from roomcorr.design.iir_fit import design_iir
+    from roomcorr.design.realise.iir_fit import design_iir
     from roomcorr.pipeline import run_design
     from roomcorr.settings import DesignSettings, Settings
 

@@ -39,10 +39,10 @@ from roomcorr.deliver.export_iir import write_iir
 from roomcorr.deliver.figures import design_figures
 from roomcorr.deliver.manifest import MANIFEST, read_manifest, write_manifest
 from roomcorr.deliver.system import manifest_fields, system_curves, write_extra_formats
-from roomcorr.design.area import area_arrays_of, area_fields_of
-from roomcorr.design.mixedphase import from_arrays as mixed_phase_from_arrays
-from roomcorr.design.mixedphase import latency_record
-from roomcorr.design.mixedphase import to_arrays as mixed_phase_arrays
+from roomcorr.design.curve.area import area_arrays_of, area_fields_of
+from roomcorr.design.phase.mixedphase import from_arrays as mixed_phase_from_arrays
+from roomcorr.design.phase.mixedphase import latency_record
+from roomcorr.design.phase.mixedphase import to_arrays as mixed_phase_arrays
 from roomcorr.errors import OutputError
 from roomcorr.rooms import refuse_finished_run
 from roomcorr.settings import settings_to_dict

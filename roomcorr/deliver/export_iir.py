@@ -34,8 +34,8 @@ import numpy as np
 from roomcorr.deliver.atomic import atomic_write_text
 from roomcorr.deliver.figures import fmt_db
 from roomcorr.deliver.manifest import add_manifest_entries
-from roomcorr.design import biquad as bq
-from roomcorr.design.iir_fit import IirDesign, IirStats
+from roomcorr.design.realise import biquad as bq
+from roomcorr.design.realise.iir_fit import IirDesign, IirStats
 from roomcorr.errors import OutputError
 
 if TYPE_CHECKING:  # pragma: no cover

@@ -17,7 +17,7 @@ from pathlib import Path
 import numpy as np
 
 from roomcorr.audio_io import read_ir_set
-from roomcorr.design.fir import fir_response_db
+from roomcorr.design.realise.fir import fir_response_db
 from roomcorr.evaluation.metrics import (
     bass_drive_db,
     broadband_db,

@@ -549,7 +549,7 @@ def plot_mixed_phase(
     Parameters
     ----------
     view : dict
-        :func:`roomcorr.design.mixedphase.direct_sound_views` of one channel:
+        :func:`roomcorr.design.phase.mixedphase.direct_sound_views` of one channel:
         ``gd_freq_hz``, ``gd_s`` (3, n_f), ``step_t_s``, ``step`` (3, n_t),
         ``ring_t_s``, ``ring_db``; the three rows are as measured, minimum
         phase, mixed phase.

@@ -491,7 +491,7 @@ def _channel(curves: dict[str, Any], ch: dict[str, Any], ctx: _Context) -> _Chan
             )
             x.how = "each measured response convolved with the exported filter"
         else:  # no filter at the measurement rate: apply the filter's response
-            from roomcorr.design.fir import fir_response_db
+            from roomcorr.design.realise.fir import fir_response_db
 
             x.predicted = ch["measured_db"] + fir_response_db(x.fir, x.rate, ctx.freq)[None, :]
             x.how = f"the {x.rate} Hz filter's response added to each measured response"
@@ -636,7 +636,7 @@ def _time_column(x: _Channel, ctx: _Context) -> Column | None:
 
 def _phase_column(x: _Channel, ctx: _Context) -> Column | None:
     """The mixed-phase part of one channel (``None`` for a minimum-phase design)."""
-    from roomcorr.design.mixedphase import PRE_RING_LIMIT_DB, PRE_RING_S
+    from roomcorr.design.phase.mixedphase import PRE_RING_LIMIT_DB, PRE_RING_S
     from roomcorr.report import figures as fg
 
     mixed = ctx.mixed
@@ -784,8 +784,8 @@ def channel_section(
 
 
 def _safety_section(chans: list[_Channel], curves: dict[str, Any], ctx: _Context) -> Section:
-    from roomcorr.design.fir import worst_case_gain_db
-    from roomcorr.design.safety import CAUTIONS, PEAK_BAND, full_band_peak_gain_db
+    from roomcorr.design.realise.fir import worst_case_gain_db
+    from roomcorr.design.realise.safety import CAUTIONS, PEAK_BAND, full_band_peak_gain_db
 
     caps = ctx.caps
     if ctx.figures is not None:  # the manifest's figures, never recomputed here

@@ -4,7 +4,7 @@ The correction curve lives on the rate-independent log-frequency grid
 (``roomcorr.grid``). For each sample rate a filter is synthesised from that
 curve directly (never by resampling another rate's filter): the curve is
 interpolated onto the rfft bins of an oversampled FFT, given minimum phase by
-folding the real cepstrum (``roomcorr.design.minphase``), transformed back and
+folding the real cepstrum (``roomcorr.design.phase.minphase``), transformed back and
 truncated to ``n_taps`` with a half-Hann fade over the last quarter.
 
 References
@@ -18,7 +18,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from roomcorr.design.minphase import DEFAULT_OVERSAMPLE, fft_length, minimum_phase_spectrum
+from roomcorr.design.phase.minphase import DEFAULT_OVERSAMPLE, fft_length, minimum_phase_spectrum
 from roomcorr.grid import interp_log
 
 #: Shortest filter :func:`default_n_taps` returns.
