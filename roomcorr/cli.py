@@ -1119,7 +1119,7 @@ def _run_ui(args: argparse.Namespace) -> int:
 
 
 def _add_apply(sub: Any) -> argparse.ArgumentParser:
-    from roomcorr.playback.render import LOWERED_PEAK_DBFS, SUBTYPES
+    from roomcorr.playback.limits import LOWERED_PEAK_DBFS, SUBTYPES
 
     p = sub.add_parser(
         "apply",

@@ -37,6 +37,7 @@ from roomcorr.settings import (
     Settings,
     find_preset,
     is_preset_name,
+    preset_names,
     read_toml,
     subwoofer_names,
 )
@@ -136,8 +137,6 @@ def resolve_target(freq_hz: np.ndarray, spec: str) -> np.ndarray:
         return target_from_table(freq_hz, table, str(preset))
     p = Path(spec)
     if is_preset_name(spec) and not p.exists():
-        from roomcorr.settings import preset_names
-
         raise SettingsError(
             f"--target {spec}: neither a preset ({', '.join(preset_names())}) nor a file"
         )

@@ -25,6 +25,7 @@ from roomcorr.deliver.atomic import atomic_write_bytes
 from roomcorr.deliver.export import check_out_dir, input_digests, write_design
 from roomcorr.design.curve.target import target_from_table
 from roomcorr.design.realise.fir import synthesize_fir
+from roomcorr.design.realise.iir_fit import design_iir
 from roomcorr.design.realise.safety import PEAK_BAND, common_pre_gain_db, full_band_peak_gain_db
 from roomcorr.design.system.align import apply_plan, plan_system
 from roomcorr.errors import OutputError, RoomcorrError, SettingsError
@@ -119,8 +120,6 @@ def design_from_files(
     result = run_design(irs, fs, settings)
     iir = None
     if settings.design.iir:
-        from roomcorr.design.realise.iir_fit import design_iir
-
         iir = design_iir(result)  # fitted and safety-checked before anything is written
     info: dict[str, Any] = {
         "measurements": [str(f) for f in files],

@@ -45,7 +45,7 @@ from roomcorr.design.phase.mixedphase import latency_record
 from roomcorr.design.phase.mixedphase import to_arrays as mixed_phase_arrays
 from roomcorr.errors import OutputError
 from roomcorr.rooms import refuse_finished_run
-from roomcorr.settings import settings_to_dict
+from roomcorr.settings import find_preset, settings_to_dict
 
 if TYPE_CHECKING:
     from roomcorr.pipeline import DesignResult
@@ -77,8 +77,6 @@ def input_digests(
     if calibration:
         items.append(("calibration", Path(calibration)))
     if target:
-        from roomcorr.settings import find_preset
-
         preset = find_preset(target)
         items.append(("target", Path(preset) if preset is not None else Path(target)))
     out = []

@@ -26,6 +26,7 @@ from __future__ import annotations
 import csv
 import io
 import json
+import textwrap
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
@@ -37,6 +38,7 @@ from roomcorr.deliver.manifest import add_manifest_entries
 from roomcorr.design.realise import biquad as bq
 from roomcorr.design.realise.iir_fit import IirDesign, IirStats
 from roomcorr.errors import OutputError
+from roomcorr.report.summary import withheld_regions
 
 if TYPE_CHECKING:  # pragma: no cover
     from roomcorr.pipeline import DesignResult
@@ -153,7 +155,6 @@ def _channel_regions(fir: DesignResult | None, index: int) -> tuple[list, Any]:
     """Refused-boost regions and the correction curve of one channel of a FIR design."""
     if fir is None:
         return [], None
-    from roomcorr.report.summary import withheld_regions
 
     ch = next(c for c in fir.channels if c.index == index)
     curves = {
@@ -264,8 +265,6 @@ def iir_documents(design: IirDesign, fir: DesignResult | None = None) -> dict[st
 
 
 def _wrap(text: str, width: int = 88) -> list[str]:
-    import textwrap
-
     return textwrap.wrap(text, width)
 
 

@@ -13,24 +13,57 @@ from __future__ import annotations
 
 import base64
 import html
+import os
 import re
+import shutil
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
 import numpy as np
+from scipy.signal import fftconvolve, freqz, sosfreqz
 
+from roomcorr import rooms
+from roomcorr.analysis.average import power_average
 from roomcorr.analysis.decay import decay_method as _decay_method
+from roomcorr.analysis.decay import low_frequency_decay_map, octave_band_decay, ringing_modes
 from roomcorr.analysis.decay import mean_band_decay as _mean_band_decay
+from roomcorr.audio_io import read_ir_set
 from roomcorr.checked import read_json
-from roomcorr.deliver.atomic import PathEscapeError, contained
-from roomcorr.deliver.figures import fmt_db
+from roomcorr.deliver.atomic import (
+    PathEscapeError,
+    atomic_write_bytes,
+    atomic_write_text,
+    contained,
+    disk_error_text,
+    holds_working_folder,
+    sha256_of,
+    staged_copy,
+    staged_folder,
+)
+from roomcorr.deliver.export import (
+    check_folder_target,
+    design_differences,
+    load_design_curves,
+)
+from roomcorr.deliver.export_iir import pre_gain_note
+from roomcorr.deliver.figures import figures_of_manifest, fmt_db
 from roomcorr.deliver.loading import file_groups
-from roomcorr.errors import RoomcorrError
+from roomcorr.deliver.manifest import add_manifest_entries, read_manifest, write_manifest
+from roomcorr.design.phase.mixedphase import PRE_RING_LIMIT_DB, PRE_RING_S
+from roomcorr.design.realise.fir import fir_response_db, worst_case_gain_db
+from roomcorr.design.realise.safety import CAUTIONS, PEAK_BAND, full_band_peak_gain_db
+from roomcorr.errors import InputFileError, OutputError, RoomcorrError
+from roomcorr.grid import log_grid
+from roomcorr.pipeline import analyse_positions, default_channel_names
+from roomcorr.report import figures as fg
 from roomcorr.report import glance
+from roomcorr.report.compare import comparison_png, format_comparison
 from roomcorr.report.files import files_parts
 from roomcorr.report.parts import Column, Figure, Report, Section
 from roomcorr.report.summary import fmt_hz, summary_sentences, withheld_regions
+from roomcorr.report.system import system_sections
+from roomcorr.rooms import COMPLETE_MARKER, measurement_record, refuse_finished_run
 
 REPORT_HTML = "report.html"
 FIG_DIR = "report"
@@ -78,7 +111,6 @@ def corrected_responses(irs: np.ndarray, fir: np.ndarray) -> np.ndarray:
     -------
     corrected_irs : ndarray, shape (n_positions, n_samples)
     """
-    from scipy.signal import fftconvolve
 
     return fftconvolve(irs, fir[None, :], axes=-1)[:, : irs.shape[-1]]
 
@@ -107,7 +139,6 @@ def predicted_responses(
     corrected_irs : ndarray, shape (n_positions, n_samples)
         Convolved responses cut to the original length.
     """
-    from roomcorr.pipeline import analyse_positions
 
     conv = corrected_responses(irs, fir)
     after, _ = analyse_positions(conv[:, None, :], fs, freq_hz)
@@ -153,8 +184,6 @@ def filter_response(
     k = np.clip(np.searchsorted(bins, f[idx]), 1, bins.size - 1)
     sel = idx[np.abs(gd_bins[k] - gd_bins[k - 1]) > 0.001 * fs / 1000.0]
     if sel.size:
-        from scipy.signal import freqz
-
         _, s_sel = freqz(h, worN=f[sel], fs=fs)
         _, r_sel = freqz(np.arange(h.size) * h, worN=f[sel], fs=fs)
         with np.errstate(divide="ignore", invalid="ignore"):
@@ -214,8 +243,6 @@ def quality_from_record(record: dict[str, Any]) -> list[dict[str, Any]]:
 
 
 def _quality_section(recordings: list[dict[str, Any]], png: Any) -> Section:
-    from roomcorr.report import figures as fg
-
     sec = Section("quality", SECTION_TITLES["quality"])
     sec.paragraphs.append(
         "Signal to noise per octave band (40 dB or more is comfortable), the loudspeaker's "
@@ -266,7 +293,6 @@ def iir_response_db(doc: dict[str, Any], freq_hz: np.ndarray) -> np.ndarray:
     Coefficients ``[b0, b1, b2, a1, a2]`` with ``a0 = 1``, evaluated with
     :func:`scipy.signal.sosfreqz`; NaN at and above Nyquist.
     """
-    from scipy.signal import sosfreqz
 
     fs = float(doc["sample_rate"])
     f = np.asarray(freq_hz, dtype=float)
@@ -287,7 +313,6 @@ def iir_response_db(doc: dict[str, Any], freq_hz: np.ndarray) -> np.ndarray:
 
 def _iir_column(x: _Channel, ctx: _Context) -> Column | None:
     """The biquad version of one channel: both pre-gains, the sections by frequency, notes."""
-    from roomcorr.report import figures as fg
 
     docs = (ctx.iir or {}).get(x.name)
     if not docs or "correction_db" not in x.ch:
@@ -308,7 +333,6 @@ def _iir_column(x: _Channel, ctx: _Context) -> Column | None:
         f"worst-case gain {fmt_db(figs.get('worst_case_gain_db'), 2)}, fit error "
         f"{fmt_db(figs.get('fit_rms_error_db'), 2)} rms."
     )
-    from roomcorr.deliver.export_iir import pre_gain_note
 
     col.paragraphs.append(pre_gain_note(iir_pre, ctx.pre_gain))
     notes = [str(n) for n in doc.get("notes") or []]
@@ -370,7 +394,6 @@ def comparison_section(res: dict[str, Any]) -> Section:
         last column holding that channel's sentences of
         :func:`roomcorr.report.compare.format_comparison`.
     """
-    from roomcorr.report.compare import comparison_png, format_comparison
 
     lines = format_comparison(res)
     blocks: list[list[str]] = [[]]
@@ -491,7 +514,6 @@ def _channel(curves: dict[str, Any], ch: dict[str, Any], ctx: _Context) -> _Chan
             )
             x.how = "each measured response convolved with the exported filter"
         else:  # no filter at the measurement rate: apply the filter's response
-            from roomcorr.design.realise.fir import fir_response_db
 
             x.predicted = ch["measured_db"] + fir_response_db(x.fir, x.rate, ctx.freq)[None, :]
             x.how = f"the {x.rate} Hz filter's response added to each measured response"
@@ -504,8 +526,6 @@ def _target_note(x: _Channel, ctx: _Context) -> str:
 
 
 def _room_column(x: _Channel, ctx: _Context) -> Column | None:
-    from roomcorr.report import figures as fg
-
     col = Column(x.name)
     if x.ch.get("target_db") is not None:
         col.paragraphs.append(_target_note(x, ctx))
@@ -525,8 +545,6 @@ def _room_column(x: _Channel, ctx: _Context) -> Column | None:
 
 
 def _result_column(x: _Channel, ctx: _Context) -> Column | None:
-    from roomcorr.report import figures as fg
-
     if x.predicted is None:
         return None
     col = Column(x.name)
@@ -553,8 +571,6 @@ _REFUSAL_REASONS = {
 
 
 def _filter_column(x: _Channel, ctx: _Context) -> Column | None:
-    from roomcorr.report import figures as fg
-
     if x.fir is None or x.predicted is None:
         return None
     gain, phase, gd = filter_response(x.fir, x.rate, ctx.freq)
@@ -614,8 +630,6 @@ def _latency_samples_at(ctx: _Context, fs: int) -> int:
 
 
 def _time_column(x: _Channel, ctx: _Context) -> Column | None:
-    from roomcorr.report import figures as fg
-
     if x.corrected is None or x.fir is None or x.pos_irs is None:
         return None
     col = Column(x.name)
@@ -636,8 +650,6 @@ def _time_column(x: _Channel, ctx: _Context) -> Column | None:
 
 def _phase_column(x: _Channel, ctx: _Context) -> Column | None:
     """The mixed-phase part of one channel (``None`` for a minimum-phase design)."""
-    from roomcorr.design.phase.mixedphase import PRE_RING_LIMIT_DB, PRE_RING_S
-    from roomcorr.report import figures as fg
 
     mixed = ctx.mixed
     if not mixed or x.index >= len(mixed["channels"]):
@@ -683,7 +695,6 @@ def _phase_column(x: _Channel, ctx: _Context) -> Column | None:
 
 def _position_decay(x: _Channel, ctx: _Context) -> list[Any]:
     """Octave-band decay averaged over positions (empty when it cannot be analysed)."""
-    from roomcorr.analysis.decay import octave_band_decay
 
     if x.pos_irs is None:
         return []
@@ -695,8 +706,6 @@ def _position_decay(x: _Channel, ctx: _Context) -> list[Any]:
 
 
 def _decay_column(x: _Channel, ctx: _Context) -> Column | None:
-    from roomcorr.report import figures as fg
-
     bands = _position_decay(x, ctx)
     if not bands:
         return None
@@ -710,9 +719,6 @@ def _decay_column(x: _Channel, ctx: _Context) -> Column | None:
 
 
 def _ringing_column(x: _Channel, ctx: _Context) -> Column | None:
-    from roomcorr.analysis.decay import low_frequency_decay_map, ringing_modes
-    from roomcorr.report import figures as fg
-
     if x.pos_irs is None or not _position_decay(x, ctx):
         return None
     before_map = low_frequency_decay_map(x.pos_irs[0], ctx.fs)
@@ -784,9 +790,6 @@ def channel_section(
 
 
 def _safety_section(chans: list[_Channel], curves: dict[str, Any], ctx: _Context) -> Section:
-    from roomcorr.design.realise.fir import worst_case_gain_db
-    from roomcorr.design.realise.safety import CAUTIONS, PEAK_BAND, full_band_peak_gain_db
-
     caps = ctx.caps
     if ctx.figures is not None:  # the manifest's figures, never recomputed here
         rows = [["channel", "rate (Hz)", "taps", "largest boost (dB)", "peak gain (dB)",
@@ -923,7 +926,6 @@ def build_report(
     -------
     Report
     """
-    from roomcorr.report import figures as fg
 
     def png(fig: Any) -> bytes:
         return fg.png_bytes(fig, dpi=dpi)
@@ -950,8 +952,6 @@ def build_report(
         )
         sections.append(changes)
     if designed:
-        from roomcorr.report.system import system_sections
-
         sections.extend(system_sections(curves, png))
     chans = [_channel(curves, ch, ctx) for ch in curves["channels"]]
     for sec_id, intro, build in CHANNEL_SECTIONS:
@@ -1011,7 +1011,6 @@ def through_section(check: dict[str, Any], names: list[str], png: Any) -> Sectio
     octave), ``positions``, ``limit_db`` and ``over_limit_hz`` (per position and
     channel, the ranges where the two differ by more than ``limit_db``).
     """
-    from roomcorr.report import figures as fg
 
     freq = np.asarray(check["freq_hz"], dtype=float)
     meas = np.asarray(check["measured_db"], dtype=float)
@@ -1158,7 +1157,6 @@ def render_html(report: Report) -> str:
 
 def _read_through(folder: Path) -> dict[str, Any] | None:
     """``through.check`` of a measurement made with ``measure --through`` (None otherwise)."""
-    from roomcorr.rooms import measurement_record
 
     data = measurement_record(folder)  # a damaged record is one line, never a traceback
     check = (data.get("through") or {}).get("check") if data is not None else None
@@ -1166,8 +1164,6 @@ def _read_through(folder: Path) -> dict[str, Any] | None:
 
 
 def _read_quality(folder: Path) -> list[dict[str, Any]] | None:
-    from roomcorr.rooms import measurement_record
-
     data = measurement_record(folder)  # a damaged record is one line, never a traceback
     return quality_from_record(data) if data is not None else None
 
@@ -1187,12 +1183,6 @@ def _read_iir(folder: Path) -> dict[str, list[dict[str, Any]]] | None:
 
 def _session_curves(folder: Path) -> dict[str, Any]:
     """Curves of a measurement session folder (IR WAVs, no design)."""
-    from roomcorr.analysis.average import power_average
-    from roomcorr.audio_io import read_ir_set
-    from roomcorr.errors import InputFileError
-    from roomcorr.grid import log_grid
-    from roomcorr.pipeline import analyse_positions, default_channel_names
-    from roomcorr.rooms import measurement_record
 
     wavs: list[Path] = []
     data = measurement_record(folder)  # the session's own list of impulse responses, in order
@@ -1253,8 +1243,6 @@ def _facts(d: Path, manifest: dict[str, Any] | None, curves: dict[str, Any]) -> 
 
 
 def _complete(run_dir: Path) -> bool:
-    from roomcorr.rooms import COMPLETE_MARKER
-
     try:
         data = read_json(run_dir / COMPLETE_MARKER, COMPLETE_MARKER)
     except RoomcorrError:
@@ -1265,8 +1253,6 @@ def _complete(run_dir: Path) -> bool:
 def _ours(d: Path) -> bool:
     """Whether folder ``d`` was written by roomcorr (a design, a measurement or a room run),
     so its report may go into it; someone else's folder of WAVs is never written to."""
-    from roomcorr.deliver.export import read_manifest
-    from roomcorr.errors import OutputError
 
     if (d / "complete.json").is_file():
         return True
@@ -1296,9 +1282,6 @@ def report_destination(folder: str | Path, out_dir: str | Path | None = None) ->
         For a destination that is a link, a file, a finished room run (other
         than the reported run itself), or a folder holding other files.
     """
-    from roomcorr.deliver.export import check_folder_target
-    from roomcorr.errors import OutputError
-    from roomcorr.rooms import refuse_finished_run
 
     d = Path(folder)
     if out_dir is None:
@@ -1325,8 +1308,6 @@ def report_destination(folder: str | Path, out_dir: str | Path | None = None) ->
 def check_report_folder(folder: str | Path) -> None:
     """Raise :class:`~roomcorr.errors.InputFileError` unless ``folder`` can be reported:
     it must exist, and must not be a damaged run of a room (named, not reported)."""
-    from roomcorr import rooms
-    from roomcorr.errors import InputFileError
 
     d = Path(folder)
     if not d.is_dir():
@@ -1367,7 +1348,6 @@ def write_report(
     an interrupted or failed report leaves the earlier one whole and nothing
     half-written; a new destination folder appears only when it is complete.
     """
-    from roomcorr.errors import OutputError
 
     d = Path(folder)
     check_report_folder(d)
@@ -1376,9 +1356,6 @@ def write_report(
     settings = None
     through = None
     if is_design:
-        from roomcorr.deliver.export import design_differences, load_design_curves, read_manifest
-        from roomcorr.deliver.figures import figures_of_manifest
-
         if not (d / "complete.json").is_file():  # a run of a room is checked by its record
             # every file the manifest lists, with its SHA-256, and nothing else: a deleted
             # or changed filter is named, never redrawn from design.npz
@@ -1430,9 +1407,6 @@ def write_report(
 
 
 def _list_report_in_manifest(d: Path, written: list[str]) -> None:
-    from roomcorr.deliver.atomic import sha256_of
-    from roomcorr.deliver.manifest import add_manifest_entries, read_manifest, write_manifest
-
     manifest = read_manifest(d)
     known = {e.get("path") for e in manifest.get("files", [])}
     if known & {*written, REPORT_HTML}:  # a report written before: refresh its digests
@@ -1455,18 +1429,7 @@ def _list_report_in_manifest(d: Path, written: list[str]) -> None:
 def _write_report_files(dest: Path, report: Report, list_in_manifest: bool) -> list[str]:
     """Write the figures and the page (and their manifest entries) into ``dest``, all or
     nothing: the folder is built beside ``dest`` and swapped in when complete."""
-    import os
-    import shutil
 
-    from roomcorr.deliver.atomic import (
-        atomic_write_bytes,
-        atomic_write_text,
-        disk_error_text,
-        holds_working_folder,
-        staged_copy,
-        staged_folder,
-    )
-    from roomcorr.errors import OutputError
 
     figures = [f for s in report.sections for f in s.all_figures()]
     written = [f"{FIG_DIR}/{f.key}.png" for f in figures]

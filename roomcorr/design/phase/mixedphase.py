@@ -78,6 +78,7 @@ import numpy as np
 from roomcorr.design.phase.excess_phase import (
     REFERENCE_BAND_HZ,
     ExcessPhaseEstimate,
+    direct_sound_segment,
     estimate_excess_phase,
     excess_gd_on_bins,
 )
@@ -690,7 +691,6 @@ def direct_sound_views(
         before each time, relative to its total (time relative to its main
         peak).
     """
-    from roomcorr.design.phase.excess_phase import direct_sound_segment
 
     if fs not in firs_min:
         return {}

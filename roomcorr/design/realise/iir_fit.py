@@ -54,9 +54,11 @@ from dataclasses import dataclass, field
 from typing import TYPE_CHECKING
 
 import numpy as np
+from scipy.optimize import least_squares
 
 from roomcorr.design.realise import biquad as bq
 from roomcorr.design.realise.biquad import KINDS, SHELF_MAX_Q, Section
+from roomcorr.design.realise.fir import fir_response_db as _fir_db
 from roomcorr.errors import SafetyError, SettingsError
 
 if TYPE_CHECKING:  # pragma: no cover
@@ -240,8 +242,6 @@ class _Objective:
 
 
 def _solve(kinds, x0, prob, fixed_db, fixed_check_db, max_nfev):
-    from scipy.optimize import least_squares
-
     lo, hi = _bounds(kinds, prob.lim)
     x0 = _clip(x0, lo, hi)
     obj = _Objective(kinds, prob, fixed_db, fixed_check_db)
@@ -472,7 +472,6 @@ def realise(
     float32_dev_db : float
         Largest response change from rounding to float32 (< 0.1 dB, proven).
     """
-    from scipy.optimize import least_squares
 
     lim = limits.validated()
     if not sections:
@@ -588,7 +587,6 @@ def _errors(a_db: np.ndarray, b_db: np.ndarray) -> tuple[float, float]:
 
 def fir_response_db(fir: np.ndarray, freq_hz: np.ndarray, fs: float) -> np.ndarray:
     """Magnitude in dB of FIR taps ``(n_taps,)`` at ``freq_hz``, floored at -240 dB."""
-    from roomcorr.design.realise.fir import fir_response_db as _fir_db
 
     return np.maximum(_fir_db(fir, fs, freq_hz), -240.0)
 
