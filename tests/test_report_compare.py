@@ -15,7 +15,7 @@ import pytest
 
 from roomcorr import rooms
 from roomcorr.app.report import report_comparison, write_folder_report
-from roomcorr.report import html as rh
+from roomcorr.report.earlier import comparison_section
 
 ROOT = Path(__file__).resolve().parent.parent
 DEMO = ROOT / "measurements_demo"
@@ -107,7 +107,7 @@ def test_comparison_figures_match_compare(room_runs):
     assert res["before"] == f"measurements/{m1.name}"
     right = next(c for c in res["channels"] if c["name"] == "right")
     assert right["distance_change_m"] == pytest.approx(_expected_distance_m(), abs=0.02)
-    sec = rh.comparison_section(res)
+    sec = comparison_section(res)
     assert sec.table[0][:4] == [
         "channel", "arrival change (ms)", "distance change (m)", "level change (dB)"
     ]

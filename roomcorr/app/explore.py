@@ -32,8 +32,8 @@ from roomcorr.errors import BadNameError, InputFileError
 from roomcorr.grid import log_grid
 from roomcorr.pipeline import analyse_positions, default_channel_names
 from roomcorr.report.compare import format_comparison
+from roomcorr.report.curves import corrected_responses, filter_response
 from roomcorr.report.figures import DECAY_MAP_FLOOR_DB, DECAY_MAP_STOPS
-from roomcorr.report.html import corrected_responses, filter_response
 from roomcorr.rooms.runs import RUN_NAME
 
 #: Plot curves are thinned to this many points per octave (the design grid has 96).
@@ -104,7 +104,7 @@ def design_view(room: rooms.Room, run_id: str) -> dict[str, Any]:
         and ``predicted_db`` (average plus correction, per position as well);
         ``filters``: per sample rate and channel the FIR's magnitude (dB, with
         the pre-gain), phase (degrees, wrapped) and group delay (ms), from the
-        report's :func:`roomcorr.report.html.filter_response`;
+        report's :func:`roomcorr.report.curves.filter_response`;
         ``manifest``: the design's manifest.
     """
 
@@ -265,7 +265,7 @@ def decay_view(
     :func:`low_frequency_decay_map`, :func:`ringing_modes`); for a design run
     the corrected map is made from the measured responses convolved with the
     design's filter at the measurement's rate
-    (:func:`roomcorr.report.html.corrected_responses`), as the report does.
+    (:func:`roomcorr.report.curves.corrected_responses`), as the report does.
 
     Parameters
     ----------

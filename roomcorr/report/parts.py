@@ -52,3 +52,24 @@ class Report:
     sections: list[Section]
     #: Lines under the title: date, run ids, positions, what was measured.
     facts: list[str] = field(default_factory=list)
+
+
+#: Section ids, in page order (per channel sections get a ``-<channel>`` suffix).
+SECTION_TITLES = {
+    "overview": "At a glance",
+    "changes": "What the correction did, channel by channel",
+    "compare": "What changed since the earlier measurement",
+    "room": "The room as measured",
+    "result": "Predicted result at every position",
+    "filter": "The correction filter",
+    "time": "Impulse and step",
+    "phase": "Direct sound and latency (mixed phase)",
+    "decay": "Reverberation by octave",
+    "ringing": "Low-frequency ringing",
+    "iir": "The biquad version",
+    "quality": "How good the measurement was",
+    "through": "Measured through the design's filters",
+    "causes": "Why the peaks and dips are there",
+    "safety": "Safety and levels",
+    "files": "The files and how to load them",
+}
