@@ -11,6 +11,9 @@ parser, not ours).
 from __future__ import annotations
 
 import ast
+import os
+import subprocess
+import sys
 from pathlib import Path
 
 PACKAGE = Path(__file__).resolve().parents[1] / "roomcorr"
@@ -110,3 +113,22 @@ def test_the_cli_still_imports_a_command_module_only_when_it_runs():
         elif isinstance(node, ast.ImportFrom):
             top.add(node.module or "")
     assert {m for m in top if m.startswith("roomcorr")} == {"roomcorr.errors"}
+
+
+def test_the_command_line_parser_loads_no_numerical_library():
+    # `roomcorr --help` builds every subcommand's parser; building them must not load
+    # numpy, scipy, matplotlib or soundfile (they come with the command that runs).
+    # Read from Python's own sys.modules in a fresh interpreter.
+    code = (
+        "import sys\n"
+        "from roomcorr import cli\n"
+        "cli.build_parser()\n"
+        "heavy = {'numpy', 'scipy', 'matplotlib', 'soundfile'}\n"
+        "print(sorted(m for m in sys.modules if m.split('.')[0] in heavy))\n"
+    )
+    env = {**os.environ, "PYTHONPATH": str(PACKAGE.parent)}
+    run = subprocess.run(
+        [sys.executable, "-c", code], capture_output=True, text=True, env=env, timeout=120
+    )
+    assert run.returncode == 0, run.stderr
+    assert run.stdout.strip() == "[]"
