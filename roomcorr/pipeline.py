@@ -13,10 +13,10 @@ from dataclasses import dataclass, replace
 from pathlib import Path
 
 import numpy as np
-from scipy.signal import freqz
 
 from roomcorr.analysis.average import power_average
 from roomcorr.analysis.balance import steady_balance_set
+from roomcorr.analysis.dtft import dtft
 from roomcorr.analysis.onset import find_onset
 from roomcorr.analysis.smoothing import smooth_log_grid, variable_width_oct
 from roomcorr.analysis.window import fdw_power
@@ -462,12 +462,8 @@ def _run_several_subwoofers(
         )
     lo, hi = d.crossover_range_hz
     grid = spread_grid_hz(2.0 * float(np.sqrt(lo * hi)))
-    resp = np.array(
-        [[freqz(irs[p, k], worN=grid, fs=fs)[1] for k in sub_idx] for p in range(n_pos)]
-    )
-    mains_resp = np.array(
-        [[freqz(irs[p, k], worN=grid, fs=fs)[1] for k in mains] for p in range(n_pos)]
-    )
+    resp = dtft(irs[:, sub_idx], grid, fs)
+    mains_resp = dtft(irs[:, mains], grid, fs)
     # judged as the seats hear it: both mains driven, crossed over at the range's middle
     sub_heard, mains_heard = with_mains(resp, mains_resp, grid, float(np.sqrt(lo * hi)), fs)
     arr = plan_subwoofers(sub_heard, grid, subs, sub_idx, weights, base=mains_heard)
