@@ -13,6 +13,7 @@ from dataclasses import dataclass, replace
 from pathlib import Path
 
 import numpy as np
+from scipy.signal import sosfilt
 
 from roomcorr.analysis.average import power_average
 from roomcorr.analysis.balance import steady_balance_set
@@ -28,7 +29,7 @@ from roomcorr.design.correction import align_target, correction_curve
 from roomcorr.design.fir import default_n_taps, synthesize_fir, taps_for_latency
 from roomcorr.design.mixedphase import MixedPhaseDesign, apply_mixed_phase, latency_samples
 from roomcorr.design.safety import FilterStats, apply_safety, fit_under_cap
-from roomcorr.design.subwoofers import plan_subwoofers, spread_grid_hz, with_mains
+from roomcorr.design.subwoofers import cut_sos, plan_subwoofers, spread_grid_hz, with_mains
 from roomcorr.design.target import AUTO_LIMITS_HZ, target_from_points, target_from_table
 from roomcorr.errors import InputFileError, SettingsError
 from roomcorr.grid import interp_log, log_grid, points_per_octave_of
@@ -417,12 +418,20 @@ def _shifted(h: np.ndarray, n: int, n_out: int) -> np.ndarray:
     return out
 
 
+def _own_cuts(h: np.ndarray, cuts, fs: float) -> np.ndarray:
+    """``h`` (any leading shape) through a subwoofer's own cuts designed at ``fs``, same
+    length (each cut's gain is at most 0 dB, so it adds no boost)."""
+    for f0, gain_db, q in cuts:
+        h = sosfilt(cut_sos(f0, gain_db, q, fs), h, axis=-1)
+    return h
+
+
 def _run_several_subwoofers(
     irs: np.ndarray, fs: int, settings: Settings, channel_names: list[str] | None
 ) -> DesignResult:
     """Several subwoofers: chosen together, then designed as one source (design/subwoofers.py).
 
-    1. Each subwoofer's delay, level (cut only) and polarity come from
+    1. Each subwoofer's delay, level (cut only), polarity and own cuts come from
        :func:`roomcorr.design.subwoofers.plan_subwoofers` on the measured
        responses (20 Hz to twice the middle of the crossover range), judged
        with both mains driven through a crossover at the range's middle
@@ -431,10 +440,11 @@ def _run_several_subwoofers(
        position, and the single-subwoofer design runs on the mains and that
        channel: common correction, crossover, alignment, safety.
     3. The virtual channel's filter is handed to every subwoofer with its own
-       delay (whole samples at each rate), level and polarity, always inside
-       the filters. Each output's peak gain stays at or below the virtual
-       channel's (a cut and a shift change no peak), and the safety check
-       runs again on the outputs as delivered.
+       delay (whole samples at each rate), level, polarity and cuts (designed
+       at each rate), always inside the filters. Each output's peak gain stays
+       at or below the virtual channel's (a cut, a parametric cut and a shift
+       raise no peak), and the safety check runs again on the outputs as
+       delivered.
     """
     d = settings.design
     n_pos, n_ch, n_samp = irs.shape
@@ -466,15 +476,16 @@ def _run_several_subwoofers(
     mains_resp = dtft(irs[:, mains], grid, fs)
     # judged as the seats hear it: both mains driven, crossed over at the range's middle
     sub_heard, mains_heard = with_mains(resp, mains_resp, grid, float(np.sqrt(lo * hi)), fs)
-    arr = plan_subwoofers(sub_heard, grid, subs, sub_idx, weights, base=mains_heard)
-    # one virtual subwoofer: every subwoofer with its own delay, level and polarity
+    arr = plan_subwoofers(sub_heard, grid, subs, sub_idx, weights, base=mains_heard, fs=fs)
+    # one virtual subwoofer: every subwoofer with its own delay, level, polarity and cuts
     shifts = [int(round(t * fs)) for t in arr.delay_s]
     n_v = n_samp + max(shifts)
     virtual = np.zeros((n_pos, n_v))
     for k, c in enumerate(sub_idx):
         g = 10.0 ** (arr.gain_db[k] / 20.0) * arr.polarity[k]
+        own = _own_cuts(irs[:, c], arr.cuts[k], fs)
         for p in range(n_pos):
-            virtual[p] += g * _shifted(irs[p, c], shifts[k], n_v)
+            virtual[p] += g * _shifted(own[p], shifts[k], n_v)
     vname = "+".join(subs)
     inner_irs = np.zeros((n_pos, len(mains) + 1, n_v))
     inner_irs[:, : len(mains), :n_samp] = irs[:, mains]
@@ -495,7 +506,7 @@ def _run_several_subwoofers(
             rows[c, : h.shape[1]] = h[i]
         for k, c in enumerate(sub_idx):
             g = 10.0 ** (arr.gain_db[k] / 20.0) * arr.polarity[k]
-            rows[c] = g * _shifted(h[v], sh[k], n_out)
+            rows[c] = g * _shifted(_own_cuts(h[v], arr.cuts[k], rate), sh[k], n_out)
         firs[rate] = rows
     firs, pre2, stats = apply_safety(firs, d.ceiling_db, d.max_boost_db)
     inner_of = {c: i for i, c in enumerate(mains)} | {c: v for c in sub_idx}

@@ -7,14 +7,18 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from pra_rooms import MULTI_SUB_ROOMS, mains_m, simulate_pra, sofa_positions
-from scipy.signal import freqz
+from scipy.signal import freqz, sosfilt, sosfreqz
 
 from roomcorr.deliver.routes import build_routes
 from roomcorr.deliver.system import manifest_fields, system_sentences
 from roomcorr.design.crossover import linkwitz_riley_response
 from roomcorr.design.subwoofers import (
+    CUT_DEPTHS_DB,
+    MAX_CUTS,
     OFF_DB,
     array_response,
+    cut_sos,
+    cuts_response,
     plan_subwoofers,
     seat_levels_db,
     seat_spread_db,
@@ -104,6 +108,67 @@ def test_search_finds_a_known_optimum():
     assert plan.polarity[0] * plan.polarity[1] == -1
 
 
+def test_search_finds_a_known_optimum_that_needs_an_own_cut():
+    # Synthetic case with an exact optimum that needs one subwoofer's own filter: A hears
+    # (1 + m_p) / H and B hears (1 - m_p), H being the cut of -6 dB at 50 Hz, Q 2 that the
+    # search offers (cookbook peaking filter). Fed equally with A through H, the sum is 2 at
+    # every seat (no spread at all); without the cut A's resonance 1/H leaves the seats
+    # different around 50 Hz (algebra above).
+    rng = np.random.default_rng(11)
+    f = spread_grid_hz(180.0)
+    n_pos = 6
+    smooth = np.exp(-((np.log2(f)[None, :] - rng.uniform(5.0, 6.5, (n_pos, 1))) ** 2) / 0.5)
+    m = 0.4 * smooth * np.exp(1j * rng.uniform(0, 2 * np.pi, (n_pos, 1)))
+    h = cuts_response(f, [(50.0, -6.0, 2.0)], FS)
+    resp = np.stack([(1 + m) / h, 1 - m], 1)
+    without = plan_subwoofers(resp, f, ["a", "b"], [0, 1], predict=False, own_filters=False)
+    plan = plan_subwoofers(resp, f, ["a", "b"], [0, 1], predict=False, fs=FS)
+    assert without.spread_after_db > 0.1
+    assert plan.spread_after_db < 0.01 * without.spread_after_db
+    assert plan.cuts[0] == [(50.0, -6.0, 2.0)] and plan.cuts[1] == []
+    assert plan.filter == ["cut -6.0 dB at 50 Hz (Q 2)", "none"]
+    np.testing.assert_allclose(plan.delay_s, 0.0)
+    np.testing.assert_allclose(plan.gain_db, 0.0)
+
+
+def test_an_own_cut_is_the_cookbook_peaking_filter():
+    # reference: pyfar.dsp.filter.bell with bell_type "III" (bandwidth at half the gain in
+    # dB, the cookbook's definition of Q for its peaking filter); the two agree to 1e-4 dB
+    import pyfar as pf
+
+    f = np.geomspace(10.0, 2000.0, 400)
+    for f0, g, q, fs in (
+        (50.0, -6.0, 2.0, 48000),
+        (31.5, -2.0, 4.0, 44100),
+        (90.0, -9.0, 1.0, 96000),
+    ):
+        ref = pf.dsp.filter.bell(None, f0, g, q, bell_type="III", sampling_rate=fs)
+        b, a = ref.coefficients[0]
+        want = 20 * np.log10(np.abs(freqz(b, a, worN=f, fs=fs)[1]))
+        got = 20 * np.log10(np.abs(sosfreqz(cut_sos(f0, g, q, fs), worN=f, fs=fs)[1]))
+        np.testing.assert_allclose(got, want, atol=1e-4)
+        # exactly the gain at the centre (cookbook definition)
+        np.testing.assert_allclose(20 * np.log10(abs(cuts_response([f0], [(f0, g, q)], fs))), g)
+    with pytest.raises(ValueError, match="only cuts"):
+        cut_sos(50.0, 1.0, 2.0, 48000)
+
+
+@settings(max_examples=40, deadline=None)
+@given(
+    f0=st.floats(20.0, 300.0),
+    gain=st.floats(-30.0, 0.0),
+    q=st.floats(0.3, 10.0),
+    fs=st.sampled_from([44100, 48000, 96000]),
+)
+def test_an_own_cut_never_exceeds_0_db(f0, gain, q, fs):
+    # safety (issue 20): a subwoofer's own filter only cuts. Peaking filter with A <= 1:
+    # |H|^2 - 1 has the sign of (A^2 - 1) (cookbook algebra), checked on a dense grid with
+    # scipy's sosfreqz, DC and Nyquist included
+    grid = np.concatenate([np.linspace(0.0, fs / 2, 1 << 15), f0 * 2.0 ** np.linspace(-2, 2, 801)])
+    _, h = sosfreqz(cut_sos(f0, gain, q, fs), worN=grid, fs=fs)
+    assert np.max(np.abs(h)) <= 1.0 + 1e-9
+
+
 @settings(max_examples=8, deadline=None)
 @given(
     n_sub=st.integers(2, 3),
@@ -121,6 +186,10 @@ def test_no_subwoofer_is_raised(n_sub, seed, spread):
     )
     assert np.all(plan.gain_db <= 0.0) and plan.gain_db.max() == 0.0
     assert np.all(plan.gain_db >= OFF_DB)
+    # each subwoofer's own filter: cuts only, no deeper than offered, at most MAX_CUTS
+    for cuts in plan.cuts:
+        assert len(cuts) <= MAX_CUTS
+        assert all(min(CUT_DEPTHS_DB) <= g < 0.0 for _, g, _ in cuts)
     assert np.all(plan.delay_s >= 0.0)
     # never worse than equal feed nor than the best single subwoofer, at the measured seats
     assert plan.spread_after_db <= plan.spread_equal_db + 1e-9
@@ -165,7 +234,17 @@ def test_each_subwoofer_gets_the_array_filter_with_its_own_delay_level_and_polar
         for k, c in enumerate((2, 3)):
             g = 10 ** (arr.gain_db[k] / 20) * arr.polarity[k]
             rows.append(h[c, shifts[k] : shifts[k] + m] / g)
-        np.testing.assert_allclose(rows[0], rows[1], atol=1e-9)
+        # each row is the array filter through that subwoofer's own cuts; causal LTI
+        # filters commute, also on sequences cut to one length (the first m output
+        # samples depend only on the first m input samples), so B's cuts on A's row
+        # equal A's cuts on B's row exactly when both come from one array filter
+        a_then_b = rows[0]
+        for f0, gain, q in arr.cuts[1]:
+            a_then_b = sosfilt(cut_sos(f0, gain, q, rate), a_then_b)
+        b_then_a = rows[1]
+        for f0, gain, q in arr.cuts[0]:
+            b_then_a = sosfilt(cut_sos(f0, gain, q, rate), b_then_a)
+        np.testing.assert_allclose(a_then_b, b_then_a, atol=1e-9)
     # the safety ceiling holds for every output as delivered (peak gain <= 0 dB)
     assert all(s.peak_gain_db <= r.settings.design.ceiling_db + 1e-6 for s in r.stats)
 
