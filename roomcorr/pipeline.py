@@ -29,7 +29,12 @@ from roomcorr.design.correction import align_target, correction_curve
 from roomcorr.design.fir import default_n_taps, synthesize_fir, taps_for_latency
 from roomcorr.design.mixedphase import MixedPhaseDesign, apply_mixed_phase, latency_samples
 from roomcorr.design.safety import FilterStats, apply_safety, fit_under_cap
-from roomcorr.design.subwoofers import cut_sos, plan_subwoofers, spread_grid_hz, with_mains
+from roomcorr.design.subwoofers import (
+    cut_sos,
+    listening_cases,
+    plan_subwoofers,
+    spread_grid_hz,
+)
 from roomcorr.design.target import AUTO_LIMITS_HZ, target_from_points, target_from_table
 from roomcorr.errors import InputFileError, SettingsError
 from roomcorr.grid import interp_log, log_grid, points_per_octave_of
@@ -434,8 +439,8 @@ def _run_several_subwoofers(
     1. Each subwoofer's delay, level (cut only), polarity and own cuts come from
        :func:`roomcorr.design.subwoofers.plan_subwoofers` on the measured
        responses (20 Hz to twice the middle of the crossover range), judged
-       with both mains driven through a crossover at the range's middle
-       (:func:`roomcorr.design.subwoofers.with_mains`).
+       with each main alone and all mains driven, through a crossover at the
+       range's middle (:func:`roomcorr.design.subwoofers.listening_cases`).
     2. The subwoofers, so fed, are summed into one virtual channel at every
        position, and the single-subwoofer design runs on the mains and that
        channel: common correction, crossover, alignment, safety.
@@ -474,9 +479,12 @@ def _run_several_subwoofers(
     grid = spread_grid_hz(2.0 * float(np.sqrt(lo * hi)))
     resp = dtft(irs[:, sub_idx], grid, fs)
     mains_resp = dtft(irs[:, mains], grid, fs)
-    # judged as the seats hear it: both mains driven, crossed over at the range's middle
-    sub_heard, mains_heard = with_mains(resp, mains_resp, grid, float(np.sqrt(lo * hi)), fs)
-    arr = plan_subwoofers(sub_heard, grid, subs, sub_idx, weights, base=mains_heard, fs=fs)
+    # judged as the seats hear it: each main alone and all mains driven (mono bass),
+    # crossed over at the range's middle
+    sub_heard, bases, scales = listening_cases(resp, mains_resp, grid, float(np.sqrt(lo * hi)), fs)
+    arr = plan_subwoofers(
+        sub_heard, grid, subs, sub_idx, weights, base=bases, fs=fs, base_scale=scales
+    )
     # one virtual subwoofer: every subwoofer with its own delay, level, polarity and cuts
     shifts = [int(round(t * fs)) for t in arr.delay_s]
     n_v = n_samp + max(shifts)

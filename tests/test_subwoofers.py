@@ -272,6 +272,13 @@ def test_routes_manifest_and_summary_name_every_subwoofer(two_sub_design):
     assert all(x["gain_db"] == pytest.approx(-6.021, abs=1e-3) for x in routes if x["gain_db"])
     sw = fields["system"]["subwoofers"]
     assert [e["name"] for e in sw["each"]] == ["front_sub", "back_sub"]
+    arr = r.system.subwoofers
+    for e, cuts, words in zip(sw["each"], arr.cuts, arr.filter, strict=True):
+        assert e["filter"] == words
+        assert [(c["freq_hz"], c["gain_db"], c["q"]) for c in e["cuts"]] == [
+            (round(f0, 2), g, q) for f0, g, q in cuts
+        ]
+        assert all(c["gain_db"] < 0 for c in e["cuts"])  # cuts only
     assert sw["predicted_spread_after_db"] is not None
     text = "\n".join(system_sentences(fields))
     assert "At seats you did not measure, expect the bass to vary by about" in text
@@ -307,3 +314,23 @@ def test_mains_and_subwoofers_judged_together_sum_like_a_linkwitz_riley_pair():
     sub = mains.sum(axis=1, keepdims=True)
     heard, base = with_mains(sub, mains, f, 87.0, FS)
     np.testing.assert_allclose(np.abs(heard[:, 0] + base), np.abs(sub[:, 0]), rtol=1e-9)
+
+
+def test_listening_cases_one_main_alone_sums_like_a_linkwitz_riley_pair():
+    # Linkwitz, JAES 24(1), 1976: LR4 low-pass + high-pass is an all-pass. With both mains
+    # hearing the same L at every seat and the subwoofer hearing L + R = 2 L, the case 'left
+    # alone' (left through the high-pass, the subwoofer at 1/2 through the low-pass, level
+    # matched on both mains) has |L| at every frequency, and so has 'both' (|2 L|)
+    from roomcorr.design.subwoofers import listening_cases
+
+    rng = np.random.default_rng(4)
+    f = spread_grid_hz(174.0)
+    one = rng.standard_normal((4, 1, f.size)) + 1j * rng.standard_normal((4, 1, f.size))
+    mains = np.concatenate([one, one], axis=1)
+    sub = mains.sum(axis=1, keepdims=True)
+    heard, bases, scales = listening_cases(sub, mains, f, 87.0, FS)
+    assert bases.shape == (3, 4, f.size)
+    np.testing.assert_allclose(scales, [0.5, 0.5, 1.0])
+    for b, s in zip(bases, scales, strict=True):
+        want = np.abs(one[:, 0]) * (2.0 if s == 1.0 else 1.0)
+        np.testing.assert_allclose(np.abs(b + s * heard[:, 0]), want, rtol=1e-9)

@@ -277,21 +277,37 @@ def _cut_cost(cuts: list) -> float:
     return CUT_COST_DB_PER_DB * float(sum(-g for c in cuts for _, g, _ in c))
 
 
-def _state_cost(resp, freq_hz, weights, delay, gain, pol, filt, base) -> float:
+def _cases(base, base_scale, n_pos: int, n_freq: int) -> tuple[np.ndarray, np.ndarray]:
+    """Listening cases: what the seats hear besides the subwoofers, shape (B, P, F), and
+    how loud the subwoofers are in each, shape (B,); one silent case without a base."""
+    if base is None:
+        return np.zeros((1, n_pos, n_freq), dtype=complex), np.ones(1)
+    bases = np.asarray(base)
+    if bases.ndim == 2:
+        bases = bases[None]
+    scales = np.ones(bases.shape[0]) if base_scale is None else np.asarray(base_scale, float)
+    return bases, scales
+
+
+def _state_cost(resp, freq_hz, weights, delay, gain, pol, filt, cases) -> float:
+    bases, scales = cases
     coef = _coefficients(freq_hz, delay, gain, pol)
-    total = np.einsum("psf,sf->pf", resp * filt[None], coef)
+    subs = np.einsum("psf,sf->pf", resp * filt[None], coef)
     power = np.einsum("psf,s->pf", np.abs(resp) ** 2, 10.0 ** (np.asarray(gain) / 10.0))
-    if base is not None:
-        total, power = total + base, power + np.abs(base) ** 2
-    return float(_cost(total, power, weights))
+    total = bases + scales[:, None, None] * subs[None]
+    power = np.abs(bases) ** 2 + (scales**2)[:, None, None] * power[None]
+    return float(_cost(total, power, weights).mean())
 
 
 def _descend(
-    resp, freq_hz, weights, delay, gain, pol, base=None, filt=None, extra=0.0
+    resp, freq_hz, weights, delay, gain, pol, cases, filt=None, extra=0.0
 ) -> tuple[float, np.ndarray, np.ndarray, list, int]:
     """Coordinate descent over delay, level and polarity from one start (each subwoofer
-    through its own filter ``filt``, shape (n_subs, n_freqs)); returns cost (plus the
-    fixed ``extra``), delays, gains, polarities, evaluations."""
+    through its own filter ``filt``, shape (n_subs, n_freqs)); the cost is the mean over
+    the listening ``cases`` (:func:`_cases`). Returns cost (plus the fixed ``extra``),
+    delays, gains, polarities, evaluations."""
+    bases, scales = cases
+    sc = scales[:, None, None]
     n_sub = resp.shape[1]
     delay, gain, pol = delay.copy(), gain.copy(), list(pol)
     filt = np.ones(resp.shape[1:], dtype=complex) if filt is None else filt
@@ -301,45 +317,41 @@ def _descend(
     # |o + s a e^{-jwd} h|^2 = |o|^2 + a^2 |h|^2 + 2 s a Re(o conj(h) e^{jwd}); the
     # smoothing is linear, so only the last term is smoothed per delay
     wd = 2.0 * np.pi * np.outer(DELAYS_S, freq_hz)
-    cos_d, sin_d = np.cos(wd)[:, None, :], np.sin(wd)[:, None, :]  # (D, 1, F)
+    cos_d, sin_d = np.cos(wd)[:, None, None, :], np.sin(wd)[:, None, None, :]  # (D,1,1,F)
     amp = 10.0 ** (GAINS_DB / 20.0)
     sign = np.array([1.0, -1.0])
     h_pow = np.abs(resp) ** 2  # (P, S, F): the level reference, before the own filters
     heard = resp * filt[None]
-    base_pow = 0.0 if base is None else np.abs(base) ** 2
+    base_pow = np.abs(bases) ** 2
     evals = 0
-    best = _state_cost(resp, freq_hz, weights, delay, gain, pol, filt, base) + extra
+    best = _state_cost(resp, freq_hz, weights, delay, gain, pol, filt, cases) + extra
     for _ in range(MAX_ROUNDS):
         improved = False
         for k in range(n_sub):
             coef = _coefficients(freq_hz, delay, gain, pol)
-            others = np.einsum("psf,sf->pf", heard, coef) - coef[k] * heard[:, k]
-            others_pow = np.einsum("psf,s->pf", h_pow, 10.0 ** (gain / 10.0)) - (
-                10.0 ** (gain[k] / 10.0) * h_pow[:, k]
-            )
-            if base is not None:
-                others = others + base
-                others_pow = others_pow + base_pow
-            x = others * np.conj(heard[:, k])  # (P, F)
-            cross = _smooth_power(x.real[None] * cos_d - x.imag[None] * sin_d)  # (D, P, F)
+            o_sub = np.einsum("psf,sf->pf", heard, coef) - coef[k] * heard[:, k]
+            others = bases + sc * o_sub[None]  # (B, P, F)
+            h_k = sc * heard[None, :, k]  # (B, P, F)
+            x = others * np.conj(h_k)
+            cross = _smooth_power(x.real[None] * cos_d - x.imag[None] * sin_d)  # (D,B,P,F)
             s_o = _smooth_power(np.abs(others) ** 2)
-            s_h = _smooth_power(np.abs(heard[:, k]) ** 2)
+            s_h = _smooth_power(np.abs(h_k) ** 2)
             power_s = (
                 s_o
-                + (amp**2)[None, None, :, None, None] * s_h
+                + (amp**2)[None, None, :, None, None, None] * s_h
                 + 2.0
-                * (sign[None, :, None] * amp[None, None, :])[..., None, None]
+                * (sign[None, :, None] * amp[None, None, :])[..., None, None, None]
                 * cross[:, None, None]
-            )  # (D, 2, G, P, F), the order of cand_d, cand_p, cand_g
-            ref_s = (
-                _smooth_power(others_pow)[None]
-                + (amp**2)[:, None, None] * (_smooth_power(h_pow[:, k])[None])
-            )  # (G, P, F)
-            ref_db = np.broadcast_to(_mean_level_db(ref_s)[None, None], power_s.shape[:3])
-            costs = (
-                _cost_smoothed(power_s.reshape((-1,) + power_s.shape[-2:]), ref_db.ravel(), weights)
-                + extra
+            )  # (D, 2, G, B, P, F), the order of cand_d, cand_p, cand_g
+            o_pow = np.einsum("psf,s->pf", h_pow, 10.0 ** (gain / 10.0)) - (
+                10.0 ** (gain[k] / 10.0) * h_pow[:, k]
             )
+            ref_s = (
+                _smooth_power(base_pow + sc**2 * o_pow[None])[None]
+                + (amp**2)[:, None, None, None] * _smooth_power(sc**2 * h_pow[None, :, k])[None]
+            )  # (G, B, P, F)
+            ref_db = np.broadcast_to(_mean_level_db(ref_s)[None, None], power_s.shape[:4])
+            costs = _cost_smoothed(power_s, ref_db, weights).mean(axis=-1).ravel() + extra
             evals += costs.size
             i = int(np.argmin(costs))
             if costs[i] < best - 1e-6:
@@ -352,11 +364,13 @@ def _descend(
 
 
 def _descend_cuts(
-    resp, freq_hz, weights, delay, gain, pol, cuts, base, fs, best
+    resp, freq_hz, weights, delay, gain, pol, cuts, cases, fs, best
 ) -> tuple[float, np.ndarray, list, int]:
     """One round over every subwoofer's cut slots with delays and polarities held: each
     slot takes the best of no cut and every offered (centre, depth, Q), together with
     that subwoofer's level (a cut and a level trade against each other)."""
+    bases, scales = cases
+    sc = scales[:, None, None]
     n_sub = resp.shape[1]
     gain = np.asarray(gain, dtype=float).copy()
     cuts = [list(c) for c in cuts]
@@ -367,7 +381,7 @@ def _descend_cuts(
     depth = np.concatenate([[0.0], g0])
     amp = 10.0 ** (GAINS_DB / 20.0)
     h_pow = np.abs(resp) ** 2
-    base_pow = 0.0 if base is None else np.abs(base) ** 2
+    base_pow = np.abs(bases) ** 2
     evals = 0
     for k in range(n_sub):
         for j in range(MAX_CUTS):
@@ -375,34 +389,33 @@ def _descend_cuts(
             coef = _coefficients(freq_hz, delay, gain, pol)
             filt = np.stack([cuts_response(freq_hz, c, fs) for c in cuts])
             heard = resp * filt[None] * coef[None]
-            others = heard.sum(axis=1) - heard[:, k]
-            if base is not None:
-                others = others + base
+            others = bases + sc * (heard.sum(axis=1) - heard[:, k])[None]  # (B, P, F)
             unit = pol[k] * np.exp(-2j * np.pi * freq_hz * delay[k])
-            own = (resp[:, k] * unit * cuts_response(freq_hz, rest, fs))[None] * cand[:, None]
+            own = resp[:, k] * unit * cuts_response(freq_hz, rest, fs)  # (P, F)
+            own = cand[:, None, None, :] * (sc * own[None])[None]  # (C, B, P, F)
             # |o + a h|^2 = |o|^2 + a^2 |h|^2 + 2 a Re(o conj(h)), smoothed term by term
             s_o = _smooth_power(np.abs(others) ** 2)
-            s_h = _smooth_power(np.abs(own) ** 2)  # (C, P, F)
+            s_h = _smooth_power(np.abs(own) ** 2)
             cross = _smooth_power((others[None] * np.conj(own)).real)
             power_s = (
                 s_o
-                + (amp**2)[None, :, None, None] * s_h[:, None]
-                + 2.0 * amp[None, :, None, None] * cross[:, None]
-            )  # (C, G, P, F)
-            others_pow = (
-                np.einsum("psf,s->pf", h_pow, 10.0 ** (gain / 10.0))
-                - (10.0 ** (gain[k] / 10.0) * h_pow[:, k])
-                + base_pow
+                + (amp**2)[None, :, None, None, None] * s_h[:, None]
+                + 2.0 * amp[None, :, None, None, None] * cross[:, None]
+            )  # (C, G, B, P, F)
+            o_pow = np.einsum("psf,s->pf", h_pow, 10.0 ** (gain / 10.0)) - (
+                10.0 ** (gain[k] / 10.0) * h_pow[:, k]
             )
             ref_db = _mean_level_db(
-                _smooth_power(others_pow)[None]
-                + (amp**2)[:, None, None] * _smooth_power(h_pow[:, k])[None]
-            )  # (G,)
+                _smooth_power(base_pow + sc**2 * o_pow[None])[None]
+                + (amp**2)[:, None, None, None] * _smooth_power(sc**2 * h_pow[None, :, k])[None]
+            )  # (G, B)
             penalty = _cut_cost([c for i, c in enumerate(cuts) if i != k]) + CUT_COST_DB_PER_DB * (
                 -sum(g for _, g, _ in rest) - depth
             )  # (C,)
             costs = (
-                _cost_smoothed(power_s, np.broadcast_to(ref_db[None], power_s.shape[:2]), weights)
+                _cost_smoothed(
+                    power_s, np.broadcast_to(ref_db[None], power_s.shape[:3]), weights
+                ).mean(axis=-1)
                 + penalty[:, None]
             )
             evals += costs.size
@@ -416,7 +429,7 @@ def _descend_cuts(
 
 
 def _search(
-    resp, freq_hz, weights, base=None, fs: float = 48000.0, own_filters: bool = True
+    resp, freq_hz, weights, cases, fs: float = 48000.0, own_filters: bool = True
 ) -> tuple[np.ndarray, np.ndarray, list[int], list, int]:
     """Best delays, gains (loudest 0 dB), polarities and own cuts from every start."""
     n_sub = resp.shape[1]
@@ -428,7 +441,7 @@ def _search(
     best = None
     evals = 0
     for g0 in starts:
-        out = _descend(resp, freq_hz, weights, np.zeros(n_sub), g0, [1] * n_sub, base)
+        out = _descend(resp, freq_hz, weights, np.zeros(n_sub), g0, [1] * n_sub, cases)
         evals += out[4]
         if best is None or out[0] < best[0]:
             best = out
@@ -439,11 +452,11 @@ def _search(
         # alternate: the cuts with the rest held, then the rest through the cuts
         for _ in range(MAX_ROUNDS):
             new_cost, gain, cuts, n1 = _descend_cuts(
-                resp, freq_hz, weights, delay, gain, pol, cuts, base, fs, cost
+                resp, freq_hz, weights, delay, gain, pol, cuts, cases, fs, cost
             )
             filt = np.stack([cuts_response(freq_hz, c, fs) for c in cuts])
             new_cost, delay, gain, pol, n2 = _descend(
-                resp, freq_hz, weights, delay, gain, pol, base, filt, _cut_cost(cuts)
+                resp, freq_hz, weights, delay, gain, pol, cases, filt, _cut_cost(cuts)
             )
             evals += n1 + n2
             if new_cost >= cost - 1e-6:
@@ -495,6 +508,7 @@ def leave_one_out_spread_db(
     base: np.ndarray | None = None,
     fs: float = 48000.0,
     own_filters: bool = True,
+    base_scale: np.ndarray | None = None,
 ) -> tuple[float, float]:
     """Predicted seat-to-seat spread at unmeasured seats: (equal feed, as the search chooses).
 
@@ -508,22 +522,27 @@ def leave_one_out_spread_db(
     resp : ndarray, shape (n_positions, n_subs, n_freqs), complex
     freq_hz : ndarray, shape (n_freqs,)
     weights : ndarray, shape (n_positions,), optional
-    base : ndarray, shape (n_positions, n_freqs), complex, optional
-        What the seats hear besides the subwoofers (:func:`with_mains`).
+    base : ndarray, shape (n_positions, n_freqs) or (n_cases, n_positions, n_freqs), optional
+        What the seats hear besides the subwoofers (:func:`listening_cases`); the
+        deviations are those of the last case.
+    fs, own_filters, base_scale
+        As for :func:`plan_subwoofers`.
     """
-    n_pos, n_sub, _ = resp.shape
-    b = 0.0 if base is None else base
+    n_pos, n_sub, n_f = resp.shape
+    bases, scales = _cases(base, base_scale, n_pos, n_f)
+    b, s_last = bases[-1], scales[-1]
     eq, after = [], []
     for p in range(n_pos):
         keep = [q for q in range(n_pos) if q != p]
         w = None if weights is None else np.asarray(weights)[keep]
         d, g, pol, cuts, _ = _search(
-            resp[keep], freq_hz, w, None if base is None else base[keep], fs, own_filters
+            resp[keep], freq_hz, w, (bases[:, keep], scales), fs, own_filters
         )
         lev_eq = seat_levels_db(
-            array_response(resp, freq_hz, np.zeros(n_sub), np.zeros(n_sub), [1] * n_sub) + b
+            s_last * array_response(resp, freq_hz, np.zeros(n_sub), np.zeros(n_sub), [1] * n_sub)
+            + b
         )
-        lev = seat_levels_db(array_response(resp, freq_hz, d, g, pol, cuts, fs) + b)
+        lev = seat_levels_db(s_last * array_response(resp, freq_hz, d, g, pol, cuts, fs) + b)
         eq.append(_held_out_deviation_db(lev_eq, p, weights))
         after.append(_held_out_deviation_db(lev, p, weights))
     return float(np.sqrt(np.mean(np.square(eq)))), float(np.sqrt(np.mean(np.square(after))))
@@ -577,6 +596,39 @@ def with_mains(
     return sub_resp * (k * lp), mains * hp
 
 
+def listening_cases(
+    sub_resp: np.ndarray,
+    mains_resp: np.ndarray,
+    freq_hz: np.ndarray,
+    crossover_hz: float,
+    fs: float,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The subwoofers as the seats hear them with each main alone and with all mains.
+
+    :func:`with_mains` for the crossover and the level match; with one main
+    driven, the subwoofers get ``1 / n_mains`` of its signal (the routes of
+    the bass management), with all mains driven the same bass (mono bass) the
+    sum of them, at the level of one main.
+
+    Returns
+    -------
+    resp : ndarray, shape (n_positions, n_subs, n_freqs)
+        The subwoofers through the low-pass and the level match.
+    bases : ndarray, shape (n_mains + 1, n_positions, n_freqs)
+        Each main alone through the high-pass, then all mains (last).
+    scales : ndarray, shape (n_mains + 1,)
+        The subwoofers' level in each case.
+    """
+    heard, both = with_mains(sub_resp, mains_resp, freq_hz, crossover_hz, fs)
+    _, hp = linkwitz_riley_response(freq_hz, crossover_hz, fs, 24)
+    n_mains = mains_resp.shape[1]
+    bases = np.concatenate([np.moveaxis(mains_resp * hp, 1, 0), both[None]])
+    scales = np.concatenate([np.full(n_mains, 1.0 / n_mains), [1.0]])
+    if n_mains == 1:  # one main: alone and 'all' are the same case
+        bases, scales = bases[-1:], scales[-1:]
+    return heard, bases, scales
+
+
 def plan_subwoofers(
     resp: np.ndarray,
     freq_hz: np.ndarray,
@@ -587,6 +639,7 @@ def plan_subwoofers(
     base: np.ndarray | None = None,
     fs: float = 48000.0,
     own_filters: bool = True,
+    base_scale: np.ndarray | None = None,
 ) -> SubArrayPlan:
     """Delay, level (cut only) and polarity of every subwoofer for the least seat-to-seat spread.
 
@@ -601,9 +654,14 @@ def plan_subwoofers(
     weights : ndarray, shape (n_positions,), optional
     predict : bool
         Also compute the leave-one-position-out prediction (three positions or more).
-    base : ndarray, shape (n_positions, n_freqs), complex, optional
-        What the seats hear besides the subwoofers, added to their sum in every
-        figure (the mains through their high-pass: :func:`with_mains`).
+    base : ndarray, shape (n_positions, n_freqs) or (n_cases, n_positions, n_freqs), optional
+        What the seats hear besides the subwoofers, added to their sum (the mains
+        through their high-pass). Several listening cases (:func:`listening_cases`:
+        each main alone, then all mains) are judged together, the cost being their
+        mean; the figures reported are those of the last case.
+    base_scale : ndarray, shape (n_cases,), optional
+        The subwoofers' level in each case (1 / number of mains with one main
+        driven, 1 with all; ones when not given).
     fs : float
         Sample rate the own cuts are judged at (the delivered ones are designed
         at every output rate; below a few hundred hertz they agree closely).
@@ -621,25 +679,21 @@ def plan_subwoofers(
     ----------
     .. [1] T. Welti and A. Devantier, JAES 54(5), 2006.
     """
-    n_pos, n_sub, _ = resp.shape
-    delay, gain, pol, cuts, evals = _search(resp, freq_hz, weights, base, fs, own_filters)
-    b = 0.0 if base is None else base
+    n_pos, n_sub, n_f = resp.shape
+    cases = _cases(base, base_scale, n_pos, n_f)
+    delay, gain, pol, cuts, evals = _search(resp, freq_hz, weights, cases, fs, own_filters)
+    b, s_last = cases[0][-1], cases[1][-1]
     zeros = np.zeros(n_sub)
-    spread_eq = float(
-        seat_spread_db(
-            seat_levels_db(array_response(resp, freq_hz, zeros, zeros, [1] * n_sub) + b), weights
-        )
-    )
-    spread = float(
-        seat_spread_db(
-            seat_levels_db(array_response(resp, freq_hz, delay, gain, pol, cuts, fs) + b),
-            weights,
-        )
-    )
-    single = seat_spread_db(seat_levels_db(np.moveaxis(resp, 1, 0) + b), weights)
+    equal = array_response(resp, freq_hz, zeros, zeros, [1] * n_sub)
+    spread_eq = float(seat_spread_db(seat_levels_db(s_last * equal + b), weights))
+    chosen = array_response(resp, freq_hz, delay, gain, pol, cuts, fs)
+    spread = float(seat_spread_db(seat_levels_db(s_last * chosen + b), weights))
+    single = seat_spread_db(seat_levels_db(s_last * np.moveaxis(resp, 1, 0) + b), weights)
     loo_eq = loo_after = None
     if predict and n_pos >= 3:
-        loo_eq, loo_after = leave_one_out_spread_db(resp, freq_hz, weights, base, fs, own_filters)
+        loo_eq, loo_after = leave_one_out_spread_db(
+            resp, freq_hz, weights, base, fs, own_filters, base_scale
+        )
     return SubArrayPlan(
         names=list(names),
         channels=list(channels),
