@@ -461,10 +461,6 @@ def _run_several_subwoofers(
                 f"--subwoofer {name}: not one of the channel names {', '.join(names)}; "
                 "name the channels with --names"
             )
-    if d.phase == "mixed":
-        raise SettingsError(
-            "--phase mixed: not offered with several subwoofers yet; use --phase minimum"
-        )
     sub_idx = [names.index(n) for n in subs]
     mains = [c for c in range(n_ch) if c not in sub_idx]
     if not mains:
@@ -479,28 +475,31 @@ def _run_several_subwoofers(
     grid = spread_grid_hz(2.0 * float(np.sqrt(lo * hi)))
     resp = dtft(irs[:, sub_idx], grid, fs)
     mains_resp = dtft(irs[:, mains], grid, fs)
-    # judged as the seats hear it: each main alone and all mains driven (mono bass),
+    vname = "+".join(subs)
+    inner_names = [names[c] for c in mains] + [vname]
+    inner = replace(settings, design=replace(d, subwoofer=vname, channel_names=tuple(inner_names)))
+
+    def inner_design(arr, design_settings):
+        """The single-subwoofer design on the mains and one virtual subwoofer: every
+        subwoofer with its own delay, level, polarity and cuts, summed."""
+        shifts = [int(round(t * fs)) for t in arr.delay_s]
+        n_v = n_samp + max(shifts)
+        inner_irs = np.zeros((n_pos, len(mains) + 1, n_v))
+        inner_irs[:, : len(mains), :n_samp] = irs[:, mains]
+        for k, c in enumerate(sub_idx):
+            g = 10.0 ** (arr.gain_db[k] / 20.0) * arr.polarity[k]
+            own = _own_cuts(irs[:, c], arr.cuts[k], fs)
+            for p in range(n_pos):
+                inner_irs[p, -1] += g * _shifted(own[p], shifts[k], n_v)
+        return run_design(inner_irs, fs, design_settings, inner_names)
+
+    # judged as the seats hear it with each main alone and all mains driven (mono bass),
     # crossed over at the range's middle
     sub_heard, bases, scales = listening_cases(resp, mains_resp, grid, float(np.sqrt(lo * hi)), fs)
     arr = plan_subwoofers(
         sub_heard, grid, subs, sub_idx, weights, base=bases, fs=fs, base_scale=scales
     )
-    # one virtual subwoofer: every subwoofer with its own delay, level, polarity and cuts
-    shifts = [int(round(t * fs)) for t in arr.delay_s]
-    n_v = n_samp + max(shifts)
-    virtual = np.zeros((n_pos, n_v))
-    for k, c in enumerate(sub_idx):
-        g = 10.0 ** (arr.gain_db[k] / 20.0) * arr.polarity[k]
-        own = _own_cuts(irs[:, c], arr.cuts[k], fs)
-        for p in range(n_pos):
-            virtual[p] += g * _shifted(own[p], shifts[k], n_v)
-    vname = "+".join(subs)
-    inner_irs = np.zeros((n_pos, len(mains) + 1, n_v))
-    inner_irs[:, : len(mains), :n_samp] = irs[:, mains]
-    inner_irs[:, -1] = virtual
-    inner_names = [names[c] for c in mains] + [vname]
-    inner = replace(settings, design=replace(d, subwoofer=vname, channel_names=tuple(inner_names)))
-    r = run_design(inner_irs, fs, inner, inner_names)
+    r = inner_design(arr, inner)
     plan = r.system
     assert plan is not None
     v = len(mains)
@@ -518,6 +517,34 @@ def _run_several_subwoofers(
         firs[rate] = rows
     firs, pre2, stats = apply_safety(firs, d.ceiling_db, d.max_boost_db)
     inner_of = {c: i for i, c in enumerate(mains)} | {c: v for c in sub_idx}
+    mixed = None
+    if r.mixed_phase is not None:
+        # the array's excess phase is undone once, in the filter all subwoofers share
+        # (the single-subwoofer mixed-phase rules and checks); each subwoofer's own
+        # delay, level, polarity and cuts (minimum phase) follow it as above
+        mp = r.mixed_phase
+        min_firs = {}
+        for rate, h in mp.min_phase_firs.items():
+            sh = [int(round(t * rate)) for t in arr.delay_s]
+            rows = np.zeros((n_ch, h.shape[1] + max(sh)))
+            for i, c in enumerate(mains):
+                rows[c, : h.shape[1]] = h[i]
+            for k, c in enumerate(sub_idx):
+                g = 10.0 ** (arr.gain_db[k] / 20.0) * arr.polarity[k]
+                rows[c] = g * _shifted(_own_cuts(h[v], arr.cuts[k], rate), sh[k], rows.shape[1])
+            min_firs[rate] = rows
+        mixed = replace(
+            mp,
+            estimates=[mp.estimates[inner_of[c]] for c in range(n_ch)],
+            min_phase_firs=min_firs,
+            stats=[
+                replace(st, channel=c)
+                for c in range(n_ch)
+                for st in mp.stats
+                if st.channel == inner_of[c]
+            ],
+            views=[mp.views[inner_of[c]] for c in range(n_ch)] if mp.views else [],
+        )
     channels = [replace(r.channels[inner_of[c]], index=c, name=names[c]) for c in range(n_ch)]
     roles = [plan.roles[inner_of[c]] for c in range(n_ch)]
     own_delay = np.zeros(n_ch)
@@ -556,5 +583,5 @@ def _run_several_subwoofers(
         stats=stats,
         settings=settings,
         system=system,
-        mixed_phase=None,
+        mixed_phase=mixed,
     )

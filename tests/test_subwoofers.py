@@ -12,6 +12,7 @@ from scipy.signal import freqz, sosfilt, sosfreqz
 from roomcorr.deliver.routes import build_routes
 from roomcorr.deliver.system import manifest_fields, system_sentences
 from roomcorr.design.crossover import linkwitz_riley_response
+from roomcorr.design.mixedphase import MAGNITUDE_TOLERANCE_DB, PRE_RING_LIMIT_DB
 from roomcorr.design.subwoofers import (
     CUT_DEPTHS_DB,
     MAX_CUTS,
@@ -19,6 +20,7 @@ from roomcorr.design.subwoofers import (
     array_response,
     cut_sos,
     cuts_response,
+    listening_cases,
     plan_subwoofers,
     seat_levels_db,
     seat_spread_db,
@@ -321,8 +323,6 @@ def test_listening_cases_one_main_alone_sums_like_a_linkwitz_riley_pair():
     # hearing the same L at every seat and the subwoofer hearing L + R = 2 L, the case 'left
     # alone' (left through the high-pass, the subwoofer at 1/2 through the low-pass, level
     # matched on both mains) has |L| at every frequency, and so has 'both' (|2 L|)
-    from roomcorr.design.subwoofers import listening_cases
-
     rng = np.random.default_rng(4)
     f = spread_grid_hz(174.0)
     one = rng.standard_normal((4, 1, f.size)) + 1j * rng.standard_normal((4, 1, f.size))
@@ -334,3 +334,56 @@ def test_listening_cases_one_main_alone_sums_like_a_linkwitz_riley_pair():
     for b, s in zip(bases, scales, strict=True):
         want = np.abs(one[:, 0]) * (2.0 if s == 1.0 else 1.0)
         np.testing.assert_allclose(np.abs(b + s * heard[:, 0]), want, rtol=1e-9)
+
+
+def test_several_subwoofers_with_mixed_phase(two_sub_design):
+    # --phase mixed with several subwoofers: the array's excess phase is undone once, in the
+    # filter every subwoofer shares, under the single-subwoofer mixed-phase rules; each
+    # subwoofer's own delay, level, polarity and cuts follow it
+    irs, _ = two_sub_design
+    d = design_from_dict(
+        {
+            "channel_names": "left,right,front_sub,back_sub",
+            "subwoofer": "front_sub,back_sub",
+            "sample_rates": [FS],
+            "phase": "mixed",
+        }
+    )
+    r = run_design(irs, FS, Settings(design=d))
+    mp, arr = r.mixed_phase, r.system.subwoofers
+    assert mp is not None and len(mp.estimates) == 4 and len(mp.views) == 4
+    assert sorted({x.channel for x in mp.stats}) == [0, 1, 2, 3]
+    # the safety ceiling holds for every output as delivered (peak gain <= 0 dB)
+    assert all(s.peak_gain_db <= d.ceiling_db + 1e-6 for s in r.stats)
+    for x in mp.stats:  # the mixed-phase rules of one loudspeaker, held by every output
+        assert x.magnitude_error_db <= MAGNITUDE_TOLERANCE_DB + 1e-9
+        assert x.pre_ringing_db <= PRE_RING_LIMIT_DB + 1e-9
+    # both subwoofer outputs carry one shared mixed-phase filter (commuting their own cuts,
+    # as in the minimum-phase case)
+    h = r.firs[FS]
+    m = h.shape[1] - int(round(max(arr.delay_s) * FS))
+    rows = []
+    for k, c in enumerate((2, 3)):
+        g = 10 ** (arr.gain_db[k] / 20) * arr.polarity[k]
+        n = int(round(arr.delay_s[k] * FS))
+        rows.append(h[c, n : n + m] / g)
+    for k, other in ((0, 1), (1, 0)):
+        for f0, gain, q in arr.cuts[other]:
+            rows[k] = sosfilt(cut_sos(f0, gain, q, FS), rows[k])
+    np.testing.assert_allclose(rows[0], rows[1], atol=1e-9)
+    # an all-pass changes no magnitude: every output has the minimum-phase design's
+    # magnitude up to one gain (scipy's freqz, 25 to 100 Hz for the subwoofers, 200 Hz to
+    # 2 kHz for the mains; within 0.5 dB, the mixed-phase tolerance being 0.1 dB)
+    _, r_min = two_sub_design
+    assert r_min.system.subwoofers.delay_s.tolist() == arr.delay_s.tolist()
+    for c, band in (
+        (0, (200.0, 2000.0)),
+        (1, (200.0, 2000.0)),
+        (2, (25.0, 100.0)),
+        (3, (25.0, 100.0)),
+    ):
+        f = np.geomspace(*band, 60)
+        a = np.abs(freqz(h[c], worN=f, fs=FS)[1])
+        b = np.abs(freqz(r_min.firs[FS][c], worN=f, fs=FS)[1])
+        diff = 20 * np.log10(a / b)
+        np.testing.assert_allclose(diff - np.median(diff), 0.0, atol=0.5)
