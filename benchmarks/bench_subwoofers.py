@@ -3,16 +3,23 @@ saw, on rooms simulated with pyroomacoustics, and the design time.
 
 Rooms: the five invented rooms of ``tests/pra_rooms.py`` (two to four subwoofers, two
 mains, pyroomacoustics' image-source method at high order; independent of roomcorr's own
-room model). Measured: five positions over a listening area 1.6 m wide and 0.6 m deep
-(its corners and centre). Held out: four seats between them and six 0.4 m in front of and
-behind the centre row (``held_out_seats``).
+room model) and three more (``EXTRA_ROOMS``: smaller and larger, drier and more
+reverberant, subwoofers placed without symmetry). Measured: five positions over a
+listening area 1.6 m wide and 0.6 m deep (its corners and centre). Held out: four seats
+between them and six 0.4 m in front of and behind the centre row (``held_out_seats``).
 
 Designs compared, each by ``roomcorr.pipeline.run_design`` from the five measured
 positions only:
 
-* **chosen**: ``--subwoofer`` naming every subwoofer (each its own delay, level, polarity);
-* **equal**: the same, with every subwoofer fed equally and no delay (the search replaced
+* **chosen**: ``--subwoofer`` naming every subwoofer (each its own delay, level, polarity
+  and cuts);
+* **no-cuts**: the same without the subwoofers' own cuts (``own_filters=False``);
+* **equal**: every subwoofer fed equally, no delay, no own filter (the search replaced
   by equal feed; common correction, crossover and alignment as usual);
+* **oracle**: the same free parameters chosen knowing the held-out seats (the design's
+  search on those seats over its own band and over 25-100 Hz, and on all fifteen seats),
+  the best of those, chosen, no-cuts and equal at the held-out seats: how far these
+  parameters can go there, an upper bound of the true optimum;
 * **single**: each subwoofer alone with the mains (issue 11's design); "picked" is the one
   whose own spread at the measured positions is least (what the design would choose on its
   own), "best" the one best at the held-out seats (known only to the benchmark).
@@ -27,7 +34,11 @@ Figures, evaluated independently of roomcorr (scipy's FFT convolution of the del
 * ripple: RMS deviation of each held-out seat's level from its own mean over 25 to
   100 Hz, averaged over seats.
 
-Run: ``python benchmarks/bench_subwoofers.py`` (a few minutes).
+Design time: 4 outputs (two mains, two subwoofers) x 5 positions x 3 rates against the
+two-channel design and the single-subwoofer design, in the same run (best of two).
+
+Run: ``python benchmarks/bench_subwoofers.py [timing] [quality]`` (quality: a quarter of an
+hour on a shared machine).
 """
 
 from __future__ import annotations
@@ -147,9 +158,10 @@ def _oracle_plans(
     cost (both mains through the crossover at the range's middle) on the held-out seats
     over the design's band (20 Hz to twice the crossover) and over the figure's band
     (25 to 100 Hz, with 1/12 octave beyond for the 1/6-octave box), and on the measured
-    and held-out seats together. The oracle figure is the best of these and the design's
-    own choice, each judged through the whole design at the held-out seats: an upper bound
-    of what these parameters can reach there (the true optimum is at most that)."""
+    and held-out seats together. The oracle figure is the best of these, the design's own
+    choice, its choice without own cuts and equal feed (all inside the same parameters),
+    each judged through the whole design at the held-out seats: an upper bound of what
+    these parameters can reach there (the true optimum is at most that)."""
     lo, hi = crossover_range_hz
     grid = spread_grid_hz(2.0 * float(np.sqrt(lo * hi)))
     mains = [c for c in range(irs_held.shape[1]) if c not in sub_idx]
@@ -232,8 +244,8 @@ def quality() -> None:
         "spread at held-out seats (dB, std of the 1/6-octave level, mean 25-100 Hz), "
         "left/right/both:\n"
         "  chosen = delay, level, polarity and own cuts; no-cuts = the same without own "
-        "filters;\n  oracle = the best of plans chosen knowing the held-out seats (and the "
-        "design's own), judged at those seats; "
+        "filters;\n  oracle = the best of plans chosen knowing the held-out seats, the "
+        "design's own, no-cuts and equal, judged at those seats; "
         "equal = all fed equally, no delay;\n  picked = the single subwoofer the design "
         "would pick, best = the best single one at the held-out seats"
     )
@@ -264,7 +276,12 @@ def quality() -> None:
             with mock.patch.object(pipeline_mod, "plan_subwoofers", stand_in):
                 variants[label] = _figures(held, run_design(meas, FS, settings))
         f_ch, f_eq = _figures(held, chosen), variants["equal"]
-        candidates = {"design's own": f_ch, **{k: variants[k] for k in oracles}}
+        candidates = {
+            "design's own": f_ch,
+            "no-cuts": variants["no-cuts"],
+            "equal": f_eq,
+            **{k: variants[k] for k in oracles},
+        }
         won = min(candidates, key=lambda k: sum(candidates[k][c][0] for c in LABELS))
         variants["oracle"] = candidates[won]
         singles = []
