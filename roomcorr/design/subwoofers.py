@@ -368,7 +368,8 @@ def _descend_cuts(
 ) -> tuple[float, np.ndarray, list, int]:
     """One round over every subwoofer's cut slots with delays and polarities held: each
     slot takes the best of no cut and every offered (centre, depth, Q), together with
-    that subwoofer's level (a cut and a level trade against each other)."""
+    that subwoofer's level or the offered levels next to it (a cut and a level trade
+    against each other)."""
     bases, scales = cases
     sc = scales[:, None, None]
     n_sub = resp.shape[1]
@@ -397,18 +398,22 @@ def _descend_cuts(
             s_o = _smooth_power(np.abs(others) ** 2)
             s_h = _smooth_power(np.abs(own) ** 2)
             cross = _smooth_power((others[None] * np.conj(own)).real)
+            # the levels next to the present one (a cut trades against a small level change)
+            now = int(np.argmin(np.abs(GAINS_DB - gain[k])))
+            lv = np.arange(max(now - 1, 0), min(now + 2, GAINS_DB.size))
+            a = amp[lv]
             power_s = (
                 s_o
-                + (amp**2)[None, :, None, None, None] * s_h[:, None]
-                + 2.0 * amp[None, :, None, None, None] * cross[:, None]
-            )  # (C, G, B, P, F)
+                + (a**2)[None, :, None, None, None] * s_h[:, None]
+                + 2.0 * a[None, :, None, None, None] * cross[:, None]
+            )  # (C, L, B, P, F)
             o_pow = np.einsum("psf,s->pf", h_pow, 10.0 ** (gain / 10.0)) - (
                 10.0 ** (gain[k] / 10.0) * h_pow[:, k]
             )
             ref_db = _mean_level_db(
                 _smooth_power(base_pow + sc**2 * o_pow[None])[None]
-                + (amp**2)[:, None, None, None] * _smooth_power(sc**2 * h_pow[None, :, k])[None]
-            )  # (G, B)
+                + (a**2)[:, None, None, None] * _smooth_power(sc**2 * h_pow[None, :, k])[None]
+            )  # (L, B)
             penalty = _cut_cost([c for i, c in enumerate(cuts) if i != k]) + CUT_COST_DB_PER_DB * (
                 -sum(g for _, g, _ in rest) - depth
             )  # (C,)
@@ -424,7 +429,7 @@ def _descend_cuts(
                 best = float(costs[i, m])
                 new = [] if i == 0 else [(float(f0[i - 1]), float(g0[i - 1]), float(q0[i - 1]))]
                 cuts[k] = rest + new
-                gain[k] = GAINS_DB[m]
+                gain[k] = GAINS_DB[lv[m]]
     return best, gain, cuts, evals
 
 
