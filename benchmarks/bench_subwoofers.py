@@ -66,7 +66,7 @@ from scipy.signal import fftconvolve  # noqa: E402
 import roomcorr.pipeline as pipeline_mod  # noqa: E402
 from roomcorr.analysis.dtft import dtft  # noqa: E402
 from roomcorr.analysis.plausibility import impulse_response_problems  # noqa: E402
-from roomcorr.design.subwoofers import (  # noqa: E402
+from roomcorr.design.system.subwoofers import (  # noqa: E402
     listening_cases,
     plan_subwoofers,
     spread_grid_hz,

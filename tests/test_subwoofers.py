@@ -1,8 +1,12 @@
-"""Several subwoofers chosen together (roomcorr.design.subwoofers and the pipeline's use of it)."""
+"""Several subwoofers chosen together.
+
+Modules under test: roomcorr.design.system.subwoofers and the pipeline's use of it.
+"""
 
 from __future__ import annotations
 
 import numpy as np
+import pyfar as pf
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
@@ -11,9 +15,9 @@ from scipy.signal import freqz, sosfilt, sosfreqz
 
 from roomcorr.deliver.routes import build_routes
 from roomcorr.deliver.system import manifest_fields, system_sentences
-from roomcorr.design.crossover import linkwitz_riley_response
-from roomcorr.design.mixedphase import MAGNITUDE_TOLERANCE_DB, PRE_RING_LIMIT_DB
-from roomcorr.design.subwoofers import (
+from roomcorr.design.phase.mixedphase import MAGNITUDE_TOLERANCE_DB, PRE_RING_LIMIT_DB
+from roomcorr.design.system.crossover import linkwitz_riley_response
+from roomcorr.design.system.subwoofers import (
     CUT_DEPTHS_DB,
     MAX_CUTS,
     OFF_DB,
@@ -25,8 +29,10 @@ from roomcorr.design.subwoofers import (
     seat_levels_db,
     seat_spread_db,
     spread_grid_hz,
+    with_mains,
 )
 from roomcorr.errors import SettingsError
+from roomcorr.measure.guidance import positions_advice
 from roomcorr.pipeline import run_design
 from roomcorr.settings import Settings, design_from_dict
 
@@ -136,8 +142,6 @@ def test_search_finds_a_known_optimum_that_needs_an_own_cut():
 def test_an_own_cut_is_the_cookbook_peaking_filter():
     # reference: pyfar.dsp.filter.bell with bell_type "III" (bandwidth at half the gain in
     # dB, the cookbook's definition of Q for its peaking filter); the two agree to 1e-4 dB
-    import pyfar as pf
-
     f = np.geomspace(10.0, 2000.0, 400)
     for f0, g, q, fs in (
         (50.0, -6.0, 2.0, 48000),
@@ -296,8 +300,6 @@ def test_unknown_subwoofer_names_are_refused():
 
 
 def test_positions_advice_asks_for_a_wide_spread_with_several_subwoofers():
-    from roomcorr.measure.guidance import positions_advice
-
     assert positions_advice(1, 3) is None
     text = positions_advice(2, 3)
     assert "whole listening area" in text and "at least 5" in text
@@ -308,8 +310,6 @@ def test_mains_and_subwoofers_judged_together_sum_like_a_linkwitz_riley_pair():
     # Linkwitz, JAES 24(1), 1976: LR4 low-pass + high-pass is an all-pass. A subwoofer that
     # hears exactly what both mains together hear is matched to them at 0 dB, and the sum the
     # search judges has the mains' magnitude at every frequency and seat.
-    from roomcorr.design.subwoofers import with_mains
-
     rng = np.random.default_rng(2)
     f = spread_grid_hz(174.0)
     mains = rng.standard_normal((4, 2, f.size)) + 1j * rng.standard_normal((4, 2, f.size))
