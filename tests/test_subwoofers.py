@@ -289,6 +289,7 @@ def test_routes_manifest_and_summary_name_every_subwoofer(two_sub_design):
     text = "\n".join(system_sentences(fields))
     assert "At seats you did not measure, expect the bass to vary by about" in text
     assert "Bass management" in text
+    assert "own filter only cuts" in text
     assert build_routes(["left", "right", "front_sub", "back_sub"], [FS], r.system) == routes
 
 

@@ -164,7 +164,8 @@ def subwoofer_sentences(sw: dict[str, Any], route_gain_db: float) -> list[str]:
         f"{route_gain_db:+.2f} dB (1 / number of mains), so the same bass on every main "
         "(mono bass) reaches the subwoofers at the level of one main alone and cannot "
         "overload them; bass that differs between the mains adds up to at most that level "
-        "too. No subwoofer is ever raised: levels are cuts from the loudest one."
+        "too. No subwoofer is ever raised: levels are cuts from the loudest one, and a "
+        "subwoofer's own filter only cuts."
     )
     return lines
 
