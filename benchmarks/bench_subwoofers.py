@@ -3,16 +3,23 @@ saw, on rooms simulated with pyroomacoustics, and the design time.
 
 Rooms: the five invented rooms of ``tests/pra_rooms.py`` (two to four subwoofers, two
 mains, pyroomacoustics' image-source method at high order; independent of roomcorr's own
-room model). Measured: five positions over a listening area 1.6 m wide and 0.6 m deep
-(its corners and centre). Held out: four seats between them and six 0.4 m in front of and
-behind the centre row (``held_out_seats``).
+room model) and three more (``EXTRA_ROOMS``: smaller and larger, drier and more
+reverberant, subwoofers placed without symmetry). Measured: five positions over a
+listening area 1.6 m wide and 0.6 m deep (its corners and centre). Held out: four seats
+between them and six 0.4 m in front of and behind the centre row (``held_out_seats``).
 
 Designs compared, each by ``roomcorr.pipeline.run_design`` from the five measured
 positions only:
 
-* **chosen**: ``--subwoofer`` naming every subwoofer (each its own delay, level, polarity);
-* **equal**: the same, with every subwoofer fed equally and no delay (the search replaced
+* **chosen**: ``--subwoofer`` naming every subwoofer (each its own delay, level, polarity
+  and cuts);
+* **no-cuts**: the same without the subwoofers' own cuts (``own_filters=False``);
+* **equal**: every subwoofer fed equally, no delay, no own filter (the search replaced
   by equal feed; common correction, crossover and alignment as usual);
+* **oracle**: the same free parameters chosen knowing the held-out seats (the design's
+  search on those seats over its own band and over 25-100 Hz, and on all fifteen seats),
+  the best of those, chosen, no-cuts and equal at the held-out seats: how far these
+  parameters can go there, an upper bound of the true optimum;
 * **single**: each subwoofer alone with the mains (issue 11's design); "picked" is the one
   whose own spread at the measured positions is least (what the design would choose on its
   own), "best" the one best at the held-out seats (known only to the benchmark).
@@ -27,7 +34,11 @@ Figures, evaluated independently of roomcorr (scipy's FFT convolution of the del
 * ripple: RMS deviation of each held-out seat's level from its own mean over 25 to
   100 Hz, averaged over seats.
 
-Run: ``python benchmarks/bench_subwoofers.py`` (a few minutes).
+Design time: 4 outputs (two mains, two subwoofers) x 5 positions x 3 rates against the
+two-channel design and the single-subwoofer design, in the same run (best of two).
+
+Run: ``python benchmarks/bench_subwoofers.py [timing] [quality]`` (quality: a quarter of an
+hour on a shared machine).
 """
 
 from __future__ import annotations
@@ -53,8 +64,13 @@ from pra_rooms import (  # noqa: E402
 from scipy.signal import fftconvolve  # noqa: E402
 
 import roomcorr.pipeline as pipeline_mod  # noqa: E402
+from roomcorr.analysis.dtft import dtft  # noqa: E402
 from roomcorr.analysis.plausibility import impulse_response_problems  # noqa: E402
-from roomcorr.design.system.subwoofers import plan_subwoofers  # noqa: E402
+from roomcorr.design.system.subwoofers import (  # noqa: E402
+    listening_cases,
+    plan_subwoofers,
+    spread_grid_hz,
+)
 from roomcorr.pipeline import run_design  # noqa: E402
 from roomcorr.settings import Settings, design_from_dict  # noqa: E402
 
@@ -92,13 +108,99 @@ def _figures(irs_held: np.ndarray, r, n_mains: int = 2) -> dict[str, tuple[float
     return out
 
 
-def _equal_feed(resp, freq_hz, names, channels, weights=None, predict=True, base=None):
-    """plan_subwoofers with every subwoofer fed equally, no delay (the baseline)."""
-    p = plan_subwoofers(resp, freq_hz, names, channels, weights, predict=False, base=base)
+def _equal_feed(
+    resp, freq_hz, names, channels, weights=None, predict=True, base=None, fs=FS, base_scale=None
+):
+    """plan_subwoofers with every subwoofer fed equally, no delay, no own filter (the
+    baseline)."""
+    p = plan_subwoofers(
+        resp,
+        freq_hz,
+        names,
+        channels,
+        weights,
+        predict=False,
+        base=base,
+        fs=fs,
+        own_filters=False,
+        base_scale=base_scale,
+    )
     n = len(names)
     p.delay_s, p.gain_db, p.polarity = np.zeros(n), np.zeros(n), [1] * n
+    p.cuts, p.filter = [[] for _ in range(n)], ["none"] * n
     p.turned_down = [False] * n
     return p
+
+
+def _without_own_filters(
+    resp, freq_hz, names, channels, weights=None, predict=True, base=None, fs=FS, base_scale=None
+):
+    """plan_subwoofers with delay, level and polarity only (no own filters)."""
+    return plan_subwoofers(
+        resp,
+        freq_hz,
+        names,
+        channels,
+        weights,
+        predict=False,
+        base=base,
+        fs=fs,
+        own_filters=False,
+        base_scale=base_scale,
+    )
+
+
+def _oracle_plans(
+    irs_meas: np.ndarray, irs_held: np.ndarray, sub_idx: list[int], crossover_range_hz=(50.0, 150.0)
+) -> dict[str, object]:
+    """plan_subwoofers stand-ins that choose the same free parameters (delays, levels,
+    polarities, own cuts) with knowledge of the held-out seats: the design's own search and
+    cost (both mains through the crossover at the range's middle) on the held-out seats
+    over the design's band (20 Hz to twice the crossover) and over the figure's band
+    (25 to 100 Hz, with 1/12 octave beyond for the 1/6-octave box), and on the measured
+    and held-out seats together. The oracle figure is the best of these, the design's own
+    choice, its choice without own cuts and equal feed (all inside the same parameters),
+    each judged through the whole design at the held-out seats: an upper bound of what
+    these parameters can reach there (the true optimum is at most that)."""
+    lo, hi = crossover_range_hz
+    grid = spread_grid_hz(2.0 * float(np.sqrt(lo * hi)))
+    mains = [c for c in range(irs_held.shape[1]) if c not in sub_idx]
+
+    def heard_at(irs):
+        return listening_cases(
+            dtft(irs[:, sub_idx], grid, FS),
+            dtft(irs[:, mains], grid, FS),
+            grid,
+            float(np.sqrt(lo * hi)),
+            FS,
+        )
+
+    held_resp, held_base, scales = heard_at(irs_held)
+    all_resp, all_base, _ = heard_at(np.concatenate([irs_meas, irs_held]))
+    figure_band = (grid >= BAND_HZ[0] / 2 ** (1 / 12)) & (grid <= BAND_HZ[1] * 2 ** (1 / 12))
+    whole = np.ones(grid.size, dtype=bool)
+
+    def stand_in(resp_p, base_p, band):
+        def plan(resp, freq_hz, names, channels, weights=None, predict=True, base=None, fs=FS, **_):
+            assert np.allclose(freq_hz, grid)
+            return plan_subwoofers(
+                resp_p[..., band],
+                grid[band],
+                names,
+                channels,
+                predict=False,
+                base=base_p[..., band],
+                fs=fs,
+                base_scale=scales,
+            )
+
+        return plan
+
+    return {
+        "held": stand_in(held_resp, held_base, whole),
+        "held 25-100 Hz": stand_in(held_resp, held_base, figure_band),
+        "measured+held": stand_in(all_resp, all_base, whole),
+    }
 
 
 def _settings(names, subs, rates=(FS,)):
@@ -109,15 +211,46 @@ def _settings(names, subs, rates=(FS,)):
     )
 
 
+#: Rooms added for this benchmark beyond tests/pra_rooms.py's five (invented before any
+#: figure was seen; never used to choose a constant): smaller and larger, drier and more
+#: reverberant, subwoofers in places without symmetry, where equal feed cancels little.
+EXTRA_ROOMS = {
+    "small-askew": ((4.2, 3.4, 2.4), 0.35, [(0.3, 0.3, 0.3), (2.6, 3.1, 0.3)], [0.0, 0.002]),
+    "long-three": (
+        (7.6, 4.2, 2.7),
+        0.6,
+        [(0.3, 3.9, 0.3), (5.0, 0.3, 0.3), (7.3, 2.9, 0.3)],
+        [0.0, 0.003, 0.006],
+    ),
+    "large-four-scattered": (
+        (8.0, 5.6, 3.0),
+        0.5,
+        [(0.3, 1.2, 0.3), (1.8, 5.3, 0.3), (7.7, 4.0, 0.3), (5.5, 0.3, 0.3)],
+        [0.0, 0.002, 0.004, 0.001],
+    ),
+}
+
+LABELS = ("left", "right", "both")
+
+
+def _trio(f, i=0):
+    return "/".join(f"{f[c][i]:.2f}" for c in LABELS)
+
+
 def quality() -> None:
     rows = []
     refused = accepted = 0
     print(
-        "room           subs | spread held-out (dB) left/right/both: chosen | equal | "
-        "single picked | single best || ratio chosen/equal  chosen/picked || ripple "
-        "chosen vs picked (both)"
+        "spread at held-out seats (dB, std of the 1/6-octave level, mean 25-100 Hz), "
+        "left/right/both:\n"
+        "  chosen = delay, level, polarity and own cuts; no-cuts = the same without own "
+        "filters;\n  oracle = the best of plans chosen knowing the held-out seats, the "
+        "design's own, no-cuts and equal, judged at those seats; "
+        "equal = all fed equally, no delay;\n  picked = the single subwoofer the design "
+        "would pick, best = the best single one at the held-out seats"
     )
-    for name, (dims, t60, subs_m, lat) in MULTI_SUB_ROOMS.items():
+    rooms = {**MULTI_SUB_ROOMS, **EXTRA_ROOMS}
+    for name, (dims, t60, subs_m, lat) in rooms.items():
         n_sub = len(subs_m)
         mics = sofa_positions(dims) + held_out_seats(dims)
         kinds = ["main"] * 2 + ["sub"] * n_sub
@@ -131,10 +264,26 @@ def quality() -> None:
                     accepted += 1
         sub_names = [f"sub{k + 1}" for k in range(n_sub)]
         names = ["left", "right", *sub_names]
-        chosen = run_design(meas, FS, _settings(names, sub_names))
-        with mock.patch.object(pipeline_mod, "plan_subwoofers", _equal_feed):
-            equal = run_design(meas, FS, _settings(names, sub_names))
-        f_ch, f_eq = _figures(held, chosen), _figures(held, equal)
+        settings = _settings(names, sub_names)
+        chosen = run_design(meas, FS, settings)
+        variants = {}
+        oracles = _oracle_plans(meas, held, list(range(2, 2 + n_sub)))
+        for label, stand_in in (
+            ("equal", _equal_feed),
+            ("no-cuts", _without_own_filters),
+            *oracles.items(),
+        ):
+            with mock.patch.object(pipeline_mod, "plan_subwoofers", stand_in):
+                variants[label] = _figures(held, run_design(meas, FS, settings))
+        f_ch, f_eq = _figures(held, chosen), variants["equal"]
+        candidates = {
+            "design's own": f_ch,
+            "no-cuts": variants["no-cuts"],
+            "equal": f_eq,
+            **{k: variants[k] for k in oracles},
+        }
+        won = min(candidates, key=lambda k: sum(candidates[k][c][0] for c in LABELS))
+        variants["oracle"] = candidates[won]
         singles = []
         for k in range(n_sub):
             sel = [0, 1, 2 + k]
@@ -147,31 +296,56 @@ def quality() -> None:
         best = int(np.argmin([s["both"][0] for s in singles]))
         f_pk, f_bs = singles[picked], singles[best]
 
-        def trio(f):
-            return "/".join(f"{f[c][0]:.2f}" for c in ("left", "right", "both"))
+        def ratio(f, g):
+            return [f[c][0] / g[c][0] for c in LABELS]
 
-        r_eq = [f_ch[c][0] / f_eq[c][0] for c in ("left", "right", "both")]
-        r_pk = [f_ch[c][0] / f_pk[c][0] for c in ("left", "right", "both")]
+        r_eq, r_pk = ratio(f_ch, f_eq), ratio(f_ch, f_pk)
+        r_nc, r_or = ratio(variants["no-cuts"], f_eq), ratio(variants["oracle"], f_eq)
         print(
-            f"{name:14} {n_sub:4d} | {trio(f_ch)} | {trio(f_eq)} | {trio(f_pk)} (sub{picked + 1})"
-            f" | {trio(f_bs)} (sub{best + 1}) || "
-            + "/".join(f"{x:.2f}" for x in r_eq)
-            + "  "
-            + "/".join(f"{x:.2f}" for x in r_pk)
-            + f" || {f_ch['both'][1]:.2f} vs {f_pk['both'][1]:.2f} dB"
-            + f"  [delays {np.round(arr.delay_s * 1e3, 1).tolist()} ms, levels "
-            f"{arr.gain_db.tolist()} dB, polarity {arr.polarity}; predicted "
-            f"{arr.loo_after_db:.2f} instead of {arr.loo_equal_db:.2f} dB]",
+            f"{name:20} {n_sub} subs | chosen {_trio(f_ch)} | no-cuts {_trio(variants['no-cuts'])}"
+            f" | oracle {_trio(variants['oracle'])} | equal {_trio(f_eq)} | picked "
+            f"{_trio(f_pk)} (sub{picked + 1}) | best {_trio(f_bs)} (sub{best + 1})",
             flush=True,
         )
-        rows.append(r_eq + r_pk + [f_ch["both"][1], f_pk["both"][1]])
-    x = np.array(rows)
-    print(
-        f"mean ratio chosen/equal {x[:, 0].mean():.2f}/{x[:, 1].mean():.2f}/{x[:, 2].mean():.2f}"
-        f" (worst {x[:, :3].max():.2f}); chosen/picked single {x[:, 3].mean():.2f}/"
-        f"{x[:, 4].mean():.2f}/{x[:, 5].mean():.2f} (worst {x[:, 3:6].max():.2f}); ripple "
-        f"{x[:, 6].mean():.2f} vs single {x[:, 7].mean():.2f} dB"
-    )
+        print(
+            f"{'':20}        ratio to equal: chosen "
+            + "/".join(f"{x:.2f}" for x in r_eq)
+            + "  no-cuts "
+            + "/".join(f"{x:.2f}" for x in r_nc)
+            + "  oracle "
+            + "/".join(f"{x:.2f}" for x in r_or)
+            + f" ({won})"
+            + " | chosen/picked "
+            + "/".join(f"{x:.2f}" for x in r_pk)
+            + f" | ripple (both) chosen {f_ch['both'][1]:.2f} vs picked {f_pk['both'][1]:.2f} dB",
+            flush=True,
+        )
+        print(
+            f"{'':20}        delays {np.round(arr.delay_s * 1e3, 1).tolist()} ms, levels "
+            f"{arr.gain_db.tolist()} dB, polarity {arr.polarity}, own filters {arr.filter}; "
+            f"predicted {arr.loo_after_db:.2f} instead of {arr.loo_equal_db:.2f} dB",
+            flush=True,
+        )
+        rows.append(
+            (
+                name in MULTI_SUB_ROOMS,
+                r_eq + r_pk + r_nc + r_or + [f_ch["both"][1], f_pk["both"][1]],
+            )
+        )
+    for label, keep in (("the five rooms of tests/pra_rooms.py", True), ("all rooms", None)):
+        x = np.array([r for first, r in rows if keep is None or first == keep])
+        print(
+            f"mean over {label} ({x.shape[0]}): ratio to equal feed chosen "
+            + "/".join(f"{v:.2f}" for v in x[:, 0:3].mean(axis=0))
+            + f" (worst {x[:, 0:3].max():.2f}), no-cuts "
+            + "/".join(f"{v:.2f}" for v in x[:, 6:9].mean(axis=0))
+            + ", oracle "
+            + "/".join(f"{v:.2f}" for v in x[:, 9:12].mean(axis=0))
+            + f" (worst {x[:, 9:12].max():.2f}); chosen/picked single "
+            + "/".join(f"{v:.2f}" for v in x[:, 3:6].mean(axis=0))
+            + f" (worst {x[:, 3:6].max():.2f}); ripple {x[:, 12].mean():.2f} vs single "
+            f"{x[:, 13].mean():.2f} dB"
+        )
     print(f"subwoofer responses accepted without --force: {accepted} of {accepted + refused}")
 
 
@@ -204,5 +378,8 @@ def timing() -> None:
 
 
 if __name__ == "__main__":
-    timing()
-    quality()
+    which = sys.argv[1:] or ["timing", "quality"]
+    if "timing" in which:
+        timing()
+    if "quality" in which:
+        quality()

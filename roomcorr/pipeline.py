@@ -13,10 +13,11 @@ from dataclasses import dataclass, replace
 from pathlib import Path
 
 import numpy as np
-from scipy.signal import freqz
+from scipy.signal import sosfilt
 
 from roomcorr.analysis.average import power_average
 from roomcorr.analysis.balance import steady_balance_set
+from roomcorr.analysis.dtft import dtft
 from roomcorr.analysis.onset import find_onset
 from roomcorr.analysis.smoothing import smooth_log_grid, variable_width_oct
 from roomcorr.analysis.window import fdw_power
@@ -29,7 +30,12 @@ from roomcorr.design.phase.mixedphase import MixedPhaseDesign, apply_mixed_phase
 from roomcorr.design.realise.fir import default_n_taps, synthesize_fir, taps_for_latency
 from roomcorr.design.realise.safety import FilterStats, apply_safety, fit_under_cap
 from roomcorr.design.system.align import SystemPlan, apply_plan, plan_system, subwoofer_band_hz
-from roomcorr.design.system.subwoofers import plan_subwoofers, spread_grid_hz, with_mains
+from roomcorr.design.system.subwoofers import (
+    cut_sos,
+    listening_cases,
+    plan_subwoofers,
+    spread_grid_hz,
+)
 from roomcorr.errors import InputFileError, SettingsError
 from roomcorr.grid import interp_log, log_grid, points_per_octave_of
 from roomcorr.settings import (
@@ -416,24 +422,33 @@ def _shifted(h: np.ndarray, n: int, n_out: int) -> np.ndarray:
     return out
 
 
+def _own_cuts(h: np.ndarray, cuts, fs: float) -> np.ndarray:
+    """``h`` (any leading shape) through a subwoofer's own cuts designed at ``fs``, same
+    length (each cut's gain is at most 0 dB, so it adds no boost)."""
+    for f0, gain_db, q in cuts:
+        h = sosfilt(cut_sos(f0, gain_db, q, fs), h, axis=-1)
+    return h
+
+
 def _run_several_subwoofers(
     irs: np.ndarray, fs: int, settings: Settings, channel_names: list[str] | None
 ) -> DesignResult:
     """Several subwoofers: chosen together, then designed as one source (design/system/).
 
-    1. Each subwoofer's delay, level (cut only) and polarity come from
+    1. Each subwoofer's delay, level (cut only), polarity and own cuts come from
        :func:`roomcorr.design.system.subwoofers.plan_subwoofers` on the measured
        responses (20 Hz to twice the middle of the crossover range), judged
-       with both mains driven through a crossover at the range's middle
-       (:func:`roomcorr.design.system.subwoofers.with_mains`).
+       with each main alone and all mains driven, through a crossover at the
+       range's middle (:func:`roomcorr.design.system.subwoofers.listening_cases`).
     2. The subwoofers, so fed, are summed into one virtual channel at every
        position, and the single-subwoofer design runs on the mains and that
        channel: common correction, crossover, alignment, safety.
     3. The virtual channel's filter is handed to every subwoofer with its own
-       delay (whole samples at each rate), level and polarity, always inside
-       the filters. Each output's peak gain stays at or below the virtual
-       channel's (a cut and a shift change no peak), and the safety check
-       runs again on the outputs as delivered.
+       delay (whole samples at each rate), level, polarity and cuts (designed
+       at each rate), always inside the filters. Each output's peak gain stays
+       at or below the virtual channel's (a cut, a parametric cut and a shift
+       raise no peak), and the safety check runs again on the outputs as
+       delivered.
     """
     d = settings.design
     n_pos, n_ch, n_samp = irs.shape
@@ -445,10 +460,6 @@ def _run_several_subwoofers(
                 f"--subwoofer {name}: not one of the channel names {', '.join(names)}; "
                 "name the channels with --names"
             )
-    if d.phase == "mixed":
-        raise SettingsError(
-            "--phase mixed: not offered with several subwoofers yet; use --phase minimum"
-        )
     sub_idx = [names.index(n) for n in subs]
     mains = [c for c in range(n_ch) if c not in sub_idx]
     if not mains:
@@ -461,30 +472,33 @@ def _run_several_subwoofers(
         )
     lo, hi = d.crossover_range_hz
     grid = spread_grid_hz(2.0 * float(np.sqrt(lo * hi)))
-    resp = np.array(
-        [[freqz(irs[p, k], worN=grid, fs=fs)[1] for k in sub_idx] for p in range(n_pos)]
-    )
-    mains_resp = np.array(
-        [[freqz(irs[p, k], worN=grid, fs=fs)[1] for k in mains] for p in range(n_pos)]
-    )
-    # judged as the seats hear it: both mains driven, crossed over at the range's middle
-    sub_heard, mains_heard = with_mains(resp, mains_resp, grid, float(np.sqrt(lo * hi)), fs)
-    arr = plan_subwoofers(sub_heard, grid, subs, sub_idx, weights, base=mains_heard)
-    # one virtual subwoofer: every subwoofer with its own delay, level and polarity
-    shifts = [int(round(t * fs)) for t in arr.delay_s]
-    n_v = n_samp + max(shifts)
-    virtual = np.zeros((n_pos, n_v))
-    for k, c in enumerate(sub_idx):
-        g = 10.0 ** (arr.gain_db[k] / 20.0) * arr.polarity[k]
-        for p in range(n_pos):
-            virtual[p] += g * _shifted(irs[p, c], shifts[k], n_v)
+    resp = dtft(irs[:, sub_idx], grid, fs)
+    mains_resp = dtft(irs[:, mains], grid, fs)
     vname = "+".join(subs)
-    inner_irs = np.zeros((n_pos, len(mains) + 1, n_v))
-    inner_irs[:, : len(mains), :n_samp] = irs[:, mains]
-    inner_irs[:, -1] = virtual
     inner_names = [names[c] for c in mains] + [vname]
     inner = replace(settings, design=replace(d, subwoofer=vname, channel_names=tuple(inner_names)))
-    r = run_design(inner_irs, fs, inner, inner_names)
+
+    def inner_design(arr, design_settings):
+        """The single-subwoofer design on the mains and one virtual subwoofer: every
+        subwoofer with its own delay, level, polarity and cuts, summed."""
+        shifts = [int(round(t * fs)) for t in arr.delay_s]
+        n_v = n_samp + max(shifts)
+        inner_irs = np.zeros((n_pos, len(mains) + 1, n_v))
+        inner_irs[:, : len(mains), :n_samp] = irs[:, mains]
+        for k, c in enumerate(sub_idx):
+            g = 10.0 ** (arr.gain_db[k] / 20.0) * arr.polarity[k]
+            own = _own_cuts(irs[:, c], arr.cuts[k], fs)
+            for p in range(n_pos):
+                inner_irs[p, -1] += g * _shifted(own[p], shifts[k], n_v)
+        return run_design(inner_irs, fs, design_settings, inner_names)
+
+    # judged as the seats hear it with each main alone and all mains driven (mono bass),
+    # crossed over at the range's middle
+    sub_heard, bases, scales = listening_cases(resp, mains_resp, grid, float(np.sqrt(lo * hi)), fs)
+    arr = plan_subwoofers(
+        sub_heard, grid, subs, sub_idx, weights, base=bases, fs=fs, base_scale=scales
+    )
+    r = inner_design(arr, inner)
     plan = r.system
     assert plan is not None
     v = len(mains)
@@ -498,10 +512,38 @@ def _run_several_subwoofers(
             rows[c, : h.shape[1]] = h[i]
         for k, c in enumerate(sub_idx):
             g = 10.0 ** (arr.gain_db[k] / 20.0) * arr.polarity[k]
-            rows[c] = g * _shifted(h[v], sh[k], n_out)
+            rows[c] = g * _shifted(_own_cuts(h[v], arr.cuts[k], rate), sh[k], n_out)
         firs[rate] = rows
     firs, pre2, stats = apply_safety(firs, d.ceiling_db, d.max_boost_db)
     inner_of = {c: i for i, c in enumerate(mains)} | {c: v for c in sub_idx}
+    mixed = None
+    if r.mixed_phase is not None:
+        # the array's excess phase is undone once, in the filter all subwoofers share
+        # (the single-subwoofer mixed-phase rules and checks); each subwoofer's own
+        # delay, level, polarity and cuts (minimum phase) follow it as above
+        mp = r.mixed_phase
+        min_firs = {}
+        for rate, h in mp.min_phase_firs.items():
+            sh = [int(round(t * rate)) for t in arr.delay_s]
+            rows = np.zeros((n_ch, h.shape[1] + max(sh)))
+            for i, c in enumerate(mains):
+                rows[c, : h.shape[1]] = h[i]
+            for k, c in enumerate(sub_idx):
+                g = 10.0 ** (arr.gain_db[k] / 20.0) * arr.polarity[k]
+                rows[c] = g * _shifted(_own_cuts(h[v], arr.cuts[k], rate), sh[k], rows.shape[1])
+            min_firs[rate] = rows
+        mixed = replace(
+            mp,
+            estimates=[mp.estimates[inner_of[c]] for c in range(n_ch)],
+            min_phase_firs=min_firs,
+            stats=[
+                replace(st, channel=c)
+                for c in range(n_ch)
+                for st in mp.stats
+                if st.channel == inner_of[c]
+            ],
+            views=[mp.views[inner_of[c]] for c in range(n_ch)] if mp.views else [],
+        )
     channels = [replace(r.channels[inner_of[c]], index=c, name=names[c]) for c in range(n_ch)]
     roles = [plan.roles[inner_of[c]] for c in range(n_ch)]
     own_delay = np.zeros(n_ch)
@@ -540,5 +582,5 @@ def _run_several_subwoofers(
         stats=stats,
         settings=settings,
         system=system,
-        mixed_phase=None,
+        mixed_phase=mixed,
     )

@@ -6,24 +6,33 @@ Modules under test: roomcorr.design.system.subwoofers and the pipeline's use of 
 from __future__ import annotations
 
 import numpy as np
+import pyfar as pf
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from pra_rooms import MULTI_SUB_ROOMS, mains_m, simulate_pra, sofa_positions
-from scipy.signal import freqz
+from scipy.signal import freqz, sosfilt, sosfreqz
 
 from roomcorr.deliver.routes import build_routes
 from roomcorr.deliver.system import manifest_fields, system_sentences
+from roomcorr.design.phase.mixedphase import MAGNITUDE_TOLERANCE_DB, PRE_RING_LIMIT_DB
 from roomcorr.design.system.crossover import linkwitz_riley_response
 from roomcorr.design.system.subwoofers import (
+    CUT_DEPTHS_DB,
+    MAX_CUTS,
     OFF_DB,
     array_response,
+    cut_sos,
+    cuts_response,
+    listening_cases,
     plan_subwoofers,
     seat_levels_db,
     seat_spread_db,
     spread_grid_hz,
+    with_mains,
 )
 from roomcorr.errors import SettingsError
+from roomcorr.measure.guidance import positions_advice
 from roomcorr.pipeline import run_design
 from roomcorr.settings import Settings, design_from_dict
 
@@ -107,6 +116,65 @@ def test_search_finds_a_known_optimum():
     assert plan.polarity[0] * plan.polarity[1] == -1
 
 
+def test_search_finds_a_known_optimum_that_needs_an_own_cut():
+    # Synthetic case with an exact optimum that needs one subwoofer's own filter: A hears
+    # (1 + m_p) / H and B hears (1 - m_p), H being the cut of -6 dB at 50 Hz, Q 2 that the
+    # search offers (cookbook peaking filter). Fed equally with A through H, the sum is 2 at
+    # every seat (no spread at all); without the cut A's resonance 1/H leaves the seats
+    # different around 50 Hz (algebra above).
+    rng = np.random.default_rng(11)
+    f = spread_grid_hz(180.0)
+    n_pos = 6
+    smooth = np.exp(-((np.log2(f)[None, :] - rng.uniform(5.0, 6.5, (n_pos, 1))) ** 2) / 0.5)
+    m = 0.4 * smooth * np.exp(1j * rng.uniform(0, 2 * np.pi, (n_pos, 1)))
+    h = cuts_response(f, [(50.0, -6.0, 2.0)], FS)
+    resp = np.stack([(1 + m) / h, 1 - m], 1)
+    without = plan_subwoofers(resp, f, ["a", "b"], [0, 1], predict=False, own_filters=False)
+    plan = plan_subwoofers(resp, f, ["a", "b"], [0, 1], predict=False, fs=FS)
+    assert without.spread_after_db > 0.1
+    assert plan.spread_after_db < 0.01 * without.spread_after_db
+    assert plan.cuts[0] == [(50.0, -6.0, 2.0)] and plan.cuts[1] == []
+    assert plan.filter == ["cut -6.0 dB at 50 Hz (Q 2)", "none"]
+    np.testing.assert_allclose(plan.delay_s, 0.0)
+    np.testing.assert_allclose(plan.gain_db, 0.0)
+
+
+def test_an_own_cut_is_the_cookbook_peaking_filter():
+    # reference: pyfar.dsp.filter.bell with bell_type "III" (bandwidth at half the gain in
+    # dB, the cookbook's definition of Q for its peaking filter); the two agree to 1e-4 dB
+    f = np.geomspace(10.0, 2000.0, 400)
+    for f0, g, q, fs in (
+        (50.0, -6.0, 2.0, 48000),
+        (31.5, -2.0, 4.0, 44100),
+        (90.0, -9.0, 1.0, 96000),
+    ):
+        ref = pf.dsp.filter.bell(None, f0, g, q, bell_type="III", sampling_rate=fs)
+        b, a = ref.coefficients[0]
+        want = 20 * np.log10(np.abs(freqz(b, a, worN=f, fs=fs)[1]))
+        got = 20 * np.log10(np.abs(sosfreqz(cut_sos(f0, g, q, fs), worN=f, fs=fs)[1]))
+        np.testing.assert_allclose(got, want, atol=1e-4)
+        # exactly the gain at the centre (cookbook definition)
+        np.testing.assert_allclose(20 * np.log10(abs(cuts_response([f0], [(f0, g, q)], fs))), g)
+    with pytest.raises(ValueError, match="only cuts"):
+        cut_sos(50.0, 1.0, 2.0, 48000)
+
+
+@settings(max_examples=40, deadline=None)
+@given(
+    f0=st.floats(20.0, 300.0),
+    gain=st.floats(-30.0, 0.0),
+    q=st.floats(0.3, 10.0),
+    fs=st.sampled_from([44100, 48000, 96000]),
+)
+def test_an_own_cut_never_exceeds_0_db(f0, gain, q, fs):
+    # safety (issue 20): a subwoofer's own filter only cuts. Peaking filter with A <= 1:
+    # |H|^2 - 1 has the sign of (A^2 - 1) (cookbook algebra), checked on a dense grid with
+    # scipy's sosfreqz, DC and Nyquist included
+    grid = np.concatenate([np.linspace(0.0, fs / 2, 1 << 15), f0 * 2.0 ** np.linspace(-2, 2, 801)])
+    _, h = sosfreqz(cut_sos(f0, gain, q, fs), worN=grid, fs=fs)
+    assert np.max(np.abs(h)) <= 1.0 + 1e-9
+
+
 @settings(max_examples=8, deadline=None)
 @given(
     n_sub=st.integers(2, 3),
@@ -124,6 +192,10 @@ def test_no_subwoofer_is_raised(n_sub, seed, spread):
     )
     assert np.all(plan.gain_db <= 0.0) and plan.gain_db.max() == 0.0
     assert np.all(plan.gain_db >= OFF_DB)
+    # each subwoofer's own filter: cuts only, no deeper than offered, at most MAX_CUTS
+    for cuts in plan.cuts:
+        assert len(cuts) <= MAX_CUTS
+        assert all(min(CUT_DEPTHS_DB) <= g < 0.0 for _, g, _ in cuts)
     assert np.all(plan.delay_s >= 0.0)
     # never worse than equal feed nor than the best single subwoofer, at the measured seats
     assert plan.spread_after_db <= plan.spread_equal_db + 1e-9
@@ -168,7 +240,17 @@ def test_each_subwoofer_gets_the_array_filter_with_its_own_delay_level_and_polar
         for k, c in enumerate((2, 3)):
             g = 10 ** (arr.gain_db[k] / 20) * arr.polarity[k]
             rows.append(h[c, shifts[k] : shifts[k] + m] / g)
-        np.testing.assert_allclose(rows[0], rows[1], atol=1e-9)
+        # each row is the array filter through that subwoofer's own cuts; causal LTI
+        # filters commute, also on sequences cut to one length (the first m output
+        # samples depend only on the first m input samples), so B's cuts on A's row
+        # equal A's cuts on B's row exactly when both come from one array filter
+        a_then_b = rows[0]
+        for f0, gain, q in arr.cuts[1]:
+            a_then_b = sosfilt(cut_sos(f0, gain, q, rate), a_then_b)
+        b_then_a = rows[1]
+        for f0, gain, q in arr.cuts[0]:
+            b_then_a = sosfilt(cut_sos(f0, gain, q, rate), b_then_a)
+        np.testing.assert_allclose(a_then_b, b_then_a, atol=1e-9)
     # the safety ceiling holds for every output as delivered (peak gain <= 0 dB)
     assert all(s.peak_gain_db <= r.settings.design.ceiling_db + 1e-6 for s in r.stats)
 
@@ -196,10 +278,18 @@ def test_routes_manifest_and_summary_name_every_subwoofer(two_sub_design):
     assert all(x["gain_db"] == pytest.approx(-6.021, abs=1e-3) for x in routes if x["gain_db"])
     sw = fields["system"]["subwoofers"]
     assert [e["name"] for e in sw["each"]] == ["front_sub", "back_sub"]
+    arr = r.system.subwoofers
+    for e, cuts, words in zip(sw["each"], arr.cuts, arr.filter, strict=True):
+        assert e["filter"] == words
+        assert [(c["freq_hz"], c["gain_db"], c["q"]) for c in e["cuts"]] == [
+            (round(f0, 2), g, q) for f0, g, q in cuts
+        ]
+        assert all(c["gain_db"] < 0 for c in e["cuts"])  # cuts only
     assert sw["predicted_spread_after_db"] is not None
     text = "\n".join(system_sentences(fields))
     assert "At seats you did not measure, expect the bass to vary by about" in text
     assert "Bass management" in text
+    assert "own filter only cuts" in text
     assert build_routes(["left", "right", "front_sub", "back_sub"], [FS], r.system) == routes
 
 
@@ -211,8 +301,6 @@ def test_unknown_subwoofer_names_are_refused():
 
 
 def test_positions_advice_asks_for_a_wide_spread_with_several_subwoofers():
-    from roomcorr.measure.guidance import positions_advice
-
     assert positions_advice(1, 3) is None
     text = positions_advice(2, 3)
     assert "whole listening area" in text and "at least 5" in text
@@ -223,11 +311,80 @@ def test_mains_and_subwoofers_judged_together_sum_like_a_linkwitz_riley_pair():
     # Linkwitz, JAES 24(1), 1976: LR4 low-pass + high-pass is an all-pass. A subwoofer that
     # hears exactly what both mains together hear is matched to them at 0 dB, and the sum the
     # search judges has the mains' magnitude at every frequency and seat.
-    from roomcorr.design.system.subwoofers import with_mains
-
     rng = np.random.default_rng(2)
     f = spread_grid_hz(174.0)
     mains = rng.standard_normal((4, 2, f.size)) + 1j * rng.standard_normal((4, 2, f.size))
     sub = mains.sum(axis=1, keepdims=True)
     heard, base = with_mains(sub, mains, f, 87.0, FS)
     np.testing.assert_allclose(np.abs(heard[:, 0] + base), np.abs(sub[:, 0]), rtol=1e-9)
+
+
+def test_listening_cases_one_main_alone_sums_like_a_linkwitz_riley_pair():
+    # Linkwitz, JAES 24(1), 1976: LR4 low-pass + high-pass is an all-pass. With both mains
+    # hearing the same L at every seat and the subwoofer hearing L + R = 2 L, the case 'left
+    # alone' (left through the high-pass, the subwoofer at 1/2 through the low-pass, level
+    # matched on both mains) has |L| at every frequency, and so has 'both' (|2 L|)
+    rng = np.random.default_rng(4)
+    f = spread_grid_hz(174.0)
+    one = rng.standard_normal((4, 1, f.size)) + 1j * rng.standard_normal((4, 1, f.size))
+    mains = np.concatenate([one, one], axis=1)
+    sub = mains.sum(axis=1, keepdims=True)
+    heard, bases, scales = listening_cases(sub, mains, f, 87.0, FS)
+    assert bases.shape == (3, 4, f.size)
+    np.testing.assert_allclose(scales, [0.5, 0.5, 1.0])
+    for b, s in zip(bases, scales, strict=True):
+        want = np.abs(one[:, 0]) * (2.0 if s == 1.0 else 1.0)
+        np.testing.assert_allclose(np.abs(b + s * heard[:, 0]), want, rtol=1e-9)
+
+
+def test_several_subwoofers_with_mixed_phase(two_sub_design):
+    # --phase mixed with several subwoofers: the array's excess phase is undone once, in the
+    # filter every subwoofer shares, under the single-subwoofer mixed-phase rules; each
+    # subwoofer's own delay, level, polarity and cuts follow it
+    irs, _ = two_sub_design
+    d = design_from_dict(
+        {
+            "channel_names": "left,right,front_sub,back_sub",
+            "subwoofer": "front_sub,back_sub",
+            "sample_rates": [FS],
+            "phase": "mixed",
+        }
+    )
+    r = run_design(irs, FS, Settings(design=d))
+    mp, arr = r.mixed_phase, r.system.subwoofers
+    assert mp is not None and len(mp.estimates) == 4 and len(mp.views) == 4
+    assert sorted({x.channel for x in mp.stats}) == [0, 1, 2, 3]
+    # the safety ceiling holds for every output as delivered (peak gain <= 0 dB)
+    assert all(s.peak_gain_db <= d.ceiling_db + 1e-6 for s in r.stats)
+    for x in mp.stats:  # the mixed-phase rules of one loudspeaker, held by every output
+        assert x.magnitude_error_db <= MAGNITUDE_TOLERANCE_DB + 1e-9
+        assert x.pre_ringing_db <= PRE_RING_LIMIT_DB + 1e-9
+    # both subwoofer outputs carry one shared mixed-phase filter (commuting their own cuts,
+    # as in the minimum-phase case)
+    h = r.firs[FS]
+    m = h.shape[1] - int(round(max(arr.delay_s) * FS))
+    rows = []
+    for k, c in enumerate((2, 3)):
+        g = 10 ** (arr.gain_db[k] / 20) * arr.polarity[k]
+        n = int(round(arr.delay_s[k] * FS))
+        rows.append(h[c, n : n + m] / g)
+    for k, other in ((0, 1), (1, 0)):
+        for f0, gain, q in arr.cuts[other]:
+            rows[k] = sosfilt(cut_sos(f0, gain, q, FS), rows[k])
+    np.testing.assert_allclose(rows[0], rows[1], atol=1e-9)
+    # an all-pass changes no magnitude: every output has the minimum-phase design's
+    # magnitude up to one gain (scipy's freqz, 25 to 100 Hz for the subwoofers, 200 Hz to
+    # 2 kHz for the mains; within 0.5 dB, the mixed-phase tolerance being 0.1 dB)
+    _, r_min = two_sub_design
+    assert r_min.system.subwoofers.delay_s.tolist() == arr.delay_s.tolist()
+    for c, band in (
+        (0, (200.0, 2000.0)),
+        (1, (200.0, 2000.0)),
+        (2, (25.0, 100.0)),
+        (3, (25.0, 100.0)),
+    ):
+        f = np.geomspace(*band, 60)
+        a = np.abs(freqz(h[c], worN=f, fs=FS)[1])
+        b = np.abs(freqz(r_min.firs[FS][c], worN=f, fs=FS)[1])
+        diff = 20 * np.log10(a / b)
+        np.testing.assert_allclose(diff - np.median(diff), 0.0, atol=0.5)

@@ -90,7 +90,8 @@ def system_summary(result: DesignResult) -> dict[str, Any]:
 
 def subwoofer_fields(arr: Any) -> dict[str, Any]:
     """Manifest figures of several subwoofers (``system.subwoofers``): per subwoofer its
-    delay, level, polarity and filter inside the array, the seat-to-seat spread (dB,
+    delay, level, polarity and own filter (in words and as its cuts: centre Hz, gain dB,
+    Q of each peaking cut) inside the array, the seat-to-seat spread (dB,
     1/6 octave, averaged over the band) at the measured positions fed equally with no
     delay, alone and as chosen, and the leave-one-position-out prediction."""
 
@@ -112,6 +113,10 @@ def subwoofer_fields(arr: Any) -> dict[str, Any]:
                 "level_db": round(float(arr.gain_db[k]), 2),
                 "polarity": int(arr.polarity[k]),
                 "filter": arr.filter[k],
+                "cuts": [
+                    {"freq_hz": round(float(f0), 2), "gain_db": float(g), "q": float(q)}
+                    for f0, g, q in (arr.cuts[k] if arr.cuts else [])
+                ],
                 "spread_alone_db": r2(arr.spread_single_db[k]),
                 "turned_down": bool(arr.turned_down[k]),
             }
@@ -159,7 +164,8 @@ def subwoofer_sentences(sw: dict[str, Any], route_gain_db: float) -> list[str]:
         f"{route_gain_db:+.2f} dB (1 / number of mains), so the same bass on every main "
         "(mono bass) reaches the subwoofers at the level of one main alone and cannot "
         "overload them; bass that differs between the mains adds up to at most that level "
-        "too. No subwoofer is ever raised: levels are cuts from the loudest one."
+        "too. No subwoofer is ever raised: levels are cuts from the loudest one, and a "
+        "subwoofer's own filter only cuts."
     )
     return lines
 

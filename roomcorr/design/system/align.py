@@ -52,9 +52,10 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
-from scipy.signal import fftconvolve, freqz
+from scipy.signal import fftconvolve
 
 from roomcorr.analysis.compare import speed_of_sound_m_s
+from roomcorr.analysis.dtft import dtft
 from roomcorr.design.curve.target import AUTO_LIMITS_HZ, ROLLOFF_DB
 from roomcorr.design.realise.fir import synthesize_fir
 from roomcorr.design.system.crossover import (
@@ -259,13 +260,9 @@ def _responses(
     (n_channels, n_freqs), complex. The correction is the filter at the
     output rate nearest the measurement's.
     """
-    n_pos, n_ch, _ = irs.shape
-    measured = np.empty((n_pos, n_ch, freq_hz.size), dtype=complex)
-    for p in range(n_pos):
-        for c in range(n_ch):
-            measured[p, c] = freqz(irs[p, c], worN=freq_hz, fs=fs)[1]
+    measured = dtft(irs, freq_hz, fs)  # = scipy's freqz per response, all at once
     rate = min(firs, key=lambda r: abs(r - fs))
-    correction = np.stack([freqz(h, worN=freq_hz, fs=rate)[1] for h in firs[rate]])
+    correction = dtft(firs[rate], freq_hz, rate)
     return measured, correction
 
 

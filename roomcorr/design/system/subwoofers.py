@@ -43,6 +43,7 @@ References
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from functools import lru_cache
 
 import numpy as np
 
@@ -70,6 +71,21 @@ MAX_LOSS_DB = 3.0
 LOSS_WEIGHT = 0.25
 #: Rounds of the coordinate descent at most.
 MAX_ROUNDS = 4
+#: A subwoofer's own filter: at most this many parametric cuts (peaking filters of
+#: negative gain, Bristow-Johnson's cookbook form: :func:`cut_sos`).
+MAX_CUTS = 2
+#: Centre frequencies offered to the cuts: 1/6 octave apart from this frequency ...
+CUT_LO_HZ = 25.0
+#: ... to the top of the spread band, this many per octave.
+CUT_STEPS_PER_OCT = 6
+#: Quality factors offered (bandwidths of about 1.4, 0.7 and 0.36 octave). Narrower cuts
+#: would fit the measured seats' own details, which unmeasured seats do not share.
+CUT_Q = (1.0, 2.0, 4.0)
+#: Depths offered, dB: cuts only.
+CUT_DEPTHS_DB = (-2.0, -4.0, -6.0)
+#: What each dB of cut costs, in dB of spread (regularisation: a cut must buy more
+#: evenness than this to be kept, so the filters stay few and shallow).
+CUT_COST_DB_PER_DB = 0.0
 
 
 @dataclass
@@ -85,7 +101,10 @@ class SubArrayPlan:
         Relative delay (the earliest 0) and level (the loudest 0 dB, never above).
     polarity : list of int
     filter : list of str
-        Individual filter of each subwoofer ("none": only the common correction).
+        Individual filter of each subwoofer in words ("none": only the common correction).
+    cuts : list of list of (float, float, float)
+        Each subwoofer's own cuts as (centre frequency Hz, gain dB < 0, Q); see
+        :func:`cut_sos`.
     spread_equal_db, spread_after_db : float
         Seat-to-seat spread at the measured positions, fed equally with no
         delay, and as chosen.
@@ -114,6 +133,7 @@ class SubArrayPlan:
     band_hz: tuple[float, float]
     n_evaluations: int = 0
     freq_hz: np.ndarray = field(default_factory=lambda: np.zeros(0), repr=False)
+    cuts: list[list[tuple[float, float, float]]] = field(default_factory=list)
 
 
 def spread_grid_hz(hi_hz: float, lo_hz: float = SPREAD_LO_HZ) -> np.ndarray:
@@ -122,14 +142,21 @@ def spread_grid_hz(hi_hz: float, lo_hz: float = SPREAD_LO_HZ) -> np.ndarray:
     return lo_hz * 2.0 ** (np.arange(n) / POINTS_PER_OCTAVE)
 
 
+@lru_cache(maxsize=16)
+def _smoothing_matrix(n: int) -> np.ndarray:
+    """(n, n) matrix of the 1/6-octave box average on the log grid (edges shrink)."""
+    half = int(round(SMOOTHING_OCT * POINTS_PER_OCTAVE / 2))
+    m = np.zeros((n, n))
+    for i in range(n):
+        lo, hi = max(i - half, 0), min(i + half + 1, n)
+        m[i, lo:hi] = 1.0 / (hi - lo)
+    m.setflags(write=False)
+    return m
+
+
 def _smooth_power(power: np.ndarray) -> np.ndarray:
     """1/6-octave box average along the last axis of a power on the log grid (edges shrink)."""
-    half = int(round(SMOOTHING_OCT * POINTS_PER_OCTAVE / 2))
-    n = power.shape[-1]
-    c = np.cumsum(np.concatenate([np.zeros(power.shape[:-1] + (1,)), power], axis=-1), axis=-1)
-    lo = np.clip(np.arange(n) - half, 0, n)
-    hi = np.clip(np.arange(n) + half + 1, 0, n)
-    return (c[..., hi] - c[..., lo]) / (hi - lo)
+    return power @ _smoothing_matrix(power.shape[-1]).T
 
 
 def seat_levels_db(resp: np.ndarray) -> np.ndarray:
@@ -163,43 +190,168 @@ def _coefficients(freq_hz, delay_s, gain_db, polarity) -> np.ndarray:
     return g[:, None] * np.exp(-2j * np.pi * np.outer(delay_s, freq_hz))
 
 
-def _cost(total: np.ndarray, power_sum: np.ndarray, weights) -> np.ndarray:
-    """Spread plus the charge for lost level; total (..., P, F), power_sum (..., P, F)."""
-    level = seat_levels_db(total)
+def _cost(total: np.ndarray, power_sum, weights, ref_smoothed=None) -> np.ndarray:
+    """Spread plus the charge for lost level; total (..., P, F), power_sum (..., P, F)
+    (or its 1/6-octave smoothing given as ``ref_smoothed``, the smoothing being linear)."""
+    ref_s = _smooth_power(power_sum) if ref_smoothed is None else ref_smoothed
+    return _cost_smoothed(_smooth_power(np.abs(total) ** 2), _mean_level_db(ref_s), weights)
+
+
+def _mean_level_db(power_s: np.ndarray) -> np.ndarray:
+    """Mean over positions and frequencies of a smoothed power in dB."""
+    return (10.0 * np.log10(np.maximum(power_s, 1e-30))).mean(axis=(-2, -1))
+
+
+def _cost_smoothed(power_s: np.ndarray, ref_mean_db, weights) -> np.ndarray:
+    """:func:`_cost` from the smoothed power of the sum (..., P, F) and the reference's
+    mean level (broadcast to ``...``)."""
+    level = 10.0 * np.log10(np.maximum(power_s, 1e-30))
     spread = seat_spread_db(level, weights)
-    ref = seat_levels_db(np.sqrt(power_sum))
-    loss = (ref - level).mean(axis=(-2, -1))
+    loss = ref_mean_db - level.mean(axis=(-2, -1))
     return spread + LOSS_WEIGHT * np.maximum(loss - MAX_LOSS_DB, 0.0)
 
 
+def cut_sos(freq_hz: float, gain_db: float, q: float, fs: float) -> np.ndarray:
+    """One parametric cut as a second-order section, shape (1, 6).
+
+    The peaking filter of Bristow-Johnson's cookbook [2]_ with ``A = 10^(gain/40)``
+    and ``alpha = sin(w0) / (2 Q)``: unity gain far from ``freq_hz`` and exactly
+    ``gain_db`` at it. For ``gain_db <= 0`` its gain never exceeds 0 dB (it only
+    cuts); positive gains are refused.
+
+    References
+    ----------
+    .. [2] R. Bristow-Johnson, "Cookbook formulae for audio EQ biquad filter
+           coefficients" (the peakingEQ section).
+    """
+    if not gain_db <= 0.0:
+        raise ValueError(f"a subwoofer's own filter only cuts, got {gain_db} dB")
+    a_lin = 10.0 ** (gain_db / 40.0)
+    w0 = 2.0 * np.pi * freq_hz / fs
+    alpha = np.sin(w0) / (2.0 * q)
+    b = np.array([1.0 + alpha * a_lin, -2.0 * np.cos(w0), 1.0 - alpha * a_lin])
+    a = np.array([1.0 + alpha / a_lin, -2.0 * np.cos(w0), 1.0 - alpha / a_lin])
+    return np.concatenate([b / a[0], a / a[0]])[None, :]
+
+
+def _cut_response(freq_hz: np.ndarray, f0_hz, gain_db, q, fs: float) -> np.ndarray:
+    """Complex responses of peaking cuts (broadcast over f0_hz, gain_db, q) at ``freq_hz``
+    (trailing axis); the same filters as :func:`cut_sos`."""
+    f0 = np.asarray(f0_hz, dtype=float)[..., None]
+    a_lin = 10.0 ** (np.asarray(gain_db, dtype=float)[..., None] / 40.0)
+    w0 = 2.0 * np.pi * f0 / fs
+    alpha = np.sin(w0) / (2.0 * np.asarray(q, dtype=float)[..., None])
+    z1 = np.exp(-2j * np.pi * np.asarray(freq_hz) / fs)
+    z2 = z1 * z1
+    c = -2.0 * np.cos(w0)
+    num = (1.0 + alpha * a_lin) + c * z1 + (1.0 - alpha * a_lin) * z2
+    den = (1.0 + alpha / a_lin) + c * z1 + (1.0 - alpha / a_lin) * z2
+    return num / den
+
+
+def cuts_response(freq_hz: np.ndarray, cuts, fs: float) -> np.ndarray:
+    """Complex response of one subwoofer's cuts ((f0 Hz, gain dB, Q) each) at ``freq_hz``."""
+    out = np.ones(np.asarray(freq_hz).size, dtype=complex)
+    for f0, g, q in cuts:
+        out = out * _cut_response(freq_hz, f0, g, q, fs)
+    return out
+
+
+def describe_cuts(cuts) -> str:
+    """A subwoofer's own filter in words ("none" without cuts)."""
+    if not cuts:
+        return "none"
+    parts = [f"{g:+.1f} dB at {f0:.0f} Hz (Q {q:g})" for f0, g, q in cuts]
+    return ("cut " if len(parts) == 1 else "cuts ") + ", ".join(parts)
+
+
+def _cut_candidates(hi_hz: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Every (centre, depth, Q) offered to one cut, flattened."""
+    n = int(np.floor(np.log2(hi_hz / CUT_LO_HZ) * CUT_STEPS_PER_OCT)) + 1
+    f0 = CUT_LO_HZ * 2.0 ** (np.arange(max(n, 1)) / CUT_STEPS_PER_OCT)
+    ff, gg, qq = np.meshgrid(f0, CUT_DEPTHS_DB, CUT_Q, indexing="ij")
+    return ff.ravel(), gg.ravel(), qq.ravel()
+
+
+def _cut_cost(cuts: list) -> float:
+    return CUT_COST_DB_PER_DB * float(sum(-g for c in cuts for _, g, _ in c))
+
+
+def _cases(base, base_scale, n_pos: int, n_freq: int) -> tuple[np.ndarray, np.ndarray]:
+    """Listening cases: what the seats hear besides the subwoofers, shape (B, P, F), and
+    how loud the subwoofers are in each, shape (B,); one silent case without a base."""
+    if base is None:
+        return np.zeros((1, n_pos, n_freq), dtype=complex), np.ones(1)
+    bases = np.asarray(base)
+    if bases.ndim == 2:
+        bases = bases[None]
+    scales = np.ones(bases.shape[0]) if base_scale is None else np.asarray(base_scale, float)
+    return bases, scales
+
+
+def _state_cost(resp, freq_hz, weights, delay, gain, pol, filt, cases) -> float:
+    bases, scales = cases
+    coef = _coefficients(freq_hz, delay, gain, pol)
+    subs = np.einsum("psf,sf->pf", resp * filt[None], coef)
+    power = np.einsum("psf,s->pf", np.abs(resp) ** 2, 10.0 ** (np.asarray(gain) / 10.0))
+    total = bases + scales[:, None, None] * subs[None]
+    power = np.abs(bases) ** 2 + (scales**2)[:, None, None] * power[None]
+    return float(_cost(total, power, weights).mean())
+
+
 def _descend(
-    resp, freq_hz, weights, delay, gain, pol, base=None
+    resp, freq_hz, weights, delay, gain, pol, cases, filt=None, extra=0.0
 ) -> tuple[float, np.ndarray, np.ndarray, list, int]:
-    """Coordinate descent from one start; returns cost, delays, gains, polarities, evaluations."""
+    """Coordinate descent over delay, level and polarity from one start (each subwoofer
+    through its own filter ``filt``, shape (n_subs, n_freqs)); the cost is the mean over
+    the listening ``cases`` (:func:`_cases`). Returns cost (plus the fixed ``extra``),
+    delays, gains, polarities, evaluations."""
+    bases, scales = cases
+    sc = scales[:, None, None]
     n_sub = resp.shape[1]
     delay, gain, pol = delay.copy(), gain.copy(), list(pol)
+    filt = np.ones(resp.shape[1:], dtype=complex) if filt is None else filt
     cand_d, cand_p, cand_g = np.meshgrid(DELAYS_S, [1, -1], GAINS_DB, indexing="ij")
     cand_d, cand_p, cand_g = cand_d.ravel(), cand_p.ravel(), cand_g.ravel()
-    cand = _coefficients(freq_hz, cand_d, cand_g, cand_p)  # (C, F)
-    cand_pow = 10.0 ** (cand_g / 10.0)
-    h_pow = np.abs(resp) ** 2  # (P, S, F)
-    base_pow = 0.0 if base is None else np.abs(base) ** 2
+    # every candidate (delay d, polarity s, amplitude a) for subwoofer k hears
+    # |o + s a e^{-jwd} h|^2 = |o|^2 + a^2 |h|^2 + 2 s a Re(o conj(h) e^{jwd}); the
+    # smoothing is linear, so only the last term is smoothed per delay
+    wd = 2.0 * np.pi * np.outer(DELAYS_S, freq_hz)
+    cos_d, sin_d = np.cos(wd)[:, None, None, :], np.sin(wd)[:, None, None, :]  # (D,1,1,F)
+    amp = 10.0 ** (GAINS_DB / 20.0)
+    sign = np.array([1.0, -1.0])
+    h_pow = np.abs(resp) ** 2  # (P, S, F): the level reference, before the own filters
+    heard = resp * filt[None]
+    base_pow = np.abs(bases) ** 2
     evals = 0
-    best = np.inf
+    best = _state_cost(resp, freq_hz, weights, delay, gain, pol, filt, cases) + extra
     for _ in range(MAX_ROUNDS):
         improved = False
         for k in range(n_sub):
             coef = _coefficients(freq_hz, delay, gain, pol)
-            others = np.einsum("psf,sf->pf", resp, coef) - coef[k] * resp[:, k]
-            others_pow = np.einsum("psf,s->pf", h_pow, 10.0 ** (gain / 10.0)) - (
+            o_sub = np.einsum("psf,sf->pf", heard, coef) - coef[k] * heard[:, k]
+            others = bases + sc * o_sub[None]  # (B, P, F)
+            h_k = sc * heard[None, :, k]  # (B, P, F)
+            x = others * np.conj(h_k)
+            cross = _smooth_power(x.real[None] * cos_d - x.imag[None] * sin_d)  # (D,B,P,F)
+            s_o = _smooth_power(np.abs(others) ** 2)
+            s_h = _smooth_power(np.abs(h_k) ** 2)
+            power_s = (
+                s_o
+                + (amp**2)[None, None, :, None, None, None] * s_h
+                + 2.0
+                * (sign[None, :, None] * amp[None, None, :])[..., None, None, None]
+                * cross[:, None, None]
+            )  # (D, 2, G, B, P, F), the order of cand_d, cand_p, cand_g
+            o_pow = np.einsum("psf,s->pf", h_pow, 10.0 ** (gain / 10.0)) - (
                 10.0 ** (gain[k] / 10.0) * h_pow[:, k]
             )
-            if base is not None:
-                others = others + base
-                others_pow = others_pow + base_pow
-            total = others[None] + cand[:, None, :] * resp[None, :, k]
-            power_sum = others_pow[None] + cand_pow[:, None, None] * h_pow[None, :, k]
-            costs = _cost(total, power_sum, weights)
+            ref_s = (
+                _smooth_power(base_pow + sc**2 * o_pow[None])[None]
+                + (amp**2)[:, None, None, None] * _smooth_power(sc**2 * h_pow[None, :, k])[None]
+            )  # (G, B, P, F)
+            ref_db = np.broadcast_to(_mean_level_db(ref_s)[None, None], power_s.shape[:4])
+            costs = _cost_smoothed(power_s, ref_db, weights).mean(axis=-1).ravel() + extra
             evals += costs.size
             i = int(np.argmin(costs))
             if costs[i] < best - 1e-6:
@@ -211,8 +363,80 @@ def _descend(
     return best, delay, gain, pol, evals
 
 
-def _search(resp, freq_hz, weights, base=None) -> tuple[np.ndarray, np.ndarray, list[int], int]:
-    """Best delays, gains (loudest 0 dB) and polarities from every start."""
+def _descend_cuts(
+    resp, freq_hz, weights, delay, gain, pol, cuts, cases, fs, best
+) -> tuple[float, np.ndarray, list, int]:
+    """One round over every subwoofer's cut slots with delays and polarities held: each
+    slot takes the best of no cut and every offered (centre, depth, Q), together with
+    that subwoofer's level or the offered levels next to it (a cut and a level trade
+    against each other)."""
+    bases, scales = cases
+    sc = scales[:, None, None]
+    n_sub = resp.shape[1]
+    gain = np.asarray(gain, dtype=float).copy()
+    cuts = [list(c) for c in cuts]
+    f0, g0, q0 = _cut_candidates(float(freq_hz[-1]))
+    cand = np.concatenate(
+        [np.ones((1, freq_hz.size)), _cut_response(freq_hz, f0, g0, q0, fs)]
+    )  # (1 + C, F): no cut first
+    depth = np.concatenate([[0.0], g0])
+    amp = 10.0 ** (GAINS_DB / 20.0)
+    h_pow = np.abs(resp) ** 2
+    base_pow = np.abs(bases) ** 2
+    evals = 0
+    for k in range(n_sub):
+        for j in range(MAX_CUTS):
+            rest = [c for i, c in enumerate(cuts[k]) if i != j]
+            coef = _coefficients(freq_hz, delay, gain, pol)
+            filt = np.stack([cuts_response(freq_hz, c, fs) for c in cuts])
+            heard = resp * filt[None] * coef[None]
+            others = bases + sc * (heard.sum(axis=1) - heard[:, k])[None]  # (B, P, F)
+            unit = pol[k] * np.exp(-2j * np.pi * freq_hz * delay[k])
+            own = resp[:, k] * unit * cuts_response(freq_hz, rest, fs)  # (P, F)
+            own = cand[:, None, None, :] * (sc * own[None])[None]  # (C, B, P, F)
+            # |o + a h|^2 = |o|^2 + a^2 |h|^2 + 2 a Re(o conj(h)), smoothed term by term
+            s_o = _smooth_power(np.abs(others) ** 2)
+            s_h = _smooth_power(np.abs(own) ** 2)
+            cross = _smooth_power((others[None] * np.conj(own)).real)
+            # the levels next to the present one (a cut trades against a small level change)
+            now = int(np.argmin(np.abs(GAINS_DB - gain[k])))
+            lv = np.arange(max(now - 1, 0), min(now + 2, GAINS_DB.size))
+            a = amp[lv]
+            power_s = (
+                s_o
+                + (a**2)[None, :, None, None, None] * s_h[:, None]
+                + 2.0 * a[None, :, None, None, None] * cross[:, None]
+            )  # (C, L, B, P, F)
+            o_pow = np.einsum("psf,s->pf", h_pow, 10.0 ** (gain / 10.0)) - (
+                10.0 ** (gain[k] / 10.0) * h_pow[:, k]
+            )
+            ref_db = _mean_level_db(
+                _smooth_power(base_pow + sc**2 * o_pow[None])[None]
+                + (a**2)[:, None, None, None] * _smooth_power(sc**2 * h_pow[None, :, k])[None]
+            )  # (L, B)
+            penalty = _cut_cost([c for i, c in enumerate(cuts) if i != k]) + CUT_COST_DB_PER_DB * (
+                -sum(g for _, g, _ in rest) - depth
+            )  # (C,)
+            costs = (
+                _cost_smoothed(
+                    power_s, np.broadcast_to(ref_db[None], power_s.shape[:3]), weights
+                ).mean(axis=-1)
+                + penalty[:, None]
+            )
+            evals += costs.size
+            i, m = np.unravel_index(int(np.argmin(costs)), costs.shape)
+            if costs[i, m] < best - 1e-6:
+                best = float(costs[i, m])
+                new = [] if i == 0 else [(float(f0[i - 1]), float(g0[i - 1]), float(q0[i - 1]))]
+                cuts[k] = rest + new
+                gain[k] = GAINS_DB[lv[m]]
+    return best, gain, cuts, evals
+
+
+def _search(
+    resp, freq_hz, weights, cases, fs: float = 48000.0, own_filters: bool = True
+) -> tuple[np.ndarray, np.ndarray, list[int], list, int]:
+    """Best delays, gains (loudest 0 dB), polarities and own cuts from every start."""
     n_sub = resp.shape[1]
     starts = [np.zeros(n_sub)]
     for k in range(n_sub):
@@ -222,23 +446,53 @@ def _search(resp, freq_hz, weights, base=None) -> tuple[np.ndarray, np.ndarray, 
     best = None
     evals = 0
     for g0 in starts:
-        out = _descend(resp, freq_hz, weights, np.zeros(n_sub), g0, [1] * n_sub, base)
+        out = _descend(resp, freq_hz, weights, np.zeros(n_sub), g0, [1] * n_sub, cases)
         evals += out[4]
         if best is None or out[0] < best[0]:
             best = out
     assert best is not None
-    _, delay, gain, pol, _ = best
+    cost, delay, gain, pol, _ = best
+    cuts: list = [[] for _ in range(n_sub)]
+    if own_filters:
+        # alternate: the cuts with the rest held, then the rest through the cuts
+        for _ in range(MAX_ROUNDS):
+            new_cost, gain, cuts, n1 = _descend_cuts(
+                resp, freq_hz, weights, delay, gain, pol, cuts, cases, fs, cost
+            )
+            filt = np.stack([cuts_response(freq_hz, c, fs) for c in cuts])
+            new_cost, delay, gain, pol, n2 = _descend(
+                resp, freq_hz, weights, delay, gain, pol, cases, filt, _cut_cost(cuts)
+            )
+            evals += n1 + n2
+            if new_cost >= cost - 1e-6:
+                break
+            cost = new_cost
     on = gain > OFF_DB + 1e-9
     if not on.any():  # all at one level: the same as all at 0 dB
         gain, on = np.zeros(n_sub), np.ones(n_sub, dtype=bool)
     gain = np.where(on, np.minimum(gain - gain[on].max(), 0.0), OFF_DB)
+    cuts = [c if on[k] else [] for k, c in enumerate(cuts)]
     delay = delay - (delay[on].min() if on.any() else delay.min())
-    return np.maximum(delay, 0.0), gain, [int(p) for p in pol], evals
+    return np.maximum(delay, 0.0), gain, [int(p) for p in pol], cuts, evals
 
 
-def array_response(resp: np.ndarray, freq_hz: np.ndarray, delay_s, gain_db, polarity) -> np.ndarray:
-    """Summed response of the subwoofers at every position, shape (n_positions, n_freqs)."""
-    return np.einsum("psf,sf->pf", resp, _coefficients(freq_hz, delay_s, gain_db, polarity))
+def array_response(
+    resp: np.ndarray,
+    freq_hz: np.ndarray,
+    delay_s,
+    gain_db,
+    polarity,
+    cuts=None,
+    fs: float = 48000.0,
+) -> np.ndarray:
+    """Summed response of the subwoofers at every position, shape (n_positions, n_freqs).
+
+    ``cuts`` (optional): each subwoofer's own cuts (:func:`cuts_response` at ``fs``).
+    """
+    coef = _coefficients(freq_hz, delay_s, gain_db, polarity)
+    if cuts is not None:
+        coef = coef * np.stack([cuts_response(freq_hz, c, fs) for c in cuts])
+    return np.einsum("psf,sf->pf", resp, coef)
 
 
 def _held_out_deviation_db(level_db: np.ndarray, p: int, weights) -> float:
@@ -257,6 +511,9 @@ def leave_one_out_spread_db(
     freq_hz: np.ndarray,
     weights: np.ndarray | None = None,
     base: np.ndarray | None = None,
+    fs: float = 48000.0,
+    own_filters: bool = True,
+    base_scale: np.ndarray | None = None,
 ) -> tuple[float, float]:
     """Predicted seat-to-seat spread at unmeasured seats: (equal feed, as the search chooses).
 
@@ -270,20 +527,27 @@ def leave_one_out_spread_db(
     resp : ndarray, shape (n_positions, n_subs, n_freqs), complex
     freq_hz : ndarray, shape (n_freqs,)
     weights : ndarray, shape (n_positions,), optional
-    base : ndarray, shape (n_positions, n_freqs), complex, optional
-        What the seats hear besides the subwoofers (:func:`with_mains`).
+    base : ndarray, shape (n_positions, n_freqs) or (n_cases, n_positions, n_freqs), optional
+        What the seats hear besides the subwoofers (:func:`listening_cases`); the
+        deviations are those of the last case.
+    fs, own_filters, base_scale
+        As for :func:`plan_subwoofers`.
     """
-    n_pos, n_sub, _ = resp.shape
-    b = 0.0 if base is None else base
+    n_pos, n_sub, n_f = resp.shape
+    bases, scales = _cases(base, base_scale, n_pos, n_f)
+    b, s_last = bases[-1], scales[-1]
     eq, after = [], []
     for p in range(n_pos):
         keep = [q for q in range(n_pos) if q != p]
         w = None if weights is None else np.asarray(weights)[keep]
-        d, g, pol, _ = _search(resp[keep], freq_hz, w, None if base is None else base[keep])
-        lev_eq = seat_levels_db(
-            array_response(resp, freq_hz, np.zeros(n_sub), np.zeros(n_sub), [1] * n_sub) + b
+        d, g, pol, cuts, _ = _search(
+            resp[keep], freq_hz, w, (bases[:, keep], scales), fs, own_filters
         )
-        lev = seat_levels_db(array_response(resp, freq_hz, d, g, pol) + b)
+        lev_eq = seat_levels_db(
+            s_last * array_response(resp, freq_hz, np.zeros(n_sub), np.zeros(n_sub), [1] * n_sub)
+            + b
+        )
+        lev = seat_levels_db(s_last * array_response(resp, freq_hz, d, g, pol, cuts, fs) + b)
         eq.append(_held_out_deviation_db(lev_eq, p, weights))
         after.append(_held_out_deviation_db(lev, p, weights))
     return float(np.sqrt(np.mean(np.square(eq)))), float(np.sqrt(np.mean(np.square(after))))
@@ -337,6 +601,39 @@ def with_mains(
     return sub_resp * (k * lp), mains * hp
 
 
+def listening_cases(
+    sub_resp: np.ndarray,
+    mains_resp: np.ndarray,
+    freq_hz: np.ndarray,
+    crossover_hz: float,
+    fs: float,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The subwoofers as the seats hear them with each main alone and with all mains.
+
+    :func:`with_mains` for the crossover and the level match; with one main
+    driven, the subwoofers get ``1 / n_mains`` of its signal (the routes of
+    the bass management), with all mains driven the same bass (mono bass) the
+    sum of them, at the level of one main.
+
+    Returns
+    -------
+    resp : ndarray, shape (n_positions, n_subs, n_freqs)
+        The subwoofers through the low-pass and the level match.
+    bases : ndarray, shape (n_mains + 1, n_positions, n_freqs)
+        Each main alone through the high-pass, then all mains (last).
+    scales : ndarray, shape (n_mains + 1,)
+        The subwoofers' level in each case.
+    """
+    heard, both = with_mains(sub_resp, mains_resp, freq_hz, crossover_hz, fs)
+    _, hp = linkwitz_riley_response(freq_hz, crossover_hz, fs, 24)
+    n_mains = mains_resp.shape[1]
+    bases = np.concatenate([np.moveaxis(mains_resp * hp, 1, 0), both[None]])
+    scales = np.concatenate([np.full(n_mains, 1.0 / n_mains), [1.0]])
+    if n_mains == 1:  # one main: alone and 'all' are the same case
+        bases, scales = bases[-1:], scales[-1:]
+    return heard, bases, scales
+
+
 def plan_subwoofers(
     resp: np.ndarray,
     freq_hz: np.ndarray,
@@ -345,6 +642,9 @@ def plan_subwoofers(
     weights: np.ndarray | None = None,
     predict: bool = True,
     base: np.ndarray | None = None,
+    fs: float = 48000.0,
+    own_filters: bool = True,
+    base_scale: np.ndarray | None = None,
 ) -> SubArrayPlan:
     """Delay, level (cut only) and polarity of every subwoofer for the least seat-to-seat spread.
 
@@ -359,9 +659,22 @@ def plan_subwoofers(
     weights : ndarray, shape (n_positions,), optional
     predict : bool
         Also compute the leave-one-position-out prediction (three positions or more).
-    base : ndarray, shape (n_positions, n_freqs), complex, optional
-        What the seats hear besides the subwoofers, added to their sum in every
-        figure (the mains through their high-pass: :func:`with_mains`).
+    base : ndarray, shape (n_positions, n_freqs) or (n_cases, n_positions, n_freqs), optional
+        What the seats hear besides the subwoofers, added to their sum (the mains
+        through their high-pass). Several listening cases (:func:`listening_cases`:
+        each main alone, then all mains) are judged together, the cost being their
+        mean; the figures reported are those of the last case.
+    base_scale : ndarray, shape (n_cases,), optional
+        The subwoofers' level in each case (1 / number of mains with one main
+        driven, 1 with all; ones when not given).
+    fs : float
+        Sample rate the own cuts are judged at (the delivered ones are designed
+        at every output rate; below a few hundred hertz they agree closely).
+    own_filters : bool
+        Also choose each subwoofer's own cuts (at most :data:`MAX_CUTS`, each
+        :data:`CUT_DEPTHS_DB` deep and :data:`CUT_Q` wide, charged
+        :data:`CUT_COST_DB_PER_DB` per dB), alternating with delay, level and
+        polarity until nothing improves.
 
     Returns
     -------
@@ -371,29 +684,28 @@ def plan_subwoofers(
     ----------
     .. [1] T. Welti and A. Devantier, JAES 54(5), 2006.
     """
-    n_pos, n_sub, _ = resp.shape
-    delay, gain, pol, evals = _search(resp, freq_hz, weights, base)
-    b = 0.0 if base is None else base
+    n_pos, n_sub, n_f = resp.shape
+    cases = _cases(base, base_scale, n_pos, n_f)
+    delay, gain, pol, cuts, evals = _search(resp, freq_hz, weights, cases, fs, own_filters)
+    b, s_last = cases[0][-1], cases[1][-1]
     zeros = np.zeros(n_sub)
-    spread_eq = float(
-        seat_spread_db(
-            seat_levels_db(array_response(resp, freq_hz, zeros, zeros, [1] * n_sub) + b), weights
-        )
-    )
-    spread = float(
-        seat_spread_db(seat_levels_db(array_response(resp, freq_hz, delay, gain, pol) + b), weights)
-    )
-    single = seat_spread_db(seat_levels_db(np.moveaxis(resp, 1, 0) + b), weights)
+    equal = array_response(resp, freq_hz, zeros, zeros, [1] * n_sub)
+    spread_eq = float(seat_spread_db(seat_levels_db(s_last * equal + b), weights))
+    chosen = array_response(resp, freq_hz, delay, gain, pol, cuts, fs)
+    spread = float(seat_spread_db(seat_levels_db(s_last * chosen + b), weights))
+    single = seat_spread_db(seat_levels_db(s_last * np.moveaxis(resp, 1, 0) + b), weights)
     loo_eq = loo_after = None
     if predict and n_pos >= 3:
-        loo_eq, loo_after = leave_one_out_spread_db(resp, freq_hz, weights, base)
+        loo_eq, loo_after = leave_one_out_spread_db(
+            resp, freq_hz, weights, base, fs, own_filters, base_scale
+        )
     return SubArrayPlan(
         names=list(names),
         channels=list(channels),
         delay_s=delay,
         gain_db=gain,
         polarity=pol,
-        filter=["none"] * n_sub,
+        filter=[describe_cuts(c) for c in cuts],
         spread_equal_db=spread_eq,
         spread_after_db=spread,
         spread_single_db=np.asarray(single, dtype=float),
@@ -403,4 +715,5 @@ def plan_subwoofers(
         band_hz=(float(freq_hz[0]), float(freq_hz[-1])),
         n_evaluations=evals,
         freq_hz=freq_hz,
+        cuts=[list(c) for c in cuts],
     )
