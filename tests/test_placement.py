@@ -312,3 +312,43 @@ def test_layout_show_without_a_layout_says_how(tmp_path, capsys, monkeypatch):
     assert "roomcorr layout set" in capsys.readouterr().err
     assert main(["layout", "set", "--seat", "1,1,1"]) == 2
     assert "needs --size" in capsys.readouterr().err
+
+
+def test_calibration_recovers_known_walls_corner_and_position():
+    # A synthetic case from independent code: pyroomacoustics' ShoeBox (Allen and Berkley
+    # image method) with a known absorption per surface, a known 4th-order Butterworth
+    # high-pass as the loudspeaker (scipy), and a loudspeaker taped 4 cm / 3 cm off.
+    # The fit must find the walls, the corner and the position again.
+    import pyroomacoustics as pra
+    from scipy.signal import butter, resample_poly, sosfilt
+
+    from roomcorr.placement.model import calibrate
+
+    dims = [4.8, 5.9, 2.6]
+    alpha = [0.12, 0.18, 0.25, 0.3, 0.2, 0.1]  # left, right, front, back, floor, ceiling
+    spk = np.array([[1.3, 0.8, 1.0]])
+    seat = np.array([2.4, 3.5, 1.1])
+    mics = np.array([seat + o for o in ([0, 0, 0], [-0.3, 0.1, 0], [0.3, -0.1, 0.05],
+                                        [0.1, 0.35, 0], [-0.1, -0.3, 0.05])])
+    walls = ["west", "east", "south", "north", "floor", "ceiling"]
+    room = pra.ShoeBox(dims, fs=8000, max_order=36, air_absorption=False,
+                       materials={w: pra.Material(a) for w, a in zip(walls, alpha, strict=True)})
+    room.add_source(spk[0])
+    room.add_microphone_array(mics.T)
+    hpf = pra.constants.get("rir_hpf_enable")
+    pra.constants.set("rir_hpf_enable", False)  # its own 10 Hz high-pass is not causal
+    try:
+        room.compute_rir()
+    finally:
+        pra.constants.set("rir_hpf_enable", hpf)
+    n = min(len(r[0]) for r in room.rir)
+    irs = np.array([[r[0][:n]] for r in room.rir])
+    irs = sosfilt(butter(4, 48.0, "high", fs=8000, output="sos"), irs, axis=-1)
+    irs = resample_poly(irs, 6, 1, axis=-1)
+    taped = spk + np.array([[0.04, -0.03, 0.0]])
+    model = calibrate(irs, 48000, tuple(dims), taped, mics, ["left"], leave_one_out=False)
+    fitted_alpha = 1 - model.beta**2
+    np.testing.assert_allclose(fitted_alpha, alpha, atol=0.03)
+    assert model.corner_hz[0] == pytest.approx(48.0, rel=0.05)
+    assert np.linalg.norm(model.speakers_m[0, :2] - spk[0, :2]) < 0.015
+    assert model.fit_error_db < 1.0

@@ -9,6 +9,7 @@ References
 from __future__ import annotations
 
 import itertools
+import math
 
 import numpy as np
 
@@ -138,3 +139,169 @@ def early_spectrum(
         gain = float(np.prod(beta ** np.asarray(counts))) / (4.0 * np.pi * r)
         early += gain * wall**order * np.exp(-2j * np.pi * freq_hz * r / c)
     return early
+
+
+# --------------------------------------------------------------------------- full image lattice
+
+#: Default ratio of the weakest image kept to the direct sound (amplitude), after Allen and
+#: Berkley's truncation by reflection order.
+IMAGE_FLOOR = 1e-3
+#: Highest reflection order a lattice is built to (about 1.2 million images).
+MAX_IMAGE_ORDER = 60
+#: Moments of the fractional delay kept by :func:`lattice_spectra` (Taylor terms).
+_N_MOMENTS = 4
+
+
+def image_lattice(max_order: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Every image of a rectangular room up to a total reflection order, by index.
+
+    An image is an integer vector ``q`` with ``|q_x| + |q_y| + |q_z| <= max_order``;
+    along each axis ``q = 2m − p`` (``p ∈ {0, 1}``) is Allen and Berkley's pair
+    (eq. 10): the image coordinate is ``(1 − 2p) x0 + 2 m L`` and it has met the wall
+    at 0 ``|m − p|`` times and the wall at ``L`` ``|m|`` times (``|q|`` in all).
+
+    Parameters
+    ----------
+    max_order : int
+
+    Returns
+    -------
+    sign : ndarray, shape (n_images, 3)
+        ``1 − 2p`` per axis.
+    shift : ndarray, shape (n_images, 3)
+        ``2m`` per axis (times the room's extent gives the offset, m).
+    counts : ndarray, shape (n_images, 6)
+        Reflections on each wall in :data:`WALL_INDEX` order.
+
+    References
+    ----------
+    .. [1] J. B. Allen and D. A. Berkley, JASA 65(4), 1979, eq. 10.
+    """
+    r = np.arange(-max_order, max_order + 1)
+    q = np.stack(np.meshgrid(r, r, r, indexing="ij"), axis=-1).reshape(-1, 3)
+    q = q[np.abs(q).sum(axis=1) <= max_order]
+    p = np.mod(q, 2)
+    m = (q + p) // 2
+    counts = np.empty((q.shape[0], 6), dtype=np.int64)
+    counts[:, 0::2] = np.abs(m - p)
+    counts[:, 1::2] = np.abs(m)
+    return (1 - 2 * p).astype(float), (2 * m).astype(float), counts
+
+
+def image_order_for(beta: np.ndarray, dims: np.ndarray, floor: float = IMAGE_FLOOR,
+                    direct_m: float = 1.0) -> int:
+    """Lowest reflection order at which every further image is below ``floor`` of the direct.
+
+    An image of order ``n`` is at least ``n`` times the room's smallest extent away
+    and carries at most ``g^n`` with ``g`` the largest geometric mean of the two
+    reflection factors of one pair of walls; its amplitude relative to a direct
+    sound at ``direct_m`` is then at most ``g^n direct_m / (n L_min)``.
+
+    Returns
+    -------
+    int
+        Between 1 and :data:`MAX_IMAGE_ORDER`.
+    """
+    b = np.clip(np.asarray(beta, dtype=float), 0.0, 1.0)
+    g = float(np.max(np.sqrt(b[0::2] * b[1::2])))
+    l_min = float(np.min(dims))
+    for n in range(1, MAX_IMAGE_ORDER + 1):
+        if g**n * direct_m / (n * l_min) < floor:
+            return n
+    return MAX_IMAGE_ORDER
+
+
+def lattice_weights(counts: np.ndarray, beta: np.ndarray) -> np.ndarray:
+    """Product of the walls' reflection factors over each image's reflections.
+
+    Parameters
+    ----------
+    counts : ndarray, shape (n_images, 6)
+    beta : ndarray, shape (6,)
+        Pressure reflection factor of each wall (0 < β <= 1), :data:`WALL_INDEX` order.
+
+    Returns
+    -------
+    ndarray, shape (n_images,)
+    """
+    log_beta = np.log(np.clip(np.asarray(beta, dtype=float), 1e-12, 1.0))
+    return np.exp(counts @ log_beta)
+
+
+def lattice_spectra(
+    src: np.ndarray,
+    mics: np.ndarray,
+    dims: np.ndarray,
+    lattice: tuple[np.ndarray, np.ndarray, np.ndarray],
+    weights: np.ndarray,
+    c: float,
+    step_hz: float,
+    f_max_hz: float,
+    wall_derivatives: bool = False,
+) -> tuple[np.ndarray, ...]:
+    """Image-source transfer function ``Σ w e^{−jωr/c} / (4πr)`` on a uniform grid.
+
+    The sum is exact up to the lattice's order: each image's delay is split into a
+    whole number of samples at a rate ``fs = 8 f_max`` and a fraction ``d`` of at
+    most half a sample; ``e^{−jΩd}`` is expanded to four Taylor terms (error below
+    ``(π/8)⁴/24 ≈ 1e-3`` at ``f_max``), so the sum becomes four weighted histograms
+    of the delays and their discrete Fourier transforms. Sampling the spectrum
+    every ``step_hz`` folds the histograms modulo ``fs / step_hz`` samples, which
+    changes nothing at those frequencies.
+
+    Parameters
+    ----------
+    src : ndarray, shape (3,)
+    mics : ndarray, shape (n_mics, 3)
+    dims : ndarray, shape (3,)
+    lattice : from :func:`image_lattice`
+    weights : ndarray, shape (n_images,)
+        From :func:`lattice_weights`.
+    c : float
+        Speed of sound, m/s.
+    step_hz, f_max_hz : float
+        Frequency spacing and the highest frequency wanted.
+
+    Returns
+    -------
+    freq_hz : ndarray, shape (n_freqs,)
+        ``0, step_hz, ..., >= f_max_hz``.
+    h : ndarray, shape (n_mics, n_freqs), complex
+        Pressure per unit source (free field ``1 / (4π r)``).
+
+    References
+    ----------
+    .. [1] J. B. Allen and D. A. Berkley, JASA 65(4), 1979.
+    """
+    sign, shift, counts = lattice
+    mics = np.atleast_2d(np.asarray(mics, dtype=float))
+    n_mics = mics.shape[0]
+    n_fft = 1 << int(np.ceil(np.log2(8.0 * f_max_hz / step_hz)))
+    fs = n_fft * step_hz
+    n_f = int(np.floor(f_max_hz / step_hz)) + 2
+    pos = sign * np.asarray(src, dtype=float) + shift * np.asarray(dims, dtype=float)
+    d = pos[None, :, :] - mics[:, None, :]
+    r = np.sqrt(np.einsum("mij,mij->mi", d, d))  # (n_mics, n_images)
+    tau = r * (fs / c)
+    whole = np.rint(tau)
+    frac = tau - whole
+    idx = (whole.astype(np.int64) % n_fft) + (np.arange(n_mics) * n_fft)[:, None]
+    amp = np.asarray(weights, dtype=float)[None, :] / (4.0 * np.pi * r)
+    n_w = 7 if wall_derivatives else 1
+    moments = np.empty((n_w, _N_MOMENTS, n_mics * n_fft))
+    flat = idx.ravel()
+    term = amp
+    for k in range(_N_MOMENTS):
+        moments[0, k] = np.bincount(flat, term.ravel(), minlength=n_mics * n_fft)
+        for w in range(1, n_w):
+            moments[w, k] = np.bincount(flat, (term * counts[None, :, w - 1]).ravel(),
+                                        minlength=n_mics * n_fft)
+        term = term * frac
+    spec = np.fft.rfft(moments.reshape(n_w, _N_MOMENTS, n_mics, n_fft), axis=-1)[..., :n_f]
+    omega = 2.0 * np.pi * np.arange(n_f) / n_fft
+    taylor = np.stack([(-1j * omega) ** k / math.factorial(k) for k in range(_N_MOMENTS)])
+    h = np.einsum("wkmf,kf->wmf", spec, taylor)
+    freq = np.arange(n_f) * step_hz
+    if wall_derivatives:
+        return freq, h[0], h[1:]
+    return freq, h[0]
