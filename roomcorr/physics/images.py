@@ -238,16 +238,17 @@ def lattice_spectra(
     step_hz: float,
     f_max_hz: float,
     wall_derivatives: bool = False,
+    source_derivatives: bool = False,
 ) -> tuple[np.ndarray, ...]:
     """Image-source transfer function ``Σ w e^{−jωr/c} / (4πr)`` on a uniform grid.
 
     The sum is exact up to the lattice's order: each image's delay is split into a
-    whole number of samples at a rate ``fs = 8 f_max`` and a fraction ``d`` of at
+    whole number of samples at a rate ``fs >= 8 f_max`` and a fraction ``d`` of at
     most half a sample; ``e^{−jΩd}`` is expanded to four Taylor terms (error below
     ``(π/8)⁴/24 ≈ 1e-3`` at ``f_max``), so the sum becomes four weighted histograms
     of the delays and their discrete Fourier transforms. Sampling the spectrum
     every ``step_hz`` folds the histograms modulo ``fs / step_hz`` samples, which
-    changes nothing at those frequencies.
+    changes nothing at those frequencies. Derivatives (for a fit) keep two terms.
 
     Parameters
     ----------
@@ -261,6 +262,12 @@ def lattice_spectra(
         Speed of sound, m/s.
     step_hz, f_max_hz : float
         Frequency spacing and the highest frequency wanted.
+    wall_derivatives : bool
+        Also return the derivative of ``h`` with respect to ``ln β`` of each wall
+        (each image's term times its number of reflections on that wall).
+    source_derivatives : bool
+        Also return the derivative of ``h`` with respect to the source's x and y, m⁻¹:
+        each term times ``(−jω/c − 1/r) ∂r/∂x``.
 
     Returns
     -------
@@ -268,6 +275,10 @@ def lattice_spectra(
         ``0, step_hz, ..., >= f_max_hz``.
     h : ndarray, shape (n_mics, n_freqs), complex
         Pressure per unit source (free field ``1 / (4π r)``).
+    dh_wall : ndarray, shape (6, n_mics, n_freqs), complex
+        Only with ``wall_derivatives``.
+    dh_src : ndarray, shape (2, n_mics, n_freqs), complex
+        Only with ``source_derivatives``.
 
     References
     ----------
@@ -285,23 +296,31 @@ def lattice_spectra(
     tau = r * (fs / c)
     whole = np.rint(tau)
     frac = tau - whole
-    idx = (whole.astype(np.int64) % n_fft) + (np.arange(n_mics) * n_fft)[:, None]
+    flat = ((whole.astype(np.int64) % n_fft) + (np.arange(n_mics) * n_fft)[:, None]).ravel()
     amp = np.asarray(weights, dtype=float)[None, :] / (4.0 * np.pi * r)
-    n_w = 7 if wall_derivatives else 1
-    moments = np.empty((n_w, _N_MOMENTS, n_mics * n_fft))
-    flat = idx.ravel()
-    term = amp
-    for k in range(_N_MOMENTS):
-        moments[0, k] = np.bincount(flat, term.ravel(), minlength=n_mics * n_fft)
-        for w in range(1, n_w):
-            moments[w, k] = np.bincount(flat, (term * counts[None, :, w - 1]).ravel(),
-                                        minlength=n_mics * n_fft)
-        term = term * frac
-    spec = np.fft.rfft(moments.reshape(n_w, _N_MOMENTS, n_mics, n_fft), axis=-1)[..., :n_f]
+    size = n_mics * n_fft
     omega = 2.0 * np.pi * np.arange(n_f) / n_fft
-    taylor = np.stack([(-1j * omega) ** k / math.factorial(k) for k in range(_N_MOMENTS)])
-    h = np.einsum("wkmf,kf->wmf", spec, taylor)
+
+    def transform(values: list[np.ndarray], n_terms: int) -> np.ndarray:
+        """Σ over images of value · e^{−jωτ}, for each array in ``values``."""
+        hist = np.empty((len(values), n_terms, size))
+        for v, val in enumerate(values):
+            term = val
+            for k in range(n_terms):
+                hist[v, k] = np.bincount(flat, term.ravel(), minlength=size)
+                if k + 1 < n_terms:
+                    term = term * frac
+        spec = np.fft.rfft(hist.reshape(len(values), n_terms, n_mics, n_fft), axis=-1)
+        taylor = np.stack([(-1j * omega) ** k / math.factorial(k) for k in range(n_terms)])
+        return np.einsum("vkmf,kf->vmf", spec[..., :n_f], taylor)
+
     freq = np.arange(n_f) * step_hz
+    out: list[np.ndarray] = [freq, transform([amp], _N_MOMENTS)[0]]
     if wall_derivatives:
-        return freq, h[0], h[1:]
-    return freq, h[0]
+        out.append(transform([amp * counts[None, :, w] for w in range(6)], 2))
+    if source_derivatives:
+        dr = [d[..., a] * sign[None, :, a] / r for a in (0, 1)]  # ∂r/∂src_a
+        parts = transform([amp * g for g in dr] + [amp * g / r for g in dr], 2)
+        jw_c = -2j * np.pi * freq / c
+        out.append(np.stack([jw_c * parts[a] - parts[2 + a] for a in (0, 1)]))
+    return tuple(out)

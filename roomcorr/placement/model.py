@@ -259,20 +259,24 @@ def _spectra(size_m: np.ndarray, speakers_m: np.ndarray, mics_m: np.ndarray, bet
 def _room_db(size_m: np.ndarray, speakers_m: np.ndarray, mics_m: np.ndarray, beta: np.ndarray,
              order: int, c: float, grid: np.ndarray, width_oct: float = FIT_SMOOTH_OCT,
              derivatives: bool = False) -> np.ndarray | tuple[np.ndarray, np.ndarray]:
-    """Smoothed room level (n_spk, n_mics, n_freqs) on ``grid``, dB; with ``derivatives``
-    also its derivative with respect to ``ln β`` of each wall, (6, n_spk, n_mics, n_freqs)."""
+    """Smoothed room level (n_spk, n_mics, n_freqs) on ``grid``, dB.
+
+    With ``derivatives`` also the level's derivative with respect to ``ln β`` of each
+    wall and to each loudspeaker's own x and y, shape (8, n_spk, n_mics, n_freqs).
+    """
     lat = _lattice(int(order))
     w = lattice_weights(lat[2], beta)
     levels, slopes = [], []
     for src in speakers_m:
         res = lattice_spectra(src, mics_m, size_m, lat, w, c, MODEL_STEP_HZ, _f_top(),
-                              wall_derivatives=derivatives)
+                              wall_derivatives=derivatives, source_derivatives=derivatives)
         freq, h = res[0][1:], res[1][..., 1:]
         p = np.maximum(smooth_bins_to_grid(np.abs(h) ** 2, freq, grid, width_oct), 1e-30)
         levels.append(10 * np.log10(p))
         if derivatives:
-            dp = smooth_bins_to_grid(2.0 * np.real(np.conj(h)[None] * res[2][..., 1:]), freq,
-                                     grid, width_oct)
+            dh = np.concatenate([res[2], res[3]])[..., 1:]
+            dp = smooth_bins_to_grid(2.0 * np.real(np.conj(h)[None] * dh), freq, grid,
+                                     width_oct)
             slopes.append(10.0 / np.log(10.0) * dp / p[None])
     if derivatives:
         return np.stack(levels), np.stack(slopes, axis=1)
@@ -352,15 +356,15 @@ def _fit(
                                offsets[:, :2].ravel() / POSITION_SIGMA_M / np.sqrt(n_spk * 2)])
 
     def jac(theta: np.ndarray) -> np.ndarray:
-        beta, corner, offsets = _unpack(theta, n_spk)
-        room, droom = room_of(theta, derivatives=True)
+        beta, corner, _ = _unpack(theta, n_spk)
+        _, droom = room_of(theta, derivatives=True)
         base = residual(theta)
         jm = np.zeros((base.size, theta.size))
         # walls: d(ln β)/dθ = ln β (θ = log(−ln β)); r = P⊥(measured − room)
-        for s in range(n_spk):
-            proj = _projector(grid, corner[s], n_pos)
-            rows = slice(s * n_pos * grid.size, (s + 1) * n_pos * grid.size)
-            d = droom[:, s].reshape(6, -1).T * np.log(beta)[None, :]
+        for sp in range(n_spk):
+            proj = _projector(grid, corner[sp], n_pos)
+            rows = slice(sp * n_pos * grid.size, (sp + 1) * n_pos * grid.size)
+            d = droom[:6, sp].reshape(6, -1).T * np.log(beta)[None, :]
             jm[rows, :6] = -scale * (proj @ d)
         # corners: the room does not change (cheap differences)
         for i in range(6, 6 + n_spk):
@@ -368,20 +372,16 @@ def _fit(
             th = theta.copy()
             th[i] += step
             jm[:, i] = (residual(th) - base) / step
-        # offsets: only that loudspeaker's room changes
-        for s in range(n_spk):
-            for ax in range(2):
-                i = 6 + n_spk + 2 * s + ax
-                if not fit_offsets:
-                    continue
-                step = 1e-3
-                moved = geom.speakers_m[s:s + 1] + offsets[s:s + 1]
-                moved[0, ax] += step
-                alt = _room_db(geom.size_m, moved, geom.mics_m, beta, order, c, grid)[0]
-                proj = _projector(grid, corner[s], n_pos)
-                rows = slice(s * n_pos * grid.size, (s + 1) * n_pos * grid.size)
-                jm[rows, i] = -scale * (proj @ ((alt - room[s]).ravel() / step))
-                jm[n_res + 2 * s + ax, i] = 1.0 / POSITION_SIGMA_M / np.sqrt(n_spk * 2)
+        # offsets: analytic too (d level / d source x, y)
+        if fit_offsets:
+            for sp in range(n_spk):
+                proj = _projector(grid, corner[sp], n_pos)
+                rows = slice(sp * n_pos * grid.size, (sp + 1) * n_pos * grid.size)
+                cols = slice(6 + n_spk + 2 * sp, 8 + n_spk + 2 * sp)
+                jm[rows, cols] = -scale * (proj @ droom[6:8, sp].reshape(2, -1).T)
+                for ax in range(2):
+                    jm[n_res + 2 * sp + ax, 6 + n_spk + 2 * sp + ax] = (
+                        1.0 / POSITION_SIGMA_M / np.sqrt(n_spk * 2))
         return jm
 
     a_lo, a_hi = ALPHA_RANGE
@@ -490,12 +490,13 @@ def calibrate(
     geom = Geometry(size, spk, mics)
     alpha0 = float(np.clip(eyring_alpha(initial_t60_s(irs, fs), size), *ALPHA_RANGE))
     beta0 = np.full(6, beta_from_alpha(alpha0))
-    # the image order of the measured decay; it stays fixed during the fit
-    order = image_order_for(beta0, size)
     theta0 = np.concatenate([_beta_theta(beta0), np.full(n_spk, np.log(40.0)),
                              np.zeros(2 * n_spk)])
-    # Walls and corners first (positions fixed), then everything.
-    theta, coef, room = _fit(meas, geom, c, order, theta0, max_nfev, fit_offsets=False)
+    # Walls and corners first (positions fixed) with the images the measured decay asks
+    # for, then everything with the images the fitted walls ask for.
+    theta, coef, room = _fit(meas, geom, c, image_order_for(beta0, size), theta0,
+                             max(3, max_nfev // 2), fit_offsets=False)
+    order = image_order_for(_unpack(theta, n_spk)[0], size)
     theta, coef, room = _fit(meas, geom, c, order, theta, max_nfev)
     beta, corner, offsets = _unpack(theta, n_spk)
     pred = room + np.stack([_basis(grid, fc) @ k for fc, k in zip(corner, coef,
@@ -513,7 +514,7 @@ def calibrate(
         for k in range(n_pos):
             keep = np.arange(n_pos) != k
             g_k = Geometry(size, spk, mics[keep])
-            th_k, coef_k, _ = _fit(meas[:, keep], g_k, c, order, theta, max(3, max_nfev // 3))
+            th_k, coef_k, _ = _fit(meas[:, keep], g_k, c, order, theta, max(2, max_nfev // 4))
             b_k, c_k, o_k = _unpack(th_k, n_spk)
             m_k = replace(model, speakers_m=spk + o_k, beta=b_k, corner_hz=c_k,
                           speaker_coef=coef_k)
