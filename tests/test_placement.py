@@ -152,7 +152,12 @@ def pra_room(tmp_path_factory):
         for s in speakers:
             room.add_source(s)
         room.add_microphone_array(np.array(mic_list).T)
-        room.compute_rir()
+        hpf = pra.constants.get("rir_hpf_enable")
+        pra.constants.set("rir_hpf_enable", False)  # its 10 Hz high-pass is not causal
+        try:
+            room.compute_rir()
+        finally:
+            pra.constants.set("rir_hpf_enable", hpf)
         n = min(len(r) for row in room.rir for r in row)
         irs = np.array([[room.rir[m][s][:n] for s in range(len(speakers))]
                         for m in range(len(mic_list))])
@@ -197,7 +202,7 @@ def test_predict_after_a_move_beats_nothing_changed(pra_room, tmp_path, capsys):
     truth = levels(after[0], 48000)
     ours = err(levels(pred.T, 48000), truth)
     unchanged = err(levels(before[0], 48000), truth)
-    assert ours < 0.8 * unchanged
+    assert ours < 0.5 * unchanged  # the figure for a move
     assert '"leave_one_out_error_db"' in capsys.readouterr().out
 
 
