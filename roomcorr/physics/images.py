@@ -291,12 +291,20 @@ def lattice_spectra(
     fs = n_fft * step_hz
     n_f = int(np.floor(f_max_hz / step_hz)) + 2
     pos = sign * np.asarray(src, dtype=float) + shift * np.asarray(dims, dtype=float)
-    d = pos[None, :, :] - mics[:, None, :]
-    r = np.sqrt(np.einsum("mij,mij->mi", d, d))  # (n_mics, n_images)
+    if source_derivatives:
+        d = pos[None, :, :] - mics[:, None, :]
+        r = np.sqrt(np.einsum("mij,mij->mi", d, d))  # (n_mics, n_images)
+    else:  # |p − m|² = |p|² − 2 p·m + |m|², one matrix product
+        r2 = (np.einsum("ij,ij->i", pos, pos)[None, :] - 2.0 * (mics @ pos.T)
+              + np.einsum("ij,ij->i", mics, mics)[:, None])
+        r = np.sqrt(np.maximum(r2, 1e-12))
     tau = r * (fs / c)
     whole = np.rint(tau)
     frac = tau - whole
-    flat = ((whole.astype(np.int64) % n_fft) + (np.arange(n_mics) * n_fft)[:, None]).ravel()
+    bins = whole.astype(np.int64)
+    if bins.max() >= n_fft:  # longer than 1 / step_hz: fold (the spectrum is sampled)
+        bins %= n_fft
+    flat = (bins + (np.arange(n_mics) * n_fft)[:, None]).ravel()
     amp = np.asarray(weights, dtype=float)[None, :] / (4.0 * np.pi * r)
     size = n_mics * n_fft
     omega = 2.0 * np.pi * np.arange(n_f) / n_fft
