@@ -3,11 +3,14 @@
 from __future__ import annotations
 
 import numpy as np
+import pyroomacoustics as pra
 import pytest
 import soundfile as sf
+from scipy.signal import butter, resample_poly, sosfilt
 
 from roomcorr.cli import main
 from roomcorr.errors import SettingsError
+from roomcorr.physics import image_order_for
 from roomcorr.placement import causes
 from roomcorr.placement.layout import (
     Layout,
@@ -16,6 +19,7 @@ from roomcorr.placement.layout import (
     read_layout,
     write_layout,
 )
+from roomcorr.placement.model import calibrate, measured_levels_db
 
 C = 343.0
 
@@ -134,9 +138,6 @@ def test_reflection_delay_found_in_an_impulse_response():
 @pytest.fixture(scope="module")
 def pra_room(tmp_path_factory):
     """A room simulated by pyroomacoustics (image sources, independent of our model)."""
-    import pyroomacoustics as pra
-    from scipy.signal import butter, resample_poly, sosfilt
-
     folder = tmp_path_factory.mktemp("pra")
     dims = [4.6, 5.8, 2.5]
     spk = [[1.2, 0.7, 1.0], [3.4, 0.7, 1.0]]
@@ -179,8 +180,6 @@ def pra_room(tmp_path_factory):
 def test_predict_after_a_move_beats_nothing_changed(pra_room, tmp_path, capsys):
     # The prediction is checked against pyroomacoustics (Allen and Berkley image sources),
     # not against our own model: both loudspeakers 0.6 m further from the front wall.
-    from roomcorr.placement.model import measured_levels_db
-
     folder, before, after = pra_room
     out = tmp_path / "pred.wav"
     code = main(["predict", *sorted(str(p) for p in folder.glob("pos*.wav")), "--layout",
@@ -326,12 +325,6 @@ def test_calibration_recovers_known_walls_corner_and_position():
     # The fit must find the walls, the corner and the position again. pyroomacoustics sums
     # the images to the order the model uses for these walls, so that the check is of the
     # fit, not of where either sum stops (that costs up to 0.03 in α: docs, room model).
-    import pyroomacoustics as pra
-    from scipy.signal import butter, resample_poly, sosfilt
-
-    from roomcorr.physics import image_order_for
-    from roomcorr.placement.model import calibrate
-
     dims = [4.8, 5.9, 2.6]
     alpha = [0.12, 0.18, 0.25, 0.3, 0.2, 0.1]  # left, right, front, back, floor, ceiling
     spk = np.array([[1.3, 0.8, 1.0]])
