@@ -150,6 +150,8 @@ IMAGE_FLOOR = 1e-3
 MAX_IMAGE_ORDER = 60
 #: Moments of the fractional delay kept by :func:`lattice_spectra` (Taylor terms).
 _N_MOMENTS = 4
+#: Most receiver-image pairs :func:`lattice_spectra` holds at once (about 16 MB an array).
+_MAX_ELEMENTS = 1 << 21
 
 
 def image_lattice(max_order: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -287,6 +289,14 @@ def lattice_spectra(
     sign, shift, counts = lattice
     mics = np.atleast_2d(np.asarray(mics, dtype=float))
     n_mics = mics.shape[0]
+    per_call = max(1, _MAX_ELEMENTS // max(1, sign.shape[0]))
+    if n_mics > per_call:  # a few receivers at a time: memory stays bounded
+        parts = [lattice_spectra(src, mics[i:i + per_call], dims, lattice, weights, c, step_hz,
+                                 f_max_hz, wall_derivatives, source_derivatives)
+                 for i in range(0, n_mics, per_call)]
+        joined: list[np.ndarray] = [parts[0][0], np.concatenate([q[1] for q in parts])]
+        joined += [np.concatenate([q[k] for q in parts], axis=1) for k in range(2, len(parts[0]))]
+        return tuple(joined)
     n_fft = 1 << int(np.ceil(np.log2(8.0 * f_max_hz / step_hz)))
     fs = n_fft * step_hz
     n_f = int(np.floor(f_max_hz / step_hz)) + 2
