@@ -146,7 +146,7 @@ def early_spectrum(
 #: Default ratio of the weakest image kept to the direct sound (amplitude), after Allen and
 #: Berkley's truncation by reflection order.
 IMAGE_FLOOR = 1e-3
-#: Highest reflection order a lattice is built to (about 1.2 million images).
+#: Highest reflection order a lattice is built to (295,000 images).
 MAX_IMAGE_ORDER = 60
 #: Moments of the fractional delay kept by :func:`lattice_spectra` (Taylor terms).
 _N_MOMENTS = 4
@@ -184,7 +184,7 @@ def image_lattice(max_order: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     q = q[np.abs(q).sum(axis=1) <= max_order]
     p = np.mod(q, 2)
     m = (q + p) // 2
-    counts = np.empty((q.shape[0], 6), dtype=np.int64)
+    counts = np.empty((q.shape[0], 6), dtype=np.int16)  # at most MAX_IMAGE_ORDER
     counts[:, 0::2] = np.abs(m - p)
     counts[:, 1::2] = np.abs(m)
     return (1 - 2 * p).astype(float), (2 * m).astype(float), counts

@@ -238,7 +238,7 @@ def _basis(grid_hz: np.ndarray, corner_hz: float) -> np.ndarray:
     return np.stack([np.ones_like(u), u, u**2, hp], axis=1)
 
 
-@lru_cache(maxsize=4)
+@lru_cache(maxsize=2)  # order 60: 295,000 images, 18 MB
 def _lattice(order: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     return image_lattice(order)
 
