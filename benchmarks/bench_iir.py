@@ -4,7 +4,7 @@ Both get the same correction curve (an invented room: five low-frequency modes,
 a boundary dip, a gentle treble rise, clipped to +4/-15 dB like the FIR path)
 and the same bounds, in the same run:
 
-* roomcorr: :func:`roomcorr.design.iir_fit.fit_sections` (greedy placement,
+* roomcorr: :func:`roomcorr.design.realise.iir_fit.fit_sections` (greedy placement,
   analytic Jacobian, joint bounded refinement, boost and float32 penalties);
 * baseline: ``scipy.optimize.least_squares`` (trf, finite-difference Jacobian)
   from a naive start: 10 peaking sections log-spaced over the band at 0 dB, Q 1.
@@ -21,8 +21,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from roomcorr.design import biquad as bq
-from roomcorr.design import iir_fit as fit
+from roomcorr.design.realise import biquad as bq
+from roomcorr.design.realise import iir_fit as fit
 from roomcorr.grid import log_grid
 
 try:

@@ -65,7 +65,7 @@ def main() -> None:
     import pyfar
     import scipy.signal
 
-    from roomcorr.design.minphase import fft_length, minimum_phase
+    from roomcorr.design.phase.minphase import fft_length, minimum_phase
 
     h = invented_room_response()
     n_fft = fft_length(h.size, 8)

@@ -21,7 +21,7 @@ peak-to-peak range of the group delay (1/12-octave smoothing):
   300 Hz that fitted the pre-ringing and magnitude limits.
 
 The group delay is read the same way as the design reads it
-(``roomcorr.design.mixedphase.windowed_group_delay_s``): 4 ms before to 16 ms
+(``roomcorr.design.phase.mixedphase.windowed_group_delay_s``): 4 ms before to 16 ms
 after the main peak (six periods of 300 Hz), but by the independent
 ``tests/mixedphase_sim.group_delay_s``.
 
@@ -49,7 +49,7 @@ from _util import best_of, print_table  # noqa: E402
 from mixedphase_sim import Room, Speaker, group_delay_s, simulate  # noqa: E402
 
 from roomcorr.audio_io import read_ir_set  # noqa: E402
-from roomcorr.design.mixedphase import (  # noqa: E402
+from roomcorr.design.phase.mixedphase import (  # noqa: E402
     magnitude_error_db,
     pre_ringing_db,
     within_tolerance,

@@ -45,9 +45,9 @@ from speaker_rooms import (  # noqa: E402
     summed_figures,
 )
 
-import roomcorr.design.align as align_mod  # noqa: E402
-from roomcorr.design.align import plan_system  # noqa: E402
-from roomcorr.design.crossover import region_mask  # noqa: E402
+import roomcorr.design.system.align as align_mod  # noqa: E402
+from roomcorr.design.system.align import plan_system  # noqa: E402
+from roomcorr.design.system.crossover import region_mask  # noqa: E402
 from roomcorr.pipeline import run_design  # noqa: E402
 from roomcorr.settings import Settings, design_from_dict  # noqa: E402
 

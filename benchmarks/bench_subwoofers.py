@@ -54,7 +54,7 @@ from scipy.signal import fftconvolve  # noqa: E402
 
 import roomcorr.pipeline as pipeline_mod  # noqa: E402
 from roomcorr.analysis.plausibility import impulse_response_problems  # noqa: E402
-from roomcorr.design.subwoofers import plan_subwoofers  # noqa: E402
+from roomcorr.design.system.subwoofers import plan_subwoofers  # noqa: E402
 from roomcorr.pipeline import run_design  # noqa: E402
 from roomcorr.settings import Settings, design_from_dict  # noqa: E402
 

@@ -345,14 +345,15 @@ def _report_decay_sections(run_dir: Path) -> None:
     """The report's decay and ringing sections of a design (figures included), as it makes them."""
     from roomcorr.deliver.export import load_design_curves
     from roomcorr.report import figures as fg
-    from roomcorr.report import html
+    from roomcorr.report.context import channel_of, report_context
+    from roomcorr.report.reverberation import decay_column, ringing_column
 
     curves = load_design_curves(run_dir)
-    ctx = html.report_context(curves, png=lambda fig: fg.png_bytes(fig, dpi=90))
+    ctx = report_context(curves, png=lambda fig: fg.png_bytes(fig, dpi=90))
     for ch in curves["channels"]:
-        x = html._channel(curves, ch, ctx)
-        html._decay_column(x, ctx)
-        html._ringing_column(x, ctx)
+        x = channel_of(curves, ch, ctx)
+        decay_column(x, ctx)
+        ringing_column(x, ctx)
 
 
 if __name__ == "__main__":

@@ -11,7 +11,9 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+import soundfile as sf
 
+from roomcorr.analysis.plausibility import impulse_response_problems
 from roomcorr.checked import checked_number, read_regular_bytes, regular_file
 from roomcorr.deliver.atomic import atomic_write_with
 from roomcorr.errors import InputFileError
@@ -37,7 +39,6 @@ def read_wav(path: str | Path) -> tuple[np.ndarray, int]:
     data : ndarray, shape (n_channels, n_samples)
     fs : int
     """
-    import soundfile as sf
 
     p = regular_file(path, "audio file")  # a FIFO or device would block for ever
     try:
@@ -59,7 +60,6 @@ def read_wav(path: str | Path) -> tuple[np.ndarray, int]:
 
 def write_wav(path: str | Path, data: np.ndarray, fs: int, subtype: str = "FLOAT") -> Path:
     """Write ``data`` (n_channels, n_samples) or (n_samples,) as WAV, atomically."""
-    import soundfile as sf
 
     arr = np.asarray(data, dtype=np.float64)
     frames = arr[:, None] if arr.ndim == 1 else arr.T
@@ -84,7 +84,6 @@ def _no_peak_chunk(f: Any) -> None:
     command exists only in libsndfile's C interface, which python-soundfile
     keeps as ``soundfile._snd``; where that is missing the chunk stays (harmless).
     """
-    import soundfile as sf
 
     snd, ffi = getattr(sf, "_snd", None), getattr(sf, "_ffi", None)
     handle = getattr(f, "_file", None)
@@ -157,7 +156,6 @@ def check_plausible(data: np.ndarray, fs: int, name: str) -> None:
     are :func:`roomcorr.analysis.plausibility.impulse_response_problems`; the
     message names the file, the channel and what looks wrong.
     """
-    from roomcorr.analysis.plausibility import impulse_response_problems
 
     for ch, x in enumerate(data):
         problems = impulse_response_problems(x, fs)

@@ -27,7 +27,7 @@ class _Parser(argparse.ArgumentParser):
 
 
 def _print_cautions() -> None:
-    from roomcorr.design.safety import CAUTIONS
+    from roomcorr.design.realise.safety import CAUTIONS
 
     for line in CAUTIONS:
         print(line, file=sys.stderr)
@@ -246,8 +246,11 @@ def settings_from_args(args: argparse.Namespace, base: Any = None) -> Any:
 
 
 def _print_area_lines(ch: Any) -> None:
-    """Bass limit and the leave-one-position-out prediction of one channel (design/area.py)."""
-    from roomcorr.design.area import area_fields_of
+    """Bass limit and the leave-one-position-out prediction of one channel.
+
+    See design/curve/area.py.
+    """
+    from roomcorr.design.curve.area import area_fields_of
     from roomcorr.report.summary import area_sentences
 
     for line in area_sentences(area_fields_of(ch), ch.name):
@@ -259,7 +262,7 @@ def _print_design_summary(result: Any, out: Path, entries: list[dict]) -> None:
 
     from roomcorr.deliver.export import read_manifest
     from roomcorr.deliver.figures import figures_of_manifest, fmt_db
-    from roomcorr.design.safety import PEAK_BAND
+    from roomcorr.design.realise.safety import PEAK_BAND
 
     # every figure from the manifest's figures block (one place per figure)
     manifest = read_manifest(out)
@@ -302,7 +305,7 @@ def _print_design_summary(result: Any, out: Path, entries: list[dict]) -> None:
     _print_causes(out)
     _print_system_summary(result)
     if result.mixed_phase is not None:
-        from roomcorr.design.mixedphase import latency_sentence
+        from roomcorr.design.phase.mixedphase import latency_sentence
 
         mp = result.mixed_phase
         print(latency_sentence(mp.latency_ms, mp.latency_samples))
@@ -1116,7 +1119,7 @@ def _run_ui(args: argparse.Namespace) -> int:
 
 
 def _add_apply(sub: Any) -> argparse.ArgumentParser:
-    from roomcorr.playback.render import LOWERED_PEAK_DBFS, SUBTYPES
+    from roomcorr.playback.limits import LOWERED_PEAK_DBFS, SUBTYPES
 
     p = sub.add_parser(
         "apply",

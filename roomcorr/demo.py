@@ -86,6 +86,7 @@ from collections.abc import Sequence
 from pathlib import Path
 
 import numpy as np
+import soundfile as sf
 
 from roomcorr.deliver.atomic import atomic_write_with
 from roomcorr.errors import OutputError
@@ -334,7 +335,6 @@ def write_demo_measurements(
     OutputError
         If the folder cannot be created or a file cannot be written.
     """
-    import soundfile as sf
 
     out = Path(folder)
     try:

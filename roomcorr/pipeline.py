@@ -22,14 +22,14 @@ from roomcorr.analysis.smoothing import smooth_log_grid, variable_width_oct
 from roomcorr.analysis.window import fdw_power
 from roomcorr.audio_io import read_curve_file
 from roomcorr.checked import regular_file
-from roomcorr.design.align import SystemPlan, apply_plan, plan_system, subwoofer_band_hz
-from roomcorr.design.area import Prediction, design_channel
-from roomcorr.design.correction import align_target, correction_curve
-from roomcorr.design.fir import default_n_taps, synthesize_fir, taps_for_latency
-from roomcorr.design.mixedphase import MixedPhaseDesign, apply_mixed_phase, latency_samples
-from roomcorr.design.safety import FilterStats, apply_safety, fit_under_cap
-from roomcorr.design.subwoofers import plan_subwoofers, spread_grid_hz, with_mains
-from roomcorr.design.target import AUTO_LIMITS_HZ, target_from_points, target_from_table
+from roomcorr.design.curve.area import Prediction, design_channel
+from roomcorr.design.curve.correction import align_target, correction_curve
+from roomcorr.design.curve.target import AUTO_LIMITS_HZ, target_from_points, target_from_table
+from roomcorr.design.phase.mixedphase import MixedPhaseDesign, apply_mixed_phase, latency_samples
+from roomcorr.design.realise.fir import default_n_taps, synthesize_fir, taps_for_latency
+from roomcorr.design.realise.safety import FilterStats, apply_safety, fit_under_cap
+from roomcorr.design.system.align import SystemPlan, apply_plan, plan_system, subwoofer_band_hz
+from roomcorr.design.system.subwoofers import plan_subwoofers, spread_grid_hz, with_mains
 from roomcorr.errors import InputFileError, SettingsError
 from roomcorr.grid import interp_log, log_grid, points_per_octave_of
 from roomcorr.settings import (
@@ -37,6 +37,7 @@ from roomcorr.settings import (
     Settings,
     find_preset,
     is_preset_name,
+    preset_names,
     read_toml,
     subwoofer_names,
 )
@@ -74,7 +75,7 @@ class ChannelDesign:
     boost_withheld_db: np.ndarray
     band_hz: tuple[float, float]
     #: The loudspeaker's low limit below which the drive is never raised, and how
-    #: it was found ("stated", "measured", "assumed"); see roomcorr.design.area.
+    #: it was found ("stated", "measured", "assumed"); see roomcorr.design.curve.area.
     speaker_low_hz: float | None = None
     speaker_low_how: str | None = None
     #: Leave-one-position-out prediction (None with fewer than three positions).
@@ -136,8 +137,6 @@ def resolve_target(freq_hz: np.ndarray, spec: str) -> np.ndarray:
         return target_from_table(freq_hz, table, str(preset))
     p = Path(spec)
     if is_preset_name(spec) and not p.exists():
-        from roomcorr.settings import preset_names
-
         raise SettingsError(
             f"--target {spec}: neither a preset ({', '.join(preset_names())}) nor a file"
         )
@@ -278,7 +277,7 @@ def analyse(
     measured, arrival = analyse_positions(irs, fs, freq, cal)
     # Broad balance from the steady state, detail from the window (analysis/balance.py);
     # the modal range's detail from the steady state too, except with a subwoofer,
-    # whose integration with the mains is planned on the windowed bass (design/align.py).
+    # whose integration with the mains is planned on the windowed bass (design/system/align.py).
     measured = steady_balance_set(irs, fs, freq, measured, arrival, modal_detail=not d.subwoofer)
     return Analysis(freq, fs, measured, arrival, weights, names)
 
@@ -293,7 +292,7 @@ def design_curves(
     channels: list[ChannelDesign] = []
     for c in range(measured.shape[1]):
         if names[c] == d.subwoofer:
-            # A subwoofer's band and level come from its own range (design/align.py).
+            # A subwoofer's band and level come from its own range (design/system/align.py).
             channels.append(
                 _subwoofer_channel(
                     c, names[c], freq, measured[:, c], arrival[:, c], weights, target_shape, d, fs
@@ -420,13 +419,13 @@ def _shifted(h: np.ndarray, n: int, n_out: int) -> np.ndarray:
 def _run_several_subwoofers(
     irs: np.ndarray, fs: int, settings: Settings, channel_names: list[str] | None
 ) -> DesignResult:
-    """Several subwoofers: chosen together, then designed as one source (design/subwoofers.py).
+    """Several subwoofers: chosen together, then designed as one source (design/system/).
 
     1. Each subwoofer's delay, level (cut only) and polarity come from
-       :func:`roomcorr.design.subwoofers.plan_subwoofers` on the measured
+       :func:`roomcorr.design.system.subwoofers.plan_subwoofers` on the measured
        responses (20 Hz to twice the middle of the crossover range), judged
        with both mains driven through a crossover at the range's middle
-       (:func:`roomcorr.design.subwoofers.with_mains`).
+       (:func:`roomcorr.design.system.subwoofers.with_mains`).
     2. The subwoofers, so fed, are summed into one virtual channel at every
        position, and the single-subwoofer design runs on the mains and that
        channel: common correction, crossover, alignment, safety.

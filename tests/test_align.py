@@ -25,14 +25,14 @@ from speaker_rooms import (
 )
 
 from roomcorr.analysis.compare import speed_of_sound_m_s
-from roomcorr.design.align import (
+from roomcorr.design.realise.fir import fir_response_db, peak_gain_db
+from roomcorr.design.system.align import (
     apply_plan,
     arrival_delays_s,
     level_trims_db,
     mean_arrival_s,
     shift_samples,
 )
-from roomcorr.design.fir import fir_response_db, peak_gain_db
 from roomcorr.errors import SettingsError
 from roomcorr.pipeline import run_design
 from roomcorr.settings import Settings, design_from_dict
@@ -308,8 +308,8 @@ def test_applying_a_plan_never_raises_a_filters_gain(delays, trims, fc, slope, c
     the shared cut adds boost)."""
     from types import SimpleNamespace
 
-    from roomcorr.design.crossover import Integration
-    from roomcorr.design.fir import synthesize_fir
+    from roomcorr.design.realise.fir import synthesize_fir
+    from roomcorr.design.system.crossover import Integration
     from roomcorr.grid import log_grid
 
     grid = log_grid()
@@ -339,7 +339,7 @@ def test_the_shared_cut_is_in_every_output_alike():
 
     from scipy.signal import butter, freqz, sosfreqz
 
-    from roomcorr.design.crossover import Integration, search_grid_hz, shared_cut_db
+    from roomcorr.design.system.crossover import Integration, search_grid_hz, shared_cut_db
 
     fc = 80.0
     grid = search_grid_hz((50.0, 150.0))

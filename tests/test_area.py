@@ -1,4 +1,7 @@
-"""Listening-area design: bass limit, band edges, cross-validation, caps (roomcorr.design.area)."""
+"""Listening-area design: bass limit, band edges, cross-validation, caps.
+
+Module under test: roomcorr.design.curve.area.
+"""
 
 from __future__ import annotations
 
@@ -8,7 +11,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from roomcorr.analysis.smoothing import smooth_log_grid
-from roomcorr.design.area import (
+from roomcorr.design.curve.area import (
     ASSUMED_SPEAKER_LOW_HZ,
     agreement_limits,
     apply_bass_limit,
@@ -16,8 +19,8 @@ from roomcorr.design.area import (
     design_channel,
     measured_rolloff_hz,
 )
-from roomcorr.design.correction import DIP_REFUSE_DB
-from roomcorr.design.target import target_from_table
+from roomcorr.design.curve.correction import DIP_REFUSE_DB
+from roomcorr.design.curve.target import target_from_table
 from roomcorr.grid import log_grid
 
 F = log_grid()
@@ -85,7 +88,7 @@ def test_bass_drive_on_simulated_room_with_room_gain():
     # End to end through the exported 48 kHz filter on the evaluation room with
     # a leaky pressure chamber lifting the bass below an 80 Hz loudspeaker
     # corner (roomcorr/evaluation/scenarios.json, "den-room-gain").
-    from roomcorr.design.fir import fir_response_db
+    from roomcorr.design.realise.fir import fir_response_db
     from roomcorr.evaluation.metrics import bass_drive_db
     from roomcorr.evaluation.simulate import evaluation_room
     from roomcorr.pipeline import run_design
@@ -97,7 +100,7 @@ def test_bass_drive_on_simulated_room_with_room_gain():
     )
     for ch, fc in zip(result.channels, room.corner_hz, strict=True):
         h_db = fir_response_db(result.firs[48000][ch.index], 48000, F)
-        # 0.3 dB: the FIR's allowed ripple around its curve (design/safety.py).
+        # 0.3 dB: the FIR's allowed ripple around its curve (design/realise/safety.py).
         assert bass_drive_db(h_db, F, fc) <= 0.3
 
 

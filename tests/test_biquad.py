@@ -1,4 +1,4 @@
-"""Tests of roomcorr.design.biquad against the Audio EQ Cookbook, pyfar, numpy and scipy."""
+"""Tests of roomcorr.design.realise.biquad against the Audio EQ Cookbook, pyfar, numpy and scipy."""
 
 from __future__ import annotations
 
@@ -6,8 +6,8 @@ import numpy as np
 import pytest
 from scipy.signal import freqz, sosfilt
 
-from roomcorr.design import biquad as bq
-from roomcorr.design.biquad import Section
+from roomcorr.design.realise import biquad as bq
+from roomcorr.design.realise.biquad import Section
 from roomcorr.errors import SafetyError
 
 RATES = (44100, 48000, 96000)

@@ -2,7 +2,7 @@
 
 Issue 22, item 9: a ten-section set held 92.1 Hz twice at Q 12 and a -0.01 dB shelf.
 Checked against the Audio EQ Cookbook (coefficients written out here from the
-note, independently of roomcorr.design.biquad) and scipy.signal.freqz.
+note, independently of roomcorr.design.realise.biquad) and scipy.signal.freqz.
 """
 
 from __future__ import annotations
@@ -14,9 +14,9 @@ from scipy.signal import freqz
 
 from roomcorr.audio_io import read_ir_set
 from roomcorr.deliver.export_iir import hz_range
-from roomcorr.design import biquad as bq
-from roomcorr.design.biquad import Section
-from roomcorr.design.iir_fit import SENS_LIMIT_DB, design_iir
+from roomcorr.design.realise import biquad as bq
+from roomcorr.design.realise.biquad import Section
+from roomcorr.design.realise.iir_fit import SENS_LIMIT_DB, design_iir
 from roomcorr.pipeline import run_design
 from roomcorr.settings import Settings
 

@@ -20,8 +20,8 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from scipy.signal import freqz
 
-from roomcorr.design.fir import cap_excess_db, synthesize_fir, taps_for_latency
-from roomcorr.design.safety import (
+from roomcorr.design.realise.fir import cap_excess_db, synthesize_fir, taps_for_latency
+from roomcorr.design.realise.safety import (
     CEILING_TOLERANCE_DB,
     apply_safety,
     fit_under_cap,
@@ -86,7 +86,7 @@ def _curve(points: list[tuple[float, float]], grid: np.ndarray) -> np.ndarray:
 def test_no_exported_filter_above_its_cap_or_ceiling(cap, cut, taps, rates, raw, ceiling):
     """Property (DESIGN.md, tests): for any legal curve, no exported filter above its caps.
 
-    Legal curves: within [-max_cut, +max_boost] (what roomcorr.design.correction
+    Legal curves: within [-max_cut, +max_boost] (what roomcorr.design.curve.correction
     produces), any steepness (points as close as hypothesis likes).
     """
     grid = log_grid()

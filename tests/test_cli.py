@@ -12,7 +12,7 @@ import pytest
 import soundfile as sf
 from conftest import REPO
 
-from roomcorr.design.fir import peak_gain_db, worst_case_gain_db
+from roomcorr.design.realise.fir import peak_gain_db, worst_case_gain_db
 
 
 def run(*args: str, cwd=None) -> subprocess.CompletedProcess:

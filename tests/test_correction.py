@@ -8,10 +8,10 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from roomcorr.analysis.smoothing import smooth_log_grid
-from roomcorr.design.correction import DIP_REFUSE_DB, align_target, correction_curve
-from roomcorr.design.fir import default_n_taps, peak_gain_db, synthesize_fir
-from roomcorr.design.safety import apply_safety, common_pre_gain_db
-from roomcorr.design.target import auto_band, band_fade, target_from_points, target_from_table
+from roomcorr.design.curve.correction import DIP_REFUSE_DB, align_target, correction_curve
+from roomcorr.design.curve.target import auto_band, band_fade, target_from_points, target_from_table
+from roomcorr.design.realise.fir import default_n_taps, peak_gain_db, synthesize_fir
+from roomcorr.design.realise.safety import apply_safety, common_pre_gain_db
 from roomcorr.errors import SettingsError
 from roomcorr.grid import log_grid
 

@@ -8,7 +8,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy.signal import butter, sosfreqz
 
-from roomcorr.design.crossover import (
+from roomcorr.design.realise.fir import peak_gain_db, synthesize_fir
+from roomcorr.design.system.crossover import (
     DELAY_STEP_S,
     SHARED_CUT_SHARE,
     SLOPES_DB_OCT,
@@ -22,7 +23,6 @@ from roomcorr.design.crossover import (
     search_integration,
     shared_cut_db,
 )
-from roomcorr.design.fir import peak_gain_db, synthesize_fir
 from roomcorr.grid import log_grid
 
 FS = 48000

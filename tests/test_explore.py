@@ -19,6 +19,8 @@ from roomcorr.analysis.decay import low_frequency_decay_map, octave_band_centres
 from roomcorr.app import decay_view
 from roomcorr.deliver.export import load_design_curves
 from roomcorr.errors import InputFileError
+from roomcorr.report.context import channel_of, report_context
+from roomcorr.report.reverberation import _decay_table, _position_decay
 
 REPO = Path(__file__).resolve().parents[1]
 FS = 48000
@@ -39,31 +41,27 @@ def _design_id(room: rooms.Room) -> str:
 
 def _report_channels(room: rooms.Room, run_id: str):
     """The report's per-channel data for a design run (the same objects its sections use)."""
-    from roomcorr.report import html
-
     curves = load_design_curves(room.designs_dir / run_id)
-    ctx = html.report_context(curves)
-    return [html._channel(curves, ch, ctx) for ch in curves["channels"]], ctx
+    ctx = report_context(curves)
+    return [channel_of(curves, ch, ctx) for ch in curves["channels"]], ctx
 
 
 def test_decay_view_serves_the_reports_decay_and_ringing_numbers(demo_room):
     # Same engine: the report's decay section (_position_decay: the mean over positions)
     # and its ringing section (maps of the first position, measured and corrected).
-    from roomcorr.report import html
-
     run_id = _design_id(demo_room)
     view = decay_view(demo_room, "design", run_id)
     chans, ctx = _report_channels(demo_room, run_id)
     assert [c["name"] for c in view["channels"]] == [x.name for x in chans]
     for ch, x in zip(view["channels"], chans, strict=True):
-        bands = html._position_decay(x, ctx)
+        bands = _position_decay(x, ctx)
         assert ch["bands"]["label"] == [b.label for b in bands]
         for key in ("edt", "t20", "t30"):
             expect = [getattr(b, f"{key}_s") for b in bands]
             np.testing.assert_allclose(ch["combined"][f"{key}_s"], expect, atol=5e-5)
             assert ch["combined"]["valid"][key] == [b.valid[key] for b in bands]
         # the report's table text (two decimals, * for a range too close to the noise)
-        table = html._decay_table(bands)[1:]
+        table = _decay_table(bands)[1:]
         for k, row in enumerate(table):
             cells = [
                 ("n/a" if v is None else f"{v:.2f}" + ("" if ok else " *"))

@@ -13,9 +13,9 @@ from scipy.signal import freqz, sosfreqz
 
 from roomcorr.deliver import export
 from roomcorr.deliver.export_iir import write_iir
-from roomcorr.design import biquad as bq
-from roomcorr.design import iir_fit as fit
-from roomcorr.design.biquad import Section
+from roomcorr.design.realise import biquad as bq
+from roomcorr.design.realise import iir_fit as fit
+from roomcorr.design.realise.biquad import Section
 from roomcorr.errors import OutputError
 from roomcorr.grid import log_grid
 
@@ -107,7 +107,7 @@ def test_missing_folder_is_an_output_error(tmp_path, design):
 
 def test_with_the_fir_pipeline(tmp_path, ir_set):
     # End to end with the lead's pipeline: run_design -> write_design -> design_iir -> write_iir.
-    from roomcorr.design.iir_fit import design_iir
+    from roomcorr.design.realise.iir_fit import design_iir
     from roomcorr.pipeline import run_design
     from roomcorr.settings import Settings, design_from_dict
 
@@ -157,7 +157,7 @@ def demo_iir(tmp_path_factory):
     from conftest import REPO
 
     from roomcorr.audio_io import read_ir_set
-    from roomcorr.design.iir_fit import design_iir
+    from roomcorr.design.realise.iir_fit import design_iir
     from roomcorr.pipeline import run_design
     from roomcorr.settings import Settings, design_from_dict
 

@@ -29,7 +29,7 @@ from conftest import REPO, synthetic_ir
 from roomcorr import rooms as R
 from roomcorr.audio_io import write_wav
 from roomcorr.cli import main
-from roomcorr.design.safety import CAUTIONS
+from roomcorr.design.realise.safety import CAUTIONS
 from roomcorr.errors import OutputError
 
 FS = 48000

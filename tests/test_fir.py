@@ -1,4 +1,4 @@
-"""Tests for roomcorr.design.fir (minimum-phase FIR synthesis from a gain curve)."""
+"""Tests for roomcorr.design.realise.fir (minimum-phase FIR synthesis from a gain curve)."""
 
 from __future__ import annotations
 
@@ -6,7 +6,8 @@ import numpy as np
 import pytest
 import scipy.signal
 
-from roomcorr.design.fir import (
+from roomcorr.design.phase.minphase import minimum_phase
+from roomcorr.design.realise.fir import (
     default_n_taps,
     fir_response_db,
     peak_gain_db,
@@ -14,7 +15,6 @@ from roomcorr.design.fir import (
     tail_window,
     worst_case_gain_db,
 )
-from roomcorr.design.minphase import minimum_phase
 from roomcorr.grid import interp_log, log_grid
 
 GRID_HZ = log_grid()

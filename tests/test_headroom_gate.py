@@ -10,7 +10,7 @@ from roomcorr.app.history import _record_figures, format_history
 from roomcorr.measure import quality as q
 from roomcorr.measure.levels import rms_dbfs
 from roomcorr.measure.session import gate_lines
-from roomcorr.report.html import _quality_section
+from roomcorr.report.quality import quality_section
 
 
 def _peak_dbfs_of_sine(amplitude: float) -> float:
@@ -64,7 +64,7 @@ def test_history_and_report_show_the_warning():
                          "figures": _record_figures(_record(-12.0))}])
     )
     rec = _record(-1.6)["positions"][0]["channels"][0]
-    sec = _quality_section(
+    sec = quality_section(
         [{"label": "position 1", "gates": rec["gates"], "snr_db": {"1000": 50.0},
           "repeat_db": None}],
         png=lambda fig: b"",

@@ -1,4 +1,7 @@
-"""Tests of roomcorr.design.iir_fit: recovery of known biquads, safety invariants, cramping."""
+"""Tests of roomcorr.design.realise.iir_fit.
+
+Recovery of known biquads, safety invariants, cramping.
+"""
 
 from __future__ import annotations
 
@@ -7,9 +10,9 @@ import pytest
 from hypothesis import HealthCheck, Phase, given, settings
 from hypothesis import strategies as st
 
-from roomcorr.design import biquad as bq
-from roomcorr.design import iir_fit as fit
-from roomcorr.design.biquad import Section
+from roomcorr.design.realise import biquad as bq
+from roomcorr.design.realise import iir_fit as fit
+from roomcorr.design.realise.biquad import Section
 from roomcorr.errors import SafetyError, SettingsError
 from roomcorr.grid import log_grid
 

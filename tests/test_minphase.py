@@ -1,4 +1,4 @@
-"""Tests for roomcorr.design.minphase (cepstral minimum phase)."""
+"""Tests for roomcorr.design.phase.minphase (cepstral minimum phase)."""
 
 from __future__ import annotations
 
@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 import scipy.signal
 
-from roomcorr.design.minphase import (
+from roomcorr.design.phase.minphase import (
     fft_length,
     fold_window,
     magnitude_error_db,

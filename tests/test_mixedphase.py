@@ -13,9 +13,8 @@ from mixedphase_sim import Room, Speaker, group_delay_s, simulate
 from scipy import signal
 from test_cli import run
 
-from roomcorr.design.excess_phase import estimate_excess_phase, excess_spectrum
-from roomcorr.design.fir import synthesize_fir
-from roomcorr.design.mixedphase import (
+from roomcorr.design.phase.excess_phase import estimate_excess_phase, excess_spectrum
+from roomcorr.design.phase.mixedphase import (
     PRE_RING_LIMIT_DB,
     closing_group_delay,
     correction_phase,
@@ -24,7 +23,8 @@ from roomcorr.design.mixedphase import (
     pre_ringing_db,
     within_tolerance,
 )
-from roomcorr.design.safety import BOOST_TOLERANCE_DB, CEILING_TOLERANCE_DB
+from roomcorr.design.realise.fir import synthesize_fir
+from roomcorr.design.realise.safety import BOOST_TOLERANCE_DB, CEILING_TOLERANCE_DB
 from roomcorr.errors import SafetyError, SettingsError
 from roomcorr.grid import log_grid
 from roomcorr.pipeline import run_design
@@ -362,7 +362,7 @@ def test_safety_rules_unchanged(designs):
         assert s.peak_gain_db <= d.ceiling_db + CEILING_TOLERANCE_DB
         assert s.max_boost_db <= d.max_boost_db + BOOST_TOLERANCE_DB
         assert math.isfinite(s.worst_case_gain_db)
-    from roomcorr.design.safety import apply_safety
+    from roomcorr.design.realise.safety import apply_safety
 
     boosted = {fs: h * 10 ** (6 / 20) for fs, h in mixed.firs.items()}
     with pytest.raises(SafetyError):

@@ -12,7 +12,7 @@ from roomcorr.analysis.balance import steady_balance_db
 from roomcorr.analysis.smoothing import smooth_log_grid
 from roomcorr.analysis.window import fdw_power
 from roomcorr.audio_io import read_ir_set
-from roomcorr.design.fir import fir_response_db
+from roomcorr.design.realise.fir import fir_response_db
 from roomcorr.pipeline import run_design
 from roomcorr.settings import Settings, design_from_dict
 

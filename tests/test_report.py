@@ -16,6 +16,7 @@ import pytest
 from roomcorr.grid import log_grid
 from roomcorr.report import html as rh
 from roomcorr.report import summary
+from roomcorr.report.curves import filter_response, iir_response_db, predicted_responses
 
 FS = 48000
 
@@ -113,7 +114,7 @@ def test_filter_response_of_a_pure_delay():
     h = np.zeros(256)
     h[k] = 1.0
     f = np.array([100.0, 1000.0, 5000.0, 30000.0])
-    gain, phase, gd = rh.filter_response(h, FS, f)
+    gain, phase, gd = filter_response(h, FS, f)
     np.testing.assert_allclose(gain[:3], 0.0, atol=1e-4)
     want = np.degrees(np.angle(np.exp(-2j * np.pi * f[:3] * k / FS)))
     np.testing.assert_allclose(phase[:3], want, atol=1e-3)
@@ -128,7 +129,7 @@ def test_filter_response_matches_scipy():
     rng = np.random.default_rng(3)
     h = rng.standard_normal(512) * np.exp(-np.arange(512) / 60.0)
     f = np.geomspace(20, 20000, 200)
-    gain, phase, gd = rh.filter_response(h, FS, f)
+    gain, phase, gd = filter_response(h, FS, f)
     _, ref = freqz(h, worN=f, fs=FS)
     _, ref_gd = group_delay((h, [1.0]), w=f, fs=FS)
     np.testing.assert_allclose(gain, 20 * np.log10(np.abs(ref)), atol=0.01)
@@ -148,7 +149,7 @@ def test_iir_response_is_the_cookbook_peak():
     c = [*(b / den[0]), *(den[1:] / den[0])]
     doc = {"sample_rate": fs, "pre_gain_db": -6.0, "pre_gain_linear": 10 ** (-6 / 20),
            "sections": [{"coefficients": c}]}
-    db = rh.iir_response_db(doc, np.array([f0, 20.0, 30000.0]))
+    db = iir_response_db(doc, np.array([f0, 20.0, 30000.0]))
     assert db[0] == pytest.approx(0.0, abs=1e-9)  # +6 dB section, -6 dB pre-gain
     assert db[1] == pytest.approx(-6.0, abs=0.01)  # unity far below f0
     assert np.isnan(db[2])
@@ -180,7 +181,7 @@ def test_predicted_response_of_a_plain_gain():
     fir = np.zeros(64)
     fir[0] = 0.5
     measured = np.zeros((irs.shape[0], f.size))
-    pred, conv = rh.predicted_responses(irs, FS, fir, f, measured)
+    pred, conv = predicted_responses(irs, FS, fir, f, measured)
     m = (f > 30) & (f < 20000)
     np.testing.assert_allclose(pred[:, m], 20 * np.log10(0.5), atol=1e-6)
     np.testing.assert_allclose(conv, 0.5 * irs, atol=1e-12)
@@ -220,7 +221,7 @@ _ENV = {**os.environ, "PYTHONPATH": str(Path(__file__).resolve().parent.parent)}
 def design_folder(tmp_path_factory):
     from roomcorr.deliver.export import write_design
     from roomcorr.deliver.export_iir import write_iir
-    from roomcorr.design.iir_fit import design_iir
+    from roomcorr.design.realise.iir_fit import design_iir
     from roomcorr.pipeline import run_design
     from roomcorr.settings import DesignSettings, Settings
 
@@ -373,7 +374,7 @@ def _stereo_room(n_pos=2, dur_s=0.6):
 def stereo_folder(tmp_path_factory):
     from roomcorr.deliver.export import write_design
     from roomcorr.deliver.export_iir import write_iir
-    from roomcorr.design.iir_fit import design_iir
+    from roomcorr.design.realise.iir_fit import design_iir
     from roomcorr.pipeline import run_design
     from roomcorr.settings import DesignSettings, Settings
 
@@ -511,7 +512,7 @@ def test_predicted_result_is_closer_to_the_target(design_folder):
     cur = load_design_curves(out)
     ch = cur["channels"][0]
     f = cur["freq_hz"]
-    pred, _ = rh.predicted_responses(
+    pred, _ = predicted_responses(
         cur["irs"][:, 0], cur["fs_in"], cur["firs"][48000][0], f, ch["measured_db"]
     )
     after = 10 * np.log10(np.mean(10 ** (pred / 10), axis=0))

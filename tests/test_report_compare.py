@@ -14,7 +14,8 @@ import numpy as np
 import pytest
 
 from roomcorr import rooms
-from roomcorr.report import html as rh
+from roomcorr.app.report import report_comparison, write_folder_report
+from roomcorr.report.earlier import comparison_section
 
 ROOT = Path(__file__).resolve().parent.parent
 DEMO = ROOT / "measurements_demo"
@@ -54,7 +55,7 @@ def room_runs(tmp_path_factory):
     settings.design.sample_rates = (48000,)
     with rooms.new_run(room, "design", info={"measurement": m2.name}) as design:
         write_design(run_design(moved, fs, settings), design, extra={"measurement": m2.name})
-    rh.write_report(design)
+    write_folder_report(design)
     return room, m1, m2, design
 
 
@@ -101,12 +102,12 @@ def test_design_run_report_compares_with_the_earlier_measurement(room_runs):
 
 def test_comparison_figures_match_compare(room_runs):
     room, m1, m2, _ = room_runs
-    res = rh.report_comparison(m2)
+    res = report_comparison(m2)
     assert res is not None
     assert res["before"] == f"measurements/{m1.name}"
     right = next(c for c in res["channels"] if c["name"] == "right")
     assert right["distance_change_m"] == pytest.approx(_expected_distance_m(), abs=0.02)
-    sec = rh.comparison_section(res)
+    sec = comparison_section(res)
     assert sec.table[0][:4] == [
         "channel", "arrival change (ms)", "distance change (m)", "level change (dB)"
     ]
@@ -116,8 +117,8 @@ def test_comparison_figures_match_compare(room_runs):
 
 def test_first_measurement_has_no_comparison(room_runs):
     _, m1, _, _ = room_runs
-    assert rh.report_comparison(m1) is None  # nothing earlier in the room
-    rh.write_report(m1)
+    assert report_comparison(m1) is None  # nothing earlier in the room
+    write_folder_report(m1)
     page = (m1 / "report.html").read_text(encoding="utf-8")
     assert 'id="compare"' not in page and 'data-figure="compare"' not in page
     assert not (m1 / "report" / "compare.png").exists()

@@ -67,8 +67,8 @@ def test_the_target_step_is_explained_beside_the_figure(demo_report):
 
 def test_target_step_size_is_the_design_rule_s():
     # a flat shape placed with the bass 4 dB lower: choose_level's raised-cosine blend
-    # between 200 and 350 Hz (roomcorr.design.area) gives exactly a 4.0 dB step
-    from roomcorr.design.area import choose_level
+    # between 200 and 350 Hz (roomcorr.design.curve.area) gives exactly a 4.0 dB step
+    from roomcorr.design.curve.area import choose_level
 
     f = log_grid()
     average = np.where(f < 200, -4.0, 0.0)

@@ -17,6 +17,8 @@ from test_report import _record, _synthetic_room
 
 from roomcorr.report import figures as fg
 from roomcorr.report import html as rh
+from roomcorr.report.quality import quality_from_record
+from roomcorr.report.sources import read_iir
 
 REPO = Path(__file__).resolve().parent.parent
 FS = 48000
@@ -49,7 +51,7 @@ def checked_figures(tmp_path_factory):
     """Every figure the report draws for a stereo mixed-phase biquad design with quality data."""
     from roomcorr.deliver.export import load_design_curves, write_design
     from roomcorr.deliver.export_iir import write_iir
-    from roomcorr.design.iir_fit import design_iir
+    from roomcorr.design.realise.iir_fit import design_iir
     from roomcorr.pipeline import run_design
     from roomcorr.settings import DesignSettings, Settings
 
@@ -73,8 +75,8 @@ def checked_figures(tmp_path_factory):
     mp = pytest.MonkeyPatch()
     mp.setattr(fg, "png_bytes", check)
     try:
-        quality = rh.quality_from_record(_record(3))
-        rh.build_report(curves, None, quality, iir=rh._read_iir(base / "out"))
+        quality = quality_from_record(_record(3))
+        rh.build_report(curves, None, quality, iir=read_iir(base / "out"))
     finally:
         mp.undo()
     return seen

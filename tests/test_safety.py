@@ -7,8 +7,8 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from roomcorr.design.fir import synthesize_fir
-from roomcorr.design.safety import CEILING_TOLERANCE_DB, PEAK_BAND, apply_safety
+from roomcorr.design.realise.fir import synthesize_fir
+from roomcorr.design.realise.safety import CEILING_TOLERANCE_DB, PEAK_BAND, apply_safety
 from roomcorr.errors import SafetyError
 from roomcorr.grid import log_grid
 

@@ -1,4 +1,7 @@
-"""Several subwoofers chosen together (roomcorr.design.subwoofers and the pipeline's use of it)."""
+"""Several subwoofers chosen together.
+
+Modules under test: roomcorr.design.system.subwoofers and the pipeline's use of it.
+"""
 
 from __future__ import annotations
 
@@ -11,8 +14,8 @@ from scipy.signal import freqz
 
 from roomcorr.deliver.routes import build_routes
 from roomcorr.deliver.system import manifest_fields, system_sentences
-from roomcorr.design.crossover import linkwitz_riley_response
-from roomcorr.design.subwoofers import (
+from roomcorr.design.system.crossover import linkwitz_riley_response
+from roomcorr.design.system.subwoofers import (
     OFF_DB,
     array_response,
     plan_subwoofers,
@@ -220,7 +223,7 @@ def test_mains_and_subwoofers_judged_together_sum_like_a_linkwitz_riley_pair():
     # Linkwitz, JAES 24(1), 1976: LR4 low-pass + high-pass is an all-pass. A subwoofer that
     # hears exactly what both mains together hear is matched to them at 0 dB, and the sum the
     # search judges has the mains' magnitude at every frequency and seat.
-    from roomcorr.design.subwoofers import with_mains
+    from roomcorr.design.system.subwoofers import with_mains
 
     rng = np.random.default_rng(2)
     f = spread_grid_hz(174.0)

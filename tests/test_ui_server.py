@@ -658,7 +658,7 @@ def test_decay_route_serves_the_application_layers_data(client, demo_room):
 
 
 def test_preview_refuses_target_points_the_target_rules_refuse(client):
-    # The same checks as a target file on the command line (design.target.target_points).
+    # The same checks as a target file on the command line (design.curve.target.target_points).
     hdr = {**_auth(), "content-type": "application/json"}
     for points in (b"[[NaN, 1.0]]", b"[[1000, Infinity]]", b"[[5, 1]]", b"[[1000, 30]]",
                    b"[[1000, 1], [1000, 2]]"):

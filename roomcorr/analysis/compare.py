@@ -24,6 +24,13 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+from scipy.ndimage import uniform_filter1d
+from scipy.signal import find_peaks
+
+from roomcorr.analysis.bands import band_centres_hz, nominal_hz
+from roomcorr.analysis.onset import find_onset
+from roomcorr.analysis.smoothing import smooth_bins_to_grid
+from roomcorr.grid import log_grid, points_per_octave_of
 
 #: Speed of sound at 20 °C in m/s (ISO 9613-1, annex A).
 C_20_M_S = 343.2
@@ -80,8 +87,6 @@ def _parabolic_peak(y: np.ndarray, i: int) -> float:
 
 
 def _coarse_onset(ir: np.ndarray, fs: int) -> float:
-    from roomcorr.analysis.onset import find_onset
-
     return find_onset(ir, fs)
 
 
@@ -242,7 +247,6 @@ def smoothed_response_db(
     fractional-octave smoothing of transfer functions that preserves log-frequency
     symmetry", JAES 65(3), 2017.
     """
-    from roomcorr.analysis.smoothing import smooth_bins_to_grid
 
     f_bins, power = _spectrum_power(irs, fs)
     p = smooth_bins_to_grid(power, f_bins, np.asarray(freq_hz, dtype=float), 1.0 / fraction)
@@ -261,7 +265,6 @@ def third_octave_centres_hz(f_lo_hz: float, f_hi_hz: float) -> np.ndarray:
     IEC 61260-1:2014, Electroacoustics - Octave-band and fractional-octave-band
     filters - Part 1: Specifications, clause 5.
     """
-    from roomcorr.analysis.bands import band_centres_hz, nominal_hz
 
     fc = np.asarray(band_centres_hz(3, f_lo_hz, f_hi_hz), dtype=float)
     nom = np.array([nominal_hz(f) for f in fc])
@@ -337,10 +340,7 @@ def find_extrema(
     -------
     list of Extremum, sorted by frequency.
     """
-    from scipy.ndimage import uniform_filter1d
-    from scipy.signal import find_peaks
 
-    from roomcorr.grid import points_per_octave_of
 
     f = np.asarray(freq_hz, dtype=float)
     y = np.asarray(response_db, dtype=float)
@@ -561,7 +561,6 @@ def compare_sets(
         attribution is sure and None when it is not) and ``move`` (the
         :func:`attribute_move` result plus ``origin``; None for an absolute origin).
     """
-    from roomcorr.grid import log_grid
 
     a = np.asarray(irs_a, dtype=float)
     b = np.asarray(irs_b, dtype=float)

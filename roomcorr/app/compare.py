@@ -15,7 +15,7 @@ from roomcorr.audio_io import read_ir_set
 from roomcorr.deliver.atomic import is_link_or_outside, sha256_of
 from roomcorr.deliver.export import load_design_curves, read_manifest
 from roomcorr.deliver.system import manifest_fields
-from roomcorr.design.fir import fir_response_db as _fir_db
+from roomcorr.design.realise.fir import fir_response_db as _fir_db
 from roomcorr.errors import InputFileError, OutputError, RoomcorrError
 from roomcorr.measure.timing import common_origin, timing_basis
 from roomcorr.pipeline import default_channel_names, run_design

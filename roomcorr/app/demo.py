@@ -8,10 +8,10 @@ from pathlib import Path
 from typing import Any
 
 from roomcorr.app.design import design_from_files
+from roomcorr.app.report import write_folder_report
 from roomcorr.deliver.export import MANIFEST, read_manifest
 from roomcorr.demo import write_demo_measurements
 from roomcorr.pipeline import DesignResult
-from roomcorr.report.html import write_report
 from roomcorr.settings import Settings
 
 
@@ -75,4 +75,4 @@ def run_demo(
         )
     if on_design is not None:
         on_design(result, entries)
-    return write_report(out)
+    return write_folder_report(out)

@@ -23,10 +23,11 @@ from roomcorr.app.placement import causes_for_design, find_layout
 from roomcorr.audio_io import read_ir_set
 from roomcorr.deliver.atomic import atomic_write_bytes
 from roomcorr.deliver.export import check_out_dir, input_digests, write_design
-from roomcorr.design.align import apply_plan, plan_system
-from roomcorr.design.fir import synthesize_fir
-from roomcorr.design.safety import PEAK_BAND, common_pre_gain_db, full_band_peak_gain_db
-from roomcorr.design.target import target_from_table
+from roomcorr.design.curve.target import target_from_table
+from roomcorr.design.realise.fir import synthesize_fir
+from roomcorr.design.realise.iir_fit import design_iir
+from roomcorr.design.realise.safety import PEAK_BAND, common_pre_gain_db, full_band_peak_gain_db
+from roomcorr.design.system.align import apply_plan, plan_system
 from roomcorr.errors import OutputError, RoomcorrError, SettingsError
 from roomcorr.grid import log_grid
 from roomcorr.measure.timing import timing_basis
@@ -119,8 +120,6 @@ def design_from_files(
     result = run_design(irs, fs, settings)
     iir = None
     if settings.design.iir:
-        from roomcorr.design.iir_fit import design_iir
-
         iir = design_iir(result)  # fitted and safety-checked before anything is written
     info: dict[str, Any] = {
         "measurements": [str(f) for f in files],
@@ -292,12 +291,12 @@ def filter_levels(
 
     The same steps and functions as :func:`roomcorr.pipeline.run_design`, which writes the
     manifest: per design rate each channel's FIR from its correction
-    (:func:`roomcorr.design.fir.synthesize_fir`, the design's tap count), the system plan's
-    alignment and level trims (:func:`roomcorr.design.align.plan_system`,
-    :func:`~roomcorr.design.align.apply_plan`), then each filter's peak gain from DC to
-    Nyquist (:func:`roomcorr.design.safety.full_band_peak_gain_db`) and the common pre-gain
-    (:func:`~roomcorr.design.safety.common_pre_gain_db`), as
-    :func:`~roomcorr.design.safety.apply_safety` computes them. A mixed-phase design's
+    (:func:`roomcorr.design.realise.fir.synthesize_fir`, the design's tap count), the system plan's
+    alignment and level trims (:func:`roomcorr.design.system.align.plan_system`,
+    :func:`~roomcorr.design.system.align.apply_plan`), then each filter's peak gain from DC to
+    Nyquist (:func:`roomcorr.design.realise.safety.full_band_peak_gain_db`) and the common pre-gain
+    (:func:`~roomcorr.design.realise.safety.common_pre_gain_db`), as
+    :func:`~roomcorr.design.realise.safety.apply_safety` computes them. A mixed-phase design's
     excess-phase part is left out (it changes the peak gain by a few tenths of a dB).
 
     Returns

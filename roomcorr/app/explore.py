@@ -13,6 +13,17 @@ from typing import Any
 import numpy as np
 
 from roomcorr import rooms
+from roomcorr.analysis.decay import (
+    MIN_BANDWIDTH_TIME,
+    NOISE_MARGIN_DB,
+    RANGES_DB,
+    band_decay,
+    decay_method,
+    filter_limited,
+    low_frequency_decay_map,
+    mean_band_decay,
+    ringing_modes,
+)
 from roomcorr.app.compare import compare_measurements
 from roomcorr.app.history import history
 from roomcorr.audio_io import read_ir_set
@@ -21,6 +32,7 @@ from roomcorr.errors import BadNameError, InputFileError
 from roomcorr.grid import log_grid
 from roomcorr.pipeline import analyse_positions, default_channel_names
 from roomcorr.report.compare import format_comparison
+from roomcorr.report.curves import corrected_responses, filter_response
 from roomcorr.report.figures import DECAY_MAP_FLOOR_DB, DECAY_MAP_STOPS
 from roomcorr.rooms.runs import RUN_NAME
 
@@ -92,10 +104,9 @@ def design_view(room: rooms.Room, run_id: str) -> dict[str, Any]:
         and ``predicted_db`` (average plus correction, per position as well);
         ``filters``: per sample rate and channel the FIR's magnitude (dB, with
         the pre-gain), phase (degrees, wrapped) and group delay (ms), from the
-        report's :func:`roomcorr.report.html.filter_response`;
+        report's :func:`roomcorr.report.curves.filter_response`;
         ``manifest``: the design's manifest.
     """
-    from roomcorr.report.html import filter_response
 
     folder = run_folder(room, "design", run_id)
     rooms.verified(room, folder, use=[folder / "design.npz", folder / "manifest.json"])
@@ -199,7 +210,6 @@ def _band_rows(bands: list[Any], fraction: int) -> dict[str, Any]:
     ``filter_limited`` where the band filter is too narrow for the decay time
     (:func:`roomcorr.analysis.decay.filter_limited`).
     """
-    from roomcorr.analysis.decay import filter_limited
 
     return {
         "filter_limited": {
@@ -255,7 +265,7 @@ def decay_view(
     :func:`low_frequency_decay_map`, :func:`ringing_modes`); for a design run
     the corrected map is made from the measured responses convolved with the
     design's filter at the measurement's rate
-    (:func:`roomcorr.report.html.corrected_responses`), as the report does.
+    (:func:`roomcorr.report.curves.corrected_responses`), as the report does.
 
     Parameters
     ----------
@@ -296,16 +306,6 @@ def decay_view(
         For an unknown run, a band fraction other than 1 or 3 or a position
         the run does not have.
     """
-    from roomcorr.analysis.decay import (
-        MIN_BANDWIDTH_TIME,
-        NOISE_MARGIN_DB,
-        RANGES_DB,
-        band_decay,
-        decay_method,
-        low_frequency_decay_map,
-        mean_band_decay,
-        ringing_modes,
-    )
 
     if fraction not in (1, 3):
         raise InputFileError(f"bands={fraction!r}: use 1 (octave) or 3 (third-octave)")
@@ -357,8 +357,6 @@ def decay_view(
             measured_map = low_frequency_decay_map(irs[position, c], fs)
             ringing = {"measured": _decay_map(measured_map, ringing_modes(measured_map))}
             if firs is not None and c < firs.shape[0]:
-                from roomcorr.report.html import corrected_responses
-
                 corrected = corrected_responses(irs[position : position + 1, c], firs[c])
                 ringing["corrected"] = _decay_map(low_frequency_decay_map(corrected[0], fs))
             item["ringing"] = ringing

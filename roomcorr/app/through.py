@@ -17,6 +17,7 @@ from pathlib import Path
 
 import numpy as np
 import scipy.signal
+import soundfile as sf
 
 from roomcorr.analysis.smoothing import smooth_bins_to_grid
 from roomcorr.deliver.export import load_design_curves
@@ -146,7 +147,6 @@ def through_summary(
 
     Returns the ``through.check`` entry of ``measurement.json``.
     """
-    import soundfile as sf
 
     saved = [p for p in record["positions"] if p.get("file")]
     measured = np.array([sf.read(str(out / p["file"]), always_2d=True)[0].T for p in saved])

@@ -17,6 +17,7 @@ time roomcorr writes there, and only when that process no longer runs.
 from __future__ import annotations
 
 import contextlib
+import ctypes
 import errno
 import hashlib
 import os
@@ -215,8 +216,6 @@ def _exchange(a: Path, b: Path) -> bool:
     if not sys.platform.startswith("linux"):
         return False
     try:
-        import ctypes
-
         libc = ctypes.CDLL(None, use_errno=True)
         fn = libc.renameat2
     except (OSError, AttributeError):

@@ -17,7 +17,7 @@ section (``b0 = 10 ** (pre_gain_db / 20)`` rounded down to float32, all else 0);
 the cascade is complete and safe. Coefficient values are float32-exact and
 written with full float64 precision, so devices running either precision use
 exactly the values that were checked. Each file gets a manifest entry of kind
-``"iir"`` (via :func:`roomcorr.deliver.export.add_manifest_entries`). Every file goes
+``"iir"`` (via :func:`roomcorr.deliver.manifest.add_manifest_entries`). Every file goes
 through :mod:`roomcorr.deliver.atomic`.
 """
 
@@ -26,6 +26,7 @@ from __future__ import annotations
 import csv
 import io
 import json
+import textwrap
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
@@ -33,9 +34,11 @@ import numpy as np
 
 from roomcorr.deliver.atomic import atomic_write_text
 from roomcorr.deliver.figures import fmt_db
-from roomcorr.design import biquad as bq
-from roomcorr.design.iir_fit import IirDesign, IirStats
+from roomcorr.deliver.manifest import add_manifest_entries
+from roomcorr.design.realise import biquad as bq
+from roomcorr.design.realise.iir_fit import IirDesign, IirStats
 from roomcorr.errors import OutputError
+from roomcorr.report.summary import withheld_regions
 
 if TYPE_CHECKING:  # pragma: no cover
     from roomcorr.pipeline import DesignResult
@@ -152,7 +155,6 @@ def _channel_regions(fir: DesignResult | None, index: int) -> tuple[list, Any]:
     """Refused-boost regions and the correction curve of one channel of a FIR design."""
     if fir is None:
         return [], None
-    from roomcorr.report.summary import withheld_regions
 
     ch = next(c for c in fir.channels if c.index == index)
     curves = {
@@ -263,8 +265,6 @@ def iir_documents(design: IirDesign, fir: DesignResult | None = None) -> dict[st
 
 
 def _wrap(text: str, width: int = 88) -> list[str]:
-    import textwrap
-
     return textwrap.wrap(text, width)
 
 
@@ -366,7 +366,5 @@ def write_iir(
         p.parent.mkdir(parents=True, exist_ok=True)
         atomic_write_text(p, text)
     if update_manifest:
-        from roomcorr.deliver import export
-
-        export.add_manifest_entries(out, entries)
+        add_manifest_entries(out, entries)
     return entries

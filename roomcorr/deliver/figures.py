@@ -4,11 +4,11 @@ Every number about a design that a user reads (in the command line's summary,
 the report, ``roomcorr history`` and the browser app) comes from the
 ``figures`` block of its ``manifest.json``, which :func:`design_figures`
 computes once, when the design is written, from the per-filter safety figures
-of :func:`roomcorr.design.safety.apply_safety`:
+of :func:`roomcorr.design.realise.safety.apply_safety`:
 
 ``pre_gain_db``
     The common pre-gain (never positive) that brings the highest filter down
-    to the ceiling (:func:`roomcorr.design.safety.common_pre_gain_db`).
+    to the ceiling (:func:`roomcorr.design.realise.safety.common_pre_gain_db`).
 ``largest_boost_db``
     The largest gain of any exported filter before the common pre-gain,
     anywhere from DC to Nyquist, level trims of the alignment included, never
@@ -24,7 +24,7 @@ of :func:`roomcorr.design.safety.apply_safety`:
     How late sound leaves the FIR filters (0 for minimum phase).
 ``pre_ringing_db``
     Mixed phase only: the worst energy a filter lets out before its main
-    peak, dB re the peak (:func:`roomcorr.design.mixedphase.pre_ringing_db`).
+    peak, dB re the peak (:func:`roomcorr.design.phase.mixedphase.pre_ringing_db`).
 
 Per channel the same figures are kept as the largest over that channel's
 sample rates. :func:`fmt_db` writes every dB figure (never ``-0.0``).
@@ -102,7 +102,7 @@ def design_figures(
     pre_gain_db : float
     latency : dict, optional
         The manifest's ``latency`` record
-        (:func:`roomcorr.design.mixedphase.latency_record`): ``latency_ms`` and,
+        (:func:`roomcorr.design.phase.mixedphase.latency_record`): ``latency_ms`` and,
         for mixed phase, ``worst_pre_ringing_db`` per rate.
 
     Returns

@@ -25,7 +25,7 @@ from __future__ import annotations
 
 from typing import Any
 
-from roomcorr.design.align import SUB, SystemPlan
+from roomcorr.design.system.align import SUB, SystemPlan
 
 
 def build_routes(

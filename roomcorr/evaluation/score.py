@@ -15,9 +15,10 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
+import pyfar as pf
 
 from roomcorr.audio_io import read_ir_set
-from roomcorr.design.fir import fir_response_db
+from roomcorr.design.realise.fir import fir_response_db
 from roomcorr.evaluation.metrics import (
     bass_drive_db,
     broadband_db,
@@ -28,6 +29,7 @@ from roomcorr.evaluation.metrics import (
 )
 from roomcorr.evaluation.simulate import EvaluationRoom, write_measured_wavs
 from roomcorr.grid import log_grid
+from roomcorr.pipeline import run_design
 from roomcorr.settings import Settings
 
 #: Sample rate whose exported filters are scored.
@@ -126,7 +128,6 @@ def design_like_cli(room: EvaluationRoom, settings: Settings, folder: str | Path
     -------
     DesignResult
     """
-    from roomcorr.pipeline import run_design
 
     with tempfile.TemporaryDirectory() as tmp:
         where = Path(folder) if folder is not None else Path(tmp)
@@ -177,7 +178,6 @@ def naive_inversion_firs(room: EvaluationRoom, freq_range_hz=(20.0, 20000.0)) ->
     -------
     firs : ndarray, shape (n_channels, n_taps)
     """
-    import pyfar as pf
 
     centre = pf.Signal(room.measured[0], room.fs)
     with warnings.catch_warnings():  # the function is renamed in pyfar 0.10

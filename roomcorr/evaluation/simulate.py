@@ -44,6 +44,7 @@ from typing import Any
 
 import numpy as np
 
+from roomcorr.audio_io import write_wav
 from roomcorr.physics import (
     early_spectrum,
     image_sources,
@@ -228,7 +229,6 @@ def write_measured_wavs(room: EvaluationRoom, folder: str | Path) -> list[Path]:
     -------
     list of Path
     """
-    from roomcorr.audio_io import write_wav
 
     out = Path(folder)
     out.mkdir(parents=True, exist_ok=True)

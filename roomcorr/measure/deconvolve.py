@@ -37,6 +37,7 @@ from dataclasses import dataclass
 import numpy as np
 import scipy.fft
 
+from roomcorr.analysis.bands import band_centres_hz
 from roomcorr.measure.sweep import Sweep, band_taper
 
 
@@ -209,7 +210,6 @@ def iec_band_centres(fraction: int, f_lo_hz: float, f_hi_hz: float) -> np.ndarra
     -------
     ndarray, shape (n_bands,)
     """
-    from roomcorr.analysis.bands import band_centres_hz
 
     fm = band_centres_hz(fraction, f_lo_hz, f_hi_hz)
     return fm[(fm >= f_lo_hz * (1 - 1e-9)) & (fm <= f_hi_hz * (1 + 1e-9))]

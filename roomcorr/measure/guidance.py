@@ -1,7 +1,7 @@
 """Where to put the microphone: advice that depends on the design to come.
 
 With several subwoofers the design chooses their delays and levels to make
-the seats agree (``roomcorr.design.subwoofers``); it can only judge seats it
+the seats agree (``roomcorr.design.system.subwoofers``); it can only judge seats it
 was shown, so the positions must cover the whole listening area (the width
 of a sofa and, with two rows, its depth), not cluster round one head. Pure
 functions (numbers in, text out).

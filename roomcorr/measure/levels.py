@@ -24,7 +24,12 @@ References
 
 from __future__ import annotations
 
+import re
+from pathlib import Path
+
 import numpy as np
+
+from roomcorr.errors import InputFileError
 
 #: dB SPL of 1 Pa RMS (20 log10(1 / 20e-6)).
 PA_DB_SPL = 93.9794
@@ -137,10 +142,7 @@ def sensitivity_from_file(path: str) -> float:
     Raises :class:`~roomcorr.errors.InputFileError` naming the file when there is
     none or it is not a number.
     """
-    import re
-    from pathlib import Path
 
-    from roomcorr.errors import InputFileError
 
     p = Path(path)
     try:

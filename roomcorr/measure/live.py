@@ -16,6 +16,9 @@ import os
 import sys
 from typing import Any, TextIO
 
+from rich.console import Console
+from rich.progress import BarColumn, Progress, TextColumn
+
 from roomcorr.measure.levels import to_spl
 
 STOP_NOTE = "Ctrl-C stops at once"
@@ -73,7 +76,6 @@ class LiveView(PlainView):
 
     def __init__(self, console: Any = None) -> None:
         super().__init__()
-        from rich.console import Console
 
         self.console = console or Console(highlight=False)
         self._progress: Any = None
@@ -82,8 +84,6 @@ class LiveView(PlainView):
         self.console.print(text, markup=False, highlight=False)
 
     def start(self, label: str, duration_s: float) -> None:
-        from rich.progress import BarColumn, Progress, TextColumn
-
         self._label, self._duration, self._peak = label, duration_s, -200.0
         self._progress = Progress(
             TextColumn("{task.description}"),

@@ -10,7 +10,9 @@ from __future__ import annotations
 from dataclasses import asdict, dataclass
 
 import numpy as np
+from scipy.signal import periodogram
 
+from roomcorr.analysis.bands import octave_centres_hz as centres
 from roomcorr.errors import RoomcorrError
 
 
@@ -34,7 +36,6 @@ def octave_centres_hz(f_lo_hz: float = 63.0, f_hi_hz: float = 8000.0) -> np.ndar
     -------
     ndarray, shape (n_bands,)
     """
-    from roomcorr.analysis.bands import octave_centres_hz as centres
 
     return centres(f_lo_hz, f_hi_hz)
 
@@ -75,7 +76,6 @@ def band_snr_db(
     dict
         ``{centre_hz: snr_db}`` (rounded centres as keys).
     """
-    from scipy.signal import periodogram
 
     if centres_hz is None:
         centres_hz = octave_centres_hz()

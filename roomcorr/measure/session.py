@@ -22,15 +22,18 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+import soundfile as sf
 
 from roomcorr.deliver.atomic import atomic_path, atomic_write_text
 from roomcorr.errors import InputFileError, OutputError, SettingsError
+from roomcorr.measure import capture
 from roomcorr.measure import deconvolve as dc
 from roomcorr.measure import levels as lv
 from roomcorr.measure import quality as q
 from roomcorr.measure import timing as tm
 from roomcorr.measure.settings import LEVEL_CAP_DBFS, MeasureSettings
 from roomcorr.measure.sweep import Sweep, synchronized_sweep
+from roomcorr.measure.through import filter_rows
 from roomcorr.rooms import refuse_finished_run
 
 RECORD_NAME = "measurement.json"
@@ -328,7 +331,6 @@ def write_record(path: Path, record: dict) -> None:
 
 def write_ir_wav(path: Path, data: np.ndarray, fs: int) -> None:
     """Write (n_channels, n_samples) as a float32 WAV atomically."""
-    import soundfile as sf
 
     with atomic_path(path) as tmp:
         sf.write(str(tmp), np.asarray(data, dtype=np.float32).T, fs, subtype="FLOAT", format="WAV")
@@ -501,7 +503,6 @@ def run_measurement(
     dict
         The record written to ``measurement.json``.
     """
-    from roomcorr.measure import capture
 
     ms.validate()
     out = Path(out_dir)
@@ -801,8 +802,6 @@ def _measure_one(
     sig, outs = capture_signal(layout, spk)
     scale = 1.0
     if thru is not None:
-        from roomcorr.measure.through import filter_rows
-
         sig, scale = filter_rows(sig, outs, tuple(ms.outputs), thru["firs"], ms.level_dbfs)
     ins = [ms.input]
     if ms.loopback:
@@ -919,7 +918,6 @@ def deconvolve_file(
     default from the sweep settings) is the timing reference. With ``align``
     the recording need not start with the playback: see :func:`align_recording`.
     """
-    import soundfile as sf
 
     rec_path = Path(recording)
     layout = load_layout(sweep_settings)

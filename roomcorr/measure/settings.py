@@ -12,6 +12,7 @@ import re
 from dataclasses import asdict, dataclass, fields
 from typing import Any
 
+from roomcorr.checked import checked_number
 from roomcorr.errors import SafetyError, SettingsError
 
 DEFAULT_LEVEL_DBFS = -20.0
@@ -198,7 +199,6 @@ class MeasureSettings:
         if unknown:
             raise SettingsError(f"{source}: unknown measure keys {sorted(unknown)}")
         d = dict(data)
-        from roomcorr.checked import checked_number
 
         for f in fields(cls):  # each value of its field's type, every number finite
             if f.name not in d:

@@ -27,12 +27,8 @@ from roomcorr.checked import regular_file
 from roomcorr.deliver.atomic import atomic_write_with
 from roomcorr.deliver.plan import RoutePlan, load_route_plan
 from roomcorr.errors import InputFileError, OutputError, SafetyError, SettingsError
+from roomcorr.playback.limits import LOWERED_PEAK_DBFS, SUBTYPES
 
-#: Output sample formats ``apply`` writes (libsndfile subtype names).
-SUBTYPES = ("FLOAT", "DOUBLE", "PCM_24")
-#: A rendering whose sample peak exceeds full scale is lowered to this peak (dBFS);
-#: 1 dB of room for peaks between samples (common practice, from memory).
-LOWERED_PEAK_DBFS = -1.0
 #: Above this size a WAV header cannot count the bytes (32-bit fields); RF64 is written.
 _WAV_LIMIT_BYTES = 4_000_000_000
 

@@ -14,6 +14,12 @@ import io
 from typing import Any
 
 import numpy as np
+from matplotlib import colormaps
+from matplotlib.backends.backend_agg import FigureCanvasAgg
+from matplotlib.colors import LinearSegmentedColormap
+from matplotlib.figure import Figure
+
+from roomcorr.analysis.average import power_average
 
 # Our own palette.
 INK = "#24313f"
@@ -52,8 +58,6 @@ def new_figure(
     rather than computed by a layout engine: that saves a full extra drawing
     pass per figure (about a quarter of the time, see benchmarks/bench_report.py).
     """
-    from matplotlib.backends.backend_agg import FigureCanvasAgg
-    from matplotlib.figure import Figure
 
     fig = Figure(figsize=(width_in, height_in))
     FigureCanvasAgg(fig)
@@ -207,7 +211,6 @@ def plot_predicted(
     for k, row in enumerate(predicted_db):
         ax.plot(freq_hz, row, color=AFTER, lw=0.8, alpha=0.8,
                 label="each position, corrected" if k == 0 else None)
-    from roomcorr.analysis.average import power_average
 
     after = power_average(np.asarray(predicted_db))[0]
     ax.plot(freq_hz, after, color="#1d5e3a", lw=2.4, label="average, corrected")
@@ -346,7 +349,6 @@ def plot_decay(bands: list[Any], title: str) -> Any:
     ----------
     bands : list of :class:`roomcorr.analysis.decay.BandDecay`
     """
-    from matplotlib import colormaps
 
     fig = new_figure(COLUMN_WIDTH_IN, 4.8, top=0.9, wspace=0.3, bottom=0.13)
     ax1, ax2 = fig.subplots(1, 2, width_ratios=[1.2, 1])
@@ -395,7 +397,6 @@ DECAY_MAP_STOPS: list[tuple[float, tuple[int, int, int]]] = [
 
 def decay_map_colormap() -> Any:
     """:data:`DECAY_MAP_STOPS` as a matplotlib colormap over ``DECAY_MAP_FLOOR_DB .. 0`` dB."""
-    from matplotlib.colors import LinearSegmentedColormap
 
     lo = DECAY_MAP_FLOOR_DB
     return LinearSegmentedColormap.from_list(
@@ -459,7 +460,6 @@ def plot_quality(recordings: list[dict[str, Any]], title: str) -> Any:
         ({band centre: dB}), ``hd_freq_hz`` (list), ``hd_db`` ({order: list of dB}),
         ``repeat_db`` (float or None).
     """
-    from matplotlib import colormaps
 
     fig = new_figure(9.0, 3.8, top=0.85, wspace=0.45, left=0.08, bottom=0.2)
     ax1, ax2, ax3 = fig.subplots(1, 3, width_ratios=[1, 1.3, 0.8])
@@ -521,7 +521,6 @@ def plot_iir(
     designed_db : ndarray
         Designed correction curve plus pre-gain.
     """
-    from matplotlib import colormaps
 
     fig = new_figure(COLUMN_WIDTH_IN, 5.0, bottom=0.26)
     ax = fig.add_subplot()
@@ -549,7 +548,7 @@ def plot_mixed_phase(
     Parameters
     ----------
     view : dict
-        :func:`roomcorr.design.mixedphase.direct_sound_views` of one channel:
+        :func:`roomcorr.design.phase.mixedphase.direct_sound_views` of one channel:
         ``gd_freq_hz``, ``gd_s`` (3, n_f), ``step_t_s``, ``step`` (3, n_t),
         ``ring_t_s``, ``ring_db``; the three rows are as measured, minimum
         phase, mixed phase.

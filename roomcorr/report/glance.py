@@ -15,9 +15,9 @@ from typing import Any
 import numpy as np
 
 from roomcorr.deliver.figures import fmt_db
-from roomcorr.design.area import LEVEL_BLEND_HZ
-from roomcorr.design.mixedphase import latency_sentence
-from roomcorr.design.target import REFERENCE_BAND_HZ
+from roomcorr.design.curve.area import LEVEL_BLEND_HZ
+from roomcorr.design.curve.target import REFERENCE_BAND_HZ
+from roomcorr.design.phase.mixedphase import latency_sentence
 from roomcorr.errors import RoomcorrError
 from roomcorr.pipeline import resolve_target
 from roomcorr.report.summary import NOTABLE_DB, fmt_hz, withheld_regions
@@ -201,8 +201,8 @@ def target_note(
     """One or two sentences on the drawn target: which shape, and its level step in the bass.
 
     The design places the target at the midrange's median level and, below
-    :data:`roomcorr.design.area.LEVEL_BLEND_HZ`, lowers it to the bass's own level when
-    that lies lower (:func:`roomcorr.design.area.choose_level`): the step seen near
+    :data:`roomcorr.design.curve.area.LEVEL_BLEND_HZ`, lowers it to the bass's own level when
+    that lies lower (:func:`roomcorr.design.curve.area.choose_level`): the step seen near
     250 Hz. Its size is the drawn target minus the shape, bass (below the blend)
     against midrange.
     """

@@ -13,897 +13,56 @@ from __future__ import annotations
 
 import base64
 import html
-import re
-from dataclasses import dataclass, field
+import os
+import shutil
 from pathlib import Path
 from typing import Any
 
-import numpy as np
-
-from roomcorr.analysis.decay import decay_method as _decay_method
-from roomcorr.analysis.decay import mean_band_decay as _mean_band_decay
+from roomcorr import rooms
 from roomcorr.checked import read_json
-from roomcorr.deliver.atomic import PathEscapeError, contained
-from roomcorr.deliver.figures import fmt_db
+from roomcorr.deliver.atomic import (
+    atomic_write_bytes,
+    atomic_write_text,
+    disk_error_text,
+    holds_working_folder,
+    sha256_of,
+    staged_copy,
+    staged_folder,
+)
+from roomcorr.deliver.export import (
+    check_folder_target,
+    design_differences,
+    load_design_curves,
+)
+from roomcorr.deliver.figures import figures_of_manifest
 from roomcorr.deliver.loading import file_groups
-from roomcorr.errors import RoomcorrError
+from roomcorr.deliver.manifest import add_manifest_entries, read_manifest, write_manifest
+from roomcorr.errors import InputFileError, OutputError, RoomcorrError
+from roomcorr.report import figures as fg
 from roomcorr.report import glance
+from roomcorr.report.causes import causes_section
+from roomcorr.report.channels import CHANNEL_SECTIONS, channel_section
+from roomcorr.report.context import channel_of, report_context
+from roomcorr.report.earlier import comparison_section, comparison_sentence
 from roomcorr.report.files import files_parts
-from roomcorr.report.summary import fmt_hz, summary_sentences, withheld_regions
+from roomcorr.report.impulse import TIME_INTRO_MIXED
+from roomcorr.report.parts import SECTION_TITLES, Figure, Report, Section
+from roomcorr.report.quality import quality_section
+from roomcorr.report.safety import safety_section
+from roomcorr.report.sources import (
+    header_facts,
+    read_iir,
+    read_quality,
+    read_through,
+    session_curves,
+)
+from roomcorr.report.summary import summary_sentences
+from roomcorr.report.system import system_sections
+from roomcorr.report.through import through_section, through_sentence
+from roomcorr.rooms import refuse_finished_run
 
 REPORT_HTML = "report.html"
 FIG_DIR = "report"
-
-#: Section ids, in page order (per channel sections get a ``-<channel>`` suffix).
-SECTION_TITLES = {
-    "overview": "At a glance",
-    "changes": "What the correction did, channel by channel",
-    "compare": "What changed since the earlier measurement",
-    "room": "The room as measured",
-    "result": "Predicted result at every position",
-    "filter": "The correction filter",
-    "time": "Impulse and step",
-    "phase": "Direct sound and latency (mixed phase)",
-    "decay": "Reverberation by octave",
-    "ringing": "Low-frequency ringing",
-    "iir": "The biquad version",
-    "quality": "How good the measurement was",
-    "through": "Measured through the design's filters",
-    "causes": "Why the peaks and dips are there",
-    "safety": "Safety and levels",
-    "files": "The files and how to load them",
-}
-
-
-@dataclass
-class Figure:
-    """One PNG figure of the report."""
-
-    key: str
-    caption: str
-    png: bytes
-
-
-@dataclass
-class Column:
-    """One loudspeaker channel's part of a section (shown side by side with the others)."""
-
-    channel: str
-    paragraphs: list[str] = field(default_factory=list)
-    figures: list[Figure] = field(default_factory=list)
-    table: list[list[str]] | None = None  # first row is the header
-    details: tuple[str, list[str]] | None = None  # (summary, paragraphs): folded away
-
-
-@dataclass
-class Section:
-    """One section of the page: text, table and figures, then one column per channel."""
-
-    id: str
-    title: str
-    paragraphs: list[str] = field(default_factory=list)
-    figures: list[Figure] = field(default_factory=list)
-    table: list[list[str]] | None = None  # first row is the header
-    columns: list[Column] = field(default_factory=list)
-
-    def all_figures(self) -> list[Figure]:
-        """The section's own figures, then every column's, in page order."""
-        return [*self.figures, *(f for c in self.columns for f in c.figures)]
-
-
-@dataclass
-class Report:
-    title: str
-    subtitle: str
-    sections: list[Section]
-    #: Lines under the title: date, run ids, positions, what was measured.
-    facts: list[str] = field(default_factory=list)
-
-
-def _fir_for(curves: dict[str, Any], index: int) -> tuple[np.ndarray | None, int | None]:
-    """The exported filter at the measurement rate (or the nearest rate)."""
-    firs = curves.get("firs") or {}
-    if not firs:
-        return None, None
-    fs = int(curves["fs_in"])
-    rate = fs if fs in firs else min(firs, key=lambda r: abs(r - fs))
-    return np.asarray(firs[rate][index], dtype=float), int(rate)
-
-
-def corrected_responses(irs: np.ndarray, fir: np.ndarray) -> np.ndarray:
-    """Each position's response convolved with the filter, cut to the original length.
-
-    Parameters
-    ----------
-    irs : ndarray, shape (n_positions, n_samples)
-    fir : ndarray, shape (n_taps,)
-
-    Returns
-    -------
-    corrected_irs : ndarray, shape (n_positions, n_samples)
-    """
-    from scipy.signal import fftconvolve
-
-    return fftconvolve(irs, fir[None, :], axes=-1)[:, : irs.shape[-1]]
-
-
-def predicted_responses(
-    irs: np.ndarray, fs: int, fir: np.ndarray, freq_hz: np.ndarray, measured_db: np.ndarray
-) -> tuple[np.ndarray, np.ndarray]:
-    """Each position convolved with the filter, analysed exactly like the measurement.
-
-    The pipeline's own position analysis (onset, frequency-dependent window,
-    smoothing) is run on the convolved and on the raw responses; their
-    difference is added to ``measured_db``, so the calibration applied to the
-    measurement carries over unchanged.
-
-    Parameters
-    ----------
-    irs : ndarray, shape (n_positions, n_samples)
-    fs : int
-    fir : ndarray, shape (n_taps,)
-    freq_hz : ndarray, shape (n_freqs,)
-    measured_db : ndarray, shape (n_positions, n_freqs)
-
-    Returns
-    -------
-    predicted_db : ndarray, shape (n_positions, n_freqs)
-    corrected_irs : ndarray, shape (n_positions, n_samples)
-        Convolved responses cut to the original length.
-    """
-    from roomcorr.pipeline import analyse_positions
-
-    conv = corrected_responses(irs, fir)
-    after, _ = analyse_positions(conv[:, None, :], fs, freq_hz)
-    before, _ = analyse_positions(irs[:, None, :], fs, freq_hz)
-    return measured_db + after[:, 0] - before[:, 0], conv
-
-
-def filter_response(
-    fir: np.ndarray, fs: int, freq_hz: np.ndarray, min_fft: int = 1 << 18
-) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Gain (dB), wrapped phase (degrees) and group delay (ms) of an FIR on ``freq_hz``.
-
-    One zero-padded FFT of the taps and one of ``n * h[n]``; group delay is
-    ``Re(FFT(n h) / FFT(h))`` (the standard FIR identity, as in
-    :func:`scipy.signal.group_delay`), read at ``freq_hz`` by linear
-    interpolation between bins at most ``fs / min_fft`` apart; where the delay
-    changes by more than 1 µs between two bins (a notch) the frequency is
-    evaluated exactly (:func:`scipy.signal.freqz`). Frequencies at or above
-    Nyquist give NaN.
-    """
-    h = np.asarray(fir, dtype=float)
-    f = np.asarray(freq_hz, dtype=float)
-    ok = f < fs / 2
-    n_fft = max(min_fft, 1 << int(np.ceil(np.log2(8 * h.size))))
-    spec = np.fft.rfft(h, n_fft)
-    ramp = np.fft.rfft(np.arange(h.size) * h, n_fft)
-    bins = np.fft.rfftfreq(n_fft, 1.0 / fs)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        gd_bins = np.real(ramp / spec)
-    re = np.interp(f[ok], bins, spec.real)
-    im = np.interp(f[ok], bins, spec.imag)
-    gain = np.full(f.shape, np.nan)
-    phase = np.full(f.shape, np.nan)
-    gd = np.full(f.shape, np.nan)
-    with np.errstate(divide="ignore"):
-        gain[ok] = 20 * np.log10(np.hypot(re, im))
-    phase[ok] = np.degrees(np.arctan2(im, re))
-    gd[ok] = np.interp(f[ok], bins, gd_bins) / fs * 1000.0
-    # Near a notch the delay changes fast between two bins and a line between
-    # them misreads it: evaluate those few frequencies exactly (scipy's freqz,
-    # the same identity as scipy.signal.group_delay).
-    idx = np.flatnonzero(ok)
-    k = np.clip(np.searchsorted(bins, f[idx]), 1, bins.size - 1)
-    sel = idx[np.abs(gd_bins[k] - gd_bins[k - 1]) > 0.001 * fs / 1000.0]
-    if sel.size:
-        from scipy.signal import freqz
-
-        _, s_sel = freqz(h, worN=f[sel], fs=fs)
-        _, r_sel = freqz(np.arange(h.size) * h, worN=f[sel], fs=fs)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            gain[sel] = 20 * np.log10(np.abs(s_sel))
-            gd[sel] = np.real(r_sel / s_sel) / fs * 1000.0
-        phase[sel] = np.degrees(np.angle(s_sel))
-    return gain, phase, gd
-
-
-def _decay_table(bands: list[Any]) -> list[list[str]]:
-    def cell(v: float, ok: bool) -> str:
-        if not np.isfinite(v):
-            return "n/a"
-        # rounded first to the 4 decimals the app's decay view stores, so both print the
-        # same two decimals (no double-rounding difference at x.xx5)
-        return f"{float(np.round(v, 4)):.2f}" + ("" if ok else " *")
-
-    rows = [["band (Hz)", "EDT (s)", "T20 (s)", "T30 (s)", "peak-to-noise (dB)"]]
-    for b in bands:
-        rows.append(
-            [
-                b.label,
-                cell(b.edt_s, b.valid["edt"]),
-                cell(b.t20_s, b.valid["t20"]),
-                cell(b.t30_s, b.valid["t30"]),
-                f"{b.dynamic_range_db:.0f}",
-            ]
-        )
-    return rows
-
-
-def quality_from_record(record: dict[str, Any]) -> list[dict[str, Any]]:
-    """Per-recording quality figures from a session's ``measurement.json`` record.
-
-    Returns
-    -------
-    list of dict
-        ``label`` ("pos1 out1"), ``snr_db``, ``hd_freq_hz``, ``hd_db``,
-        ``repeat_db`` and ``gates`` (list of gate dicts), one per recording.
-    """
-    out = []
-    for pos in record.get("positions", []) or []:
-        for ch in pos.get("channels", []) or []:
-            fig = ch.get("figures", {}) or {}
-            hd = fig.get("harmonic_distortion", {}) or {}
-            out.append(
-                {
-                    "label": f"pos{pos.get('position', '?')} out{ch.get('output', '?')}",
-                    "snr_db": fig.get("snr_db_per_octave") or {},
-                    "hd_freq_hz": hd.get("fundamental_hz") or [],
-                    "hd_db": hd.get("orders") or {},
-                    "repeat_db": fig.get("repeat_disagreement_db"),
-                    "gates": ch.get("gates") or [],
-                }
-            )
-    return out
-
-
-def _quality_section(recordings: list[dict[str, Any]], png: Any) -> Section:
-    from roomcorr.report import figures as fg
-
-    sec = Section("quality", SECTION_TITLES["quality"])
-    sec.paragraphs.append(
-        "Signal to noise per octave band (40 dB or more is comfortable), the loudspeaker's "
-        "harmonic distortion during the sweep (second harmonic solid, third dashed), and how "
-        "far repeated sweeps differed from their mean, in dB relative to the response "
-        "(lower is better)."
-    )
-    failed = [
-        f"{r['label']}: {g.get('name')} ({g.get('message', '')})"
-        for r in recordings
-        for g in r["gates"]
-        if not g.get("passed", True) and g.get("severity") != "warning"
-    ]
-    warned = [
-        f"{r['label']}: {g.get('message', g.get('name'))}"
-        for r in recordings
-        for g in r["gates"]
-        if not g.get("passed", True) and g.get("severity") == "warning"
-    ]
-    if warned:
-        sec.paragraphs.append("Warning: " + "; ".join(warned) + ".")
-    if failed:
-        sec.paragraphs.append("Checks that failed (kept on request): " + "; ".join(failed) + ".")
-    elif not warned:
-        sec.paragraphs.append("Every recording passed every quality check.")
-    rows = [["recording", "lowest SNR (dB)", "repeat difference (dB)", "checks passed"]]
-    for r in recordings:
-        snr = [float(v) for v in r["snr_db"].values() if v is not None]
-        rep = r["repeat_db"]
-        rows.append(
-            [
-                r["label"],
-                f"{min(snr):.0f}" if snr else "n/a",
-                "n/a" if rep is None else f"{float(rep):.1f}",
-                f"{sum(bool(g.get('passed')) for g in r['gates'])} of {len(r['gates'])}",
-            ]
-        )
-    sec.table = rows
-    sec.figures.append(
-        Figure("quality", "Measurement quality", png(fg.plot_quality(recordings, "Measurement")))
-    )
-    return sec
-
-
-def iir_response_db(doc: dict[str, Any], freq_hz: np.ndarray) -> np.ndarray:
-    """Response in dB of one biquad document (cascade and pre-gain) on ``freq_hz``.
-
-    Coefficients ``[b0, b1, b2, a1, a2]`` with ``a0 = 1``, evaluated with
-    :func:`scipy.signal.sosfreqz`; NaN at and above Nyquist.
-    """
-    from scipy.signal import sosfreqz
-
-    fs = float(doc["sample_rate"])
-    f = np.asarray(freq_hz, dtype=float)
-    out = np.full(f.shape, np.nan)
-    ok = f < fs / 2
-    gain = float(doc.get("pre_gain_linear", 10 ** (float(doc.get("pre_gain_db", 0)) / 20)))
-    secs = doc.get("sections") or []
-    if secs:
-        sos = np.array([[c[0], c[1], c[2], 1.0, c[3], c[4]]
-                        for c in (s["coefficients"] for s in secs)], dtype=float)
-        _, h = sosfreqz(sos, worN=f[ok], fs=fs)
-    else:
-        h = np.ones(int(ok.sum()))
-    with np.errstate(divide="ignore"):
-        out[ok] = 20 * np.log10(np.abs(h) * gain)
-    return out
-
-
-def _iir_column(x: _Channel, ctx: _Context) -> Column | None:
-    """The biquad version of one channel: both pre-gains, the sections by frequency, notes."""
-    from roomcorr.report import figures as fg
-
-    docs = (ctx.iir or {}).get(x.name)
-    if not docs or "correction_db" not in x.ch:
-        return None
-    freq = ctx.freq
-    col = Column(x.name)
-    cascades = {int(d["sample_rate"]): iir_response_db(d, freq) for d in docs}
-    fir_db = filter_response(x.fir, x.rate, freq)[0] if x.fir is not None else None
-    doc = min(docs, key=lambda d: abs(int(d["sample_rate"]) - 48000))
-    figs = doc.get("figures") or {}
-    iir_pre = float(doc.get("pre_gain_db", 0.0))
-    col.paragraphs.append(
-        f"{len(doc.get('sections') or [])} biquad sections (Audio EQ Cookbook forms) fitted to "
-        "the same correction, for players that take parametric filters instead of an FIR; "
-        "the table lists the sections at "
-        f"{doc['sample_rate']} Hz by frequency (# is the stage in the .csv). Peak gain "
-        f"{fmt_db(figs.get('peak_gain_db'), 2)}, "
-        f"worst-case gain {fmt_db(figs.get('worst_case_gain_db'), 2)}, fit error "
-        f"{fmt_db(figs.get('fit_rms_error_db'), 2)} rms."
-    )
-    from roomcorr.deliver.export_iir import pre_gain_note
-
-    col.paragraphs.append(pre_gain_note(iir_pre, ctx.pre_gain))
-    notes = [str(n) for n in doc.get("notes") or []]
-    if notes:
-        col.details = (f"Why {len(notes)} narrow section(s) sit beside refused dips", notes)
-    rows = [["#", "type", "frequency (Hz)", "gain (dB)", "Q"]]
-    secs = list(enumerate(doc.get("sections") or [], start=1))
-    for i, sct in sorted(secs, key=lambda t: (float(t[1].get("freq_hz", 0)), t[0])):
-        rows.append([str(i), str(sct.get("type")), f"{float(sct.get('freq_hz', 0)):.1f}",
-                     f"{float(sct.get('gain_db', 0)):.2f}", f"{float(sct.get('q', 0)):.2f}"])
-    col.table = rows
-    col.figures.append(
-        Figure(f"{x.name}-iir", f"Biquad cascade against the FIR, {x.name}",
-               ctx.png(fg.plot_iir(freq, cascades, fir_db,
-                                   np.asarray(x.ch["correction_db"]) + ctx.pre_gain, x.band,
-                                   f"Biquads: {x.name}")))
-    )
-    return col
-
-
-def _channel_sentences(block: list[str]) -> str:
-    """One channel's lines of :func:`roomcorr.report.compare.format_comparison` as plain sentences.
-
-    Lines indented by two spaces are items; deeper lines continue the item above
-    (band cells, peak and dip lines). Items are joined with "; ".
-    """
-    items: list[str] = []
-    for line in block:
-        text = re.sub(r"\s{2,}", ", ", line.strip())
-        if not text:
-            continue
-        if items and len(line) - len(line.lstrip()) > 2:
-            items[-1] += (" " if items[-1].endswith(":") else ", ") + text
-        else:
-            items.append(text)
-    return "; ".join(items)
-
-
-def _sentence(line: str) -> str:
-    text = line.strip()
-    return text[:1].upper() + text[1:]
-
-
-def comparison_section(res: dict[str, Any]) -> Section:
-    """The comparison section: both responses overlaid, and a table per channel.
-
-    Parameters
-    ----------
-    res : dict
-        :func:`roomcorr.app.compare.compare_measurements` result with ``with_curves=True``
-        (``before`` and ``after`` are shown as given).
-
-    Returns
-    -------
-    Section
-        Id ``compare``; one figure (key ``compare``, from
-        :func:`roomcorr.report.compare.comparison_png`); table rows ``channel, arrival
-        change (ms), distance change (m), level change (dB), what changed``, the
-        last column holding that channel's sentences of
-        :func:`roomcorr.report.compare.format_comparison`.
-    """
-    from roomcorr.report.compare import comparison_png, format_comparison
-
-    lines = format_comparison(res)
-    blocks: list[list[str]] = [[]]
-    for line in lines:
-        if line == "":
-            blocks.append([])
-        else:
-            blocks[-1].append(line)
-    chans = res["channels"]
-    sec = Section("compare", SECTION_TITLES["compare"])
-    sec.paragraphs.append(
-        f"The measurement behind this folder ({res['after']}) against the earlier one "
-        f"({res['before']}). Blue is before, orange after, both position-averaged and "
-        "smoothed to 1/24 octave, drawn relative to the earlier level between 100 Hz and "
-        "10 kHz; the right-hand panels mark peaks and dips below 500 Hz that appeared, moved "
-        "or vanished."
-    )
-    per_channel: list[str]
-    if len(blocks) == len(chans) + 2:  # header, one block per channel, filter check
-        sec.paragraphs.extend(_sentence(ln) for ln in blocks[0][2:])
-        per_channel = [_channel_sentences(b[1:]) for b in blocks[1:-1]]
-        sec.paragraphs.extend(_sentence(ln) for ln in blocks[-1])
-    else:  # layout not as expected: keep every line, nothing lost
-        sec.paragraphs.extend(_sentence(ln) for ln in lines[2:] if ln.strip())
-        per_channel = ["" for _ in chans]
-    rows = [["channel", "arrival change (ms)", "distance change (m)", "level change (dB)",
-             "what changed"]]
-    for ch, text in zip(chans, per_channel, strict=True):
-        dist = ch["distance_change_m"]
-        rows.append([str(ch["name"]), f"{ch['arrival_change_ms']:+.3f}",
-                     "unsure" if dist is None else f"{dist:+.3f}",
-                     f"{ch['level_change_db']:+.2f}", text])
-    sec.table = rows
-    sec.figures.append(
-        Figure("compare", "Before and after, both responses overlaid per channel",
-               comparison_png(res))
-    )
-    return sec
-
-
-def _comparison_sentence(res: dict[str, Any]) -> str:
-    parts = [
-        f"{ch['name']} "
-        + ("distance unsure" if ch["distance_change_m"] is None
-           else f"{ch['distance_change_m']:+.3f} m")
-        + f", {ch['level_change_db']:+.1f} dB"
-        for ch in res["channels"]
-    ]
-    move = res.get("move")
-    return (
-        f"Since the earlier measurement ({res['before']}): " + "; ".join(parts)
-        + " (distance and level changes; see the comparison section)."
-        + (f" Who moved: {move['sentence']}." if move else "")
-    )
-
-
-def _design_caps(settings: dict[str, Any] | None) -> dict[str, Any]:
-    d = (settings or {}).get("design", {}) if isinstance(settings, dict) else {}
-    return {
-        "max_boost_db": d.get("max_boost_db"),
-        "max_cut_db": d.get("max_cut_db"),
-        "ceiling_db": d.get("ceiling_db", 0.0),
-        "allow_gain": d.get("allow_gain", False),
-    }
-
-
-@dataclass
-class _Context:
-    """What every section of one report shares."""
-
-    freq: np.ndarray
-    fs: int
-    caps: dict[str, Any]
-    pre_gain: float
-    designed: bool
-    png: Any
-    iir: dict[str, list[dict[str, Any]]] | None
-    ringing_notes: list[str] = field(default_factory=list)
-    mixed: dict[str, Any] | None = None  # ``mixed_phase`` of load_design_curves, if any
-    target_spec: str | None = None  # the design's --target (preset name or file)
-    target_shape: np.ndarray | None = None  # its shape on ``freq``, when it can be read
-    #: The manifest's figures block (roomcorr/deliver/figures.py), when there is a manifest.
-    figures: dict[str, Any] | None = None
-
-
-@dataclass
-class _Channel:
-    """One channel's curves and what is computed from them once for all sections."""
-
-    ch: dict[str, Any]
-    index: int
-    name: str
-    tag: str
-    band: tuple[float, float] | None
-    pos_irs: np.ndarray | None
-    fir: np.ndarray | None = None
-    rate: int | None = None
-    predicted: np.ndarray | None = None
-    corrected: np.ndarray | None = None
-    how: str = ""
-
-
-def _channel(curves: dict[str, Any], ch: dict[str, Any], ctx: _Context) -> _Channel:
-    c = int(ch["index"])
-    irs = curves.get("irs")
-    x = _Channel(
-        ch=ch, index=c, name=str(ch["name"]),
-        tag=f"{ch['name']} ({len(ch['measured_db'])} positions)",
-        band=tuple(ch["band_hz"]) if "band_hz" in ch else None,
-        pos_irs=None if irs is None else np.asarray(irs)[:, c],
-    )
-    if ctx.designed:
-        x.fir, x.rate = _fir_for(curves, c)
-    if x.fir is not None and x.pos_irs is not None:
-        if x.rate == ctx.fs:
-            x.predicted, x.corrected = predicted_responses(
-                x.pos_irs, ctx.fs, x.fir, ctx.freq, ch["measured_db"]
-            )
-            x.how = "each measured response convolved with the exported filter"
-        else:  # no filter at the measurement rate: apply the filter's response
-            from roomcorr.design.fir import fir_response_db
-
-            x.predicted = ch["measured_db"] + fir_response_db(x.fir, x.rate, ctx.freq)[None, :]
-            x.how = f"the {x.rate} Hz filter's response added to each measured response"
-    return x
-
-
-def _target_note(x: _Channel, ctx: _Context) -> str:
-    """What the dashed target line is, beside each figure that draws it."""
-    return glance.target_note(ctx.freq, x.ch["target_db"], ctx.target_shape, ctx.target_spec)
-
-
-def _room_column(x: _Channel, ctx: _Context) -> Column | None:
-    from roomcorr.report import figures as fg
-
-    col = Column(x.name)
-    if x.ch.get("target_db") is not None:
-        col.paragraphs.append(_target_note(x, ctx))
-    col.figures.append(
-        Figure(
-            f"{x.name}-room",
-            f"Measured response, {x.name}",
-            ctx.png(
-                fg.plot_responses(
-                    ctx.freq, x.ch["measured_db"], x.ch["average_db"], x.ch.get("target_db"),
-                    x.band, ctx.caps["max_boost_db"], f"Measured: {x.tag}",
-                )
-            ),
-        )
-    )
-    return col
-
-
-def _result_column(x: _Channel, ctx: _Context) -> Column | None:
-    from roomcorr.report import figures as fg
-
-    if x.predicted is None:
-        return None
-    col = Column(x.name)
-    col.paragraphs.append(f"Predicted from {x.how}.")
-    col.paragraphs.append(_target_note(x, ctx))
-    col.figures.append(
-        Figure(
-            f"{x.name}-result",
-            f"Predicted result, {x.name}",
-            ctx.png(fg.plot_predicted(ctx.freq, x.predicted, x.ch["average_db"],
-                                      np.asarray(x.ch["target_db"]) + ctx.pre_gain, x.band,
-                                      f"Corrected: {x.tag}", ctx.pre_gain)),
-        )
-    )
-    return col
-
-
-_REFUSAL_REASONS = {
-    "cancellation": "the dip is a cancellation that moves with the listener, "
-    "so boost would burn headroom for nothing",
-    "spread": "the positions disagree too much there",
-    "cap": "the boost cap was reached",
-}
-
-
-def _filter_column(x: _Channel, ctx: _Context) -> Column | None:
-    from roomcorr.report import figures as fg
-
-    if x.fir is None or x.predicted is None:
-        return None
-    gain, phase, gd = filter_response(x.fir, x.rate, ctx.freq)
-    col = Column(x.name)
-    col.paragraphs.append(_filter_description(x, ctx))
-    regions = withheld_regions(ctx.freq, x.ch, ctx.caps["max_boost_db"])
-    for r in regions[:4]:
-        col.paragraphs.append(
-            f"Boost refused around {fmt_hz(r['freq_hz'])} "
-            f"({fmt_hz(r['lo_hz'])} to {fmt_hz(r['hi_hz'])}, "
-            f"{r['withheld_db']:.1f} dB withheld): {_REFUSAL_REASONS[r['reason']]}."
-        )
-    if not regions:
-        col.paragraphs.append("No boost was refused.")
-    col.figures.append(
-        Figure(
-            f"{x.name}-filter",
-            f"Filter magnitude, phase and group delay, {x.name}",
-            ctx.png(fg.plot_filter(ctx.freq, gain, phase, gd, x.ch["correction_db"],
-                                   x.ch["boost_withheld_db"], x.band, ctx.pre_gain, x.rate,
-                                   f"Filter: {x.name}")),
-        )
-    )
-    return col
-
-
-def _filter_description(x: _Channel, ctx: _Context) -> str:
-    """What the filter is: minimum phase, or mixed phase with latency and measured pre-ringing."""
-    pre = fmt_db((ctx.figures or {}).get("pre_gain_db", ctx.pre_gain), 2, True)
-    if not ctx.mixed:
-        return (
-            f"Minimum-phase FIR at {x.rate} Hz, {len(x.fir)} taps, pre-gain {pre} included; "
-            "a minimum-phase filter adds no latency and has no pre-ringing."
-        )
-    n = ctx.mixed["latency_samples"].get(x.rate)
-    lat = f"{ctx.mixed['latency_ms']:g} ms" + ("" if n is None else f" ({n} samples)")
-    ring = (ctx.figures or {}).get("pre_ringing_db")
-    ring_txt = (
-        "" if ring is None
-        else f"; its pre-ringing, measured, is at most {fmt_db(ring)} re its main peak"
-    )
-    return (
-        f"Mixed-phase FIR at {x.rate} Hz, {len(x.fir)} taps, latency {lat}, pre-gain {pre} "
-        f"included: minimum phase in the bass, and above it the loudspeaker's excess phase "
-        f"undone as well{ring_txt} (see the time and mixed-phase sections)."
-    )
-
-
-def _latency_samples_at(ctx: _Context, fs: int) -> int:
-    """Design latency in samples at ``fs`` (0 for minimum phase)."""
-    if not ctx.mixed:
-        return 0
-    n = ctx.mixed["latency_samples"].get(fs)
-    if n is None:
-        return int(round(float(ctx.mixed["latency_ms"]) * fs / 1000.0))
-    return int(n)
-
-
-def _time_column(x: _Channel, ctx: _Context) -> Column | None:
-    from roomcorr.report import figures as fg
-
-    if x.corrected is None or x.fir is None or x.pos_irs is None:
-        return None
-    col = Column(x.name)
-    after = np.asarray(x.corrected[0])
-    lat = _latency_samples_at(ctx, ctx.fs)
-    if lat:  # drawn aligned: the design latency is taken out, so only pre-ringing leads
-        after = np.concatenate([after[lat:], np.zeros(min(lat, after.size))])
-    col.figures.append(
-        Figure(
-            f"{x.name}-time",
-            f"Impulse and step response, {x.name}",
-            ctx.png(fg.plot_time(ctx.fs, x.fir, x.pos_irs[0], after,
-                                 f"Time response: {x.name}")),
-        )
-    )
-    return col
-
-
-def _phase_column(x: _Channel, ctx: _Context) -> Column | None:
-    """The mixed-phase part of one channel (``None`` for a minimum-phase design)."""
-    from roomcorr.design.mixedphase import PRE_RING_LIMIT_DB, PRE_RING_S
-    from roomcorr.report import figures as fg
-
-    mixed = ctx.mixed
-    if not mixed or x.index >= len(mixed["channels"]):
-        return None
-    ch = mixed["channels"][x.index]
-    col = Column(x.name)
-    lo, hi = (float(v) for v in ch["band_hz"])
-    col.paragraphs.append(
-        f"The loudspeaker's excess phase (the measured phase minus that of the minimum-phase "
-        f"response with the same magnitude) was estimated from the direct sound of every "
-        f"position, before the first strong reflection, and undone between {fmt_hz(lo)} and "
-        f"{fmt_hz(hi)} where the positions agree. Below that the room owns the phase, and "
-        "the filter leaves it alone (a pure delay). The magnitude is the minimum-phase "
-        "design's. From 300 Hz up (fading in from 150 Hz) the filter also takes out the group "
-        "delay of its own magnitude correction, as far as the pre-ringing limit allows, so "
-        "the corrected direct sound arrives at once at every frequency; in the bass it stays "
-        "minimum phase."
-    )
-    if "view_gd_s" in ch:
-        view = {k[len("view_") :]: v for k, v in ch.items() if k.startswith("view_")}
-        col.figures.append(
-            Figure(
-                f"{x.name}-phase",
-                f"Direct sound before and after, and pre-ringing, {x.name}",
-                ctx.png(
-                    fg.plot_mixed_phase(
-                        view,
-                        float(mixed["latency_ms"]),
-                        PRE_RING_LIMIT_DB,
-                        1000 * PRE_RING_S,
-                        f"Mixed phase: {x.name}",
-                    )
-                ),
-            )
-        )
-    else:
-        col.paragraphs.append(
-            "No filter was designed at the measurement's sample rate, so the direct sound "
-            "could not be shown before and after."
-        )
-    return col  # the latency and its caution are stated once, in the overview
-
-
-def _position_decay(x: _Channel, ctx: _Context) -> list[Any]:
-    """Octave-band decay averaged over positions (empty when it cannot be analysed)."""
-    from roomcorr.analysis.decay import octave_band_decay
-
-    if x.pos_irs is None:
-        return []
-    try:
-        per_pos = [octave_band_decay(x.pos_irs[p], ctx.fs) for p in range(len(x.pos_irs))]
-    except ValueError:  # too short or silent: no decay analysis possible
-        return []
-    return _mean_band_decay(per_pos) if per_pos and per_pos[0] else []
-
-
-def _decay_column(x: _Channel, ctx: _Context) -> Column | None:
-    from roomcorr.report import figures as fg
-
-    bands = _position_decay(x, ctx)
-    if not bands:
-        return None
-    col = Column(x.name)
-    col.table = _decay_table(bands)
-    col.figures.append(
-        Figure(f"{x.name}-decay", f"Decay curves and times, {x.name}",
-               ctx.png(fg.plot_decay(bands, f"Decay: {x.name}")))
-    )
-    return col
-
-
-def _ringing_column(x: _Channel, ctx: _Context) -> Column | None:
-    from roomcorr.analysis.decay import low_frequency_decay_map, ringing_modes
-    from roomcorr.report import figures as fg
-
-    if x.pos_irs is None or not _position_decay(x, ctx):
-        return None
-    before_map = low_frequency_decay_map(x.pos_irs[0], ctx.fs)
-    modes = ringing_modes(before_map)
-    maps = [("as measured", before_map)]
-    if x.corrected is not None:
-        maps.append(("corrected", low_frequency_decay_map(x.corrected[0], ctx.fs)))
-    col = Column(x.name)
-    if modes:
-        txt = ", ".join(f"{f0:.0f} Hz ({t0:.2f} s)" for f0, t0 in modes)
-        col.paragraphs.append(
-            f"Peaks still loudest 200 ms after the sound stops (60 dB decay time): {txt}."
-        )
-        ctx.ringing_notes.append(
-            f"{x.name} around {fmt_hz(modes[0][0])} ({modes[0][1]:.2f} s to decay 60 dB)"
-        )
-    col.figures.append(
-        Figure(f"{x.name}-ringing", f"Low-frequency decay map, {x.name}",
-               ctx.png(fg.plot_decay_map(maps, modes, f"Low-frequency decay: {x.name}")))
-    )
-    return col
-
-
-#: Intro of the time section for a mixed-phase design (instead of the minimum-phase one).
-TIME_INTRO_MIXED = (
-    "Top: the filter alone. Bottom: the first position before and after correction, the "
-    "corrected response drawn with the design latency taken out so that both main peaks sit "
-    "at 0 ms. Anything left of 0 ms is pre-ringing: a mixed-phase filter has some (measured "
-    "in the mixed-phase section)."
-)
-
-#: Sections with one column per channel: (id, text above the columns, column builder).
-#: Add a per-channel section by writing a ``_xxx_column(x, ctx)`` and listing it here.
-CHANNEL_SECTIONS: list[tuple[str, str, Any]] = [
-    ("room", "Thin lines are the individual microphone positions, the thick line is their "
-     "power average. Grey areas lie outside the correction band.", _room_column),
-    ("result", "Analysed with the same window and smoothing as the measurement. The filters "
-     "include the pre-gain, so the target is drawn lowered by it. Lines close to the target at "
-     "every position mean the correction holds across the listening area.", _result_column),
-    ("filter", "Pink areas mark frequencies where boost was wanted but refused.",
-     _filter_column),
-    ("time", "Top: the filter alone. Bottom: the first position before and after correction. "
-     "Anything left of 0 ms is pre-ringing; a minimum-phase filter has none.", _time_column),
-    ("phase", "", _phase_column),
-    ("iir", "", _iir_column),
-    ("decay", _decay_method() + ". Per octave band: the noise floor is subtracted, the "
-     "backward integration stops where the late decay meets the noise and the energy it "
-     "would still have had is added back. EDT from 0 to -10 dB, T20 from -5 to -25 dB, T30 "
-     "from -5 to -35 dB, each extrapolated to 60 dB (ISO 3382-1), averaged over positions; "
-     "curves show the first position. * marks a value whose range comes within 10 dB of the "
-     "noise floor.", _decay_column),
-    ("ringing", "Sliding-window spectra of the first position from 20 to 300 Hz: each row "
-     "starts 10 ms later than the one below. A bright ridge reaching high up is a room mode "
-     "that keeps ringing after the sound stops.", _ringing_column),
-]
-
-
-def channel_section(
-    sec_id: str, intro: str, chans: list[_Channel], ctx: _Context, build: Any
-) -> Section | None:
-    """A section with one column per channel (None when no channel has anything to show)."""
-    cols = [c for c in (build(x, ctx) for x in chans) if c is not None]
-    if not cols:
-        return None
-    sec = Section(sec_id, SECTION_TITLES[sec_id], columns=cols)
-    if intro:
-        sec.paragraphs.append(intro)
-    return sec
-
-
-def _safety_section(chans: list[_Channel], curves: dict[str, Any], ctx: _Context) -> Section:
-    from roomcorr.design.fir import worst_case_gain_db
-    from roomcorr.design.safety import CAUTIONS, PEAK_BAND, full_band_peak_gain_db
-
-    caps = ctx.caps
-    if ctx.figures is not None:  # the manifest's figures, never recomputed here
-        rows = [["channel", "rate (Hz)", "taps", "largest boost (dB)", "peak gain (dB)",
-                 "worst-case gain (dB)"]]
-        for c in ctx.figures.get("filters", []):
-            rows.append([str(c["name"]), str(c["sample_rate"]), str(c["taps"]),
-                         fmt_db(c["largest_boost_db"], 2, unit=False),
-                         fmt_db(c["peak_gain_db"], 2, True, unit=False),
-                         fmt_db(c["worst_case_gain_db"], 2, True, unit=False)])
-    else:  # curves without a manifest (a design in memory): the filters' own figures
-        rows = [["channel", "rate (Hz)", "taps", "peak gain (dB)", "worst-case gain (dB)"]]
-        for x in chans:
-            if x.fir is None:
-                continue
-            for r in sorted(curves["firs"]):
-                h = np.asarray(curves["firs"][r][x.index], dtype=float)
-                rows.append([x.name, str(r), str(h.size),
-                             fmt_db(full_band_peak_gain_db(h, r), 2, True, unit=False),
-                             fmt_db(worst_case_gain_db(h), 2, True, unit=False)])
-    saf = Section("safety", SECTION_TITLES["safety"])
-    mb = "n/a" if caps["max_boost_db"] is None else f"{caps['max_boost_db']:g} dB"
-    mc = "n/a" if caps["max_cut_db"] is None else f"{caps['max_cut_db']:g} dB"
-    saf.paragraphs.append(
-        f"Pre-gain {fmt_db((ctx.figures or {}).get('pre_gain_db', ctx.pre_gain), 2, True)} "
-        "(common to all channels and rates). Caps in force: "
-        f"boost at most {mb}, cut at most {mc}, peak gain ceiling "
-        f"{caps['ceiling_db']:g} dB" + (" (gain allowed)." if caps["allow_gain"] else ".")
-    )
-    saf.paragraphs.append(
-        f"Largest boost is a filter's largest gain before the pre-gain and peak gain its "
-        f"largest gain with it, both anywhere from {PEAK_BAND} (not only between "
-        "20 Hz and 20 kHz), largest over the sample rates; worst-case gain (20 log10 of the "
-        "sum of |taps|) is the most any input waveform could grow."
-    )
-    if ctx.iir:
-        saf.paragraphs.append(
-            "The biquad files carry their own pre-gain (see the biquad section): use each "
-            "pre-gain with its own filters only."
-        )
-    saf.paragraphs.extend(CAUTIONS)
-    saf.table = rows
-    return saf
-
-
-def report_context(
-    curves: dict[str, Any],
-    settings: dict[str, Any] | None = None,
-    png: Any = None,
-    iir: dict[str, list[dict[str, Any]]] | None = None,
-    figures: dict[str, Any] | None = None,
-) -> _Context:
-    """What every section of a report of ``curves`` shares (arguments as :func:`build_report`).
-
-    Each channel's own data is then ``_channel(curves, ch, ctx)``.
-    """
-    designed = bool(curves.get("firs")) and all("correction_db" in ch for ch in curves["channels"])
-    freq = np.asarray(curves["freq_hz"], dtype=float)
-    design = (settings or {}).get("design", {}) if isinstance(settings, dict) else {}
-    spec = design.get("target") if isinstance(design, dict) else None
-    spec = str(spec) if spec else None
-    return _Context(
-        freq=freq,
-        fs=int(curves["fs_in"]),
-        caps=_design_caps(settings),
-        pre_gain=float(curves.get("pre_gain_db", 0.0)),
-        designed=designed,
-        png=png,
-        iir=iir,
-        mixed=curves.get("mixed_phase"),
-        target_spec=spec,
-        target_shape=glance.target_shape_db(freq, spec),
-        figures=figures,
-    )
 
 
 def build_report(
@@ -967,7 +126,6 @@ def build_report(
     -------
     Report
     """
-    from roomcorr.report import figures as fg
 
     def png(fig: Any) -> bytes:
         return fg.png_bytes(fig, dpi=dpi)
@@ -986,7 +144,7 @@ def build_report(
     sections = [overview]
     if comparison is not None:
         sections.append(comparison_section(comparison))
-        overview.paragraphs.append(_comparison_sentence(comparison))
+        overview.paragraphs.append(comparison_sentence(comparison))
     if designed:  # every sentence, channel by channel, below the short overview
         changes = Section("changes", SECTION_TITLES["changes"])
         changes.paragraphs.extend(
@@ -994,10 +152,8 @@ def build_report(
         )
         sections.append(changes)
     if designed:
-        from roomcorr.report.system import system_sections
-
         sections.extend(system_sections(curves, png))
-    chans = [_channel(curves, ch, ctx) for ch in curves["channels"]]
+    chans = [channel_of(curves, ch, ctx) for ch in curves["channels"]]
     for sec_id, intro, build in CHANNEL_SECTIONS:
         if sec_id == "time" and ctx.mixed:
             intro = TIME_INTRO_MIXED
@@ -1012,98 +168,17 @@ def build_report(
     if causes and any(e.get("causes") for e in causes):
         sections.append(causes_section(causes))
     if quality:
-        sections.append(_quality_section(quality, png))
+        sections.append(quality_section(quality, png))
     if through and "measured_db" in through:
         sections.append(through_section(through, [str(c["name"]) for c in curves["channels"]], png))
-        overview.paragraphs.append(_through_sentence(through))
+        overview.paragraphs.append(through_sentence(through))
     if designed:
-        sections.append(_safety_section(chans, curves, ctx))
+        sections.append(safety_section(chans, curves, ctx))
     if designed and files is not None:
         table, paragraphs = files_parts(*files)
         sections.append(Section("files", SECTION_TITLES["files"], paragraphs, table=table))
     return Report(title=title, subtitle=f"measured at {ctx.fs} Hz", sections=sections,
                   facts=list(facts or []))
-
-
-def causes_section(causes: list[dict[str, Any]]) -> Section:
-    """The cause of each peak and withheld dip, as stored in the manifest."""
-    sec = Section("causes", SECTION_TITLES["causes"])
-    sec.paragraphs.append(
-        "A physical cause for each significant peak and each dip whose boost was withheld: "
-        "a room mode, a nearby surface's reflection cancelling the direct sound, a "
-        "cancellation that differs between positions, or unknown. Filters can lower peaks; "
-        "dips move only when a loudspeaker or the seat moves (roomcorr advise)."
-    )
-    table = [["Channel", "Frequency", "Kind", "Cause"]]
-    for entry in causes:
-        for item in entry.get("causes", []):
-            table.append([str(entry.get("channel", "")), f"{float(item['freq_hz']):.0f} Hz",
-                          str(item.get("kind", "")), str(item.get("text", ""))])
-    sec.table = table
-    return sec
-
-
-def _through_ranges(ranges: list[list[float]]) -> str:
-    return ", ".join(f"{fmt_hz(lo)} to {fmt_hz(hi)}" for lo, hi in ranges[:5]) or "nowhere"
-
-
-def through_section(check: dict[str, Any], names: list[str], png: Any) -> Section:
-    """Measured through the filters against the design's prediction, one column per channel.
-
-    ``check`` is ``through.check`` of ``measurement.json``: ``freq_hz``,
-    ``measured_db`` and ``predicted_db`` (positions x channels x freqs, 1/6
-    octave), ``positions``, ``limit_db`` and ``over_limit_hz`` (per position and
-    channel, the ranges where the two differ by more than ``limit_db``).
-    """
-    from roomcorr.report import figures as fg
-
-    freq = np.asarray(check["freq_hz"], dtype=float)
-    meas = np.asarray(check["measured_db"], dtype=float)
-    pred = np.asarray(check["predicted_db"], dtype=float)
-    limit = float(check.get("limit_db", 1.0))
-    positions = list(check.get("positions") or range(1, meas.shape[0] + 1))
-    over = check.get("over_limit_hz") or []
-    sec = Section("through", SECTION_TITLES["through"])
-    sec.paragraphs.append(
-        "The sweeps were played through the design's filters (pre-gain included) and "
-        "compared with what the design predicted for the same positions "
-        f"({float(check.get('smoothing_oct', 1 / 6)):.2g}-octave smoothing). Where the two "
-        f"differ by more than {limit:g} dB, the room or the microphone position changed, or "
-        "the filters are not loaded as designed."
-    )
-    for c in range(meas.shape[1]):
-        name = names[c] if c < len(names) else f"channel {c + 1}"
-        col = Column(name)
-        for i, pos in enumerate(positions):
-            ranges = over[i][c] if i < len(over) and c < len(over[i]) else []
-            col.paragraphs.append(
-                f"Position {pos}: more than {limit:g} dB apart {_through_ranges(ranges)}."
-            )
-        col.figures.append(
-            Figure(
-                f"{name}-through",
-                f"Measured through the filters against the prediction, {name}",
-                png(fg.plot_through(freq, meas[:, c], pred[:, c], positions, f"Through: {name}")),
-            )
-        )
-        sec.columns.append(col)
-    return sec
-
-
-def _through_sentence(check: dict[str, Any]) -> str:
-    over = check.get("over_limit_hz") or []
-    n_bad = sum(1 for per_pos in over for ranges in per_pos if ranges)
-    n_all = sum(len(per_pos) for per_pos in over)
-    limit = float(check.get("limit_db", 1.0))
-    if n_bad == 0:
-        return (
-            f"Measured through the filters, every position stays within {limit:g} dB of the "
-            "design's prediction."
-        )
-    return (
-        f"Measured through the filters, {n_bad} of {n_all} loudspeaker positions differ from "
-        f"the design's prediction by more than {limit:g} dB somewhere (see that section)."
-    )
 
 
 _CSS = """
@@ -1200,245 +275,9 @@ def render_html(report: Report) -> str:
     return "\n".join(parts)
 
 
-def _read_through(folder: Path) -> dict[str, Any] | None:
-    """``through.check`` of a measurement made with ``measure --through`` (None otherwise)."""
-    from roomcorr.rooms import measurement_record
-
-    data = measurement_record(folder)  # a damaged record is one line, never a traceback
-    check = (data.get("through") or {}).get("check") if data is not None else None
-    return check if isinstance(check, dict) and "measured_db" in check else None
-
-
-def _read_quality(folder: Path) -> list[dict[str, Any]] | None:
-    from roomcorr.rooms import measurement_record
-
-    data = measurement_record(folder)  # a damaged record is one line, never a traceback
-    return quality_from_record(data) if data is not None else None
-
-
-def _read_iir(folder: Path) -> dict[str, list[dict[str, Any]]] | None:
-    """The biquad documents ``iir/<rate>/<name>.json`` of a design folder, by channel name."""
-    out: dict[str, list[dict[str, Any]]] = {}
-    for p in sorted(folder.glob("iir/*/*.json")):
-        try:
-            doc = read_json(p, "biquad file")
-        except RoomcorrError:
-            continue
-        if isinstance(doc, dict) and doc.get("format") == "roomcorr-iir":
-            out.setdefault(str(doc.get("channel_name", p.stem)), []).append(doc)
-    return out or None
-
-
-def _session_curves(folder: Path) -> dict[str, Any]:
-    """Curves of a measurement session folder (IR WAVs, no design)."""
-    from roomcorr.analysis.average import power_average
-    from roomcorr.audio_io import read_ir_set
-    from roomcorr.errors import InputFileError
-    from roomcorr.grid import log_grid
-    from roomcorr.pipeline import analyse_positions, default_channel_names
-    from roomcorr.rooms import measurement_record
-
-    wavs: list[Path] = []
-    data = measurement_record(folder)  # the session's own list of impulse responses, in order
-    if data is not None:
-        try:
-            positions = data.get("positions", [])
-            wavs = [contained(folder, p["file"]) for p in positions if p.get("file")]
-        except PathEscapeError as exc:
-            raise InputFileError(f"{folder / 'measurement.json'}: damaged record: {exc}") from None
-    if not wavs:
-        wavs = sorted(p for p in folder.glob("*.wav"))
-    if not wavs:
-        raise InputFileError(
-            f"{folder}: neither a design folder (manifest.json, design.npz) nor a measurement "
-            "folder (impulse-response WAVs); point report at one of those"
-        )
-    irs, fs, _ = read_ir_set(wavs)
-    freq = log_grid()
-    measured, _ = analyse_positions(irs, fs, freq)
-    channels = []
-    for c, name in enumerate(default_channel_names(irs.shape[1])):
-        avg, spread = power_average(measured[:, c])
-        channels.append({"index": c, "name": name, "measured_db": measured[:, c],
-                         "average_db": avg, "spread_db": spread})
-    return {"freq_hz": freq, "fs_in": fs, "pre_gain_db": 0.0, "irs": irs, "firs": {},
-            "channels": channels}
-
-
-def _how_measured(folder: Path) -> str:
-    """The sweep of a measurement folder's record, or that its responses came as WAV files."""
-    try:
-        record = read_json(folder / "measurement.json", "measurement.json")
-        ms = record["settings"]
-        return (
-            f"sweeps {float(ms['f_start_hz']):g} Hz to {float(ms['f_end_hz']):g} Hz, "
-            f"{float(ms['sweep_s']):g} s, peak {float(ms['level_dbfs']):g} dBFS, "
-            f"{int(ms['repeats'])} per loudspeaker"
-        )
-    except (RoomcorrError, OSError, ValueError, KeyError, TypeError):
-        return "impulse responses read from WAV files"
-
-
-def _facts(d: Path, manifest: dict[str, Any] | None, curves: dict[str, Any]) -> list[str]:
-    """The header's lines for a design (``manifest`` given) or measurement folder."""
-    names = [str(ch["name"]) for ch in curves["channels"]]
-    if manifest is not None:
-        sources = [Path(str(m)) for m in manifest.get("measurements") or []]
-        positions = [p.stem for p in sources]
-        measured_in = sources[0].parent if sources else None
-        m_id = manifest.get("measurement")
-        m_id = str(m_id) if m_id else (measured_in.name if measured_in is not None else None)
-    else:
-        positions = [p.stem for p in sorted(d.glob("*.wav"))]
-        measured_in, m_id = d, None
-    what = _how_measured(measured_in) if measured_in is not None else None
-    return glance.header_lines(d.name, manifest is not None, m_id, positions, names,
-                               int(curves["fs_in"]), what)
-
-
-def _complete(run_dir: Path) -> bool:
-    from roomcorr.rooms import COMPLETE_MARKER
-
-    try:
-        data = read_json(run_dir / COMPLETE_MARKER, COMPLETE_MARKER)
-    except RoomcorrError:
-        return False
-    return isinstance(data, dict) and data.get("complete") is True
-
-
-def _source_measurement(d: Path, room: Any) -> tuple[Any, Any]:
-    """(room, the measurement behind folder ``d``) or (room, None).
-
-    The measurement is a folder (a measurement run, or ``d`` itself when it is
-    a measurement folder) or, for a design outside a room, the list of IR files
-    in its manifest.
-    """
-    from roomcorr import rooms
-
-    if not ((d / "manifest.json").is_file() and (d / "design.npz").is_file()):
-        return room, d
-    try:
-        manifest = read_json(d / "manifest.json", "manifest")
-    except RoomcorrError:
-        manifest = {}
-    if not isinstance(manifest, dict):
-        manifest = {}
-    if room is not None and d.parent == room.designs_dir.resolve():
-        run = next((r for r in rooms.list_runs(room, "design") if r.path.resolve() == d), None)
-        ref = (run.marker.get("info", {}).get("measurement") if run else None) or manifest.get(
-            "measurement"
-        )
-        if not ref and run is not None:
-            ref = rooms.design_source(run)
-        if ref:
-            cand = room.measurements_dir / Path(str(ref)).name
-            if cand.is_dir():
-                return room, cand
-    files = manifest.get("measurements")
-    if isinstance(files, list) and files:
-        paths = [Path(str(f)) if Path(str(f)).is_absolute() else Path.cwd() / str(f)
-                 for f in files]
-        parents = {q.parent.resolve() for q in paths}
-        if len(parents) == 1:  # all from one measurement run of a room: use that room
-            parent = parents.pop()
-            other = rooms.find_room(parent)
-            if other is not None and parent.parent == other.measurements_dir.resolve():
-                return other, parent
-        if all(q.is_file() for q in paths):
-            return room, [str(q) for q in paths]
-    return room, None
-
-
-def _earlier_measurement(room: Any, after: Any) -> Path | None:
-    """The newest complete measurement run of ``room`` older than run folder ``after``."""
-    from roomcorr import rooms
-
-    if room is None or not isinstance(after, Path):
-        return None
-    after = after.resolve()
-    if after.parent != room.measurements_dir.resolve():
-        return None
-    runs = rooms.list_runs(room, "measurement")
-    idx = next((i for i, r in enumerate(runs) if r.path.resolve() == after), None)
-    if idx is None:
-        return None
-    earlier = [r for r in runs[:idx] if r.complete]
-    return earlier[-1].path if earlier else None
-
-
-def _label(ref: Any, room: Any) -> str:
-    if isinstance(ref, list):
-        return ", ".join(Path(x).name for x in ref)
-    p = Path(ref).resolve()
-    if room is not None:
-        try:
-            return p.relative_to(room.root.resolve()).as_posix()
-        except ValueError:
-            pass
-    return str(p)
-
-
-def report_comparison(
-    folder: str | Path, compare_with: str | Path | None = None
-) -> dict[str, Any] | None:
-    """The comparison for the report of ``folder``, or None when none is meaningful.
-
-    Parameters
-    ----------
-    folder : path
-        A run folder of a room (a design whose source measurement is recorded
-        in its ``complete.json`` info or manifest, or a measurement), or any
-        design or measurement folder when ``compare_with`` is given.
-    compare_with : path or str, optional
-        The earlier measurement: a run id of the room, a measurement folder or a
-        WAV file. Default: the newest complete measurement of the room older
-        than the one behind ``folder``.
-
-    Returns
-    -------
-    dict or None
-        :func:`roomcorr.app.compare.compare_measurements` result with curves, with
-        ``before`` and ``after`` shortened to paths inside the room. None
-        without an earlier measurement (or when the automatic comparison is not
-        possible, e.g. a different number of loudspeakers).
-
-    Raises
-    ------
-    InputFileError
-        Only when ``compare_with`` is given and cannot be used.
-    """
-    from roomcorr import rooms
-    from roomcorr.app.compare import compare_measurements
-    from roomcorr.errors import InputFileError, RoomcorrError
-
-    d = Path(folder).resolve()
-    room, after = _source_measurement(d, rooms.find_room(d))
-    if compare_with is None:
-        before: Any = _earlier_measurement(room, after)
-        if before is None:
-            return None
-        try:
-            res = compare_measurements(before, after, room=room, with_curves=True)
-        except RoomcorrError:
-            return None
-    else:
-        if after is None:
-            raise InputFileError(
-                f"--compare-with: {d} records no measurement it was made from; "
-                "report a measurement folder, or a design that names its measurement"
-            )
-        before = rooms.resolve_run(room or rooms.find_room(), compare_with)
-        res = compare_measurements(before, after, room=room, with_curves=True)
-    res["before"] = _label(before, room)
-    res["after"] = _label(after, room)
-    return res
-
-
 def _ours(d: Path) -> bool:
     """Whether folder ``d`` was written by roomcorr (a design, a measurement or a room run),
     so its report may go into it; someone else's folder of WAVs is never written to."""
-    from roomcorr.deliver.export import read_manifest
-    from roomcorr.errors import OutputError
 
     if (d / "complete.json").is_file():
         return True
@@ -1468,9 +307,6 @@ def report_destination(folder: str | Path, out_dir: str | Path | None = None) ->
         For a destination that is a link, a file, a finished room run (other
         than the reported run itself), or a folder holding other files.
     """
-    from roomcorr.deliver.export import check_folder_target
-    from roomcorr.errors import OutputError
-    from roomcorr.rooms import refuse_finished_run
 
     d = Path(folder)
     if out_dir is None:
@@ -1494,10 +330,20 @@ def report_destination(folder: str | Path, out_dir: str | Path | None = None) ->
     return dest
 
 
+def check_report_folder(folder: str | Path) -> None:
+    """Raise :class:`~roomcorr.errors.InputFileError` unless ``folder`` can be reported:
+    it must exist, and must not be a damaged run of a room (named, not reported)."""
+
+    d = Path(folder)
+    if not d.is_dir():
+        raise InputFileError(f"{d}: no such folder; give a design or measurement folder")
+    rooms.verified(rooms.find_room(d), d)
+
+
 def write_report(
     folder: str | Path,
     dpi: int = 90,
-    compare_with: str | Path | None = None,
+    comparison: dict[str, Any] | None = None,
     out_dir: str | Path | None = None,
 ) -> Path:
     """Write ``report.html`` and ``report/*.png`` about a design or measurement folder.
@@ -1509,10 +355,10 @@ def write_report(
         measurement session folder (impulse-response WAVs, optional
         ``measurement.json``).
     dpi : int
-    compare_with : path or str, optional
-        Earlier measurement for the comparison section (see
-        :func:`report_comparison`); by default a run folder of a room is
-        compared with the room's previous complete measurement, if any.
+    comparison : dict, optional
+        The comparison section's data
+        (:func:`roomcorr.app.report.report_comparison` works it out); without
+        it the report has no comparison section.
     out_dir : path, optional
         Where to write (see :func:`report_destination` for the default).
 
@@ -1527,21 +373,14 @@ def write_report(
     an interrupted or failed report leaves the earlier one whole and nothing
     half-written; a new destination folder appears only when it is complete.
     """
-    from roomcorr import rooms
-    from roomcorr.errors import InputFileError, OutputError
 
     d = Path(folder)
-    if not d.is_dir():
-        raise InputFileError(f"{d}: no such folder; give a design or measurement folder")
-    rooms.verified(rooms.find_room(d), d)  # a damaged run of a room is named, not reported
+    check_report_folder(d)
     dest = report_destination(d, out_dir)
     is_design = (d / "manifest.json").is_file() and (d / "design.npz").is_file()
     settings = None
     through = None
     if is_design:
-        from roomcorr.deliver.export import design_differences, load_design_curves, read_manifest
-        from roomcorr.deliver.figures import figures_of_manifest
-
         if not (d / "complete.json").is_file():  # a run of a room is checked by its record
             # every file the manifest lists, with its SHA-256, and nothing else: a deleted
             # or changed filter is named, never redrawn from design.npz
@@ -1562,16 +401,15 @@ def write_report(
             if not parent.is_absolute():
                 parent = Path.cwd() / parent
             if (parent / "measurement.json").is_file():
-                quality = _read_quality(parent)
+                quality = read_quality(parent)
                 break
     else:
         figures = None
-        curves = _session_curves(d)
-        quality = _read_quality(d)
-        through = _read_through(d)
-    iir = _read_iir(d) if is_design else None
-    comparison = report_comparison(d, compare_with)
-    facts = _facts(d, manifest if is_design else None, curves)
+        curves = session_curves(d)
+        quality = read_quality(d)
+        through = read_through(d)
+    iir = read_iir(d) if is_design else None
+    facts = header_facts(d, manifest if is_design else None, curves)
     report = build_report(
         curves, settings, quality, iir=iir, dpi=dpi, comparison=comparison, through=through,
         facts=facts,
@@ -1594,13 +432,6 @@ def write_report(
 
 
 def _list_report_in_manifest(d: Path, written: list[str]) -> None:
-    from roomcorr.deliver.export import (
-        add_manifest_entries,
-        read_manifest,
-        sha256_of,
-        write_manifest,
-    )
-
     manifest = read_manifest(d)
     known = {e.get("path") for e in manifest.get("files", [])}
     if known & {*written, REPORT_HTML}:  # a report written before: refresh its digests
@@ -1623,18 +454,7 @@ def _list_report_in_manifest(d: Path, written: list[str]) -> None:
 def _write_report_files(dest: Path, report: Report, list_in_manifest: bool) -> list[str]:
     """Write the figures and the page (and their manifest entries) into ``dest``, all or
     nothing: the folder is built beside ``dest`` and swapped in when complete."""
-    import os
-    import shutil
 
-    from roomcorr.deliver.atomic import (
-        atomic_write_bytes,
-        atomic_write_text,
-        disk_error_text,
-        holds_working_folder,
-        staged_copy,
-        staged_folder,
-    )
-    from roomcorr.errors import OutputError
 
     figures = [f for s in report.sections for f in s.all_figures()]
     written = [f"{FIG_DIR}/{f.key}.png" for f in figures]

@@ -12,8 +12,12 @@ from typing import Any
 
 import numpy as np
 
+from roomcorr.analysis.smoothing import smooth_log_grid
 from roomcorr.deliver.figures import fmt_db
-from roomcorr.design.area import area_fields_of
+from roomcorr.design.curve import correction as rule
+from roomcorr.design.curve.area import area_fields_of
+from roomcorr.design.phase.mixedphase import from_arrays, latency_sentence, to_arrays
+from roomcorr.grid import points_per_octave_of
 
 #: Smallest change worth a sentence, dB.
 NOTABLE_DB = 2.0
@@ -64,7 +68,6 @@ def curves_from_result(result: Any) -> dict[str, Any]:
 
 def _mixed_phase_of(result: Any) -> dict[str, Any] | None:
     """The mixed-phase part of a result in the layout ``load_design_curves`` gives."""
-    from roomcorr.design.mixedphase import from_arrays, to_arrays
 
     mp = getattr(result, "mixed_phase", None)
     return None if mp is None else from_arrays(to_arrays(mp))
@@ -97,13 +100,10 @@ def withheld_regions(
         ``freq_hz`` (where most was refused), ``lo_hz``, ``hi_hz``, ``depth_db``
         (how far below the target the measurement sits there), ``applied_db``,
         ``withheld_db`` and ``reason``: ``"cap"``, ``"spread"`` or ``"cancellation"``
-        (whichever of the correction rule's limits, see :mod:`roomcorr.design.correction`,
+        (whichever of the correction rule's limits, see :mod:`roomcorr.design.curve.correction`,
         held the boost back most: boost cap, position disagreement, or dip depth below
         the wide envelope).
     """
-    from roomcorr.analysis.smoothing import smooth_log_grid
-    from roomcorr.design import correction as rule
-    from roomcorr.grid import points_per_octave_of
 
     w = np.asarray(ch["boost_withheld_db"])
     avg = np.asarray(ch["average_db"], dtype=float)
@@ -347,7 +347,5 @@ def summary_sentences(
         )
     mp = curves.get("mixed_phase")
     if mp and latency:
-        from roomcorr.design.mixedphase import latency_sentence
-
         out.append(latency_sentence(mp["latency_ms"], mp["latency_samples"]))
     return out

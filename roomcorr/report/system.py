@@ -17,6 +17,7 @@ import numpy as np
 from roomcorr.deliver.figures import fmt_db
 from roomcorr.deliver.system import subwoofer_sentences, system_sentences
 from roomcorr.report.figures import AFTER, INK, MEAN, SEAT, new_figure
+from roomcorr.report.parts import Figure, Section
 
 SECTION_ID = "system"
 SECTION_TITLE = "Loudspeakers together"
@@ -119,8 +120,6 @@ def plot_summed(
 
 def system_sections(curves: dict[str, Any], png: Any) -> list[Any]:
     """The section (empty list for a single loudspeaker)."""
-    from roomcorr.report.html import Figure, Section
-
     fields = system_fields(curves)
     if not fields.get("outputs"):
         return []

@@ -24,6 +24,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
+from roomcorr import __version__
 from roomcorr.audio_io import natural_key, read_ir_set
 from roomcorr.checked import read_json
 from roomcorr.deliver.atomic import (
@@ -58,12 +59,7 @@ RUN_NAME = re.compile(r"^[A-Za-z0-9_][A-Za-z0-9_.-]{0,99}$")
 
 
 def _version() -> str:
-    try:
-        from roomcorr import __version__
-
-        return str(__version__)
-    except ImportError:  # pragma: no cover - package metadata missing
-        return "unknown"
+    return str(__version__)
 
 
 @dataclass

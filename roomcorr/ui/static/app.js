@@ -908,7 +908,7 @@ let pending = null;
 
 // Target points [Hz, dB], added to the tilt and shelf. The table and the plot handles
 // both show this list; every edit goes through setPoint, which applies the target rules
-// (the server checks the same ones: roomcorr.design.target.target_points).
+// (the server checks the same ones: roomcorr.design.curve.target.target_points).
 const POINT_HZ = [10, 24000];
 const POINT_DB = 20;
 const MAX_POINTS = 64;

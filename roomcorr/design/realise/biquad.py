@@ -34,10 +34,12 @@ R. Bristow-Johnson, "Audio EQ Cookbook", W3C Audio Working Group Note, 2021.
 
 from __future__ import annotations
 
+import itertools
 from collections.abc import Sequence
 from dataclasses import dataclass
 
 import numpy as np
+from scipy.signal import sosfilt
 
 from roomcorr.errors import SafetyError
 
@@ -421,7 +423,6 @@ def quantise_float32(coeffs: np.ndarray, freq_hz: np.ndarray, fs: float) -> np.n
     -------
     rounded : ndarray, float64 holding float32-exact values, shape (n_sections, 5)
     """
-    import itertools
 
     coeffs = np.atleast_2d(np.asarray(coeffs, dtype=float))
     out = coeffs.astype(np.float32).astype(float)
@@ -520,7 +521,6 @@ def worst_case_gain_db(coeffs: np.ndarray, max_len: int = 1 << 20) -> float:
     The response is computed (``scipy.signal.sosfilt``) until the slowest pole
     has decayed by 1e-10, at most ``max_len`` samples.
     """
-    from scipy.signal import sosfilt
 
     coeffs = np.atleast_2d(np.asarray(coeffs, dtype=float))
     if len(coeffs) == 0:

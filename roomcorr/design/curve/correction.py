@@ -24,7 +24,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from roomcorr.analysis.smoothing import smooth_log_grid
-from roomcorr.design.target import band_fade
+from roomcorr.design.curve.target import band_fade
 from roomcorr.grid import points_per_octave_of
 
 #: Depth below the wide envelope (dB) up to which boost is fully allowed ...

@@ -16,7 +16,7 @@ Method
    (and above 0.5 dB more than half an octave outside the band, so nothing is
    boosted below the loudspeaker's roll-off or towards Nyquist) and for
    sections too fragile for float32 coefficients (see
-   :func:`roomcorr.design.biquad.float32_sensitivity_db`). Shelves may only
+   :func:`roomcorr.design.realise.biquad.float32_sensitivity_db`). Shelves may only
    cut: a boosting shelf would keep boosting down to DC or up to Nyquist.
 2. **Per sample rate.** Cookbook coefficients match the analogue prototype
    exactly at ``f0`` but the bilinear transform cramps the response towards
@@ -31,9 +31,9 @@ Method
 3. **Safety per rate.** Boost above the cap is removed by scaling all positive
    section gains by a common factor (bisection; factor 0 leaves only cuts and
    shelves with Q <= 1/sqrt(2), which never exceed 0 dB). Coefficients are
-   rounded to float32 (:func:`~roomcorr.design.biquad.quantise_float32`) and
+   rounded to float32 (:func:`~roomcorr.design.realise.biquad.quantise_float32`) and
    proven stable and within 0.1 dB of the design
-   (:func:`~roomcorr.design.biquad.check_float32`); a section that fails is
+   (:func:`~roomcorr.design.realise.biquad.check_float32`); a section that fails is
    broadened (Q x 0.8) and, at the lowest Q, reduced in gain until it passes.
    A common pre-gain (all channels and rates) keeps every cascade's peak at or
    below the ceiling.
@@ -54,9 +54,11 @@ from dataclasses import dataclass, field
 from typing import TYPE_CHECKING
 
 import numpy as np
+from scipy.optimize import least_squares
 
-from roomcorr.design import biquad as bq
-from roomcorr.design.biquad import KINDS, SHELF_MAX_Q, Section
+from roomcorr.design.realise import biquad as bq
+from roomcorr.design.realise.biquad import KINDS, SHELF_MAX_Q, Section
+from roomcorr.design.realise.fir import fir_response_db as _fir_db
 from roomcorr.errors import SafetyError, SettingsError
 
 if TYPE_CHECKING:  # pragma: no cover
@@ -240,8 +242,6 @@ class _Objective:
 
 
 def _solve(kinds, x0, prob, fixed_db, fixed_check_db, max_nfev):
-    from scipy.optimize import least_squares
-
     lo, hi = _bounds(kinds, prob.lim)
     x0 = _clip(x0, lo, hi)
     obj = _Objective(kinds, prob, fixed_db, fixed_check_db)
@@ -372,7 +372,7 @@ def _greedy(kinds, x, cost, prob: _Problem, band_hz, lim: FitLimits):
     """Add sections one at a time until ``lim.n_sections`` or no candidate lowers the cost.
 
     Each step tries a peaking section at the largest weighted residual (never
-    within :data:`roomcorr.design.biquad.MERGE_OCT` of a peaking section already
+    within :data:`roomcorr.design.realise.biquad.MERGE_OCT` of a peaking section already
     placed: that one is refitted jointly instead) and, once each, a low and a
     high shelf; each candidate is fitted alone with the others held fixed.
     """
@@ -472,7 +472,6 @@ def realise(
     float32_dev_db : float
         Largest response change from rounding to float32 (< 0.1 dB, proven).
     """
-    from scipy.optimize import least_squares
 
     lim = limits.validated()
     if not sections:
@@ -588,7 +587,6 @@ def _errors(a_db: np.ndarray, b_db: np.ndarray) -> tuple[float, float]:
 
 def fir_response_db(fir: np.ndarray, freq_hz: np.ndarray, fs: float) -> np.ndarray:
     """Magnitude in dB of FIR taps ``(n_taps,)`` at ``freq_hz``, floored at -240 dB."""
-    from roomcorr.design.fir import fir_response_db as _fir_db
 
     return np.maximum(_fir_db(fir, fs, freq_hz), -240.0)
 
@@ -703,7 +701,7 @@ def check_iir_safety(design: IirDesign) -> None:
     """Raise :class:`SafetyError` unless every cascade respects all limits.
 
     Checks per channel and rate: poles within the margin and float32 rounding
-    (< 0.1 dB, :func:`roomcorr.design.biquad.check_float32`), no section gain and
+    (< 0.1 dB, :func:`roomcorr.design.realise.biquad.check_float32`), no section gain and
     no cascade boost above the cap (+ 0.05 dB), peak including pre-gain at or
     below the ceiling.
     """

@@ -47,7 +47,7 @@ to every output alike, so it multiplies each sum exactly and leaves the
 phase relation the search chose untouched. It only cuts: no boost, no
 filling of dips, no extra drive below any loudspeaker's limit. The share is
 stricter than a single loudspeaker's agreement rule (``AGREE_SHARE`` of
-``design/area.py``) because a peak of a sum of two sources moves faster
+``design/curve/area.py``) because a peak of a sum of two sources moves faster
 with the listener than a modal peak of one: their path difference changes
 too.
 
@@ -67,7 +67,7 @@ import numpy as np
 from scipy.signal import butter, sosfilt, sosfreqz
 
 from roomcorr.analysis.smoothing import smooth_log_grid
-from roomcorr.design.area import agreement_limits
+from roomcorr.design.curve.area import agreement_limits
 from roomcorr.grid import points_per_octave_of
 
 #: Linkwitz-Riley slopes offered, dB per octave (orders 2, 4, 8).
@@ -225,7 +225,7 @@ def shared_cut_db(
     Each sum's level is taken relative to its own mean from ``fc / 2`` to
     ``2 fc`` (the figure the search minimises); the cut at each frequency is
     the excess that :data:`SHARED_CUT_SHARE` of the sums reach
-    (:func:`roomcorr.design.area.agreement_limits`), at most ``max_cut_db``.
+    (:func:`roomcorr.design.curve.area.agreement_limits`), at most ``max_cut_db``.
     Outside the region it falls to 0 dB with a raised cosine over
     :data:`SMOOTHING_OCT` (the resolution it was designed at).
 

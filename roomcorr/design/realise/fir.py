@@ -4,7 +4,7 @@ The correction curve lives on the rate-independent log-frequency grid
 (``roomcorr.grid``). For each sample rate a filter is synthesised from that
 curve directly (never by resampling another rate's filter): the curve is
 interpolated onto the rfft bins of an oversampled FFT, given minimum phase by
-folding the real cepstrum (``roomcorr.design.minphase``), transformed back and
+folding the real cepstrum (``roomcorr.design.phase.minphase``), transformed back and
 truncated to ``n_taps`` with a half-Hann fade over the last quarter.
 
 References
@@ -17,8 +17,9 @@ References
 from __future__ import annotations
 
 import numpy as np
+from scipy.signal import freqz, zoom_fft
 
-from roomcorr.design.minphase import DEFAULT_OVERSAMPLE, fft_length, minimum_phase_spectrum
+from roomcorr.design.phase.minphase import DEFAULT_OVERSAMPLE, fft_length, minimum_phase_spectrum
 from roomcorr.grid import interp_log
 
 #: Shortest filter :func:`default_n_taps` returns.
@@ -174,7 +175,6 @@ def fir_response_db(h: np.ndarray, fs: float, freq_hz: np.ndarray) -> np.ndarray
     gain_db : ndarray, shape (n_freqs,)
         ``20 log10 |H|``; exact zeros give ``-inf``.
     """
-    from scipy.signal import freqz
 
     freq_hz = np.atleast_1d(np.asarray(freq_hz, dtype=np.float64))
     _, resp = freqz(np.asarray(h, dtype=np.float64), worN=freq_hz, fs=fs)
@@ -213,7 +213,6 @@ def peak_gain_db(h: np.ndarray, fs: float, f_lo: float = 20.0, f_hi: float = 200
            z-transform algorithm", IEEE Trans. Audio Electroacoust. 17(2),
            1969 (zoomed DTFT evaluation).
     """
-    from scipy.signal import zoom_fft
 
     h = np.asarray(h, dtype=np.float64)
     f_hi = min(float(f_hi), fs / 2.0)

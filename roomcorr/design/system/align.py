@@ -18,7 +18,7 @@ This module then makes the channels play together:
   louder channels are cut to the quietest; a trim never boosts.
 * **Subwoofer.** With a channel named as the subwoofer, the crossover
   frequency, the subwoofer's delay and its polarity come from
-  :func:`roomcorr.design.crossover.search_integration`, judged on the complex
+  :func:`roomcorr.design.system.crossover.search_integration`, judged on the complex
   sums with the correction filters in the loop. The mains get the
   Linkwitz-Riley high-pass, the subwoofer the low-pass. Each main input
   feeds the subwoofer with gain ``1 / n_mains`` (a full-scale signal on all
@@ -28,7 +28,7 @@ This module then makes the channels play together:
   levels, since the mains then add up in the bass too).
 * **Shared cut.** The peaks that the chosen sums share around the
   crossover are cut in every output alike
-  (:func:`roomcorr.design.crossover.shared_cut_db`), which changes the
+  (:func:`roomcorr.design.system.crossover.shared_cut_db`), which changes the
   sums' magnitude and leaves the phase relation the search chose as it is.
 
 With ``align`` on (the default with more than one channel) delays and trims
@@ -55,7 +55,9 @@ import numpy as np
 from scipy.signal import fftconvolve, freqz
 
 from roomcorr.analysis.compare import speed_of_sound_m_s
-from roomcorr.design.crossover import (
+from roomcorr.design.curve.target import AUTO_LIMITS_HZ, ROLLOFF_DB
+from roomcorr.design.realise.fir import synthesize_fir
+from roomcorr.design.system.crossover import (
     Integration,
     apply_crossover,
     linkwitz_riley_sos,
@@ -63,9 +65,7 @@ from roomcorr.design.crossover import (
     search_integration,
     smoothed_db,
 )
-from roomcorr.design.fir import synthesize_fir
-from roomcorr.design.subwoofers import SubArrayPlan
-from roomcorr.design.target import AUTO_LIMITS_HZ, ROLLOFF_DB
+from roomcorr.design.system.subwoofers import SubArrayPlan
 from roomcorr.errors import SettingsError
 
 #: Roles of a channel in the system.
@@ -104,7 +104,7 @@ class SystemPlan:
         Mains plus subwoofer as measured (no filters), on the search grid.
     subwoofers : SubArrayPlan or None
         With several subwoofers: each one's delay, level and polarity inside
-        the array (``roomcorr.design.subwoofers``); ``delay_s``, ``trim_db`` and
+        the array (``roomcorr.design.system.subwoofers``); ``delay_s``, ``trim_db`` and
         ``polarity`` above then give each subwoofer output's totals.
     """
 
@@ -274,7 +274,7 @@ def subwoofer_band_hz(
 ) -> tuple[float, float]:
     """Correction band of a subwoofer from its own roll-off.
 
-    Like :func:`roomcorr.design.target.auto_band`, but the reference level is
+    Like :func:`roomcorr.design.curve.target.auto_band`, but the reference level is
     the median of the subwoofer's own band (half the lowest crossover
     frequency up to it) rather than the midrange, where a subwoofer plays
     nothing. The band ends where the response first falls ``ROLLOFF_DB``

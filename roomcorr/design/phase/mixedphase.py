@@ -2,7 +2,7 @@
 
 A minimum-phase filter corrects only what is minimum phase. A loudspeaker's
 crossover adds an all-pass part (its excess phase, see
-:mod:`roomcorr.design.excess_phase`); its inverse is anticausal and becomes
+:mod:`roomcorr.design.phase.excess_phase`); its inverse is anticausal and becomes
 realisable only with a delay. This module takes the finished minimum-phase
 filter ``h_min`` of a channel and multiplies its spectrum by the inverse of
 the excess phase the loudspeaker shows at every measured position::
@@ -75,9 +75,10 @@ from typing import Any
 
 import numpy as np
 
-from roomcorr.design.excess_phase import (
+from roomcorr.design.phase.excess_phase import (
     REFERENCE_BAND_HZ,
     ExcessPhaseEstimate,
+    direct_sound_segment,
     estimate_excess_phase,
     excess_gd_on_bins,
 )
@@ -671,7 +672,7 @@ def direct_sound_views(
     """The measured direct sound before and after both designs, for the report.
 
     The direct sound of every position (cut as in
-    :func:`roomcorr.design.excess_phase.direct_sound_segment`) is filtered
+    :func:`roomcorr.design.phase.excess_phase.direct_sound_segment`) is filtered
     with the minimum-phase and the mixed-phase filter at the measurement rate
     (if that rate was designed; else the views are empty). Group delays add
     under convolution, so the filtered direct sound's group delay is the
@@ -690,7 +691,6 @@ def direct_sound_views(
         before each time, relative to its total (time relative to its main
         peak).
     """
-    from roomcorr.design.excess_phase import direct_sound_segment
 
     if fs not in firs_min:
         return {}

@@ -26,7 +26,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from roomcorr.design.fir import cap_excess_db, peak_gain_db, worst_case_gain_db
+from roomcorr.design.realise.fir import cap_excess_db, peak_gain_db, worst_case_gain_db
 from roomcorr.errors import SafetyError
 
 #: Allowed excess of a synthesised filter over the boost cap (FIR ripple), dB.
@@ -65,7 +65,7 @@ class FilterStats:
 def full_band_peak_gain_db(h: np.ndarray, fs: float) -> float:
     """Largest gain in dB of FIR ``h`` anywhere from DC to Nyquist (:data:`PEAK_BAND`).
 
-    :func:`roomcorr.design.fir.peak_gain_db` over ``0 .. fs/2``: every bin of
+    :func:`roomcorr.design.realise.fir.peak_gain_db` over ``0 .. fs/2``: every bin of
     a zero-padded FFT (at least 8x the filter length), DC and Nyquist included,
     refined around the highest maxima by a chirp-z zoom.
     """
@@ -85,7 +85,7 @@ def fit_under_cap(
     that does: truncating and fading a short minimum-phase filter smooths
     the curve's corners into ripple, and a mixed-phase or aligned filter adds
     its own. So the filters are built, their realised response is measured
-    (:func:`roomcorr.design.fir.cap_excess_db`, every bin from DC to Nyquist,
+    (:func:`roomcorr.design.realise.fir.cap_excess_db`, every bin from DC to Nyquist,
     aiming :data:`CAP_MARGIN_DB` under the cap), every channel's curve is
     lowered by its excess (over about two bins of the filter length either
     side, the width of a truncation ripple, at every rate at once) and the

@@ -60,8 +60,8 @@ import numpy as np
 
 from roomcorr.analysis.average import power_average
 from roomcorr.analysis.smoothing import smooth_log_grid
-from roomcorr.design.correction import correction_curve
-from roomcorr.design.target import REFERENCE_BAND_HZ, ROLLOFF_DB, band_fade
+from roomcorr.design.curve.correction import correction_curve
+from roomcorr.design.curve.target import REFERENCE_BAND_HZ, ROLLOFF_DB, band_fade
 from roomcorr.errors import SettingsError
 from roomcorr.grid import points_per_octave_of
 
@@ -271,7 +271,7 @@ def measured_rolloff_hz(freq_hz: np.ndarray, wide_db: np.ndarray) -> float | Non
     """The in-room roll-off, if the response shows one: ``None`` otherwise.
 
     The highest frequency below the midrange at which the 1-octave response
-    lies :data:`~roomcorr.design.target.ROLLOFF_DB` below its midrange median
+    lies :data:`~roomcorr.design.curve.target.ROLLOFF_DB` below its midrange median
     and stays below that over the whole octave beneath it. A loudspeaker's
     high-pass keeps falling once it has fallen; a boundary cancellation
     recovers within an octave and is not taken for a roll-off.
@@ -379,7 +379,7 @@ def two_scale_correction(
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Correction as a broad part (balance) plus a fine part (peaks and dips), no fade.
 
-    The fine part is :func:`roomcorr.design.correction.correction_curve`
+    The fine part is :func:`roomcorr.design.curve.correction.correction_curve`
     against the response's own trend (dB mean over :data:`TREND_OCT`): a
     modal peak is cut down to the level around it even where the broad level
     lies below the target (a peak stays a peak when the head moves; the
@@ -671,7 +671,7 @@ def design_channel(
         Apply the cross-validated strength per region (the prediction is made
         either way). Off for main loudspeakers crossed over to a subwoofer:
         there the bass is judged on the summed response by the system plan
-        (:mod:`roomcorr.design.align`), not on the main loudspeaker alone.
+        (:mod:`roomcorr.design.system.align`), not on the main loudspeaker alone.
 
     Returns
     -------

@@ -2,7 +2,7 @@
 
 A response splits into a minimum-phase part and an all-pass part,
 ``H = H_min · A``. ``H_min`` is the real-cepstrum minimum-phase counterpart of
-``|H|`` (:func:`roomcorr.design.minphase.minimum_phase_spectrum`), and the
+``|H|`` (:func:`roomcorr.design.phase.minphase.minimum_phase_spectrum`), and the
 excess phase is the measured phase minus that of ``H_min``: the phase of
 ``A = H / H_min``. A loudspeaker's crossover puts an all-pass into ``A``
 (its drivers arrive smeared in time), which no minimum-phase filter touches.
@@ -37,7 +37,7 @@ What is estimated here, and where:
 
 The result is an excess group delay on the log-frequency grid, relative to
 its median in the treble (so the main peak stays where it is), ready for
-:mod:`roomcorr.design.mixedphase`.
+:mod:`roomcorr.design.phase.mixedphase`.
 
 References
 ----------
@@ -55,7 +55,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from roomcorr.analysis.onset import find_onset
-from roomcorr.design.minphase import minimum_phase_spectrum
+from roomcorr.design.phase.minphase import minimum_phase_spectrum
 from roomcorr.grid import interp_log
 
 #: Samples before the onset kept in the direct-sound window, in seconds.

@@ -11,7 +11,7 @@ positions of the 1/6-octave level, averaged over a log-frequency grid from
 choose (the method of Welti & Devantier [1]_; the figure is ours, see
 :func:`seat_spread_db`). Only then does the design treat the subwoofers as
 one source ("the array"): one common correction for its average and one
-crossover to the mains (``roomcorr.pipeline``, ``roomcorr.design.align``).
+crossover to the mains (``roomcorr.pipeline``, ``roomcorr.design.system.align``).
 
 The search (:func:`plan_subwoofers`) is a coordinate descent: one subwoofer
 at a time takes the best of every delay in :data:`DELAYS_S`, polarity and
@@ -46,7 +46,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from roomcorr.design.crossover import linkwitz_riley_response
+from roomcorr.design.system.crossover import linkwitz_riley_response
 
 #: Lowest frequency of the spread figure, Hz (issue 20: 20 Hz to twice the crossover).
 SPREAD_LO_HZ = 20.0

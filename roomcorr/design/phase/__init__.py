@@ -1,0 +1,1 @@
+"""The phase of the filters: minimum phase, the measured excess phase, mixed-phase FIRs."""

@@ -1,0 +1,1 @@
+"""Several loudspeakers together: alignment, crossovers, several subwoofers."""
