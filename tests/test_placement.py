@@ -3,11 +3,14 @@
 from __future__ import annotations
 
 import numpy as np
+import pyroomacoustics as pra
 import pytest
 import soundfile as sf
+from scipy.signal import butter, resample_poly, sosfilt
 
 from roomcorr.cli import main
 from roomcorr.errors import SettingsError
+from roomcorr.physics import image_order_for
 from roomcorr.placement import causes
 from roomcorr.placement.layout import (
     Layout,
@@ -16,6 +19,7 @@ from roomcorr.placement.layout import (
     read_layout,
     write_layout,
 )
+from roomcorr.placement.model import calibrate, measured_levels_db
 
 C = 343.0
 
@@ -134,9 +138,6 @@ def test_reflection_delay_found_in_an_impulse_response():
 @pytest.fixture(scope="module")
 def pra_room(tmp_path_factory):
     """A room simulated by pyroomacoustics (image sources, independent of our model)."""
-    import pyroomacoustics as pra
-    from scipy.signal import butter, resample_poly, sosfilt
-
     folder = tmp_path_factory.mktemp("pra")
     dims = [4.6, 5.8, 2.5]
     spk = [[1.2, 0.7, 1.0], [3.4, 0.7, 1.0]]
@@ -152,7 +153,12 @@ def pra_room(tmp_path_factory):
         for s in speakers:
             room.add_source(s)
         room.add_microphone_array(np.array(mic_list).T)
-        room.compute_rir()
+        hpf = pra.constants.get("rir_hpf_enable")
+        pra.constants.set("rir_hpf_enable", False)  # its 10 Hz high-pass is not causal
+        try:
+            room.compute_rir()
+        finally:
+            pra.constants.set("rir_hpf_enable", hpf)
         n = min(len(r) for row in room.rir for r in row)
         irs = np.array([[room.rir[m][s][:n] for s in range(len(speakers))]
                         for m in range(len(mic_list))])
@@ -174,8 +180,6 @@ def pra_room(tmp_path_factory):
 def test_predict_after_a_move_beats_nothing_changed(pra_room, tmp_path, capsys):
     # The prediction is checked against pyroomacoustics (Allen and Berkley image sources),
     # not against our own model: both loudspeakers 0.6 m further from the front wall.
-    from roomcorr.placement.model import measured_levels_db
-
     folder, before, after = pra_room
     out = tmp_path / "pred.wav"
     code = main(["predict", *sorted(str(p) for p in folder.glob("pos*.wav")), "--layout",
@@ -197,7 +201,7 @@ def test_predict_after_a_move_beats_nothing_changed(pra_room, tmp_path, capsys):
     truth = levels(after[0], 48000)
     ours = err(levels(pred.T, 48000), truth)
     unchanged = err(levels(before[0], 48000), truth)
-    assert ours < 0.8 * unchanged
+    assert ours < 0.5 * unchanged  # the issue's figure for a move
     assert '"leave_one_out_error_db"' in capsys.readouterr().out
 
 
@@ -312,3 +316,46 @@ def test_layout_show_without_a_layout_says_how(tmp_path, capsys, monkeypatch):
     assert "roomcorr layout set" in capsys.readouterr().err
     assert main(["layout", "set", "--seat", "1,1,1"]) == 2
     assert "needs --size" in capsys.readouterr().err
+
+
+def test_calibration_recovers_known_walls_corner_and_position():
+    # A synthetic case from independent code: pyroomacoustics' ShoeBox (Allen and Berkley
+    # image method) with a known absorption per surface, a known 4th-order Butterworth
+    # high-pass as the loudspeaker (scipy), and a loudspeaker taped 4 cm / 3 cm off.
+    # The fit must find the walls, the corner and the position again. pyroomacoustics sums
+    # the images to the order the model uses for these walls, so that the check is of the
+    # fit, not of where either sum stops (that costs up to 0.03 in α: docs, room model).
+    dims = [4.8, 5.9, 2.6]
+    alpha = [0.12, 0.18, 0.25, 0.3, 0.2, 0.1]  # left, right, front, back, floor, ceiling
+    spk = np.array([[1.3, 0.8, 1.0]])
+    seat = np.array([2.4, 3.5, 1.1])
+    mics = np.array([seat + o for o in ([0, 0, 0], [-0.3, 0.1, 0], [0.3, -0.1, 0.05],
+                                        [0.1, 0.35, 0], [-0.1, -0.3, 0.05])])
+    walls = ["west", "east", "south", "north", "floor", "ceiling"]
+    order = image_order_for(np.sqrt(1 - np.array(alpha)), np.array(dims))
+    room = pra.ShoeBox(dims, fs=8000, max_order=order, air_absorption=False,
+                       materials={w: pra.Material(a) for w, a in zip(walls, alpha, strict=True)})
+    room.add_source(spk[0])
+    room.add_microphone_array(mics.T)
+    hpf = pra.constants.get("rir_hpf_enable")
+    pra.constants.set("rir_hpf_enable", False)  # its own 10 Hz high-pass is not causal
+    try:
+        room.compute_rir()
+    finally:
+        pra.constants.set("rir_hpf_enable", hpf)
+    n = min(len(r[0]) for r in room.rir)
+    irs = np.array([[r[0][:n]] for r in room.rir])
+    irs = sosfilt(butter(4, 48.0, "high", fs=8000, output="sos"), irs, axis=-1)
+    irs = resample_poly(irs, 6, 1, axis=-1)
+    taped = spk + np.array([[0.04, -0.03, 0.0]])
+    model = calibrate(irs, 48000, tuple(dims), taped, mics, ["left"], leave_one_out=False)
+    fitted_alpha = 1 - model.beta**2
+    assert abs(model.image_order - order) <= 2
+    # each pair of opposite surfaces acts together on its axial modes: their mean is well
+    # determined, the split between the two less so from five positions close together
+    np.testing.assert_allclose(fitted_alpha.reshape(3, 2).mean(axis=1),
+                               np.reshape(alpha, (3, 2)).mean(axis=1), atol=0.025)
+    np.testing.assert_allclose(fitted_alpha, alpha, atol=0.05)
+    assert model.corner_hz[0] == pytest.approx(48.0, rel=0.05)
+    assert np.linalg.norm(model.speakers_m[0, :2] - spk[0, :2]) < 0.015
+    assert model.fit_error_db < 1.0

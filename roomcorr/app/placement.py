@@ -289,6 +289,10 @@ def model_summary(model: RoomModel) -> dict[str, Any]:
         "t60_s": round(model.t60_s(), 2),
         "corner_hz": [round(float(x), 1) for x in model.corner_hz],
         "position_offsets_m": [[round(float(v), 3) for v in p] for p in model.offsets_m],
+        # energy absorption α = 1 − β² of each surface (left, right, front, back, floor,
+        # ceiling) and the reflection order of the image sum
+        "wall_absorption": [round(float(1.0 - b**2), 3) for b in model.beta],
+        "image_order": int(model.image_order),
     }
 
 
@@ -346,6 +350,8 @@ def format_prediction(res: dict[str, Any]) -> list[str]:
         + (f", {loo:.1f} dB at a position left out of the fit" if loo is not None else ""),
         f"  room: T60 about {m['t60_s']:.2f} s at low frequencies; loudspeaker corners "
         + ", ".join(f"{c:.0f} Hz" for c in m["corner_hz"]),
+        "  walls absorb (left, right, front, back, floor, ceiling): "
+        + ", ".join(f"{a:.2f}" for a in m["wall_absorption"]),
         f"  tape errors of {100 * res['tape_error_m']:.0f} cm change the prediction by up to "
         f"{res['sensitivity_db']:.1f} dB RMS",
         *PLACEMENT_CAUTIONS,

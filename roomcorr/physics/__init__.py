@@ -2,8 +2,9 @@
 
 Pure functions on numpy arrays (no I/O): Rayleigh's mode frequencies and the
 modal expansion of the rigid-walled rectangular room's Green's function
-(:mod:`roomcorr.physics.modes`), image sources for the early reflections
-(:mod:`roomcorr.physics.images`) and the loudspeaker's own response
+(:mod:`roomcorr.physics.modes`), image sources for the early reflections and the
+full image-source sum in the frequency domain (:mod:`roomcorr.physics.images`) and
+the loudspeaker's own response
 (:mod:`roomcorr.physics.loudspeaker`). The invented demo room
 (:mod:`roomcorr.demo`), the evaluation rooms (:mod:`roomcorr.evaluation.simulate`)
 and placement (:mod:`roomcorr.placement`) all use these.
@@ -16,7 +17,11 @@ images do not care which axis is which.
 from roomcorr.physics.images import (
     early_spectrum,
     first_order_reflections,
+    image_lattice,
+    image_order_for,
     image_sources,
+    lattice_spectra,
+    lattice_weights,
 )
 from roomcorr.physics.loudspeaker import (
     highpass_response,
@@ -42,7 +47,11 @@ __all__ = [
     "early_spectrum",
     "first_order_reflections",
     "highpass_response",
+    "image_lattice",
+    "image_order_for",
     "image_sources",
+    "lattice_spectra",
+    "lattice_weights",
     "linkwitz_riley4",
     "modal_response",
     "mode_grid",

@@ -3,7 +3,10 @@
 * :mod:`roomcorr.placement.layout`: the layout file (room size, loudspeakers, seat,
   measured positions).
 * :mod:`roomcorr.placement.causes`: a physical cause for each peak and withheld dip.
-* :mod:`roomcorr.placement.model`: the room model calibrated on the measurements and
-  its predictions at other seats and loudspeaker positions.
-* :mod:`roomcorr.placement.advise`: a search over loudspeaker and seat positions.
+* :mod:`roomcorr.placement.model`: the room model (the image-source sum of
+  :mod:`roomcorr.physics`) calibrated on the measurements and its predictions at other
+  seats and loudspeaker positions.
+
+The search over loudspeaker and seat positions (``roomcorr advise``) is in
+:mod:`roomcorr.app.placement`: it designs each candidate through the design's own code.
 """
