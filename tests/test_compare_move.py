@@ -109,15 +109,15 @@ def test_compare_predicts_the_move_and_pyroomacoustics_confirms_it(moved_room, c
         pred, meas = np.array(ch["predicted_change_db"]), np.array(ch["measured_change_db"])
         # the held figure is the RMS of their difference (offset already removed)
         assert ch["held_db"] == pytest.approx(np.sqrt(np.mean((pred - meas) ** 2)), abs=0.02)
-        # judged against pyroomacoustics' "after" room: the prediction errs at most 0.7
-        # times as much as assuming nothing changed (issue 19's aim after a move is 0.5)
-        assert ch["held_db"] <= 0.7 * ch["unchanged_db"]
+        # judged against pyroomacoustics' "after" room: the prediction errs at most half
+        # as much as assuming nothing changed (issue 19's figure to reach after a move)
+        assert ch["held_db"] <= 0.5 * ch["unchanged_db"]
         # the quarter-wave notch of the front wall at 0.7 m, c/(4d) = 123 Hz (common
         # practice), is the largest predicted change and it fills in both worlds
         w = ch["words"]
         assert 100.0 <= w["freq_hz"] <= 140.0 and w["feature"] == "dip"
         assert w["predicted_db"] > 6.0 and w["measured_db"] > 6.0
-    assert pc["ratio"] <= 0.7 and pc["verdict"] in {"held", "held partly"}
+    assert pc["ratio"] <= 0.5 and pc["verdict"] == "held"
 
 
 def test_measured_change_agrees_with_an_independent_band_analysis(moved_room, capsys):
