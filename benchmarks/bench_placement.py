@@ -156,6 +156,23 @@ def seat_of(room: dict) -> np.ndarray:
     return np.array([room["size"][0] / 2 + 0.03, room["seat"], 1.1])
 
 
+def measured_with_tape(room: dict, rng: np.random.Generator) -> tuple[np.ndarray, ...]:
+    """The room's loudspeakers, seat and measured positions, the simulated measurement
+    (peak 0.5), and the positions as a person with a tape would enter them (up to 3 cm
+    off in x and y)."""
+    spk = speakers_of(room)
+    seat = seat_of(room)
+    mics = np.array([seat + o for o in MEASURED])
+    meas = simulate(room, spk, mics)
+    meas *= 0.5 / np.abs(meas).max()
+    tape = rng.uniform(-0.03, 0.03, size=(2 + len(MEASURED), 2))
+    spk_tape = spk.copy()
+    spk_tape[:, :2] += tape[:2]
+    mic_tape = mics.copy()
+    mic_tape[:, :2] += tape[2:]
+    return spk, seat, mics, meas, spk_tape, mic_tape
+
+
 def err_db(a: np.ndarray, b: np.ndarray) -> float:
     d = a - b
     d = d - d.mean(axis=-1, keepdims=True)
@@ -238,18 +255,9 @@ def main(argv: list[str]) -> int:
     seat_ratios: dict[str, list[float]] = {"model": [], "anchored": [], "blend": []}
     rows = []
     for room in rooms:
-        spk = speakers_of(room)
-        seat = seat_of(room)
-        mics = np.array([seat + o for o in MEASURED])
         t0 = time.perf_counter()
-        meas = simulate(room, spk, mics)
+        spk, seat, mics, meas, spk_tape, mic_tape = measured_with_tape(room, rng)
         t_sim = time.perf_counter() - t0
-        meas *= 0.5 / np.abs(meas).max()
-        tape = rng.uniform(-0.03, 0.03, size=(2 + len(MEASURED), 2))
-        spk_tape = spk.copy()
-        spk_tape[:, :2] += tape[:2]
-        mic_tape = mics.copy()
-        mic_tape[:, :2] += tape[2:]
         layout = Layout(tuple(room["size"]),
                         {"left": tuple(spk_tape[0]), "right": tuple(spk_tape[1])},
                         tuple(seat), [tuple(m) for m in mic_tape])
@@ -316,16 +324,7 @@ def main(argv: list[str]) -> int:
     mis_seat: dict[str, list[float]] = {"model": [], "anchored": [], "blend": []}
     mis_rows = []
     for room in [] if "--quick" in argv else MISMATCH_ROOMS:
-        spk = speakers_of(room)
-        seat = seat_of(room)
-        mics = np.array([seat + o for o in MEASURED])
-        meas = simulate(room, spk, mics)
-        meas *= 0.5 / np.abs(meas).max()
-        tape = rng.uniform(-0.03, 0.03, size=(2 + len(MEASURED), 2))
-        spk_tape = spk.copy()
-        spk_tape[:, :2] += tape[:2]
-        mic_tape = mics.copy()
-        mic_tape[:, :2] += tape[2:]
+        spk, seat, mics, meas, spk_tape, mic_tape = measured_with_tape(room, rng)
         size = tuple(np.add(room["size"], room["size_error"]))
         model = calibrate(meas, FS, size, spk_tape, mic_tape, ["left", "right"])
         prediction_ratios(room, model, meas, spk, seat, mics, mis_move, mis_seat)
