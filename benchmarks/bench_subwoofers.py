@@ -112,18 +112,9 @@ def _equal_feed(
     resp, freq_hz, names, channels, weights=None, predict=True, base=None, fs=FS, base_scale=None
 ):
     """plan_subwoofers with every subwoofer fed equally, no delay, no own filter (the
-    baseline)."""
-    p = plan_subwoofers(
-        resp,
-        freq_hz,
-        names,
-        channels,
-        weights,
-        predict=False,
-        base=base,
-        fs=fs,
-        own_filters=False,
-        base_scale=base_scale,
+    baseline): the plan without own filters, its delays, levels and polarities reset."""
+    p = _without_own_filters(
+        resp, freq_hz, names, channels, weights, base=base, fs=fs, base_scale=base_scale
     )
     n = len(names)
     p.delay_s, p.gain_db, p.polarity = np.zeros(n), np.zeros(n), [1] * n
