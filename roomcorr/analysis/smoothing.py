@@ -29,6 +29,8 @@ padding.
 
 from __future__ import annotations
 
+from functools import lru_cache
+
 import numpy as np
 
 #: Variable-width rule (see :func:`variable_width_oct`): width in octaves in
@@ -316,7 +318,26 @@ def smooth_log_grid(
     edges = np.arange(n + 1, dtype=float) - 0.5
     half = _half_widths(width_oct, n) * float(points_per_octave)
     half = np.minimum(half, np.minimum(centres + 0.5, n - 0.5 - centres))
+    if v.size >= MATRIX_MIN_ROWS * n:  # many rows: one matrix product, the same weights
+        return v @ _log_grid_matrix(n, half.tobytes())
     return _window_mean(v, edges, centres, half, unit_cells=True)
+
+
+#: From this many rows on, :func:`smooth_log_grid` applies its weights as one matrix
+#: product (BLAS) instead of running sums per row; the weights are the same.
+MATRIX_MIN_ROWS = 64
+
+
+@lru_cache(maxsize=32)
+def _log_grid_matrix(n: int, half_bytes: bytes) -> np.ndarray:
+    """(n, n) weights of :func:`smooth_log_grid` (column j: output point j), built by
+    smoothing the identity with :func:`_window_mean`, so both paths agree exactly."""
+    half = np.frombuffer(half_bytes, dtype=float)
+    m = _window_mean(
+        np.eye(n), np.arange(n + 1, dtype=float) - 0.5, np.arange(n, dtype=float), half, True
+    )
+    m.setflags(write=False)
+    return m
 
 
 def variable_width_oct(freq_hz: np.ndarray) -> np.ndarray:
