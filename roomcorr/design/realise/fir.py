@@ -17,9 +17,10 @@ References
 from __future__ import annotations
 
 import numpy as np
+from scipy import fft as sp_fft
 from scipy.signal import freqz, zoom_fft
 
-from roomcorr.design.phase.minphase import DEFAULT_OVERSAMPLE, fft_length, minimum_phase_spectrum
+from roomcorr.design.phase.minphase import DEFAULT_OVERSAMPLE, minimum_phase_spectrum
 from roomcorr.grid import interp_log
 
 #: Shortest filter :func:`default_n_taps` returns.
@@ -182,6 +183,31 @@ def fir_response_db(h: np.ndarray, fs: float, freq_hz: np.ndarray) -> np.ndarray
         return 20.0 * np.log10(np.abs(resp))
 
 
+def own_length(h: np.ndarray) -> int:
+    """Taps up to and including the last non-zero one (a row zero-padded to a longer
+    common length has its own, shorter length; at least 1)."""
+    nz = np.flatnonzero(h)
+    return int(nz[-1]) + 1 if nz.size else 1
+
+
+def _dtft_at(h: np.ndarray, freq_hz: float, fs: float) -> complex:
+    """DTFT of ``h`` at one frequency (exact sums at DC and Nyquist)."""
+    if freq_hz == 0.0:
+        return complex(h.sum())
+    if freq_hz == fs / 2.0:
+        return complex(h[0::2].sum() - h[1::2].sum())
+    return complex(np.exp(-2j * np.pi * freq_hz / fs * np.arange(h.shape[-1])) @ h)
+
+
+def dense_fft_length(n_taps: int) -> int:
+    """FFT length of the dense look at a filter's response (:func:`peak_gain_db`,
+    :func:`cap_excess_db`): at least eight times ``n_taps`` and 16384, the next length
+    pocketfft transforms fast (``scipy.fft.next_fast_len``: factors 2, 3, 5 and 7
+    ...), so the bins are never further apart than ``fs / (8 n_taps)``; a length just
+    above a power of two no longer doubles the transform."""
+    return int(sp_fft.next_fast_len(max(8 * int(n_taps), 1 << 14), real=True))
+
+
 def peak_gain_db(h: np.ndarray, fs: float, f_lo: float = 20.0, f_hi: float = 20000.0) -> float:
     """Return the largest gain in dB of FIR ``h`` between ``f_lo`` and ``f_hi`` Hz.
 
@@ -218,24 +244,35 @@ def peak_gain_db(h: np.ndarray, fs: float, f_lo: float = 20.0, f_hi: float = 200
     f_hi = min(float(f_hi), fs / 2.0)
     if not 0.0 <= f_lo <= f_hi:
         raise ValueError(f"need 0 <= f_lo <= f_hi <= fs/2, got f_lo={f_lo}, f_hi={f_hi}")
-    n_fft = max(fft_length(h.shape[-1], 8), 1 << 14)
-    mag = np.abs(np.fft.rfft(h, n_fft))
+    n_fft = dense_fft_length(h.shape[-1])
+    mag = np.abs(sp_fft.rfft(h, n_fft))
     bins_hz = np.fft.rfftfreq(n_fft, 1.0 / fs)
     inside = np.flatnonzero((bins_hz >= f_lo) & (bins_hz <= f_hi))
-    # band edges: the DTFT sum directly (two frequencies, O(n_taps))
-    edges_hz = np.array([f_lo, f_hi])
-    kernel = np.exp(-2j * np.pi * np.outer(edges_hz / fs, np.arange(h.shape[-1])))
-    best = float(np.max(np.abs(kernel @ h)))
+    # band edges: the DTFT sum directly (two frequencies, O(n_taps)); at DC and Nyquist
+    # the kernel is 1 and (-1)^n
+    best = max(abs(_dtft_at(h, f_lo, fs)), abs(_dtft_at(h, f_hi, fs)))
     if inside.size:
         m = mag[inside]
         best = max(best, float(np.max(m)))
-        # local maxima of the sampled magnitude (ends of the band count too)
-        left = np.r_[-np.inf, m[:-1]]
-        right = np.r_[m[1:], -np.inf]
-        peaks = np.flatnonzero((m >= left) & (m >= right) & (m >= best * REFINE_RATIO))
+        # local maxima of the sampled magnitude (ends of the band count too), among the
+        # few bins near the top
+        near = np.flatnonzero(m >= best * REFINE_RATIO)
+        left = np.where(near > 0, m[np.maximum(near - 1, 0)], -np.inf)
+        right = np.where(near < m.size - 1, m[np.minimum(near + 1, m.size - 1)], -np.inf)
+        peaks = near[(m[near] >= left) & (m[near] >= right)]
         peaks = peaks[np.argsort(m[peaks])[::-1][:REFINE_MAX_PEAKS]]
         df = fs / n_fft
+        # |H|^2 is a trigonometric polynomial of degree n_taps - 1, so by Bernstein's
+        # inequality its curvature is at most (n_taps - 1)^2 times its maximum M^2; at
+        # a maximum the slope is zero, and the nearest bin (at most half a bin away)
+        # holds at least M * sqrt(1 - (pi (n_taps - 1) / n_fft)^2 / 2), 0.961 M or more
+        # at eight times oversampling. A local maximum of the bins below ``best`` times
+        # that cannot hide anything above ``best``, nor can any lower one after it.
+        # (G. G. Lorentz, Approximation of Functions, 1966, ch. 2: Bernstein's inequality.)
+        reach = np.sqrt(1.0 - 0.5 * (np.pi * (h.shape[-1] - 1) / n_fft) ** 2)
         for k in peaks:
+            if m[k] < best * reach:
+                break
             f0 = bins_hz[inside[k]]
             a, b = max(f_lo, f0 - df), min(f_hi, f0 + df)
             if b > a:
@@ -325,9 +362,9 @@ def cap_excess_db(
     """
     h = np.asarray(h, dtype=np.float64)
     grid_hz = np.asarray(grid_hz, dtype=np.float64)
-    n_fft = max(fft_length(h.shape[-1], 8), 1 << 14)
+    n_fft = dense_fft_length(h.shape[-1])
     with np.errstate(divide="ignore"):
-        mag_db = 20.0 * np.log10(np.abs(np.fft.rfft(h, n_fft)))
+        mag_db = 20.0 * np.log10(np.abs(sp_fft.rfft(h, n_fft)))
     bins_hz = np.fft.rfftfreq(n_fft, 1.0 / fs)
     over = np.maximum(mag_db - limit_db, 0.0)
     out = np.zeros(grid_hz.size)

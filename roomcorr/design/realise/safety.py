@@ -21,12 +21,22 @@
 
 from __future__ import annotations
 
+import hashlib
+import os
+import threading
+from collections import OrderedDict
 from collections.abc import Callable
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 
 import numpy as np
 
-from roomcorr.design.realise.fir import cap_excess_db, peak_gain_db, worst_case_gain_db
+from roomcorr.design.realise.fir import (
+    cap_excess_db,
+    own_length,
+    peak_gain_db,
+    worst_case_gain_db,
+)
 from roomcorr.errors import SafetyError
 
 #: Allowed excess of a synthesised filter over the boost cap (FIR ripple), dB.
@@ -62,14 +72,81 @@ class FilterStats:
     max_boost_db: float
 
 
+#: Peak gains already measured, by rate and the filter's exact bytes (see
+#: :func:`full_band_peak_gain_db`); at most :data:`PEAK_MEMO_SIZE` of them.
+_PEAK_MEMO: OrderedDict[tuple[float, int, bytes], float] = OrderedDict()
+PEAK_MEMO_SIZE = 256
+
+
 def full_band_peak_gain_db(h: np.ndarray, fs: float) -> float:
     """Largest gain in dB of FIR ``h`` anywhere from DC to Nyquist (:data:`PEAK_BAND`).
 
     :func:`roomcorr.design.realise.fir.peak_gain_db` over ``0 .. fs/2``: every bin of
     a zero-padded FFT (at least 8x the filter length), DC and Nyquist included,
     refined around the highest maxima by a chirp-z zoom.
+
+    Zeros before the first and after the last non-zero tap are left out first
+    (a delay: the magnitude is the same), and a filter whose taps are
+    byte-for-byte one measured before is not measured again (the same numbers
+    give the same peak; the key is a BLAKE2b digest of the taps), so a design
+    that checks the same filters in several places pays once.
     """
-    return peak_gain_db(h, fs, 0.0, fs / 2.0)
+    x, key = _peak_key(h, fs)
+    with _MEMO_LOCK:
+        if key in _PEAK_MEMO:
+            _PEAK_MEMO.move_to_end(key)
+            return _PEAK_MEMO[key]
+    peak = peak_gain_db(x, fs, 0.0, fs / 2.0)
+    remember_peak_gain_db(x, fs, peak)
+    return peak
+
+
+def full_band_peak_gains_db(firs: dict[int, np.ndarray]) -> dict[tuple[int, int], float]:
+    """:func:`full_band_peak_gain_db` of every filter, ``{(fs, channel): dB}``, measured on
+    up to :data:`PEAK_WORKERS` threads at once (scipy's FFTs release the interpreter
+    lock, so the filters are measured side by side on a machine with several cores)."""
+    jobs = [(fs, ch) for fs, h in firs.items() for ch in range(h.shape[0])]
+    workers = min(PEAK_WORKERS, os.cpu_count() or 1, len(jobs))
+    if workers <= 1:
+        return {(fs, ch): full_band_peak_gain_db(firs[fs][ch], fs) for fs, ch in jobs}
+    with ThreadPoolExecutor(max_workers=workers) as pool:
+        peaks = pool.map(lambda job: full_band_peak_gain_db(firs[job[0]][job[1]], job[0]), jobs)
+        return dict(zip(jobs, peaks, strict=True))
+
+
+#: Threads :func:`full_band_peak_gains_db` measures filters on at most.
+PEAK_WORKERS = 4
+_MEMO_LOCK = threading.Lock()
+
+
+def forget_peak_gains() -> None:
+    """Empty the memo of :func:`full_band_peak_gain_db` (benchmarks time a cold design)."""
+    with _MEMO_LOCK:
+        _PEAK_MEMO.clear()
+
+
+def _peak_key(h: np.ndarray, fs: float) -> tuple[np.ndarray, tuple[float, int, bytes]]:
+    """``h`` without its leading and trailing zeros, and its key in the memo."""
+    x = np.ascontiguousarray(h, dtype=np.float64)
+    nz = np.flatnonzero(x)
+    if nz.size:
+        x = x[nz[0] : nz[-1] + 1]
+    return x, (float(fs), x.size, hashlib.blake2b(x.tobytes(), digest_size=16).digest())
+
+
+def remember_peak_gain_db(h: np.ndarray, fs: float, peak_db: float) -> None:
+    """Record the peak gain of ``h`` for :func:`full_band_peak_gain_db`.
+
+    Used for a filter scaled by a known gain ``g`` after its peak ``P`` was
+    measured: its peak is ``P + 20 log10 g`` (the scaling rounds each tap by
+    at most half an ulp, about 1e-15 dB).
+    """
+    _, key = _peak_key(h, fs)
+    with _MEMO_LOCK:
+        _PEAK_MEMO[key] = float(peak_db)
+        _PEAK_MEMO.move_to_end(key)
+        if len(_PEAK_MEMO) > PEAK_MEMO_SIZE:
+            _PEAK_MEMO.popitem(last=False)
 
 
 def fit_under_cap(
@@ -126,12 +203,13 @@ def fit_under_cap(
         firs = build(curves)
         lower = [np.zeros_like(c) for c in curves]
         over = False
+        peaks = full_band_peak_gains_db(firs)
         for fs, h in firs.items():
-            width_hz = 2.0 * fs / h.shape[-1]
             for ch in range(h.shape[0]):
-                if full_band_peak_gain_db(h[ch], fs) <= max_boost_db:
+                if peaks[(fs, ch)] <= max_boost_db:
                     continue
                 over = True
+                width_hz = 2.0 * fs / own_length(h[ch])
                 lower[ch] = np.maximum(
                     lower[ch], cap_excess_db(h[ch], fs, grid_hz, limit, width_hz)
                 )
@@ -174,11 +252,7 @@ def apply_safety(
         raise SafetyError(  # settings are checked before this; never trust NaN here either
             f"ceiling {ceiling_db} dB / boost cap {max_boost_db} dB: not finite numbers"
         )
-    peaks = {
-        (fs, ch): full_band_peak_gain_db(h[ch], fs)
-        for fs, h in firs.items()
-        for ch in range(h.shape[0])
-    }
+    peaks = full_band_peak_gains_db(firs)
     pre = common_pre_gain_db(list(peaks.values()), ceiling_db)
     scale = 10 ** (pre / 20)
     out: dict[int, np.ndarray] = {}
@@ -188,6 +262,7 @@ def apply_safety(
         out[fs] = hs
         for ch in range(h.shape[0]):
             peak = peaks[(fs, ch)] + pre
+            remember_peak_gain_db(hs[ch], fs, peak)
             boost = peaks[(fs, ch)]
             if not boost <= max_boost_db + BOOST_TOLERANCE_DB:  # NaN fails too
                 raise SafetyError(
