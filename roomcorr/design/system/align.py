@@ -57,7 +57,7 @@ from scipy.signal import fftconvolve
 from roomcorr.analysis.compare import speed_of_sound_m_s
 from roomcorr.analysis.dtft import dtft
 from roomcorr.design.curve.target import AUTO_LIMITS_HZ, ROLLOFF_DB
-from roomcorr.design.realise.fir import synthesize_fir
+from roomcorr.design.realise.fir import default_n_taps, synthesize_fir
 from roomcorr.design.system.crossover import (
     Integration,
     apply_crossover,
@@ -452,10 +452,15 @@ def shared_cut_fir(integ: Integration, fs: int, n_taps: int) -> np.ndarray | Non
     cut = integ.shared_cut_db
     if cut is None or not np.any(cut < 0):
         return None
-    return synthesize_fir(integ.freq_hz, cut, fs, n_taps)
+    # as long as its own lowest frequency asks (the resolution rule of the corrections),
+    # never longer than the filters it goes into
+    n = min(n_taps, default_n_taps(fs, float(integ.freq_hz[0])))
+    return synthesize_fir(integ.freq_hz, cut, fs, n)
 
 
-def apply_plan(firs: dict[int, np.ndarray], plan: SystemPlan) -> dict[int, np.ndarray]:
+def apply_plan(
+    firs: dict[int, np.ndarray], plan: SystemPlan, lengths: dict[int, list[int]] | None = None
+) -> dict[int, np.ndarray]:
     """Put crossover, shared cut, polarity and (when baked) delays and trims into the filters.
 
     Every filter of one rate gets the same length: the correction's length
@@ -467,6 +472,10 @@ def apply_plan(firs: dict[int, np.ndarray], plan: SystemPlan) -> dict[int, np.nd
     ----------
     firs : dict of int to ndarray, shape (n_channels, n_taps)
     plan : SystemPlan
+    lengths : dict of int to list of int, optional
+        Each row's own length per rate when rows are zero-padded to a longer
+        common one (a main beside a subwoofer reaching lower): the crossover
+        and the shared cut are then kept at the row's own length, zeros after.
 
     Returns
     -------
@@ -483,9 +492,9 @@ def apply_plan(firs: dict[int, np.ndarray], plan: SystemPlan) -> dict[int, np.nd
             cut = shared_cut_fir(integ, rate, h.shape[1])
         rows = []
         for c in range(h.shape[0]):
-            x = h[c]
+            x = h[c] if lengths is None else h[c, : lengths[rate][c]]
             if cut is not None:
-                x = fftconvolve(x, cut)[: h.shape[1]]
+                x = fftconvolve(x, cut)[: x.size]
             if integ is not None:
                 x = apply_crossover(x, lp if plan.roles[c] == SUB else hp)
             x = x * plan.polarity[c]

@@ -286,11 +286,12 @@ class Integration:
 
 def _costs(
     main: np.ndarray,
-    sub: np.ndarray,
+    sub: np.ndarray | None,
     freq_hz: np.ndarray,
     fc_hz: float,
     weights: np.ndarray,
     ideal_db: np.ndarray | None = None,
+    total_db: np.ndarray | None = None,
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
     """Cost terms of summed responses.
 
@@ -299,10 +300,10 @@ def _costs(
     shape of the broadcast (mains and positions averaged; dip per position
     kept for the caller as ``(..., n_pos)``). ``ideal_db``, the smoothed
     in-phase sum of the magnitudes, does not depend on delay or polarity and
-    may be passed in.
+    may be passed in; so may ``total_db``, the smoothed level of the sums.
     """
     mask = region_mask(freq_hz, fc_hz)
-    total_db = smoothed_db(main + sub, freq_hz)
+    total_db = smoothed_db(main + sub, freq_hz) if total_db is None else total_db
     if ideal_db is None:
         ideal_db = smoothed_db(np.abs(main) + np.abs(sub), freq_hz)
     dev, dip = region_figures(total_db, mask)
@@ -366,7 +367,8 @@ def search_integration(
     n_half = int(round(DELAY_SPAN_S / DELAY_STEP_S))
     delays = delay_centre_s + DELAY_STEP_S * np.arange(-n_half, n_half + 1)
     pols = np.array([1.0, -1.0])
-    shift = np.exp(-2j * np.pi * np.outer(delays, freq_hz))  # (n_d, n_f)
+    wt = 2.0 * np.pi * np.outer(delays, freq_hz)  # (n_d, n_f)
+    cos_d, sin_d = np.cos(wt), np.sin(wt)
     # each candidate is judged on its region plus room for the smoothing window
     margin = int(np.ceil(SMOOTHING_OCT / 2 * points_per_octave_of(freq_hz))) + 2
     best: tuple[float, float, float, int] | None = None
@@ -378,8 +380,19 @@ def search_integration(
         m = main[..., sel] * hp  # (n_m, n_p, n_f)
         s = sub[..., sel] * lp  # (n_p, n_f)
         ideal = smoothed_db(np.abs(m) + np.abs(s), f)
-        s_all = pols[:, None, None, None, None] * (shift[:, None, None, sel] * s)[None]
-        cost, _, _, _ = _costs(m, s_all, f, fc, w, ideal)  # (2, n_d)
+        # |m + p e^{-jwt} s|^2 = |m|^2 + |s|^2 + 2 p Re(m conj(s) e^{jwt}) for polarity p
+        # and delay t; the smoothing is linear, so each term is smoothed once
+        ppo = points_per_octave_of(f)
+        x = m * np.conj(s)  # (n_m, n_p, n_f)
+        cross = smooth_log_grid(
+            x.real[None] * cos_d[:, None, None, sel] - x.imag[None] * sin_d[:, None, None, sel],
+            ppo,
+            SMOOTHING_OCT,
+        )  # (n_d, n_m, n_p, n_f)
+        plain = smooth_log_grid(np.abs(m) ** 2 + np.abs(s) ** 2, ppo, SMOOTHING_OCT)
+        power = plain + 2.0 * pols[:, None, None, None, None] * cross[None]
+        total = 10.0 * np.log10(np.maximum(power, 1e-30))  # (2, n_d, n_m, n_p, n_f)
+        cost, _, _, _ = _costs(m, None, f, fc, w, ideal, total)  # (2, n_d)
         k = np.unravel_index(int(np.argmin(cost)), cost.shape)
         c = float(cost[k])
         if best is None or c < best[0] - 1e-9:
