@@ -9,6 +9,7 @@ target/calibration text files named in the settings (resolved up front by
 
 from __future__ import annotations
 
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, replace
 from pathlib import Path
 
@@ -31,7 +32,9 @@ from roomcorr.design.realise.fir import default_n_taps, synthesize_fir, taps_for
 from roomcorr.design.realise.safety import FilterStats, apply_safety, fit_under_cap
 from roomcorr.design.system.align import SystemPlan, apply_plan, plan_system, subwoofer_band_hz
 from roomcorr.design.system.subwoofers import (
+    SubArrayPlan,
     cut_sos,
+    leave_one_out_spread_db,
     listening_cases,
     plan_subwoofers,
     spread_grid_hz,
@@ -375,11 +378,24 @@ def run_design(
         n_taps = {
             r: taps_for_latency(n, latency_samples(d.latency_ms, r)) for r, n in n_taps.items()
         }
+    # with a subwoofer, whose band reaches lower than the mains', each channel keeps the
+    # length its own band asks for (the mains as long as without a subwoofer), zero-padded
+    # to the common length; the crossover and alignment keep each row's own length too
+    own = bool(d.subwoofer) and d.taps is None and d.phase != "mixed"
+    own_taps = {
+        rate: [fir_taps_for(rate, None, ch.band_hz[0]) if own else n for ch in channels]
+        for rate, n in n_taps.items()
+    }
     built: dict[str, object] = {"mixed": None, "system": None, "planned": False}
 
     def build(curves: list[np.ndarray]) -> dict[int, np.ndarray]:
         firs = {
-            rate: np.stack([synthesize_fir(freq, c, rate, n) for c in curves])
+            rate: np.stack(
+                [
+                    _padded(synthesize_fir(freq, c, rate, k), n)
+                    for c, k in zip(curves, own_taps[rate], strict=True)
+                ]
+            )
             for rate, n in n_taps.items()
         }
         if d.phase == "mixed":  # same magnitudes, the loudspeaker's excess phase undone
@@ -390,7 +406,7 @@ def run_design(
             built["system"] = plan_system(irs, fs, freq, channels, target_shape, firs, d, weights)
             built["planned"] = True
         if built["system"] is not None:
-            firs = apply_plan(firs, built["system"])
+            firs = apply_plan(firs, built["system"], own_taps if own else None)
         return firs
 
     # the realised filters are fitted under the boost cap; apply_safety stays the final proof
@@ -414,6 +430,11 @@ def run_design(
         system=system,
         mixed_phase=mixed,
     )
+
+
+def _padded(h: np.ndarray, n: int) -> np.ndarray:
+    """``h`` followed by zeros up to ``n`` taps (never shorter than ``h``)."""
+    return h if h.size >= n else np.concatenate([h, np.zeros(n - h.size)])
 
 
 def _shifted(h: np.ndarray, n: int, n_out: int) -> np.ndarray:
@@ -495,10 +516,45 @@ def _run_several_subwoofers(
     # judged as the seats hear it with each main alone and all mains driven (mono bass),
     # crossed over at the range's middle
     sub_heard, bases, scales = listening_cases(resp, mains_resp, grid, float(np.sqrt(lo * hi)), fs)
-    arr = plan_subwoofers(
-        sub_heard, grid, subs, sub_idx, weights, base=bases, fs=fs, base_scale=scales
-    )
-    r = inner_design(arr, inner)
+    # the leave-one-position-out prediction (the whole search again without each position)
+    # only reports and needs nothing of the choice below: it runs on a second core
+    # meanwhile (numpy's array loops and FFTs release the interpreter lock)
+    pool = ThreadPoolExecutor(max_workers=1)
+    try:
+        loo = (
+            pool.submit(
+                leave_one_out_spread_db, sub_heard, grid, weights, bases, fs, True, scales
+            )
+            if n_pos >= 3
+            else None
+        )
+        arr = plan_subwoofers(
+            sub_heard, grid, subs, sub_idx, weights, predict=False, base=bases, fs=fs,
+            base_scale=scales,
+        )
+        r = inner_design(arr, inner)
+        result = _several_outputs(irs, fs, settings, names, sub_idx, mains, arr, r)
+        if loo is not None:
+            arr.loo_equal_db, arr.loo_after_db = loo.result()
+        return result
+    finally:
+        pool.shutdown(wait=True, cancel_futures=True)
+
+
+def _several_outputs(
+    irs: np.ndarray,
+    fs: int,
+    settings: Settings,
+    names: list[str],
+    sub_idx: list[int],
+    mains: list[int],
+    arr: SubArrayPlan,
+    r: DesignResult,
+) -> DesignResult:
+    """Every physical output of a several-subwoofer design from the inner design ``r`` on
+    the mains and the virtual subwoofer (step 3 of :func:`_run_several_subwoofers`)."""
+    d = settings.design
+    n_ch = irs.shape[1]
     plan = r.system
     assert plan is not None
     v = len(mains)

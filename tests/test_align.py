@@ -25,7 +25,7 @@ from speaker_rooms import (
 )
 
 from roomcorr.analysis.compare import speed_of_sound_m_s
-from roomcorr.design.realise.fir import fir_response_db, peak_gain_db
+from roomcorr.design.realise.fir import default_n_taps, fir_response_db, peak_gain_db
 from roomcorr.design.system.align import (
     apply_plan,
     arrival_delays_s,
@@ -235,6 +235,24 @@ def test_subwoofer_filters_are_safe(sub_case):
     g = fir_response_db(h[2], FS, np.array([fc * 4]))[0] - r.system.trim_db[2]
     assert g < -30
     assert peak_gain_db(h[2], FS, fc * 4, 20000) < -30
+
+
+def test_mains_keep_their_own_length_beside_a_subwoofer(sub_case):
+    """The subwoofer's band reaches lower than the mains', so its filter is longer; each
+    main keeps the length its own band asks for (the resolution rule of
+    ``default_n_taps``, fs / n at most f_low / 12) with zeros after it, as in a design
+    without a subwoofer."""
+    _, r, _ = sub_case
+    h = r.firs[FS]
+    shifts = r.system.delay_samples[FS]
+    n_sub = default_n_taps(FS, r.channels[2].band_hz[0])
+    assert h.shape[1] == n_sub + max(shifts)
+    for c in (0, 1):
+        n_own = default_n_taps(FS, r.channels[c].band_hz[0])
+        assert n_own < n_sub
+        nz = np.flatnonzero(h[c])
+        assert nz[-1] < shifts[c] + n_own  # zeros after its own length (and delay)
+        assert np.abs(h[c, shifts[c] + n_own - 64 : shifts[c] + n_own]).max() > 0
 
 
 def test_subwoofer_name_must_be_a_channel():
