@@ -63,6 +63,7 @@ from pra_rooms import (  # noqa: E402
 )
 from scipy.signal import fftconvolve  # noqa: E402
 
+import roomcorr.design.system.subwoofers as sw  # noqa: E402
 import roomcorr.pipeline as pipeline_mod  # noqa: E402
 from roomcorr.analysis.dtft import dtft  # noqa: E402
 from roomcorr.analysis.plausibility import impulse_response_problems  # noqa: E402
@@ -222,6 +223,26 @@ EXTRA_ROOMS = {
     ),
 }
 
+#: Development rooms (invented for settling the search's rules, never for the figures
+#: above; the figures' rooms are never used to choose): ``python
+#: benchmarks/bench_subwoofers.py dev`` compares variants of the search on them.
+DEV_ROOMS = {
+    "dev-narrow-two": ((4.6, 3.6, 2.5), 0.4, [(0.3, 0.3, 0.3), (4.3, 1.2, 0.3)], [0.0, 0.003]),
+    "dev-wide-three": (
+        (6.8, 5.2, 2.8),
+        0.55,
+        [(0.3, 2.6, 0.3), (3.0, 4.9, 0.3), (6.5, 0.9, 0.3)],
+        [0.001, 0.0, 0.005],
+    ),
+    "dev-square-four": (
+        (5.4, 5.0, 2.5),
+        0.45,
+        [(0.3, 0.3, 0.3), (0.3, 4.7, 0.3), (5.1, 2.5, 0.3), (2.7, 4.7, 0.3)],
+        [0.0, 0.002, 0.004, 0.0],
+    ),
+    "dev-deep-two": ((7.2, 4.0, 2.6), 0.5, [(0.3, 2.0, 0.3), (6.9, 3.7, 0.3)], [0.0, 0.007]),
+}
+
 LABELS = ("left", "right", "both")
 
 
@@ -341,6 +362,33 @@ def quality() -> None:
     print(f"subwoofer responses accepted without --force: {accepted} of {accepted + refused}")
 
 
+def dev() -> None:
+    """Variants of the search on the development rooms: chosen / equal feed at the
+    held-out seats, per variant of a module constant (``NAME=value`` arguments)."""
+    variants = [a for a in sys.argv[2:] if "=" in a] or ["CUT_COST_DB_PER_DB=0.0"]
+    totals: dict[str, list[float]] = {v: [] for v in variants}
+    for name, (dims, t60, subs_m, lat) in DEV_ROOMS.items():
+        n_sub = len(subs_m)
+        mics = sofa_positions(dims) + held_out_seats(dims)
+        kinds = ["main"] * 2 + ["sub"] * n_sub
+        irs = simulate_pra(dims, mains_m(dims) + subs_m, kinds, mics, t60, [0, 0, *lat])
+        meas, held = irs[:5], irs[5:]
+        sub_names = [f"sub{k + 1}" for k in range(n_sub)]
+        settings = _settings(["left", "right", *sub_names], sub_names)
+        with mock.patch.object(pipeline_mod, "plan_subwoofers", _equal_feed):
+            f_eq = _figures(held, run_design(meas, FS, settings))
+        for v in variants:
+            key, value = v.split("=")
+            number = int(value) if value.isdigit() else float(value)
+            with mock.patch.object(sw, key, number):
+                f = _figures(held, run_design(meas, FS, settings))
+            r = [f[c][0] / f_eq[c][0] for c in LABELS]
+            totals[v].append(float(np.mean(r)))
+            print(f"{name:18} {v:28} chosen/equal " + "/".join(f"{x:.2f}" for x in r), flush=True)
+    for v, x in totals.items():
+        print(f"mean {v:28} {np.mean(x):.3f}")
+
+
 def timing() -> None:
     dims, t60, subs_m, lat = MULTI_SUB_ROOMS["two-front-back"]
     kinds = ["main", "main", "sub", "sub"]
@@ -372,6 +420,8 @@ def timing() -> None:
 
 if __name__ == "__main__":
     which = sys.argv[1:] or ["timing", "quality"]
+    if "dev" in which:
+        dev()
     if "timing" in which:
         timing()
     if "quality" in which:
