@@ -9,7 +9,10 @@ frequency** of the figure's own FFT grid (any linear filter, even non-causal: st
 freedom than any design), with ``|gain| <= 1`` for each subwoofer (none above the level cap,
 the loudest may be at 1) and the subwoofers' common level relative to the mains free within
 +-12 dB of the level match, chosen by L-BFGS-B (analytic gradient) **knowing the held-out
-seats**, to minimise the issue's own figure there:
+seats**, to minimise the issue's own figure there. A second feed ("smooth") has its gains at
+nodes 1/12 octave apart (interpolated, with a free delay per subwoofer): it cannot trade one
+bin of a 1/6-octave window against its neighbour, which the per-bin feed can (the unsmoothed
+spread is printed to show it). The figure:
 
 * the mains (raw responses) through the high-pass and the subwoofers through the low-pass of
   a 4th-order Linkwitz-Riley crossover, scanned over 50 to 150 Hz (the design's range), the
@@ -25,7 +28,7 @@ seats**, to minimise the issue's own figure there:
   cases, as a real design must; its three figures are printed).
 
 Starts: equal feed, the design's own choice (its plan's delays, levels, polarities and
-cuts), each subwoofer alone and three seeded random feeds, at every crossover frequency. The
+cuts), each subwoofer alone and two seeded random feeds, at every crossover frequency. The
 result is **the best an optimiser found** with that freedom: an upper bound of the true
 minimum, not the minimum itself. If it stays above 0.6 of equal feed, that is strong
 evidence that no feed reaches the issue's figure there, not a proof; the spread of the
