@@ -43,10 +43,19 @@ fed equally, as in ``bench_subwoofers.py``, recomputed in this run), the same de
 the design's and the oracle's ratios. The bound's own equal-feed figure (raw responses, the
 crossover alone, no correction) is printed beside it.
 
-Run: ``python benchmarks/bench_subwoofer_floor.py [family] [room ...]`` (the eight rooms: about
-45 minutes on a shared machine; ``family``: the coarser feed families of ``FAMILY_VARIANTS``
-instead of the bound; room names: only those). The rooms' impulse responses are cached in the
-system's temporary folder.
+A second question (``generalise``): the same kind of feed, at nodes 1/3 or 1/6 octave apart
+with a delay per subwoofer, chosen as a design must, **on the five measured positions only**
+and jointly for the three cases, then judged at the ten held-out seats; with no regulariser
+and with a curvature penalty (:func:`curvature_penalty`) whose weight is chosen on the
+development rooms of ``bench_subwoofers.py`` (``generalise dev``) and then fixed
+(:data:`CHOSEN_WEIGHT`) for the eight rooms.
+
+Run: ``python benchmarks/bench_subwoofer_floor.py [family | generalise [dev]] [room ...]`` (the
+bound on the eight rooms: about 45 minutes on a shared machine; ``family``: the coarser feed
+families of ``FAMILY_VARIANTS`` instead of the bound; ``generalise``: the fit on the measured
+positions, ``dev`` on the development rooms with every weight of :data:`CURVATURE_WEIGHTS`;
+room names: only those). The rooms' impulse responses are cached in the system's temporary
+folder.
 """
 
 from __future__ import annotations
@@ -623,9 +632,8 @@ def main(variants=VARIANTS, only=()) -> None:
 
 #: Node spacings (octaves) of the feeds fitted on the measured positions (with a delay each).
 GENERALISE_STEPS_OCT = {"1/3 octave": 1.0 / 3.0, "1/6 octave": 1.0 / 6.0}
-#: Crossovers scanned by the fit (two of :data:`CROSSOVERS_HZ`, where the bound's joint feeds
-#: ended: the machine is shared).
-GENERALISE_CROSSOVERS_HZ = (100.0, 141.0)
+#: Crossovers scanned by the fit (those of the bound).
+GENERALISE_CROSSOVERS_HZ = CROSSOVERS_HZ
 #: Iterations of L-BFGS-B per start of the fit (fewer than the bound's: time).
 GENERALISE_MAXITER = 1000
 #: Weights of :func:`curvature_penalty` tried on the development rooms (0: none).
@@ -633,7 +641,7 @@ CURVATURE_WEIGHTS = (0.0, 1e-4, 1e-3, 1e-2)
 #: The weight per node spacing chosen on the development rooms (``generalise dev``: the
 #: least mean held-out joint ratio over the four development rooms), then fixed for the
 #: benchmark rooms.
-CHOSEN_WEIGHT = {"1/3 octave": 1e-3, "1/6 octave": 1e-3}
+CHOSEN_WEIGHT = {"1/3 octave": 1e-4, "1/6 octave": 1e-2}
 
 
 def generalise_room(name: str, room, ops_cache: dict, weights: dict) -> dict:
@@ -730,7 +738,7 @@ def generalise(dev: bool, only=()) -> None:
     rooms = {k: v for k, v in rooms.items() if not only or k in only}
     print(
         "a feed at nodes (1/3 or 1/6 octave, a delay per subwoofer), |gain| <= 1, common level\n"
-        "+-12 dB, crossover 100 or 141 Hz, chosen by L-BFGS-B on the 5 measured positions only,\n"
+        "+-12 dB, crossover 50-150 Hz, chosen by L-BFGS-B on the 5 measured positions only,\n"
         "jointly for left, right and both, with a curvature penalty of the given weight or none.\n"
         "Ratios to the benchmark's equal feed at the same seats, left/right/both: at the measured\n"
         "positions (fitted) -> at the 10 held-out seats (judged)."
@@ -777,6 +785,12 @@ def generalise(dev: bool, only=()) -> None:
             + "/".join(f"{v:.2f}" for v in x[3:])
             + f"  ({x[3:].mean():.3f})"
         )
+    if dev:
+        for label in GENERALISE_STEPS_OCT:
+            held = {
+                w: np.mean(np.array(table[f"{label}, weight {w:g}"])[:, 3:]) for w in weights[label]
+            }
+            print(f"  {label}: least mean held-out ratio with weight {min(held, key=held.get):g}")
 
 
 if __name__ == "__main__":
