@@ -109,9 +109,13 @@ def test_curvature_penalty_value_and_gradient():
     x = pack(np.array([np.full(n_nodes, 0.7 + 0.0j), lin]), 1.1, delay_s=[0.001, 0.0])
     assert curvature_penalty(x, n_subs, n_nodes, step, 1.0)[0] < 1e-24
     alt = np.array([(-1.0) ** np.arange(n_nodes), np.ones(n_nodes)]).astype(complex)
-    want = 2.0 * (n_nodes - 2) * 16.0 / (step**3 * n_subs)
+    want = 2.0 * (n_nodes - 2) * 16.0 / (step**3 * n_subs)  # mean power 1
     value = curvature_penalty(pack(alt), n_subs, n_nodes, step, 2.0)[0]
     assert abs(value - want) < 1e-9 * want
+    # relative to each subwoofer's power: turning one down changes nothing
+    quiet = alt.copy()
+    quiet[0] *= 0.1
+    assert abs(curvature_penalty(pack(quiet), n_subs, n_nodes, step, 2.0)[0] - want) < 1e-9 * want
     # the gradient against scipy's finite differences (approx_fprime), delays and common
     # level untouched by the penalty
     rng = np.random.default_rng(7)
