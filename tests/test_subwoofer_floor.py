@@ -17,12 +17,14 @@ sys.path.insert(0, str(Path(__file__).resolve().parent.parent / "benchmarks"))
 
 from bench_subwoofer_floor import (  # noqa: E402
     cost_and_grad,
+    curvature_penalty,
     direct_figure,
     feed,
     level_operator,
     node_basis,
     optimise_feed,
     pack,
+    room_cases,
     spread_db,
 )
 
@@ -96,6 +98,53 @@ def test_gradient_matches_finite_differences(operator, smooth_feed):
         ) / (2 * h)
         assert abs(grad[i] - num) < 1e-5 * max(1.0, abs(num)), (i, grad[i], num)
     assert val > 0.5
+
+
+def test_curvature_penalty_value_and_gradient():
+    # Second differences of a sequence linear in the node index vanish (exact arithmetic),
+    # so a constant gain and a gain varying linearly over log frequency cost nothing; an
+    # alternating +-1 sequence has second differences of magnitude 4 at every inner node.
+    n_subs, n_nodes, step = 2, 9, 1 / 6
+    lin = (0.3 + 0.05 * np.arange(n_nodes)) * np.exp(1j * 0.2)
+    x = pack(np.array([np.full(n_nodes, 0.7 + 0.0j), lin]), 1.1, delay_s=[0.001, 0.0])
+    assert curvature_penalty(x, n_subs, n_nodes, step, 1.0)[0] < 1e-24
+    alt = np.array([(-1.0) ** np.arange(n_nodes), np.ones(n_nodes)]).astype(complex)
+    want = 2.0 * (n_nodes - 2) * 16.0 / (step**3 * n_subs)  # mean power 1
+    value = curvature_penalty(pack(alt), n_subs, n_nodes, step, 2.0)[0]
+    assert abs(value - want) < 1e-9 * want
+    # relative to each subwoofer's power: turning one down changes nothing
+    quiet = alt.copy()
+    quiet[0] *= 0.1
+    assert abs(curvature_penalty(pack(quiet), n_subs, n_nodes, step, 2.0)[0] - want) < 1e-9 * want
+    # the gradient against scipy's finite differences (approx_fprime), delays and common
+    # level untouched by the penalty
+    rng = np.random.default_rng(7)
+    z = rng.uniform(0.2, 0.9, (n_subs, n_nodes)) * np.exp(1j * rng.uniform(0, 6, (n_subs, n_nodes)))
+    x = pack(z, 0.8, delay_s=[0.002, -0.001])
+    _, grad = curvature_penalty(x, n_subs, n_nodes, step, 1e-3)
+    fd = approx_fprime(x, lambda v: curvature_penalty(v, n_subs, n_nodes, step, 1e-3)[0], 1e-7)
+    np.testing.assert_allclose(grad, fd, rtol=1e-4, atol=1e-6)
+    assert np.all(grad[-3:] == 0.0)
+    assert np.abs(grad).max() > 1e-2
+
+
+def test_level_match_taken_at_the_given_seats():
+    # The subwoofers are matched to the mains' sum by the RMS ratio over fc/2 to 2 fc
+    # (as with_mains); taken at other seats whose subwoofers are twice as loud, the match
+    # halves, the mains stay as they are.
+    rng = np.random.default_rng(8)
+    n_bins = N_SAMPLES // 2 + 1
+    freq_hz = np.arange(n_bins) * FS / N_SAMPLES
+    spec = rng.standard_normal((4, 4, n_bins)) + 1j * rng.standard_normal((4, 4, n_bins))
+    cols = np.flatnonzero((freq_hz > 20) & (freq_hz < 160))
+    own = room_cases(spec, freq_hz, 100.0, cols)
+    other = spec[:3].copy()
+    other[:, 2:] *= 2.0
+    matched = room_cases(spec, freq_hz, 100.0, cols, other)
+    ref = room_cases(spec, freq_hz, 100.0, cols, spec[:3])
+    for c in ("left", "right", "both"):
+        np.testing.assert_allclose(matched[c][0], own[c][0])
+        np.testing.assert_allclose(matched[c][1], 0.5 * ref[c][1], rtol=1e-12)
 
 
 def _ratio_error(g: np.ndarray, want: np.ndarray, f: np.ndarray) -> float:
