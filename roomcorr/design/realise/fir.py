@@ -20,6 +20,7 @@ import numpy as np
 from scipy import fft as sp_fft
 from scipy.signal import freqz, zoom_fft
 
+from roomcorr.analysis.dtft import dtft
 from roomcorr.design.phase.minphase import DEFAULT_OVERSAMPLE, minimum_phase_spectrum
 from roomcorr.grid import interp_log
 
@@ -190,15 +191,6 @@ def own_length(h: np.ndarray) -> int:
     return int(nz[-1]) + 1 if nz.size else 1
 
 
-def _dtft_at(h: np.ndarray, freq_hz: float, fs: float) -> complex:
-    """DTFT of ``h`` at one frequency (exact sums at DC and Nyquist)."""
-    if freq_hz == 0.0:
-        return complex(h.sum())
-    if freq_hz == fs / 2.0:
-        return complex(h[0::2].sum() - h[1::2].sum())
-    return complex(np.exp(-2j * np.pi * freq_hz / fs * np.arange(h.shape[-1])) @ h)
-
-
 def dense_fft_length(n_taps: int) -> int:
     """FFT length of the dense look at a filter's response (:func:`peak_gain_db`,
     :func:`cap_excess_db`): at least eight times ``n_taps`` and 16384, the next length
@@ -248,9 +240,8 @@ def peak_gain_db(h: np.ndarray, fs: float, f_lo: float = 20.0, f_hi: float = 200
     mag = np.abs(sp_fft.rfft(h, n_fft))
     bins_hz = np.fft.rfftfreq(n_fft, 1.0 / fs)
     inside = np.flatnonzero((bins_hz >= f_lo) & (bins_hz <= f_hi))
-    # band edges: the DTFT sum directly (two frequencies, O(n_taps)); at DC and Nyquist
-    # the kernel is 1 and (-1)^n
-    best = max(abs(_dtft_at(h, f_lo, fs)), abs(_dtft_at(h, f_hi, fs)))
+    # band edges: the DTFT sum directly (two frequencies, O(n_taps))
+    best = float(np.max(np.abs(dtft(h, np.array([f_lo, f_hi]), fs))))
     if inside.size:
         m = mag[inside]
         best = max(best, float(np.max(m)))
