@@ -65,6 +65,7 @@ import os
 import sys
 import tempfile
 import time
+from dataclasses import dataclass
 from pathlib import Path
 from unittest import mock
 
@@ -87,13 +88,10 @@ from bench_subwoofers import (  # noqa: E402
     _figures,
     _levels_db,
     _settings,
+    sofa_irs,
 )
 from pra_rooms import (  # noqa: E402
     MULTI_SUB_ROOMS,
-    held_out_seats,
-    mains_m,
-    simulate_pra,
-    sofa_positions,
 )
 from scipy.optimize import minimize  # noqa: E402
 
@@ -379,10 +377,7 @@ def room_irs(name: str, room) -> np.ndarray:
     path = Path(tempfile.gettempdir()) / "roomcorr_floor" / f"{name}-{key}.npy"
     if path.exists():
         return np.load(path)
-    dims, t60, subs_m, lat = room
-    mics = sofa_positions(dims) + held_out_seats(dims)
-    kinds = ["main"] * 2 + ["sub"] * len(subs_m)
-    irs = simulate_pra(dims, mains_m(dims) + subs_m, kinds, mics, t60, [0, 0, *lat])
+    irs = sofa_irs(room)
     path.parent.mkdir(exist_ok=True)
     np.save(path, irs)
     return irs
@@ -468,8 +463,26 @@ def variant_basis(f_cols: np.ndarray, step_oct):
     return node_basis(f_cols, step_oct), node_freqs_hz(f_cols, step_oct)
 
 
-def floor_room(name: str, room, ops_cache: dict, variants=VARIANTS) -> dict:
-    """Equal feed, the design and the free-feed bounds of one room (see the module)."""
+@dataclass
+class _RoomDesigns:
+    """One room's seats, the design and equal feed from its five measured positions, and
+    the smoothing operator on the benchmark's own FFT grid (what the bound and the
+    generalisation test both start from)."""
+
+    meas: np.ndarray
+    held: np.ndarray
+    n_sub: int
+    chosen: object
+    equal: object
+    n_samples: int
+    cols: np.ndarray
+    smooth: object
+    interp: object
+    freq_hz: np.ndarray
+
+
+def _room_designs(name: str, room, ops_cache: dict) -> _RoomDesigns:
+    """:class:`_RoomDesigns` of one room; the operator is kept in ``ops_cache`` by length."""
     irs = room_irs(name, room)
     meas, held = irs[:5], irs[5:]
     n_sub = irs.shape[1] - 2
@@ -478,16 +491,24 @@ def floor_room(name: str, room, ops_cache: dict, variants=VARIANTS) -> dict:
     chosen = run_design(meas, FS, settings)
     with mock.patch.object(pipeline_mod, "plan_subwoofers", _equal_feed):
         equal = run_design(meas, FS, settings)
-    out = {
-        "n_sub": n_sub,
-        "equal_bench": _figures(held, equal),
-        "chosen_bench": _figures(held, chosen),
-    }
     n_samples = irs.shape[-1] + chosen.firs[FS].shape[1] - 1  # the benchmark's own grid
     if n_samples not in ops_cache:
         ops_cache[n_samples] = level_operator(n_samples, FS)
     cols, smooth, interp = ops_cache[n_samples]
     freq_hz = np.fft.rfftfreq(n_samples, 1 / FS)
+    return _RoomDesigns(meas, held, n_sub, chosen, equal, n_samples, cols, smooth, interp, freq_hz)
+
+
+def floor_room(name: str, room, ops_cache: dict, variants=VARIANTS) -> dict:
+    """Equal feed, the design and the free-feed bounds of one room (see the module)."""
+    r = _room_designs(name, room, ops_cache)
+    held, n_sub, chosen, n_samples = r.held, r.n_sub, r.chosen, r.n_samples
+    cols, smooth, interp, freq_hz = r.cols, r.smooth, r.interp, r.freq_hz
+    out = {
+        "n_sub": n_sub,
+        "equal_bench": _figures(held, r.equal),
+        "chosen_bench": _figures(held, chosen),
+    }
     spec = np.fft.rfft(held, n_samples)
     f_cols = freq_hz[cols]
     plan = chosen.system.subwoofers
@@ -663,26 +684,16 @@ def generalise_room(name: str, room, ops_cache: dict, weights: dict) -> dict:
     at both seat sets and, per spacing and weight, the fitted feed's figures (no penalty)
     at the measured positions and at the held-out seats, per case.
     """
-    irs = room_irs(name, room)
-    meas, held = irs[:5], irs[5:]
-    n_sub = irs.shape[1] - 2
-    sub_names = [f"sub{k + 1}" for k in range(n_sub)]
-    settings = _settings(["left", "right", *sub_names], sub_names)
-    chosen = run_design(meas, FS, settings)
-    with mock.patch.object(pipeline_mod, "plan_subwoofers", _equal_feed):
-        equal = run_design(meas, FS, settings)
+    r = _room_designs(name, room, ops_cache)
+    meas, held, n_sub, chosen, n_samples = r.meas, r.held, r.n_sub, r.chosen, r.n_samples
+    cols, smooth, interp, freq_hz = r.cols, r.smooth, r.interp, r.freq_hz
     out = {
         "n_sub": n_sub,
-        "equal_held": _figures(held, equal),
-        "equal_meas": _figures(meas, equal),
+        "equal_held": _figures(held, r.equal),
+        "equal_meas": _figures(meas, r.equal),
         "chosen_held": _figures(held, chosen),
         "chosen_meas": _figures(meas, chosen),
     }
-    n_samples = irs.shape[-1] + chosen.firs[FS].shape[1] - 1  # the benchmark's own grid
-    if n_samples not in ops_cache:
-        ops_cache[n_samples] = level_operator(n_samples, FS)
-    cols, smooth, interp = ops_cache[n_samples]
-    freq_hz = np.fft.rfftfreq(n_samples, 1 / FS)
     spec_m = np.fft.rfft(meas, n_samples)
     spec_h = np.fft.rfft(held, n_samples)
     f_cols = freq_hz[cols]

@@ -81,6 +81,15 @@ FS = 48000
 BAND_HZ = (25.0, 100.0)
 
 
+def sofa_irs(room) -> np.ndarray:
+    """A room of :data:`MULTI_SUB_ROOMS` form simulated at its 15 seats, shape (15, 2 +
+    n_subs, n_samples): the five measured positions first, then the ten held-out seats."""
+    dims, t60, subs_m, lat = room
+    mics = sofa_positions(dims) + held_out_seats(dims)
+    kinds = ["main"] * 2 + ["sub"] * len(subs_m)
+    return simulate_pra(dims, mains_m(dims) + subs_m, kinds, mics, t60, [0, 0, *lat])
+
+
 def _levels_db(signals: np.ndarray) -> np.ndarray:
     """1/6-octave level (pyfar) on a log grid over BAND_HZ, shape (n_signals, 49)."""
     sm, _ = pf.dsp.smooth_fractional_octave(pf.Signal(signals, FS), 6)
@@ -266,9 +275,7 @@ def quality() -> None:
     rooms = {**MULTI_SUB_ROOMS, **EXTRA_ROOMS}
     for name, (dims, t60, subs_m, lat) in rooms.items():
         n_sub = len(subs_m)
-        mics = sofa_positions(dims) + held_out_seats(dims)
-        kinds = ["main"] * 2 + ["sub"] * n_sub
-        irs = simulate_pra(dims, mains_m(dims) + subs_m, kinds, mics, t60, [0, 0, *lat])
+        irs = sofa_irs((dims, t60, subs_m, lat))
         meas, held = irs[:5], irs[5:]
         for p in range(irs.shape[0]):
             for s in range(2, 2 + n_sub):
@@ -370,9 +377,7 @@ def dev() -> None:
     totals: dict[str, list[float]] = {v: [] for v in variants}
     for name, (dims, t60, subs_m, lat) in DEV_ROOMS.items():
         n_sub = len(subs_m)
-        mics = sofa_positions(dims) + held_out_seats(dims)
-        kinds = ["main"] * 2 + ["sub"] * n_sub
-        irs = simulate_pra(dims, mains_m(dims) + subs_m, kinds, mics, t60, [0, 0, *lat])
+        irs = sofa_irs((dims, t60, subs_m, lat))
         meas, held = irs[:5], irs[5:]
         sub_names = [f"sub{k + 1}" for k in range(n_sub)]
         settings = _settings(["left", "right", *sub_names], sub_names)
