@@ -582,6 +582,11 @@ ORACLE_QUOTED = {
 }
 
 
+def _trio(d) -> str:
+    """Left/right/both values of a dict keyed by :data:`LABELS`, two decimals."""
+    return "/".join(f"{d[c]:.2f}" for c in LABELS)
+
+
 def main(variants=VARIANTS, only=()) -> None:
     print(
         "free-feed bound at the held-out seats: a complex gain per subwoofer at every bin ('per\n"
@@ -594,18 +599,15 @@ def main(variants=VARIANTS, only=()) -> None:
     rows = []
     rooms = {k: v for k, v in {**MULTI_SUB_ROOMS, **EXTRA_ROOMS}.items() if not only or k in only}
 
-    def trio(d):
-        return "/".join(f"{d[c]:.2f}" for c in LABELS)
-
     for name, room in rooms.items():
         t0 = time.perf_counter()
         r = floor_room(name, room, ops, variants)
         eq = {c: r["equal_bench"][c][0] for c in LABELS}
         r_chosen = {c: r["chosen_bench"][c][0] / eq[c] for c in LABELS}
         print(
-            f"{name:21} {r['n_sub']} subs | equal (bench) {trio(eq)} dB | own equal "
-            f"{trio(r['own_equal'])} dB (operator vs pyfar on the whole signal: "
-            f"{r['agree_db']:.1e} dB) | chosen {trio(r_chosen)} | oracle (quoted) "
+            f"{name:21} {r['n_sub']} subs | equal (bench) {_trio(eq)} dB | own equal "
+            f"{_trio(r['own_equal'])} dB (operator vs pyfar on the whole signal: "
+            f"{r['agree_db']:.1e} dB) | chosen {_trio(r_chosen)} | oracle (quoted) "
             + "/".join(f"{v:.2f}" for v in ORACLE_QUOTED[name])
             + f" | {time.perf_counter() - t0:.0f} s",
             flush=True,
@@ -618,9 +620,9 @@ def main(variants=VARIANTS, only=()) -> None:
             fb, db = v["direct_both"]
             fe, fo = v["fine_both"]
             print(
-                f"{'':21} {variant:10} free feed {trio(ratio)} (fc "
+                f"{'':21} {variant:10} free feed {_trio(ratio)} (fc "
                 + "/".join(f"{v['best'][c][1]:.0f}" for c in LABELS)
-                + f" Hz) | joint {trio(r_joint)} (fc {v['best']['joint'][1]:.0f} Hz) | both: "
+                + f" Hz) | joint {_trio(r_joint)} (fc {v['best']['joint'][1]:.0f} Hz) | both: "
                 f"{fb:.3f} dB = {db:.3f} dB by pyfar; unsmoothed spread {fo:.2f} dB (equal "
                 f"{fe:.2f}); uncapped (+20 dB) {v['uncapped_both'] / eq['both']:.2f}; largest "
                 f"gain {v['max_gain']:.2f}",
@@ -763,9 +765,6 @@ def generalise(dev: bool, only=()) -> None:
     ops: dict = {}
     table: dict = {}
 
-    def trio(d):
-        return "/".join(f"{d[c]:.2f}" for c in LABELS)
-
     for name, room in rooms.items():
         t0 = time.perf_counter()
         r = generalise_room(name, room, ops, weights)
@@ -774,8 +773,8 @@ def generalise(dev: bool, only=()) -> None:
         ch_m = {c: r["chosen_meas"][c][0] / eq_m[c] for c in LABELS}
         ch_h = {c: r["chosen_held"][c][0] / eq_h[c] for c in LABELS}
         print(
-            f"{name:21} {r['n_sub']} subs | equal feed: measured {trio(eq_m)} dB, held out "
-            f"{trio(eq_h)} dB | design (chosen) {trio(ch_m)} -> {trio(ch_h)} | "
+            f"{name:21} {r['n_sub']} subs | equal feed: measured {_trio(eq_m)} dB, held out "
+            f"{_trio(eq_h)} dB | design (chosen) {_trio(ch_m)} -> {_trio(ch_h)} | "
             f"{time.perf_counter() - t0:.0f} s",
             flush=True,
         )
@@ -787,7 +786,7 @@ def generalise(dev: bool, only=()) -> None:
             rm = {c: v["meas"][c] / eq_m[c] for c in LABELS}
             rh = {c: v["held"][c] / eq_h[c] for c in LABELS}
             print(
-                f"{'':21} {label}, weight {weight:g}: {trio(rm)} -> {trio(rh)} (fc {v['fc']:.0f}"
+                f"{'':21} {label}, weight {weight:g}: {_trio(rm)} -> {_trio(rh)} (fc {v['fc']:.0f}"
                 f" Hz, penalty {v['penalty']:.3f} dB, largest gain {v['max_gain']:.2f})",
                 flush=True,
             )
