@@ -43,6 +43,7 @@ hour on a shared machine).
 
 from __future__ import annotations
 
+import contextlib
 import os
 import sys
 import time
@@ -121,7 +122,8 @@ def _figures(irs_held: np.ndarray, r, n_mains: int = 2) -> dict[str, tuple[float
 
 
 def _equal_feed(
-    resp, freq_hz, names, channels, weights=None, predict=True, base=None, fs=FS, base_scale=None
+    resp, freq_hz, names, channels, weights=None, predict=True, base=None, fs=FS, base_scale=None,
+    **_,
 ):
     """plan_subwoofers with every subwoofer fed equally, no delay, no own filter (the
     baseline): the plan without own filters, its delays, levels and polarities reset."""
@@ -136,7 +138,8 @@ def _equal_feed(
 
 
 def _without_own_filters(
-    resp, freq_hz, names, channels, weights=None, predict=True, base=None, fs=FS, base_scale=None
+    resp, freq_hz, names, channels, weights=None, predict=True, base=None, fs=FS, base_scale=None,
+    **_,
 ):
     """plan_subwoofers with delay, level and polarity only (no own filters)."""
     return plan_subwoofers(
@@ -370,6 +373,12 @@ def quality() -> None:
     print(f"subwoofer responses accepted without --force: {accepted} of {accepted + refused}")
 
 
+def _number(value: str) -> bool | int | float:
+    if value in ("True", "False"):
+        return value == "True"
+    return int(value) if value.isdigit() else float(value)
+
+
 def dev() -> None:
     """Variants of the search on the development rooms: chosen / equal feed at the
     held-out seats, per variant of a module constant (``NAME=value`` arguments)."""
@@ -384,9 +393,10 @@ def dev() -> None:
         with mock.patch.object(pipeline_mod, "plan_subwoofers", _equal_feed):
             f_eq = _figures(held, run_design(meas, FS, settings))
         for v in variants:
-            key, value = v.split("=")
-            number = int(value) if value.isdigit() else float(value)
-            with mock.patch.object(sw, key, number):
+            with contextlib.ExitStack() as stack:  # "NAME=value[,NAME=value...]"
+                for part in v.split(","):
+                    key, value = part.split("=")
+                    stack.enter_context(mock.patch.object(sw, key, _number(value)))
                 f = _figures(held, run_design(meas, FS, settings))
             r = [f[c][0] / f_eq[c][0] for c in LABELS]
             totals[v].append(float(np.mean(r)))

@@ -14,7 +14,7 @@ from dataclasses import dataclass, replace
 from pathlib import Path
 
 import numpy as np
-from scipy.signal import sosfilt
+from scipy.signal import oaconvolve, sosfilt
 
 from roomcorr.analysis.average import power_average
 from roomcorr.analysis.balance import steady_balance_set
@@ -31,8 +31,10 @@ from roomcorr.design.phase.mixedphase import MixedPhaseDesign, apply_mixed_phase
 from roomcorr.design.realise.fir import default_n_taps, synthesize_fir, taps_for_latency
 from roomcorr.design.realise.safety import FilterStats, apply_safety, fit_under_cap
 from roomcorr.design.system.align import SystemPlan, apply_plan, plan_system, subwoofer_band_hz
+from roomcorr.design.system.feeds import feed_fir
 from roomcorr.design.system.subwoofers import (
     SubArrayPlan,
+    crossover_cases,
     cut_sos,
     leave_one_out_spread_db,
     listening_cases,
@@ -451,6 +453,19 @@ def _own_cuts(h: np.ndarray, cuts, fs: float) -> np.ndarray:
     return h
 
 
+def _own_filter(h: np.ndarray, arr: SubArrayPlan, k: int, fs: float, latency_s: float):
+    """``h`` (any leading shape) through subwoofer ``k``'s own filter at ``fs``: its cuts,
+    or its shaped feed (:func:`roomcorr.design.system.feeds.feed_fir`, late by
+    ``latency_s``, ``h`` lengthened by that much)."""
+    if arr.feed is None:
+        return _own_cuts(h, arr.cuts[k], fs)
+    fir = feed_fir(arr.feed_nodes_hz, arr.feed[k], fs, latency_s)
+    n = h.shape[-1] + int(round(latency_s * fs))
+    h2 = np.atleast_2d(h)
+    out = oaconvolve(h2, fir[None], axes=-1)[..., :n]
+    return out.reshape(*h.shape[:-1], n)
+
+
 def _run_several_subwoofers(
     irs: np.ndarray, fs: int, settings: Settings, channel_names: list[str] | None
 ) -> DesignResult:
@@ -503,19 +518,23 @@ def _run_several_subwoofers(
         """The single-subwoofer design on the mains and one virtual subwoofer: every
         subwoofer with its own delay, level, polarity and cuts, summed."""
         shifts = [int(round(t * fs)) for t in arr.delay_s]
-        n_v = n_samp + max(shifts)
+        n_v = n_samp + max(shifts) + int(round(latency * fs))
         inner_irs = np.zeros((n_pos, len(mains) + 1, n_v))
         inner_irs[:, : len(mains), :n_samp] = irs[:, mains]
         for k, c in enumerate(sub_idx):
             g = 10.0 ** (arr.gain_db[k] / 20.0) * arr.polarity[k]
-            own = _own_cuts(irs[:, c], arr.cuts[k], fs)
+            own = _own_filter(irs[:, c], arr, k, fs, latency)
             for p in range(n_pos):
                 inner_irs[p, -1] += g * _shifted(own[p], shifts[k], n_v)
         return run_design(inner_irs, fs, design_settings, inner_names)
 
     # judged as the seats hear it with each main alone and all mains driven (mono bass),
     # crossed over at the range's middle
-    sub_heard, bases, scales = listening_cases(resp, mains_resp, grid, float(np.sqrt(lo * hi)), fs)
+    mid = float(np.sqrt(lo * hi))
+    sub_heard, bases, scales = listening_cases(resp, mains_resp, grid, mid, fs)
+    # the shaped feeds are judged through crossovers over the whole range (the design
+    # chooses its crossover afterwards)
+    feed_cases = crossover_cases(resp, mains_resp, grid, (lo, mid, hi), mid, fs)
     # the leave-one-position-out prediction (the whole search again without each position)
     # only reports and needs nothing of the choice below: it runs on a second core
     # meanwhile (numpy's array loops and FFTs release the interpreter lock)
@@ -523,17 +542,20 @@ def _run_several_subwoofers(
     try:
         loo = (
             pool.submit(
-                leave_one_out_spread_db, sub_heard, grid, weights, bases, fs, True, scales
+                leave_one_out_spread_db,
+                sub_heard, grid, weights, bases, fs, True, scales, feed_cases,
+                d.latency_ms / 1000.0,
             )
             if n_pos >= 3
             else None
         )
         arr = plan_subwoofers(
             sub_heard, grid, subs, sub_idx, weights, predict=False, base=bases, fs=fs,
-            base_scale=scales,
+            base_scale=scales, feed_cases=feed_cases, feed_latency_s=d.latency_ms / 1000.0,
         )
+        latency = arr.feed_latency_s
         r = inner_design(arr, inner)
-        result = _several_outputs(irs, fs, settings, names, sub_idx, mains, arr, r)
+        result = _several_outputs(irs, fs, settings, names, sub_idx, mains, arr, r, latency)
         if loo is not None:
             arr.loo_equal_db, arr.loo_after_db = loo.result()
         return result
@@ -550,6 +572,7 @@ def _several_outputs(
     mains: list[int],
     arr: SubArrayPlan,
     r: DesignResult,
+    latency_s: float = 0.0,
 ) -> DesignResult:
     """Every physical output of a several-subwoofer design from the inner design ``r`` on
     the mains and the virtual subwoofer (step 3 of :func:`_run_several_subwoofers`)."""
@@ -562,13 +585,13 @@ def _several_outputs(
     firs: dict[int, np.ndarray] = {}
     for rate, h in r.firs.items():
         sh = [int(round(t * rate)) for t in arr.delay_s]
-        n_out = h.shape[1] + max(sh)
+        n_out = h.shape[1] + max(sh) + int(round(latency_s * rate))
         rows = np.zeros((n_ch, n_out))
         for i, c in enumerate(mains):
             rows[c, : h.shape[1]] = h[i]
         for k, c in enumerate(sub_idx):
             g = 10.0 ** (arr.gain_db[k] / 20.0) * arr.polarity[k]
-            rows[c] = g * _shifted(_own_cuts(h[v], arr.cuts[k], rate), sh[k], n_out)
+            rows[c] = g * _shifted(_own_filter(h[v], arr, k, rate, latency_s), sh[k], n_out)
         firs[rate] = rows
     firs, pre2, stats = apply_safety(firs, d.ceiling_db, d.max_boost_db)
     inner_of = {c: i for i, c in enumerate(mains)} | {c: v for c in sub_idx}
@@ -581,12 +604,13 @@ def _several_outputs(
         min_firs = {}
         for rate, h in mp.min_phase_firs.items():
             sh = [int(round(t * rate)) for t in arr.delay_s]
-            rows = np.zeros((n_ch, h.shape[1] + max(sh)))
+            rows = np.zeros((n_ch, h.shape[1] + max(sh) + int(round(latency_s * rate))))
             for i, c in enumerate(mains):
                 rows[c, : h.shape[1]] = h[i]
             for k, c in enumerate(sub_idx):
                 g = 10.0 ** (arr.gain_db[k] / 20.0) * arr.polarity[k]
-                rows[c] = g * _shifted(_own_cuts(h[v], arr.cuts[k], rate), sh[k], rows.shape[1])
+                own = _own_filter(h[v], arr, k, rate, latency_s)
+                rows[c] = g * _shifted(own, sh[k], rows.shape[1])
             min_firs[rate] = rows
         mixed = replace(
             mp,

@@ -104,7 +104,8 @@ class DesignSettings:
         ``"minimum"`` (no added latency) or ``"mixed"`` (also undo the
         loudspeaker's excess phase, late by ``latency_ms``).
     latency_ms : float
-        Latency budget of a mixed-phase design, ms.
+        Latency budget, ms: how late a mixed-phase design makes the sound, and how
+        early several subwoofers' shaped feeds may act (the mains then wait as long).
     speaker_low_hz : float or None
         The loudspeakers' own low-frequency limit (e.g. their -3 dB corner);
         below it the filters never raise the drive. ``None`` puts the limit
@@ -232,7 +233,8 @@ NUMBER_RANGES: dict[str, tuple[float, float, str]] = {
 _INTEGER_KEYS = {"taps", "iir_sections", "sample_rates"}
 _HINTS = {
     "max_boost_db": "large boosts cost headroom and driver excursion",
-    "latency_ms": "sound through a mixed-phase filter is late by this much",
+    "latency_ms": "sound through a mixed-phase filter, or several subwoofers' shaped feeds, "
+    "is late by this much",
 }
 
 

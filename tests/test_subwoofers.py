@@ -17,6 +17,7 @@ from roomcorr.deliver.routes import build_routes
 from roomcorr.deliver.system import manifest_fields, system_sentences
 from roomcorr.design.phase.mixedphase import MAGNITUDE_TOLERANCE_DB, PRE_RING_LIMIT_DB
 from roomcorr.design.system.crossover import linkwitz_riley_response
+from roomcorr.design.system.feeds import feed_fir
 from roomcorr.design.system.subwoofers import (
     CUT_DEPTHS_DB,
     MAX_CUTS,
@@ -225,6 +226,17 @@ def two_sub_design():
     return irs, run_design(irs, FS, Settings(design=d))
 
 
+def _through_own(row: np.ndarray, arr, k: int, rate: int) -> np.ndarray:
+    """``row`` through subwoofer ``k``'s own filter (its cuts by scipy's sosfilt, or its
+    shaped feed's FIR filter by numpy's convolution), cut to the row's length."""
+    if arr.feed is None:
+        for f0, gain, q in arr.cuts[k]:
+            row = sosfilt(cut_sos(f0, gain, q, rate), row)
+        return row
+    fir = feed_fir(arr.feed_nodes_hz, arr.feed[k], rate, arr.feed_latency_s)
+    return np.convolve(row, fir)[: row.size]
+
+
 def test_each_subwoofer_gets_the_array_filter_with_its_own_delay_level_and_polarity(
     two_sub_design,
 ):
@@ -240,16 +252,12 @@ def test_each_subwoofer_gets_the_array_filter_with_its_own_delay_level_and_polar
         for k, c in enumerate((2, 3)):
             g = 10 ** (arr.gain_db[k] / 20) * arr.polarity[k]
             rows.append(h[c, shifts[k] : shifts[k] + m] / g)
-        # each row is the array filter through that subwoofer's own cuts; causal LTI
+        # each row is the array filter through that subwoofer's own filter; causal LTI
         # filters commute, also on sequences cut to one length (the first m output
-        # samples depend only on the first m input samples), so B's cuts on A's row
-        # equal A's cuts on B's row exactly when both come from one array filter
-        a_then_b = rows[0]
-        for f0, gain, q in arr.cuts[1]:
-            a_then_b = sosfilt(cut_sos(f0, gain, q, rate), a_then_b)
-        b_then_a = rows[1]
-        for f0, gain, q in arr.cuts[0]:
-            b_then_a = sosfilt(cut_sos(f0, gain, q, rate), b_then_a)
+        # samples depend only on the first m input samples), so B's filter on A's row
+        # equals A's filter on B's row exactly when both come from one array filter
+        a_then_b = _through_own(rows[0], arr, 1, rate)
+        b_then_a = _through_own(rows[1], arr, 0, rate)
         np.testing.assert_allclose(a_then_b, b_then_a, atol=1e-9)
     # the safety ceiling holds for every output as delivered (peak gain <= 0 dB)
     assert all(s.peak_gain_db <= r.settings.design.ceiling_db + 1e-6 for s in r.stats)
@@ -368,9 +376,7 @@ def test_several_subwoofers_with_mixed_phase(two_sub_design):
         g = 10 ** (arr.gain_db[k] / 20) * arr.polarity[k]
         n = int(round(arr.delay_s[k] * FS))
         rows.append(h[c, n : n + m] / g)
-    for k, other in ((0, 1), (1, 0)):
-        for f0, gain, q in arr.cuts[other]:
-            rows[k] = sosfilt(cut_sos(f0, gain, q, FS), rows[k])
+    rows = [_through_own(rows[0], arr, 1, FS), _through_own(rows[1], arr, 0, FS)]
     np.testing.assert_allclose(rows[0], rows[1], atol=1e-9)
     # an all-pass changes no magnitude: every output has the minimum-phase design's
     # magnitude up to one gain (scipy's freqz, 25 to 100 Hz for the subwoofers, 200 Hz to
@@ -388,3 +394,29 @@ def test_several_subwoofers_with_mixed_phase(two_sub_design):
         b = np.abs(freqz(r_min.firs[FS][c], worN=f, fs=FS)[1])
         diff = 20 * np.log10(a / b)
         np.testing.assert_allclose(diff - np.median(diff), 0.0, atol=0.5)
+
+
+def test_shaped_feeds_never_raise_and_the_mains_wait_for_them(two_sub_design):
+    # each subwoofer's own filter is a shaped feed realised 20 ms late (the default latency
+    # budget); scipy's freqz of its taps on a dense grid stays at or below 0 dB (it never
+    # raises a subwoofer), and the mains are delayed to arrive with the late subwoofers
+    _, r = two_sub_design
+    arr = r.system.subwoofers
+    lat = r.settings.design.latency_ms / 1000.0
+    assert arr.feed is not None and arr.feed_latency_s == pytest.approx(lat)
+    for k in range(2):
+        for rate in (FS, 96000):
+            h = feed_fir(arr.feed_nodes_hz, arr.feed[k], rate, lat)
+            _, resp = freqz(h, worN=np.geomspace(5.0, rate / 2 * 0.99, 4000), fs=rate)
+            assert np.abs(resp).max() <= 1.0 + 2e-3
+    mains_delay = r.system.delay_s[:2]
+    assert mains_delay.min() >= lat - 0.005
+    fields = manifest_fields(r)
+    sw = fields["system"]["subwoofers"]
+    assert sw["feed_latency_ms"] == pytest.approx(lat * 1000.0)
+    for e in sw["each"]:
+        assert len(e["feed"]) == arr.feed_nodes_hz.size and e["cuts"] == []
+        assert max(n["gain_db"] for n in e["feed"]) <= 1e-9
+        assert e["filter"].startswith("shaped")
+    text = "\n".join(system_sentences(fields))
+    assert f"may act up to {lat * 1000:g} ms early" in text

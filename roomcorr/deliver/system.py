@@ -90,8 +90,9 @@ def system_summary(result: DesignResult) -> dict[str, Any]:
 
 def subwoofer_fields(arr: Any) -> dict[str, Any]:
     """Manifest figures of several subwoofers (``system.subwoofers``): per subwoofer its
-    delay, level, polarity and own filter (in words and as its cuts: centre Hz, gain dB,
-    Q of each peaking cut) inside the array, the seat-to-seat spread (dB,
+    delay, level, polarity and own filter (in words; as its cuts: centre Hz, gain dB,
+    Q of each peaking cut; or as its shaped feed: gain dB and phase degrees at each
+    node, realised ``feed_latency_ms`` late) inside the array, the seat-to-seat spread (dB,
     1/6 octave, averaged over the band) at the measured positions fed equally with no
     delay, alone and as chosen, and the leave-one-position-out prediction."""
 
@@ -105,6 +106,7 @@ def subwoofer_fields(arr: Any) -> dict[str, Any]:
         "predicted_spread_equal_db": r2(arr.loo_equal_db),
         "predicted_spread_after_db": r2(arr.loo_after_db),
         "candidates_searched": int(arr.n_evaluations),
+        "feed_latency_ms": round(float(getattr(arr, "feed_latency_s", 0.0)) * 1000.0, 3),
         "each": [
             {
                 "name": name,
@@ -116,6 +118,18 @@ def subwoofer_fields(arr: Any) -> dict[str, Any]:
                 "cuts": [
                     {"freq_hz": round(float(f0), 2), "gain_db": float(g), "q": float(q)}
                     for f0, g, q in (arr.cuts[k] if arr.cuts else [])
+                ],
+                "feed": [
+                    {
+                        "freq_hz": round(float(f0), 2),
+                        "gain_db": round(float(20.0 * np.log10(max(abs(g), 1e-6))), 2),
+                        "phase_deg": round(float(np.degrees(np.angle(g))), 1),
+                    }
+                    for f0, g in zip(
+                        arr.feed_nodes_hz if arr.feed is not None else [],
+                        arr.feed[k] if arr.feed is not None else [],
+                        strict=True,
+                    )
                 ],
                 "spread_alone_db": r2(arr.spread_single_db[k]),
                 "turned_down": bool(arr.turned_down[k]),
@@ -141,6 +155,13 @@ def subwoofer_sentences(sw: dict[str, Any], route_gain_db: float) -> list[str]:
             f"{sw['predicted_spread_after_db']:.1f} dB instead of "
             f"{sw['predicted_spread_equal_db']:.1f} dB (leave-one-position-out: each "
             "position predicted from a choice made without it)."
+        )
+    if sw.get("feed_latency_ms"):
+        lines.append(
+            "Each subwoofer's own filter is a shaped feed: a smooth level and phase over "
+            "frequency, that may act up to "
+            f"{sw['feed_latency_ms']:g} ms early, so its filter is that much late and the "
+            "mains wait with it (the latency budget, design.latency_ms)."
         )
     for e in sw["each"]:
         pol = "normal" if e["polarity"] > 0 else "inverted"

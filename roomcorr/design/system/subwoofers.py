@@ -24,6 +24,13 @@ A configuration whose summed level falls more than :data:`MAX_LOSS_DB`
 below the power sum of its subwoofers (cancellation bought evenness with
 output) pays :data:`LOSS_WEIGHT` dB of spread per dB beyond it.
 
+Each subwoofer's own filter is then, with a latency budget (the design's
+``latency_ms``), a **shaped feed** (:mod:`roomcorr.design.system.feeds`): a smooth
+complex response fitted on top of the search's delays, levels and polarities,
+judged as it will be realised and through crossovers over the whole crossover
+range (:func:`crossover_cases`); without one, up to :data:`MAX_CUTS` parametric cuts
+(:func:`cut_sos`) chosen alternately with delay, level and polarity.
+
 A subwoofer the search turns down by :data:`WELL_DOWN_DB` or more makes the
 seats differ more where it stands; the design says so (it is never boosted).
 
@@ -47,6 +54,7 @@ from functools import lru_cache
 
 import numpy as np
 
+from roomcorr.design.system import feeds
 from roomcorr.design.system.crossover import linkwitz_riley_response
 
 #: Lowest frequency of the spread figure, Hz (issue 20: 20 Hz to twice the crossover).
@@ -90,6 +98,19 @@ CUT_DEPTHS_DB = (-2.0, -4.0, -6.0)
 #: What each dB of cut costs, in dB of spread (regularisation: a cut must buy more
 #: evenness than this to be kept, so the filters stay few and shallow).
 CUT_COST_DB_PER_DB = 0.0
+#: Shaped feeds (:mod:`roomcorr.design.system.feeds`) instead of cuts: each subwoofer's
+#: delay, level and polarity from the search, then a smooth complex response fitted on
+#: top of them.
+SHAPED = True
+#: Ridge penalty of the shaped feeds (:func:`roomcorr.design.system.feeds.fit_feed`).
+FEED_SHRINK = 0.0
+#: Least magnitude of a shaped feed's inner nodes.
+FEED_FLOOR = 0.0
+#: The shaped feeds are fitted up to this many octaves below the top of the spread band.
+FEED_TOP_OCT = 0.0
+#: Spacing of a shaped feed's nodes, octaves, and the fit's iterations at most.
+FEED_STEP_OCT = feeds.STEP_OCT
+FEED_MAXITER = feeds.MAXITER
 
 
 @dataclass
@@ -138,6 +159,9 @@ class SubArrayPlan:
     n_evaluations: int = 0
     freq_hz: np.ndarray = field(default_factory=lambda: np.zeros(0), repr=False)
     cuts: list[list[tuple[float, float, float]]] = field(default_factory=list)
+    feed_nodes_hz: np.ndarray | None = None
+    feed: np.ndarray | None = None
+    feed_latency_s: float = 0.0
 
 
 def spread_grid_hz(hi_hz: float, lo_hz: float = SPREAD_LO_HZ) -> np.ndarray:
@@ -230,6 +254,9 @@ def _cost_smoothed(power_s: np.ndarray, ref_mean_db, weights) -> np.ndarray:
     return spread + LOSS_WEIGHT * np.maximum(loss - MAX_LOSS_DB, 0.0)
 
 
+#: Where a shaped feed's realised gain is checked, Hz (beyond, it is a plain gain).
+_PEAK_GRID_HZ = np.geomspace(1.0, 900.0, 1200)
+
 #: 10 log10(x) = this times ln(x).
 _DB_PER_NEPER_POWER = 10.0 / np.log(10.0)
 
@@ -300,7 +327,7 @@ def _cut_cost(cuts: list) -> float:
     return CUT_COST_DB_PER_DB * float(sum(-g for c in cuts for _, g, _ in c))
 
 
-def _cases(base, base_scale, n_pos: int, n_freq: int) -> tuple[np.ndarray, np.ndarray]:
+def _cases(base, base_scale, n_pos: int, n_freq: int) -> tuple:
     """Listening cases: what the seats hear besides the subwoofers, shape (B, P, F), and
     how loud the subwoofers are in each, shape (B,); one silent case without a base."""
     if base is None:
@@ -313,7 +340,7 @@ def _cases(base, base_scale, n_pos: int, n_freq: int) -> tuple[np.ndarray, np.nd
 
 
 def _state_cost(resp, freq_hz, weights, delay, gain, pol, filt, cases) -> float:
-    bases, scales = cases
+    bases, scales = cases[0], cases[1]
     coef = _coefficients(freq_hz, delay, gain, pol)
     subs = np.einsum("psf,sf->pf", resp * filt[None], coef)
     power = np.einsum("psf,s->pf", np.abs(resp) ** 2, 10.0 ** (np.asarray(gain) / 10.0))
@@ -329,7 +356,7 @@ def _descend(
     through its own filter ``filt``, shape (n_subs, n_freqs)); the cost is the mean over
     the listening ``cases`` (:func:`_cases`). Returns cost (plus the fixed ``extra``),
     delays, gains, polarities, evaluations."""
-    bases, scales = cases
+    bases, scales = cases[0], cases[1]
     sc = scales[:, None, None]
     n_sub = resp.shape[1]
     delay, gain, pol = delay.copy(), gain.copy(), list(pol)
@@ -393,7 +420,7 @@ def _descend_cuts(
     slot takes the best of no cut and every offered (centre, depth, Q), together with
     that subwoofer's level or the offered levels next to it (a cut and a level trade
     against each other)."""
-    bases, scales = cases
+    bases, scales = cases[0], cases[1]
     sc = scales[:, None, None]
     n_sub = resp.shape[1]
     gain = np.asarray(gain, dtype=float).copy()
@@ -457,9 +484,17 @@ def _descend_cuts(
 
 
 def _search(
-    resp, freq_hz, weights, cases, fs: float = 48000.0, own_filters: bool = True
-) -> tuple[np.ndarray, np.ndarray, list[int], list, int]:
-    """Best delays, gains (loudest 0 dB), polarities and own cuts from every start."""
+    resp,
+    freq_hz,
+    weights,
+    cases,
+    fs: float = 48000.0,
+    own_filters: bool = True,
+    feed_latency_s: float = 0.0,
+) -> tuple[np.ndarray, np.ndarray, list[int], list, int, tuple | None]:
+    """Best delays, gains (loudest 0 dB), polarities and own filters from every start: cuts,
+    or with :data:`SHAPED` and a latency a shaped feed ``(nodes_hz, z, latency_s)`` (the
+    last item; ``None`` without)."""
     n_sub = resp.shape[1]
     starts = [np.zeros(n_sub)]
     for k in range(n_sub):
@@ -476,6 +511,8 @@ def _search(
     assert best is not None
     cost, delay, gain, pol, _ = best
     cuts: list = [[] for _ in range(n_sub)]
+    if own_filters and SHAPED and feed_latency_s > 0.0:
+        return _shaped(resp, freq_hz, weights, cases, delay, gain, pol, evals, feed_latency_s)
     if own_filters:
         # alternate: the cuts with the rest held, then the rest through the cuts
         for _ in range(MAX_ROUNDS):
@@ -496,7 +533,49 @@ def _search(
     gain = np.where(on, np.minimum(gain - gain[on].max(), 0.0), OFF_DB)
     cuts = [c if on[k] else [] for k, c in enumerate(cuts)]
     delay = delay - (delay[on].min() if on.any() else delay.min())
-    return np.maximum(delay, 0.0), gain, [int(p) for p in pol], cuts, evals
+    return np.maximum(delay, 0.0), gain, [int(p) for p in pol], cuts, evals, None
+
+
+def _shaped(
+    resp, freq_hz, weights, cases, delay, gain, pol, evals, latency_s
+) -> tuple[np.ndarray, np.ndarray, list[int], list, int, tuple | None]:
+    """A shaped feed per subwoofer (:func:`roomcorr.design.system.feeds.fit_feed`) from
+    the search's delays, levels and polarities, judged on the listening cases at several
+    crossovers when given (:func:`crossover_cases`; the third item of ``cases``); each
+    feed's largest node gain becomes the subwoofer's level (the loudest at 0 dB), the sign
+    of its lowest its polarity."""
+    bases, scales = (cases[2] if len(cases) > 2 and cases[2] is not None else cases[:2])
+    m = int(np.searchsorted(freq_hz, freq_hz[-1] * 2.0 ** (-FEED_TOP_OCT), side="right"))
+    freq_hz, resp, bases = freq_hz[:m], resp[..., :m], bases[..., :m]
+    scales = np.asarray(scales)
+    scales = scales if scales.ndim == 1 else scales[:, :m]
+    sc2 = np.abs(np.asarray(scales)) ** 2
+    sc2 = sc2[:, None, None] if sc2.ndim == 1 else sc2[:, None, :]
+    power = np.einsum("psf,s->pf", np.abs(resp) ** 2, 10.0 ** (np.asarray(gain) / 10.0))
+    ref_db = _mean_level_db(_smooth_power(np.abs(bases) ** 2 + sc2 * power[None]))
+    smooth = _smoothing_matrix(freq_hz.size)[::COST_STEP]
+    nodes, z, delay, _, _ = feeds.fit_feed(
+        resp, bases, scales, weights, freq_hz, smooth, ref_db, delay, gain, pol,
+        float(DELAYS_S[-1]), MAX_LOSS_DB, LOSS_WEIGHT, latency_s,
+        step_oct=FEED_STEP_OCT, maxiter=FEED_MAXITER, shrink=FEED_SHRINK, floor=FEED_FLOOR,
+    )
+    n_sub = resp.shape[1]
+    # each feed's level: the largest gain of its nodes and of its realised response (which
+    # may overshoot the nodes' by the little the latency leaves out): no own filter raises
+    level = np.maximum(
+        np.abs(feeds.feed_response(_PEAK_GRID_HZ, nodes, z, latency_s)).max(axis=1),
+        np.abs(z).max(axis=1),
+    )
+    on = level > 10.0 ** (OFF_DB / 20.0)
+    if not on.any():
+        level, on = np.ones(n_sub), np.ones(n_sub, dtype=bool)
+    sign = np.where(z[:, 0].real < 0, -1, 1)
+    z = np.where(on[:, None], z / np.maximum(level, 1e-30)[:, None] * sign[:, None], 1.0)
+    gain = np.where(on, np.minimum(20.0 * np.log10(level / level[on].max()), 0.0), OFF_DB)
+    gain = np.maximum(gain, OFF_DB)
+    delay = np.maximum(delay - delay[on].min(), 0.0)
+    cuts: list = [[] for _ in range(n_sub)]
+    return delay, gain, [int(p) for p in sign], cuts, evals, (nodes, z, latency_s)
 
 
 def array_response(
@@ -507,14 +586,19 @@ def array_response(
     polarity,
     cuts=None,
     fs: float = 48000.0,
+    feed: tuple | None = None,
 ) -> np.ndarray:
     """Summed response of the subwoofers at every position, shape (n_positions, n_freqs).
 
-    ``cuts`` (optional): each subwoofer's own cuts (:func:`cuts_response` at ``fs``).
+    ``cuts`` (optional): each subwoofer's own cuts (:func:`cuts_response` at ``fs``);
+    ``feed`` (optional): each subwoofer's shaped feed ``(nodes_hz, z)``
+    (:func:`roomcorr.design.system.feeds.feed_response`).
     """
     coef = _coefficients(freq_hz, delay_s, gain_db, polarity)
     if cuts is not None:
         coef = coef * np.stack([cuts_response(freq_hz, c, fs) for c in cuts])
+    if feed is not None:
+        coef = coef * feeds.feed_response(freq_hz, *feed)
     return np.einsum("psf,sf->pf", resp, coef)
 
 
@@ -537,6 +621,8 @@ def leave_one_out_spread_db(
     fs: float = 48000.0,
     own_filters: bool = True,
     base_scale: np.ndarray | None = None,
+    feed_cases: tuple | None = None,
+    feed_latency_s: float = 0.0,
 ) -> tuple[float, float]:
     """Predicted seat-to-seat spread at unmeasured seats: (equal feed, as the search chooses).
 
@@ -553,7 +639,7 @@ def leave_one_out_spread_db(
     base : ndarray, shape (n_positions, n_freqs) or (n_cases, n_positions, n_freqs), optional
         What the seats hear besides the subwoofers (:func:`listening_cases`); the
         deviations are those of the last case.
-    fs, own_filters, base_scale
+    fs, own_filters, base_scale, feed_cases, feed_latency_s
         As for :func:`plan_subwoofers`.
     """
     n_pos, n_sub, n_f = resp.shape
@@ -563,14 +649,18 @@ def leave_one_out_spread_db(
     for p in range(n_pos):
         keep = [q for q in range(n_pos) if q != p]
         w = None if weights is None else np.asarray(weights)[keep]
-        d, g, pol, cuts, _ = _search(
-            resp[keep], freq_hz, w, (bases[:, keep], scales), fs, own_filters
+        fit = None if feed_cases is None else (feed_cases[0][:, keep], feed_cases[1])
+        d, g, pol, cuts, _, feed = _search(
+            resp[keep], freq_hz, w, (bases[:, keep], scales, fit), fs, own_filters,
+            feed_latency_s,
         )
         lev_eq = seat_levels_db(
             s_last * array_response(resp, freq_hz, np.zeros(n_sub), np.zeros(n_sub), [1] * n_sub)
             + b
         )
-        lev = seat_levels_db(s_last * array_response(resp, freq_hz, d, g, pol, cuts, fs) + b)
+        lev = seat_levels_db(
+            s_last * array_response(resp, freq_hz, d, g, pol, cuts, fs, feed) + b
+        )
         eq.append(_held_out_deviation_db(lev_eq, p, weights))
         after.append(_held_out_deviation_db(lev, p, weights))
     return float(np.sqrt(np.mean(np.square(eq)))), float(np.sqrt(np.mean(np.square(after))))
@@ -613,15 +703,54 @@ def with_mains(
            JAES 24(1), 1976.
     """
     lp, hp = linkwitz_riley_response(freq_hz, crossover_hz, fs, 24)
+    k = _level_match(sub_resp, mains_resp, freq_hz, crossover_hz)
+    return sub_resp * (k * lp), mains_resp.sum(axis=1) * hp
+
+
+def _level_match(sub_resp, mains_resp, freq_hz, crossover_hz) -> float:
+    """Gain that matches the subwoofers fed equally to the mains' sum over half to twice
+    ``crossover_hz`` (RMS over positions and frequencies)."""
     mains = mains_resp.sum(axis=1)
     band = (freq_hz >= crossover_hz / 2) & (freq_hz <= 2 * crossover_hz)
     if not band.any():
         band = np.ones(freq_hz.size, dtype=bool)
     subs = sub_resp.sum(axis=1)
-    k = np.sqrt(
-        np.mean(np.abs(mains[:, band]) ** 2) / max(np.mean(np.abs(subs[:, band]) ** 2), 1e-30)
+    return float(
+        np.sqrt(
+            np.mean(np.abs(mains[:, band]) ** 2) / max(np.mean(np.abs(subs[:, band]) ** 2), 1e-30)
+        )
     )
-    return sub_resp * (k * lp), mains * hp
+
+
+def crossover_cases(
+    sub_resp: np.ndarray,
+    mains_resp: np.ndarray,
+    freq_hz: np.ndarray,
+    crossovers_hz,
+    reference_hz: float,
+    fs: float,
+) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`listening_cases` at several crossover frequencies, for judging the subwoofers'
+    shaped feeds before the design has chosen its crossover.
+
+    Returns
+    -------
+    bases : ndarray, shape (n_crossovers * n_cases, n_positions, n_freqs)
+    filters : ndarray, shape (n_crossovers * n_cases, n_freqs), complex
+        What turns the subwoofers as :func:`listening_cases` hears them at
+        ``reference_hz`` into each case at each crossover (the route's level, the
+        low-passes' ratio and the level matches' ratio).
+    """
+    lp_ref, _ = linkwitz_riley_response(freq_hz, reference_hz, fs, 24)
+    k_ref = _level_match(sub_resp, mains_resp, freq_hz, reference_hz)
+    bases, filters = [], []
+    for fc in crossovers_hz:
+        _, b, sc = listening_cases(sub_resp, mains_resp, freq_hz, float(fc), fs)
+        lp, _ = linkwitz_riley_response(freq_hz, float(fc), fs, 24)
+        k = _level_match(sub_resp, mains_resp, freq_hz, float(fc))
+        bases.append(b)
+        filters.append(sc[:, None] * (k * lp / (k_ref * lp_ref))[None])
+    return np.concatenate(bases), np.concatenate(filters)
 
 
 def listening_cases(
@@ -668,6 +797,8 @@ def plan_subwoofers(
     fs: float = 48000.0,
     own_filters: bool = True,
     base_scale: np.ndarray | None = None,
+    feed_cases: tuple | None = None,
+    feed_latency_s: float = 0.0,
 ) -> SubArrayPlan:
     """Delay, level (cut only) and polarity of every subwoofer for the least seat-to-seat spread.
 
@@ -699,6 +830,15 @@ def plan_subwoofers(
         :data:`CUT_COST_DB_PER_DB` per dB), alternating with delay, level and
         polarity until nothing improves.
 
+    feed_cases : (ndarray, ndarray), optional
+        The listening cases at several crossovers (:func:`crossover_cases`) the shaped
+        feeds are judged on; without, those of ``base``.
+    feed_latency_s : float
+        How early each subwoofer's own filter may act (s): with a latency (and
+        ``own_filters``) the own filter is a shaped feed
+        (:mod:`roomcorr.design.system.feeds`, realised late by this much), without
+        (0) at most :data:`MAX_CUTS` cuts.
+
     Returns
     -------
     SubArrayPlan
@@ -709,18 +849,21 @@ def plan_subwoofers(
     """
     n_pos, n_sub, n_f = resp.shape
     cases = _cases(base, base_scale, n_pos, n_f)
-    delay, gain, pol, cuts, evals = _search(resp, freq_hz, weights, cases, fs, own_filters)
+    delay, gain, pol, cuts, evals, feed = _search(
+        resp, freq_hz, weights, (*cases, feed_cases), fs, own_filters, feed_latency_s
+    )
     b, s_last = cases[0][-1], cases[1][-1]
     zeros = np.zeros(n_sub)
     equal = array_response(resp, freq_hz, zeros, zeros, [1] * n_sub)
     spread_eq = float(seat_spread_db(seat_levels_db(s_last * equal + b), weights))
-    chosen = array_response(resp, freq_hz, delay, gain, pol, cuts, fs)
+    chosen = array_response(resp, freq_hz, delay, gain, pol, cuts, fs, feed)
     spread = float(seat_spread_db(seat_levels_db(s_last * chosen + b), weights))
     single = seat_spread_db(seat_levels_db(s_last * np.moveaxis(resp, 1, 0) + b), weights)
     loo_eq = loo_after = None
     if predict and n_pos >= 3:
         loo_eq, loo_after = leave_one_out_spread_db(
-            resp, freq_hz, weights, base, fs, own_filters, base_scale
+            resp, freq_hz, weights, base, fs, own_filters, base_scale, feed_cases,
+            feed_latency_s,
         )
     return SubArrayPlan(
         names=list(names),
@@ -728,7 +871,9 @@ def plan_subwoofers(
         delay_s=delay,
         gain_db=gain,
         polarity=pol,
-        filter=[describe_cuts(c) for c in cuts],
+        filter=[describe_cuts(c) for c in cuts]
+        if feed is None
+        else [feeds.describe_feed(feed[0], z) for z in feed[1]],
         spread_equal_db=spread_eq,
         spread_after_db=spread,
         spread_single_db=np.asarray(single, dtype=float),
@@ -739,4 +884,7 @@ def plan_subwoofers(
         n_evaluations=evals,
         freq_hz=freq_hz,
         cuts=[list(c) for c in cuts],
+        feed_nodes_hz=None if feed is None else feed[0],
+        feed=None if feed is None else feed[1],
+        feed_latency_s=0.0 if feed is None else float(feed[2]),
     )

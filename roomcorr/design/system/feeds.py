@@ -1,0 +1,357 @@
+"""A subwoofer's own shaped feed: a smooth complex response chosen with the others.
+
+A delay, a level and a polarity per subwoofer (:mod:`roomcorr.design.system.subwoofers`)
+change which room modes each subwoofer excites, the same way at every frequency. A
+**shaped feed** lets that choice vary slowly with frequency: each subwoofer gets a complex
+gain at nodes :data:`STEP_OCT` apart (linear interpolation in log frequency between them),
+times its own delay. It stays smooth (its nodes are as far apart as the 1/6-octave window
+of the figure it is judged by, so it cannot follow one seat's narrow details), and every
+gain's magnitude is at most 1: no subwoofer is ever raised.
+
+The gains are chosen by L-BFGS-B (scipy) on the analytic gradient of the search's own
+figure (:func:`feed_cost_and_grad`: the seat-to-seat spread of the 1/6-octave level,
+averaged over the listening cases, with the charge for lost level), starting from the
+search's delays, levels and polarities. The gains at the lowest and the highest node are
+real (their phases fixed at 0, their signs free), so the response outside the nodes is a
+plain gain: the filter stays compact in time.
+
+Such a response is not minimum phase: its realisation (:func:`feed_fir`) is an FIR filter
+that anticipates by ``latency_s`` (every subwoofer alike; the design delays the mains to
+match, and reports it). What the feed would need before that is cut and reported
+(:func:`anticipated_energy_db`).
+
+All functions are pure (arrays in, arrays out).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from scipy.optimize import minimize
+
+#: Spacing of the nodes, octaves (chosen on the development rooms of
+#: ``benchmarks/bench_subwoofers.py``: 1/3 octave 0.614 of equal feed at their held-out
+#: seats, 1/6 octave 0.579, 1/8 octave 0.600, with MAXITER iterations).
+STEP_OCT = 1.0 / 6.0
+#: Iterations of L-BFGS-B at most (300: 0.614 with 1/3-octave nodes, 1000: 0.603).
+MAXITER = 1000
+#: Length of a feed's FIR after its latency, s (the slowest detail of a feed a third of an
+#: octave wide at 20 Hz decays within about 0.2 s).
+TAIL_S = 0.4
+
+#: 10 log10(x) = this times ln(x).
+_DB_PER_NEPER_POWER = 10.0 / np.log(10.0)
+
+
+def node_freqs_hz(lo_hz: float, hi_hz: float, step_oct: float = STEP_OCT) -> np.ndarray:
+    """Nodes ``step_oct`` apart from ``lo_hz`` to at least ``hi_hz``."""
+    n = int(np.ceil(np.log2(hi_hz / lo_hz) / step_oct - 1e-9)) + 1
+    return lo_hz * 2.0 ** (step_oct * np.arange(n))
+
+
+def node_basis(freq_hz: np.ndarray, nodes_hz: np.ndarray) -> np.ndarray:
+    """Linear interpolation in log frequency from the nodes to ``freq_hz``, held constant
+    beyond the first and last node; shape (n_freqs, n_nodes). Each row is a convex
+    combination, so node gains of magnitude at most 1 stay at most 1 everywhere."""
+    lf = np.log2(np.maximum(np.asarray(freq_hz, dtype=float), 1e-3))
+    ln = np.log2(nodes_hz)
+    eye = np.eye(ln.size)
+    return np.array([np.interp(lf, ln, eye[i]) for i in range(ln.size)]).T
+
+
+def feed_response(
+    freq_hz: np.ndarray, nodes_hz: np.ndarray, z: np.ndarray, latency_s: float | None = None
+) -> np.ndarray:
+    """Complex response of feeds with node gains ``z`` (n_subs, n_nodes) at ``freq_hz``,
+    shape (n_subs, n_freqs), without their latency: as designed (``latency_s`` ``None``),
+    or as realised by :func:`feed_fir` with that latency (:func:`realised_basis`)."""
+    z = np.asarray(z)
+    if latency_s is None:  # node_basis @ z, as one interpolation per feed
+        lf = np.log2(np.maximum(np.asarray(freq_hz, dtype=float), 1e-3))
+        ln = np.log2(nodes_hz)
+        return np.array([np.interp(lf, ln, g.real) + 1j * np.interp(lf, ln, g.imag) for g in z])
+    b_re, b_im = realised_basis(np.asarray(freq_hz, float), nodes_hz, latency_s)
+    return z.real @ b_re.T + z.imag @ b_im.T
+
+
+def _fade(n: int) -> np.ndarray:
+    """Window of a feed's FIR: flat, the last tenth a half Hann."""
+    w = np.ones(n)
+    k = max(n // 10, 1)
+    w[n - k :] = np.hanning(2 * k)[k:]
+    return w
+
+
+def _basis_irs(
+    nodes_hz: np.ndarray, fs: float, latency_s: float, tail_s: float
+) -> tuple[np.ndarray, np.ndarray]:
+    """The FIR filters (:func:`feed_fir`) of a real and of an imaginary unit gain at each
+    node, each (n_nodes, n_taps): the realisation is linear in the real and imaginary parts
+    of the node gains (not in the complex gains: a filter's taps are real)."""
+    n = int(round((latency_s + tail_s) * fs))
+    n_fft = 1 << int(np.ceil(np.log2(8 * n)))
+    f = np.fft.rfftfreq(n_fft, 1.0 / fs)
+    spec = node_basis(f, nodes_hz).T * np.exp(-2j * np.pi * f * latency_s)
+    spec[:, 0] = spec[:, 0].real  # the real part of an imaginary gain at DC: none
+    spec_im = 1j * spec
+    spec_im[:, 0] = 0.0
+    if n_fft % 2 == 0:
+        spec_im[:, -1] = spec_im[:, -1].real
+    w = _fade(n)
+    return (
+        np.fft.irfft(spec, n_fft, axis=-1)[:, :n] * w,
+        np.fft.irfft(spec_im, n_fft, axis=-1)[:, :n] * w,
+    )
+
+
+#: Sample rate the realised responses are computed at, Hz (the feeds act below a few
+#: hundred hertz; above their last node they are a plain gain, which any rate realises).
+REALISED_FS = 2000.0
+
+
+def realised_basis(
+    freq_hz: np.ndarray, nodes_hz: np.ndarray, latency_s: float, tail_s: float = TAIL_S
+) -> np.ndarray:
+    """Responses at ``freq_hz`` (below ``REALISED_FS / 2``) of a real and an imaginary unit
+    gain at each node as :func:`feed_fir` realises them, the latency taken out; two arrays
+    of shape (n_freqs, n_nodes), complex. The realisation is linear in the node gains' real
+    and imaginary parts, so a feed's realised response is ``b_re @ z.real + b_im @ z.imag``:
+    the fit judges what will be delivered."""
+    h_re, h_im = _basis_irs(nodes_hz, REALISED_FS, latency_s, tail_s)
+    t = np.arange(h_re.shape[1]) / REALISED_FS - latency_s
+    e = np.exp(-2j * np.pi * np.outer(freq_hz, t))
+    return e @ h_re.T, e @ h_im.T
+
+
+def _unpack(x: np.ndarray, n_sub: int, n_nodes: int):
+    k = n_sub * n_nodes
+    return (
+        x[:k].reshape(n_sub, n_nodes),
+        x[k : 2 * k].reshape(n_sub, n_nodes),
+        x[2 * k : 2 * k + n_sub],
+    )
+
+
+def feed_cost_and_grad(
+    x: np.ndarray,
+    resp: np.ndarray,
+    bases: np.ndarray,
+    scales: np.ndarray,
+    weights: np.ndarray,
+    basis: np.ndarray,
+    freq_hz: np.ndarray,
+    smooth: np.ndarray,
+    ref_db: np.ndarray,
+    max_loss_db: float,
+    loss_weight: float,
+) -> tuple[float, np.ndarray]:
+    """Mean over the listening cases of the spread (dB) plus the loss charge, and its
+    gradient in ``x`` (node magnitudes, node phases, delays in s).
+
+    The seats hear ``y = base + scale * sum_k g_k resp_k`` with
+    ``g_k = (B z_k) exp(-j w d_k)``, ``z = rho exp(j phi)``. The figure: ``L = ln(S |y|^2)``
+    (``S`` the 1/6-octave smoothing rows), the weighted standard deviation of ``L`` over
+    positions averaged over frequency, in dB; plus ``loss_weight`` per dB the weighted mean
+    level falls more than ``max_loss_db`` below ``ref_db``. The gradient is the chain rule
+    through the standard deviation, the logarithm, the (linear) smoothing and
+    ``d|y|^2 = 2 Re(conj(y) dy)``.
+
+    Parameters
+    ----------
+    resp : ndarray, shape (n_positions, n_subs, n_freqs), complex
+    bases : ndarray, shape (n_cases, n_positions, n_freqs), complex
+    scales : ndarray, shape (n_cases,) or (n_cases, n_freqs)
+        The subwoofers' level in each case, or their response (e.g. through crossovers
+        at several frequencies).
+    weights : ndarray, shape (n_positions,), summing to 1
+    basis : (ndarray, ndarray), each of shape (n_freqs, n_nodes), complex
+        Response of a real and of an imaginary unit gain at each node
+        (:func:`realised_basis`; as designed: ``(B, 1j * B)`` with ``B`` :func:`node_basis`).
+    freq_hz : ndarray, shape (n_freqs,)
+    smooth : ndarray, shape (n_judged, n_freqs)
+    ref_db : ndarray, shape (n_cases,)
+    max_loss_db, loss_weight : float
+    """
+    n_pos, n_sub, _ = resp.shape
+    rho, phi, d = _unpack(x, n_sub, basis[0].shape[1])
+    e = np.exp(1j * phi)
+    z = rho * e
+    rot = np.exp(-2j * np.pi * freq_hz * d[:, None])
+    b_re, b_im = basis
+    g = (z.real @ b_re.T + z.imag @ b_im.T) * rot
+    sub = np.einsum("psf,sf->pf", resp, g)
+    scales = np.asarray(scales)
+    if scales.ndim == 1:
+        scales = np.broadcast_to(scales[:, None], (scales.size, freq_hz.size))
+    y = bases + scales[:, None, :] * sub[None]
+    ps = np.maximum((y.real**2 + y.imag**2) @ smooth.T, 1e-30)  # (B, P, J)
+    lv = np.log(ps)
+    mu = np.einsum("bpj,p->bj", lv, weights)
+    dev = lv - mu[:, None]
+    sd = np.sqrt(np.einsum("bpj,p->bj", dev * dev, weights)) + 1e-12
+    n_case, n_j = ps.shape[0], ps.shape[2]
+    spread = _DB_PER_NEPER_POWER * sd.mean(axis=-1)
+    excess = ref_db - _DB_PER_NEPER_POWER * mu.mean(axis=-1) - max_loss_db
+    cost = float(np.mean(spread + loss_weight * np.maximum(excess, 0.0)))
+    g_l = (_DB_PER_NEPER_POWER / n_j) * weights[None, :, None] * dev / sd[:, None, :]
+    charged = (excess > 0.0).astype(float)
+    g_l -= (loss_weight * _DB_PER_NEPER_POWER / n_j) * (
+        charged[:, None, None] * weights[None, :, None]
+    )
+    g_l /= n_case
+    g_y = 2.0 * ((g_l / ps) @ smooth) * y  # dcost = Re(conj(g_y) dy)
+    g_g = np.einsum("psf,pf->sf", np.conj(resp), np.einsum("bpf,bf->pf", g_y, np.conj(scales)))
+    grad_d = np.real(np.conj(g_g) * (-2j * np.pi * freq_hz * g)).sum(axis=1)
+    g_0 = np.conj(g_g * np.conj(rot))
+    g_x = np.real(g_0 @ b_re)  # d cost / d Re(z)
+    g_y = np.real(g_0 @ b_im)  # d cost / d Im(z)
+    c, s = np.cos(phi), np.sin(phi)
+    grad = np.concatenate(
+        [(c * g_x + s * g_y).ravel(), (rho * (c * g_y - s * g_x)).ravel(), grad_d]
+    )
+    return cost, grad
+
+
+def fit_feed(
+    resp: np.ndarray,
+    bases: np.ndarray,
+    scales: np.ndarray,
+    weights: np.ndarray | None,
+    freq_hz: np.ndarray,
+    smooth: np.ndarray,
+    ref_db: np.ndarray,
+    delay_s: np.ndarray,
+    gain_db: np.ndarray,
+    polarity,
+    max_delay_s: float,
+    max_loss_db: float,
+    loss_weight: float,
+    latency_s: float | None = None,
+    step_oct: float = STEP_OCT,
+    maxiter: int = MAXITER,
+    shrink: float = 0.0,
+    floor: float = 0.0,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, float, float]:
+    """Node gains and delays of every subwoofer's feed from a start of plain delays,
+    levels and polarities (:func:`feed_cost_and_grad`, L-BFGS-B).
+
+    Bounds: each node's magnitude within [0, 1] (the first and last node: a real gain
+    within [-1, 1]), each delay within [0, ``max_delay_s``]. With ``latency_s`` the figure
+    is that of the feeds as :func:`feed_fir` realises them with that latency.
+    ``shrink``: dB of figure charged per unit of the mean squared distance of the node
+    gains from the start (a ridge penalty: the feed departs from plain delay, level and
+    polarity only where that buys evenness at several seats). ``floor``: least magnitude
+    of the inner nodes (no subwoofer is silenced in one band).
+
+    Returns
+    -------
+    nodes_hz : ndarray, shape (n_nodes,)
+    z : ndarray, shape (n_subs, n_nodes), complex
+    delay_s : ndarray, shape (n_subs,)
+    cost_start, cost : float
+        The figure at the start and as fitted.
+    """
+    n_pos, n_sub, _ = resp.shape
+    nodes = node_freqs_hz(float(freq_hz[0]), float(freq_hz[-1]), step_oct)
+    if latency_s is None:
+        b = node_basis(freq_hz, nodes)
+        basis = (b.astype(complex), 1j * b)
+    else:
+        basis = realised_basis(freq_hz, nodes, latency_s)
+    n_nodes = nodes.size
+    w = np.full(n_pos, 1.0 / n_pos) if weights is None else np.asarray(weights, float)
+    w = w / w.sum()
+    amp = 10.0 ** (np.asarray(gain_db, dtype=float) / 20.0)
+    pol = np.asarray(polarity, dtype=float)
+    rho = np.repeat(amp[:, None], n_nodes, axis=1)
+    phi = np.where(pol[:, None] < 0, np.pi, 0.0) * np.ones((1, n_nodes))
+    rho[:, [0, -1]] *= pol[:, None]  # the end nodes: real, signed
+    phi[:, [0, -1]] = 0.0
+    z0 = rho * np.exp(1j * phi)
+    rho = np.maximum(rho, floor)
+    rho[:, [0, -1]] = np.where(pol[:, None] < 0, -1.0, 1.0) * np.maximum(
+        np.abs(rho[:, [0, -1]]), floor
+    )
+    x0 = np.concatenate([rho.ravel(), phi.ravel(), np.asarray(delay_s, dtype=float)])
+    mag = [(floor, 1.0)] * n_nodes
+    mag[0] = mag[-1] = (-1.0, 1.0)
+    ph: list[tuple[float | None, float | None]] = [(None, None)] * n_nodes
+    ph[0] = ph[-1] = (0.0, 0.0)
+    bounds = mag * n_sub + ph * n_sub + [(0.0, max_delay_s)] * n_sub
+    args = (resp, bases, scales, w, basis, freq_hz, smooth, ref_db, max_loss_db, loss_weight)
+    if shrink > 0.0:
+        args = (*args, z0, shrink)
+    start = _penalised(x0, *args)[0] if shrink > 0.0 else feed_cost_and_grad(x0, *args)[0]
+    res = minimize(
+        _penalised if shrink > 0.0 else feed_cost_and_grad,
+        x0,
+        args=args,
+        jac=True,
+        method="L-BFGS-B",
+        bounds=bounds,
+        options={"maxiter": maxiter, "ftol": 1e-10, "gtol": 1e-8},
+    )
+    x = res.x if res.fun < start else x0
+    rho, phi, d = _unpack(x, n_sub, n_nodes)
+    return nodes, rho * np.exp(1j * phi), d.copy(), float(start), float(min(res.fun, start))
+
+
+def _penalised(x, *args) -> tuple[float, np.ndarray]:
+    """:func:`feed_cost_and_grad` plus the ridge penalty of :func:`fit_feed`."""
+    *inner, z0, shrink = args
+    cost, grad = feed_cost_and_grad(x, *inner)
+    n_sub, n_nodes = z0.shape
+    rho, phi, _ = _unpack(x, n_sub, n_nodes)
+    e = np.exp(1j * phi)
+    diff = rho * e - z0
+    k = shrink / diff.size
+    g_z = 2.0 * k * diff  # d / d conj(z) of k |z - z0|^2, as Re(conj(g) dz)
+    n = diff.size
+    grad = grad.copy()
+    grad[:n] += np.real(np.conj(g_z) * e).ravel()
+    grad[n : 2 * n] += np.real(np.conj(g_z) * 1j * rho * e).ravel()
+    return cost + k * float(np.sum(np.abs(diff) ** 2)), grad
+
+
+def feed_fir(
+    nodes_hz: np.ndarray, z: np.ndarray, fs: float, latency_s: float, tail_s: float = TAIL_S
+) -> np.ndarray:
+    """FIR filter of one feed (node gains ``z``, shape (n_nodes,)) late by ``latency_s``:
+    ``round((latency_s + tail_s) fs)`` taps, the last tenth faded out (half Hann).
+
+    The feed's response is sampled on an FFT grid eight times the filter's length and
+    inverted; what it would need before ``latency_s`` (:func:`anticipated_energy_db`) is
+    left out.
+    """
+    n = int(round((latency_s + tail_s) * fs))
+    n_fft = 1 << int(np.ceil(np.log2(8 * n)))
+    f = np.fft.rfftfreq(n_fft, 1.0 / fs)
+    spec = feed_response(f, nodes_hz, np.asarray(z)[None])[0]
+    # numpy's irfft reads only the real part of the DC and Nyquist bins, as _basis_irs
+    # does for each node: one transform gives Re(z) @ h_re + Im(z) @ h_im
+    return np.fft.irfft(spec * np.exp(-2j * np.pi * f * latency_s), n_fft)[:n] * _fade(n)
+
+
+def anticipated_energy_db(
+    nodes_hz: np.ndarray, z: np.ndarray, fs: float, latency_s: float
+) -> float:
+    """Energy of one feed's impulse response before ``-latency_s`` (what :func:`feed_fir`
+    leaves out), in dB relative to its whole energy."""
+    n_fft = 1 << int(np.ceil(np.log2(16 * (latency_s + TAIL_S) * fs)))
+    f = np.fft.rfftfreq(n_fft, 1.0 / fs)
+    h = np.fft.irfft(feed_response(f, nodes_hz, np.asarray(z)[None])[0], n_fft)
+    h = np.roll(h, n_fft // 2)  # time 0 in the middle
+    early = h[: n_fft // 2 - int(round(latency_s * fs))]
+    return float(10.0 * np.log10(max(np.sum(early**2), 1e-30) / max(np.sum(h**2), 1e-30)))
+
+
+def describe_feed(nodes_hz: np.ndarray, z: np.ndarray) -> str:
+    """One subwoofer's shaped feed in words (its range of level and phase)."""
+    z = np.asarray(z)
+    mag = 20.0 * np.log10(np.maximum(np.abs(z), 1e-6))
+    ph = np.degrees(np.angle(z))
+    step = float(np.log2(nodes_hz[1] / nodes_hz[0])) if len(nodes_hz) > 1 else 0.0
+    return (
+        f"shaped: {mag.min():+.1f} to {mag.max():+.1f} dB, phase {ph.min():+.0f} to "
+        f"{ph.max():+.0f} degrees ({len(z)} points 1/{1 / step:.0f} octave apart, "
+        f"{nodes_hz[0]:.0f} to {nodes_hz[-1]:.0f} Hz)"
+    )
