@@ -17,8 +17,8 @@ plain gain: the filter stays compact in time.
 
 Such a response is not minimum phase: its realisation (:func:`feed_fir`) is an FIR filter
 that anticipates by ``latency_s`` (every subwoofer alike; the design delays the mains to
-match, and reports it). What the feed would need before that is cut and reported
-(:func:`anticipated_energy_db`).
+match, and reports it). What the feed would need before that is left out, and the fit judges
+each feed as it will be realised (:func:`realised_basis`), not as designed.
 
 All functions are pure (arrays in, arrays out).
 """
@@ -228,8 +228,6 @@ def fit_feed(
     latency_s: float | None = None,
     step_oct: float = STEP_OCT,
     maxiter: int = MAXITER,
-    shrink: float = 0.0,
-    floor: float = 0.0,
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray, float, float]:
     """Node gains and delays of every subwoofer's feed from a start of plain delays,
     levels and polarities (:func:`feed_cost_and_grad`, L-BFGS-B).
@@ -237,10 +235,6 @@ def fit_feed(
     Bounds: each node's magnitude within [0, 1] (the first and last node: a real gain
     within [-1, 1]), each delay within [0, ``max_delay_s``]. With ``latency_s`` the figure
     is that of the feeds as :func:`feed_fir` realises them with that latency.
-    ``shrink``: dB of figure charged per unit of the mean squared distance of the node
-    gains from the start (a ridge penalty: the feed departs from plain delay, level and
-    polarity only where that buys evenness at several seats). ``floor``: least magnitude
-    of the inner nodes (no subwoofer is silenced in one band).
 
     Returns
     -------
@@ -266,23 +260,16 @@ def fit_feed(
     phi = np.where(pol[:, None] < 0, np.pi, 0.0) * np.ones((1, n_nodes))
     rho[:, [0, -1]] *= pol[:, None]  # the end nodes: real, signed
     phi[:, [0, -1]] = 0.0
-    z0 = rho * np.exp(1j * phi)
-    rho = np.maximum(rho, floor)
-    rho[:, [0, -1]] = np.where(pol[:, None] < 0, -1.0, 1.0) * np.maximum(
-        np.abs(rho[:, [0, -1]]), floor
-    )
     x0 = np.concatenate([rho.ravel(), phi.ravel(), np.asarray(delay_s, dtype=float)])
-    mag = [(floor, 1.0)] * n_nodes
+    mag = [(0.0, 1.0)] * n_nodes
     mag[0] = mag[-1] = (-1.0, 1.0)
     ph: list[tuple[float | None, float | None]] = [(None, None)] * n_nodes
     ph[0] = ph[-1] = (0.0, 0.0)
     bounds = mag * n_sub + ph * n_sub + [(0.0, max_delay_s)] * n_sub
     args = (resp, bases, scales, w, basis, freq_hz, smooth, ref_db, max_loss_db, loss_weight)
-    if shrink > 0.0:
-        args = (*args, z0, shrink)
-    start = _penalised(x0, *args)[0] if shrink > 0.0 else feed_cost_and_grad(x0, *args)[0]
+    start = feed_cost_and_grad(x0, *args)[0]
     res = minimize(
-        _penalised if shrink > 0.0 else feed_cost_and_grad,
+        feed_cost_and_grad,
         x0,
         args=args,
         jac=True,
@@ -295,23 +282,6 @@ def fit_feed(
     return nodes, rho * np.exp(1j * phi), d.copy(), float(start), float(min(res.fun, start))
 
 
-def _penalised(x, *args) -> tuple[float, np.ndarray]:
-    """:func:`feed_cost_and_grad` plus the ridge penalty of :func:`fit_feed`."""
-    *inner, z0, shrink = args
-    cost, grad = feed_cost_and_grad(x, *inner)
-    n_sub, n_nodes = z0.shape
-    rho, phi, _ = _unpack(x, n_sub, n_nodes)
-    e = np.exp(1j * phi)
-    diff = rho * e - z0
-    k = shrink / diff.size
-    g_z = 2.0 * k * diff  # d / d conj(z) of k |z - z0|^2, as Re(conj(g) dz)
-    n = diff.size
-    grad = grad.copy()
-    grad[:n] += np.real(np.conj(g_z) * e).ravel()
-    grad[n : 2 * n] += np.real(np.conj(g_z) * 1j * rho * e).ravel()
-    return cost + k * float(np.sum(np.abs(diff) ** 2)), grad
-
-
 def feed_fir(
     nodes_hz: np.ndarray, z: np.ndarray, fs: float, latency_s: float, tail_s: float = TAIL_S
 ) -> np.ndarray:
@@ -319,8 +289,7 @@ def feed_fir(
     ``round((latency_s + tail_s) fs)`` taps, the last tenth faded out (half Hann).
 
     The feed's response is sampled on an FFT grid eight times the filter's length and
-    inverted; what it would need before ``latency_s`` (:func:`anticipated_energy_db`) is
-    left out.
+    inverted; what it would need before ``latency_s`` is left out.
     """
     n = int(round((latency_s + tail_s) * fs))
     n_fft = 1 << int(np.ceil(np.log2(8 * n)))
@@ -329,19 +298,6 @@ def feed_fir(
     # numpy's irfft reads only the real part of the DC and Nyquist bins, as _basis_irs
     # does for each node: one transform gives Re(z) @ h_re + Im(z) @ h_im
     return np.fft.irfft(spec * np.exp(-2j * np.pi * f * latency_s), n_fft)[:n] * _fade(n)
-
-
-def anticipated_energy_db(
-    nodes_hz: np.ndarray, z: np.ndarray, fs: float, latency_s: float
-) -> float:
-    """Energy of one feed's impulse response before ``-latency_s`` (what :func:`feed_fir`
-    leaves out), in dB relative to its whole energy."""
-    n_fft = 1 << int(np.ceil(np.log2(16 * (latency_s + TAIL_S) * fs)))
-    f = np.fft.rfftfreq(n_fft, 1.0 / fs)
-    h = np.fft.irfft(feed_response(f, nodes_hz, np.asarray(z)[None])[0], n_fft)
-    h = np.roll(h, n_fft // 2)  # time 0 in the middle
-    early = h[: n_fft // 2 - int(round(latency_s * fs))]
-    return float(10.0 * np.log10(max(np.sum(early**2), 1e-30) / max(np.sum(h**2), 1e-30)))
 
 
 def describe_feed(nodes_hz: np.ndarray, z: np.ndarray) -> str:

@@ -102,12 +102,6 @@ CUT_COST_DB_PER_DB = 0.0
 #: delay, level and polarity from the search, then a smooth complex response fitted on
 #: top of them.
 SHAPED = True
-#: Ridge penalty of the shaped feeds (:func:`roomcorr.design.system.feeds.fit_feed`).
-FEED_SHRINK = 0.0
-#: Least magnitude of a shaped feed's inner nodes.
-FEED_FLOOR = 0.0
-#: The shaped feeds are fitted up to this many octaves below the top of the spread band.
-FEED_TOP_OCT = 0.0
 #: Spacing of a shaped feed's nodes, octaves, and the fit's iterations at most.
 FEED_STEP_OCT = feeds.STEP_OCT
 FEED_MAXITER = feeds.MAXITER
@@ -545,10 +539,6 @@ def _shaped(
     feed's largest node gain becomes the subwoofer's level (the loudest at 0 dB), the sign
     of its lowest its polarity."""
     bases, scales = (cases[2] if len(cases) > 2 and cases[2] is not None else cases[:2])
-    m = int(np.searchsorted(freq_hz, freq_hz[-1] * 2.0 ** (-FEED_TOP_OCT), side="right"))
-    freq_hz, resp, bases = freq_hz[:m], resp[..., :m], bases[..., :m]
-    scales = np.asarray(scales)
-    scales = scales if scales.ndim == 1 else scales[:, :m]
     sc2 = np.abs(np.asarray(scales)) ** 2
     sc2 = sc2[:, None, None] if sc2.ndim == 1 else sc2[:, None, :]
     power = np.einsum("psf,s->pf", np.abs(resp) ** 2, 10.0 ** (np.asarray(gain) / 10.0))
@@ -557,7 +547,7 @@ def _shaped(
     nodes, z, delay, _, _ = feeds.fit_feed(
         resp, bases, scales, weights, freq_hz, smooth, ref_db, delay, gain, pol,
         float(DELAYS_S[-1]), MAX_LOSS_DB, LOSS_WEIGHT, latency_s,
-        step_oct=FEED_STEP_OCT, maxiter=FEED_MAXITER, shrink=FEED_SHRINK, floor=FEED_FLOOR,
+        step_oct=FEED_STEP_OCT, maxiter=FEED_MAXITER,
     )
     n_sub = resp.shape[1]
     # each feed's level: the largest gain of its nodes and of its realised response (which
