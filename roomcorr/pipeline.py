@@ -31,6 +31,7 @@ from roomcorr.design.phase.mixedphase import MixedPhaseDesign, apply_mixed_phase
 from roomcorr.design.realise.fir import default_n_taps, synthesize_fir, taps_for_latency
 from roomcorr.design.realise.safety import FilterStats, apply_safety, fit_under_cap
 from roomcorr.design.system.align import SystemPlan, apply_plan, plan_system, subwoofer_band_hz
+from roomcorr.design.system.crossover import crossover_candidates
 from roomcorr.design.system.feeds import feed_fir
 from roomcorr.design.system.subwoofers import (
     SubArrayPlan,
@@ -39,6 +40,7 @@ from roomcorr.design.system.subwoofers import (
     leave_one_out_spread_db,
     listening_cases,
     plan_subwoofers,
+    spread_crossover_hz,
     spread_grid_hz,
 )
 from roomcorr.errors import InputFileError, SettingsError
@@ -554,6 +556,11 @@ def _run_several_subwoofers(
             base_scale=scales, feed_cases=feed_cases, feed_latency_s=d.latency_ms / 1000.0,
         )
         latency = arr.feed_latency_s
+        fc = spread_crossover_hz(
+            resp, mains_resp, grid, crossover_candidates((lo, hi)), fs, arr, weights
+        )
+        if fc is not None:  # the crossover that leaves the seats most alike, then integrated
+            inner = replace(inner, design=replace(inner.design, crossover_range_hz=(fc, fc)))
         r = inner_design(arr, inner)
         result = _several_outputs(irs, fs, settings, names, sub_idx, mains, arr, r, latency)
         if loo is not None:

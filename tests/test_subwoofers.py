@@ -29,6 +29,7 @@ from roomcorr.design.system.subwoofers import (
     plan_subwoofers,
     seat_levels_db,
     seat_spread_db,
+    spread_crossover_hz,
     spread_grid_hz,
     with_mains,
 )
@@ -420,3 +421,21 @@ def test_shaped_feeds_never_raise_and_the_mains_wait_for_them(two_sub_design):
         assert e["filter"].startswith("shaped")
     text = "\n".join(system_sentences(fields))
     assert f"may act up to {lat * 1000:g} ms early" in text
+
+
+def test_the_crossover_goes_where_the_subwoofers_make_the_seats_agree(monkeypatch):
+    # two subwoofers that every seat hears alike (their sum is the same everywhere) and mains
+    # whose level differs from seat to seat: the Linkwitz-Riley low-pass (Linkwitz, JAES
+    # 24(1), 1976) hands more of the band to the subwoofers the higher the crossover, so the
+    # seats agree best at the highest candidate; with the choice off, none is made
+    f = spread_grid_hz(2.0 * np.sqrt(50.0 * 150.0))
+    rng = np.random.default_rng(7)
+    n_pos = 5
+    room = 1.0 + 0.5 * np.exp(-2j * np.pi * f * 0.003)
+    subs = np.broadcast_to(room, (n_pos, 2, f.size)).astype(complex)
+    mains = (rng.uniform(0.3, 3.0, (n_pos, 2, 1)) * np.exp(-2j * np.pi * f * 0.002)).astype(complex)
+    plan = plan_subwoofers(subs, f, ["a", "b"], [2, 3], predict=False, own_filters=False)
+    candidates = [50.0, 70.0, 100.0, 150.0]
+    assert spread_crossover_hz(subs, mains, f, candidates, FS, plan) == 150.0
+    monkeypatch.setattr("roomcorr.design.system.subwoofers.SPREAD_CROSSOVER", False)
+    assert spread_crossover_hz(subs, mains, f, candidates, FS, plan) is None

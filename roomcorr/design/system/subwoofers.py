@@ -102,6 +102,9 @@ CUT_COST_DB_PER_DB = 0.0
 #: delay, level and polarity from the search, then a smooth complex response fitted on
 #: top of them.
 SHAPED = True
+#: With several subwoofers, the crossover frequency is the candidate whose summed system
+#: leaves the least seat-to-seat spread (:func:`spread_crossover_hz`).
+SPREAD_CROSSOVER = True
 #: Spacing of a shaped feed's nodes, octaves, and the fit's iterations at most.
 FEED_STEP_OCT = feeds.STEP_OCT
 FEED_MAXITER = feeds.MAXITER
@@ -878,3 +881,55 @@ def plan_subwoofers(
         feed=None if feed is None else feed[1],
         feed_latency_s=0.0 if feed is None else float(feed[2]),
     )
+
+
+def spread_crossover_hz(
+    sub_resp: np.ndarray,
+    mains_resp: np.ndarray,
+    freq_hz: np.ndarray,
+    candidates_hz,
+    fs: float,
+    plan: SubArrayPlan,
+    weights: np.ndarray | None = None,
+) -> float | None:
+    """The crossover frequency that leaves the least seat-to-seat spread with the subwoofers
+    fed as ``plan`` chose (``None`` when :data:`SPREAD_CROSSOVER` is off).
+
+    Where the crossover lies decides who plays the band of the spread figure: a low
+    crossover hands most of it to the mains, whose seats differ as much as they did, and the
+    subwoofers' evenness then counts for little. Each candidate is judged as the plan was
+    (:func:`listening_cases`: each main alone and all mains, levels matched), by the mean
+    over the cases of :func:`seat_spread_db`; the integration then chooses the array's delay
+    and polarity relative to the mains at that frequency.
+
+    Parameters
+    ----------
+    sub_resp : ndarray, shape (n_positions, n_subs, n_freqs), complex
+        The subwoofers as measured (no crossover).
+    mains_resp : ndarray, shape (n_positions, n_mains, n_freqs), complex
+    freq_hz : ndarray, shape (n_freqs,)
+    candidates_hz : sequence of float
+    fs : float
+    plan : SubArrayPlan
+    weights : ndarray, shape (n_positions,), optional
+    """
+    if not SPREAD_CROSSOVER:
+        return None
+    feed = None if plan.feed is None else (plan.feed_nodes_hz, plan.feed, plan.feed_latency_s)
+    best = (np.inf, None)
+    for fc in candidates_hz:
+        heard, bases, scales = listening_cases(sub_resp, mains_resp, freq_hz, float(fc), fs)
+        arr = array_response(
+            heard, freq_hz, plan.delay_s, plan.gain_db, plan.polarity, plan.cuts or None, fs, feed
+        )
+        cost = float(
+            np.mean(
+                [
+                    seat_spread_db(seat_levels_db(sc * arr + b), weights)
+                    for b, sc in zip(bases, scales, strict=True)
+                ]
+            )
+        )
+        if cost < best[0]:
+            best = (cost, float(fc))
+    return best[1]
