@@ -50,7 +50,8 @@ and with a curvature penalty (:func:`curvature_penalty`) whose weight is chosen 
 development rooms of ``bench_subwoofers.py`` (``generalise dev``) and then fixed
 (:data:`CHOSEN_WEIGHT`) for the eight rooms.
 
-Run: ``python benchmarks/bench_subwoofer_floor.py [family | generalise [dev]] [room ...]`` (the
+Run: ``python benchmarks/bench_subwoofer_floor.py [family | generalise [dev | fixed]] [room ...]``
+(``fixed``: the 1/6-octave fit with the common level fixed at the level match; the
 bound on the eight rooms: about 45 minutes on a shared machine; ``family``: the coarser feed
 families of ``FAMILY_VARIANTS`` instead of the bound; ``generalise``: the fit on the measured
 positions, ``dev`` on the development rooms with every weight of :data:`CURVATURE_WEIGHTS`;
@@ -673,7 +674,9 @@ CURVATURE_WEIGHTS = (0.0, 1e-4, 1e-3, 1e-2)
 CHOSEN_WEIGHT = {"1/3 octave": 1e-4, "1/6 octave": 1e-4}
 
 
-def generalise_room(name: str, room, ops_cache: dict, weights: dict) -> dict:
+def generalise_room(
+    name: str, room, ops_cache: dict, weights: dict, level_db: float = COMMON_LEVEL_DB
+) -> dict:
     """A feed at nodes (with a delay per subwoofer) chosen on the five measured positions
     only, jointly for the three listening cases (one feed, crossover and common level),
     and judged at the ten held-out seats.
@@ -681,10 +684,12 @@ def generalise_room(name: str, room, ops_cache: dict, weights: dict) -> dict:
     ``weights``: per node spacing of :data:`GENERALISE_STEPS_OCT`, the curvature weights to
     fit with. The subwoofers' level match is taken at the measured positions (the design's
     situation). Starts: equal feed, the design's own choice and one seeded random feed, at
-    every crossover of :data:`GENERALISE_CROSSOVERS_HZ`; the fit with the least (penalised) joint
-    figure at the measured positions is kept. Returns the benchmark's equal-feed figures
-    at both seat sets and, per spacing and weight, the fitted feed's figures (no penalty)
-    at the measured positions and at the held-out seats, per case.
+    every crossover of :data:`GENERALISE_CROSSOVERS_HZ`; ``level_db``: the range of the
+    common level around the level match (0: fixed, as a design keeps it). The fit with the
+    least (penalised) joint figure at the measured positions is kept. Returns the
+    benchmark's equal-feed figures at both seat sets and, per spacing and weight, the fitted
+    feed's figures (no penalty) at the measured positions and at the held-out seats, per
+    case.
     """
     r = _room_designs(name, room, ops_cache)
     meas, held, n_sub, chosen, n_samples = r.meas, r.held, r.n_sub, r.chosen, r.n_samples
@@ -724,6 +729,7 @@ def generalise_room(name: str, room, ops_cache: dict, weights: dict) -> dict:
                     basis,
                     maxiter=GENERALISE_MAXITER,
                     penalty=penalty if weight else None,
+                    level_db=level_db,
                 )
                 for fig, x in res:
                     if fig < best[0]:
@@ -746,18 +752,24 @@ def generalise_room(name: str, room, ops_cache: dict, weights: dict) -> dict:
     return out
 
 
-def generalise(dev: bool, only=()) -> None:
-    """Print the fitted-on-measured feeds' ratios per room (see :func:`generalise_room`)."""
+def generalise(dev: bool, only=(), fixed: bool = False) -> None:
+    """Print the fitted-on-measured feeds' ratios per room (see :func:`generalise_room`);
+    ``fixed``: 1/6-octave nodes, no penalty, the common level fixed at the level match."""
+    level_db = 0.0 if fixed else COMMON_LEVEL_DB
     if dev:
         rooms = DEV_ROOMS
         weights = {k: CURVATURE_WEIGHTS for k in GENERALISE_STEPS_OCT}
+    elif fixed:
+        rooms = {**MULTI_SUB_ROOMS, **EXTRA_ROOMS}
+        weights = {"1/3 octave": (), "1/6 octave": (0.0,)}
     else:
         rooms = {**MULTI_SUB_ROOMS, **EXTRA_ROOMS}
         weights = {k: (0.0, CHOSEN_WEIGHT[k]) for k in GENERALISE_STEPS_OCT}
     rooms = {k: v for k, v in rooms.items() if not only or k in only}
     print(
         "a feed at nodes (1/3 or 1/6 octave, a delay per subwoofer), |gain| <= 1, common level\n"
-        "+-12 dB, crossover 50-150 Hz, chosen by L-BFGS-B on the 5 measured positions only,\n"
+        + ("fixed at the level match" if fixed else "+-12 dB")
+        + ", crossover 50-150 Hz, chosen by L-BFGS-B on the 5 measured positions only,\n"
         "jointly for left, right and both, with a curvature penalty of the given weight or none.\n"
         "Ratios to the benchmark's equal feed at the same seats, left/right/both: at the measured\n"
         "positions (fitted) -> at the 10 held-out seats (judged)."
@@ -767,7 +779,7 @@ def generalise(dev: bool, only=()) -> None:
 
     for name, room in rooms.items():
         t0 = time.perf_counter()
-        r = generalise_room(name, room, ops, weights)
+        r = generalise_room(name, room, ops, weights, level_db)
         eq_h = {c: r["equal_held"][c][0] for c in LABELS}
         eq_m = {c: r["equal_meas"][c][0] for c in LABELS}
         ch_m = {c: r["chosen_meas"][c][0] / eq_m[c] for c in LABELS}
@@ -812,6 +824,10 @@ def generalise(dev: bool, only=()) -> None:
 if __name__ == "__main__":
     args = sys.argv[1:]
     if "generalise" in args:
-        generalise("dev" in args, [a for a in args if a not in ("generalise", "dev")])
+        generalise(
+            "dev" in args,
+            [a for a in args if a not in ("generalise", "dev", "fixed")],
+            "fixed" in args,
+        )
     else:
         main(FAMILY_VARIANTS if "family" in args else VARIANTS, [a for a in args if a != "family"])

@@ -12,8 +12,9 @@ Designs compared, each by ``roomcorr.pipeline.run_design`` from the five measure
 positions only:
 
 * **chosen**: ``--subwoofer`` naming every subwoofer (each its own delay, level, polarity
-  and cuts);
-* **no-cuts**: the same without the subwoofers' own cuts (``own_filters=False``);
+  and shaped feed, the default latency budget);
+* **no-cuts**: the same without the subwoofers' own filters (``own_filters=False``: delay,
+  level and polarity only);
 * **equal**: every subwoofer fed equally, no delay, no own filter (the search replaced
   by equal feed; common correction, crossover and alignment as usual);
 * **oracle**: the same free parameters chosen knowing the held-out seats (the design's
@@ -269,7 +270,7 @@ def quality() -> None:
     print(
         "spread at held-out seats (dB, std of the 1/6-octave level, mean 25-100 Hz), "
         "left/right/both:\n"
-        "  chosen = delay, level, polarity and own cuts; no-cuts = the same without own "
+        "  chosen = delay, level, polarity and shaped feed; no-cuts = the same without own "
         "filters;\n  oracle = the best of plans chosen knowing the held-out seats, the "
         "design's own, no-cuts and equal, judged at those seats; "
         "equal = all fed equally, no delay;\n  picked = the single subwoofer the design "

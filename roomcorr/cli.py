@@ -199,8 +199,9 @@ def _add_phase_options(g: Any) -> None:
         "--latency-ms",
         type=_finite,
         metavar="MS",
-        help="delay allowed for --phase mixed (default 20 ms; 5-250): video then needs the "
-        "picture delayed as much (lip-sync); keep minimum phase for live monitoring",
+        help="delay allowed for --phase mixed, and how early several subwoofers' shaped feeds "
+        "may act (default 20 ms; 5-250): video then needs the picture delayed as much "
+        "(lip-sync); keep minimum phase and one subwoofer for live monitoring",
     )
 
 

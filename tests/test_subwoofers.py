@@ -421,6 +421,7 @@ def test_shaped_feeds_never_raise_and_the_mains_wait_for_them(two_sub_design):
         assert e["filter"].startswith("shaped")
     text = "\n".join(system_sentences(fields))
     assert f"may act up to {lat * 1000:g} ms early" in text
+    assert "leans pessimistic" in text  # the prediction's caveat with shaped feeds
 
 
 def test_the_crossover_goes_where_the_subwoofers_make_the_seats_agree(monkeypatch):
