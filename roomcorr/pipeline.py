@@ -473,20 +473,23 @@ def _run_several_subwoofers(
 ) -> DesignResult:
     """Several subwoofers: chosen together, then designed as one source (design/system/).
 
-    1. Each subwoofer's delay, level (cut only), polarity and own cuts come from
+    1. Each subwoofer's delay, level (cut only), polarity and own filter come from
        :func:`roomcorr.design.system.subwoofers.plan_subwoofers` on the measured
-       responses (20 Hz to twice the middle of the crossover range), judged
-       with each main alone and all mains driven, through a crossover at the
-       range's middle (:func:`roomcorr.design.system.subwoofers.listening_cases`).
-    2. The subwoofers, so fed, are summed into one virtual channel at every
-       position, and the single-subwoofer design runs on the mains and that
-       channel: common correction, crossover, alignment, safety.
-    3. The virtual channel's filter is handed to every subwoofer with its own
-       delay (whole samples at each rate), level, polarity and cuts (designed
-       at each rate), always inside the filters. Each output's peak gain stays
-       at or below the virtual channel's (a cut, a parametric cut and a shift
-       raise no peak), and the safety check runs again on the outputs as
-       delivered.
+       responses (20 Hz to twice the middle of the crossover range), judged with each
+       main alone and all mains driven, through a crossover at the range's middle
+       (:func:`roomcorr.design.system.subwoofers.listening_cases`). The own filter is a
+       shaped feed (:mod:`roomcorr.design.system.feeds`) that may act up to
+       ``design.latency_ms`` early, judged through crossovers over the whole range.
+    2. The crossover is the candidate that leaves the measured positions most alike with
+       the subwoofers so fed (:func:`roomcorr.design.system.subwoofers.spread_crossover_hz`).
+    3. The subwoofers, so fed, are summed into one virtual channel at every position,
+       and the single-subwoofer design runs on the mains and that channel at that
+       crossover: common correction, alignment (the mains wait for the feeds' latency),
+       safety.
+    4. The virtual channel's filter is handed to every subwoofer with its own delay
+       (whole samples at each rate), level, polarity and own filter (designed at each
+       rate), always inside the filters. The own filter never raises (its realised gain
+       is at most 0 dB), and the safety check runs again on the outputs as delivered.
     """
     d = settings.design
     n_pos, n_ch, n_samp = irs.shape

@@ -126,7 +126,12 @@ class SubArrayPlan:
         Individual filter of each subwoofer in words ("none": only the common correction).
     cuts : list of list of (float, float, float)
         Each subwoofer's own cuts as (centre frequency Hz, gain dB < 0, Q); see
-        :func:`cut_sos`.
+        :func:`cut_sos` (empty with shaped feeds).
+    feed_nodes_hz, feed : ndarray or None
+        Each subwoofer's shaped feed: its nodes, shape (n_nodes,), and complex node gains,
+        shape (n_subs, n_nodes) (:mod:`roomcorr.design.system.feeds`); ``None`` without.
+    feed_latency_s : float
+        How late the feeds' FIR filters are (0 without).
     spread_equal_db, spread_after_db : float
         Seat-to-seat spread at the measured positions, fed equally with no
         delay, and as chosen.
@@ -539,8 +544,8 @@ def _shaped(
     """A shaped feed per subwoofer (:func:`roomcorr.design.system.feeds.fit_feed`) from
     the search's delays, levels and polarities, judged on the listening cases at several
     crossovers when given (:func:`crossover_cases`; the third item of ``cases``); each
-    feed's largest node gain becomes the subwoofer's level (the loudest at 0 dB), the sign
-    of its lowest its polarity."""
+    feed's largest gain (of its nodes and of its realised response) becomes the
+    subwoofer's level (the loudest at 0 dB), the sign of its lowest node its polarity."""
     bases, scales = (cases[2] if len(cases) > 2 and cases[2] is not None else cases[:2])
     sc2 = np.abs(np.asarray(scales)) ** 2
     sc2 = sc2[:, None, None] if sc2.ndim == 1 else sc2[:, None, :]
@@ -584,8 +589,8 @@ def array_response(
     """Summed response of the subwoofers at every position, shape (n_positions, n_freqs).
 
     ``cuts`` (optional): each subwoofer's own cuts (:func:`cuts_response` at ``fs``);
-    ``feed`` (optional): each subwoofer's shaped feed ``(nodes_hz, z)``
-    (:func:`roomcorr.design.system.feeds.feed_response`).
+    ``feed`` (optional): each subwoofer's shaped feed ``(nodes_hz, z, latency_s)``, as
+    realised with that latency (:func:`roomcorr.design.system.feeds.feed_response`).
     """
     coef = _coefficients(freq_hz, delay_s, gain_db, polarity)
     if cuts is not None:
@@ -818,7 +823,8 @@ def plan_subwoofers(
         Sample rate the own cuts are judged at (the delivered ones are designed
         at every output rate; below a few hundred hertz they agree closely).
     own_filters : bool
-        Also choose each subwoofer's own cuts (at most :data:`MAX_CUTS`, each
+        Also choose each subwoofer's own filter: a shaped feed with ``feed_latency_s``,
+        otherwise cuts: each subwoofer's own cuts (at most :data:`MAX_CUTS`, each
         :data:`CUT_DEPTHS_DB` deep and :data:`CUT_Q` wide, charged
         :data:`CUT_COST_DB_PER_DB` per dB), alternating with delay, level and
         polarity until nothing improves.
