@@ -521,14 +521,19 @@ def _run_several_subwoofers(
 
     def inner_design(arr, design_settings):
         """The single-subwoofer design on the mains and one virtual subwoofer: every
-        subwoofer with its own delay, level, polarity and cuts, summed."""
+        subwoofer with its own delay, level, polarity and own filter, summed. A shaped
+        feed's filter is late by ``latency``; here it is taken that much earlier (what it
+        plays before then is left out), so that the subwoofers' arrival and the crossover's
+        timing are judged on their main sound, and the mains are delivered that much later
+        instead (:func:`_several_outputs`)."""
         shifts = [int(round(t * fs)) for t in arr.delay_s]
-        n_v = n_samp + max(shifts) + int(round(latency * fs))
+        n_lat = int(round(latency * fs))
+        n_v = n_samp + max(shifts)
         inner_irs = np.zeros((n_pos, len(mains) + 1, n_v))
         inner_irs[:, : len(mains), :n_samp] = irs[:, mains]
         for k, c in enumerate(sub_idx):
             g = 10.0 ** (arr.gain_db[k] / 20.0) * arr.polarity[k]
-            own = _own_filter(irs[:, c], arr, k, fs, latency)
+            own = _own_filter(irs[:, c], arr, k, fs, latency)[..., n_lat:]
             for p in range(n_pos):
                 inner_irs[p, -1] += g * _shifted(own[p], shifts[k], n_v)
         return run_design(inner_irs, fs, design_settings, inner_names)
@@ -595,10 +600,11 @@ def _several_outputs(
     firs: dict[int, np.ndarray] = {}
     for rate, h in r.firs.items():
         sh = [int(round(t * rate)) for t in arr.delay_s]
-        n_out = h.shape[1] + max(sh) + int(round(latency_s * rate))
+        n_lat = int(round(latency_s * rate))
+        n_out = h.shape[1] + max(sh) + n_lat
         rows = np.zeros((n_ch, n_out))
-        for i, c in enumerate(mains):
-            rows[c, : h.shape[1]] = h[i]
+        for i, c in enumerate(mains):  # the mains wait for the subwoofers' own filters
+            rows[c, n_lat : n_lat + h.shape[1]] = h[i]
         for k, c in enumerate(sub_idx):
             g = 10.0 ** (arr.gain_db[k] / 20.0) * arr.polarity[k]
             rows[c] = g * _shifted(_own_filter(h[v], arr, k, rate, latency_s), sh[k], n_out)
@@ -614,9 +620,10 @@ def _several_outputs(
         min_firs = {}
         for rate, h in mp.min_phase_firs.items():
             sh = [int(round(t * rate)) for t in arr.delay_s]
-            rows = np.zeros((n_ch, h.shape[1] + max(sh) + int(round(latency_s * rate))))
+            n_lat = int(round(latency_s * rate))
+            rows = np.zeros((n_ch, h.shape[1] + max(sh) + n_lat))
             for i, c in enumerate(mains):
-                rows[c, : h.shape[1]] = h[i]
+                rows[c, n_lat : n_lat + h.shape[1]] = h[i]
             for k, c in enumerate(sub_idx):
                 g = 10.0 ** (arr.gain_db[k] / 20.0) * arr.polarity[k]
                 own = _own_filter(h[v], arr, k, rate, latency_s)
@@ -639,6 +646,8 @@ def _several_outputs(
     own_delay = np.zeros(n_ch)
     own_gain = np.zeros(n_ch)
     own_pol = np.ones(n_ch, dtype=int)
+    for c in mains:  # the wait for the subwoofers' own filters (inside the filters)
+        own_delay[c] = latency_s
     for k, c in enumerate(sub_idx):
         own_delay[c], own_gain[c], own_pol[c] = arr.delay_s[k], arr.gain_db[k], arr.polarity[k]
     pick = [inner_of[c] for c in range(n_ch)]
