@@ -34,8 +34,9 @@ from scipy.optimize import minimize
 STEP_OCT = 1.0 / 6.0
 #: Iterations of L-BFGS-B at most (300: 0.614 with 1/3-octave nodes, 1000: 0.603).
 MAXITER = 1000
-#: Length of a feed's FIR after its latency, s (the slowest detail of a feed a third of an
-#: octave wide at 20 Hz decays within about 0.2 s).
+#: Length of a feed's FIR after its latency, s (a detail of a feed a sixth of an octave
+#: wide at 20 Hz, 2.4 Hz, decays within a few tenths of a second; the fit judges the
+#: filter with this length, so what it cuts off is accounted for).
 TAIL_S = 0.4
 
 #: 10 log10(x) = this times ln(x).
@@ -110,7 +111,7 @@ REALISED_FS = 2000.0
 
 def realised_basis(
     freq_hz: np.ndarray, nodes_hz: np.ndarray, latency_s: float, tail_s: float = TAIL_S
-) -> np.ndarray:
+) -> tuple[np.ndarray, np.ndarray]:
     """Responses at ``freq_hz`` (below ``REALISED_FS / 2``) of a real and an imaginary unit
     gain at each node as :func:`feed_fir` realises them, the latency taken out; two arrays
     of shape (n_freqs, n_nodes), complex. The realisation is linear in the node gains' real
