@@ -569,6 +569,7 @@ def _run_several_subwoofers(
         )
         if fc is not None:  # the crossover that leaves the seats most alike, then integrated
             inner = replace(inner, design=replace(inner.design, crossover_range_hz=(fc, fc)))
+            arr.crossover_hz = fc
         r = inner_design(arr, inner)
         result = _several_outputs(irs, fs, settings, names, sub_idx, mains, arr, r, latency)
         if loo is not None:

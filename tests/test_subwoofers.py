@@ -428,6 +428,11 @@ def test_shaped_feeds_never_raise_and_the_mains_wait_for_them(two_sub_design):
     text = "\n".join(system_sentences(fields))
     assert f"may act up to {lat * 1000:g} ms early" in text
     assert "leans pessimistic" in text  # the prediction's caveat with shaped feeds
+    # the crossover was chosen for the seats' evenness, and the summary says which
+    fc = r.system.integration.crossover_hz
+    assert arr.crossover_hz == pytest.approx(fc)
+    assert sw["crossover_for_spread_hz"] == pytest.approx(fc, abs=0.05)
+    assert f"The crossover frequency, {fc:.0f} Hz, is the one" in text
 
 
 def test_the_crossover_goes_where_the_subwoofers_make_the_seats_agree(monkeypatch):

@@ -107,6 +107,9 @@ def subwoofer_fields(arr: Any) -> dict[str, Any]:
         "predicted_spread_after_db": r2(arr.loo_after_db),
         "candidates_searched": int(arr.n_evaluations),
         "feed_latency_ms": round(float(getattr(arr, "feed_latency_s", 0.0)) * 1000.0, 3),
+        "crossover_for_spread_hz": None
+        if getattr(arr, "crossover_hz", None) is None
+        else round(float(arr.crossover_hz), 1),
         "each": [
             {
                 "name": name,
@@ -162,6 +165,13 @@ def subwoofer_sentences(sw: dict[str, Any], route_gain_db: float) -> list[str]:
                 if sw.get("feed_latency_ms")
                 else ""
             )
+        )
+    if sw.get("crossover_for_spread_hz"):
+        lines.append(
+            f"The crossover frequency, {sw['crossover_for_spread_hz']:.0f} Hz, is the one in "
+            "the crossover range at which the subwoofers, so fed, leave the measured positions "
+            "most alike (a lower one hands more of the bass to the mains); the delay and "
+            "polarity to the mains were then chosen for the smoothest sum, as above."
         )
     if sw.get("feed_latency_ms"):
         lines.append(

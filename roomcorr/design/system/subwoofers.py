@@ -132,6 +132,9 @@ class SubArrayPlan:
         shape (n_subs, n_nodes) (:mod:`roomcorr.design.system.feeds`); ``None`` without.
     feed_latency_s : float
         How late the feeds' FIR filters are (0 without).
+    crossover_hz : float or None
+        The crossover frequency chosen for the least spread (:func:`spread_crossover_hz`;
+        set by the design), ``None`` when the integration chose it.
     spread_equal_db, spread_after_db : float
         Seat-to-seat spread at the measured positions, fed equally with no
         delay, and as chosen.
@@ -164,6 +167,7 @@ class SubArrayPlan:
     feed_nodes_hz: np.ndarray | None = None
     feed: np.ndarray | None = None
     feed_latency_s: float = 0.0
+    crossover_hz: float | None = None
 
 
 def spread_grid_hz(hi_hz: float, lo_hz: float = SPREAD_LO_HZ) -> np.ndarray:

@@ -318,6 +318,10 @@ function subwoofersText(manifest) {
     txt += `At seats you did not measure, expect the bass to vary by about ${sw.predicted_spread_after_db.toFixed(1)} dB ` +
       `instead of ${sw.predicted_spread_equal_db.toFixed(1)} dB. `;
   }
+  if (sw.crossover_for_spread_hz) {
+    txt += `The crossover frequency, ${Math.round(sw.crossover_for_spread_hz)} Hz, is the one at which the ` +
+      "subwoofers, so fed, leave the measured positions most alike. ";
+  }
   if (sw.feed_latency_ms) {
     txt += `Each subwoofer's own filter is a shaped feed that may act up to ${sw.feed_latency_ms} ms early: ` +
       "its filter is that much late and the mains wait with it. ";
