@@ -39,8 +39,8 @@ MAXITER = 1000
 #: filter with this length, so what it cuts off is accounted for).
 TAIL_S = 0.4
 
-#: 10 log10(x) = this times ln(x).
-_DB_PER_NEPER_POWER = 10.0 / np.log(10.0)
+#: 10 log10(x) = this times ln(x) (the spread's natural logarithms in dB).
+DB_PER_NEPER_POWER = 10.0 / np.log(10.0)
 
 
 def node_freqs_hz(lo_hz: float, hi_hz: float, step_oct: float = STEP_OCT) -> np.ndarray:
@@ -49,14 +49,24 @@ def node_freqs_hz(lo_hz: float, hi_hz: float, step_oct: float = STEP_OCT) -> np.
     return lo_hz * 2.0 ** (step_oct * np.arange(n))
 
 
+def _interp_log(freq_hz: np.ndarray, nodes_hz: np.ndarray, values: np.ndarray) -> np.ndarray:
+    """Each row of ``values`` (n_rows, n_nodes), real or complex, interpolated linearly in
+    log frequency from the nodes to ``freq_hz`` and held constant beyond the first and last
+    node; shape (n_rows, n_freqs)."""
+    lf = np.log2(np.maximum(np.asarray(freq_hz, dtype=float), 1e-3))
+    ln = np.log2(nodes_hz)
+    values = np.asarray(values)
+    out = np.array([np.interp(lf, ln, v.real) for v in values])
+    if np.iscomplexobj(values):
+        out = out + 1j * np.array([np.interp(lf, ln, v.imag) for v in values])
+    return out
+
+
 def node_basis(freq_hz: np.ndarray, nodes_hz: np.ndarray) -> np.ndarray:
     """Linear interpolation in log frequency from the nodes to ``freq_hz``, held constant
     beyond the first and last node; shape (n_freqs, n_nodes). Each row is a convex
     combination, so node gains of magnitude at most 1 stay at most 1 everywhere."""
-    lf = np.log2(np.maximum(np.asarray(freq_hz, dtype=float), 1e-3))
-    ln = np.log2(nodes_hz)
-    eye = np.eye(ln.size)
-    return np.array([np.interp(lf, ln, eye[i]) for i in range(ln.size)]).T
+    return _interp_log(freq_hz, nodes_hz, np.eye(len(nodes_hz))).T
 
 
 def feed_response(
@@ -67,9 +77,7 @@ def feed_response(
     or as realised by :func:`feed_fir` with that latency (:func:`realised_basis`)."""
     z = np.asarray(z)
     if latency_s is None:  # node_basis @ z, as one interpolation per feed
-        lf = np.log2(np.maximum(np.asarray(freq_hz, dtype=float), 1e-3))
-        ln = np.log2(nodes_hz)
-        return np.array([np.interp(lf, ln, g.real) + 1j * np.interp(lf, ln, g.imag) for g in z])
+        return _interp_log(freq_hz, nodes_hz, z.astype(complex))
     b_re, b_im = realised_basis(np.asarray(freq_hz, float), nodes_hz, latency_s)
     return z.real @ b_re.T + z.imag @ b_im.T
 
@@ -190,12 +198,12 @@ def feed_cost_and_grad(
     dev = lv - mu[:, None]
     sd = np.sqrt(np.einsum("bpj,p->bj", dev * dev, weights)) + 1e-12
     n_case, n_j = ps.shape[0], ps.shape[2]
-    spread = _DB_PER_NEPER_POWER * sd.mean(axis=-1)
-    excess = ref_db - _DB_PER_NEPER_POWER * mu.mean(axis=-1) - max_loss_db
+    spread = DB_PER_NEPER_POWER * sd.mean(axis=-1)
+    excess = ref_db - DB_PER_NEPER_POWER * mu.mean(axis=-1) - max_loss_db
     cost = float(np.mean(spread + loss_weight * np.maximum(excess, 0.0)))
-    g_l = (_DB_PER_NEPER_POWER / n_j) * weights[None, :, None] * dev / sd[:, None, :]
+    g_l = (DB_PER_NEPER_POWER / n_j) * weights[None, :, None] * dev / sd[:, None, :]
     charged = (excess > 0.0).astype(float)
-    g_l -= (loss_weight * _DB_PER_NEPER_POWER / n_j) * (
+    g_l -= (loss_weight * DB_PER_NEPER_POWER / n_j) * (
         charged[:, None, None] * weights[None, :, None]
     )
     g_l /= n_case

@@ -56,6 +56,7 @@ import numpy as np
 
 from roomcorr.design.system import feeds
 from roomcorr.design.system.crossover import linkwitz_riley_response
+from roomcorr.design.system.feeds import DB_PER_NEPER_POWER
 
 #: Lowest frequency of the spread figure, Hz (issue 20: 20 Hz to twice the crossover).
 SPREAD_LO_HZ = 20.0
@@ -254,17 +255,15 @@ def _cost_smoothed(power_s: np.ndarray, ref_mean_db, weights) -> np.ndarray:
     np.log(ln, out=ln)
     mean = np.einsum("...pf,p->...f", ln, w)
     mean_sq = np.einsum("...pf,...pf,p->...f", ln, ln, w)
-    spread = _DB_PER_NEPER_POWER * np.sqrt(np.maximum(mean_sq - mean * mean, 0.0)).mean(axis=-1)
+    spread = DB_PER_NEPER_POWER * np.sqrt(np.maximum(mean_sq - mean * mean, 0.0)).mean(axis=-1)
     level = mean.mean(axis=-1) if weights is None else ln.mean(axis=(-2, -1))
-    loss = ref_mean_db - _DB_PER_NEPER_POWER * level
+    loss = ref_mean_db - DB_PER_NEPER_POWER * level
     return spread + LOSS_WEIGHT * np.maximum(loss - MAX_LOSS_DB, 0.0)
 
 
 #: Where a shaped feed's realised gain is checked, Hz (beyond, it is a plain gain).
 _PEAK_GRID_HZ = np.geomspace(1.0, 900.0, 1200)
 
-#: 10 log10(x) = this times ln(x).
-_DB_PER_NEPER_POWER = 10.0 / np.log(10.0)
 
 
 def cut_sos(freq_hz: float, gain_db: float, q: float, fs: float) -> np.ndarray:
@@ -704,24 +703,39 @@ def with_mains(
     .. [1] S. H. Linkwitz, "Active crossover networks for noncoincident drivers",
            JAES 24(1), 1976.
     """
+    factor, bases, _ = _cases_at(sub_resp, mains_resp, freq_hz, crossover_hz, fs)
+    return sub_resp * factor, bases[-1]
+
+
+def _cases_at(
+    sub_resp, mains_resp, freq_hz, crossover_hz, fs
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The listening cases through a crossover at ``crossover_hz`` (one design of it).
+
+    Returns
+    -------
+    factor : ndarray, shape (n_freqs,)
+        What the subwoofers pass through: the low-pass times the gain that matches them,
+        fed equally, to the mains' sum over half to twice ``crossover_hz`` (RMS over
+        positions and frequencies).
+    bases, scales
+        As :func:`listening_cases` returns them.
+    """
     lp, hp = linkwitz_riley_response(freq_hz, crossover_hz, fs, 24)
-    k = _level_match(sub_resp, mains_resp, freq_hz, crossover_hz)
-    return sub_resp * (k * lp), mains_resp.sum(axis=1) * hp
-
-
-def _level_match(sub_resp, mains_resp, freq_hz, crossover_hz) -> float:
-    """Gain that matches the subwoofers fed equally to the mains' sum over half to twice
-    ``crossover_hz`` (RMS over positions and frequencies)."""
     mains = mains_resp.sum(axis=1)
     band = (freq_hz >= crossover_hz / 2) & (freq_hz <= 2 * crossover_hz)
     if not band.any():
         band = np.ones(freq_hz.size, dtype=bool)
     subs = sub_resp.sum(axis=1)
-    return float(
-        np.sqrt(
-            np.mean(np.abs(mains[:, band]) ** 2) / max(np.mean(np.abs(subs[:, band]) ** 2), 1e-30)
-        )
+    k = np.sqrt(
+        np.mean(np.abs(mains[:, band]) ** 2) / max(np.mean(np.abs(subs[:, band]) ** 2), 1e-30)
     )
+    n_mains = mains_resp.shape[1]
+    bases = np.concatenate([np.moveaxis(mains_resp * hp, 1, 0), (mains * hp)[None]])
+    scales = np.concatenate([np.full(n_mains, 1.0 / n_mains), [1.0]])
+    if n_mains == 1:  # one main: alone and 'all' are the same case
+        bases, scales = bases[-1:], scales[-1:]
+    return k * lp, bases, scales
 
 
 def crossover_cases(
@@ -743,15 +757,12 @@ def crossover_cases(
         ``reference_hz`` into each case at each crossover (the route's level, the
         low-passes' ratio and the level matches' ratio).
     """
-    lp_ref, _ = linkwitz_riley_response(freq_hz, reference_hz, fs, 24)
-    k_ref = _level_match(sub_resp, mains_resp, freq_hz, reference_hz)
+    ref = _cases_at(sub_resp, mains_resp, freq_hz, reference_hz, fs)[0]
     bases, filters = [], []
     for fc in crossovers_hz:
-        _, b, sc = listening_cases(sub_resp, mains_resp, freq_hz, float(fc), fs)
-        lp, _ = linkwitz_riley_response(freq_hz, float(fc), fs, 24)
-        k = _level_match(sub_resp, mains_resp, freq_hz, float(fc))
+        factor, b, sc = _cases_at(sub_resp, mains_resp, freq_hz, float(fc), fs)
         bases.append(b)
-        filters.append(sc[:, None] * (k * lp / (k_ref * lp_ref))[None])
+        filters.append(sc[:, None] * (factor / ref)[None])
     return np.concatenate(bases), np.concatenate(filters)
 
 
@@ -778,14 +789,8 @@ def listening_cases(
     scales : ndarray, shape (n_mains + 1,)
         The subwoofers' level in each case.
     """
-    heard, both = with_mains(sub_resp, mains_resp, freq_hz, crossover_hz, fs)
-    _, hp = linkwitz_riley_response(freq_hz, crossover_hz, fs, 24)
-    n_mains = mains_resp.shape[1]
-    bases = np.concatenate([np.moveaxis(mains_resp * hp, 1, 0), both[None]])
-    scales = np.concatenate([np.full(n_mains, 1.0 / n_mains), [1.0]])
-    if n_mains == 1:  # one main: alone and 'all' are the same case
-        bases, scales = bases[-1:], scales[-1:]
-    return heard, bases, scales
+    factor, bases, scales = _cases_at(sub_resp, mains_resp, freq_hz, crossover_hz, fs)
+    return sub_resp * factor, bases, scales
 
 
 def plan_subwoofers(
@@ -926,12 +931,15 @@ def spread_crossover_hz(
     if not SPREAD_CROSSOVER:
         return None
     feed = None if plan.feed is None else (plan.feed_nodes_hz, plan.feed, plan.feed_latency_s)
+    # the array as measured, once: each candidate's crossover and level match scale it alike
+    # (a factor per frequency, :func:`_cases_at`)
+    raw = array_response(
+        sub_resp, freq_hz, plan.delay_s, plan.gain_db, plan.polarity, plan.cuts or None, fs, feed
+    )
     best = (np.inf, None)
     for fc in candidates_hz:
-        heard, bases, scales = listening_cases(sub_resp, mains_resp, freq_hz, float(fc), fs)
-        arr = array_response(
-            heard, freq_hz, plan.delay_s, plan.gain_db, plan.polarity, plan.cuts or None, fs, feed
-        )
+        factor, bases, scales = _cases_at(sub_resp, mains_resp, freq_hz, float(fc), fs)
+        arr = raw * factor
         cost = float(
             np.mean(
                 [
