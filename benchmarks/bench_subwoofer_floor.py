@@ -97,6 +97,7 @@ from pra_rooms import (  # noqa: E402
 from scipy.optimize import minimize  # noqa: E402
 
 import roomcorr.pipeline as pipeline_mod  # noqa: E402
+from roomcorr.design.system import feeds  # noqa: E402
 from roomcorr.design.system.crossover import linkwitz_riley_response  # noqa: E402
 from roomcorr.design.system.subwoofers import cuts_response  # noqa: E402
 from roomcorr.pipeline import run_design  # noqa: E402
@@ -180,20 +181,17 @@ def spread_db(y: np.ndarray, smooth: np.ndarray, interp: np.ndarray) -> float:
 
 
 def node_freqs_hz(freq_hz: np.ndarray, step_oct: float) -> np.ndarray:
-    """Nodes ``step_oct`` apart from the lowest of ``freq_hz`` to at least its highest."""
-    lf = np.log2(freq_hz)
-    n = int(np.ceil((lf[-1] - lf[0]) / step_oct - 1e-9)) + 1
-    return 2.0 ** (lf[0] + step_oct * np.arange(n))
+    """Nodes ``step_oct`` apart from the lowest of ``freq_hz`` to at least its highest (the
+    design's shaped-feed nodes, :func:`roomcorr.design.system.feeds.node_freqs_hz`)."""
+    return feeds.node_freqs_hz(float(freq_hz[0]), float(freq_hz[-1]), step_oct)
 
 
 def node_basis(freq_hz: np.ndarray, step_oct: float) -> np.ndarray:
     """Linear interpolation (in log frequency) from nodes ``step_oct`` apart to ``freq_hz``,
-    shape (n_freqs, n_nodes). Each row is a convex combination, so gains of magnitude at
-    most 1 at the nodes stay at most 1 at every bin."""
-    lf = np.log2(freq_hz)
-    nodes = np.log2(node_freqs_hz(freq_hz, step_oct))
-    eye = np.eye(nodes.size)
-    return np.array([np.interp(lf, nodes, eye[i]) for i in range(nodes.size)]).T
+    shape (n_freqs, n_nodes) (:func:`roomcorr.design.system.feeds.node_basis`). Each row is
+    a convex combination, so gains of magnitude at most 1 at the nodes stay at most 1 at
+    every bin."""
+    return feeds.node_basis(freq_hz, node_freqs_hz(freq_hz, step_oct))
 
 
 def _unpack(x: np.ndarray, n_subs: int, n_nodes: int):

@@ -597,39 +597,32 @@ def _several_outputs(
     plan = r.system
     assert plan is not None
     v = len(mains)
-    # every physical channel from the inner design's channels
-    firs: dict[int, np.ndarray] = {}
-    for rate, h in r.firs.items():
+
+    def physical_rows(h: np.ndarray, rate: int) -> np.ndarray:
+        """Every physical channel's filter at ``rate`` from the inner design's ``h``: the
+        mains as they are, waiting for the subwoofers' own filters; each subwoofer the
+        virtual channel's filter with its own delay, level, polarity and own filter."""
         sh = [int(round(t * rate)) for t in arr.delay_s]
         n_lat = int(round(latency_s * rate))
         n_out = h.shape[1] + max(sh) + n_lat
         rows = np.zeros((n_ch, n_out))
-        for i, c in enumerate(mains):  # the mains wait for the subwoofers' own filters
+        for i, c in enumerate(mains):
             rows[c, n_lat : n_lat + h.shape[1]] = h[i]
         for k, c in enumerate(sub_idx):
             g = 10.0 ** (arr.gain_db[k] / 20.0) * arr.polarity[k]
             rows[c] = g * _shifted(_own_filter(h[v], arr, k, rate, latency_s), sh[k], n_out)
-        firs[rate] = rows
+        return rows
+
+    firs = {rate: physical_rows(h, rate) for rate, h in r.firs.items()}
     firs, pre2, stats = apply_safety(firs, d.ceiling_db, d.max_boost_db)
     inner_of = {c: i for i, c in enumerate(mains)} | {c: v for c in sub_idx}
     mixed = None
     if r.mixed_phase is not None:
         # the array's excess phase is undone once, in the filter all subwoofers share
         # (the single-subwoofer mixed-phase rules and checks); each subwoofer's own
-        # delay, level, polarity and cuts (minimum phase) follow it as above
+        # delay, level, polarity and own filter follow it as above
         mp = r.mixed_phase
-        min_firs = {}
-        for rate, h in mp.min_phase_firs.items():
-            sh = [int(round(t * rate)) for t in arr.delay_s]
-            n_lat = int(round(latency_s * rate))
-            rows = np.zeros((n_ch, h.shape[1] + max(sh) + n_lat))
-            for i, c in enumerate(mains):
-                rows[c, n_lat : n_lat + h.shape[1]] = h[i]
-            for k, c in enumerate(sub_idx):
-                g = 10.0 ** (arr.gain_db[k] / 20.0) * arr.polarity[k]
-                own = _own_filter(h[v], arr, k, rate, latency_s)
-                rows[c] = g * _shifted(own, sh[k], rows.shape[1])
-            min_firs[rate] = rows
+        min_firs = {rate: physical_rows(h, rate) for rate, h in mp.min_phase_firs.items()}
         mixed = replace(
             mp,
             estimates=[mp.estimates[inner_of[c]] for c in range(n_ch)],

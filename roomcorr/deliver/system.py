@@ -106,9 +106,9 @@ def subwoofer_fields(arr: Any) -> dict[str, Any]:
         "predicted_spread_equal_db": r2(arr.loo_equal_db),
         "predicted_spread_after_db": r2(arr.loo_after_db),
         "candidates_searched": int(arr.n_evaluations),
-        "feed_latency_ms": round(float(getattr(arr, "feed_latency_s", 0.0)) * 1000.0, 3),
+        "feed_latency_ms": round(float(arr.feed_latency_s) * 1000.0, 3),
         "crossover_for_spread_hz": None
-        if getattr(arr, "crossover_hz", None) is None
+        if arr.crossover_hz is None
         else round(float(arr.crossover_hz), 1),
         "each": [
             {
@@ -122,17 +122,15 @@ def subwoofer_fields(arr: Any) -> dict[str, Any]:
                     {"freq_hz": round(float(f0), 2), "gain_db": float(g), "q": float(q)}
                     for f0, g, q in (arr.cuts[k] if arr.cuts else [])
                 ],
-                "feed": [
+                "feed": []
+                if arr.feed is None
+                else [
                     {
                         "freq_hz": round(float(f0), 2),
                         "gain_db": round(float(20.0 * np.log10(max(abs(g), 1e-6))), 2),
                         "phase_deg": round(float(np.degrees(np.angle(g))), 1),
                     }
-                    for f0, g in zip(
-                        arr.feed_nodes_hz if arr.feed is not None else [],
-                        arr.feed[k] if arr.feed is not None else [],
-                        strict=True,
-                    )
+                    for f0, g in zip(arr.feed_nodes_hz, arr.feed[k], strict=True)
                 ],
                 "spread_alone_db": r2(arr.spread_single_db[k]),
                 "turned_down": bool(arr.turned_down[k]),
