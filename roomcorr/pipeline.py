@@ -9,7 +9,6 @@ target/calibration text files named in the settings (resolved up front by
 
 from __future__ import annotations
 
-from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, replace
 from pathlib import Path
 
@@ -54,6 +53,7 @@ from roomcorr.settings import (
     read_toml,
     subwoofer_names,
 )
+from roomcorr.sidejob import SideJob, thread_map
 
 __all__ = [
     "ChannelDesign",
@@ -196,12 +196,17 @@ def analyse_positions(
     width = variable_width_oct(freq_hz)
     measured = np.empty((n_pos, n_ch, freq_hz.size))
     arrival = np.empty((n_pos, n_ch))
-    for p in range(n_pos):
-        for c in range(n_ch):
-            onset = find_onset(irs[p, c], fs)
-            arrival[p, c] = onset / fs
-            power = fdw_power(irs[p, c], fs, onset, freq_hz)
-            measured[p, c] = 10 * np.log10(np.maximum(smooth_log_grid(power, ppo, width), 1e-30))
+
+    def one(pc: tuple[int, int]) -> tuple[float, np.ndarray]:
+        onset = find_onset(irs[pc], fs)
+        power = fdw_power(irs[pc], fs, onset, freq_hz)
+        return onset, 10 * np.log10(np.maximum(smooth_log_grid(power, ppo, width), 1e-30))
+
+    # every response side by side (their FFTs release the interpreter lock)
+    jobs = [(p, c) for p in range(n_pos) for c in range(n_ch)]
+    for (p, c), (onset, level_db) in zip(jobs, thread_map(one, jobs), strict=True):
+        arrival[p, c] = onset / fs
+        measured[p, c] = level_db
     if calibration_db is not None:
         measured -= calibration_db
     return measured, arrival
@@ -393,14 +398,19 @@ def run_design(
     built: dict[str, object] = {"mixed": None, "system": None, "planned": False}
 
     def build(curves: list[np.ndarray]) -> dict[int, np.ndarray]:
+        # every channel at every rate, side by side (the FFTs release the interpreter lock)
+        jobs = [(rate, c) for rate in n_taps for c in range(len(curves))]
+        rows = thread_map(
+            lambda job: _padded(
+                synthesize_fir(freq, curves[job[1]], job[0], own_taps[job[0]][job[1]]),
+                n_taps[job[0]],
+            ),
+            jobs,
+            cost=lambda job: own_taps[job[0]][job[1]],
+        )
         firs = {
-            rate: np.stack(
-                [
-                    _padded(synthesize_fir(freq, c, rate, k), n)
-                    for c, k in zip(curves, own_taps[rate], strict=True)
-                ]
-            )
-            for rate, n in n_taps.items()
+            rate: np.stack([h for (r, _), h in zip(jobs, rows, strict=True) if r == rate])
+            for rate in n_taps
         }
         if d.phase == "mixed":  # same magnitudes, the loudspeaker's excess phase undone
             firs, built["mixed"] = apply_mixed_phase(
@@ -531,9 +541,13 @@ def _run_several_subwoofers(
         n_v = n_samp + max(shifts)
         inner_irs = np.zeros((n_pos, len(mains) + 1, n_v))
         inner_irs[:, : len(mains), :n_samp] = irs[:, mains]
-        for k, c in enumerate(sub_idx):
+        # every subwoofer through its own filter, side by side (FFT convolutions)
+        owns = thread_map(
+            lambda k: _own_filter(irs[:, sub_idx[k]], arr, k, fs, latency)[..., n_lat:],
+            list(range(len(sub_idx))),
+        )
+        for k, own in enumerate(owns):
             g = 10.0 ** (arr.gain_db[k] / 20.0) * arr.polarity[k]
-            own = _own_filter(irs[:, c], arr, k, fs, latency)[..., n_lat:]
             for p in range(n_pos):
                 inner_irs[p, -1] += g * _shifted(own[p], shifts[k], n_v)
         return run_design(inner_irs, fs, design_settings, inner_names)
@@ -546,19 +560,19 @@ def _run_several_subwoofers(
     # chooses its crossover afterwards)
     feed_cases = crossover_cases(resp, mains_resp, grid, (lo, mid, hi), mid, fs)
     # the leave-one-position-out prediction (the whole search again without each position)
-    # only reports and needs nothing of the choice below: it runs on a second core
-    # meanwhile (numpy's array loops and FFTs release the interpreter lock)
-    pool = ThreadPoolExecutor(max_workers=1)
-    try:
-        loo = (
-            pool.submit(
-                leave_one_out_spread_db,
-                sub_heard, grid, weights, bases, fs, True, scales, feed_cases,
-                d.latency_ms / 1000.0,
-            )
-            if n_pos >= 3
-            else None
+    # only reports and needs nothing of the choice below: it runs on the second core
+    # meanwhile, in a child process where that is possible (roomcorr/sidejob.py: on a
+    # thread, its many small steps would hold the interpreter lock the design needs)
+    loo = (
+        SideJob(
+            leave_one_out_spread_db,
+            sub_heard, grid, weights, bases, fs, True, scales, feed_cases,
+            d.latency_ms / 1000.0,
         )
+        if n_pos >= 3
+        else None
+    )
+    try:
         arr = plan_subwoofers(
             sub_heard, grid, subs, sub_idx, weights, predict=False, base=bases, fs=fs,
             base_scale=scales, feed_cases=feed_cases, feed_latency_s=d.latency_ms / 1000.0,
@@ -576,7 +590,8 @@ def _run_several_subwoofers(
             arr.loo_equal_db, arr.loo_after_db = loo.result()
         return result
     finally:
-        pool.shutdown(wait=True, cancel_futures=True)
+        if loo is not None:
+            loo.close()
 
 
 def _several_outputs(
@@ -613,7 +628,9 @@ def _several_outputs(
             rows[c] = g * _shifted(_own_filter(h[v], arr, k, rate, latency_s), sh[k], n_out)
         return rows
 
-    firs = {rate: physical_rows(h, rate) for rate, h in r.firs.items()}
+    rates = list(r.firs)  # every rate side by side (their convolutions release the lock)
+    rows = thread_map(lambda rate: physical_rows(r.firs[rate], rate), rates, cost=float)
+    firs = dict(zip(rates, rows, strict=True))
     firs, pre2, stats = apply_safety(firs, d.ceiling_db, d.max_boost_db)
     inner_of = {c: i for i, c in enumerate(mains)} | {c: v for c in sub_idx}
     mixed = None

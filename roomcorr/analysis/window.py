@@ -19,11 +19,15 @@ DEFAULT_MAX_S = 0.5
 DEFAULT_PRE_S = 0.001
 
 
-def asymmetric_window(n: int, onset: float, pre: int, post: int) -> np.ndarray:
+def asymmetric_window(
+    n: int, onset: float, pre: int, post: int, start: int = 0, stop: int | None = None
+) -> np.ndarray:
     """Window of ``n`` samples: half-Hann rise of ``pre`` samples ending at the onset,
-    flat for the first half of ``post``, half-Hann fall over the second half."""
-    w = np.zeros(n)
-    t = np.arange(n) - onset
+    flat for the first half of ``post``, half-Hann fall over the second half; only its
+    samples ``start`` to ``stop`` (the same values as the whole window's there)."""
+    stop = n if stop is None else stop
+    w = np.zeros(stop - start)
+    t = np.arange(start, stop) - onset
     rise = (t >= -pre) & (t < 0)
     w[rise] = 0.5 - 0.5 * np.cos(np.pi * (t[rise] + pre) / max(pre, 1))
     flat_end = post / 2.0
@@ -95,10 +99,10 @@ def fdw_power(
     per_len = np.empty((lengths.size, f.size))
     for k, length in enumerate(lengths):
         post = int(round(length * fs))
-        w = asymmetric_window(n, onset, pre, post)
         start = max(0, int(np.floor(onset)) - pre - 1)
         stop = min(n, int(np.ceil(onset)) + post + 1)
-        seg = (x * w)[start:stop]
+        # the window is zero outside start:stop, so only that part is made
+        seg = x[start:stop] * asymmetric_window(n, onset, pre, post, start, stop)
         n_fft = int(2 ** np.ceil(np.log2(max(seg.size * 4, 1024))))
         spec = np.abs(np.fft.rfft(seg, n_fft)) ** 2
         bins = np.fft.rfftfreq(n_fft, 1.0 / fs)

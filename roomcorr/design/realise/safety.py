@@ -22,11 +22,9 @@
 from __future__ import annotations
 
 import hashlib
-import os
 import threading
 from collections import OrderedDict
 from collections.abc import Callable
-from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 
 import numpy as np
@@ -38,6 +36,7 @@ from roomcorr.design.realise.fir import (
     worst_case_gain_db,
 )
 from roomcorr.errors import SafetyError
+from roomcorr.sidejob import thread_map
 
 #: Allowed excess of a synthesised filter over the boost cap (FIR ripple), dB.
 BOOST_TOLERANCE_DB = 0.3
@@ -102,20 +101,17 @@ def full_band_peak_gain_db(h: np.ndarray, fs: float) -> float:
 
 
 def full_band_peak_gains_db(firs: dict[int, np.ndarray]) -> dict[tuple[int, int], float]:
-    """:func:`full_band_peak_gain_db` of every filter, ``{(fs, channel): dB}``, measured on
-    up to :data:`PEAK_WORKERS` threads at once (scipy's FFTs release the interpreter
-    lock, so the filters are measured side by side on a machine with several cores)."""
+    """:func:`full_band_peak_gain_db` of every filter, ``{(fs, channel): dB}``, measured
+    side by side (:func:`roomcorr.sidejob.thread_map`: scipy's FFTs release the
+    interpreter lock), the longest first."""
     jobs = [(fs, ch) for fs, h in firs.items() for ch in range(h.shape[0])]
-    workers = min(PEAK_WORKERS, os.cpu_count() or 1, len(jobs))
-    if workers <= 1:
-        return {(fs, ch): full_band_peak_gain_db(firs[fs][ch], fs) for fs, ch in jobs}
-    with ThreadPoolExecutor(max_workers=workers) as pool:
-        peaks = pool.map(lambda job: full_band_peak_gain_db(firs[job[0]][job[1]], job[0]), jobs)
-        return dict(zip(jobs, peaks, strict=True))
+    peaks = thread_map(
+        lambda job: full_band_peak_gain_db(firs[job[0]][job[1]], job[0]),
+        jobs,
+        cost=lambda job: own_length(firs[job[0]][job[1]]),
+    )
+    return dict(zip(jobs, peaks, strict=True))
 
-
-#: Threads :func:`full_band_peak_gains_db` measures filters on at most.
-PEAK_WORKERS = 4
 _MEMO_LOCK = threading.Lock()
 
 

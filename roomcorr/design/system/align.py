@@ -68,6 +68,7 @@ from roomcorr.design.system.crossover import (
 )
 from roomcorr.design.system.subwoofers import SubArrayPlan
 from roomcorr.errors import SettingsError
+from roomcorr.sidejob import thread_map
 
 #: Roles of a channel in the system.
 MAIN, SUB = "main", "sub"
@@ -481,9 +482,10 @@ def apply_plan(
     -------
     dict of int to ndarray, shape (n_channels, n_taps + max delay samples)
     """
-    out: dict[int, np.ndarray] = {}
     integ = plan.integration
-    for rate, h in firs.items():
+
+    def at_rate(rate: int) -> np.ndarray:
+        h = firs[rate]
         shifts = plan.delay_samples[rate] if plan.baked else [0] * h.shape[0]
         n_out = h.shape[1] + max(shifts)
         cut = None
@@ -501,5 +503,8 @@ def apply_plan(
             if plan.baked:
                 x = x * 10.0 ** (plan.trim_db[c] / 20.0)
             rows.append(shift_samples(x, shifts[c], n_out))
-        out[rate] = np.stack(rows)
-    return out
+        return np.stack(rows)
+
+    # the rates side by side (their FFTs and filters release the interpreter lock)
+    rates = list(firs)
+    return dict(zip(rates, thread_map(at_rate, rates, cost=float), strict=True))
