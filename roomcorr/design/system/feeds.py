@@ -25,6 +25,8 @@ All functions are pure (arrays in, arrays out).
 
 from __future__ import annotations
 
+import functools
+
 import numpy as np
 from scipy.optimize import minimize
 
@@ -32,8 +34,19 @@ from scipy.optimize import minimize
 #: ``benchmarks/bench_subwoofers.py``: 1/3 octave 0.614 of equal feed at their held-out
 #: seats, 1/6 octave 0.579, 1/8 octave 0.600, with MAXITER iterations).
 STEP_OCT = 1.0 / 6.0
-#: Iterations of L-BFGS-B at most (300: 0.614 with 1/3-octave nodes, 1000: 0.603).
-MAXITER = 1000
+#: Iterations of L-BFGS-B at most (on the development rooms, with delays moved in
+#: :data:`DELAY_UNIT_S`: 150 iterations 0.510 of equal feed at their held-out seats, 300
+#: 0.507, 1000 0.498; with delays moved in seconds, 1000 iterations gave 0.585).
+MAXITER = 150
+#: Corrections L-BFGS-B keeps (scipy's default).
+MAXCOR = 10
+#: The unit the fit moves the delays in, s: a step of one unit in any variable (a node's
+#: magnitude, its phase in radians, a delay) then turns the phase at the top of the band
+#: (twice the middle of the crossover range, about 170 Hz by default) by about a radian
+#: (2 pi 170 Hz x 1 ms = 1.07). In seconds, the delays' gradients were about a
+#: thousand times the others' and L-BFGS-B stopped at 1000 iterations far from where it
+#: goes with this unit in 300 (figures above).
+DELAY_UNIT_S = 1e-3
 #: Length of a feed's FIR after its latency, s (a detail of a feed a sixth of an octave
 #: wide at 20 Hz, 2.4 Hz, decays within a few tenths of a second; the fit judges the
 #: filter with this length, so what it cuts off is accounted for).
@@ -125,10 +138,46 @@ def realised_basis(
     of shape (n_freqs, n_nodes), complex. The realisation is linear in the node gains' real
     and imaginary parts, so a feed's realised response is ``b_re @ z.real + b_im @ z.imag``:
     the fit judges what will be delivered."""
-    h_re, h_im = _basis_irs(nodes_hz, REALISED_FS, latency_s, tail_s)
+    f = np.ascontiguousarray(freq_hz, dtype=float)
+    nodes = np.ascontiguousarray(nodes_hz, dtype=float)
+    return _realised_basis(f.tobytes(), nodes.tobytes(), float(latency_s), float(tail_s))
+
+
+@functools.lru_cache(maxsize=32)
+def _realised_basis(
+    freq_bytes: bytes, nodes_bytes: bytes, latency_s: float, tail_s: float
+) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`realised_basis` on grids given as their bytes, remembered: a design asks for
+    the same basis in every fit (the prediction's too) and for every realised response;
+    the arrays are read-only."""
+    freq_hz = np.frombuffer(freq_bytes)
+    h_re, h_im = _basis_irs(np.frombuffer(nodes_bytes), REALISED_FS, latency_s, tail_s)
     t = np.arange(h_re.shape[1]) / REALISED_FS - latency_s
     e = np.exp(-2j * np.pi * np.outer(freq_hz, t))
-    return e @ h_re.T, e @ h_im.T
+    b_re, b_im = e @ h_re.T, e @ h_im.T
+    b_re.flags.writeable = False
+    b_im.flags.writeable = False
+    return b_re, b_im
+
+
+#: FFT length of :func:`realised_peak` at :data:`REALISED_FS` (bins 0.12 Hz apart, about
+#: twenty to each of the realised filter's 840 taps' worth of resolution: between two bins
+#: a filter that long can rise by 0.06 dB at most, Bernstein's inequality as in
+#: :func:`roomcorr.design.realise.fir.peak_gain_db`).
+PEAK_FFT = 1 << 14
+
+
+def realised_peak(
+    nodes_hz: np.ndarray, z: np.ndarray, latency_s: float, hi_hz: float, tail_s: float = TAIL_S
+) -> np.ndarray:
+    """Largest magnitude of each feed's response from DC to ``hi_hz``, as :func:`feed_fir`
+    realises it with ``latency_s`` (at :data:`REALISED_FS`, on every bin of a
+    :data:`PEAK_FFT`-point FFT); shape (n_subs,) for node gains ``z`` (n_subs, n_nodes)."""
+    h_re, h_im = _basis_irs(np.asarray(nodes_hz, float), REALISED_FS, latency_s, tail_s)
+    z = np.atleast_2d(z)
+    mag = np.abs(np.fft.rfft(z.real @ h_re + z.imag @ h_im, PEAK_FFT, axis=-1))
+    bins = np.fft.rfftfreq(PEAK_FFT, 1.0 / REALISED_FS)
+    return mag[:, bins <= hi_hz].max(axis=1)
 
 
 def _unpack(x: np.ndarray, n_sub: int, n_nodes: int):
@@ -180,44 +229,101 @@ def feed_cost_and_grad(
     ref_db : ndarray, shape (n_cases,)
     max_loss_db, loss_weight : float
     """
-    n_pos, n_sub, _ = resp.shape
-    rho, phi, d = _unpack(x, n_sub, basis[0].shape[1])
-    e = np.exp(1j * phi)
-    z = rho * e
-    rot = np.exp(-2j * np.pi * freq_hz * d[:, None])
-    b_re, b_im = basis
-    g = (z.real @ b_re.T + z.imag @ b_im.T) * rot
-    sub = np.einsum("psf,sf->pf", resp, g)
-    scales = np.asarray(scales)
-    if scales.ndim == 1:
-        scales = np.broadcast_to(scales[:, None], (scales.size, freq_hz.size))
-    y = bases + scales[:, None, :] * sub[None]
-    ps = np.maximum((y.real**2 + y.imag**2) @ smooth.T, 1e-30)  # (B, P, J)
-    lv = np.log(ps)
-    mu = np.einsum("bpj,p->bj", lv, weights)
-    dev = lv - mu[:, None]
-    sd = np.sqrt(np.einsum("bpj,p->bj", dev * dev, weights)) + 1e-12
-    n_case, n_j = ps.shape[0], ps.shape[2]
-    spread = DB_PER_NEPER_POWER * sd.mean(axis=-1)
-    excess = ref_db - DB_PER_NEPER_POWER * mu.mean(axis=-1) - max_loss_db
-    cost = float(np.mean(spread + loss_weight * np.maximum(excess, 0.0)))
-    g_l = (DB_PER_NEPER_POWER / n_j) * weights[None, :, None] * dev / sd[:, None, :]
-    charged = (excess > 0.0).astype(float)
-    g_l -= (loss_weight * DB_PER_NEPER_POWER / n_j) * (
-        charged[:, None, None] * weights[None, :, None]
-    )
-    g_l /= n_case
-    g_y = 2.0 * ((g_l / ps) @ smooth) * y  # dcost = Re(conj(g_y) dy)
-    g_g = np.einsum("psf,pf->sf", np.conj(resp), np.einsum("bpf,bf->pf", g_y, np.conj(scales)))
-    grad_d = np.real(np.conj(g_g) * (-2j * np.pi * freq_hz * g)).sum(axis=1)
-    g_0 = np.conj(g_g * np.conj(rot))
-    g_x = np.real(g_0 @ b_re)  # d cost / d Re(z)
-    g_y = np.real(g_0 @ b_im)  # d cost / d Im(z)
-    c, s = np.cos(phi), np.sin(phi)
-    grad = np.concatenate(
-        [(c * g_x + s * g_y).ravel(), (rho * (c * g_y - s * g_x)).ravel(), grad_d]
-    )
-    return cost, grad
+    return FeedFigure(
+        resp, bases, scales, weights, basis, freq_hz, smooth, ref_db, max_loss_db, loss_weight
+    )(x)
+
+
+class FeedFigure:
+    """:func:`feed_cost_and_grad` for one problem, what does not depend on ``x`` computed
+    once: a fit evaluates it hundreds of times on small arrays, where numpy's cost per
+    call, not the arithmetic, sets the time."""
+
+    def __init__(
+        self,
+        resp: np.ndarray,
+        bases: np.ndarray,
+        scales: np.ndarray,
+        weights: np.ndarray,
+        basis: np.ndarray,
+        freq_hz: np.ndarray,
+        smooth: np.ndarray,
+        ref_db: np.ndarray,
+        max_loss_db: float,
+        loss_weight: float,
+    ) -> None:
+        n_pos, self.n_sub, n_f = resp.shape
+        self.b_re_t = np.ascontiguousarray(np.asarray(basis[0]).T)
+        self.b_im_t = np.ascontiguousarray(np.asarray(basis[1]).T)
+        self.b_re = np.asarray(basis[0])
+        self.b_im = np.asarray(basis[1])
+        self.n_nodes = self.b_re.shape[1]
+        self.resp_t = np.ascontiguousarray(np.moveaxis(resp, 1, 0))  # (S, P, F)
+        self.conj_resp_t = np.conj(self.resp_t)
+        self.bases = np.asarray(bases)
+        sc = np.asarray(scales)
+        if sc.ndim == 1:
+            sc = np.broadcast_to(sc[:, None], (sc.size, n_f))
+        self.sc = np.ascontiguousarray(sc[:, None, :])  # (B, 1, F)
+        self.conj_sc = np.conj(self.sc)
+        self.w = np.asarray(weights, dtype=float)
+        self.w_col = self.w[:, None]
+        self.jw = -2j * np.pi * np.asarray(freq_hz, dtype=float)
+        self.smooth = np.asarray(smooth, dtype=float)
+        self.smooth_t = np.ascontiguousarray(self.smooth.T)
+        self.ref_db = np.asarray(ref_db, dtype=float)
+        self.max_loss_db = float(max_loss_db)
+        self.loss_weight = float(loss_weight)
+        n_case, n_j = self.bases.shape[0], self.smooth.shape[0]
+        self.k_spread = DB_PER_NEPER_POWER / n_j / n_case
+        self.k_loss = loss_weight * DB_PER_NEPER_POWER / n_j / n_case
+
+    def __call__(self, x: np.ndarray) -> tuple[float, np.ndarray]:
+        """The figure and its gradient at ``x`` (node magnitudes, node phases, delays in s)."""
+        k = self.n_sub * self.n_nodes
+        rho = x[:k].reshape(self.n_sub, self.n_nodes)
+        phi = x[k : 2 * k].reshape(self.n_sub, self.n_nodes)
+        d = x[2 * k :]
+        c, s = np.cos(phi), np.sin(phi)
+        rot = np.exp(self.jw * d[:, None])  # (S, F)
+        g = ((rho * c) @ self.b_re_t + (rho * s) @ self.b_im_t) * rot
+        sub = self.resp_t[0] * g[0]
+        for i in range(1, self.n_sub):
+            sub = sub + self.resp_t[i] * g[i]
+        y = self.bases + self.sc * sub  # (B, P, F)
+        n_case, n_pos, n_f = y.shape
+        # one matrix product over every case and position (a stack of small ones is slower)
+        ps = ((y.real * y.real + y.imag * y.imag).reshape(-1, n_f) @ self.smooth_t).reshape(
+            n_case, n_pos, -1
+        )  # (B, P, J)
+        np.maximum(ps, 1e-30, out=ps)
+        lv = np.log(ps)
+        mu = self.w @ lv  # (B, J)
+        dev = lv - mu[:, None]
+        sd = np.sqrt(self.w @ (dev * dev))
+        sd += 1e-12
+        excess = self.ref_db - DB_PER_NEPER_POWER * mu.mean(axis=-1) - self.max_loss_db
+        cost = float(
+            DB_PER_NEPER_POWER * sd.mean() + self.loss_weight * np.maximum(excess, 0.0).mean()
+        )
+        g_l = (self.k_spread * self.w_col) * (dev / sd[:, None])
+        charged = excess > 0.0
+        if charged.any():
+            g_l[charged] -= self.k_loss * self.w_col
+        g_y = (2.0 * ((g_l / ps).reshape(n_case * n_pos, -1) @ self.smooth)).reshape(
+            y.shape
+        ) * y  # dcost = Re(conj(g_y) dy)
+        t = (g_y * self.conj_sc).sum(axis=0)  # (P, F)
+        g_g = (self.conj_resp_t * t).sum(axis=1)  # (S, F)
+        grad_d = (np.conj(g_g) * (self.jw * g)).real.sum(axis=1)
+        g_0 = np.conj(g_g) * rot
+        g_x = (g_0 @ self.b_re).real  # d cost / d Re(z)
+        g_z = (g_0 @ self.b_im).real  # d cost / d Im(z)
+        grad = np.empty(x.size)
+        grad[:k] = (c * g_x + s * g_z).ravel()
+        grad[k : 2 * k] = (rho * (c * g_z - s * g_x)).ravel()
+        grad[2 * k :] = grad_d
+        return cost, grad
 
 
 def fit_feed(
@@ -274,19 +380,26 @@ def fit_feed(
     mag[0] = mag[-1] = (-1.0, 1.0)
     ph: list[tuple[float | None, float | None]] = [(None, None)] * n_nodes
     ph[0] = ph[-1] = (0.0, 0.0)
-    bounds = mag * n_sub + ph * n_sub + [(0.0, max_delay_s)] * n_sub
+    unit = np.ones(x0.size)
+    unit[-n_sub:] = DELAY_UNIT_S
+    bounds = mag * n_sub + ph * n_sub + [(0.0, max_delay_s / DELAY_UNIT_S)] * n_sub
     args = (resp, bases, scales, w, basis, freq_hz, smooth, ref_db, max_loss_db, loss_weight)
-    start = feed_cost_and_grad(x0, *args)[0]
+    figure = FeedFigure(*args)
+    start = figure(x0)[0]
+
+    def scaled(u: np.ndarray) -> tuple[float, np.ndarray]:
+        cost, grad = figure(u * unit)
+        return cost, grad * unit
+
     res = minimize(
-        feed_cost_and_grad,
-        x0,
-        args=args,
+        scaled,
+        x0 / unit,
         jac=True,
         method="L-BFGS-B",
         bounds=bounds,
-        options={"maxiter": maxiter, "ftol": 1e-10, "gtol": 1e-8},
+        options={"maxiter": maxiter, "maxcor": MAXCOR, "ftol": 1e-10, "gtol": 1e-8},
     )
-    x = res.x if res.fun < start else x0
+    x = res.x * unit if res.fun < start else x0
     rho, phi, d = _unpack(x, n_sub, n_nodes)
     return nodes, rho * np.exp(1j * phi), d.copy(), float(start), float(min(res.fun, start))
 
@@ -300,13 +413,37 @@ def feed_fir(
     The feed's response is sampled on an FFT grid eight times the filter's length and
     inverted; what it would need before ``latency_s`` is left out.
     """
+    nodes = np.ascontiguousarray(nodes_hz, dtype=float)
+    z = np.ascontiguousarray(z, dtype=complex)
+    return _feed_fir(nodes.tobytes(), z.tobytes(), float(fs), float(latency_s), float(tail_s))
+
+
+@functools.lru_cache(maxsize=32)
+def _feed_fir(
+    nodes_bytes: bytes, z_bytes: bytes, fs: float, latency_s: float, tail_s: float
+) -> np.ndarray:
+    """:func:`feed_fir` on arrays given as their bytes, remembered (a design builds each
+    feed's filter for the design's own rate and again for the outputs); read-only."""
     n = int(round((latency_s + tail_s) * fs))
     n_fft = 1 << int(np.ceil(np.log2(8 * n)))
     f = np.fft.rfftfreq(n_fft, 1.0 / fs)
-    spec = feed_response(f, nodes_hz, np.asarray(z)[None])[0]
+    nodes, z = np.frombuffer(nodes_bytes), np.frombuffer(z_bytes, complex)
+    # above the last node the feed is its (real) last gain: interpolated below it only
+    below = int(np.searchsorted(f, nodes[-1], side="right"))
+    spec = np.full(f.size, z[-1], dtype=complex)
+    spec[:below] = feed_response(f[:below], nodes, z[None])[0]
     # numpy's irfft reads only the real part of the DC and Nyquist bins, as _basis_irs
     # does for each node: one transform gives Re(z) @ h_re + Im(z) @ h_im
-    return np.fft.irfft(spec * np.exp(-2j * np.pi * f * latency_s), n_fft)[:n] * _fade(n)
+    h = np.fft.irfft(spec * np.exp(-2j * np.pi * f * latency_s), n_fft)[:n] * _fade(n)
+    h.flags.writeable = False
+    return h
+
+
+def forget_cached() -> None:
+    """Empty the memos of :func:`realised_basis` and :func:`feed_fir` (benchmarks time a
+    cold design)."""
+    _realised_basis.cache_clear()
+    _feed_fir.cache_clear()
 
 
 def describe_feed(nodes_hz: np.ndarray, z: np.ndarray) -> str:
