@@ -9,6 +9,7 @@ target/calibration text files named in the settings (resolved up front by
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass, replace
 from pathlib import Path
 
@@ -374,9 +375,32 @@ def run_design(
     -------
     DesignResult
     """
-    d = settings.design
-    if len(subwoofer_names(d.subwoofer)) > 1:
+    if len(subwoofer_names(settings.design.subwoofer)) > 1:
         return _run_several_subwoofers(irs, fs, settings, channel_names)
+    return _design(irs, fs, settings, channel_names)
+
+
+@dataclass
+class _Delivered:
+    """The filters delivered from a design's filter rows, when they are not those rows:
+    ``rows(h, rate)`` maps the rows at one rate (n_channels, n_taps) to the delivered ones
+    (n_outputs, n_out_taps); ``owner[i]`` is the channel delivered row ``i`` comes from."""
+
+    rows: Callable[[np.ndarray, int], np.ndarray]
+    owner: list[int]
+
+
+def _design(
+    irs: np.ndarray,
+    fs: int,
+    settings: Settings,
+    channel_names: list[str] | None = None,
+    delivered: _Delivered | None = None,
+) -> DesignResult:
+    """:func:`run_design` for one source per channel. With ``delivered``, the filters are
+    fitted under the boost cap, checked and returned as delivered (several outputs per
+    channel); everything else (channels, plan, mixed phase) stays per channel."""
+    d = settings.design
     analysis = analyse(irs, fs, settings, channel_names)
     target_shape = resolve_target(analysis.freq_hz, d.target)
     channels = design_curves(analysis, settings, target_shape)
@@ -421,11 +445,19 @@ def run_design(
             built["planned"] = True
         if built["system"] is not None:
             firs = apply_plan(firs, built["system"], own_taps if own else None)
+        if delivered is not None:  # every rate side by side (FFT convolutions)
+            rates = list(firs)
+            rows = thread_map(lambda rate: delivered.rows(firs[rate], rate), rates, cost=float)
+            firs = dict(zip(rates, rows, strict=True))
         return firs
 
     # the realised filters are fitted under the boost cap; apply_safety stays the final proof
     firs, fitted, _ = fit_under_cap(
-        build, [ch.correction_db for ch in channels], freq, d.max_boost_db
+        build,
+        [ch.correction_db for ch in channels],
+        freq,
+        d.max_boost_db,
+        owner=None if delivered is None else delivered.owner,
     )
     for ch, curve in zip(channels, fitted, strict=True):
         ch.correction_db = curve
@@ -499,7 +531,8 @@ def _run_several_subwoofers(
     4. The virtual channel's filter is handed to every subwoofer with its own delay
        (whole samples at each rate), level, polarity and own filter (designed at each
        rate), always inside the filters. The own filter never raises (its realised gain
-       is at most 0 dB), and the safety check runs again on the outputs as delivered.
+       is at most 0 dB), and the boost cap's fit and the safety check judge the outputs
+       as delivered (:class:`_Delivered`), not the virtual channel's filter.
     """
     d = settings.design
     n_pos, n_ch, n_samp = irs.shape
@@ -550,7 +583,13 @@ def _run_several_subwoofers(
             g = 10.0 ** (arr.gain_db[k] / 20.0) * arr.polarity[k]
             for p in range(n_pos):
                 inner_irs[p, -1] += g * _shifted(own[p], shifts[k], n_v)
-        return run_design(inner_irs, fs, design_settings, inner_names)
+        # fitted under the boost cap and checked as delivered: every physical output
+        inner_of = {c: i for i, c in enumerate(mains)} | {c: len(mains) for c in sub_idx}
+        delivered = _Delivered(
+            rows=lambda h, rate: _physical_rows(h, rate, arr, mains, sub_idx, n_ch, latency),
+            owner=[inner_of[c] for c in range(n_ch)],
+        )
+        return _design(inner_irs, fs, design_settings, inner_names, delivered)
 
     # judged as the seats hear it with each main alone and all mains driven (mono bass),
     # crossed over at the range's middle
@@ -594,6 +633,32 @@ def _run_several_subwoofers(
             loo.close()
 
 
+def _physical_rows(
+    h: np.ndarray,
+    rate: int,
+    arr: SubArrayPlan,
+    mains: list[int],
+    sub_idx: list[int],
+    n_ch: int,
+    latency_s: float,
+) -> np.ndarray:
+    """Every physical channel's filter at ``rate`` from the rows ``h`` of the design on the
+    mains and the virtual subwoofer (its last row): the mains as they are, waiting for the
+    subwoofers' own filters; each subwoofer the virtual channel's filter with its own
+    delay, level, polarity and own filter."""
+    v = len(mains)
+    sh = [int(round(t * rate)) for t in arr.delay_s]
+    n_lat = int(round(latency_s * rate))
+    n_out = h.shape[1] + max(sh) + n_lat
+    rows = np.zeros((n_ch, n_out))
+    for i, c in enumerate(mains):
+        rows[c, n_lat : n_lat + h.shape[1]] = h[i]
+    for k, c in enumerate(sub_idx):
+        g = 10.0 ** (arr.gain_db[k] / 20.0) * arr.polarity[k]
+        rows[c] = g * _shifted(_own_filter(h[v], arr, k, rate, latency_s), sh[k], n_out)
+    return rows
+
+
 def _several_outputs(
     irs: np.ndarray,
     fs: int,
@@ -605,33 +670,15 @@ def _several_outputs(
     r: DesignResult,
     latency_s: float = 0.0,
 ) -> DesignResult:
-    """Every physical output of a several-subwoofer design from the inner design ``r`` on
-    the mains and the virtual subwoofer (step 3 of :func:`_run_several_subwoofers`)."""
-    d = settings.design
+    """The several-subwoofer design's result from the inner design ``r`` on the mains and
+    the virtual subwoofer, whose filters are already every physical output, fitted under
+    the boost cap and checked (:func:`_physical_rows`; step 4 of
+    :func:`_run_several_subwoofers`): its channels, system plan and mixed-phase figures
+    per physical output."""
     n_ch = irs.shape[1]
     plan = r.system
     assert plan is not None
     v = len(mains)
-
-    def physical_rows(h: np.ndarray, rate: int) -> np.ndarray:
-        """Every physical channel's filter at ``rate`` from the inner design's ``h``: the
-        mains as they are, waiting for the subwoofers' own filters; each subwoofer the
-        virtual channel's filter with its own delay, level, polarity and own filter."""
-        sh = [int(round(t * rate)) for t in arr.delay_s]
-        n_lat = int(round(latency_s * rate))
-        n_out = h.shape[1] + max(sh) + n_lat
-        rows = np.zeros((n_ch, n_out))
-        for i, c in enumerate(mains):
-            rows[c, n_lat : n_lat + h.shape[1]] = h[i]
-        for k, c in enumerate(sub_idx):
-            g = 10.0 ** (arr.gain_db[k] / 20.0) * arr.polarity[k]
-            rows[c] = g * _shifted(_own_filter(h[v], arr, k, rate, latency_s), sh[k], n_out)
-        return rows
-
-    rates = list(r.firs)  # every rate side by side (their convolutions release the lock)
-    rows = thread_map(lambda rate: physical_rows(r.firs[rate], rate), rates, cost=float)
-    firs = dict(zip(rates, rows, strict=True))
-    firs, pre2, stats = apply_safety(firs, d.ceiling_db, d.max_boost_db)
     inner_of = {c: i for i, c in enumerate(mains)} | {c: v for c in sub_idx}
     mixed = None
     if r.mixed_phase is not None:
@@ -639,7 +686,10 @@ def _several_outputs(
         # (the single-subwoofer mixed-phase rules and checks); each subwoofer's own
         # delay, level, polarity and own filter follow it as above
         mp = r.mixed_phase
-        min_firs = {rate: physical_rows(h, rate) for rate, h in mp.min_phase_firs.items()}
+        min_firs = {
+            rate: _physical_rows(h, rate, arr, mains, sub_idx, n_ch, latency_s)
+            for rate, h in mp.min_phase_firs.items()
+        }
         mixed = replace(
             mp,
             estimates=[mp.estimates[inner_of[c]] for c in range(n_ch)],
@@ -687,9 +737,9 @@ def _several_outputs(
         fs_in=fs,
         irs=irs,
         channels=channels,
-        firs=firs,
-        pre_gain_db=r.pre_gain_db + pre2,
-        stats=stats,
+        firs=r.firs,
+        pre_gain_db=r.pre_gain_db,
+        stats=r.stats,
         settings=settings,
         system=system,
         mixed_phase=mixed,

@@ -11,10 +11,11 @@ safe, and on a thread otherwise:
 
 * **fork**: on Linux, when the calling process runs no other Python thread (forking a
   process whose other threads may hold locks can leave the child stuck; a command-line
-  design has none). The child ignores Ctrl-C (the parent handles it and stops the child),
-  sends its result back through a pipe and exits. If it dies without an answer, or sends
-  none within :data:`CHILD_TIMEOUT_S`, the parent computes the result itself: the answer
-  never depends on which way it was computed.
+  design has none). The child runs at a lower priority (the caller's own work, often on
+  both cores for a while, goes first). It ignores Ctrl-C (the
+  parent handles it and stops the child), sends its result back through a pipe and exits.
+  If it dies without an answer, or sends none within :data:`CHILD_TIMEOUT_S`, the parent
+  computes the result itself: the answer never depends on which way it was computed.
 * **thread**: everywhere else (macOS and Windows start processes by spawning a new
   interpreter, which costs more than the work; the browser app designs on a server
   thread).
@@ -37,6 +38,8 @@ from typing import Any
 #: child and computes the answer itself (far above any design's side work: a child that
 #: has not answered by then is stuck, not slow).
 CHILD_TIMEOUT_S = 300.0
+#: How much lower the child's scheduling priority is than its parent's (``os.nice``).
+CHILD_NICENESS = 10
 
 
 def can_fork() -> bool:
@@ -53,6 +56,12 @@ def _child(conn: Any, fn: Callable[..., Any], args: tuple) -> None:
     """Body of the forked child: ``fn(*args)`` sent back as ``(True, value)``, or what it
     raised as ``(False, exception)``."""
     signal.signal(signal.SIGINT, signal.SIG_IGN)
+    # the caller's own work (often spread over both cores for a while) goes first; the
+    # side job fills the gaps between
+    try:
+        os.nice(CHILD_NICENESS)
+    except OSError:  # not permitted here: the same answer at the same priority
+        pass
     try:
         message: tuple[bool, Any] = (True, fn(*args))
     except Exception as exc:  # sent to the parent, which raises it

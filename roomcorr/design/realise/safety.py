@@ -151,6 +151,7 @@ def fit_under_cap(
     grid_hz: np.ndarray,
     max_boost_db: float,
     rounds: int = CAP_FIT_ROUNDS,
+    owner: list[int] | None = None,
 ) -> tuple[dict[int, np.ndarray], list[np.ndarray], int]:
     """Filters whose realised gain stays at or under the boost cap, from DC to Nyquist.
 
@@ -170,7 +171,7 @@ def fit_under_cap(
     ----------
     build : callable
         Maps one correction curve per channel (dB on ``grid_hz``) to the
-        filters per rate, ``{fs: ndarray (n_channels, n_taps)}``, before the
+        filters per rate, ``{fs: ndarray (n_rows, n_taps)}``, before the
         common pre-gain.
     curves_db : list of ndarray, shape (n_freqs,)
         The correction curves, one per channel, in filter-row order.
@@ -178,6 +179,10 @@ def fit_under_cap(
     max_boost_db : float
         The boost cap.
     rounds : int
+    owner : list of int, optional
+        The curve each filter row is built from, when that is not one row per curve
+        in order (several outputs from one curve: each subwoofer's row from the
+        subwoofers' common curve); a curve is lowered by the largest excess of its rows.
 
     Returns
     -------
@@ -206,9 +211,8 @@ def fit_under_cap(
                     continue
                 over = True
                 width_hz = 2.0 * fs / own_length(h[ch])
-                lower[ch] = np.maximum(
-                    lower[ch], cap_excess_db(h[ch], fs, grid_hz, limit, width_hz)
-                )
+                c = ch if owner is None else owner[ch]
+                lower[c] = np.maximum(lower[c], cap_excess_db(h[ch], fs, grid_hz, limit, width_hz))
         if not over or n_round == rounds:
             return firs, curves, n_round
         curves = [c - d for c, d in zip(curves, lower, strict=True)]
