@@ -30,10 +30,11 @@ def _problem(seed: int, n_pos: int = 5, n_sub: int = 3, n_case: int = 3, complex
 
 
 @pytest.mark.parametrize("latency_s", [None, 0.02])
-@pytest.mark.parametrize("ref_db", [-50.0, 50.0])  # loss charge off and on
+@pytest.mark.parametrize("ref_db", [-50.0, 50.0, "per point"])  # charge off, on, some points
 def test_gradient_matches_central_differences(latency_s, ref_db):
     # numerical differentiation (central differences, step 1e-6): an independent check of
-    # the analytic chain rule, with the level charge both inactive and active
+    # the analytic chain rule, with the level charge inactive, active, and charged per
+    # judged point against a reference that only some points fall below
     rng, f, resp, bases, scales = _problem(1, complex_scales=latency_s is not None)
     nodes = feeds.node_freqs_hz(f[0], f[-1])
     if latency_s is None:
@@ -44,6 +45,11 @@ def test_gradient_matches_central_differences(latency_s, ref_db):
     n = resp.shape[1] * nodes.size
     x = np.concatenate([rng.uniform(0, 1, n), rng.uniform(-3, 3, n), rng.uniform(0, 0.01, 3)])
     w = np.full(5, 0.2)
+    n_j = _smoothing_matrix(f.size)[::2].shape[0]
+    if ref_db == "per point":  # from well below to well above the seats' level
+        ref = np.tile(np.linspace(-10.0, 40.0, n_j), (3, 1))
+    else:
+        ref = np.full(3, ref_db)
     args = (
         resp,
         bases,
@@ -52,7 +58,7 @@ def test_gradient_matches_central_differences(latency_s, ref_db):
         basis,
         f,
         _smoothing_matrix(f.size)[::2],
-        np.full(3, ref_db),
+        ref,
         3.0,
         0.25,
     )

@@ -226,7 +226,10 @@ def feed_cost_and_grad(
         (:func:`realised_basis`; as designed: ``(B, 1j * B)`` with ``B`` :func:`node_basis`).
     freq_hz : ndarray, shape (n_freqs,)
     smooth : ndarray, shape (n_judged, n_freqs)
-    ref_db : ndarray, shape (n_cases,)
+    ref_db : ndarray, shape (n_cases,) or (n_cases, n_judged)
+        The level the loss is charged against: of each case's mean level, or of each
+        judged point's mean level over the seats (a dip all seats share, where the
+        subwoofers cancel, then costs even when the mean over frequency holds).
     max_loss_db, loss_weight : float
     """
     return FeedFigure(
@@ -302,14 +305,20 @@ class FeedFigure:
         dev = lv - mu[:, None]
         sd = np.sqrt(self.w @ (dev * dev))
         sd += 1e-12
-        excess = self.ref_db - DB_PER_NEPER_POWER * mu.mean(axis=-1) - self.max_loss_db
+        # the loss charge: per case (the mean level) or per case and frequency (each
+        # point's mean over the seats, against a reference of that shape)
+        level = mu if self.ref_db.ndim == 2 else mu.mean(axis=-1)
+        excess = self.ref_db - DB_PER_NEPER_POWER * level - self.max_loss_db
         cost = float(
             DB_PER_NEPER_POWER * sd.mean() + self.loss_weight * np.maximum(excess, 0.0).mean()
         )
         g_l = (self.k_spread * self.w_col) * (dev / sd[:, None])
         charged = excess > 0.0
         if charged.any():
-            g_l[charged] -= self.k_loss * self.w_col
+            if self.ref_db.ndim == 2:
+                g_l -= (self.k_loss * self.w_col) * charged[:, None, :]
+            else:
+                g_l[charged] -= self.k_loss * self.w_col
         g_y = (2.0 * ((g_l / ps).reshape(n_case * n_pos, -1) @ self.smooth)).reshape(
             y.shape
         ) * y  # dcost = Re(conj(g_y) dy)

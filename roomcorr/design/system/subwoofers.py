@@ -110,6 +110,9 @@ SHAPED = True
 #: With several subwoofers, the crossover frequency is the candidate whose summed system
 #: leaves the least seat-to-seat spread (:func:`spread_crossover_hz`).
 SPREAD_CROSSOVER = True
+#: The shaped feeds' fit charges lost level per judged point (each point's mean over the
+#: seats against the same of the subwoofers' power sum) instead of over the whole band.
+LOCAL_LOSS = True
 #: Spacing of a shaped feed's nodes, octaves, and the fit's iterations at most.
 FEED_STEP_OCT = feeds.STEP_OCT
 FEED_MAXITER = feeds.MAXITER
@@ -563,7 +566,13 @@ def _shaped(
     sc2 = np.abs(np.asarray(scales)) ** 2
     sc2 = sc2[:, None, None] if sc2.ndim == 1 else sc2[:, None, :]
     power = np.einsum("psf,s->pf", np.abs(resp) ** 2, 10.0 ** (np.asarray(gain) / 10.0))
-    ref_db = _mean_level_db(_smooth_power(np.abs(bases) ** 2 + sc2 * power[None]))
+    ref_s = _smooth_power(np.abs(bases) ** 2 + sc2 * power[None])  # (B, P, J)
+    if LOCAL_LOSS:  # each judged point's mean level over the seats, weighted as the figure
+        n_pos = resp.shape[0]
+        w = np.full(n_pos, 1.0 / n_pos) if weights is None else np.asarray(weights, float)
+        ref_db = (w / w.sum()) @ (10.0 * np.log10(np.maximum(ref_s, 1e-30)))
+    else:
+        ref_db = _mean_level_db(ref_s)
     smooth = _smoothing_matrix(freq_hz.size)[::COST_STEP]
     nodes, z, delay, _, _ = feeds.fit_feed(
         resp, bases, scales, weights, freq_hz, smooth, ref_db, delay, gain, pol,
