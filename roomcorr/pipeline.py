@@ -556,8 +556,8 @@ def _run_several_subwoofers(
         )
     lo, hi = d.crossover_range_hz
     grid = spread_grid_hz(2.0 * float(np.sqrt(lo * hi)))
-    resp = dtft(irs[:, sub_idx], grid, fs)
-    mains_resp = dtft(irs[:, mains], grid, fs)
+    both = dtft(irs[:, sub_idx + mains], grid, fs)  # one set of kernels for all
+    resp, mains_resp = both[:, : len(sub_idx)], both[:, len(sub_idx) :]
     vname = "+".join(subs)
     inner_names = [names[c] for c in mains] + [vname]
     inner = replace(settings, design=replace(d, subwoofer=vname, channel_names=tuple(inner_names)))
