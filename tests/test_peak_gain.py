@@ -57,6 +57,21 @@ def test_peak_gain_matches_scipy_freqz(n):
         assert got == pytest.approx(_reference_peak_db(h, FS), abs=2e-3)
 
 
+@pytest.mark.parametrize("n", [2, 3, 6, 7, 2049])  # 2049: an odd dense FFT length
+def test_a_peak_at_dc_or_nyquist_is_found_at_the_band_edge(n):
+    # all taps alike peak at DC (their sum), alternating taps at Nyquist (their
+    # alternating sum), for even and odd lengths (odd dense FFT lengths have no Nyquist
+    # bin); scipy's freqz at those two frequencies is the reference
+    for h in (np.full(n, 0.5), 0.5 * (-1.0) ** np.arange(n)):
+        want = 20 * np.log10(np.abs(freqz(h, worN=[0.0, FS / 2], fs=FS)[1]).max())
+        assert peak_gain_db(h, FS, 0.0, FS / 2) == pytest.approx(want, abs=1e-9)
+        # and a band whose edges are not DC and Nyquist still takes them as given
+        inner = peak_gain_db(h, FS, 1000.0, 20000.0)
+        grid = np.linspace(1000, 20000, 200001)  # 0.1 Hz apart
+        ref = 20 * np.log10(np.abs(freqz(h, worN=grid, fs=FS)[1]).max())
+        assert inner == pytest.approx(ref, abs=2e-3)
+
+
 def test_dense_fft_length_is_fine_enough_and_fast():
     # at least 8 taps' worth of bins per tap (bin spacing fs / (8 n) or finer), and a
     # 7-smooth length (scipy.fft.next_fast_len's definition)

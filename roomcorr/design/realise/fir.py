@@ -240,8 +240,17 @@ def peak_gain_db(h: np.ndarray, fs: float, f_lo: float = 20.0, f_hi: float = 200
     mag = np.abs(sp_fft.rfft(h, n_fft))
     bins_hz = np.fft.rfftfreq(n_fft, 1.0 / fs)
     inside = np.flatnonzero((bins_hz >= f_lo) & (bins_hz <= f_hi))
-    # band edges: the DTFT sum directly (two frequencies, O(n_taps))
-    best = float(np.max(np.abs(dtft(h, np.array([f_lo, f_hi]), fs))))
+    # band edges: the DTFT sum directly (two frequencies, O(n_taps)); DC and Nyquist are
+    # the plain and the alternating sum of the taps (a DTFT at 0 and at fs / 2)
+    edges = []
+    for f in (f_lo, f_hi):
+        if f == 0.0:
+            edges.append(abs(float(np.sum(h))))
+        elif f == fs / 2.0:
+            edges.append(abs(float(np.sum(h[0::2]) - np.sum(h[1::2]))))
+        else:
+            edges.append(float(np.abs(dtft(h, np.array([f]), fs))[0]))
+    best = max(edges)
     if inside.size:
         m = mag[inside]
         best = max(best, float(np.max(m)))

@@ -96,7 +96,7 @@ def full_band_peak_gain_db(h: np.ndarray, fs: float) -> float:
             _PEAK_MEMO.move_to_end(key)
             return _PEAK_MEMO[key]
     peak = peak_gain_db(x, fs, 0.0, fs / 2.0)
-    remember_peak_gain_db(x, fs, peak)
+    _remember(key, peak)
     return peak
 
 
@@ -137,7 +137,10 @@ def remember_peak_gain_db(h: np.ndarray, fs: float, peak_db: float) -> None:
     measured: its peak is ``P + 20 log10 g`` (the scaling rounds each tap by
     at most half an ulp, about 1e-15 dB).
     """
-    _, key = _peak_key(h, fs)
+    _remember(_peak_key(h, fs)[1], peak_db)
+
+
+def _remember(key: tuple[float, int, bytes], peak_db: float) -> None:
     with _MEMO_LOCK:
         _PEAK_MEMO[key] = float(peak_db)
         _PEAK_MEMO.move_to_end(key)
@@ -262,7 +265,8 @@ def apply_safety(
         out[fs] = hs
         for ch in range(h.shape[0]):
             peak = peaks[(fs, ch)] + pre
-            remember_peak_gain_db(hs[ch], fs, peak)
+            if scale != 1.0:  # unscaled, the taps and their peak are remembered already
+                remember_peak_gain_db(hs[ch], fs, peak)
             boost = peaks[(fs, ch)]
             if not boost <= max_boost_db + BOOST_TOLERANCE_DB:  # NaN fails too
                 raise SafetyError(

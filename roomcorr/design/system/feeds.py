@@ -442,8 +442,14 @@ def _feed_fir(
     spec = np.full(f.size, z[-1], dtype=complex)
     spec[:below] = feed_response(f[:below], nodes, z[None])[0]
     # numpy's irfft reads only the real part of the DC and Nyquist bins, as _basis_irs
-    # does for each node: one transform gives Re(z) @ h_re + Im(z) @ h_im
-    h = np.fft.irfft(spec * np.exp(-2j * np.pi * f * latency_s), n_fft)[:n] * _fade(n)
+    # does for each node: one transform gives Re(z) @ h_re + Im(z) @ h_im. A latency of
+    # whole samples is a circular shift of the transform (the phase ramp's bins are then
+    # exactly those of a shift, real at DC and Nyquist), which costs less than the ramp.
+    shift = latency_s * fs
+    if abs(shift - round(shift)) < 1e-9:
+        h = np.roll(np.fft.irfft(spec, n_fft), int(round(shift)))[:n] * _fade(n)
+    else:
+        h = np.fft.irfft(spec * np.exp(-2j * np.pi * f * latency_s), n_fft)[:n] * _fade(n)
     h.flags.writeable = False
     return h
 
