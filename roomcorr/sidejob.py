@@ -12,8 +12,8 @@ safe, and on a thread otherwise:
 * **fork**: on Linux, when the calling process runs no other Python thread (forking a
   process whose other threads may hold locks can leave the child stuck; a command-line
   design has none). The child runs at a lower priority (the caller's own work, often on
-  both cores for a while, goes first). It ignores Ctrl-C (the
-  parent handles it and stops the child), sends its result back through a pipe and exits.
+  both cores for a while, goes first). It ignores Ctrl-C (the parent handles it and stops
+  the child), sends its result back through a pipe and exits.
   If it dies without an answer, or sends none within :data:`CHILD_TIMEOUT_S`, the parent
   computes the result itself: the answer never depends on which way it was computed.
 * **thread**: everywhere else (macOS and Windows start processes by spawning a new
@@ -102,11 +102,16 @@ class SideJob:
         if can_fork():
             ctx = multiprocessing.get_context("fork")
             receive, send = ctx.Pipe(duplex=False)
-            self._process = ctx.Process(target=_child, args=(send, fn, args), daemon=True)
-            self._process.start()
-            send.close()  # the child holds the sending end; its exit closes the pipe
-            self._conn = receive
-        else:
+            try:
+                process = ctx.Process(target=_child, args=(send, fn, args), daemon=True)
+                process.start()
+            except OSError:  # no process to be had (a limit reached): on a thread below
+                receive.close()
+            else:
+                self._process, self._conn = process, receive
+            finally:
+                send.close()  # the child holds the sending end; its exit closes the pipe
+        if self._process is None:
             self._pool = ThreadPoolExecutor(max_workers=1)
             self._future = self._pool.submit(fn, *args)
 
@@ -155,7 +160,9 @@ class SideJob:
 MAP_WORKERS = 4
 
 
-def thread_map(fn: Callable[[Any], Any], items: list, cost: Callable[[Any], float] | None = None):
+def thread_map(
+    fn: Callable[[Any], Any], items: list, cost: Callable[[Any], float] | None = None
+) -> list[Any]:
     """``[fn(x) for x in items]`` on up to :data:`MAP_WORKERS` threads (one per core).
 
     For work that releases the interpreter lock most of its time (numpy's and scipy's FFTs

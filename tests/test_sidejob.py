@@ -114,3 +114,17 @@ def test_thread_map_keeps_the_order_and_runs_the_costliest_first():
     assert thread_map(work, items, cost=float) == [n * n for n in items]
     if (os.cpu_count() or 1) > 1:
         assert started[0] == 9  # the costliest starts first
+
+
+@linux
+def test_a_fork_that_fails_falls_back_to_a_thread(monkeypatch):
+    import multiprocessing.process
+
+    def refuse(self):
+        raise OSError("no more processes")
+
+    monkeypatch.setattr(multiprocessing.process.BaseProcess, "start", refuse)
+    job = SideJob(_pid_and_sum, np.ones(3))
+    assert not job.in_child
+    assert job.result() == (os.getpid(), 3.0)
+    job.close()
