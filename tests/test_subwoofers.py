@@ -5,6 +5,13 @@ Modules under test: roomcorr.design.system.subwoofers and the pipeline's use of 
 
 from __future__ import annotations
 
+import os
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
 import numpy as np
 import pyfar as pf
 import pytest
@@ -13,6 +20,7 @@ from hypothesis import strategies as st
 from pra_rooms import MULTI_SUB_ROOMS, mains_m, simulate_pra, sofa_positions
 from scipy.signal import freqz, sosfilt, sosfreqz
 
+from roomcorr.audio_io import write_wav
 from roomcorr.deliver.routes import build_routes
 from roomcorr.deliver.system import manifest_fields, system_sentences
 from roomcorr.design.phase.mixedphase import MAGNITUDE_TOLERANCE_DB, PRE_RING_LIMIT_DB
@@ -456,3 +464,58 @@ def test_the_crossover_goes_where_the_subwoofers_make_the_seats_agree(monkeypatc
     assert spread_crossover_hz(subs, mains, f, candidates, FS, plan) == 150.0
     monkeypatch.setattr("roomcorr.design.system.subwoofers.SPREAD_CROSSOVER", False)
     assert spread_crossover_hz(subs, mains, f, candidates, FS, plan) is None
+
+
+def _children(pid: int) -> list[int]:
+    """Process ids of ``pid``'s children (Linux /proc)."""
+    kids: list[int] = []
+    for task in Path(f"/proc/{pid}/task").glob("*"):
+        try:
+            kids += [int(k) for k in (task / "children").read_text().split()]
+        except OSError:
+            continue
+    return kids
+
+
+@pytest.mark.skipif(not sys.platform.startswith("linux"), reason="/proc and fork: Linux")
+def test_ctrl_c_while_the_prediction_runs_in_its_child(two_sub_design, tmp_path):
+    # the command-line design runs the leave-one-position-out prediction in a forked child
+    # (roomcorr/sidejob.py); a Ctrl-C meanwhile ends the command with one line and exit 130
+    # (POSIX shells: 128 + SIGINT) and no traceback, the child (which the signal reaches
+    # too) is stopped with it, and nothing is written
+    irs, _ = two_sub_design
+    for p in range(irs.shape[0]):
+        write_wav(tmp_path / f"pos{p + 1}.wav", irs[p], FS)
+    out = tmp_path / "out"
+    env = dict(os.environ, PYTHONPATH=str(Path(__file__).resolve().parents[1]))
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "roomcorr", "design", *sorted(map(str, tmp_path.glob("pos*.wav"))),
+         "--names", "left,right,front_sub,back_sub", "--subwoofer", "front_sub,back_sub",
+         "--out", str(out)],
+        env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+        start_new_session=True,  # its own process group, as a terminal's foreground job
+    )
+    try:
+        child = None
+        deadline = time.monotonic() + 60.0
+        while child is None and proc.poll() is None and time.monotonic() < deadline:
+            kids = _children(proc.pid)
+            child = kids[0] if kids else None
+            time.sleep(0.002)
+        assert child is not None, "the prediction's child never started"
+        os.killpg(proc.pid, signal.SIGINT)  # Ctrl-C reaches the whole group, child too
+        _, err = proc.communicate(timeout=60)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait()
+    lines = [ln for ln in err.splitlines() if ln.strip()]
+    assert proc.returncode == 130 and "interrupted" in lines[-1], err
+    assert "Traceback" not in err
+    time.sleep(0.2)
+    try:
+        state = Path(f"/proc/{child}/status").read_text()
+    except OSError:
+        state = ""  # gone
+    assert "State:\tR" not in state and "State:\tS" not in state, state
+    assert not (out / "manifest.json").exists()
