@@ -29,6 +29,20 @@ FS = 48000
 F = np.geomspace(10, 20000, 2000)
 
 
+@pytest.mark.parametrize("fs", [44100, 48000, 96000])
+@pytest.mark.parametrize("slope", SLOPES_DB_OCT)
+def test_response_equals_scipy_sosfreqz_of_the_butterworth_sections(fs, slope):
+    # the analytic response (the bilinear transform's frequency map applied to the analog
+    # Butterworth prototype) against scipy's sosfreqz of scipy's butter sections, squared
+    f = np.geomspace(5.0, 0.49 * fs, 500)
+    for fc in (35.0, 80.0, 141.0, 3000.0):
+        n = slope // 12
+        pair = linkwitz_riley_response(f, fc, fs, slope)
+        for kind, got in zip(("lowpass", "highpass"), pair, strict=True):
+            _, want = sosfreqz(butter(n, fc, kind, fs=fs, output="sos"), worN=f, fs=fs)
+            np.testing.assert_allclose(got, want**2, rtol=1e-9, atol=1e-12)
+
+
 @pytest.mark.parametrize("fc", [40.0, 80.0, 150.0, 2500.0])
 def test_lr4_and_lr8_sum_to_an_all_pass(fc):
     # Linkwitz, JAES 24(1), 1976: LP + HP of a Linkwitz-Riley crossover is an
