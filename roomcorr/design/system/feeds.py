@@ -189,21 +189,18 @@ def _unpack(x: np.ndarray, n_sub: int, n_nodes: int):
     )
 
 
-def feed_cost_and_grad(
-    x: np.ndarray,
-    resp: np.ndarray,
-    bases: np.ndarray,
-    scales: np.ndarray,
-    weights: np.ndarray,
-    basis: np.ndarray,
-    freq_hz: np.ndarray,
-    smooth: np.ndarray,
-    ref_db: np.ndarray,
-    max_loss_db: float,
-    loss_weight: float,
-) -> tuple[float, np.ndarray]:
+def feed_cost_and_grad(x: np.ndarray, *problem) -> tuple[float, np.ndarray]:
     """Mean over the listening cases of the spread (dB) plus the loss charge, and its
-    gradient in ``x`` (node magnitudes, node phases, delays in s).
+    gradient in ``x`` (node magnitudes, node phases, delays in s), for the problem
+    ``resp, bases, scales, weights, basis, freq_hz, smooth, ref_db, max_loss_db,
+    loss_weight`` (:class:`FeedFigure`, which a fit builds once)."""
+    return FeedFigure(*problem)(x)
+
+
+class FeedFigure:
+    """:func:`feed_cost_and_grad` for one problem, what does not depend on ``x`` computed
+    once: a fit evaluates it hundreds of times on small arrays, where numpy's cost per
+    call, not the arithmetic, sets the time.
 
     The seats hear ``y = base + scale * sum_k g_k resp_k`` with
     ``g_k = (B z_k) exp(-j w d_k)``, ``z = rho exp(j phi)``. The figure: ``L = ln(S |y|^2)``
@@ -232,15 +229,6 @@ def feed_cost_and_grad(
         subwoofers cancel, then costs even when the mean over frequency holds).
     max_loss_db, loss_weight : float
     """
-    return FeedFigure(
-        resp, bases, scales, weights, basis, freq_hz, smooth, ref_db, max_loss_db, loss_weight
-    )(x)
-
-
-class FeedFigure:
-    """:func:`feed_cost_and_grad` for one problem, what does not depend on ``x`` computed
-    once: a fit evaluates it hundreds of times on small arrays, where numpy's cost per
-    call, not the arithmetic, sets the time."""
 
     def __init__(
         self,
@@ -255,7 +243,7 @@ class FeedFigure:
         max_loss_db: float,
         loss_weight: float,
     ) -> None:
-        n_pos, self.n_sub, n_f = resp.shape
+        self.n_sub, n_f = resp.shape[1:]
         self.b_re_t = np.ascontiguousarray(np.asarray(basis[0]).T)
         self.b_im_t = np.ascontiguousarray(np.asarray(basis[1]).T)
         self.b_re = np.asarray(basis[0])
@@ -284,9 +272,7 @@ class FeedFigure:
     def __call__(self, x: np.ndarray) -> tuple[float, np.ndarray]:
         """The figure and its gradient at ``x`` (node magnitudes, node phases, delays in s)."""
         k = self.n_sub * self.n_nodes
-        rho = x[:k].reshape(self.n_sub, self.n_nodes)
-        phi = x[k : 2 * k].reshape(self.n_sub, self.n_nodes)
-        d = x[2 * k :]
+        rho, phi, d = _unpack(x, self.n_sub, self.n_nodes)
         c, s = np.cos(phi), np.sin(phi)
         rot = np.exp(self.jw * d[:, None])  # (S, F)
         g = ((rho * c) @ self.b_re_t + (rho * s) @ self.b_im_t) * rot
