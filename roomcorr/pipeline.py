@@ -584,10 +584,9 @@ def _run_several_subwoofers(
             for p in range(n_pos):
                 inner_irs[p, -1] += g * _shifted(own[p], shifts[k], n_v)
         # fitted under the boost cap and checked as delivered: every physical output
-        inner_of = {c: i for i, c in enumerate(mains)} | {c: len(mains) for c in sub_idx}
         delivered = _Delivered(
             rows=lambda h, rate: _physical_rows(h, rate, arr, mains, sub_idx, n_ch, latency),
-            owner=[inner_of[c] for c in range(n_ch)],
+            owner=_inner_channels(mains, sub_idx, n_ch),
         )
         return _design(inner_irs, fs, design_settings, inner_names, delivered)
 
@@ -631,6 +630,13 @@ def _run_several_subwoofers(
     finally:
         if loo is not None:
             loo.close()
+
+
+def _inner_channels(mains: list[int], sub_idx: list[int], n_ch: int) -> list[int]:
+    """The channel of the design on the mains and the virtual subwoofer (its last) that
+    each of the ``n_ch`` physical outputs comes from."""
+    inner = {c: i for i, c in enumerate(mains)} | {c: len(mains) for c in sub_idx}
+    return [inner[c] for c in range(n_ch)]
 
 
 def _physical_rows(
@@ -678,8 +684,7 @@ def _several_outputs(
     n_ch = irs.shape[1]
     plan = r.system
     assert plan is not None
-    v = len(mains)
-    inner_of = {c: i for i, c in enumerate(mains)} | {c: v for c in sub_idx}
+    pick = _inner_channels(mains, sub_idx, n_ch)  # the inner channel of each output
     mixed = None
     if r.mixed_phase is not None:
         # the array's excess phase is undone once, in the filter all subwoofers share
@@ -692,18 +697,18 @@ def _several_outputs(
         }
         mixed = replace(
             mp,
-            estimates=[mp.estimates[inner_of[c]] for c in range(n_ch)],
+            estimates=[mp.estimates[pick[c]] for c in range(n_ch)],
             min_phase_firs=min_firs,
             stats=[
                 replace(st, channel=c)
                 for c in range(n_ch)
                 for st in mp.stats
-                if st.channel == inner_of[c]
+                if st.channel == pick[c]
             ],
-            views=[mp.views[inner_of[c]] for c in range(n_ch)] if mp.views else [],
+            views=[mp.views[pick[c]] for c in range(n_ch)] if mp.views else [],
         )
-    channels = [replace(r.channels[inner_of[c]], index=c, name=names[c]) for c in range(n_ch)]
-    roles = [plan.roles[inner_of[c]] for c in range(n_ch)]
+    channels = [replace(r.channels[pick[c]], index=c, name=names[c]) for c in range(n_ch)]
+    roles = [plan.roles[pick[c]] for c in range(n_ch)]
     own_delay = np.zeros(n_ch)
     own_gain = np.zeros(n_ch)
     own_pol = np.ones(n_ch, dtype=int)
@@ -711,7 +716,6 @@ def _several_outputs(
         own_delay[c] = latency_s
     for k, c in enumerate(sub_idx):
         own_delay[c], own_gain[c], own_pol[c] = arr.delay_s[k], arr.gain_db[k], arr.polarity[k]
-    pick = [inner_of[c] for c in range(n_ch)]
     # outputs: totals where the array's part is inside the filters (always) and the
     # system's delay and trim are too (align on); otherwise the trims to set by hand
     delay = plan.delay_s[pick] + (own_delay if plan.baked else 0.0)
