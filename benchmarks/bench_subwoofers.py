@@ -46,8 +46,12 @@ hour on a shared machine).
 from __future__ import annotations
 
 import contextlib
+import json
 import os
+import resource
+import subprocess
 import sys
+import tempfile
 import time
 from pathlib import Path
 from unittest import mock
@@ -414,54 +418,105 @@ def dev() -> None:
         print(f"mean {v:28} {np.mean(x):.3f}  design {np.mean(times[v]):.2f} s")
 
 
-#: Runs of each design in the timing benchmark (each one's best is reported).
+#: Runs of each design in the timing benchmark (in turn; each one's best and median are
+#: reported).
 REPEAT = 5
+
+#: The three designs timed: label, channels of the simulated room used, design settings.
+TIMED = (
+    (
+        "two mains + two subwoofers (4 outputs)",
+        4,
+        {"channel_names": ["left", "right", "sub1", "sub2"], "subwoofer": "sub1,sub2"},
+    ),
+    (
+        "two mains + one subwoofer (issue 11)  ",
+        3,
+        {"channel_names": ["left", "right", "sub1"], "subwoofer": "sub1"},
+    ),
+    ("two mains alone (reference)           ", 2, {"channel_names": ["left", "right"]}),
+)
+
+
+def _fresh_run(npy: Path, spec: dict) -> tuple[float, float, int]:
+    """(wall clock, processor time, minor page faults) of one design in a new process
+    (``design_once.py``: imports and loading not timed)."""
+    script = Path(__file__).with_name("design_once.py")
+    path = os.pathsep.join(p for p in (str(REPO), os.environ.get("PYTHONPATH", "")) if p)
+    out = subprocess.run(
+        [sys.executable, str(script), str(npy), json.dumps(spec)],
+        check=True,
+        capture_output=True,
+        text=True,
+        env={**os.environ, "PYTHONPATH": path},
+    )
+    r = json.loads(out.stdout.strip().splitlines()[-1])
+    return r["wall_s"], r["cpu_s"], r["minor_faults"]
+
+
+def _warm_run(irs: np.ndarray, spec: dict) -> tuple[float, float, int]:
+    """The same in this process, after earlier designs (memos and feed caches emptied)."""
+    forget_peak_gains()  # every run measures its filters afresh
+    feeds_mod.forget_cached()  # and realises its feeds afresh
+    settings = Settings(design=design_from_dict(spec))
+    t = os.times()
+    faults = resource.getrusage(resource.RUSAGE_SELF).ru_minflt
+    start = time.perf_counter()
+    run_design(irs, FS, settings)
+    wall = time.perf_counter() - start
+    e = os.times()
+    cpu = (e.user + e.system + e.children_user + e.children_system) - (
+        t.user + t.system + t.children_user + t.children_system
+    )
+    return wall, cpu, resource.getrusage(resource.RUSAGE_SELF).ru_minflt - faults
+
+
+def _print_runs(title: str, runs: list[list[tuple[float, float, int]]]) -> None:
+    print(title)
+    print(
+        "                                        wall clock: best  ratio  median  ratio |"
+        " processor  ratio | page faults"
+    )
+    best = [min(r[i][0] for r in runs) for i in range(len(TIMED))]
+    med = [float(np.median([r[i][0] for r in runs])) for i in range(len(TIMED))]
+    cpu = [min(r[i][1] for r in runs) for i in range(len(TIMED))]
+    flt = [int(np.median([r[i][2] for r in runs])) for i in range(len(TIMED))]
+    for i, (label, _, _) in enumerate(TIMED):
+        print(
+            f"{label}  {best[i]:6.2f} s {best[i] / best[-1]:5.2f}x  {med[i]:5.2f} s"
+            f" {med[i] / med[-1]:5.2f}x | {cpu[i]:6.2f} s {cpu[i] / cpu[-1]:5.2f}x |"
+            f" {flt[i]:8d}"
+        )
 
 
 def timing() -> None:
+    """Design time of 4 outputs x 5 positions x 3 rates against the two-channel design.
+
+    The figure is taken as a command-line design pays it: each design in a process of
+    its own (``design_once.py``), the three in turn, :data:`REPEAT` times. For comparison
+    it also times them the old way, one after another in this process. That way
+    misleads: the two-channel design then reuses memory earlier designs freed (a few
+    dozen page faults per run) and never pays for fresh memory as ``roomcorr design``
+    does (tens of thousands); the several-subwoofer design cannot reuse it, since its
+    side job's fork makes every page copy-on-write (``roomcorr/sidejob.py``).
+    """
     dims, t60, subs_m, lat = MULTI_SUB_ROOMS["two-front-back"]
     kinds = ["main", "main", "sub", "sub"]
     irs = simulate_pra(dims, mains_m(dims) + subs_m, kinds, sofa_positions(dims), t60, [0, 0, *lat])
-    rates = (44100, 48000, 96000)
-    four = _settings(["left", "right", "sub1", "sub2"], ["sub1", "sub2"], rates)
-    three = _settings(["left", "right", "sub1"], ["sub1"], rates)
-    two = Settings(
-        design=design_from_dict({"channel_names": ["left", "right"], "sample_rates": list(rates)})
-    )
-
-    def cpu_s() -> float:
-        """Processor time of this process and of its children that have ended (the
-        prediction's child process, roomcorr/sidejob.py), s."""
-        t = os.times()
-        return t.user + t.system + t.children_user + t.children_system
-
-    def once(fn) -> tuple[float, float]:
-        """(wall clock, processor time of this process and its children) of one run."""
-        forget_peak_gains()  # every run measures its filters afresh
-        feeds_mod.forget_cached()  # and realises its feeds afresh
-        t, c = time.perf_counter(), cpu_s()
-        fn()
-        return time.perf_counter() - t, cpu_s() - c
-
-    designs = (
-        lambda: run_design(irs, FS, four),
-        lambda: run_design(irs[:, :3], FS, three),
-        lambda: run_design(irs[:, :2], FS, two),
-    )
-    # the designs in turn, REPEAT times, each one's best: a busy moment of a shared
-    # machine then slows one run of each rather than all runs of one
-    runs = [[once(fn) for fn in designs] for _ in range(REPEAT)]
-    (t4, c4), (t3, c3), (t2, c2) = (min(r[i] for r in runs) for i in range(len(designs)))
-    print(
-        "benchmark (5 positions x 3 rates)            wall clock  ratio | processor  ratio"
-        f"  ({os.cpu_count()} cores)"
-    )
-    for label, t, c in (
-        ("two mains + two subwoofers (4 outputs)", t4, c4),
-        ("two mains + one subwoofer (issue 11)  ", t3, c3),
-        ("two mains alone (reference)           ", t2, c2),
-    ):
-        print(f"{label}      {t:6.2f} s  {t / t2:5.2f}x | {c:6.2f} s  {c / c2:5.2f}x")
+    rates = [44100, 48000, 96000]
+    specs = [{**spec, "sample_rates": rates} for _, _, spec in TIMED]
+    print(f"benchmark (5 positions x 3 rates, {os.cpu_count()} cores)")
+    with tempfile.TemporaryDirectory() as tmp:
+        files = []
+        for _, n_ch, _ in TIMED:
+            files.append(Path(tmp) / f"irs{n_ch}.npy")
+            np.save(files[-1], irs[:, :n_ch])
+        fresh = [[_fresh_run(f, s) for f, s in zip(files, specs, strict=True)]
+                 for _ in range(REPEAT)]
+    _print_runs("each design in a new process, as `roomcorr design` runs it:", fresh)
+    warm = [[_warm_run(irs[:, :n_ch], s) for (_, n_ch, _), s in zip(TIMED, specs, strict=True)]
+            for _ in range(REPEAT)]
+    _print_runs("one process, designs repeated (memory warm from earlier designs):", warm)
 
 
 if __name__ == "__main__":

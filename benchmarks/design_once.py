@@ -1,0 +1,50 @@
+"""One design in a process of its own, timed as a command-line design pays it.
+
+``python benchmarks/design_once.py IRS.npy SETTINGS_JSON`` loads the impulse responses
+(shape (n_positions, n_channels, n_samples), 48 kHz), runs
+:func:`roomcorr.pipeline.run_design` once with the design settings given as JSON (the
+keys of the settings file's ``design`` table) and prints one JSON line: the wall clock
+of the design alone (imports and loading excluded), its processor time (this process and
+the child processes that ended during it) and the minor page faults this process took
+meanwhile.
+
+The process imports only numpy and roomcorr before the timed call, as ``roomcorr
+design`` does, so its memory is that of a command-line run: nothing freed by earlier
+designs waits to be reused (``benchmarks/bench_subwoofers.py timing`` explains why that
+matters).
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import resource
+import sys
+import time
+
+import numpy as np
+
+from roomcorr.pipeline import run_design
+from roomcorr.settings import Settings, design_from_dict
+
+FS = 48000
+
+
+def main(argv: list[str]) -> None:
+    irs = np.load(argv[0])
+    settings = Settings(design=design_from_dict(json.loads(argv[1])))
+    before, faults = os.times(), resource.getrusage(resource.RUSAGE_SELF).ru_minflt
+    t = time.perf_counter()
+    run_design(irs, FS, settings)
+    wall = time.perf_counter() - t
+    after = os.times()
+    cpu = sum(
+        getattr(after, k) - getattr(before, k)
+        for k in ("user", "system", "children_user", "children_system")
+    )
+    faults = resource.getrusage(resource.RUSAGE_SELF).ru_minflt - faults
+    print(json.dumps({"wall_s": wall, "cpu_s": cpu, "minor_faults": faults}))
+
+
+if __name__ == "__main__":
+    main(sys.argv[1:])
