@@ -36,8 +36,12 @@ Figures, evaluated independently of roomcorr (scipy's FFT convolution of the del
   100 Hz, averaged over seats.
 
 Design time: 4 outputs (two mains, two subwoofers) x 5 positions x 3 rates against the
-two-channel design and the single-subwoofer design, in the same run (each the best of five
-runs, the three designs in turn; processor time includes the prediction's child process).
+two-channel design and the single-subwoofer design, in the same run: each design in a new
+process as ``roomcorr design`` runs it (``design_once.py``; imports and loading not timed),
+then in this process after earlier designs, with and without the memory they freed handed
+back first (``timing``'s notes say why the last view misleads); the three designs in turn,
+five times, each one's best and median; processor time includes the prediction's child
+process.
 
 Run: ``python benchmarks/bench_subwoofers.py [timing] [quality]`` (quality: a quarter of an
 hour on a shared machine).
@@ -46,6 +50,8 @@ hour on a shared machine).
 from __future__ import annotations
 
 import contextlib
+import ctypes
+import ctypes.util
 import json
 import os
 import resource
@@ -53,6 +59,7 @@ import subprocess
 import sys
 import tempfile
 import time
+from collections.abc import Callable
 from pathlib import Path
 from unittest import mock
 
@@ -454,10 +461,25 @@ def _fresh_run(npy: Path, spec: dict) -> tuple[float, float, int]:
     return r["wall_s"], r["cpu_s"], r["minor_faults"]
 
 
-def _warm_run(irs: np.ndarray, spec: dict) -> tuple[float, float, int]:
-    """The same in this process, after earlier designs (memos and feed caches emptied)."""
+def _malloc_trim() -> Callable[[], None] | None:
+    """glibc's ``malloc_trim(0)`` (hands the memory freed by earlier designs back to the
+    system), or ``None`` where there is no glibc."""
+    try:
+        trim = ctypes.CDLL(ctypes.util.find_library("c") or "libc.so.6").malloc_trim
+    except (OSError, AttributeError):
+        return None
+    return lambda: trim(0)
+
+
+def _warm_run(
+    irs: np.ndarray, spec: dict, trim: Callable[[], None] | None = None
+) -> tuple[float, float, int]:
+    """The same in this process, after earlier designs (memos and feed caches emptied;
+    with ``trim``, the freed memory handed back to the system first)."""
     forget_peak_gains()  # every run measures its filters afresh
     feeds_mod.forget_cached()  # and realises its feeds afresh
+    if trim is not None:
+        trim()
     settings = Settings(design=design_from_dict(spec))
     t = os.times()
     faults = resource.getrusage(resource.RUSAGE_SELF).ru_minflt
@@ -493,12 +515,14 @@ def timing() -> None:
     """Design time of 4 outputs x 5 positions x 3 rates against the two-channel design.
 
     The figure is taken as a command-line design pays it: each design in a process of
-    its own (``design_once.py``), the three in turn, :data:`REPEAT` times. For comparison
-    it also times them the old way, one after another in this process. That way
-    misleads: the two-channel design then reuses memory earlier designs freed (a few
-    dozen page faults per run) and never pays for fresh memory as ``roomcorr design``
-    does (tens of thousands); the several-subwoofer design cannot reuse it, since its
-    side job's fork makes every page copy-on-write (``roomcorr/sidejob.py``).
+    its own (``design_once.py``), the three in turn, :data:`REPEAT` times. Two more views
+    in this process, after earlier designs: with the memory those freed handed back to
+    the system first (glibc's ``malloc_trim``; the code warm, the memory cold, as in a
+    new process), and the old way, nothing handed back. That last one misleads: the
+    two-channel design then reuses the freed memory (a few dozen page faults per run)
+    and never pays for fresh memory as ``roomcorr design`` does (tens of thousands); the
+    several-subwoofer design cannot reuse it, since its side job's fork makes every page
+    copy-on-write (``roomcorr/sidejob.py``).
     """
     dims, t60, subs_m, lat = MULTI_SUB_ROOMS["two-front-back"]
     kinds = ["main", "main", "sub", "sub"]
@@ -511,12 +535,20 @@ def timing() -> None:
         for _, n_ch, _ in TIMED:
             files.append(Path(tmp) / f"irs{n_ch}.npy")
             np.save(files[-1], irs[:, :n_ch])
-        fresh = [[_fresh_run(f, s) for f, s in zip(files, specs, strict=True)]
-                 for _ in range(REPEAT)]
+        fresh = [
+            [_fresh_run(f, s) for f, s in zip(files, specs, strict=True)] for _ in range(REPEAT)
+        ]
     _print_runs("each design in a new process, as `roomcorr design` runs it:", fresh)
-    warm = [[_warm_run(irs[:, :n_ch], s) for (_, n_ch, _), s in zip(TIMED, specs, strict=True)]
-            for _ in range(REPEAT)]
-    _print_runs("one process, designs repeated (memory warm from earlier designs):", warm)
+    views = [("one process, designs repeated (memory warm from earlier designs):", None)]
+    trim = _malloc_trim()
+    if trim is not None:
+        views.insert(0, ("one process, the memory earlier designs freed handed back first:", trim))
+    for title, how in views:
+        runs = [
+            [_warm_run(irs[:, :n_ch], s, how) for (_, n_ch, _), s in zip(TIMED, specs, strict=True)]
+            for _ in range(REPEAT)
+        ]
+        _print_runs(title, runs)
 
 
 if __name__ == "__main__":
