@@ -54,7 +54,6 @@ import ctypes
 import ctypes.util
 import json
 import os
-import resource
 import subprocess
 import sys
 import tempfile
@@ -69,6 +68,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parent))
 
 import numpy as np  # noqa: E402
 import pyfar as pf  # noqa: E402
+from design_once import minor_faults  # noqa: E402
 from pra_rooms import (  # noqa: E402
     MULTI_SUB_ROOMS,
     held_out_seats,
@@ -482,7 +482,7 @@ def _warm_run(
         trim()
     settings = Settings(design=design_from_dict(spec))
     t = os.times()
-    faults = resource.getrusage(resource.RUSAGE_SELF).ru_minflt
+    faults = minor_faults()
     start = time.perf_counter()
     run_design(irs, FS, settings)
     wall = time.perf_counter() - start
@@ -490,7 +490,7 @@ def _warm_run(
     cpu = (e.user + e.system + e.children_user + e.children_system) - (
         t.user + t.system + t.children_user + t.children_system
     )
-    return wall, cpu, resource.getrusage(resource.RUSAGE_SELF).ru_minflt - faults
+    return wall, cpu, minor_faults() - faults
 
 
 def _print_runs(title: str, runs: list[list[tuple[float, float, int]]]) -> None:

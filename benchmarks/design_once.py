@@ -18,7 +18,6 @@ from __future__ import annotations
 
 import json
 import os
-import resource
 import sys
 import time
 
@@ -30,10 +29,20 @@ from roomcorr.settings import Settings, design_from_dict
 FS = 48000
 
 
+def minor_faults() -> int:
+    """Minor page faults of this process so far (-1 where ``resource`` is missing:
+    Windows)."""
+    try:
+        import resource
+    except ImportError:
+        return -1
+    return resource.getrusage(resource.RUSAGE_SELF).ru_minflt
+
+
 def main(argv: list[str]) -> None:
     irs = np.load(argv[0])
     settings = Settings(design=design_from_dict(json.loads(argv[1])))
-    before, faults = os.times(), resource.getrusage(resource.RUSAGE_SELF).ru_minflt
+    before, faults = os.times(), minor_faults()
     t = time.perf_counter()
     run_design(irs, FS, settings)
     wall = time.perf_counter() - t
@@ -42,7 +51,7 @@ def main(argv: list[str]) -> None:
         getattr(after, k) - getattr(before, k)
         for k in ("user", "system", "children_user", "children_system")
     )
-    faults = resource.getrusage(resource.RUSAGE_SELF).ru_minflt - faults
+    faults = minor_faults() - faults
     print(json.dumps({"wall_s": wall, "cpu_s": cpu, "minor_faults": faults}))
 
 
