@@ -109,6 +109,18 @@ def _basis_irs(
     """The FIR filters (:func:`feed_fir`) of a real and of an imaginary unit gain at each
     node, each (n_nodes, n_taps): the realisation is linear in the real and imaginary parts
     of the node gains (not in the complex gains: a filter's taps are real)."""
+    nodes = np.ascontiguousarray(nodes_hz, dtype=float)
+    return _basis_irs_of(nodes.tobytes(), float(fs), float(latency_s), float(tail_s))
+
+
+@functools.lru_cache(maxsize=8)
+def _basis_irs_of(
+    nodes_bytes: bytes, fs: float, latency_s: float, tail_s: float
+) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`_basis_irs` on nodes given as their bytes, remembered: the realised basis and
+    every realised peak of a design (the prediction's too) start from the same filters;
+    the arrays are read-only."""
+    nodes_hz = np.frombuffer(nodes_bytes)
     n = int(round((latency_s + tail_s) * fs))
     n_fft = 1 << int(np.ceil(np.log2(8 * n)))
     f = np.fft.rfftfreq(n_fft, 1.0 / fs)
@@ -119,10 +131,11 @@ def _basis_irs(
     if n_fft % 2 == 0:
         spec_im[:, -1] = spec_im[:, -1].real
     w = _fade(n)
-    return (
-        np.fft.irfft(spec, n_fft, axis=-1)[:, :n] * w,
-        np.fft.irfft(spec_im, n_fft, axis=-1)[:, :n] * w,
-    )
+    h_re = np.fft.irfft(spec, n_fft, axis=-1)[:, :n] * w
+    h_im = np.fft.irfft(spec_im, n_fft, axis=-1)[:, :n] * w
+    h_re.flags.writeable = False
+    h_im.flags.writeable = False
+    return h_re, h_im
 
 
 #: Sample rate the realised responses are computed at, Hz (the feeds act below a few
@@ -151,7 +164,7 @@ def _realised_basis(
     the same basis in every fit (the prediction's too) and for every realised response;
     the arrays are read-only."""
     freq_hz = np.frombuffer(freq_bytes)
-    h_re, h_im = _basis_irs(np.frombuffer(nodes_bytes), REALISED_FS, latency_s, tail_s)
+    h_re, h_im = _basis_irs_of(nodes_bytes, REALISED_FS, latency_s, tail_s)
     t = np.arange(h_re.shape[1]) / REALISED_FS - latency_s
     e = np.exp(-2j * np.pi * np.outer(freq_hz, t))
     b_re, b_im = e @ h_re.T, e @ h_im.T
@@ -180,6 +193,13 @@ def realised_peak(
     return mag[:, bins <= hi_hz].max(axis=1)
 
 
+def normalised_weights(weights: np.ndarray | None, n_pos: int) -> np.ndarray:
+    """Position weights summing to 1 (all equal without ``weights``), as the figures weigh
+    the seats."""
+    w = np.full(n_pos, 1.0 / n_pos) if weights is None else np.asarray(weights, float)
+    return w / w.sum()
+
+
 def _unpack(x: np.ndarray, n_sub: int, n_nodes: int):
     k = n_sub * n_nodes
     return (
@@ -199,8 +219,7 @@ def feed_cost_and_grad(x: np.ndarray, *problem) -> tuple[float, np.ndarray]:
 
 class FeedFigure:
     """:func:`feed_cost_and_grad` for one problem, what does not depend on ``x`` computed
-    once: a fit evaluates it hundreds of times on small arrays, where numpy's cost per
-    call, not the arithmetic, sets the time.
+    once: a fit evaluates it hundreds of times.
 
     The seats hear ``y = base + scale * sum_k g_k resp_k`` with
     ``g_k = (B z_k) exp(-j w d_k)``, ``z = rho exp(j phi)``. The figure: ``L = ln(S |y|^2)``
@@ -362,8 +381,7 @@ def fit_feed(
     else:
         basis = realised_basis(freq_hz, nodes, latency_s)
     n_nodes = nodes.size
-    w = np.full(n_pos, 1.0 / n_pos) if weights is None else np.asarray(weights, float)
-    w = w / w.sum()
+    w = normalised_weights(weights, n_pos)
     amp = 10.0 ** (np.asarray(gain_db, dtype=float) / 20.0)
     pol = np.asarray(polarity, dtype=float)
     rho = np.repeat(amp[:, None], n_nodes, axis=1)
@@ -441,8 +459,9 @@ def _feed_fir(
 
 
 def forget_cached() -> None:
-    """Empty the memos of :func:`realised_basis` and :func:`feed_fir` (benchmarks time a
-    cold design)."""
+    """Empty the memos of :func:`realised_basis`, :func:`feed_fir` and the basis filters
+    both start from (benchmarks time a cold design)."""
+    _basis_irs_of.cache_clear()
     _realised_basis.cache_clear()
     _feed_fir.cache_clear()
 

@@ -257,9 +257,7 @@ def _cost_smoothed(power_s: np.ndarray, ref_mean_db, weights) -> np.ndarray:
     reductions (a standard deviation scales with its data), and the variance as
     the mean square less the squared mean.
     """
-    n_pos = power_s.shape[-2]
-    w = np.full(n_pos, 1.0 / n_pos) if weights is None else np.asarray(weights, float)
-    w = w / w.sum()
+    w = feeds.normalised_weights(weights, power_s.shape[-2])
     ln = np.maximum(power_s, 1e-30)
     np.log(ln, out=ln)
     mean = np.einsum("...pf,p->...f", ln, w)
@@ -568,9 +566,8 @@ def _shaped(
     power = np.einsum("psf,s->pf", np.abs(resp) ** 2, 10.0 ** (np.asarray(gain) / 10.0))
     ref_s = _smooth_power(np.abs(bases) ** 2 + sc2 * power[None])  # (B, P, J)
     if LOCAL_LOSS:  # each judged point's mean level over the seats, weighted as the figure
-        n_pos = resp.shape[0]
-        w = np.full(n_pos, 1.0 / n_pos) if weights is None else np.asarray(weights, float)
-        ref_db = (w / w.sum()) @ (10.0 * np.log10(np.maximum(ref_s, 1e-30)))
+        w = feeds.normalised_weights(weights, resp.shape[0])
+        ref_db = w @ (10.0 * np.log10(np.maximum(ref_s, 1e-30)))
     else:
         ref_db = _mean_level_db(ref_s)
     smooth = _smoothing_matrix(freq_hz.size)[::COST_STEP]
