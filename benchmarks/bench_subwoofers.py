@@ -68,7 +68,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parent))
 
 import numpy as np  # noqa: E402
 import pyfar as pf  # noqa: E402
-from design_once import minor_faults  # noqa: E402
+from design_once import timed_design  # noqa: E402
 from pra_rooms import (  # noqa: E402
     MULTI_SUB_ROOMS,
     held_out_seats,
@@ -480,17 +480,7 @@ def _warm_run(
     feeds_mod.forget_cached()  # and realises its feeds afresh
     if trim is not None:
         trim()
-    settings = Settings(design=design_from_dict(spec))
-    t = os.times()
-    faults = minor_faults()
-    start = time.perf_counter()
-    run_design(irs, FS, settings)
-    wall = time.perf_counter() - start
-    e = os.times()
-    cpu = (e.user + e.system + e.children_user + e.children_system) - (
-        t.user + t.system + t.children_user + t.children_system
-    )
-    return wall, cpu, minor_faults() - faults
+    return timed_design(irs, spec)
 
 
 def _print_runs(title: str, runs: list[list[tuple[float, float, int]]]) -> None:

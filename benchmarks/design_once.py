@@ -39,9 +39,11 @@ def minor_faults() -> int:
     return resource.getrusage(resource.RUSAGE_SELF).ru_minflt
 
 
-def main(argv: list[str]) -> None:
-    irs = np.load(argv[0])
-    settings = Settings(design=design_from_dict(json.loads(argv[1])))
+def timed_design(irs: np.ndarray, spec: dict) -> tuple[float, float, int]:
+    """(wall clock, processor time of this process and the children that ended meanwhile,
+    minor page faults) of :func:`roomcorr.pipeline.run_design` on ``irs`` (48 kHz) with
+    the design settings ``spec``."""
+    settings = Settings(design=design_from_dict(spec))
     before, faults = os.times(), minor_faults()
     t = time.perf_counter()
     run_design(irs, FS, settings)
@@ -51,7 +53,11 @@ def main(argv: list[str]) -> None:
         getattr(after, k) - getattr(before, k)
         for k in ("user", "system", "children_user", "children_system")
     )
-    faults = minor_faults() - faults
+    return wall, cpu, minor_faults() - faults
+
+
+def main(argv: list[str]) -> None:
+    wall, cpu, faults = timed_design(np.load(argv[0]), json.loads(argv[1]))
     print(json.dumps({"wall_s": wall, "cpu_s": cpu, "minor_faults": faults}))
 
 
