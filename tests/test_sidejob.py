@@ -3,6 +3,7 @@ thread, with the same answer either way."""
 
 from __future__ import annotations
 
+import contextlib
 import os
 import sys
 import threading
@@ -53,36 +54,35 @@ def test_runs_in_a_child_process_when_no_other_thread_runs():
     assert pid != os.getpid() and total == 45.0  # sum 0..9, by hand
 
 
-def test_on_a_thread_while_another_thread_runs():
+@contextlib.contextmanager
+def _another_thread():
+    """Another thread waiting while the block runs (a process with threads: no fork)."""
     stop = threading.Event()
     other = threading.Thread(target=stop.wait)
     other.start()
     try:
-        assert not can_fork()
-        job = SideJob(_pid_and_sum, np.ones(4))
-        assert not job.in_child
-        assert job.result() == (os.getpid(), 4.0)
-        job.close()
+        yield
     finally:
         stop.set()
         other.join()
 
 
+def test_on_a_thread_while_another_thread_runs():
+    with _another_thread():
+        assert not can_fork()
+        job = SideJob(_pid_and_sum, np.ones(4))
+        assert not job.in_child
+        assert job.result() == (os.getpid(), 4.0)
+        job.close()
+
+
 @pytest.mark.parametrize("thread", [False, True])
 def test_what_the_function_raises_is_raised_again(thread):
-    stop = threading.Event()
-    other = threading.Thread(target=stop.wait)
-    if thread:
-        other.start()
-    try:
+    with _another_thread() if thread else contextlib.nullcontext():
         job = SideJob(_fails)
         with pytest.raises(ValueError, match="from the side job"):
             job.result()
         job.close()
-    finally:
-        stop.set()
-        if thread:
-            other.join()
 
 
 @linux
